@@ -1,0 +1,2 @@
+//! `model-solid` command-line entry point (being written).
+fn main() {}

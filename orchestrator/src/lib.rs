@@ -1,0 +1,11 @@
+//! rondo: runs charge self-consistent DFT+DMFT campaigns unattended, resumes them after any
+//! crash, and records the provenance of every number they produce.
+
+pub mod artifacts;
+pub mod builtins;
+pub mod cli;
+pub mod engine;
+pub mod graph;
+pub mod report;
+pub mod spec;
+pub mod store;
