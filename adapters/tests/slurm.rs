@@ -85,7 +85,7 @@ async fn exit_codes_markers_and_job_names() {
     assert_eq!(h1.executor, "slurm");
     assert!(h1.id.parse::<u64>().is_ok(), "job id {:?}", h1.id);
     assert_eq!(squeue_name(&h1.id), "test_campaign/point_1/it_1/stage");
-    let mut got = vec![next(&mut rx).await, next(&mut rx).await];
+    let mut got = [next(&mut rx).await, next(&mut rx).await];
     got.sort_by_key(|c| c.attempt_id);
     assert_eq!(got[0].outcome, Outcome::Exited { code: 0 });
     assert_eq!(got[1].outcome, Outcome::Exited { code: 3 });
@@ -119,7 +119,7 @@ async fn external_scancel_and_rondo_cancel_are_told_apart() {
         .expect("scancel");
     assert!(st.success());
     ex.cancel(12, "test").await.expect("cancel");
-    let mut got = vec![next(&mut rx).await, next(&mut rx).await];
+    let mut got = [next(&mut rx).await, next(&mut rx).await];
     got.sort_by_key(|c| c.attempt_id);
     assert_eq!(
         got[0].outcome,
