@@ -5,6 +5,8 @@
 //! Counts K = smallest k with ‖f_k‖₂ < 1e-10 from x0 = 0; reference values computed with
 //! numpy/scipy, see reference/mixing.py and reference/output/mixing.txt.
 
+#![allow(clippy::excessive_precision)] // reference values are quoted as printed by the scripts
+
 use rondo_numerics::mixing::{
     iterate_fixed_point, mix, FixedPointRun, Method, MixError, MixerConfig, MixerState,
 };
