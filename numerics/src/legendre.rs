@@ -493,7 +493,7 @@ mod tests {
             // Midpoint rule: error O(h²) ≈ 1e-9 of the scale.
             assert!((acc.sums()[l] - want[l]).abs() < 1e-8, "l={l}");
         }
-        // And the grid quadrature used by the filter.
+        // And the grid quadrature used by the filter (Simpson, h = 0.005: error β h⁴ max|f⁗|/180 ≈ 3e-9 at l = 8).
         let grid: Vec<f64> = (0..=2000)
             .map(|i| {
                 let tau = i as f64 * beta / 2000.0;
