@@ -46,6 +46,7 @@ mod tests {
         assert!(beta_from_kelvin(0.0).is_none());
         assert!(beta_from_kelvin(f64::NAN).is_none());
         let b = beta_from_kelvin(300.0).unwrap_or_default();
-        assert!((b - 38.681_731_6).abs() < 1e-6);
+        // 1 / (k_B · 300 K) with the exact CODATA 2018 k_B and e: 38.681727071833606 eV⁻¹.
+        assert!((b - 38.681_727_071_833_6).abs() < 1e-10);
     }
 }
