@@ -33,7 +33,9 @@ impl ArtifactStore {
     /// Open (creating) the store under `root`.
     pub fn open(root: &Path) -> io::Result<Self> {
         fs::create_dir_all(root)?;
-        Ok(ArtifactStore { root: root.to_path_buf() })
+        Ok(ArtifactStore {
+            root: root.to_path_buf(),
+        })
     }
 
     /// Where the artifact with this hash lives.
@@ -85,7 +87,10 @@ mod tests {
         let s = ArtifactStore::open(&d.path().join("store"))?;
         let (h1, n) = s.put_bytes(b"")?;
         // BLAKE3 of the empty input (test vector of the BLAKE3 specification).
-        assert_eq!(h1, "af1349b9f5f9a1a6a0404dea36dcc9499bcb25c9adc112b7cc9a93cae41f3262");
+        assert_eq!(
+            h1,
+            "af1349b9f5f9a1a6a0404dea36dcc9499bcb25c9adc112b7cc9a93cae41f3262"
+        );
         assert_eq!(n, 0);
         let f = d.path().join("x");
         fs::write(&f, b"")?;

@@ -57,7 +57,10 @@ pub fn order(stages: &[Stage]) -> Result<Vec<Stage>, String> {
     toposort(&g, None).map_err(|c| stages[g[c.node_id()]].name.clone())?;
     let mut indeg: Vec<usize> = nodes
         .iter()
-        .map(|n| g.neighbors_directed(*n, petgraph::Direction::Incoming).count())
+        .map(|n| {
+            g.neighbors_directed(*n, petgraph::Direction::Incoming)
+                .count()
+        })
         .collect();
     let mut done = vec![false; stages.len()];
     let mut out = Vec::new();

@@ -384,7 +384,11 @@ pub enum Source {
     /// A start file.
     Start(String),
     /// Output of the previous iteration, with the start file used at iteration 1 (if any).
-    Previous { stage: String, role: String, initially: Option<String> },
+    Previous {
+        stage: String,
+        role: String,
+        initially: Option<String>,
+    },
 }
 
 /// A checked stage.
@@ -558,10 +562,20 @@ pub fn resolve_program(name: &str, base: &Path) -> Option<PathBuf> {
 pub fn load(file: &Path) -> Result<Campaign, SpecErrors> {
     let err = |line, column, message: String, hint: &str| SpecErrors {
         file: file.to_path_buf(),
-        diagnostics: vec![Diagnostic { line, column, message, hint: hint.to_string() }],
+        diagnostics: vec![Diagnostic {
+            line,
+            column,
+            message,
+            hint: hint.to_string(),
+        }],
     };
     let text = std::fs::read_to_string(file).map_err(|e| {
-        err(0, 0, format!("cannot read the campaign file: {e}"), "check the path")
+        err(
+            0,
+            0,
+            format!("cannot read the campaign file: {e}"),
+            "check the path",
+        )
     })?;
     parse(file, &text)
 }
@@ -569,10 +583,18 @@ pub fn load(file: &Path) -> Result<Campaign, SpecErrors> {
 /// Parse and validate campaign text (`file` names it in diagnostics and anchors paths).
 pub fn parse(file: &Path, text: &str) -> Result<Campaign, SpecErrors> {
     let raw: CampaignFile = serde_saphyr::from_str(text).map_err(|e| {
-        let (line, column) = e.location().map(|l| (l.line(), l.column())).unwrap_or((0, 0));
+        let (line, column) = e
+            .location()
+            .map(|l| (l.line(), l.column()))
+            .unwrap_or((0, 0));
         let msg = e.to_string();
         // The library's message may carry a rendered snippet after the first line.
-        let first = msg.lines().next().unwrap_or("invalid YAML").trim().to_string();
+        let first = msg
+            .lines()
+            .next()
+            .unwrap_or("invalid YAML")
+            .trim()
+            .to_string();
         SpecErrors {
             file: file.to_path_buf(),
             diagnostics: vec![Diagnostic {
@@ -583,7 +605,11 @@ pub fn parse(file: &Path, text: &str) -> Result<Campaign, SpecErrors> {
             }],
         }
     })?;
-    Validator { file, diags: Vec::new() }.run(raw, text)
+    Validator {
+        file,
+        diags: Vec::new(),
+    }
+    .run(raw, text)
 }
 
 struct Validator<'a> {
@@ -607,11 +633,21 @@ impl Validator<'_> {
     }
 
     fn run(mut self, raw: CampaignFile, text: &str) -> Result<Campaign, SpecErrors> {
-        let base = self.file.parent().map(Path::to_path_buf).unwrap_or_default();
-        let base = if base.as_os_str().is_empty() { PathBuf::from(".") } else { base };
+        let base = self
+            .file
+            .parent()
+            .map(Path::to_path_buf)
+            .unwrap_or_default();
+        let base = if base.as_os_str().is_empty() {
+            PathBuf::from(".")
+        } else {
+            base
+        };
         let name = raw.campaign.value.clone();
         if name.is_empty()
-            || !name.chars().all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+            || !name
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
         {
             self.push(
                 loc(&raw.campaign),
@@ -654,8 +690,11 @@ impl Validator<'_> {
         }
 
         // Sweep.
-        let parameters: Vec<(String, Scalar)> =
-            raw.parameters.iter().map(|(k, v)| (k.to_string(), v.clone())).collect();
+        let parameters: Vec<(String, Scalar)> = raw
+            .parameters
+            .iter()
+            .map(|(k, v)| (k.to_string(), v.clone()))
+            .collect();
         let points = self.points(&raw);
         let mut param_names: BTreeSet<String> = parameters.iter().map(|(k, _)| k.clone()).collect();
         if let Some(p) = points.first() {
@@ -675,7 +714,11 @@ impl Validator<'_> {
             .collect();
         let mut stages = Vec::new();
         if raw.cycle.is_empty() {
-            self.push((0, 0), "the cycle has no stages", "add stages under `cycle:`");
+            self.push(
+                (0, 0),
+                "the cycle has no stages",
+                "add stages under `cycle:`",
+            );
         }
         for (key, st) in &raw.cycle.0 {
             let sname = key.value.clone();
@@ -717,7 +760,11 @@ impl Validator<'_> {
                                         "add `initially: start.NAME` (only built-in stages may go without)",
                                     );
                                 }
-                                Some(Source::Previous { stage, role, initially })
+                                Some(Source::Previous {
+                                    stage,
+                                    role,
+                                    initially,
+                                })
                             }
                             _ => None,
                         }
@@ -727,10 +774,14 @@ impl Validator<'_> {
                     inputs.push((ik.value.clone(), src));
                 }
             }
-            let outputs: Vec<(String, String)> =
-                st.outputs.iter().map(|(k, v)| (k.to_string(), v.clone())).collect();
+            let outputs: Vec<(String, String)> = st
+                .outputs
+                .iter()
+                .map(|(k, v)| (k.to_string(), v.clone()))
+                .collect();
             for (ok, ov) in &st.outputs.0 {
-                if ov.is_empty() || ov.contains('/') || ov == "metrics.json" || ov.starts_with('.') {
+                if ov.is_empty() || ov.contains('/') || ov == "metrics.json" || ov.starts_with('.')
+                {
                     self.push(
                         loc(ok),
                         format!("output file name `{ov}` is not allowed"),
@@ -770,18 +821,30 @@ impl Validator<'_> {
                 }
                 (None, Some(b)) => {
                     if b.value != "mix" {
-                        self.push(loc(b), format!("unknown built-in `{}`", b.value), "built-ins: mix");
+                        self.push(
+                            loc(b),
+                            format!("unknown built-in `{}`", b.value),
+                            "built-ins: mix",
+                        );
                         None
                     } else {
                         self.mix(&sname, st, at, &inputs)
                     }
                 }
                 (Some(_), Some(_)) => {
-                    self.push(at, format!("stage `{sname}` has both `run` and `builtin`"), "keep one");
+                    self.push(
+                        at,
+                        format!("stage `{sname}` has both `run` and `builtin`"),
+                        "keep one",
+                    );
                     None
                 }
                 (None, None) => {
-                    self.push(at, format!("stage `{sname}` has neither `run` nor `builtin`"), "add `run: [program, args...]`");
+                    self.push(
+                        at,
+                        format!("stage `{sname}` has neither `run` nor `builtin`"),
+                        "add `run: [program, args...]`",
+                    );
                     None
                 }
             };
@@ -804,28 +867,49 @@ impl Validator<'_> {
         // Stop rules.
         let mut rules = Vec::new();
         if raw.stop.max_iterations == 0 {
-            self.push((0, 0), "stop.max-iterations must be at least 1", "set max-iterations: N");
+            self.push(
+                (0, 0),
+                "stop.max-iterations must be at least 1",
+                "set max-iterations: N",
+            );
         }
         for r in &raw.stop.when {
             let at = loc(&r.metric);
             let Some((s, m)) = split_ref(&r.metric.value) else {
-                self.push(at, format!("metric `{}` must be written stage.metric", r.metric.value), "e.g. update.n_f");
+                self.push(
+                    at,
+                    format!("metric `{}` must be written stage.metric", r.metric.value),
+                    "e.g. update.n_f",
+                );
                 continue;
             };
             match raw.cycle.get(s) {
                 None => self.push(
                     at,
                     format!("stop rule names unknown stage `{s}`"),
-                    format!("stages: {}", raw.cycle.keys().collect::<Vec<_>>().join(", ")),
+                    format!(
+                        "stages: {}",
+                        raw.cycle.keys().collect::<Vec<_>>().join(", ")
+                    ),
                 ),
                 Some(st) => {
                     if st.builtin.is_some() && m != "residual" {
-                        self.push(at, format!("built-in stage `{s}` reports only `residual`"), "use `{s}.residual`");
-                    } else if st.builtin.is_none() && !st.metrics.is_empty() && !st.metrics.iter().any(|x| x == m) {
+                        self.push(
+                            at,
+                            format!("built-in stage `{s}` reports only `residual`"),
+                            "use `{s}.residual`",
+                        );
+                    } else if st.builtin.is_none()
+                        && !st.metrics.is_empty()
+                        && !st.metrics.iter().any(|x| x == m)
+                    {
                         self.push(
                             at,
                             format!("stage `{s}` does not list metric `{m}`"),
-                            format!("add `{m}` to the stage's `metrics:` or use one of: {}", st.metrics.join(", ")),
+                            format!(
+                                "add `{m}` to the stage's `metrics:` or use one of: {}",
+                                st.metrics.join(", ")
+                            ),
                         );
                     }
                 }
@@ -841,20 +925,36 @@ impl Validator<'_> {
                 continue;
             }
             let bad = match set[0] {
-                RuleTest::Abs(x) | RuleTest::Rel(x) | RuleTest::Errors(x) => !(x.is_finite() && x > 0.0),
+                RuleTest::Abs(x) | RuleTest::Rel(x) | RuleTest::Errors(x) => {
+                    !(x.is_finite() && x > 0.0)
+                }
             };
             if bad || r.for_ == 0 {
-                self.push(at, "tolerances must be positive numbers and `for` at least 1", "e.g. change-below: 1.0e-6, for: 2");
+                self.push(
+                    at,
+                    "tolerances must be positive numbers and `for` at least 1",
+                    "e.g. change-below: 1.0e-6, for: 2",
+                );
                 continue;
             }
-            rules.push(Rule { metric: r.metric.value.clone(), test: set[0], for_: r.for_ });
+            rules.push(Rule {
+                metric: r.metric.value.clone(),
+                test: set[0],
+                for_: r.for_,
+            });
         }
 
         // Graph: order and same-iteration cycles.
         let ordered = match crate::graph::order(&stages) {
             Ok(o) => o,
             Err(cycle_stage) => {
-                let at = raw.cycle.0.iter().find(|(k, _)| k.value == cycle_stage).map(|(k, _)| loc(k)).unwrap_or((0, 0));
+                let at = raw
+                    .cycle
+                    .0
+                    .iter()
+                    .find(|(k, _)| k.value == cycle_stage)
+                    .map(|(k, _)| loc(k))
+                    .unwrap_or((0, 0));
                 self.push(
                     at,
                     format!("stage `{cycle_stage}` is part of a cycle within one iteration"),
@@ -866,7 +966,10 @@ impl Validator<'_> {
 
         if !self.diags.is_empty() {
             self.diags.sort_by_key(|d| (d.line, d.column));
-            return Err(SpecErrors { file: self.file.to_path_buf(), diagnostics: self.diags });
+            return Err(SpecErrors {
+                file: self.file.to_path_buf(),
+                diagnostics: self.diags,
+            });
         }
         Ok(Campaign {
             file: self.file.to_path_buf(),
@@ -885,21 +988,38 @@ impl Validator<'_> {
     }
 
     /// Check `stage.output` / `start.name`; `previous` allows any stage (even later ones).
-    fn source_ref(&mut self, raw: &CampaignFile, r: &str, at: (u64, u64), previous: bool) -> Option<(String, String)> {
+    fn source_ref(
+        &mut self,
+        raw: &CampaignFile,
+        r: &str,
+        at: (u64, u64),
+        previous: bool,
+    ) -> Option<(String, String)> {
         let Some((s, o)) = split_ref(r) else {
-            self.push(at, format!("input `{r}` must be written stage.output or start.name"), "e.g. solve.sigma");
+            self.push(
+                at,
+                format!("input `{r}` must be written stage.output or start.name"),
+                "e.g. solve.sigma",
+            );
             return None;
         };
         if s == "start" {
             if previous {
-                self.push(at, "`previous:` must name a stage output", "use `initially: start.NAME` for the start file");
+                self.push(
+                    at,
+                    "`previous:` must name a stage output",
+                    "use `initially: start.NAME` for the start file",
+                );
                 return None;
             }
             if raw.start.get(o).is_none() {
                 self.push(
                     at,
                     format!("unknown start file `{o}`"),
-                    format!("start files: {}", raw.start.keys().collect::<Vec<_>>().join(", ")),
+                    format!(
+                        "start files: {}",
+                        raw.start.keys().collect::<Vec<_>>().join(", ")
+                    ),
                 );
                 return None;
             }
@@ -909,7 +1029,10 @@ impl Validator<'_> {
             self.push(
                 at,
                 format!("input `{r}` names unknown stage `{s}`"),
-                format!("stages: {}", raw.cycle.keys().collect::<Vec<_>>().join(", ")),
+                format!(
+                    "stages: {}",
+                    raw.cycle.keys().collect::<Vec<_>>().join(", ")
+                ),
             );
             return None;
         };
@@ -918,7 +1041,10 @@ impl Validator<'_> {
             self.push(
                 at,
                 format!("stage `{s}` declares no output `{o}`"),
-                format!("its outputs: {}", st.outputs.keys().collect::<Vec<_>>().join(", ")),
+                format!(
+                    "its outputs: {}",
+                    st.outputs.keys().collect::<Vec<_>>().join(", ")
+                ),
             );
             return None;
         }
@@ -937,11 +1063,19 @@ impl Validator<'_> {
         inputs: &[(String, Source)],
     ) -> Option<StageKind> {
         let Some(first) = run.first() else {
-            self.push((0, 0), format!("stage `{sname}`: `run` is empty"), "write run: [program, args...]");
+            self.push(
+                (0, 0),
+                format!("stage `{sname}`: `run` is empty"),
+                "write run: [program, args...]",
+            );
             return None;
         };
         if st.with.is_some() {
-            self.push(loc(first), format!("stage `{sname}`: `with` is for built-in stages"), "remove `with`");
+            self.push(
+                loc(first),
+                format!("stage `{sname}`: `with` is for built-in stages"),
+                "remove `with`",
+            );
         }
         let args: Vec<String> = run.iter().map(|s| s.value.clone()).collect();
         let template = match Template::parse(&args) {
@@ -954,11 +1088,21 @@ impl Validator<'_> {
         };
         let program = first.value.clone();
         if program.contains("{{") {
-            self.push(loc(first), "the program (first element of `run`) cannot be a placeholder", "name a program from `programs:` or a path");
+            self.push(
+                loc(first),
+                "the program (first element of `run`) cannot be a placeholder",
+                "name a program from `programs:` or a path",
+            );
         } else if !programs.contains_key(&program) {
             match resolve_program(&program, base) {
                 Some(path) => {
-                    programs.insert(program.clone(), ResolvedProgram { path, version_flag: None });
+                    programs.insert(
+                        program.clone(),
+                        ResolvedProgram {
+                            path,
+                            version_flag: None,
+                        },
+                    );
                 }
                 None => self.push(
                     loc(first),
@@ -983,35 +1127,85 @@ impl Validator<'_> {
                 ok = false;
                 let ns = p.namespace.map(|n| format!("{n}:")).unwrap_or_default();
                 let hint = match p.namespace {
-                    Some("param") => format!("parameters and sweep axes: {}", params.iter().cloned().collect::<Vec<_>>().join(", ")),
-                    Some("input") => format!("inputs of `{sname}`: {}", inputs.iter().map(|(k, _)| k.as_str()).collect::<Vec<_>>().join(", ")),
-                    Some("output") => format!("outputs of `{sname}`: {}", st.outputs.keys().collect::<Vec<_>>().join(", ")),
+                    Some("param") => format!(
+                        "parameters and sweep axes: {}",
+                        params.iter().cloned().collect::<Vec<_>>().join(", ")
+                    ),
+                    Some("input") => format!(
+                        "inputs of `{sname}`: {}",
+                        inputs
+                            .iter()
+                            .map(|(k, _)| k.as_str())
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    ),
+                    Some("output") => format!(
+                        "outputs of `{sname}`: {}",
+                        st.outputs.keys().collect::<Vec<_>>().join(", ")
+                    ),
                     Some("point") => "use {{point:id}} or {{point:index}}".into(),
                     None => format!("names without namespace: {}", BARE_NAMES.join(", ")),
                     Some(_) => "namespaces: param, input, output, point".into(),
                 };
-                self.push(at, format!("stage `{sname}`: undefined placeholder `{{{{{ns}{}}}}}`", p.name), hint);
+                self.push(
+                    at,
+                    format!(
+                        "stage `{sname}`: undefined placeholder `{{{{{ns}{}}}}}`",
+                        p.name
+                    ),
+                    hint,
+                );
             }
         }
-        ok.then_some(StageKind::Command { template, program, shell: st.shell })
+        ok.then_some(StageKind::Command {
+            template,
+            program,
+            shell: st.shell,
+        })
     }
 
-    fn mix(&mut self, sname: &str, st: &StageSpec, at: (u64, u64), inputs: &[(String, Source)]) -> Option<StageKind> {
+    fn mix(
+        &mut self,
+        sname: &str,
+        st: &StageSpec,
+        at: (u64, u64),
+        inputs: &[(String, Source)],
+    ) -> Option<StageKind> {
         let Some(with) = st.with.clone() else {
-            self.push(at, format!("built-in stage `{sname}` needs `with: {{ method: linear, alpha: 0.5 }}`"), "add `with:`");
+            self.push(
+                at,
+                format!("built-in stage `{sname}` needs `with: {{ method: linear, alpha: 0.5 }}`"),
+                "add `with:`",
+            );
             return None;
         };
         if !(with.alpha > 0.0 && with.alpha <= 1.0) {
-            self.push(at, format!("stage `{sname}`: alpha must be in (0, 1]"), "e.g. alpha: 0.5");
+            self.push(
+                at,
+                format!("stage `{sname}`: alpha must be in (0, 1]"),
+                "e.g. alpha: 0.5",
+            );
         }
         if inputs.len() != 1 || inputs[0].0 != "new" {
-            self.push(at, format!("built-in stage `{sname}` takes exactly one input, `new`"), "write inputs: { new: stage.output }");
+            self.push(
+                at,
+                format!("built-in stage `{sname}` takes exactly one input, `new`"),
+                "write inputs: { new: stage.output }",
+            );
         }
         if st.outputs.len() != 1 || !st.outputs.0[0].1.ends_with(".npy") {
-            self.push(at, format!("built-in stage `{sname}` has exactly one .npy output (the mixed array)"), "write outputs: { NAME: NAME.npy }");
+            self.push(
+                at,
+                format!("built-in stage `{sname}` has exactly one .npy output (the mixed array)"),
+                "write outputs: { NAME: NAME.npy }",
+            );
         }
         if st.outputs.get("state").is_some() {
-            self.push(at, "the mixer's `state` output is implicit", "rename the output");
+            self.push(
+                at,
+                "the mixer's `state` output is implicit",
+                "rename the output",
+            );
         }
         Some(StageKind::Mix(with))
     }
@@ -1021,12 +1215,20 @@ impl Validator<'_> {
         if let Some(sw) = &raw.sweep {
             match (&sw.product, &sw.zip) {
                 (Some(_), Some(_)) | (None, None) => {
-                    self.push(loc(&raw.campaign), "the sweep needs exactly one of `product` or `zip`", "write sweep: { product: { axis: [values] } }");
+                    self.push(
+                        loc(&raw.campaign),
+                        "the sweep needs exactly one of `product` or `zip`",
+                        "write sweep: { product: { axis: [values] } }",
+                    );
                 }
                 (Some(p), None) => {
                     for (k, vals) in &p.0 {
                         if vals.is_empty() {
-                            self.push(loc(k), format!("sweep axis `{}` is empty", k.value), "give at least one value");
+                            self.push(
+                                loc(k),
+                                format!("sweep axis `{}` is empty", k.value),
+                                "give at least one value",
+                            );
                         }
                         let mut next = Vec::new();
                         for c in &combos {
@@ -1051,14 +1253,27 @@ impl Validator<'_> {
                         }
                     }
                     combos = (0..n)
-                        .map(|i| z.0.iter().filter_map(|(k, v)| v.get(i).map(|x| (k.value.clone(), x.clone()))).collect())
+                        .map(|i| {
+                            z.0.iter()
+                                .filter_map(|(k, v)| v.get(i).map(|x| (k.value.clone(), x.clone())))
+                                .collect()
+                        })
                         .collect();
                 }
             }
-            let axes: Vec<&str> = sw.product.iter().chain(sw.zip.iter()).flat_map(|m| m.keys()).collect();
+            let axes: Vec<&str> = sw
+                .product
+                .iter()
+                .chain(sw.zip.iter())
+                .flat_map(|m| m.keys())
+                .collect();
             for (k, _) in &raw.parameters.0 {
                 if axes.contains(&k.value.as_str()) {
-                    self.push(loc(k), format!("`{}` is both a parameter and a sweep axis", k.value), "keep one");
+                    self.push(
+                        loc(k),
+                        format!("`{}` is both a parameter and a sweep axis", k.value),
+                        "keep one",
+                    );
                 }
             }
         }
@@ -1066,7 +1281,11 @@ impl Validator<'_> {
         combos
             .into_iter()
             .enumerate()
-            .map(|(i, values)| PointSpec { id: format!("p{:0width$}", i + 1), index: i + 1, values })
+            .map(|(i, values)| PointSpec {
+                id: format!("p{:0width$}", i + 1),
+                index: i + 1,
+                values,
+            })
             .collect()
     }
 }
@@ -1086,7 +1305,10 @@ mod tests {
     #[test]
     fn durations() {
         assert_eq!(parse_duration("00:10:00"), Some(Duration::from_secs(600)));
-        assert_eq!(parse_duration("1-02:00:00"), Some(Duration::from_secs(93600)));
+        assert_eq!(
+            parse_duration("1-02:00:00"),
+            Some(Duration::from_secs(93600))
+        );
         assert_eq!(parse_duration("5"), Some(Duration::from_secs(300)));
         assert_eq!(parse_duration("2:30"), Some(Duration::from_secs(150)));
         assert_eq!(parse_duration("x"), None);

@@ -11,7 +11,9 @@ use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
 use sqlx::migrate::{Migration, MigrationType, Migrator};
-use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous};
+use sqlx::sqlite::{
+    SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
+};
 
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
@@ -22,7 +24,10 @@ pub fn migrator() -> Migrator {
         include_str!("../migrations/0001_initial.sql").into(),
         false,
     )];
-    Migrator { migrations: m.into(), ..Migrator::DEFAULT }
+    Migrator {
+        migrations: m.into(),
+        ..Migrator::DEFAULT
+    }
 }
 
 /// Open (creating) the database file and apply migrations.
@@ -102,12 +107,16 @@ mod tests {
     async fn migrates_a_real_file_and_enforces_keys() -> Result<()> {
         let d = tempfile::tempdir()?;
         let pool = open(&d.path().join("rondo.db")).await?;
-        let mode: String = sqlx::query_scalar("PRAGMA journal_mode").fetch_one(&pool).await?;
+        let mode: String = sqlx::query_scalar("PRAGMA journal_mode")
+            .fetch_one(&pool)
+            .await?;
         assert_eq!(mode, "wal");
         // foreign keys are on: an attempt for an unknown point is refused
-        let r = sqlx::query("INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES (1,'x','y')")
-            .execute(&pool)
-            .await;
+        let r = sqlx::query(
+            "INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES (1,'x','y')",
+        )
+        .execute(&pool)
+        .await;
         assert!(r.is_err());
         Ok(())
     }
@@ -116,7 +125,10 @@ mod tests {
     fn second_lock_names_holder() -> Result<()> {
         let d = tempfile::tempdir()?;
         let _a = lock(d.path())?;
-        let e = lock(d.path()).err().map(|e| e.to_string()).unwrap_or_default();
+        let e = lock(d.path())
+            .err()
+            .map(|e| e.to_string())
+            .unwrap_or_default();
         assert!(e.contains(&format!("pid {}", std::process::id())), "{e}");
         Ok(())
     }
