@@ -122,6 +122,20 @@ pub fn tail_from_last(beta: f64, giw: &[Complex64]) -> Option<Tail> {
     Some(Tail::two(-w * g.im, -w * w * g.re))
 }
 
+/// The constant c0 of a function F(iω) ≈ c0 + s1/(iω) + s2/(iω)² (e.g. the Hartree part of a
+/// self-energy), from the real parts at the last frequency and at the middle one:
+/// Re F(ω) = c0 − s2/ω² + O(ω⁻⁴), so two frequencies eliminate s2.
+pub fn high_frequency_constant(beta: f64, data: &[Complex64]) -> f64 {
+    let n = data.len();
+    if n < 4 {
+        return data.last().map(|z| z.re).unwrap_or(0.0);
+    }
+    let (ia, ib) = (n / 2, n - 1);
+    let wa2 = fermionic_frequency(beta, ia as i64).powi(2);
+    let wb2 = fermionic_frequency(beta, ib as i64).powi(2);
+    (wb2 * data[ib].re - wa2 * data[ia].re) / (wb2 - wa2)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -202,5 +216,15 @@ mod tests {
         assert!((t.c1 - 1.0).abs() < 1e-5);
         assert!((t.c2 - EPS).abs() < 1e-4);
         assert!(tail_from_last(BETA, &[]).is_none());
+    }
+
+    #[test]
+    fn constant_from_two_frequencies() {
+        // F = 1.5 + 0.7/(iω − 0.4): Re F = 1.5 − 0.28/(ω² + 0.16); constant to O(ω⁻⁴).
+        let f: Vec<Complex64> = fermionic_grid(BETA, 512)
+            .iter()
+            .map(|w| Complex64::new(1.5, 0.0) + 0.7 * Complex64::new(-0.4, *w).inv())
+            .collect();
+        assert!((high_frequency_constant(BETA, &f) - 1.5).abs() < 1e-9);
     }
 }

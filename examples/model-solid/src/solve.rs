@@ -1,0 +1,235 @@
+//! The `solve` stage: impurity solvers behind one dispatch point, and the Hubbard-I solver.
+//!
+//! Hubbard-I (J. Hubbard, Proc. R. Soc. A 276, 238 (1963); used as a DMFT impurity solver by
+//! A. I. Lichtenstein and M. I. Katsnelson, Phys. Rev. B 57, 6884 (1998)): the impurity
+//! Green's function is that of the isolated atom with level e = ε_loc − μ plus the static
+//! part of Δ, and Σ(iω) = iω − e − G_at(iω)⁻¹. For one spin-degenerate orbital the atomic
+//! states are |0⟩ (energy 0), |↑⟩,|↓⟩ (e) and |↑↓⟩ (2e+U), and
+//! G_at(iω) = (1−n_σ)/(iω−e) + n_σ/(iω−e−U) with n_σ = P(1)/2 + P(2).
+
+use anyhow::{bail, Result};
+use num_complex::Complex64;
+use rondo_numerics::matsubara::fermionic_grid;
+use std::collections::BTreeMap;
+
+/// The impurity solvers this build knows.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SolverKind {
+    /// The deterministic atomic-limit solver.
+    HubbardI,
+}
+
+impl std::str::FromStr for SolverKind {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, Self::Err> {
+        match s {
+            "hubbard-i" => Ok(SolverKind::HubbardI),
+            other => Err(format!("unknown solver '{other}' (available: hubbard-i)")),
+        }
+    }
+}
+
+/// Everything a solver gets.
+#[derive(Debug, Clone)]
+pub struct SolverInput<'a> {
+    /// Hybridization function Δ(iω_n) on the positive grid.
+    pub delta: &'a [Complex64],
+    /// Local level ε_loc − μ (eV).
+    pub level: f64,
+    /// Hubbard U (eV).
+    pub u: f64,
+    /// Inverse temperature (1/eV).
+    pub beta: f64,
+    /// Seed for stochastic solvers.
+    pub seed: u64,
+}
+
+/// What every solver returns.
+#[derive(Debug, Clone)]
+pub struct SolverOutput {
+    /// Impurity Green's function G(iω_n).
+    pub g: Vec<Complex64>,
+    /// Self-energy Σ(iω_n).
+    pub sigma: Vec<Complex64>,
+    /// Metrics (n_f, docc, p0, p1, p2, ...).
+    pub metrics: BTreeMap<&'static str, f64>,
+}
+
+/// The one dispatch point: further solvers add a variant and an arm here.
+pub fn run_solver(kind: SolverKind, input: &SolverInput<'_>) -> Result<SolverOutput> {
+    if !(input.beta.is_finite() && input.beta > 0.0) {
+        bail!("inverse temperature must be positive, got {}", input.beta);
+    }
+    if !input.u.is_finite() || input.u < 0.0 {
+        bail!("U must be finite and non-negative, got {}", input.u);
+    }
+    match kind {
+        SolverKind::HubbardI => Ok(hubbard_i(input)),
+    }
+}
+
+/// Atomic quantities of the one-orbital Hubbard atom.
+#[derive(Debug, Clone, Copy)]
+pub struct Atom {
+    /// P(0), P(1) (both spin states together), P(2).
+    pub p: [f64; 3],
+    /// Occupation per spin.
+    pub n_sigma: f64,
+    /// Double occupancy ⟨n↑n↓⟩ = P(2).
+    pub docc: f64,
+    /// ⟨H_at⟩ = e·2n_σ + U·P(2).
+    pub energy: f64,
+}
+
+/// Probabilities of the atomic configurations, overflow-safe (energies shifted by the lowest).
+pub fn atom(level: f64, u: f64, beta: f64) -> Atom {
+    let en = [0.0, level, 2.0 * level + u];
+    let emin = en.iter().cloned().fold(f64::INFINITY, f64::min);
+    let bw = [
+        (-beta * (en[0] - emin)).exp(),
+        2.0 * (-beta * (en[1] - emin)).exp(),
+        (-beta * (en[2] - emin)).exp(),
+    ];
+    let z: f64 = bw.iter().sum();
+    let p = [bw[0] / z, bw[1] / z, bw[2] / z];
+    let n_sigma = 0.5 * p[1] + p[2];
+    Atom {
+        p,
+        n_sigma,
+        docc: p[2],
+        energy: level * 2.0 * n_sigma + u * p[2],
+    }
+}
+
+/// The Hubbard-I solver.
+pub fn hubbard_i(input: &SolverInput<'_>) -> SolverOutput {
+    // Static part of Δ: its high-frequency constant, estimated at the last frequency
+    // (zero analytically with the exact projection; kept so the level stays correct for
+    // projections that leave a constant).
+    let delta_static = input.delta.last().map(|d| d.re).unwrap_or(0.0);
+    let e = input.level + delta_static;
+    let at = atom(e, input.u, input.beta);
+    let grid = fermionic_grid(input.beta, input.delta.len());
+    let mut g = Vec::with_capacity(grid.len());
+    let mut sigma = Vec::with_capacity(grid.len());
+    for w in grid {
+        let iw = Complex64::new(0.0, w);
+        let ga = (1.0 - at.n_sigma) / (iw - e) + at.n_sigma / (iw - e - input.u);
+        sigma.push(iw - e - ga.inv());
+        g.push(ga);
+    }
+    let mut metrics = BTreeMap::new();
+    metrics.insert("n_f", 2.0 * at.n_sigma);
+    metrics.insert("docc", at.docc);
+    metrics.insert("p0", at.p[0]);
+    metrics.insert("p1", at.p[1]);
+    metrics.insert("p2", at.p[2]);
+    metrics.insert("energy_atomic", at.energy);
+    metrics.insert("level", e);
+    metrics.insert("sigma_inf", sigma.last().map(|s| s.re).unwrap_or(0.0));
+    SolverOutput { g, sigma, metrics }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // Closed forms of the atomic Hubbard model (Hubbard 1963); reference values computed
+    // with mpmath, see reference/atomic_limit.py and reference/output/atomic_limit.txt.
+    fn run(level: f64, u: f64, beta: f64, n: usize) -> SolverOutput {
+        let delta = vec![Complex64::new(0.0, 0.0); n];
+        run_solver(
+            SolverKind::HubbardI,
+            &SolverInput {
+                delta: &delta,
+                level,
+                u,
+                beta,
+                seed: 0,
+            },
+        )
+        .unwrap()
+    }
+
+    #[test]
+    fn atomic_limit_half_filling() {
+        // β = 20, U = 4, ε = −2
+        let out = run(-2.0, 4.0, 20.0, 8);
+        let m = &out.metrics;
+        assert!((m["p0"] - 2.124_177_127_645_794_5e-18).abs() < 1e-28);
+        assert!((m["p2"] - 2.124_177_127_645_794_5e-18).abs() < 1e-28);
+        assert!((m["p1"] - 1.0).abs() < 1e-15);
+        assert!((m["n_f"] - 1.0).abs() < 1e-15);
+        assert!((m["energy_atomic"] + 2.0).abs() < 1e-10);
+        assert!((out.g[0] - Complex64::new(0.0, -0.039_029_156_709_354_01)).norm() < 1e-15);
+        assert!((out.g[1] - Complex64::new(0.0, -0.111_613_339_769_206_03)).norm() < 1e-15);
+        assert!((out.g[5] - Complex64::new(0.0, -0.247_349_835_126_927_13)).norm() < 1e-15);
+    }
+
+    #[test]
+    fn atomic_limit_away_from_half_filling() {
+        // β = 10, U = 3, ε = −0.5
+        let out = run(-0.5, 3.0, 10.0, 8);
+        let m = &out.metrics;
+        assert!((m["p0"] - 0.003_357_661_626_479_377_5).abs() < 1e-12);
+        assert!((m["p1"] - 0.996_642_338_366_6).abs() < 1e-12);
+        assert!((m["p2"] - 6.920_656_424_340_909e-12).abs() < 1e-20);
+        assert!((m["docc"] - 6.920_656_424_340_909e-12).abs() < 1e-20);
+        assert!((m["n_f"] - 0.996_642_338_380_441_3).abs() < 1e-12);
+        assert!((m["energy_atomic"] + 0.498_321_169_169_458_7).abs() < 1e-10);
+        assert!(
+            (out.g[0] - Complex64::new(0.523_134_366_701_935_2, -0.476_648_748_891_871_6)).norm()
+                < 1e-10
+        );
+        assert!(
+            (out.g[1] - Complex64::new(0.045_845_453_597_510_88, -0.481_182_047_499_808_3)).norm()
+                < 1e-10
+        );
+        assert!(
+            (out.g[5] - Complex64::new(-0.047_906_252_825_288_51, -0.236_855_309_779_465_94))
+                .norm()
+                < 1e-10
+        );
+        // Σ → U n_σ (Hartree) at high frequency
+        let big = run(-0.5, 3.0, 10.0, 20000);
+        let s = big.sigma.last().copied().unwrap_or_default();
+        assert!((s.re - 3.0 * 0.498_321_169_190_220_6).abs() < 1e-5);
+    }
+
+    #[test]
+    fn uncorrelated_half_filling() {
+        // U = 0, ε = 0: independent spins each half filled, so P(0) = P(2) = 1/4 and
+        // P(1) = 1/2 (fact of the trade); Σ vanishes.
+        for beta in [1.0, 10.0, 100.0] {
+            let out = run(0.0, 0.0, beta, 16);
+            assert!((out.metrics["p0"] - 0.25).abs() < 1e-15);
+            assert!((out.metrics["p1"] - 0.5).abs() < 1e-15);
+            assert!((out.metrics["p2"] - 0.25).abs() < 1e-15);
+            assert!(out.sigma.iter().all(|s| s.norm() < 1e-12)); // roundoff of iω − 1/G
+        }
+    }
+
+    #[test]
+    fn extreme_levels_do_not_overflow() {
+        let out = run(-50.0, 4.0, 1000.0, 4);
+        assert!((out.metrics["p2"] - 1.0).abs() < 1e-15);
+        assert!(out
+            .sigma
+            .iter()
+            .all(|s| s.re.is_finite() && s.im.is_finite()));
+    }
+
+    #[test]
+    fn bad_inputs_rejected() {
+        let delta = vec![Complex64::new(0.0, 0.0); 4];
+        let inp = SolverInput {
+            delta: &delta,
+            level: 0.0,
+            u: -1.0,
+            beta: 10.0,
+            seed: 0,
+        };
+        assert!(run_solver(SolverKind::HubbardI, &inp).is_err());
+        assert!("ctqmc-x".parse::<SolverKind>().is_err());
+    }
+}
