@@ -67,11 +67,17 @@ impl Resources {
             cpus_per_task: self.cpus_per_task.or(defaults.cpus_per_task),
             mem: self.mem.clone().or_else(|| defaults.mem.clone()),
             time: self.time.clone().or_else(|| defaults.time.clone()),
-            partition: self.partition.clone().or_else(|| defaults.partition.clone()),
+            partition: self
+                .partition
+                .clone()
+                .or_else(|| defaults.partition.clone()),
             account: self.account.clone().or_else(|| defaults.account.clone()),
             qos: self.qos.clone().or_else(|| defaults.qos.clone()),
             gres: self.gres.clone().or_else(|| defaults.gres.clone()),
-            constraint: self.constraint.clone().or_else(|| defaults.constraint.clone()),
+            constraint: self
+                .constraint
+                .clone()
+                .or_else(|| defaults.constraint.clone()),
             extra,
             launcher: self.launcher.clone().or_else(|| defaults.launcher.clone()),
         }
@@ -79,7 +85,9 @@ impl Resources {
 
     /// Total CPUs an attempt asks for: ntasks × cpus-per-task (each defaulting to 1).
     pub fn cpus(&self) -> u32 {
-        self.ntasks.unwrap_or(1).saturating_mul(self.cpus_per_task.unwrap_or(1))
+        self.ntasks
+            .unwrap_or(1)
+            .saturating_mul(self.cpus_per_task.unwrap_or(1))
     }
 }
 
@@ -193,7 +201,10 @@ pub enum ExecError {
     Invalid(String),
     /// An I/O error with the path it concerns.
     #[error("{path}: {source}")]
-    Io { path: PathBuf, source: std::io::Error },
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
 }
 
 /// The contract between the engine and whatever runs attempts.

@@ -369,6 +369,11 @@ impl<B: BatchSystem> BatchCore<B> {
             .query(std::slice::from_ref(&handle.id))
             .await?;
         match states.get(&handle.id) {
+            // The exit marker is the job script's last act: once it exists the command has
+            // ended, even while the scheduler still lists the job (e.g. COMPLETING).
+            Some(JobState::Active) if read_exit(workdir).is_some() => Ok(Reattached::Finished(
+                completion(attempt_id, workdir, None, false),
+            )),
             Some(JobState::Active) => {
                 self.watch(handle.id.clone(), attempt_id, workdir.to_path_buf());
                 Ok(Reattached::Active)
