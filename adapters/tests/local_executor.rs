@@ -47,6 +47,18 @@ async fn next(rx: &mut mpsc::UnboundedReceiver<Completion>) -> Completion {
 }
 
 /// Whether `pid` is a live (non-zombie) process.
+/// Whether `pid` has ended within a few seconds: a signal is delivered asynchronously, so a
+/// process may still be listed for a moment after `kill` returned.
+async fn ended_soon(pid: i32) -> bool {
+    for _ in 0..100 {
+        if !alive(pid) {
+            return true;
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    false
+}
+
 fn alive(pid: i32) -> bool {
     match std::fs::read_to_string(format!("/proc/{pid}/stat")) {
         Ok(stat) => {
@@ -181,7 +193,10 @@ async fn time_limit_terminates_the_group() {
     ex.launch(req).await.unwrap();
     let bg = pids_in(&dir.path().join("bg.pid")).await;
     assert_eq!(next(&mut rx).await.outcome, Outcome::TimedOut);
-    assert!(!alive(bg[0]), "background sleep survived the time limit");
+    assert!(
+        ended_soon(bg[0]).await,
+        "background sleep survived the time limit"
+    );
     assert!(find_orphans(&ws).is_empty());
 }
 
@@ -204,7 +219,7 @@ async fn time_limit_escalates_to_kill_when_term_is_ignored() {
     ex.launch(req).await.unwrap();
     let bg = pids_in(&dir.path().join("bg.pid")).await;
     assert_eq!(next(&mut rx).await.outcome, Outcome::TimedOut);
-    assert!(!alive(bg[0]));
+    assert!(ended_soon(bg[0]).await);
     assert!(find_orphans(&ws).is_empty());
 }
 
@@ -226,7 +241,7 @@ async fn cancel_ends_the_attempt() {
     let done = next(&mut rx).await;
     assert_eq!(done.attempt_id, 4);
     assert_eq!(done.outcome, Outcome::Cancelled { by: "rondo".into() });
-    assert!(!alive(pid[0]));
+    assert!(ended_soon(pid[0]).await);
     assert!(ex.running_attempts().is_empty());
     assert!(ex.cancel(4, "again").await.is_err());
 }
@@ -246,7 +261,10 @@ async fn exited_program_leftovers_are_ended() {
     let done = next(&mut rx).await;
     assert_eq!(done.outcome, Outcome::Exited { code: 0 });
     let bg = pids_in(&dir.path().join("bg.pid")).await;
-    assert!(!alive(bg[0]), "leftover background process still running");
+    assert!(
+        ended_soon(bg[0]).await,
+        "leftover background process still running"
+    );
     assert!(find_orphans(&ws).is_empty());
 }
 
@@ -291,7 +309,7 @@ async fn shutdown_terminates_children_and_grandchildren() {
     let cancelled = Outcome::Cancelled { by: "rondo".into() };
     assert_eq!(ended, vec![(1, cancelled.clone()), (2, cancelled)]);
     for pid in pids {
-        assert!(!alive(pid), "process {pid} survived shutdown");
+        assert!(ended_soon(pid).await, "process {pid} survived shutdown");
     }
     assert!(find_orphans(&ws).is_empty());
     // No new work after shutdown.
@@ -380,7 +398,10 @@ async fn reattach_ends_an_orphan_of_a_dead_orchestrator() {
         }
     );
     for pid in pids {
-        assert!(!alive(pid), "orphan process {pid} survived reattach");
+        assert!(
+            ended_soon(pid).await,
+            "orphan process {pid} survived reattach"
+        );
     }
     let again = ex.reattach(11, &handle, dir.path()).await.unwrap();
     assert_eq!(
@@ -454,7 +475,7 @@ async fn find_and_kill_orphans_left_between_spawn_and_record() {
 
     assert_eq!(kill_orphans(&ws, &orphans, GRACE).await, 2);
     for pid in pids {
-        assert!(!alive(pid), "orphan {pid} survived");
+        assert!(ended_soon(pid).await, "orphan {pid} survived");
     }
     assert!(find_orphans(&ws).is_empty());
 }
@@ -468,7 +489,10 @@ async fn cancel_recorded_ends_a_recorded_group() {
     let (ex, _rx) = executor(1, &ws);
     ex.cancel_recorded(&handle, "rondo cancel").await.unwrap();
     for pid in pids {
-        assert!(!alive(pid), "process {pid} survived cancel_recorded");
+        assert!(
+            ended_soon(pid).await,
+            "process {pid} survived cancel_recorded"
+        );
     }
     assert!(find_orphans(&ws).is_empty());
 }
