@@ -18,7 +18,8 @@ use crate::executor::{
     Completion, ExecError, Executor, Handle, LaunchRequest, Reattached, Resources, Shutdown,
 };
 use batch::{
-    run_capture, sanitize_job_name, BatchCore, BatchSystem, EndKind, JobState, PollSettings,
+    run_capture, sanitize_job_name, BatchCore, BatchStats, BatchSystem, EndKind, JobState,
+    PollSettings,
 };
 
 /// How the Slurm executor talks to the scheduler.
@@ -221,7 +222,7 @@ pub fn parse_kv_line(line: &str) -> HashMap<String, String> {
                     }) =>
             {
                 if let Some(k0) = key.take() {
-                    out.insert(k0, std::mem::take(&mut val));
+                    out.insert(k0, std::mem::take(&mut val).trim_end().to_string());
                 }
                 key = Some(k.to_string());
                 val = v.to_string();
@@ -235,7 +236,8 @@ pub fn parse_kv_line(line: &str) -> HashMap<String, String> {
         }
     }
     if let Some(k0) = key {
-        out.insert(k0, val);
+        // `scontrol -o` ends its line with a space.
+        out.insert(k0, val.trim_end().to_string());
     }
     out
 }
@@ -418,6 +420,11 @@ impl SlurmExecutor {
         self.core.watched()
     }
 
+    /// Submissions and status queries made so far.
+    pub fn stats(&self) -> BatchStats {
+        self.core.stats()
+    }
+
     /// The job script this executor would submit for `req` (for `rondo` to show or test).
     pub fn render_script(&self, req: &LaunchRequest) -> Result<String, ExecError> {
         let d = self.core.system().directives(req)?;
@@ -577,6 +584,8 @@ mod tests {
         let line = "JobId=25 UserId=root(0) GroupId=root(0) Name=my job JobState=FAILED Partition=debug TimeLimit=UNLIMITED NodeList=vm DerivedExitCode=0:0 ExitCode=3:0";
         let f = parse_kv_line(line);
         assert_eq!(f["Name"], "my job");
+        let g = parse_kv_line("JobId=7 JobName=x Comment=rondo:ws:2 ");
+        assert_eq!(g["Comment"], "rondo:ws:2");
         assert_eq!(
             end_from_fields(&f),
             Some(EndKind::Ran { exit: Some((3, 0)) })

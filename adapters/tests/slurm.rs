@@ -1,22 +1,36 @@
 //! Tests of the Slurm executor against the real one-node Slurm started by
-//! `scripts/dev-slurm start`. They skip loudly when `sbatch` is not on PATH, and fail instead
-//! when `RONDO_REQUIRE_SLURM=1` (as in `scripts/test`).
+//! `scripts/dev-slurm start`. They skip loudly when `sbatch` is not on PATH (or, for the tests
+//! that set the node down or restart slurmctld, when not run as root), and fail instead when
+//! `RONDO_REQUIRE_SLURM=1` (as in `scripts/test`).
+//!
+//! Tests that disturb the whole scheduler (node down, controller restart) take the lock below
+//! exclusively; the others share it, so they never see each other's disturbances.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::Arc;
 use std::time::Duration;
 
 use rondo_adapters::executor::{
-    Completion, Executor, LaunchRequest, Outcome, Reattached, Resources, Shutdown,
+    Completion, Executor, Handle, LaunchRequest, Outcome, Reattached, Resources, Shutdown,
 };
-use rondo_adapters::slurm::{SlurmConfig, SlurmExecutor};
+use rondo_adapters::slurm::{lengthen_time, parse_kv_line, SlurmConfig, SlurmExecutor};
 use tokio::sync::mpsc::{unbounded_channel, UnboundedReceiver};
+use tokio::sync::RwLock;
+
+/// Shared by ordinary tests, held exclusively by those that disturb the scheduler.
+static SCHEDULER: RwLock<()> = RwLock::const_new(());
+
+fn required() -> bool {
+    std::env::var("RONDO_REQUIRE_SLURM").as_deref() == Ok("1")
+}
 
 fn slurm_available() -> bool {
     let found = std::env::var_os("PATH")
         .map(|p| std::env::split_paths(&p).any(|d| d.join("sbatch").is_file()))
         .unwrap_or(false);
     if !found {
-        if std::env::var("RONDO_REQUIRE_SLURM").as_deref() == Ok("1") {
+        if required() {
             panic!("RONDO_REQUIRE_SLURM=1 but sbatch is not on PATH; run scripts/dev-slurm start");
         }
         eprintln!(
@@ -24,6 +38,30 @@ fn slurm_available() -> bool {
         );
     }
     found
+}
+
+/// Slurm is there and we may change node states and restart the controller.
+fn slurm_admin_available() -> bool {
+    if !slurm_available() {
+        return false;
+    }
+    let uid = cmd_out("id", &["-u"]);
+    if uid.trim() != "0" {
+        if required() {
+            panic!("RONDO_REQUIRE_SLURM=1 but this test must run as root (it sets the node down or restarts slurmctld)");
+        }
+        eprintln!("!!! SKIPPING Slurm admin test: not root !!!");
+        return false;
+    }
+    true
+}
+
+fn cmd_out(program: &str, args: &[&str]) -> String {
+    let out = Command::new(program)
+        .args(args)
+        .output()
+        .unwrap_or_else(|e| panic!("cannot run {program}: {e}"));
+    String::from_utf8_lossy(&out.stdout).into_owned()
 }
 
 fn config() -> SlurmConfig {
@@ -46,19 +84,113 @@ fn request(id: i64, dir: &Path, script: &str) -> LaunchRequest {
     }
 }
 
-async fn next(rx: &mut UnboundedReceiver<Completion>) -> Completion {
-    tokio::time::timeout(Duration::from_secs(120), rx.recv())
+async fn next_within(rx: &mut UnboundedReceiver<Completion>, secs: u64) -> Completion {
+    tokio::time::timeout(Duration::from_secs(secs), rx.recv())
         .await
-        .expect("no completion within 120 s")
+        .unwrap_or_else(|_| panic!("no completion within {secs} s"))
         .expect("channel closed")
 }
 
+async fn next(rx: &mut UnboundedReceiver<Completion>) -> Completion {
+    next_within(rx, 120).await
+}
+
+/// Wait (up to `secs`) until `cond` holds.
+async fn wait_for(what: &str, secs: u64, mut cond: impl FnMut() -> bool) {
+    for _ in 0..secs * 10 {
+        if cond() {
+            return;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+    panic!("{what}: not within {secs} s");
+}
+
 fn squeue_name(id: &str) -> String {
-    let out = std::process::Command::new("squeue")
-        .args(["-h", "-t", "all", "-o", "%j", "-j", id])
-        .output()
-        .expect("squeue runs");
-    String::from_utf8_lossy(&out.stdout).trim().to_string()
+    cmd_out("squeue", &["-h", "-t", "all", "-o", "%j", "-j", id])
+        .trim()
+        .to_string()
+}
+
+/// `scontrol -o show job ID` as fields (empty once the job is purged).
+fn job_fields(id: &str) -> std::collections::HashMap<String, String> {
+    cmd_out("scontrol", &["-o", "show", "job", id])
+        .lines()
+        .next()
+        .map(parse_kv_line)
+        .unwrap_or_default()
+}
+
+fn node_name() -> String {
+    cmd_out("sinfo", &["-h", "-N", "-o", "%N"])
+        .lines()
+        .next()
+        .expect("sinfo lists a node")
+        .trim()
+        .to_string()
+}
+
+fn node_state() -> String {
+    cmd_out("sinfo", &["-h", "-N", "-o", "%T"])
+        .lines()
+        .next()
+        .unwrap_or("")
+        .trim()
+        .to_string()
+}
+
+fn scontrol(args: &[&str]) {
+    let st = Command::new("scontrol")
+        .args(args)
+        .status()
+        .expect("scontrol runs");
+    assert!(st.success(), "scontrol {args:?} failed");
+}
+
+fn dev_slurm() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("../scripts/dev-slurm")
+}
+
+fn pid_alive(pid: &str) -> bool {
+    Command::new("kill")
+        .args(["-0", pid])
+        .stderr(std::process::Stdio::null())
+        .status()
+        .map(|s| s.success())
+        .unwrap_or(false)
+}
+
+/// Puts the node back into service when dropped, whether the test passed or not.
+struct ResumeNode(String);
+
+impl Drop for ResumeNode {
+    fn drop(&mut self) {
+        let _ = Command::new("scontrol")
+            .args(["update", &format!("nodename={}", self.0), "state=resume"])
+            .status();
+        for _ in 0..300 {
+            if node_state() == "idle" {
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
+        eprintln!(
+            "!!! node {} did not return to idle after resume !!!",
+            self.0
+        );
+    }
+}
+
+/// Starts slurmctld again (through scripts/dev-slurm) when dropped, if it is not running.
+struct RestartController;
+
+impl Drop for RestartController {
+    fn drop(&mut self) {
+        let st = Command::new("bash").arg(dev_slurm()).arg("start").status();
+        if !matches!(st, Ok(s) if s.success()) {
+            eprintln!("!!! scripts/dev-slurm start failed after the controller test !!!");
+        }
+    }
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -66,6 +198,7 @@ async fn exit_codes_markers_and_job_names() {
     if !slurm_available() {
         return;
     }
+    let _shared = SCHEDULER.read().await;
     let (tx, mut rx) = unbounded_channel();
     let ex = SlurmExecutor::new(config(), "ws-test".into(), tx);
     let ok = tempfile::tempdir().expect("tempdir");
@@ -85,6 +218,7 @@ async fn exit_codes_markers_and_job_names() {
     assert_eq!(h1.executor, "slurm");
     assert!(h1.id.parse::<u64>().is_ok(), "job id {:?}", h1.id);
     assert_eq!(squeue_name(&h1.id), "test_campaign/point_1/it_1/stage");
+    assert_eq!(job_fields(&h2.id)["Comment"], "rondo:ws-test:2");
     let mut got = [next(&mut rx).await, next(&mut rx).await];
     got.sort_by_key(|c| c.attempt_id);
     assert_eq!(got[0].outcome, Outcome::Exited { code: 0 });
@@ -94,7 +228,7 @@ async fn exit_codes_markers_and_job_names() {
     let v = std::fs::read_to_string(ok.path().join("value.txt")).expect("value.txt");
     assert_eq!(v, "a b'c");
     assert!(ok.path().join(format!("slurm-{}.out", h1.id)).exists());
-    let _ = h2;
+    assert_eq!(ex.stats().submissions, 2);
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -102,6 +236,7 @@ async fn external_scancel_and_rondo_cancel_are_told_apart() {
     if !slurm_available() {
         return;
     }
+    let _shared = SCHEDULER.read().await;
     let (tx, mut rx) = unbounded_channel();
     let ex = SlurmExecutor::new(config(), "ws-test".into(), tx);
     let d1 = tempfile::tempdir().expect("tempdir");
@@ -113,7 +248,12 @@ async fn external_scancel_and_rondo_cancel_are_told_apart() {
     ex.launch(request(12, d2.path(), "sleep 60"))
         .await
         .expect("submit");
-    let st = std::process::Command::new("scancel")
+    // Let the externally cancelled one start, so that it is cancelled while running.
+    wait_for("job 11 starts", 60, || {
+        d1.path().join(".rondo-start").exists()
+    })
+    .await;
+    let st = Command::new("scancel")
         .arg(&h1.id)
         .status()
         .expect("scancel");
@@ -124,19 +264,164 @@ async fn external_scancel_and_rondo_cancel_are_told_apart() {
     assert_eq!(
         got[0].outcome,
         Outcome::Cancelled {
-            by: "scheduler or another user".into()
+            by: "external (the scheduler or another user)".into()
         }
     );
+    assert!(got[0].started_at.is_some(), "it had started");
     assert_eq!(got[1].outcome, Outcome::Cancelled { by: "rondo".into() });
+    assert!(ex.watched().is_empty());
 }
 
+/// A 1-minute limit on a job that sleeps 5 minutes: Slurm's TIMEOUT (about 60 to 90 s plus
+/// KillWait) becomes `TimedOut`; the retry asks for a longer limit and is accepted with it.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_time_limit_kill_is_timed_out_and_retried_longer() {
+    if !slurm_available() {
+        return;
+    }
+    let _shared = SCHEDULER.read().await;
+    let (tx, mut rx) = unbounded_channel();
+    let ex = SlurmExecutor::new(config(), "ws-test".into(), tx);
+    let dir = tempfile::tempdir().expect("tempdir");
+    let mut req = request(31, dir.path(), "sleep 300; echo never > out.txt");
+    req.resources.time = Some("1".into());
+    let h = ex.launch(req.clone()).await.expect("submit");
+    assert_eq!(job_fields(&h.id)["TimeLimit"], "00:01:00");
+    let c = next_within(&mut rx, 240).await;
+    assert_eq!((c.attempt_id, &c.outcome), (31, &Outcome::TimedOut));
+    assert!(c.outcome.is_transient(), "a wall-time kill is retried");
+    assert!(c.started_at.is_some());
+    assert!(!dir.path().join("out.txt").exists());
+    assert_eq!(job_fields(&h.id)["JobState"], "TIMEOUT");
+
+    // The retry: twice the time, in the same directory (stale markers are removed).
+    let retry = LaunchRequest {
+        attempt_id: 32,
+        argv: vec!["/bin/sh".into(), "-c".into(), "echo ok > out.txt".into()],
+        resources: lengthen_time(&req.resources, 2.0),
+        ..req
+    };
+    assert_eq!(retry.resources.time.as_deref(), Some("00:02:00"));
+    let h2 = ex.launch(retry).await.expect("resubmit");
+    assert_eq!(job_fields(&h2.id)["TimeLimit"], "00:02:00");
+    let c = next(&mut rx).await;
+    assert_eq!((c.attempt_id, c.outcome), (32, Outcome::Exited { code: 0 }));
+    assert!(dir.path().join("out.txt").exists());
+}
+
+/// The node goes down under a `--no-requeue` job: NODE_FAIL becomes `NodeFailure`. The node
+/// is put back into service afterwards in every case.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn node_down_under_a_no_requeue_job_is_a_node_failure() {
+    if !slurm_admin_available() {
+        return;
+    }
+    let _exclusive = SCHEDULER.write().await;
+    let node = node_name();
+    let (tx, mut rx) = unbounded_channel();
+    let ex = SlurmExecutor::new(config(), "ws-test".into(), tx);
+    let dir = tempfile::tempdir().expect("tempdir");
+    let mut req = request(41, dir.path(), "sleep 120");
+    req.resources.extra = vec!["--no-requeue".into()];
+    let h = ex.launch(req).await.expect("submit");
+    wait_for("job 41 starts", 60, || {
+        dir.path().join(".rondo-start").exists()
+    })
+    .await;
+    let restore = ResumeNode(node.clone());
+    scontrol(&[
+        "update",
+        &format!("nodename={node}"),
+        "state=down",
+        "reason=rondo-test",
+    ]);
+    let c = next(&mut rx).await;
+    assert_eq!((c.attempt_id, &c.outcome), (41, &Outcome::NodeFailure));
+    assert!(c.outcome.is_transient());
+    assert_eq!(job_fields(&h.id)["JobState"], "NODE_FAIL");
+    drop(restore);
+    assert_eq!(node_state(), "idle", "the node is back in service");
+}
+
+/// slurmctld stops while a job runs and another is being submitted: squeue and sbatch fail
+/// (after blocking about 9 s), the executor backs off and retries, and once the controller is
+/// back both attempts complete normally.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn slurmctld_restart_during_a_run_is_survived() {
+    if !slurm_admin_available() {
+        return;
+    }
+    let _exclusive = SCHEDULER.write().await;
+    let (tx, mut rx) = unbounded_channel();
+    let ex = Arc::new(SlurmExecutor::new(config(), "ws-test".into(), tx));
+    let d1 = tempfile::tempdir().expect("tempdir");
+    let d2 = tempfile::tempdir().expect("tempdir");
+    ex.launch(request(51, d1.path(), "sleep 15; echo done > out.txt"))
+        .await
+        .expect("submit");
+    wait_for("job 51 starts", 60, || {
+        d1.path().join(".rondo-start").exists()
+    })
+    .await;
+
+    let restart = RestartController;
+    let pid = std::fs::read_to_string("/run/slurmctld.pid").expect("slurmctld pid file");
+    let pid = pid.trim().to_string();
+    assert!(
+        Command::new("kill")
+            .args(["-TERM", &pid])
+            .status()
+            .expect("kill")
+            .success(),
+        "cannot stop slurmctld (pid {pid})"
+    );
+    wait_for("slurmctld exits", 30, || !pid_alive(&pid)).await;
+
+    // A submission while the controller is down is retried.
+    let ex2 = Arc::clone(&ex);
+    let d2_path = d2.path().to_path_buf();
+    let late = tokio::spawn(async move {
+        ex2.launch(request(52, &d2_path, "echo late > out.txt"))
+            .await
+    });
+    let ex3 = Arc::clone(&ex);
+    wait_for("a failed squeue and a failed sbatch", 90, move || {
+        let s = ex3.stats();
+        s.failed_queries >= 1 && s.failed_submissions >= 1
+    })
+    .await;
+    drop(restart); // scripts/dev-slurm start: slurmctld comes back
+
+    let h2 = late
+        .await
+        .expect("task")
+        .expect("submitted after the restart");
+    assert_eq!(h2.executor, "slurm");
+    let mut got = [next(&mut rx).await, next(&mut rx).await];
+    got.sort_by_key(|c| c.attempt_id);
+    assert_eq!(got[0].outcome, Outcome::Exited { code: 0 });
+    assert_eq!(got[1].outcome, Outcome::Exited { code: 0 });
+    assert!(d1.path().join("out.txt").exists() && d2.path().join("out.txt").exists());
+    let s = ex.stats();
+    eprintln!("scheduler calls across the restart: {s:?}");
+    assert_eq!(s.submissions, 2, "each attempt submitted exactly once");
+}
+
+/// The orchestrator dies (the executor is dropped) while jobs are queued, running and
+/// finished; a new executor adopts them from their recorded handles without submitting
+/// anything: queued/running → Active (completion later), finished with a marker → Finished
+/// (also after the scheduler has purged it), vanished without a marker → Gone.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_second_instance_adopts_finished_and_running_jobs() {
     if !slurm_available() {
         return;
     }
+    let _shared = SCHEDULER.read().await;
     let fin = tempfile::tempdir().expect("tempdir");
     let run = tempfile::tempdir().expect("tempdir");
+    let held = tempfile::tempdir().expect("tempdir");
+    let purged = tempfile::tempdir().expect("tempdir");
+    let lost = tempfile::tempdir().expect("tempdir");
     let (tx, _rx) = unbounded_channel();
     let first = SlurmExecutor::new(config(), "ws-test".into(), tx);
     let hf = first
@@ -144,18 +429,42 @@ async fn a_second_instance_adopts_finished_and_running_jobs() {
         .await
         .expect("submit");
     let hr = first
-        .launch(request(22, run.path(), "sleep 8; echo done > out.txt"))
+        .launch(request(
+            22,
+            run.path(),
+            "while [ ! -e go ]; do sleep 1; done; echo done > out.txt",
+        ))
         .await
         .expect("submit");
-    first.shutdown(Shutdown::Detach).await.expect("detach");
+    let mut pending = request(24, held.path(), "echo released > out.txt");
+    pending.resources.extra = vec!["--hold".into()];
+    let hh = first.launch(pending).await.expect("submit");
+    let hp = first
+        .launch(request(25, purged.path(), "echo kept > out.txt"))
+        .await
+        .expect("submit");
+    let hl = first
+        .launch(request(26, lost.path(), "true"))
+        .await
+        .expect("submit");
+    assert_eq!(first.stats().submissions, 5);
     drop(first); // rondo killed: nobody watches
-                 // Wait until the short job has written its exit marker.
-    for _ in 0..600 {
-        if fin.path().join(".rondo-exit").exists() {
-            break;
-        }
-        tokio::time::sleep(Duration::from_millis(100)).await;
-    }
+
+    // Jobs 21, 25 and 26 finish; 25 and 26 are purged from the queue (MinJobAge), and the
+    // exit marker of 26 is removed, as if its node had lost the file system.
+    wait_for("jobs 21, 25, 26 end", 120, || {
+        [&fin, &purged, &lost]
+            .iter()
+            .all(|d| d.path().join(".rondo-exit").exists())
+    })
+    .await;
+    wait_for("the scheduler purges jobs 25 and 26", 180, || {
+        squeue_name(&hp.id).is_empty() && squeue_name(&hl.id).is_empty()
+    })
+    .await;
+    std::fs::remove_file(lost.path().join(".rondo-exit")).expect("remove marker");
+    assert_eq!(job_fields(&hh.id)["JobState"], "PENDING");
+
     let (tx, mut rx) = unbounded_channel();
     let second = SlurmExecutor::new(config(), "ws-test".into(), tx);
     match second
@@ -166,6 +475,24 @@ async fn a_second_instance_adopts_finished_and_running_jobs() {
         Reattached::Finished(c) => assert_eq!(c.outcome, Outcome::Exited { code: 5 }),
         other => panic!("finished job came back as {other:?}"),
     }
+    match second
+        .reattach(25, &hp, purged.path())
+        .await
+        .expect("reattach")
+    {
+        Reattached::Finished(c) => {
+            assert_eq!(c.outcome, Outcome::Exited { code: 0 });
+            assert!(c.started_at.is_some() && c.ended_at.is_some());
+        }
+        other => panic!("purged finished job came back as {other:?}"),
+    }
+    assert!(matches!(
+        second
+            .reattach(26, &hl, lost.path())
+            .await
+            .expect("reattach"),
+        Reattached::Gone { .. }
+    ));
     assert_eq!(
         second
             .reattach(22, &hr, run.path())
@@ -173,12 +500,30 @@ async fn a_second_instance_adopts_finished_and_running_jobs() {
             .expect("reattach"),
         Reattached::Active
     );
-    let c = next(&mut rx).await;
-    assert_eq!((c.attempt_id, c.outcome), (22, Outcome::Exited { code: 0 }));
-    assert!(run.path().join("out.txt").exists());
+    assert_eq!(
+        second
+            .reattach(24, &hh, held.path())
+            .await
+            .expect("reattach"),
+        Reattached::Active
+    );
+    // The running job may end and the queued one gets its turn only now.
+    std::fs::write(run.path().join("go"), "").expect("write go");
+    scontrol(&["release", &hh.id]);
+    let mut got = [next(&mut rx).await, next(&mut rx).await];
+    got.sort_by_key(|c| c.attempt_id);
+    assert_eq!(
+        (got[0].attempt_id, &got[0].outcome),
+        (22, &Outcome::Exited { code: 0 })
+    );
+    assert_eq!(
+        (got[1].attempt_id, &got[1].outcome),
+        (24, &Outcome::Exited { code: 0 })
+    );
+    assert!(run.path().join("out.txt").exists() && held.path().join("out.txt").exists());
     // A job id the scheduler never had, with no marker: gone.
     let empty = tempfile::tempdir().expect("tempdir");
-    let ghost = rondo_adapters::executor::Handle {
+    let ghost = Handle {
         executor: "slurm".into(),
         id: "99999999".into(),
         host: "x".into(),
@@ -190,4 +535,6 @@ async fn a_second_instance_adopts_finished_and_running_jobs() {
             .expect("reattach"),
         Reattached::Gone { .. }
     ));
+    assert_eq!(second.stats().submissions, 0, "nothing was resubmitted");
+    second.shutdown(Shutdown::Detach).await.expect("detach");
 }

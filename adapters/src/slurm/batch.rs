@@ -8,6 +8,7 @@
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
@@ -253,11 +254,46 @@ struct Watched {
     cancelled_by_us: bool,
 }
 
+/// What a batch executor has asked of the scheduler so far (for tests, diagnostics and the
+/// trace): how many jobs it submitted, how many status queries it made and how many of those
+/// got no answer.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct BatchStats {
+    /// Jobs submitted (accepted by the scheduler).
+    pub submissions: u64,
+    /// Submission calls that failed and were retried.
+    pub failed_submissions: u64,
+    /// Status queries (one per poll for all watched jobs, plus one per reattach).
+    pub queries: u64,
+    /// Status queries the controller did not answer.
+    pub failed_queries: u64,
+}
+
+#[derive(Default)]
+struct Counters {
+    submissions: AtomicU64,
+    failed_submissions: AtomicU64,
+    queries: AtomicU64,
+    failed_queries: AtomicU64,
+}
+
 struct Shared<B: BatchSystem> {
     system: B,
     settings: PollSettings,
     tx: UnboundedSender<Completion>,
     jobs: Mutex<HashMap<String, Watched>>,
+    counters: Counters,
+}
+
+impl<B: BatchSystem> Shared<B> {
+    async fn query(&self, ids: &[String]) -> Result<HashMap<String, JobState>, ExecError> {
+        self.counters.queries.fetch_add(1, Ordering::Relaxed);
+        let r = self.system.query(ids).await;
+        if r.is_err() {
+            self.counters.failed_queries.fetch_add(1, Ordering::Relaxed);
+        }
+        r
+    }
 }
 
 /// A batch executor's state: the watched jobs and the poller task.
@@ -276,6 +312,7 @@ impl<B: BatchSystem> BatchCore<B> {
                 settings,
                 tx,
                 jobs: Mutex::new(HashMap::new()),
+                counters: Counters::default(),
             }),
             poller: Mutex::new(None),
             host: this_host(),
@@ -295,6 +332,17 @@ impl<B: BatchSystem> BatchCore<B> {
     /// Job ids currently watched (for tests and diagnostics).
     pub fn watched(&self) -> Vec<String> {
         lock(&self.shared.jobs).keys().cloned().collect()
+    }
+
+    /// What this executor has asked of the scheduler so far.
+    pub fn stats(&self) -> BatchStats {
+        let c = &self.shared.counters;
+        BatchStats {
+            submissions: c.submissions.load(Ordering::Relaxed),
+            failed_submissions: c.failed_submissions.load(Ordering::Relaxed),
+            queries: c.queries.load(Ordering::Relaxed),
+            failed_queries: c.failed_queries.load(Ordering::Relaxed),
+        }
     }
 
     fn ensure_poller(&self) {
@@ -336,11 +384,21 @@ impl<B: BatchSystem> BatchCore<B> {
         let mut tries = 0;
         let id = loop {
             match self.shared.system.submit(&path, &req).await {
-                Ok(id) => break id,
+                Ok(id) => {
+                    self.shared
+                        .counters
+                        .submissions
+                        .fetch_add(1, Ordering::Relaxed);
+                    break id;
+                }
                 Err(ExecError::Unavailable { what, message })
                     if tries < self.shared.settings.submit_retries =>
                 {
                     tries += 1;
+                    self.shared
+                        .counters
+                        .failed_submissions
+                        .fetch_add(1, Ordering::Relaxed);
                     tracing::warn!(%what, %message, tries, "submission failed; retrying");
                     tokio::time::sleep(delay).await;
                     delay = (delay * 2).min(self.shared.settings.max_backoff);
@@ -363,11 +421,7 @@ impl<B: BatchSystem> BatchCore<B> {
         handle: &Handle,
         workdir: &Path,
     ) -> Result<Reattached, ExecError> {
-        let states = self
-            .shared
-            .system
-            .query(std::slice::from_ref(&handle.id))
-            .await?;
+        let states = self.shared.query(std::slice::from_ref(&handle.id)).await?;
         match states.get(&handle.id) {
             // The exit marker is the job script's last act: once it exists the command has
             // ended, even while the scheduler still lists the job (e.g. COMPLETING).
@@ -503,7 +557,7 @@ pub fn completion(
             by: if cancelled_by_us {
                 "rondo".to_string()
             } else {
-                "scheduler or another user".to_string()
+                "external (the scheduler or another user)".to_string()
             },
         },
         (_, Some((code, _))) => Outcome::Exited { code: *code },
@@ -548,7 +602,7 @@ async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
             delay = interval;
             continue;
         }
-        let states = match shared.system.query(&ids).await {
+        let states = match shared.query(&ids).await {
             Ok(s) => {
                 delay = interval;
                 s
