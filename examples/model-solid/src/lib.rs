@@ -3,7 +3,7 @@
 //!
 //! Modules: `model` (invented parameters and 2×2 algebra), `io` (file formats), `band`,
 //! `project`, `solve` (solver dispatch + Hubbard-I), `update` (μ search, occupations, energy).
-//! The command-line entry points are not written yet.
+//! The command-line entry points live in `src/main.rs` (the `model-solid` binary).
 
 pub mod band;
 pub mod io;

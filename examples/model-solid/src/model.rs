@@ -38,6 +38,10 @@ pub struct Model {
     pub p_core: f64,
 }
 
+/// Name of the demo parameter set, reported by `model-solid --version` so that a change of
+/// the invented constants shows in every attempt's provenance.
+pub const DEMO_NAME: &str = "demo-pam-1";
+
 /// The demo parameter set (invented).
 pub const DEMO: Model = Model {
     v0_volume: 28.0,

@@ -42,6 +42,9 @@ pub struct SolverInput<'a> {
     pub beta: f64,
     /// Seed for stochastic solvers.
     pub seed: u64,
+    /// Monte Carlo sweeps for stochastic solvers (`None`: the solver's default; ignored by
+    /// deterministic solvers).
+    pub sweeps: Option<u64>,
 }
 
 /// What every solver returns.
@@ -146,6 +149,7 @@ mod tests {
                 u,
                 beta,
                 seed: 0,
+                sweeps: None,
             },
         )
         .unwrap()
@@ -228,6 +232,7 @@ mod tests {
             u: -1.0,
             beta: 10.0,
             seed: 0,
+            sweeps: None,
         };
         assert!(run_solver(SolverKind::HubbardI, &inp).is_err());
         assert!("ctqmc-x".parse::<SolverKind>().is_err());

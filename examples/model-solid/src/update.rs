@@ -243,14 +243,10 @@ pub fn update(
     metrics.insert("e_interaction", occ.e_int);
     metrics.insert("e_feedback", feedback);
     metrics.insert("e_core", core);
-    metrics.insert("delta_n", delta_n);
-    metrics.insert(
-        "delta_energy",
-        previous
-            .energy
-            .map(|e| (energy - e).abs())
-            .unwrap_or(f64::MAX.sqrt()),
-    );
+    metrics.insert("delta_n_f", delta_n);
+    if let Some(e) = previous.energy {
+        metrics.insert("delta_energy", (energy - e).abs());
+    }
     Ok(UpdateOutput { density, metrics })
 }
 
@@ -379,6 +375,7 @@ mod tests {
             u: 3.0,
             beta,
             seed: 0,
+            sweeps: None,
         });
         let o = occupations(&mesh, &hi.sigma, beta, 0.0, true);
         let at = atom(-0.5, 3.0, beta);
