@@ -6,6 +6,7 @@
 //! The command-line entry points live in `src/main.rs` (the `model-solid` binary).
 
 pub mod band;
+pub mod ctqmc;
 pub mod io;
 pub mod model;
 pub mod project;

@@ -1,0 +1,589 @@
+//! Hybridization-expansion continuous-time quantum Monte Carlo in the segment picture.
+//!
+//! Owns the Monte Carlo impurity solver of the model engine: one orbital, two spin flavours,
+//! density-density U (P. Werner, A. Comanac, L. de' Medici, M. Troyer, A. J. Millis,
+//! PRL 97, 076405 (2006); E. Gull et al., Rev. Mod. Phys. 83, 349 (2011), section on the
+//! hybridization expansion). Each flavour is a set of segments on [0, β); the weight of a
+//! configuration is
+//!
+//!   w = Π_σ |det F_σ| · exp(−ε Σ_σ L_σ − U O),
+//!
+//! with L_σ the occupied time of flavour σ, O the time both are occupied and
+//! F_σ,ba = F(e_b − s_a), F(τ) = −Δ(τ). The segment picture has no sign problem here.
+//!
+//! Moves (each picked with probability 1/4 for a random flavour), with the proposal
+//! probabilities in the acceptance ratios (k segments before the move):
+//! - insert a segment: start uniform on [0, β), length uniform on (0, l_max) with l_max the
+//!   gap up to the next start (β if empty); R = β l_max/(k+1) · e^{−ε l − U o} · |det ratio|;
+//! - remove one of k segments: R = k/(β l_max) · e^{+ε l + U o} · |det ratio|;
+//! - insert an anti-segment (a hole) inside a segment (or the full line): start uniform,
+//!   length uniform on (0, l_max) with l_max the rest of that segment (β for the full line);
+//!   R = β l_max/(k+1) · e^{+ε l + U o} · |det ratio|;
+//! - remove one of k holes, merging its two neighbours (l_max: from the hole's start to the
+//!   end of the merged segment, β if k = 1): R = k/(β l_max) · e^{−ε l − U o} · |det ratio|;
+//!
+//! where l is the length of the segment or hole and o its overlap with the other flavour.
+//!
+//! Measurements, once per sweep after the warm-up: G(τ) from the pairs of the inverse
+//! hybridization matrix, G(τ) = −(1/β)⟨Σ_ab M_ab δ⁻(τ, e_b − s_a)⟩ (δ⁻ carries a minus sign for
+//! negative differences shifted by β), both binned and directly as Legendre coefficients with
+//! the shared kernel; the occupations, the double occupancy and P(0), P(1), P(2) from the
+//! time each atomic configuration occupies. Error bars: standard error over fixed blocks of
+//! measurements (independent when each block is much longer than the autocorrelation time).
+
+mod delta_tau;
+mod dyson;
+mod hybmatrix;
+mod segments;
+
+pub use delta_tau::HybFunction;
+
+use crate::solve::SolverInput;
+use anyhow::{bail, Result};
+use hybmatrix::HybMatrix;
+use num_complex::Complex64;
+use rondo_numerics::legendre::LegendreAccumulator;
+use rondo_numerics::matsubara::high_frequency_constant;
+use rondo_numerics::rng::SplitMix64;
+use segments::{Flavour, Place};
+use std::collections::BTreeMap;
+
+/// Run-time parameters of the sampler.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CtqmcParams {
+    /// Measured sweeps (after the warm-up).
+    pub sweeps: u64,
+    /// Sweeps discarded before measuring.
+    pub warmup_sweeps: u64,
+    /// Proposed moves per sweep (one measurement per sweep).
+    pub moves_per_sweep: u32,
+    /// Number of Legendre coefficients measured.
+    pub n_legendre: usize,
+    /// Bins of the histogram G(τ).
+    pub n_tau_bins: usize,
+    /// Intervals of the Δ(τ) interpolation grid.
+    pub n_tau_grid: usize,
+    /// Measurement blocks for the error bars.
+    pub n_blocks: usize,
+    /// A full recomputation of the inverse matrices every this many sweeps (0: never).
+    pub check_every: u64,
+}
+
+impl Default for CtqmcParams {
+    fn default() -> Self {
+        Self {
+            sweeps: 20_000,
+            warmup_sweeps: 1_000,
+            moves_per_sweep: 50,
+            n_legendre: 40,
+            n_tau_bins: 200,
+            n_tau_grid: 5_000,
+            n_blocks: 32,
+            check_every: 500,
+        }
+    }
+}
+
+impl CtqmcParams {
+    fn validate(&self) -> Result<()> {
+        if self.n_blocks < 2 {
+            bail!(
+                "CT-QMC needs at least 2 measurement blocks, got {}",
+                self.n_blocks
+            );
+        }
+        if self.sweeps < self.n_blocks as u64 {
+            bail!(
+                "CT-QMC sweeps ({}) must be at least the number of measurement blocks ({})",
+                self.sweeps,
+                self.n_blocks
+            );
+        }
+        if self.moves_per_sweep == 0 || self.n_legendre == 0 || self.n_tau_bins == 0 {
+            bail!("CT-QMC moves per sweep, Legendre coefficients and τ bins must be positive");
+        }
+        Ok(())
+    }
+}
+
+/// A number with its standard error.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Estimate {
+    /// Mean.
+    pub value: f64,
+    /// Standard error of the mean.
+    pub error: f64,
+}
+
+/// Everything the solver measured and derived.
+#[derive(Debug, Clone)]
+pub struct CtqmcResult {
+    /// Legendre coefficients G_l (spin averaged) and their errors.
+    pub gl: Vec<f64>,
+    /// Standard errors of `gl`.
+    pub gl_err: Vec<f64>,
+    /// Bin centres of the histogram G(τ).
+    pub tau: Vec<f64>,
+    /// Binned G(τ) (spin averaged).
+    pub g_tau: Vec<f64>,
+    /// Standard errors of `g_tau`.
+    pub g_tau_err: Vec<f64>,
+    /// G(iω_n) on the grid of Δ.
+    pub g_iw: Vec<Complex64>,
+    /// Standard errors of Re and Im G(iω_n) (zero where the tail is used).
+    pub g_iw_err: Vec<Complex64>,
+    /// Σ(iω_n).
+    pub sigma: Vec<Complex64>,
+    /// Occupation per flavour (up, down).
+    pub n_sigma: [Estimate; 2],
+    /// ⟨n↑n↓⟩.
+    pub docc: Estimate,
+    /// P(0), P(1) (both spin states), P(2).
+    pub p: [Estimate; 3],
+    /// Metrics: name → (value, standard error if statistical).
+    pub metrics: BTreeMap<&'static str, (f64, Option<f64>)>,
+    /// Wall-clock seconds spent in the Monte Carlo loop (not part of the metrics: it is
+    /// not reproducible).
+    pub elapsed_seconds: f64,
+    /// Number of proposed moves.
+    pub moves: u64,
+}
+
+/// The measurement kernel for G: a sample w·δ(τ − τ_s) is added both to a histogram on
+/// [0, β) and to the Legendre coefficients (shared kernel of the numerics crate).
+#[derive(Debug, Clone)]
+pub struct GreenEstimator {
+    beta: f64,
+    legendre: LegendreAccumulator,
+    bins: Vec<f64>,
+    bin_scale: f64,
+}
+
+impl GreenEstimator {
+    /// An estimator with `n_legendre` coefficients and `n_bins` histogram bins.
+    pub fn new(beta: f64, n_legendre: usize, n_bins: usize) -> Self {
+        Self {
+            beta,
+            legendre: LegendreAccumulator::new(beta, n_legendre),
+            bins: vec![0.0; n_bins],
+            bin_scale: n_bins as f64 / beta,
+        }
+    }
+
+    /// Add the sample w·δ(τ − tau), tau in [0, β).
+    #[inline]
+    pub fn add(&mut self, tau: f64, w: f64) {
+        self.legendre.add(tau, w);
+        let i = ((tau * self.bin_scale) as usize).min(self.bins.len() - 1);
+        self.bins[i] += w * self.bin_scale;
+    }
+
+    /// Accumulated G_l.
+    pub fn legendre(&self) -> &[f64] {
+        self.legendre.sums()
+    }
+
+    /// Accumulated histogram (bin averages of G(τ)).
+    pub fn binned(&self) -> &[f64] {
+        &self.bins
+    }
+
+    /// Bin centres.
+    pub fn bin_centres(&self) -> Vec<f64> {
+        let h = self.beta / self.bins.len() as f64;
+        (0..self.bins.len()).map(|i| (i as f64 + 0.5) * h).collect()
+    }
+
+    fn clear(&mut self) {
+        self.legendre.clear();
+        self.bins.fill(0.0);
+    }
+}
+
+/// Proposal and acceptance counts of one move type.
+#[derive(Debug, Clone, Copy, Default)]
+struct MoveStats {
+    proposed: u64,
+    accepted: u64,
+}
+
+impl MoveStats {
+    fn rate(&self) -> f64 {
+        if self.proposed == 0 {
+            0.0
+        } else {
+            self.accepted as f64 / self.proposed as f64
+        }
+    }
+}
+
+/// The Markov chain.
+struct Sampler<'a> {
+    beta: f64,
+    eps: f64,
+    u: f64,
+    f: &'a HybFunction,
+    fl: [Flavour; 2],
+    mats: [HybMatrix; 2],
+    rng: SplitMix64,
+    stats: [MoveStats; 4],
+}
+
+impl<'a> Sampler<'a> {
+    fn new(beta: f64, eps: f64, u: f64, f: &'a HybFunction, seed: u64) -> Self {
+        Self {
+            beta,
+            eps,
+            u,
+            f,
+            fl: [Flavour::empty(beta), Flavour::empty(beta)],
+            mats: [HybMatrix::new(), HybMatrix::new()],
+            rng: SplitMix64::new(seed),
+            stats: [MoveStats::default(); 4],
+        }
+    }
+
+    fn accept(&mut self, ratio: f64) -> bool {
+        let u = self.rng.uniform();
+        u < ratio
+    }
+
+    fn step(&mut self) {
+        let s = self.rng.below(2) as usize;
+        let kind = self.rng.below(4) as usize;
+        self.stats[kind].proposed += 1;
+        let ok = match kind {
+            0 => self.insert_segment(s),
+            1 => self.remove_segment(s),
+            2 => self.insert_hole(s),
+            _ => self.remove_hole(s),
+        };
+        if ok {
+            self.stats[kind].accepted += 1;
+        }
+    }
+
+    fn insert_segment(&mut self, s: usize) -> bool {
+        let beta = self.beta;
+        let start = beta * self.rng.uniform();
+        let l_max = match self.fl[s].locate(start) {
+            Place::Full | Place::Inside(_) => return false,
+            Place::Empty => beta,
+            Place::Outside { next } => segments::wrap(self.fl[s].seg(next).0 - start, beta),
+        };
+        let l = l_max * self.rng.uniform();
+        let end = segments::wrap(start + l, beta);
+        let o = self.fl[1 - s].overlap_with(start, l);
+        let k = self.fl[s].order() as f64;
+        let det = self.mats[s].ratio_insert(self.f, end, start);
+        let r = beta * l_max / (k + 1.0) * (-self.eps * l - self.u * o).exp() * det.abs();
+        if !self.accept(r) {
+            return false;
+        }
+        self.mats[s].accept_insert(end, start);
+        self.fl[s].insert(start, end);
+        true
+    }
+
+    fn remove_segment(&mut self, s: usize) -> bool {
+        let k = self.fl[s].order();
+        if k == 0 {
+            return false;
+        }
+        let beta = self.beta;
+        let i = self.rng.below(k as u64) as usize;
+        let (start, end) = self.fl[s].seg(i);
+        let l = self.fl[s].seg_len(i);
+        let l_max = if k == 1 {
+            beta
+        } else {
+            segments::wrap(self.fl[s].seg((i + 1) % k).0 - start, beta)
+        };
+        let o = self.fl[1 - s].overlap_with(start, l);
+        let det = self.mats[s].ratio_remove(end, start);
+        let r = k as f64 / (beta * l_max) * (self.eps * l + self.u * o).exp() * det.abs();
+        if !self.accept(r) {
+            return false;
+        }
+        self.mats[s].accept_remove(end, start);
+        self.fl[s].remove(i);
+        true
+    }
+
+    fn insert_hole(&mut self, s: usize) -> bool {
+        let beta = self.beta;
+        let end = beta * self.rng.uniform();
+        let (host, l_max) = match self.fl[s].locate(end) {
+            Place::Empty | Place::Outside { .. } => return false,
+            Place::Full => (None, beta),
+            Place::Inside(i) => (Some(i), segments::wrap(self.fl[s].seg(i).1 - end, beta)),
+        };
+        let l = l_max * self.rng.uniform();
+        let start = segments::wrap(end + l, beta);
+        let o = self.fl[1 - s].overlap_with(end, l);
+        let k = self.fl[s].order() as f64;
+        let det = self.mats[s].ratio_insert(self.f, end, start);
+        let r = beta * l_max / (k + 1.0) * (self.eps * l + self.u * o).exp() * det.abs();
+        if !self.accept(r) {
+            return false;
+        }
+        self.mats[s].accept_insert(end, start);
+        self.fl[s].cut(host, end, start);
+        true
+    }
+
+    fn remove_hole(&mut self, s: usize) -> bool {
+        let k = self.fl[s].order();
+        if k == 0 {
+            return false;
+        }
+        let beta = self.beta;
+        let i = self.rng.below(k as u64) as usize;
+        let j = (i + 1) % k;
+        let end = self.fl[s].seg(i).1;
+        let start = self.fl[s].seg(j).0;
+        let l = segments::wrap(start - end, beta);
+        let l_max = if k == 1 {
+            beta
+        } else {
+            segments::wrap(self.fl[s].seg(j).1 - end, beta)
+        };
+        let o = self.fl[1 - s].overlap_with(end, l);
+        let det = self.mats[s].ratio_remove(end, start);
+        let r = k as f64 / (beta * l_max) * (-self.eps * l - self.u * o).exp() * det.abs();
+        if !self.accept(r) {
+            return false;
+        }
+        self.mats[s].accept_remove(end, start);
+        self.fl[s].merge(i);
+        true
+    }
+
+    /// Occupied times (L↑, L↓) and the overlap O.
+    fn times(&self) -> (f64, f64, f64) {
+        let lu = self.fl[0].occupied_length();
+        let ld = self.fl[1].occupied_length();
+        let o = if self.fl[0].is_full() {
+            ld
+        } else {
+            self.fl[0]
+                .segments()
+                .iter()
+                .enumerate()
+                .map(|(i, seg)| self.fl[1].overlap_with(seg.0, self.fl[0].seg_len(i)))
+                .sum()
+        };
+        (lu, ld, o)
+    }
+
+    /// Add the G(τ) samples of the current configuration (spin averaged).
+    fn measure_green(&self, est: &mut GreenEstimator) {
+        let scale = 0.5 / self.beta;
+        for m in &self.mats {
+            let (st, en) = (m.starts(), m.ends());
+            for (a, &s) in st.iter().enumerate() {
+                for (b, &e) in en.iter().enumerate() {
+                    let d = e - s;
+                    let mab = m.get(a, b);
+                    if d < 0.0 {
+                        est.add(d + self.beta, mab * scale);
+                    } else {
+                        est.add(d, -mab * scale);
+                    }
+                }
+            }
+        }
+    }
+
+    fn recompute(&mut self) -> f64 {
+        let f = self.f;
+        self.mats
+            .iter_mut()
+            .map(|m| m.recompute(f))
+            .fold(0.0, f64::max)
+    }
+}
+
+/// Index of the scalar observables in a block record.
+const N_SCALARS: usize = 8;
+const SC_NUP: usize = 0;
+const SC_NDN: usize = 1;
+const SC_DOCC: usize = 2;
+const SC_P0: usize = 3;
+const SC_P1: usize = 4;
+const SC_P2: usize = 5;
+const SC_KUP: usize = 6;
+const SC_KDN: usize = 7;
+
+fn mean_and_error(blocks: &[f64]) -> Estimate {
+    let n = blocks.len() as f64;
+    let mean = blocks.iter().sum::<f64>() / n;
+    let var = blocks.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0);
+    Estimate {
+        value: mean,
+        error: (var / n).sqrt(),
+    }
+}
+
+fn column(blocks: &[Vec<f64>], i: usize) -> Vec<f64> {
+    blocks.iter().map(|b| b[i]).collect()
+}
+
+/// Solve the impurity problem by CT-QMC.
+pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResult> {
+    params.validate()?;
+    let beta = input.beta;
+    if !(beta.is_finite() && beta > 0.0) {
+        bail!("inverse temperature must be positive, got {beta}");
+    }
+    if !input.level.is_finite() || !input.u.is_finite() {
+        bail!(
+            "level and U must be finite (got {} and {})",
+            input.level,
+            input.u
+        );
+    }
+    // The static part of Δ shifts the level; the rest goes to Δ(τ).
+    let c0 = if input.delta.len() >= 4 {
+        high_frequency_constant(beta, input.delta)
+    } else {
+        0.0
+    };
+    let f = HybFunction::from_matsubara(beta, input.delta, c0, params.n_tau_grid)?;
+    let eps = input.level + c0;
+    let mut smp = Sampler::new(beta, eps, input.u, &f, input.seed);
+    let mut est = GreenEstimator::new(beta, params.n_legendre, params.n_tau_bins);
+    let per_block = params.sweeps / params.n_blocks as u64;
+    let mut max_dev: f64 = 0.0;
+    let mut n_checks = 0u64;
+    let mut sweep_no = 0u64;
+    let t0 = std::time::Instant::now();
+    let mut check = |smp: &mut Sampler<'_>, sweep_no: u64| {
+        if params.check_every > 0 && sweep_no % params.check_every == 0 {
+            max_dev = max_dev.max(smp.recompute());
+            n_checks += 1;
+        }
+    };
+    for _ in 0..params.warmup_sweeps {
+        for _ in 0..params.moves_per_sweep {
+            smp.step();
+        }
+        sweep_no += 1;
+        check(&mut smp, sweep_no);
+    }
+    let mut gl_blocks = Vec::with_capacity(params.n_blocks);
+    let mut gtau_blocks = Vec::with_capacity(params.n_blocks);
+    let mut sc_blocks = Vec::with_capacity(params.n_blocks);
+    for _ in 0..params.n_blocks {
+        est.clear();
+        let mut sc = [0.0; N_SCALARS];
+        for _ in 0..per_block {
+            for _ in 0..params.moves_per_sweep {
+                smp.step();
+            }
+            sweep_no += 1;
+            check(&mut smp, sweep_no);
+            smp.measure_green(&mut est);
+            let (lu, ld, o) = smp.times();
+            sc[SC_NUP] += lu / beta;
+            sc[SC_NDN] += ld / beta;
+            sc[SC_DOCC] += o / beta;
+            sc[SC_P2] += o / beta;
+            sc[SC_P1] += (lu + ld - 2.0 * o) / beta;
+            sc[SC_P0] += 1.0 - (lu + ld - o) / beta;
+            sc[SC_KUP] += smp.fl[0].order() as f64;
+            sc[SC_KDN] += smp.fl[1].order() as f64;
+        }
+        let inv = 1.0 / per_block as f64;
+        gl_blocks.push(est.legendre().iter().map(|v| v * inv).collect::<Vec<_>>());
+        gtau_blocks.push(est.binned().iter().map(|v| v * inv).collect::<Vec<_>>());
+        sc_blocks.push(sc.iter().map(|v| v * inv).collect::<Vec<_>>());
+    }
+    let elapsed_seconds = t0.elapsed().as_secs_f64();
+    let moves = sweep_no * u64::from(params.moves_per_sweep);
+
+    let (gl, gl_err): (Vec<f64>, Vec<f64>) = (0..params.n_legendre)
+        .map(|l| {
+            let e = mean_and_error(&column(&gl_blocks, l));
+            (e.value, e.error)
+        })
+        .unzip();
+    let (g_tau, g_tau_err): (Vec<f64>, Vec<f64>) = (0..params.n_tau_bins)
+        .map(|i| {
+            let e = mean_and_error(&column(&gtau_blocks, i));
+            (e.value, e.error)
+        })
+        .unzip();
+    let sc = |i: usize| mean_and_error(&column(&sc_blocks, i));
+    let n_sigma = [sc(SC_NUP), sc(SC_NDN)];
+    let docc = sc(SC_DOCC);
+    let p = [sc(SC_P0), sc(SC_P1), sc(SC_P2)];
+    let n_tot = mean_and_error(
+        &sc_blocks
+            .iter()
+            .map(|b| b[SC_NUP] + b[SC_NDN])
+            .collect::<Vec<_>>(),
+    );
+    let n_avg = 0.5 * n_tot.value;
+
+    let dy = dyson::dyson(&dyson::DysonInput {
+        beta,
+        gl: &gl,
+        gl_err: &gl_err,
+        gl_blocks: &gl_blocks,
+        delta: input.delta,
+        level: input.level,
+        u: input.u,
+        n_other: n_avg,
+    });
+
+    let mut metrics: BTreeMap<&'static str, (f64, Option<f64>)> = BTreeMap::new();
+    let with = |e: Estimate| (e.value, Some(e.error));
+    metrics.insert("n_f", with(n_tot));
+    metrics.insert("n_up", with(n_sigma[0]));
+    metrics.insert("n_dn", with(n_sigma[1]));
+    metrics.insert("docc", with(docc));
+    metrics.insert("p0", with(p[0]));
+    metrics.insert("p1", with(p[1]));
+    metrics.insert("p2", with(p[2]));
+    metrics.insert("order_up", with(sc(SC_KUP)));
+    metrics.insert("order_dn", with(sc(SC_KDN)));
+    metrics.insert("level", (eps, None));
+    metrics.insert(
+        "sigma_inf",
+        (input.u * n_avg, Some(input.u * 0.5 * n_tot.error)),
+    );
+    metrics.insert("legendre_kept", (dy.kept as f64, None));
+    metrics.insert(
+        "legendre_dropped",
+        ((params.n_legendre - dy.kept) as f64, None),
+    );
+    metrics.insert("tail_from_n", (dy.crossover as f64, None));
+    metrics.insert("det_check_max_dev", (max_dev, None));
+    metrics.insert("det_checks", (n_checks as f64, None));
+    metrics.insert(
+        "sweeps",
+        ((per_block * params.n_blocks as u64) as f64, None),
+    );
+    metrics.insert("accept_segment_insert", (smp.stats[0].rate(), None));
+    metrics.insert("accept_segment_remove", (smp.stats[1].rate(), None));
+    metrics.insert("accept_hole_insert", (smp.stats[2].rate(), None));
+    metrics.insert("accept_hole_remove", (smp.stats[3].rate(), None));
+
+    Ok(CtqmcResult {
+        gl,
+        gl_err,
+        tau: est.bin_centres(),
+        g_tau,
+        g_tau_err,
+        g_iw: dy.g,
+        g_iw_err: dy.g_err,
+        sigma: dy.sigma,
+        n_sigma,
+        docc,
+        p,
+        metrics,
+        elapsed_seconds,
+        moves,
+    })
+}

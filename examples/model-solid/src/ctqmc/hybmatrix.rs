@@ -1,0 +1,200 @@
+//! The inverse hybridization matrix of one flavour with fast block updates.
+//!
+//! For the k creators c†(s_a) and annihilators c(e_b) of a flavour the weight carries
+//! det F with F_{ba} = F(e_b − s_a), F(τ) = −Δ(τ) continued antiperiodically
+//! (F(τ − β) = −F(τ)). We keep M = F⁻¹ (rows: starts, columns: ends) and update it in
+//! O(k²) when one (end, start) pair is added or removed (inverse by partitioning, as in
+//! Gull et al., Rev. Mod. Phys. 83, 349 (2011), appendix on fast updates). A full O(k³)
+//! recomputation serves as the accuracy check.
+
+use super::delta_tau::HybFunction;
+use nalgebra::DMatrix;
+
+/// M = F⁻¹ with the operator times it is built on.
+#[derive(Debug, Clone)]
+pub(crate) struct HybMatrix {
+    n: usize,
+    stride: usize,
+    /// Row-major n×n block of a stride×stride buffer; row a ↔ starts[a], column b ↔ ends[b].
+    m: Vec<f64>,
+    starts: Vec<f64>,
+    ends: Vec<f64>,
+    /// Scratch: M·Q for the last proposed insertion.
+    mq: Vec<f64>,
+    /// Scratch: R·M.
+    rm: Vec<f64>,
+    /// Scratch: the R row of the last proposed insertion.
+    r: Vec<f64>,
+    /// S = F(e − s) − R M Q of the last proposed insertion.
+    s: f64,
+}
+
+impl HybMatrix {
+    pub(crate) fn new() -> Self {
+        Self {
+            n: 0,
+            stride: 0,
+            m: Vec::new(),
+            starts: Vec::new(),
+            ends: Vec::new(),
+            mq: Vec::new(),
+            rm: Vec::new(),
+            r: Vec::new(),
+            s: 0.0,
+        }
+    }
+
+    pub(crate) fn starts(&self) -> &[f64] {
+        &self.starts
+    }
+
+    pub(crate) fn ends(&self) -> &[f64] {
+        &self.ends
+    }
+
+    /// M_{ab} (row a = start index, column b = end index).
+    #[inline]
+    pub(crate) fn get(&self, a: usize, b: usize) -> f64 {
+        self.m[a * self.stride + b]
+    }
+
+    fn grow(&mut self, need: usize) {
+        if need <= self.stride {
+            return;
+        }
+        let new_stride = (need * 2).max(8);
+        let mut m = vec![0.0; new_stride * new_stride];
+        for a in 0..self.n {
+            m[a * new_stride..a * new_stride + self.n]
+                .copy_from_slice(&self.m[a * self.stride..a * self.stride + self.n]);
+        }
+        self.m = m;
+        self.stride = new_stride;
+    }
+
+    /// Determinant ratio det F'/det F for adding the annihilator at `end` and the creator
+    /// at `start`; keeps the intermediate vectors for [`HybMatrix::accept_insert`].
+    pub(crate) fn ratio_insert(&mut self, f: &HybFunction, end: f64, start: f64) -> f64 {
+        let n = self.n;
+        self.mq.clear();
+        self.r.clear();
+        // Q_b = F(e_b − start) (new column), R_a = F(end − s_a) (new row).
+        let q: Vec<f64> = self.ends.iter().map(|&e| f.eval(e - start)).collect();
+        self.r.extend(self.starts.iter().map(|&s| f.eval(end - s)));
+        let mut rmq = 0.0;
+        for a in 0..n {
+            let row = &self.m[a * self.stride..a * self.stride + n];
+            let v: f64 = row.iter().zip(&q).map(|(x, y)| x * y).sum();
+            self.mq.push(v);
+            rmq += self.r[a] * v;
+        }
+        self.s = f.eval(end - start) - rmq;
+        self.s
+    }
+
+    /// Apply the insertion last proposed with [`HybMatrix::ratio_insert`].
+    pub(crate) fn accept_insert(&mut self, end: f64, start: f64) {
+        let n = self.n;
+        self.rm.clear();
+        self.rm.resize(n, 0.0);
+        for a in 0..n {
+            let ra = self.r[a];
+            let row = &self.m[a * self.stride..a * self.stride + n];
+            for (acc, x) in self.rm.iter_mut().zip(row) {
+                *acc += ra * x;
+            }
+        }
+        self.grow(n + 1);
+        let inv_s = 1.0 / self.s;
+        let st = self.stride;
+        for a in 0..n {
+            let va = self.mq[a] * inv_s;
+            let row = &mut self.m[a * st..a * st + n];
+            for (x, w) in row.iter_mut().zip(&self.rm) {
+                *x += va * w;
+            }
+            self.m[a * st + n] = -va;
+        }
+        for b in 0..n {
+            self.m[n * st + b] = -self.rm[b] * inv_s;
+        }
+        self.m[n * st + n] = inv_s;
+        self.starts.push(start);
+        self.ends.push(end);
+        self.n = n + 1;
+    }
+
+    fn index_of(v: &[f64], t: f64) -> usize {
+        v.iter()
+            .position(|&x| x == t)
+            .expect("operator time present in the hybridization matrix")
+    }
+
+    /// Determinant ratio det F'/det F for removing the annihilator at `end` and the creator
+    /// at `start` (up to the sign of the permutation, which the segment picture fixes).
+    pub(crate) fn ratio_remove(&self, end: f64, start: f64) -> f64 {
+        let a = Self::index_of(&self.starts, start);
+        let b = Self::index_of(&self.ends, end);
+        self.get(a, b)
+    }
+
+    /// Remove the annihilator at `end` and the creator at `start`.
+    pub(crate) fn accept_remove(&mut self, end: f64, start: f64) {
+        let a = Self::index_of(&self.starts, start);
+        let b = Self::index_of(&self.ends, end);
+        let n = self.n;
+        let last = n - 1;
+        let st = self.stride;
+        // Move row a and column b to the end.
+        if a != last {
+            for c in 0..n {
+                self.m.swap(a * st + c, last * st + c);
+            }
+            self.starts.swap(a, last);
+        }
+        if b != last {
+            for r in 0..n {
+                self.m.swap(r * st + b, r * st + last);
+            }
+            self.ends.swap(b, last);
+        }
+        let inv = 1.0 / self.m[last * st + last];
+        for r in 0..last {
+            let f = self.m[r * st + last] * inv;
+            if f == 0.0 {
+                continue;
+            }
+            for c in 0..last {
+                self.m[r * st + c] -= f * self.m[last * st + c];
+            }
+        }
+        self.starts.pop();
+        self.ends.pop();
+        self.n = last;
+    }
+
+    /// Rebuild M = F⁻¹ by LU decomposition; returns the largest deviation of the fast-updated
+    /// M from it, relative to the largest element of M (0 for an empty matrix).
+    pub(crate) fn recompute(&mut self, f: &HybFunction) -> f64 {
+        let n = self.n;
+        if n == 0 {
+            return 0.0;
+        }
+        let fm = DMatrix::from_fn(n, n, |b, a| f.eval(self.ends[b] - self.starts[a]));
+        let Some(inv) = fm.try_inverse() else {
+            return f64::INFINITY;
+        };
+        let mut dev: f64 = 0.0;
+        let mut scale: f64 = 0.0;
+        let st = self.stride;
+        for a in 0..n {
+            for b in 0..n {
+                let exact = inv[(a, b)];
+                dev = dev.max((self.m[a * st + b] - exact).abs());
+                scale = scale.max(exact.abs());
+                self.m[a * st + b] = exact;
+            }
+        }
+        dev / scale.max(f64::MIN_POSITIVE)
+    }
+}
