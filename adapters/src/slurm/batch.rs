@@ -223,6 +223,43 @@ pub fn this_host() -> String {
         .unwrap_or_else(|| "localhost".to_string())
 }
 
+/// What a client command printed and how it exited.
+#[derive(Debug, Clone)]
+pub struct CommandOutput {
+    /// Whether it exited with status 0.
+    pub success: bool,
+    /// Its exit status as text (for messages).
+    pub status: String,
+    /// Standard output.
+    pub stdout: String,
+    /// Standard error, trimmed.
+    pub stderr: String,
+}
+
+/// Run a command and keep both outputs whatever its exit status (some clients, e.g. `qstat`
+/// with an unknown job among several, print the known ones and exit non-zero). `Err` when it
+/// could not be run or did not finish within `timeout`.
+pub async fn run_full(
+    program: &str,
+    args: &[String],
+    timeout: Duration,
+) -> Result<CommandOutput, String> {
+    let mut cmd = tokio::process::Command::new(program);
+    cmd.args(args)
+        .stdin(std::process::Stdio::null())
+        .kill_on_drop(true);
+    match tokio::time::timeout(timeout, cmd.output()).await {
+        Err(_) => Err(format!("{program} did not answer within {timeout:?}")),
+        Ok(Err(e)) => Err(format!("cannot run {program}: {e}")),
+        Ok(Ok(o)) => Ok(CommandOutput {
+            success: o.status.success(),
+            status: o.status.to_string(),
+            stdout: String::from_utf8_lossy(&o.stdout).into_owned(),
+            stderr: String::from_utf8_lossy(&o.stderr).trim().to_string(),
+        }),
+    }
+}
+
 /// Run a command, returning stdout; a non-zero exit becomes an `Err` with stderr.
 pub async fn run_capture(
     program: &str,

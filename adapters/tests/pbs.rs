@@ -1,0 +1,176 @@
+//! The PBS executor's parsing and script generation, against command output written from the
+//! PBS documentation (`tests/fixtures/pbs/`, see its README: not captured from a real server),
+//! and the generated job script run as a real shell process.
+
+use std::path::{Path, PathBuf};
+
+use rondo_adapters::executor::{LaunchRequest, Outcome, Resources};
+use rondo_adapters::pbs::{
+    only_unknown_jobs, parse_qstat_full, parse_qsub_output, pbs_job_state, states_for, PbsConfig,
+    PbsExecutor,
+};
+use rondo_adapters::slurm::batch::{completion, read_exit, EndKind, JobState};
+
+fn fixture(name: &str) -> String {
+    let p: PathBuf = [env!("CARGO_MANIFEST_DIR"), "tests", "fixtures", "pbs", name]
+        .iter()
+        .collect();
+    std::fs::read_to_string(&p).unwrap_or_else(|e| panic!("{}: {e}", p.display()))
+}
+
+fn ids(v: &[&str]) -> Vec<String> {
+    v.iter().map(|s| s.to_string()).collect()
+}
+
+#[test]
+fn qsub_prints_the_job_id() {
+    assert_eq!(
+        parse_qsub_output(&fixture("qsub.out")).expect("id"),
+        "4242.pbs01"
+    );
+}
+
+#[test]
+fn full_status_blocks_are_parsed_with_continuation_lines() {
+    let jobs = parse_qstat_full(&fixture("qstat-f-active.txt"));
+    assert_eq!(jobs.len(), 3);
+    assert_eq!(jobs[0].id, "4242.pbs01");
+    assert_eq!(jobs[0].attrs["Job_Name"], "demo.V_1.00.it_1.solve");
+    assert_eq!(
+        jobs[0].attrs["Resource_List.select"],
+        "1:ncpus=4:mpiprocs=4"
+    );
+    let vars = &jobs[0].attrs["Variable_List"];
+    assert!(vars.starts_with("PBS_O_HOME=/home/alice,PBS_O_LANG=C.UTF-8,PBS_O_LOGNAME=alice,"));
+    assert!(vars.ends_with("PBS_O_HOST=login1.example.org"));
+    assert_eq!(jobs[1].attrs["exec_host"], "node07/0*4");
+    // Queued, running and held jobs are not over.
+    for j in &jobs {
+        assert_eq!(pbs_job_state(j), JobState::Active, "{}", j.id);
+    }
+}
+
+#[test]
+fn finished_jobs_map_to_distinct_end_kinds() {
+    let text = fixture("qstat-fx-finished.txt");
+    let want = [
+        ("5001.pbs01", EndKind::Ran { exit: Some((0, 0)) }),
+        ("5002.pbs01", EndKind::Ran { exit: Some((3, 0)) }),
+        ("5003.pbs01", EndKind::TimedOut),
+        ("5004.pbs01", EndKind::Ran { exit: Some((0, 9)) }),
+        ("5005.pbs01", EndKind::Cancelled),
+        ("5006.pbs01", EndKind::NodeFailure),
+    ];
+    let requested: Vec<String> = want.iter().map(|(id, _)| id.to_string()).collect();
+    let states = states_for(&requested, &text);
+    for (id, end) in want {
+        assert_eq!(states[id], JobState::Ended(end), "{id}");
+    }
+    let all = parse_qstat_full(&text);
+    match pbs_job_state(&all[6]) {
+        JobState::Ended(EndKind::Other(m)) => assert!(m.contains("-27"), "{m}"),
+        other => panic!("memory-limit kill read as {other:?}"),
+    }
+}
+
+#[test]
+fn torque_completed_state_and_lower_case_exit_status() {
+    let jobs = parse_qstat_full(&fixture("qstat-torque-completed.txt"));
+    assert_eq!(
+        pbs_job_state(&jobs[0]),
+        JobState::Ended(EndKind::Ran { exit: Some((0, 0)) })
+    );
+}
+
+#[test]
+fn ids_match_by_sequence_number_and_unknown_ids_are_absent() {
+    let text = fixture("qstat-f-active.txt");
+    // The server printed 4243.pbs01.example.org for the 4243.pbs01 that qsub gave.
+    let s = states_for(&ids(&["4243.pbs01", "3999.pbs01"]), &text);
+    assert_eq!(s.get("4243.pbs01"), Some(&JobState::Active));
+    assert!(!s.contains_key("3999.pbs01"));
+    assert!(only_unknown_jobs(&fixture("qstat-unknown.err")));
+    assert!(!only_unknown_jobs(&fixture("qstat-down.err")));
+}
+
+#[test]
+fn end_kinds_become_the_recorded_outcomes() {
+    // No markers in an empty directory: the server's word decides.
+    let dir = tempfile::tempdir().expect("tempdir");
+    let out = |end: EndKind, ours: bool| completion(1, dir.path(), Some(end), ours).outcome;
+    assert_eq!(out(EndKind::TimedOut, false), Outcome::TimedOut);
+    assert_eq!(out(EndKind::NodeFailure, false), Outcome::NodeFailure);
+    assert_eq!(
+        out(EndKind::Cancelled, true),
+        Outcome::Cancelled { by: "rondo".into() }
+    );
+    assert!(matches!(
+        out(EndKind::Cancelled, false),
+        Outcome::Cancelled { by } if by.starts_with("external")
+    ));
+    assert_eq!(
+        out(EndKind::Ran { exit: Some((0, 9)) }, false),
+        Outcome::Signaled { signal: 9 }
+    );
+}
+
+fn request(dir: &Path) -> LaunchRequest {
+    LaunchRequest {
+        attempt_id: 9,
+        job_name: "demo/V 1.00/it 1/solve".into(),
+        argv: vec![
+            "/bin/sh".into(),
+            "-c".into(),
+            "printf '%s' \"$RONDO_X\" > x.txt; exit 4".into(),
+        ],
+        workdir: dir.to_path_buf(),
+        env: [("RONDO_X".to_string(), "it's here".to_string())].into(),
+        time_limit: None,
+        resources: Resources {
+            ntasks: Some(2),
+            time: Some("30".into()),
+            account: Some("proj1".into()),
+            ..Default::default()
+        },
+    }
+}
+
+/// The script qsub would get: its directives, and (run as a real shell process here, since
+/// `#PBS` lines are comments to the shell) the markers and exit status it leaves behind.
+#[tokio::test]
+async fn generated_script_has_pbs_directives_and_runs_with_markers() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let (tx, _rx) = tokio::sync::mpsc::unbounded_channel();
+    let ex = PbsExecutor::new(PbsConfig::default(), tx);
+    let script = ex.render_script(&request(dir.path())).expect("script");
+    let wd = dir.path().display().to_string();
+    for line in [
+        "#PBS -N demo.V_1.00.it_1.solve".to_string(),
+        "#PBS -l select=1:ncpus=2:mpiprocs=2".to_string(),
+        "#PBS -l walltime=00:30:00".to_string(),
+        "#PBS -A proj1".to_string(),
+        format!("#PBS -o {wd}/pbs.out"),
+        format!("#PBS -e {wd}/pbs.err"),
+    ] {
+        assert!(
+            script.lines().any(|l| l == line),
+            "missing {line:?} in\n{script}"
+        );
+    }
+    let path = dir.path().join("rondo-job.sh");
+    std::fs::write(&path, &script).expect("write script");
+    let st = std::process::Command::new("/bin/sh")
+        .arg(&path)
+        .status()
+        .expect("sh runs");
+    assert_eq!(st.code(), Some(4));
+    assert_eq!(read_exit(dir.path()).map(|(c, _)| c), Some(4));
+    assert_eq!(
+        std::fs::read_to_string(dir.path().join("x.txt")).expect("x.txt"),
+        "it's here"
+    );
+    // With the marker present, a job the server reports as finished records the exit code.
+    let c = completion(9, dir.path(), Some(EndKind::Ran { exit: None }), false);
+    assert_eq!(c.outcome, Outcome::Exited { code: 4 });
+    assert!(c.started_at.is_some() && c.host.is_some());
+}
