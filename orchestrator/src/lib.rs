@@ -2,6 +2,7 @@
 //! crash, and records the provenance of every number they produce.
 
 pub mod artifacts;
+pub mod audit;
 pub mod builtins;
 pub mod cli;
 pub mod engine;

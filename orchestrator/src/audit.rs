@@ -1,0 +1,1198 @@
+//! Audit of a workspace: resolving what a user points at (a file on disk, an artifact hash
+//! prefix, or a metric of a point and iteration) to a recorded artifact, walking its upstream
+//! lineage through the recorded attempts, and comparing two points side by side.
+//!
+//! The store is only read here; the single exception is the report's own provenance, which
+//! [`crate::report`] records and [`lineage`] follows.
+
+use std::collections::{BTreeMap, BTreeSet, HashSet, VecDeque};
+use std::fmt::Write as _;
+use std::fs::File;
+use std::io::Read;
+use std::path::Path;
+
+use anyhow::{bail, Context, Result};
+use serde::Serialize;
+use serde_json::Value;
+use sqlx::{Row, SqlitePool};
+
+/// Smallest accepted hash prefix, in hex digits.
+pub const MIN_PREFIX: usize = 6;
+
+/// Relative tolerance beyond which two metric values count as different.
+pub const METRIC_RTOL: f64 = 1e-12;
+
+/// The campaign a record belongs to.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct CampaignRef {
+    /// Campaign name.
+    pub name: String,
+    /// Campaign file as given at the first run.
+    pub spec_path: String,
+    /// BLAKE3 of the exact campaign file text.
+    pub spec_blake3: String,
+}
+
+/// A program as recorded for an attempt.
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, Serialize)]
+pub struct ProgramRef {
+    /// Path that was run.
+    pub path: Option<String>,
+    /// BLAKE3 of the program file.
+    pub blake3: Option<String>,
+    /// Output of its version flag, if declared.
+    pub version: Option<String>,
+}
+
+/// One metric value.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct MetricValue {
+    /// The value.
+    pub value: f64,
+    /// Standard error, for noisy estimates.
+    pub error: Option<f64>,
+}
+
+/// One attempt (or report generation) in a lineage.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct AttemptRecord {
+    /// `attempt` for a stage attempt, `report` for a report generation.
+    pub kind: String,
+    /// Attempt id (RONDO_ATTEMPT_ID) or report id.
+    pub id: i64,
+    /// Point id; `None` for a report.
+    pub point: Option<String>,
+    /// Iteration (1-based); `None` for a report.
+    pub iteration: Option<i64>,
+    /// Stage name (`report` for a report).
+    pub stage: String,
+    /// Attempt number for this point/iteration/stage.
+    pub attempt: i64,
+    /// State (`succeeded`, ...).
+    pub state: String,
+    /// Rendered argument list.
+    pub argv: Vec<String>,
+    /// Scratch directory.
+    pub workdir: Option<String>,
+    /// `local`, `slurm`, `pbs`, `builtin`.
+    pub executor: String,
+    /// Process group id or batch job id.
+    pub job_id: Option<String>,
+    /// Host it ran on.
+    pub host: Option<String>,
+    /// Start (RFC 3339 UTC).
+    pub started_at: Option<String>,
+    /// End (RFC 3339 UTC).
+    pub ended_at: Option<String>,
+    /// Exit status.
+    pub exit_status: Option<i64>,
+    /// Failure kind, for failed attempts.
+    pub failure_kind: Option<String>,
+    /// Program run.
+    pub program: ProgramRef,
+    /// Resolved parameters.
+    pub parameters: Value,
+    /// `{{seed}}` value, if used.
+    pub seed: Option<String>,
+    /// rondo version that ran it.
+    pub rondo_version: String,
+    /// Input role → artifact hash.
+    pub inputs: BTreeMap<String, String>,
+    /// Output role → artifact hash.
+    pub outputs: BTreeMap<String, String>,
+    /// Metrics recorded, `stage.metric` → value.
+    pub metrics: BTreeMap<String, MetricValue>,
+    /// For a report: the attempts whose metrics it read.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub sources: Vec<i64>,
+}
+
+/// A campaign start file reached by a lineage.
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, Serialize)]
+pub struct StartFile {
+    /// Key of `start:`.
+    pub name: String,
+    /// Artifact hash.
+    pub hash: String,
+}
+
+/// A metric named by `POINT/ITERATION/stage.metric`.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct MetricTarget {
+    /// Point id.
+    pub point: String,
+    /// Iteration.
+    pub iteration: i64,
+    /// `stage.metric`.
+    pub name: String,
+    /// Value recorded.
+    pub value: f64,
+    /// Error recorded.
+    pub error: Option<f64>,
+    /// Attempt that recorded it.
+    pub attempt_id: i64,
+}
+
+/// What a user pointed at, resolved against the store.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "kebab-case")]
+pub enum Target {
+    /// An artifact.
+    Artifact {
+        /// Its hash.
+        hash: String,
+    },
+    /// A metric of one attempt.
+    Metric(MetricTarget),
+}
+
+/// The upstream lineage of a target.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Lineage {
+    /// Artifact hash; for a metric target, the `POINT/ITERATION/stage.metric` reference.
+    pub target: String,
+    /// The metric, when the target is one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub metric: Option<MetricTarget>,
+    /// Campaign of the workspace.
+    pub campaign: CampaignRef,
+    /// Attempts, nearest first (breadth-first, each once).
+    pub attempts: Vec<AttemptRecord>,
+    /// Campaign start files reached.
+    pub sources: Vec<StartFile>,
+}
+
+/// Campaign row of a workspace.
+pub async fn campaign(pool: &SqlitePool) -> Result<CampaignRef> {
+    let row = sqlx::query("SELECT name, spec_path, spec_blake3 FROM campaign WHERE id = 1")
+        .fetch_optional(pool)
+        .await
+        .context("cannot read the campaign record")?;
+    let Some(row) = row else {
+        bail!("this workspace has no campaign recorded yet; run `rondo run CAMPAIGN.yaml` first");
+    };
+    Ok(CampaignRef {
+        name: row.try_get("name")?,
+        spec_path: row.try_get("spec_path")?,
+        spec_blake3: row.try_get("spec_blake3")?,
+    })
+}
+
+/// BLAKE3 of a file, streamed, calling `progress(done, total)` as bytes are read.
+pub fn hash_file_with_progress(path: &Path, progress: &mut dyn FnMut(u64, u64)) -> Result<String> {
+    let mut f = File::open(path).with_context(|| format!("{}: cannot open", path.display()))?;
+    let total = f.metadata().map(|m| m.len()).unwrap_or(0);
+    let mut h = blake3::Hasher::new();
+    let mut buf = vec![0u8; 1 << 20];
+    let mut done = 0u64;
+    loop {
+        let n = f
+            .read(&mut buf)
+            .with_context(|| format!("{}: cannot read", path.display()))?;
+        if n == 0 {
+            break;
+        }
+        done += n as u64;
+        h.update(&buf[..n]);
+        progress(done, total);
+    }
+    Ok(h.finalize().to_hex().to_string())
+}
+
+fn is_hex(s: &str) -> bool {
+    !s.is_empty() && s.bytes().all(|b| b.is_ascii_hexdigit())
+}
+
+/// Parse `POINT/ITERATION/stage.metric` (ITERATION a number or `last`).
+fn parse_metric_ref(s: &str) -> Option<(String, Option<i64>, String)> {
+    let mut it = s.splitn(3, '/');
+    let point = it.next()?;
+    let iter = it.next()?;
+    let name = it.next()?;
+    if point.is_empty() || !name.contains('.') || name.contains('/') {
+        return None;
+    }
+    let iteration = if iter == "last" {
+        None
+    } else {
+        Some(iter.parse::<i64>().ok()?)
+    };
+    Some((point.to_string(), iteration, name.to_string()))
+}
+
+/// Resolve a target to an artifact hash (see [`resolve`] for the accepted forms). A metric
+/// resolves to its attempt's recorded `metrics` output.
+pub async fn resolve_target(pool: &SqlitePool, ws: &Path, target: &str) -> Result<String> {
+    match resolve(pool, ws, target, &mut |_, _| {}).await? {
+        Target::Artifact { hash } => Ok(hash),
+        Target::Metric(m) => {
+            let hash: Option<String> = sqlx::query_scalar(
+                "SELECT artifact FROM attempt_outputs WHERE attempt_id = ? AND role = 'metrics'",
+            )
+            .bind(m.attempt_id)
+            .fetch_optional(pool)
+            .await?;
+            hash.with_context(|| {
+                format!(
+                    "metric {target} was recorded by attempt {} without a metrics file; trace the metric itself",
+                    m.attempt_id
+                )
+            })
+        }
+    }
+}
+
+/// Resolve what a user pointed at:
+/// * an existing file (absolute, or relative to the current directory): hashed with BLAKE3
+///   and looked up among the recorded artifacts;
+/// * a hash prefix of at least [`MIN_PREFIX`] hex digits;
+/// * `POINT/ITERATION/stage.metric`, e.g. `p003/4/update.energy` or `p003/last/update.energy`
+///   (`last`: the last good iteration).
+pub async fn resolve(
+    pool: &SqlitePool,
+    ws: &Path,
+    target: &str,
+    progress: &mut dyn FnMut(u64, u64),
+) -> Result<Target> {
+    let _ = ws;
+    let path = Path::new(target);
+    if path.is_file() {
+        let hash = hash_file_with_progress(path, progress)?;
+        let known: Option<String> = sqlx::query_scalar("SELECT hash FROM artifacts WHERE hash = ?")
+            .bind(&hash)
+            .fetch_optional(pool)
+            .await?;
+        if known.is_none() {
+            bail!(
+                "file {} was never produced or used by this campaign (BLAKE3 {}); \
+                 check that it belongs to this workspace and was not edited",
+                path.display(),
+                hash
+            );
+        }
+        return Ok(Target::Artifact { hash });
+    }
+    if let Some((point, iteration, name)) = parse_metric_ref(target) {
+        return resolve_metric(pool, &point, iteration, &name)
+            .await
+            .map(Target::Metric);
+    }
+    let t = target.to_ascii_lowercase();
+    if is_hex(&t) {
+        if t.len() < MIN_PREFIX {
+            bail!("hash prefix `{target}` is too short: give at least {MIN_PREFIX} hex digits");
+        }
+        let rows: Vec<String> = sqlx::query_scalar(
+            "SELECT hash FROM artifacts WHERE hash LIKE ? || '%' ORDER BY hash LIMIT 11",
+        )
+        .bind(&t)
+        .fetch_all(pool)
+        .await?;
+        return match rows.len() {
+            0 => bail!("no artifact of this campaign has a hash starting with `{target}`"),
+            1 => Ok(Target::Artifact {
+                hash: rows[0].clone(),
+            }),
+            n => bail!(
+                "hash prefix `{target}` is ambiguous: it matches {}{}; give more digits",
+                rows.iter().take(10).cloned().collect::<Vec<_>>().join(", "),
+                if n > 10 { " and more" } else { "" }
+            ),
+        };
+    }
+    if target.contains('/') && !path.exists() && target.split('/').count() != 3 {
+        bail!("file {target} does not exist");
+    }
+    bail!(
+        "cannot understand target `{target}`: give an existing file, an artifact hash \
+         (at least {MIN_PREFIX} hex digits) or POINT/ITERATION/stage.metric (e.g. p001/3/update.energy)"
+    )
+}
+
+async fn known_points(pool: &SqlitePool) -> Result<Vec<String>> {
+    Ok(sqlx::query_scalar("SELECT id FROM points ORDER BY idx")
+        .fetch_all(pool)
+        .await?)
+}
+
+fn list_short(items: &[String]) -> String {
+    if items.len() <= 12 {
+        items.join(", ")
+    } else {
+        format!(
+            "{}, ..., {}",
+            items[..6].join(", "),
+            items[items.len() - 3..].join(", ")
+        )
+    }
+}
+
+async fn resolve_metric(
+    pool: &SqlitePool,
+    point: &str,
+    iteration: Option<i64>,
+    name: &str,
+) -> Result<MetricTarget> {
+    let point = resolve_point(pool, point).await?;
+    let iteration = match iteration {
+        Some(i) => i,
+        None => {
+            let last: Option<i64> = sqlx::query_scalar(
+                "SELECT MAX(iteration) FROM iterations WHERE point = ? AND state = 'good'",
+            )
+            .bind(&point)
+            .fetch_one(pool)
+            .await?;
+            last.with_context(|| format!("point {point} has no good iteration yet"))?
+        }
+    };
+    let row = sqlx::query(
+        "SELECT m.value, m.error, a.id FROM metrics m JOIN attempts a ON a.id = m.attempt_id
+         WHERE a.point = ? AND a.iteration = ? AND m.name = ? AND a.state = 'succeeded'
+         ORDER BY a.id DESC LIMIT 1",
+    )
+    .bind(&point)
+    .bind(iteration)
+    .bind(name)
+    .fetch_optional(pool)
+    .await?;
+    let Some(row) = row else {
+        let names: Vec<String> = sqlx::query_scalar(
+            "SELECT DISTINCT m.name FROM metrics m JOIN attempts a ON a.id = m.attempt_id
+             WHERE a.point = ? AND a.iteration = ? ORDER BY m.name",
+        )
+        .bind(&point)
+        .bind(iteration)
+        .fetch_all(pool)
+        .await?;
+        if names.is_empty() {
+            bail!("point {point} has no metrics recorded at iteration {iteration}");
+        }
+        bail!(
+            "point {point} iteration {iteration} has no metric `{name}`; recorded: {}",
+            names.join(", ")
+        );
+    };
+    Ok(MetricTarget {
+        point,
+        iteration,
+        name: name.to_string(),
+        value: row.try_get(0)?,
+        error: row.try_get(1)?,
+        attempt_id: row.try_get(2)?,
+    })
+}
+
+fn value_matches(v: &Value, want: &str) -> bool {
+    match v {
+        Value::Number(n) => match (n.as_f64(), want.parse::<f64>()) {
+            (Some(a), Ok(b)) => a == b,
+            _ => false,
+        },
+        Value::String(s) => s == want,
+        Value::Bool(b) => want.parse::<bool>().ok() == Some(*b),
+        _ => false,
+    }
+}
+
+/// Resolve a point given as its id (`p003`) or by sweep values (`volume=27,temperature=600`).
+pub async fn resolve_point(pool: &SqlitePool, spec: &str) -> Result<String> {
+    let points = known_points(pool).await?;
+    if points.is_empty() {
+        bail!("this workspace has no points recorded yet; run the campaign first");
+    }
+    if !spec.contains('=') {
+        if points.iter().any(|p| p == spec) {
+            return Ok(spec.to_string());
+        }
+        bail!(
+            "unknown point `{spec}`; this campaign has {} points: {}",
+            points.len(),
+            list_short(&points)
+        );
+    }
+    let mut wants = Vec::new();
+    for part in spec.split(',') {
+        let Some((k, v)) = part.split_once('=') else {
+            bail!("point selector `{spec}`: `{part}` is not NAME=VALUE");
+        };
+        wants.push((k.trim().to_string(), v.trim().to_string()));
+    }
+    let rows = sqlx::query("SELECT id, values_json FROM points ORDER BY idx")
+        .fetch_all(pool)
+        .await?;
+    let mut hits = Vec::new();
+    for r in rows {
+        let id: String = r.try_get(0)?;
+        let vj: String = r.try_get(1)?;
+        let values: Value = serde_json::from_str(&vj)
+            .with_context(|| format!("point {id}: malformed values_json in the store"))?;
+        if wants
+            .iter()
+            .all(|(k, v)| values.get(k).is_some_and(|x| value_matches(x, v)))
+        {
+            hits.push(id);
+        }
+    }
+    match hits.len() {
+        0 => bail!("no point has sweep values {spec}; see `rondo status` for the points"),
+        1 => Ok(hits.remove(0)),
+        _ => bail!(
+            "point selector {spec} matches several points ({}); add the other sweep values",
+            hits.join(", ")
+        ),
+    }
+}
+
+fn opt_json<T: serde::de::DeserializeOwned>(s: &str, what: &str, id: i64) -> Result<T> {
+    serde_json::from_str(s).with_context(|| format!("attempt {id}: malformed {what} in the store"))
+}
+
+/// Load one attempt with its inputs, outputs and metrics.
+pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
+    let r = sqlx::query(
+        "SELECT point, iteration, stage, attempt, state, argv_json, workdir, executor, handle_id,
+                host, started_at, ended_at, exit_status, failure_kind, program_path,
+                program_blake3, program_version, parameters_json, seed, rondo_version
+         FROM attempts WHERE id = ?",
+    )
+    .bind(id)
+    .fetch_optional(pool)
+    .await?
+    .with_context(|| format!("attempt {id} is not recorded"))?;
+    let argv_json: String = r.try_get("argv_json")?;
+    let params_json: String = r.try_get("parameters_json")?;
+    let mut rec = AttemptRecord {
+        kind: "attempt".into(),
+        id,
+        point: Some(r.try_get("point")?),
+        iteration: Some(r.try_get("iteration")?),
+        stage: r.try_get("stage")?,
+        attempt: r.try_get("attempt")?,
+        state: r.try_get("state")?,
+        argv: opt_json(&argv_json, "argv_json", id)?,
+        workdir: Some(r.try_get("workdir")?),
+        executor: r.try_get("executor")?,
+        job_id: r.try_get("handle_id")?,
+        host: r.try_get("host")?,
+        started_at: r.try_get("started_at")?,
+        ended_at: r.try_get("ended_at")?,
+        exit_status: r.try_get("exit_status")?,
+        failure_kind: r.try_get("failure_kind")?,
+        program: ProgramRef {
+            path: r.try_get("program_path")?,
+            blake3: r.try_get("program_blake3")?,
+            version: r.try_get("program_version")?,
+        },
+        parameters: opt_json(&params_json, "parameters_json", id)?,
+        seed: r.try_get("seed")?,
+        rondo_version: r.try_get("rondo_version")?,
+        inputs: BTreeMap::new(),
+        outputs: BTreeMap::new(),
+        metrics: BTreeMap::new(),
+        sources: Vec::new(),
+    };
+    for (table, map) in [
+        ("attempt_inputs", &mut rec.inputs),
+        ("attempt_outputs", &mut rec.outputs),
+    ] {
+        let rows = sqlx::query(&format!(
+            "SELECT role, artifact FROM {table} WHERE attempt_id = ? ORDER BY role"
+        ))
+        .bind(id)
+        .fetch_all(pool)
+        .await?;
+        for row in rows {
+            map.insert(row.try_get(0)?, row.try_get(1)?);
+        }
+    }
+    let rows =
+        sqlx::query("SELECT name, value, error FROM metrics WHERE attempt_id = ? ORDER BY name")
+            .bind(id)
+            .fetch_all(pool)
+            .await?;
+    for row in rows {
+        rec.metrics.insert(
+            row.try_get(0)?,
+            MetricValue {
+                value: row.try_get(1)?,
+                error: row.try_get(2)?,
+            },
+        );
+    }
+    Ok(rec)
+}
+
+/// Attempts that produced `hash`, preferring succeeded ones and those of `point`.
+async fn producers(pool: &SqlitePool, hash: &str, point: Option<&str>) -> Result<Vec<i64>> {
+    let rows = sqlx::query(
+        "SELECT a.id, a.point, a.state FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id
+         WHERE o.artifact = ? ORDER BY a.id",
+    )
+    .bind(hash)
+    .fetch_all(pool)
+    .await?;
+    let mut all: Vec<(i64, String, String)> = Vec::new();
+    for r in rows {
+        all.push((r.try_get(0)?, r.try_get(1)?, r.try_get(2)?));
+    }
+    if all.iter().any(|a| a.2 == "succeeded") {
+        all.retain(|a| a.2 == "succeeded");
+    }
+    if let Some(p) = point {
+        if all.iter().any(|a| a.1 == p) {
+            all.retain(|a| a.1 == p);
+        }
+    }
+    Ok(all.into_iter().map(|a| a.0).collect())
+}
+
+async fn start_file_names(pool: &SqlitePool, hash: &str) -> Result<Vec<String>> {
+    Ok(
+        sqlx::query_scalar("SELECT name FROM start_files WHERE artifact = ? ORDER BY name")
+            .bind(hash)
+            .fetch_all(pool)
+            .await?,
+    )
+}
+
+/// Lineage of an artifact (see [`lineage_of`]).
+pub async fn lineage(pool: &SqlitePool, hash: &str) -> Result<Lineage> {
+    lineage_of(
+        pool,
+        &Target::Artifact {
+            hash: hash.to_string(),
+        },
+    )
+    .await
+}
+
+/// Upstream lineage of a target: the attempts (or report generation) that produced it, the
+/// attempts that produced their inputs, and so on, breadth-first, each attempt once, nearest
+/// first; inputs that are campaign start files end the walk and are listed as sources.
+pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
+    let campaign = campaign(pool).await?;
+    let mut queue: VecDeque<i64> = VecDeque::new();
+    let mut attempts = Vec::new();
+    let mut sources = BTreeSet::new();
+    let (target_str, metric) = match target {
+        Target::Artifact { hash } => {
+            let known: Option<String> =
+                sqlx::query_scalar("SELECT hash FROM artifacts WHERE hash = ?")
+                    .bind(hash)
+                    .fetch_optional(pool)
+                    .await?;
+            if known.is_none() {
+                bail!("artifact {hash} is not recorded in this workspace");
+            }
+            let direct = producers(pool, hash, None).await?;
+            queue.extend(direct.iter().copied());
+            if direct.is_empty() {
+                for rep in crate::report::producing_reports(pool, hash).await? {
+                    queue.extend(rep.sources.iter().copied());
+                    attempts.push(rep);
+                }
+            }
+            for name in start_file_names(pool, hash).await? {
+                sources.insert(StartFile {
+                    name,
+                    hash: hash.clone(),
+                });
+            }
+            if queue.is_empty() && attempts.is_empty() && sources.is_empty() {
+                bail!(
+                    "artifact {hash} is recorded but no attempt produced it and it is not a start file; \
+                     the store may have been edited by hand"
+                );
+            }
+            (hash.clone(), None)
+        }
+        Target::Metric(m) => {
+            queue.push_back(m.attempt_id);
+            (
+                format!("{}/{}/{}", m.point, m.iteration, m.name),
+                Some(m.clone()),
+            )
+        }
+    };
+    let mut seen: HashSet<i64> = HashSet::new();
+    while let Some(id) = queue.pop_front() {
+        if !seen.insert(id) {
+            continue;
+        }
+        let rec = load_attempt(pool, id).await?;
+        for hash in rec.inputs.values() {
+            let names = start_file_names(pool, hash).await?;
+            let prods = producers(pool, hash, rec.point.as_deref()).await?;
+            for name in names {
+                sources.insert(StartFile {
+                    name,
+                    hash: hash.clone(),
+                });
+            }
+            for p in prods {
+                if !seen.contains(&p) {
+                    queue.push_back(p);
+                }
+            }
+        }
+        attempts.push(rec);
+    }
+    Ok(Lineage {
+        target: target_str,
+        metric,
+        campaign,
+        attempts,
+        sources: sources.into_iter().collect(),
+    })
+}
+
+fn opt(s: &Option<String>) -> &str {
+    s.as_deref().unwrap_or("-")
+}
+
+impl Lineage {
+    /// Human-readable rendering.
+    pub fn to_text(&self) -> String {
+        let mut s = String::new();
+        let _ = writeln!(s, "target   {}", self.target);
+        if let Some(m) = &self.metric {
+            let err = m.error.map(|e| format!(" ± {e}")).unwrap_or_default();
+            let _ = writeln!(s, "value    {}{} (attempt {})", m.value, err, m.attempt_id);
+        }
+        let _ = writeln!(
+            s,
+            "campaign {} ({}, BLAKE3 {})",
+            self.campaign.name, self.campaign.spec_path, self.campaign.spec_blake3
+        );
+        let _ = writeln!(
+            s,
+            "{} attempts upstream, nearest first:",
+            self.attempts.len()
+        );
+        for a in &self.attempts {
+            let _ = writeln!(s);
+            match (&a.point, a.iteration) {
+                (Some(p), Some(i)) => {
+                    let _ = writeln!(
+                        s,
+                        "[{}] {} iteration {} stage {} attempt {} ({})",
+                        a.id, p, i, a.stage, a.attempt, a.state
+                    );
+                }
+                _ => {
+                    let _ = writeln!(s, "[report {}] {} ({})", a.id, a.stage, a.state);
+                }
+            }
+            let _ = writeln!(s, "  argv      {}", a.argv.join(" "));
+            let _ = writeln!(
+                s,
+                "  program   {} BLAKE3 {}{}",
+                opt(&a.program.path),
+                opt(&a.program.blake3),
+                a.program
+                    .version
+                    .as_ref()
+                    .map(|v| format!(" version {}", v.trim()))
+                    .unwrap_or_default()
+            );
+            let _ = writeln!(
+                s,
+                "  ran       {} on {} job {} workdir {}",
+                a.executor,
+                opt(&a.host),
+                opt(&a.job_id),
+                opt(&a.workdir)
+            );
+            let _ = writeln!(
+                s,
+                "  times     {} .. {} exit {}",
+                opt(&a.started_at),
+                opt(&a.ended_at),
+                a.exit_status
+                    .map(|e| e.to_string())
+                    .unwrap_or_else(|| "-".into())
+            );
+            if let Some(seed) = &a.seed {
+                let _ = writeln!(s, "  seed      {seed}");
+            }
+            let _ = writeln!(s, "  params    {}", a.parameters);
+            for (r, h) in &a.inputs {
+                let _ = writeln!(s, "  in  {r:<10} {h}");
+            }
+            for (r, h) in &a.outputs {
+                let _ = writeln!(s, "  out {r:<10} {h}");
+            }
+            for (n, m) in &a.metrics {
+                let err = m.error.map(|e| format!(" ± {e}")).unwrap_or_default();
+                let _ = writeln!(s, "  metric    {n} = {}{err}", m.value);
+            }
+            if !a.sources.is_empty() {
+                let _ = writeln!(s, "  read metrics of {} attempts", a.sources.len());
+            }
+        }
+        if !self.sources.is_empty() {
+            let _ = writeln!(s);
+            let _ = writeln!(s, "start files:");
+            for f in &self.sources {
+                let _ = writeln!(s, "  {:<10} {}", f.name, f.hash);
+            }
+        }
+        s
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// diff
+
+/// One side of a point comparison.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PointSide {
+    /// Campaign name.
+    pub campaign: String,
+    /// BLAKE3 of its campaign file.
+    pub spec_blake3: String,
+    /// Point id.
+    pub point: String,
+    /// Sweep values.
+    pub values: Value,
+    /// Point state.
+    pub state: String,
+}
+
+/// A named value that differs (`None`: absent on that side).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ValueDiff {
+    /// Name.
+    pub name: String,
+    /// Value in A.
+    pub a: Option<Value>,
+    /// Value in B.
+    pub b: Option<Value>,
+}
+
+/// Programs of a stage that differ.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ProgramDiff {
+    /// Stage.
+    pub stage: String,
+    /// Programs used by A's attempts of that stage.
+    pub a: Vec<ProgramRef>,
+    /// Programs used by B's attempts of that stage.
+    pub b: Vec<ProgramRef>,
+}
+
+/// An input of the first iteration that differs.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct InputDiff {
+    /// Stage.
+    pub stage: String,
+    /// Input role.
+    pub role: String,
+    /// Hash in A.
+    pub a: Option<String>,
+    /// Hash in B.
+    pub b: Option<String>,
+}
+
+/// Where a metric's values first differ.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct MetricDivergence {
+    /// `stage.metric`.
+    pub name: String,
+    /// First iteration where the values differ beyond [`METRIC_RTOL`] (or one is missing).
+    pub first_iteration: i64,
+    /// A's value there.
+    pub a: Option<f64>,
+    /// B's value there.
+    pub b: Option<f64>,
+}
+
+/// Stop sections of both campaigns, when they differ.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct StopDiff {
+    /// A's `stop:`.
+    pub a: Value,
+    /// B's `stop:`.
+    pub b: Value,
+}
+
+/// Side-by-side comparison of two points.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PointDiff {
+    /// First point.
+    pub a: PointSide,
+    /// Second point.
+    pub b: PointSide,
+    /// Sweep values that differ.
+    pub sweep_values: Vec<ValueDiff>,
+    /// Resolved parameters (other than sweep values) that differ, as `stage.name`.
+    pub parameters: Vec<ValueDiff>,
+    /// Stages whose programs differ.
+    pub programs: Vec<ProgramDiff>,
+    /// Stopping rules, when they differ.
+    pub stop: Option<StopDiff>,
+    /// Inputs of the first iteration that differ.
+    pub inputs: Vec<InputDiff>,
+    /// Metrics whose values differ somewhere, with the first such iteration.
+    pub metrics: Vec<MetricDivergence>,
+    /// Metrics equal at every iteration both points have.
+    pub metrics_equal: Vec<String>,
+}
+
+struct PointData {
+    side: PointSide,
+    stop: Value,
+    /// stage → first succeeded attempt's parameters.
+    params: BTreeMap<String, Value>,
+    programs: BTreeMap<String, BTreeSet<ProgramRef>>,
+    first_inputs: BTreeMap<(String, String), String>,
+    /// metric → iteration → value.
+    metrics: BTreeMap<String, BTreeMap<i64, f64>>,
+}
+
+/// The `stop:` section of a campaign file text, as JSON (`null` if absent).
+pub fn stop_section(spec_text: &str) -> Result<Value> {
+    let v: Value = serde_saphyr::from_str(spec_text)
+        .map_err(|e| anyhow::anyhow!("{e}"))
+        .context("the campaign file stored in the workspace does not parse")?;
+    Ok(v.get("stop").cloned().unwrap_or(Value::Null))
+}
+
+async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
+    let point = resolve_point(pool, spec).await?;
+    let c = sqlx::query("SELECT name, spec_text, spec_blake3 FROM campaign WHERE id = 1")
+        .fetch_optional(pool)
+        .await?
+        .context("this workspace has no campaign recorded")?;
+    let spec_text: String = c.try_get("spec_text")?;
+    let pr = sqlx::query("SELECT values_json, state FROM points WHERE id = ?")
+        .bind(&point)
+        .fetch_one(pool)
+        .await?;
+    let vj: String = pr.try_get(0)?;
+    let side = PointSide {
+        campaign: c.try_get("name")?,
+        spec_blake3: c.try_get("spec_blake3")?,
+        values: serde_json::from_str(&vj)
+            .with_context(|| format!("point {point}: malformed values_json"))?,
+        state: pr.try_get(1)?,
+        point: point.clone(),
+    };
+    let mut d = PointData {
+        side,
+        stop: stop_section(&spec_text)?,
+        params: BTreeMap::new(),
+        programs: BTreeMap::new(),
+        first_inputs: BTreeMap::new(),
+        metrics: BTreeMap::new(),
+    };
+    let rows = sqlx::query(
+        "SELECT id, iteration, stage, program_path, program_blake3, program_version, parameters_json, state
+         FROM attempts WHERE point = ? ORDER BY iteration, id",
+    )
+    .bind(&point)
+    .fetch_all(pool)
+    .await?;
+    let mut first_iter: BTreeMap<String, i64> = BTreeMap::new();
+    for r in rows {
+        let id: i64 = r.try_get(0)?;
+        let iteration: i64 = r.try_get(1)?;
+        let stage: String = r.try_get(2)?;
+        let state: String = r.try_get(7)?;
+        if state != "succeeded" {
+            continue;
+        }
+        d.programs
+            .entry(stage.clone())
+            .or_default()
+            .insert(ProgramRef {
+                path: r.try_get(3)?,
+                blake3: r.try_get(4)?,
+                version: r.try_get(5)?,
+            });
+        if !d.params.contains_key(&stage) {
+            let pj: String = r.try_get(6)?;
+            d.params
+                .insert(stage.clone(), opt_json(&pj, "parameters_json", id)?);
+        }
+        let fi = *first_iter.entry(stage.clone()).or_insert(iteration);
+        if fi == iteration {
+            let ins = sqlx::query("SELECT role, artifact FROM attempt_inputs WHERE attempt_id = ?")
+                .bind(id)
+                .fetch_all(pool)
+                .await?;
+            for i in ins {
+                d.first_inputs
+                    .insert((stage.clone(), i.try_get(0)?), i.try_get(1)?);
+            }
+        }
+    }
+    let rows = sqlx::query(
+        "SELECT a.iteration, m.name, m.value FROM metrics m JOIN attempts a ON a.id = m.attempt_id
+         WHERE a.point = ? AND a.state = 'succeeded' ORDER BY a.iteration, a.id",
+    )
+    .bind(&point)
+    .fetch_all(pool)
+    .await?;
+    for r in rows {
+        let it: i64 = r.try_get(0)?;
+        let name: String = r.try_get(1)?;
+        let v: f64 = r.try_get(2)?;
+        d.metrics.entry(name).or_default().insert(it, v);
+    }
+    Ok(d)
+}
+
+fn values_differ(a: f64, b: f64) -> bool {
+    if a == b {
+        return false;
+    }
+    if !a.is_finite() || !b.is_finite() {
+        return true;
+    }
+    (a - b).abs() > METRIC_RTOL * a.abs().max(b.abs())
+}
+
+fn map_diff(
+    prefix: &str,
+    a: Option<&Value>,
+    b: Option<&Value>,
+    skip: &BTreeSet<String>,
+    out: &mut Vec<ValueDiff>,
+) {
+    let empty = serde_json::Map::new();
+    let ma = a.and_then(Value::as_object).unwrap_or(&empty);
+    let mb = b.and_then(Value::as_object).unwrap_or(&empty);
+    let keys: BTreeSet<&String> = ma.keys().chain(mb.keys()).collect();
+    for k in keys {
+        if skip.contains(k) {
+            continue;
+        }
+        let (va, vb) = (ma.get(k), mb.get(k));
+        if va != vb {
+            out.push(ValueDiff {
+                name: format!("{prefix}{k}"),
+                a: va.cloned(),
+                b: vb.cloned(),
+            });
+        }
+    }
+}
+
+/// Compare point `point_a` of the workspace behind `pool_a` with `point_b` of `pool_b` (the
+/// same pool for two points of one campaign). Points are ids (`p003`) or sweep-value
+/// selectors (`volume=27,temperature=600`).
+pub async fn diff(
+    pool_a: &SqlitePool,
+    point_a: &str,
+    pool_b: &SqlitePool,
+    point_b: &str,
+) -> Result<PointDiff> {
+    let a = load_point(pool_a, point_a)
+        .await
+        .with_context(|| format!("point A ({point_a})"))?;
+    let b = load_point(pool_b, point_b)
+        .await
+        .with_context(|| format!("point B ({point_b})"))?;
+    let mut sweep_values = Vec::new();
+    map_diff(
+        "",
+        Some(&a.side.values),
+        Some(&b.side.values),
+        &BTreeSet::new(),
+        &mut sweep_values,
+    );
+    let axes: BTreeSet<String> = a
+        .side
+        .values
+        .as_object()
+        .into_iter()
+        .chain(b.side.values.as_object())
+        .flat_map(|m| m.keys().cloned())
+        .collect();
+    let mut parameters = Vec::new();
+    let stages: BTreeSet<&String> = a.params.keys().chain(b.params.keys()).collect();
+    for s in &stages {
+        map_diff(
+            &format!("{s}."),
+            a.params.get(*s),
+            b.params.get(*s),
+            &axes,
+            &mut parameters,
+        );
+    }
+    let mut programs = Vec::new();
+    let pstages: BTreeSet<&String> = a.programs.keys().chain(b.programs.keys()).collect();
+    let none = BTreeSet::new();
+    for s in pstages {
+        let pa = a.programs.get(s).unwrap_or(&none);
+        let pb = b.programs.get(s).unwrap_or(&none);
+        let key = |p: &BTreeSet<ProgramRef>| {
+            p.iter()
+                .map(|x| (x.path.clone(), x.blake3.clone()))
+                .collect::<BTreeSet<_>>()
+        };
+        if key(pa) != key(pb) {
+            programs.push(ProgramDiff {
+                stage: s.clone(),
+                a: pa.iter().cloned().collect(),
+                b: pb.iter().cloned().collect(),
+            });
+        }
+    }
+    let stop = (a.stop != b.stop).then(|| StopDiff {
+        a: a.stop.clone(),
+        b: b.stop.clone(),
+    });
+    let mut inputs = Vec::new();
+    let ikeys: BTreeSet<&(String, String)> =
+        a.first_inputs.keys().chain(b.first_inputs.keys()).collect();
+    for k in ikeys {
+        let (ha, hb) = (a.first_inputs.get(k), b.first_inputs.get(k));
+        if ha != hb {
+            inputs.push(InputDiff {
+                stage: k.0.clone(),
+                role: k.1.clone(),
+                a: ha.cloned(),
+                b: hb.cloned(),
+            });
+        }
+    }
+    let mut metrics = Vec::new();
+    let mut metrics_equal = Vec::new();
+    let names: BTreeSet<&String> = a.metrics.keys().chain(b.metrics.keys()).collect();
+    let empty = BTreeMap::new();
+    for n in names {
+        let sa = a.metrics.get(n).unwrap_or(&empty);
+        let sb = b.metrics.get(n).unwrap_or(&empty);
+        let last = sa
+            .keys()
+            .max()
+            .copied()
+            .unwrap_or(0)
+            .min(sb.keys().max().copied().unwrap_or(0));
+        let its: BTreeSet<i64> = sa.keys().chain(sb.keys()).copied().collect();
+        let mut found = None;
+        for it in its {
+            let (va, vb) = (sa.get(&it).copied(), sb.get(&it).copied());
+            let differ = match (va, vb) {
+                (Some(x), Some(y)) => values_differ(x, y),
+                // one point stopped earlier: that is not a divergence of values
+                _ => it <= last,
+            };
+            if differ {
+                found = Some(MetricDivergence {
+                    name: n.clone(),
+                    first_iteration: it,
+                    a: va,
+                    b: vb,
+                });
+                break;
+            }
+        }
+        match found {
+            Some(m) => metrics.push(m),
+            None => metrics_equal.push(n.clone()),
+        }
+    }
+    Ok(PointDiff {
+        a: a.side,
+        b: b.side,
+        sweep_values,
+        parameters,
+        programs,
+        stop,
+        inputs,
+        metrics,
+        metrics_equal,
+    })
+}
+
+fn show(v: &Option<Value>) -> String {
+    v.as_ref()
+        .map(|x| x.to_string())
+        .unwrap_or_else(|| "(absent)".into())
+}
+
+fn show_f(v: Option<f64>) -> String {
+    v.map(|x| format!("{x:.12e}"))
+        .unwrap_or_else(|| "(absent)".into())
+}
+
+fn show_prog(p: &[ProgramRef]) -> String {
+    p.iter()
+        .map(|x| format!("{} {}", opt(&x.path), opt(&x.blake3)))
+        .collect::<Vec<_>>()
+        .join("; ")
+}
+
+impl PointDiff {
+    /// Human-readable rendering.
+    pub fn to_text(&self) -> String {
+        let mut s = String::new();
+        let _ = writeln!(
+            s,
+            "A: {} of {} ({}) {}\nB: {} of {} ({}) {}",
+            self.a.point,
+            self.a.campaign,
+            self.a.state,
+            self.a.values,
+            self.b.point,
+            self.b.campaign,
+            self.b.state,
+            self.b.values
+        );
+        let section = |s: &mut String, title: &str, empty: bool| {
+            let _ = writeln!(s, "\n{title}{}", if empty { ": same" } else { ":" });
+        };
+        section(&mut s, "sweep values", self.sweep_values.is_empty());
+        for d in &self.sweep_values {
+            let _ = writeln!(s, "  {:<24} A {:<16} B {}", d.name, show(&d.a), show(&d.b));
+        }
+        section(&mut s, "parameters", self.parameters.is_empty());
+        for d in &self.parameters {
+            let _ = writeln!(s, "  {:<24} A {:<16} B {}", d.name, show(&d.a), show(&d.b));
+        }
+        section(&mut s, "programs", self.programs.is_empty());
+        for d in &self.programs {
+            let _ = writeln!(
+                s,
+                "  {}\n    A {}\n    B {}",
+                d.stage,
+                show_prog(&d.a),
+                show_prog(&d.b)
+            );
+        }
+        section(&mut s, "stopping rules", self.stop.is_none());
+        if let Some(d) = &self.stop {
+            let _ = writeln!(s, "  A {}\n  B {}", d.a, d.b);
+        }
+        section(&mut s, "first-iteration inputs", self.inputs.is_empty());
+        for d in &self.inputs {
+            let _ = writeln!(
+                s,
+                "  {}.{:<16} A {} B {}",
+                d.stage,
+                d.role,
+                d.a.as_deref().unwrap_or("(absent)"),
+                d.b.as_deref().unwrap_or("(absent)")
+            );
+        }
+        section(&mut s, "metrics", self.metrics.is_empty());
+        for d in &self.metrics {
+            let _ = writeln!(
+                s,
+                "  {:<24} first differ at iteration {}: A {} B {}",
+                d.name,
+                d.first_iteration,
+                show_f(d.a),
+                show_f(d.b)
+            );
+        }
+        if !self.metrics_equal.is_empty() {
+            let _ = writeln!(s, "  equal throughout: {}", self.metrics_equal.join(", "));
+        }
+        s
+    }
+}
