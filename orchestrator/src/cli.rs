@@ -1,6 +1,592 @@
-//! Command-line interface (being written).
+//! The `rondo` command line: argument parsing, the subcommands, their human and `--json`
+//! output, and the exit codes (0 every point converged; 3 finished but some point failed,
+//! was capped or cancelled; 4 interrupted by a signal; 2 bad input; 1 other errors).
 
-/// Entry point.
-pub fn main() -> std::process::ExitCode {
-    std::process::ExitCode::from(1)
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::time::Duration;
+
+use anyhow::{bail, Context, Result};
+use clap::{Parser, Subcommand, ValueEnum};
+use sqlx::Row;
+
+use crate::engine::{self, ExecutorChoice, Paths, RunOptions};
+use crate::progress::Progress;
+use crate::spec::{self, Campaign, Source, StageKind};
+use crate::store;
+
+/// Exit code: every point converged.
+pub const EXIT_OK: u8 = 0;
+/// Exit code: an error that is not the input's fault.
+pub const EXIT_ERROR: u8 = 1;
+/// Exit code: bad input (campaign file, arguments, workspace mismatch).
+pub const EXIT_BAD_INPUT: u8 = 2;
+/// Exit code: finished, but some point failed, hit its iteration cap or was cancelled.
+pub const EXIT_INCOMPLETE: u8 = 3;
+/// Exit code: stopped by SIGINT/SIGTERM; `rondo run` again continues.
+pub const EXIT_INTERRUPTED: u8 = 4;
+
+/// An error caused by the user's input (exit code 2).
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct BadInput(pub String);
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "rondo",
+    version,
+    about = "Runs charge self-consistent DFT+DMFT campaigns unattended, resumes them after any crash, and records where every number came from."
+)]
+struct Cli {
+    /// More log output (repeat for more).
+    #[arg(short, long, global = true, action = clap::ArgAction::Count)]
+    verbose: u8,
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum ExecutorArg {
+    Local,
+    Slurm,
+}
+
+#[derive(Subcommand, Debug)]
+enum Command {
+    /// Validate a campaign file and print the plan (points, stages, resources, rules).
+    Check {
+        /// The campaign file.
+        file: PathBuf,
+    },
+    /// Run or continue a campaign until every point stops.
+    Run {
+        /// The campaign file.
+        file: PathBuf,
+        /// Workspace folder (default: <campaign>.rondo beside the file).
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+        /// Where command stages run.
+        #[arg(long, value_enum, default_value = "local")]
+        executor: ExecutorArg,
+        /// Most attempts outstanding at once (default: number of CPUs for local, 20 for slurm).
+        #[arg(long)]
+        jobs: Option<usize>,
+        /// Give points that failed in an earlier run a fresh set of retries.
+        #[arg(long)]
+        retry_failed: bool,
+        /// Keep the scratch directories of succeeded attempts.
+        #[arg(long)]
+        keep_scratch: bool,
+        /// Seconds between SIGTERM and SIGKILL when rondo ends a local attempt.
+        #[arg(long, default_value_t = 10)]
+        grace: u64,
+        /// Seconds between two scheduler polls (slurm; be kind to the controller).
+        #[arg(long, default_value_t = 30)]
+        poll_interval: u64,
+        /// No progress output.
+        #[arg(short, long)]
+        quiet: bool,
+    },
+    /// Per point: sweep values, iteration, state, latest metrics.
+    Status {
+        /// The campaign file (its default workspace is used).
+        file: Option<PathBuf>,
+        /// Workspace folder.
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+        /// Machine-readable output (documented in docs/json-output.md).
+        #[arg(long)]
+        json: bool,
+    },
+    /// Stop submitting, cancel outstanding attempts and record why.
+    Cancel {
+        /// The campaign file (its default workspace is used).
+        file: Option<PathBuf>,
+        /// Workspace folder.
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+    },
+    /// Print the JSON Schema of the campaign file.
+    Schema,
+}
+
+/// Entry point of the binary.
+pub fn main() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let _ = e.print();
+            return ExitCode::from(if e.use_stderr() {
+                EXIT_BAD_INPUT
+            } else {
+                EXIT_OK
+            });
+        }
+    };
+    let filter = match cli.verbose {
+        0 => "warn",
+        1 => "info",
+        _ => "debug",
+    };
+    let _ = tracing_subscriber::fmt()
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_env("RONDO_LOG")
+                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(filter)),
+        )
+        .with_writer(std::io::stderr)
+        .try_init();
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+    {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("rondo: cannot start the runtime: {e}");
+            return ExitCode::from(EXIT_ERROR);
+        }
+    };
+    match runtime.block_on(dispatch(cli.command)) {
+        Ok(code) => ExitCode::from(code),
+        Err(e) => {
+            if let Some(s) = e.downcast_ref::<spec::SpecErrors>() {
+                eprint!("{s}");
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
+            eprintln!("rondo: {e:#}");
+            if e.downcast_ref::<BadInput>().is_some() {
+                ExitCode::from(EXIT_BAD_INPUT)
+            } else {
+                ExitCode::from(EXIT_ERROR)
+            }
+        }
+    }
+}
+
+async fn dispatch(cmd: Command) -> Result<u8> {
+    match cmd {
+        Command::Check { file } => {
+            let c = load(&file)?;
+            print!("{}", plan_text(&c));
+            Ok(EXIT_OK)
+        }
+        Command::Run {
+            file,
+            workspace,
+            executor,
+            jobs,
+            retry_failed,
+            keep_scratch,
+            grace,
+            poll_interval,
+            quiet,
+        } => {
+            let c = load(&file)?;
+            let workspace =
+                absolute(workspace.unwrap_or_else(|| engine::default_workspace(&file)))?;
+            let executor = match executor {
+                ExecutorArg::Local => ExecutorChoice::Local,
+                ExecutorArg::Slurm => ExecutorChoice::Slurm(rondo_adapters::slurm::SlurmConfig {
+                    poll_interval: Duration::from_secs(poll_interval.max(1)),
+                    ..Default::default()
+                }),
+            };
+            let jobs = jobs.unwrap_or(match executor {
+                ExecutorChoice::Local => std::thread::available_parallelism()
+                    .map(|n| n.get())
+                    .unwrap_or(2),
+                ExecutorChoice::Slurm(_) => 20,
+            });
+            if jobs == 0 {
+                bail!(BadInput("--jobs must be at least 1".into()));
+            }
+            let opts = RunOptions {
+                workspace,
+                executor,
+                jobs,
+                retry_failed,
+                keep_scratch,
+                grace: Duration::from_secs(grace),
+            };
+            let summary = engine::run(&c, &opts, Progress::for_stderr(quiet)).await?;
+            let counts = summary
+                .states
+                .iter()
+                .map(|(s, n)| format!("{n} {s}"))
+                .collect::<Vec<_>>()
+                .join(", ");
+            if !quiet {
+                eprintln!("rondo: {}: {counts}", c.name);
+            }
+            if summary.interrupted {
+                eprintln!("rondo: interrupted; `rondo run` again continues where this stopped");
+                return Ok(EXIT_INTERRUPTED);
+            }
+            Ok(if summary.all_converged() {
+                EXIT_OK
+            } else {
+                EXIT_INCOMPLETE
+            })
+        }
+        Command::Status {
+            file,
+            workspace,
+            json,
+        } => {
+            let ws = find_workspace(file.as_deref(), workspace)?;
+            let status = status(&ws).await?;
+            if json {
+                println!("{}", serde_json::to_string_pretty(&status)?);
+            } else {
+                print!("{}", status_text(&status));
+            }
+            Ok(EXIT_OK)
+        }
+        Command::Cancel { file, workspace } => {
+            let ws = find_workspace(file.as_deref(), workspace)?;
+            cancel(&ws).await
+        }
+        Command::Schema => {
+            print!("{}", spec::json_schema());
+            Ok(EXIT_OK)
+        }
+    }
+}
+
+fn load(file: &Path) -> Result<Campaign> {
+    if !file.is_file() {
+        bail!(BadInput(format!(
+            "{}: no such campaign file",
+            file.display()
+        )));
+    }
+    Ok(spec::load(file)?)
+}
+
+fn absolute(p: PathBuf) -> Result<PathBuf> {
+    if p.is_absolute() {
+        return Ok(p);
+    }
+    Ok(std::env::current_dir()
+        .context("cannot read the current directory")?
+        .join(p))
+}
+
+/// The workspace named by `--workspace`, by a campaign file, or the single `*.rondo` folder
+/// of the current directory.
+pub fn find_workspace(file: Option<&Path>, workspace: Option<PathBuf>) -> Result<PathBuf> {
+    if let Some(ws) = workspace {
+        return absolute(ws);
+    }
+    if let Some(f) = file {
+        if f.is_dir() {
+            return absolute(f.to_path_buf());
+        }
+        return absolute(engine::default_workspace(f));
+    }
+    let here = std::env::current_dir().context("cannot read the current directory")?;
+    let found: Vec<PathBuf> = std::fs::read_dir(&here)
+        .with_context(|| format!("{}: cannot list", here.display()))?
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .filter(|p| p.is_dir() && p.extension().is_some_and(|e| e == "rondo"))
+        .collect();
+    match found.as_slice() {
+        [one] => Ok(one.clone()),
+        [] => bail!(BadInput(
+            "no workspace given and none (*.rondo) in the current directory; pass --workspace DIR or the campaign file".into()
+        )),
+        _ => bail!(BadInput(format!(
+            "several workspaces here ({}); pass --workspace DIR",
+            found
+                .iter()
+                .map(|p| p.display().to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        ))),
+    }
+}
+
+/// The plan printed by `rondo check`.
+pub fn plan_text(c: &Campaign) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    let _ = writeln!(s, "campaign {} ({})", c.name, c.file.display());
+    let _ = writeln!(s, "  {} point(s):", c.points.len());
+    for p in &c.points {
+        let vals = p
+            .values
+            .iter()
+            .map(|(k, v)| format!("{k}={v}"))
+            .collect::<Vec<_>>()
+            .join(" ");
+        let _ = writeln!(s, "    {}  {vals}", p.id);
+    }
+    let _ = writeln!(s, "  cycle ({} stages, in order):", c.stages.len());
+    for st in &c.stages {
+        let what = match &st.kind {
+            StageKind::Command { program, shell, .. } => {
+                let path = c
+                    .programs
+                    .get(program)
+                    .map(|p| p.path.display().to_string())
+                    .unwrap_or_default();
+                format!(
+                    "runs {program} ({path}){}",
+                    if *shell { " via /bin/sh" } else { "" }
+                )
+            }
+            StageKind::Mix(w) => {
+                format!("built-in mix ({:?}, alpha {})", w.method, w.alpha).to_lowercase()
+            }
+        };
+        let _ = writeln!(s, "    {}: {what}", st.name);
+        for (role, src) in &st.inputs {
+            let from = match src {
+                Source::Same { stage, role } => format!("{stage}.{role}"),
+                Source::Start(n) => format!("start.{n}"),
+                Source::Previous {
+                    stage,
+                    role,
+                    initially,
+                } => format!(
+                    "{stage}.{role} of the previous iteration{}",
+                    initially
+                        .as_ref()
+                        .map(|i| format!(" (iteration 1: start.{i})"))
+                        .unwrap_or_default()
+                ),
+            };
+            let _ = writeln!(s, "      in  {role} ← {from}");
+        }
+        for (role, f) in &st.outputs {
+            let _ = writeln!(s, "      out {role} → {f}");
+        }
+        let res = serde_json::to_string(&st.resources).unwrap_or_default();
+        let _ = writeln!(
+            s,
+            "      resources {res}; time limit {}; retries {}",
+            st.time_limit
+                .map(|d| format!("{} s", d.as_secs()))
+                .unwrap_or_else(|| "none".into()),
+            st.retries
+        );
+    }
+    let _ = writeln!(s, "  stop ({:?} of):", c.combine);
+    for r in &c.rules {
+        let _ = writeln!(s, "    {} {:?} for {}", r.metric, r.test, r.for_);
+    }
+    let _ = writeln!(s, "    at most {} iterations", c.max_iterations);
+    s
+}
+
+/// The `status --json` document.
+pub async fn status(ws: &Path) -> Result<serde_json::Value> {
+    let pool = store::open_existing(ws).await?;
+    let Some(camp) = store::campaign_row(&pool).await? else {
+        bail!("{}: no campaign recorded", ws.display());
+    };
+    let rows = sqlx::query("SELECT id, idx, values_json, state, reason FROM points ORDER BY idx")
+        .fetch_all(&pool)
+        .await?;
+    let mut points = Vec::new();
+    let mut counts = serde_json::Map::new();
+    for r in rows {
+        let id: String = r.get("id");
+        let state: String = r.get("state");
+        let values: serde_json::Value =
+            serde_json::from_str(&r.get::<String, _>("values_json")).unwrap_or_default();
+        let good: Option<i64> = sqlx::query_scalar(
+            "SELECT max(iteration) FROM iterations WHERE point = ? AND state = 'good'",
+        )
+        .bind(&id)
+        .fetch_one(&pool)
+        .await?;
+        let mut metrics = serde_json::Map::new();
+        let mut errors = serde_json::Map::new();
+        if let Some(it) = good {
+            for m in sqlx::query(
+                "SELECT m.name, m.value, m.error FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
+                 WHERE a.point = ? AND a.iteration = ? AND a.state = 'succeeded' ORDER BY m.name",
+            )
+            .bind(&id)
+            .bind(it)
+            .fetch_all(&pool)
+            .await?
+            {
+                let name: String = m.get("name");
+                metrics.insert(name.clone(), serde_json::json!(m.get::<f64, _>("value")));
+                if let Some(e) = m.get::<Option<f64>, _>("error") {
+                    errors.insert(name, serde_json::json!(e));
+                }
+            }
+        }
+        let attempts: i64 = sqlx::query_scalar("SELECT count(*) FROM attempts WHERE point = ?")
+            .bind(&id)
+            .fetch_one(&pool)
+            .await?;
+        let n = counts.entry(state.clone()).or_insert(serde_json::json!(0));
+        *n = serde_json::json!(n.as_u64().unwrap_or(0) + 1);
+        points.push(serde_json::json!({
+            "id": id,
+            "index": r.get::<i64, _>("idx"),
+            "values": values,
+            "state": state,
+            "reason": r.get::<Option<String>, _>("reason"),
+            "iteration": good.unwrap_or(0),
+            "metrics": metrics,
+            "errors": errors,
+            "attempts": attempts,
+        }));
+    }
+    let running: Option<String> = match store::lock(ws) {
+        Ok(_) => None,
+        Err(e) => Some(e.to_string()),
+    };
+    pool.close().await;
+    Ok(serde_json::json!({
+        "campaign": camp.name,
+        "spec_blake3": camp.spec_blake3,
+        "workspace": ws.display().to_string(),
+        "created_at": camp.created_at,
+        "rondo_version": camp.rondo_version,
+        "orchestrator": running,
+        "counts": counts,
+        "points": points,
+    }))
+}
+
+fn status_text(s: &serde_json::Value) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
+    let _ = writeln!(
+        out,
+        "campaign {} ({})",
+        s["campaign"].as_str().unwrap_or(""),
+        s["workspace"].as_str().unwrap_or("")
+    );
+    if let Some(o) = s["orchestrator"].as_str() {
+        let _ = writeln!(out, "  running now: {o}");
+    }
+    let empty = Vec::new();
+    for p in s["points"].as_array().unwrap_or(&empty) {
+        let values = p["values"]
+            .as_object()
+            .map(|m| {
+                m.iter()
+                    .map(|(k, v)| format!("{k}={v}"))
+                    .collect::<Vec<_>>()
+                    .join(" ")
+            })
+            .unwrap_or_default();
+        let metrics = p["metrics"]
+            .as_object()
+            .map(|m| {
+                m.iter()
+                    .filter(|(k, _)| !k.ends_with(".history") && !k.ends_with(".resets"))
+                    .map(|(k, v)| {
+                        let err = p["errors"][k.as_str()]
+                            .as_f64()
+                            .map(|e| format!("±{e:.2e}"))
+                            .unwrap_or_default();
+                        format!("{k}={:.6}{err}", v.as_f64().unwrap_or(f64::NAN))
+                    })
+                    .collect::<Vec<_>>()
+                    .join(" ")
+            })
+            .unwrap_or_default();
+        let _ = writeln!(
+            out,
+            "  {} {values}: {} at iteration {}{}",
+            p["id"].as_str().unwrap_or(""),
+            p["state"].as_str().unwrap_or(""),
+            p["iteration"],
+            p["reason"]
+                .as_str()
+                .filter(|_| p["state"] != "converged")
+                .map(|r| format!(" ({r})"))
+                .unwrap_or_default()
+        );
+        if !metrics.is_empty() {
+            let _ = writeln!(out, "      {metrics}");
+        }
+    }
+    out
+}
+
+/// `rondo cancel`: ask a running orchestrator to stop, or cancel what an earlier one left.
+async fn cancel(ws: &Path) -> Result<u8> {
+    let pool = store::open_existing(ws).await?;
+    let paths = Paths::of(ws);
+    match store::lock(ws) {
+        Err(holder) => {
+            crate::artifacts::write_new(&paths.cancel_request, b"cancel requested\n")
+                .with_context(|| format!("{}: cannot write", paths.cancel_request.display()))?;
+            store::event(&pool, "cancel-requested", None, None, None, "rondo cancel").await?;
+            eprintln!("rondo: asked the running orchestrator to cancel ({holder})");
+            Ok(EXIT_OK)
+        }
+        Ok(_lock) => {
+            let camp = store::campaign_row(&pool).await?;
+            let ws_id = camp.map(|c| c.workspace_id).unwrap_or_default();
+            let rows = sqlx::query(
+                "SELECT id, executor, handle_id, host FROM attempts WHERE state IN ('planned','submitted','running')",
+            )
+            .fetch_all(&pool)
+            .await?;
+            let (tx, _rx) = tokio::sync::mpsc::unbounded_channel();
+            let mut n = 0;
+            for r in rows {
+                let id: i64 = r.get("id");
+                let kind: String = r.get("executor");
+                let handle = rondo_adapters::executor::Handle {
+                    executor: kind.clone(),
+                    id: r.get::<Option<String>, _>("handle_id").unwrap_or_default(),
+                    host: r
+                        .get::<Option<String>, _>("host")
+                        .unwrap_or_else(store::hostname),
+                };
+                use rondo_adapters::executor::Executor;
+                let res = match kind.as_str() {
+                    "slurm" => {
+                        rondo_adapters::slurm::SlurmExecutor::new(
+                            Default::default(),
+                            ws_id.clone(),
+                            tx.clone(),
+                        )
+                        .cancel_recorded(&handle, "rondo cancel")
+                        .await
+                    }
+                    "local" => {
+                        rondo_adapters::local::LocalExecutor::new(1, ws_id.clone(), tx.clone())
+                            .cancel_recorded(&handle, "rondo cancel")
+                            .await
+                    }
+                    _ => Ok(()),
+                };
+                if let Err(e) = res {
+                    eprintln!("rondo: attempt {id}: {e}");
+                }
+                sqlx::query("UPDATE attempts SET state = 'cancelled', failure_kind = 'cancelled', failure_message = 'rondo cancel', ended_at = ? WHERE id = ?")
+                    .bind(store::now())
+                    .bind(id)
+                    .execute(&pool)
+                    .await?;
+                n += 1;
+            }
+            sqlx::query("UPDATE points SET state = 'cancelled', reason = 'rondo cancel' WHERE state IN ('planned','running')")
+                .execute(&pool)
+                .await?;
+            store::event(
+                &pool,
+                "cancel",
+                None,
+                None,
+                None,
+                &format!("rondo cancel; {n} outstanding attempt(s) cancelled"),
+            )
+            .await?;
+            eprintln!("rondo: no orchestrator was running; cancelled {n} outstanding attempt(s)");
+            Ok(EXIT_OK)
+        }
+    }
 }

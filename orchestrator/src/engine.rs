@@ -1,1 +1,1783 @@
-//! (being written)
+//! The engine: turns a validated campaign and its workspace into attempts, hands them to an
+//! executor, records every transition in the store, applies the stopping rules, and resumes
+//! from whatever the store holds.
+//!
+//! Crash safety rests on three rules. (1) An attempt row (with its argv, parameters, program
+//! hash and input hashes) is committed before its program starts, so a later orchestrator can
+//! always find and reconcile it. (2) An attempt becomes `succeeded` in one transaction that
+//! also records its output artifacts and metrics; artifacts are copied into the
+//! content-addressed store before that transaction, so the record never names a missing
+//! file. (3) Everything an attempt consumes is an artifact of an earlier succeeded attempt
+//! (or a start file) and every random seed is derived from campaign, point, iteration and
+//! stage, so re-running a lost attempt gives the same inputs and the same numbers.
+//!
+//! Attempts lost to a crash, and attempts ended because rondo itself was stopped, do not use
+//! up a stage's retries; only real failures (exit status, signal, time limit, bad outputs,
+//! scheduler failures) do.
+
+use std::collections::{BTreeMap, HashMap, VecDeque};
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::time::Duration;
+
+use anyhow::{bail, Context, Result};
+use chrono::{DateTime, Utc};
+use rondo_adapters::executor::{
+    Completion, Executor, Handle, LaunchRequest, Outcome, Reattached, Shutdown,
+};
+use rondo_adapters::local::LocalExecutor;
+use rondo_adapters::slurm::{SlurmConfig, SlurmExecutor};
+use rondo_adapters::template::{shell_quote, Template};
+use sqlx::{Row, SqlitePool};
+use tokio::sync::mpsc;
+
+use crate::artifacts::{hash_file, ArtifactStore};
+use crate::builtins;
+use crate::progress::Progress;
+use crate::spec::{Campaign, PointSpec, Source, Stage, StageKind};
+use crate::stop::{self, Sample};
+use crate::store;
+use crate::validate::{self, Metric};
+
+/// The rondo version recorded with every attempt.
+pub const RONDO_VERSION: &str = env!("CARGO_PKG_VERSION");
+
+/// Which executor runs the command stages.
+#[derive(Debug, Clone)]
+pub enum ExecutorChoice {
+    /// Local child processes.
+    Local,
+    /// Slurm batch jobs.
+    Slurm(SlurmConfig),
+}
+
+impl ExecutorChoice {
+    fn kind(&self) -> &'static str {
+        match self {
+            ExecutorChoice::Local => "local",
+            ExecutorChoice::Slurm(_) => "slurm",
+        }
+    }
+}
+
+/// Options of `rondo run`.
+#[derive(Debug, Clone)]
+pub struct RunOptions {
+    /// Workspace folder.
+    pub workspace: PathBuf,
+    /// Executor.
+    pub executor: ExecutorChoice,
+    /// Most attempts outstanding at once.
+    pub jobs: usize,
+    /// Give failed points a fresh set of retries.
+    pub retry_failed: bool,
+    /// Keep scratch directories of succeeded attempts.
+    pub keep_scratch: bool,
+    /// Grace period between SIGTERM and SIGKILL for local children.
+    pub grace: Duration,
+}
+
+/// How a run ended.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct RunSummary {
+    /// Points per final state.
+    pub states: BTreeMap<String, usize>,
+    /// Stopped by a signal before every point stopped.
+    pub interrupted: bool,
+    /// Stopped by `rondo cancel`.
+    pub cancelled: bool,
+}
+
+impl RunSummary {
+    /// Whether every point converged.
+    pub fn all_converged(&self) -> bool {
+        !self.interrupted
+            && !self.cancelled
+            && self.states.iter().all(|(s, n)| s == "converged" || *n == 0)
+    }
+}
+
+/// The workspace's folders and files.
+#[derive(Debug, Clone)]
+pub struct Paths {
+    /// The workspace.
+    pub root: PathBuf,
+    /// `rondo.db`.
+    pub db: PathBuf,
+    /// Artifact store.
+    pub store: PathBuf,
+    /// Scratch directories.
+    pub scratch: PathBuf,
+    /// A file whose presence asks a running orchestrator to cancel.
+    pub cancel_request: PathBuf,
+}
+
+impl Paths {
+    /// The paths of a workspace folder.
+    pub fn of(root: &Path) -> Paths {
+        Paths {
+            root: root.to_path_buf(),
+            db: root.join(store::DB_FILE),
+            store: root.join("store"),
+            scratch: root.join("scratch"),
+            cancel_request: root.join("cancel-request"),
+        }
+    }
+}
+
+/// Default workspace of a campaign file: `<name>.rondo` beside it.
+pub fn default_workspace(campaign_file: &Path) -> PathBuf {
+    let stem = campaign_file
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "campaign".into());
+    campaign_file
+        .parent()
+        .unwrap_or(Path::new("."))
+        .join(format!("{stem}.rondo"))
+}
+
+/// BLAKE3 of the campaign text (hex).
+pub fn spec_hash(text: &str) -> String {
+    blake3::hash(text.as_bytes()).to_hex().to_string()
+}
+
+/// Hashes and version texts of programs, recomputed when the file changes.
+#[derive(Default)]
+struct ProgramCache {
+    map: HashMap<PathBuf, (FileKey, String, Option<String>)>,
+}
+
+type FileKey = (u64, u64, i64, i64);
+
+fn file_key(path: &Path) -> Option<FileKey> {
+    use std::os::unix::fs::MetadataExt;
+    let m = std::fs::metadata(path).ok()?;
+    Some((m.dev(), m.ino(), m.mtime(), m.mtime_nsec()))
+}
+
+impl ProgramCache {
+    async fn get(&mut self, path: &Path, version_flag: Option<&str>) -> (String, Option<String>) {
+        let key = file_key(path).unwrap_or((0, 0, 0, 0));
+        if let Some((k, h, v)) = self.map.get(path) {
+            if *k == key {
+                return (h.clone(), v.clone());
+            }
+        }
+        let hash = match hash_file(path) {
+            Ok((h, _)) => h,
+            Err(e) => format!("unreadable: {e}"),
+        };
+        let version = match version_flag {
+            Some(flag) => Some(version_text(path, flag).await),
+            None => None,
+        };
+        self.map
+            .insert(path.to_path_buf(), (key, hash.clone(), version.clone()));
+        (hash, version)
+    }
+}
+
+async fn version_text(path: &Path, flag: &str) -> String {
+    let run = tokio::process::Command::new(path)
+        .arg(flag)
+        .stdin(std::process::Stdio::null())
+        .kill_on_drop(true)
+        .output();
+    match tokio::time::timeout(Duration::from_secs(30), run).await {
+        Ok(Ok(out)) => {
+            let mut text = String::from_utf8_lossy(&out.stdout).trim().to_string();
+            if text.is_empty() {
+                text = String::from_utf8_lossy(&out.stderr).trim().to_string();
+            }
+            text.chars().take(2000).collect()
+        }
+        Ok(Err(e)) => format!("(could not run `{} {flag}`: {e})", path.display()),
+        Err(_) => format!("(`{} {flag}` did not answer within 30 s)", path.display()),
+    }
+}
+
+/// A random-enough workspace id: BLAKE3 of time, pid and path.
+fn new_workspace_id(root: &Path) -> String {
+    let seed = format!(
+        "{}-{}-{}",
+        Utc::now().timestamp_nanos_opt().unwrap_or(0),
+        std::process::id(),
+        root.display()
+    );
+    blake3::hash(seed.as_bytes()).to_hex()[..16].to_string()
+}
+
+/// Create the workspace records of a campaign (first run) or check that an existing
+/// workspace belongs to this campaign file. Start files are hashed before anything is
+/// written, so a missing start file leaves no workspace behind.
+pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<PreparedWorkspace> {
+    for (name, file) in &campaign.start {
+        if !file.is_file() {
+            bail!(
+                "{}: start file `{name}` ({}) does not exist; fix `start:` or create the file",
+                campaign.file.display(),
+                file.display()
+            );
+        }
+    }
+    std::fs::create_dir_all(&paths.root)
+        .with_context(|| format!("{}: cannot create the workspace", paths.root.display()))?;
+    let lock = store::lock(&paths.root)?;
+    let pool = store::open(&paths.db).await?;
+    let artifacts = ArtifactStore::open(&paths.store).with_context(|| {
+        format!(
+            "{}: cannot create the artifact store",
+            paths.store.display()
+        )
+    })?;
+    let hash = spec_hash(&campaign.text);
+    let workspace_id = match store::campaign_row(&pool).await? {
+        Some(row) => {
+            if row.spec_blake3 != hash {
+                bail!(
+                    "{}: this workspace was made from a different campaign file (BLAKE3 {} at \
+                     its first run, {} now); restore the file, or run the changed campaign in \
+                     a new workspace with --workspace",
+                    paths.root.display(),
+                    &row.spec_blake3[..12],
+                    &hash[..12]
+                );
+            }
+            row.workspace_id
+        }
+        None => {
+            let workspace_id = new_workspace_id(&paths.root);
+            let mut starts = Vec::new();
+            for (name, file) in &campaign.start {
+                let (h, size) = artifacts
+                    .put_file(file)
+                    .with_context(|| format!("{}: cannot store the start file", file.display()))?;
+                let fname = file
+                    .file_name()
+                    .map(|f| f.to_string_lossy().into_owned())
+                    .unwrap_or_else(|| name.clone());
+                starts.push((name.clone(), h, size, fname));
+            }
+            let mut tx = pool.begin().await?;
+            sqlx::query(
+                "INSERT INTO campaign(id, name, spec_path, spec_text, spec_blake3, created_at, \
+                 rondo_version, workspace_id) VALUES (1,?,?,?,?,?,?,?)",
+            )
+            .bind(&campaign.name)
+            .bind(campaign.file.display().to_string())
+            .bind(&campaign.text)
+            .bind(&hash)
+            .bind(store::now())
+            .bind(RONDO_VERSION)
+            .bind(&workspace_id)
+            .execute(&mut *tx)
+            .await?;
+            for p in &campaign.points {
+                sqlx::query(
+                    "INSERT INTO points(id, idx, values_json, state) VALUES (?,?,?,'planned')",
+                )
+                .bind(&p.id)
+                .bind(p.index as i64)
+                .bind(values_json(p).to_string())
+                .execute(&mut *tx)
+                .await?;
+            }
+            for (name, h, size, fname) in &starts {
+                store::artifact(&mut *tx, h, *size, fname).await?;
+                sqlx::query("INSERT INTO start_files(name, artifact) VALUES (?,?)")
+                    .bind(name)
+                    .bind(h)
+                    .execute(&mut *tx)
+                    .await?;
+            }
+            store::event(
+                &mut *tx,
+                "campaign-created",
+                None,
+                None,
+                None,
+                &campaign.name,
+            )
+            .await?;
+            tx.commit().await?;
+            workspace_id
+        }
+    };
+    Ok(PreparedWorkspace {
+        pool,
+        artifacts,
+        workspace_id,
+        _lock: lock,
+    })
+}
+
+/// An open, locked workspace.
+pub struct PreparedWorkspace {
+    /// The database.
+    pub pool: SqlitePool,
+    /// The artifact store.
+    pub artifacts: ArtifactStore,
+    /// The id children are tagged with.
+    pub workspace_id: String,
+    _lock: store::WorkspaceLock,
+}
+
+/// Sweep values of a point as a JSON object.
+pub fn values_json(p: &PointSpec) -> serde_json::Value {
+    serde_json::Value::Object(
+        p.values
+            .iter()
+            .map(|(k, v)| (k.clone(), v.to_json()))
+            .collect(),
+    )
+}
+
+/// Where a point stands in memory.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum PointPhase {
+    /// Has work to do.
+    Active,
+    /// Stopped (converged, capped, failed, cancelled).
+    Done,
+}
+
+#[derive(Debug)]
+struct PointRun {
+    spec: PointSpec,
+    phase: PointPhase,
+    iteration: u32,
+    next_stage: usize,
+    outstanding: Option<i64>,
+}
+
+/// An attempt in flight.
+#[derive(Debug, Clone)]
+struct InFlight {
+    point: usize,
+    stage: usize,
+    iteration: u32,
+    attempt: u32,
+    workdir: PathBuf,
+}
+
+/// How an attempt ended, after output checks.
+enum Ended {
+    Ok {
+        metrics: Vec<Metric>,
+        started: Option<DateTime<Utc>>,
+        ended: Option<DateTime<Utc>>,
+        host: Option<String>,
+        event: Option<String>,
+    },
+    Failed {
+        kind: String,
+        message: String,
+        exit_status: Option<i32>,
+        started: Option<DateTime<Utc>>,
+        ended: Option<DateTime<Utc>>,
+        host: Option<String>,
+        /// Lost or stopped by rondo: does not use up a retry.
+        free: bool,
+        /// Final state of the attempt row.
+        state: &'static str,
+    },
+}
+
+struct Engine<'a> {
+    campaign: &'a Campaign,
+    opts: &'a RunOptions,
+    paths: Paths,
+    pool: SqlitePool,
+    artifacts: ArtifactStore,
+    executor: Arc<dyn Executor>,
+    host: String,
+    points: Vec<PointRun>,
+    ready: VecDeque<usize>,
+    inflight: HashMap<i64, InFlight>,
+    programs: ProgramCache,
+    rondo_exe: (PathBuf, String),
+    progress: Progress,
+    parameters: serde_json::Map<String, serde_json::Value>,
+}
+
+/// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
+/// or `rondo cancel` asks to stop.
+pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> Result<RunSummary> {
+    let paths = Paths::of(&opts.workspace);
+    let ws = prepare_workspace(campaign, &paths).await?;
+    // A cancel request left from before this run is void: running again means go on.
+    let _ = std::fs::remove_file(&paths.cancel_request);
+    std::fs::create_dir_all(&paths.scratch)
+        .with_context(|| format!("{}: cannot create", paths.scratch.display()))?;
+    let (tx, rx) = mpsc::unbounded_channel::<Completion>();
+    let executor: Arc<dyn Executor> = match &opts.executor {
+        ExecutorChoice::Local => Arc::new(
+            LocalExecutor::new(opts.jobs, ws.workspace_id.clone(), tx).with_grace(opts.grace),
+        ),
+        ExecutorChoice::Slurm(cfg) => {
+            let mut cfg = cfg.clone();
+            cfg.max_jobs = cfg.max_jobs.min(opts.jobs.max(1));
+            Arc::new(SlurmExecutor::new(cfg, ws.workspace_id.clone(), tx))
+        }
+    };
+    let rondo_exe = std::env::current_exe().unwrap_or_else(|_| PathBuf::from("rondo"));
+    let rondo_hash = hash_file(&rondo_exe).map(|(h, _)| h).unwrap_or_default();
+    let mut parameters = serde_json::Map::new();
+    for (k, v) in &campaign.parameters {
+        parameters.insert(k.clone(), v.to_json());
+    }
+    let mut engine = Engine {
+        campaign,
+        opts,
+        paths,
+        pool: ws.pool.clone(),
+        artifacts: ws.artifacts.clone(),
+        executor,
+        host: store::hostname(),
+        points: Vec::new(),
+        ready: VecDeque::new(),
+        inflight: HashMap::new(),
+        programs: ProgramCache::default(),
+        rondo_exe: (rondo_exe, rondo_hash),
+        progress,
+        parameters,
+    };
+    store::event(
+        &engine.pool,
+        "run-started",
+        None,
+        None,
+        None,
+        &format!(
+            "pid {} on {}; executor {}; jobs {}",
+            std::process::id(),
+            engine.host,
+            opts.executor.kind(),
+            opts.jobs
+        ),
+    )
+    .await?;
+    let result = engine.main(rx).await;
+    let summary = match result {
+        Ok(s) => s,
+        Err(e) => {
+            let _ = engine
+                .executor
+                .shutdown(Shutdown::Terminate { grace: opts.grace })
+                .await;
+            let _ = store::event(
+                &engine.pool,
+                "run-error",
+                None,
+                None,
+                None,
+                &format!("{e:#}"),
+            )
+            .await;
+            engine.progress.finish();
+            return Err(e);
+        }
+    };
+    store::event(
+        &engine.pool,
+        "run-ended",
+        None,
+        None,
+        None,
+        &format!("{:?}", summary.states),
+    )
+    .await?;
+    engine.progress.finish();
+    engine.pool.close().await;
+    drop(ws);
+    Ok(summary)
+}
+
+impl Engine<'_> {
+    async fn main(&mut self, mut rx: mpsc::UnboundedReceiver<Completion>) -> Result<RunSummary> {
+        self.restore().await?;
+        self.reconcile(&mut rx).await?;
+        let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
+            .context("cannot install the SIGINT handler")?;
+        let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
+            .context("cannot install the SIGTERM handler")?;
+        let mut tick = tokio::time::interval(Duration::from_millis(500));
+        tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+        let mut interrupted = false;
+        let mut cancelled = false;
+        loop {
+            self.schedule().await?;
+            self.show();
+            if self.inflight.is_empty() && self.points.iter().all(|p| p.phase == PointPhase::Done) {
+                break;
+            }
+            if self.inflight.is_empty() && self.ready.is_empty() {
+                bail!("internal: no attempt in flight and no point ready, yet not every point stopped");
+            }
+            tokio::select! {
+                c = rx.recv() => match c {
+                    Some(c) => self.on_completion(c).await?,
+                    None => bail!("the executor's completion channel closed"),
+                },
+                _ = sigint.recv() => { interrupted = true; break; }
+                _ = sigterm.recv() => { interrupted = true; break; }
+                _ = tick.tick() => {
+                    if self.paths.cancel_request.exists() {
+                        cancelled = true;
+                        break;
+                    }
+                }
+            }
+        }
+        if interrupted || cancelled {
+            self.stop_everything(&mut rx, cancelled).await?;
+        }
+        let mut states = BTreeMap::new();
+        for row in sqlx::query("SELECT state, count(*) AS n FROM points GROUP BY state")
+            .fetch_all(&self.pool)
+            .await?
+        {
+            states.insert(
+                row.get::<String, _>("state"),
+                row.get::<i64, _>("n") as usize,
+            );
+        }
+        Ok(RunSummary {
+            states,
+            interrupted,
+            cancelled,
+        })
+    }
+
+    /// Rebuild each point's place from the store.
+    async fn restore(&mut self) -> Result<()> {
+        for spec in &self.campaign.points {
+            let state: String = sqlx::query_scalar("SELECT state FROM points WHERE id = ?")
+                .bind(&spec.id)
+                .fetch_one(&self.pool)
+                .await?;
+            let mut run = PointRun {
+                spec: spec.clone(),
+                phase: PointPhase::Active,
+                iteration: 1,
+                next_stage: 0,
+                outstanding: None,
+            };
+            let resumable = match state.as_str() {
+                "converged" | "capped" => false,
+                "failed" => self.opts.retry_failed,
+                _ => true,
+            };
+            if !resumable {
+                run.phase = PointPhase::Done;
+                self.points.push(run);
+                continue;
+            }
+            let last: Option<(i64, String)> = sqlx::query_as(
+                "SELECT iteration, state FROM iterations WHERE point = ? ORDER BY iteration DESC LIMIT 1",
+            )
+            .bind(&spec.id)
+            .fetch_optional(&self.pool)
+            .await?;
+            let mut tx = self.pool.begin().await?;
+            match last {
+                None => {
+                    sqlx::query(
+                        "INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,1,'running',?)",
+                    )
+                    .bind(&spec.id)
+                    .bind(store::now())
+                    .execute(&mut *tx)
+                    .await?;
+                }
+                Some((it, st)) => {
+                    run.iteration = it as u32;
+                    if st == "failed" || st == "cancelled" {
+                        // Only reached with --retry-failed or after a cancel: run it again.
+                        sqlx::query("UPDATE iterations SET state = 'running', ended_at = NULL WHERE point = ? AND iteration = ?")
+                            .bind(&spec.id)
+                            .bind(it)
+                            .execute(&mut *tx)
+                            .await?;
+                    } else if st == "good" {
+                        // The decision after a good iteration is committed with it; a good
+                        // last iteration of a resumable point means the next one is due.
+                        run.iteration = it as u32 + 1;
+                        sqlx::query(
+                            "INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)",
+                        )
+                        .bind(&spec.id)
+                        .bind(it + 1)
+                        .bind(store::now())
+                        .execute(&mut *tx)
+                        .await?;
+                    }
+                }
+            }
+            if state != "planned" && state != "running" {
+                sqlx::query("UPDATE points SET state = 'running', reason = NULL WHERE id = ?")
+                    .bind(&spec.id)
+                    .execute(&mut *tx)
+                    .await?;
+                store::event(
+                    &mut *tx,
+                    "point-resumed",
+                    Some(&spec.id),
+                    Some(run.iteration),
+                    None,
+                    &format!("was {state}"),
+                )
+                .await?;
+            }
+            tx.commit().await?;
+            run.next_stage = self.first_unfinished_stage(&spec.id, run.iteration).await?;
+            self.points.push(run);
+        }
+        Ok(())
+    }
+
+    async fn first_unfinished_stage(&self, point: &str, iteration: u32) -> Result<usize> {
+        let done: Vec<String> = sqlx::query_scalar(
+            "SELECT stage FROM attempts WHERE point = ? AND iteration = ? AND state = 'succeeded'",
+        )
+        .bind(point)
+        .bind(i64::from(iteration))
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(self
+            .campaign
+            .stages
+            .iter()
+            .position(|s| !done.contains(&s.name))
+            .unwrap_or(self.campaign.stages.len()))
+    }
+
+    /// Settle attempts an earlier orchestrator left planned, submitted or running.
+    async fn reconcile(&mut self, rx: &mut mpsc::UnboundedReceiver<Completion>) -> Result<()> {
+        let rows = sqlx::query(
+            "SELECT id, point, iteration, stage, attempt, executor, handle_id, host, workdir FROM attempts \
+             WHERE state IN ('planned', 'submitted', 'running') ORDER BY id",
+        )
+        .fetch_all(&self.pool)
+        .await?;
+        for row in rows {
+            let id: i64 = row.get("id");
+            let point_id: String = row.get("point");
+            let iteration = row.get::<i64, _>("iteration") as u32;
+            let stage_name: String = row.get("stage");
+            let executor: String = row.get("executor");
+            let handle_id: Option<String> = row.get("handle_id");
+            let host: Option<String> = row.get("host");
+            let workdir = PathBuf::from(row.get::<String, _>("workdir"));
+            let pidx = self.points.iter().position(|p| p.spec.id == point_id);
+            let sidx = self
+                .campaign
+                .stages
+                .iter()
+                .position(|s| s.name == stage_name);
+            let lost = |reason: String| Ended::Failed {
+                kind: "lost".into(),
+                message: reason,
+                exit_status: None,
+                started: None,
+                ended: Some(Utc::now()),
+                host: None,
+                free: true,
+                state: "lost",
+            };
+            if executor == "builtin" {
+                self.settle(
+                    id,
+                    None,
+                    lost("the orchestrator stopped during a built-in stage".into()),
+                )
+                .await?;
+                continue;
+            }
+            if executor != self.opts.executor.kind() {
+                bail!(
+                    "attempt {id} ({point_id} iteration {iteration} stage {stage_name}) was left \
+                     outstanding on the `{executor}` executor; continue with --executor {executor} \
+                     so it can be reconciled"
+                );
+            }
+            let handle = Handle {
+                executor: executor.clone(),
+                id: handle_id.clone().unwrap_or_default(),
+                host: host.clone().unwrap_or_else(|| self.host.clone()),
+            };
+            let answer = self
+                .executor
+                .reattach(id, &handle, &workdir)
+                .await
+                .with_context(|| format!("cannot reconcile attempt {id}"))?;
+            let (Some(p), Some(s)) = (pidx, sidx) else {
+                self.settle(
+                    id,
+                    None,
+                    lost("its point or stage is not in the campaign".into()),
+                )
+                .await?;
+                continue;
+            };
+            let fl = InFlight {
+                point: p,
+                stage: s,
+                iteration,
+                attempt: row.get::<i64, _>("attempt") as u32,
+                workdir,
+            };
+            match answer {
+                Reattached::Active => {
+                    store::event(
+                        &self.pool,
+                        "attempt-adopted",
+                        Some(&point_id),
+                        Some(iteration),
+                        Some(id),
+                        "still queued or running",
+                    )
+                    .await?;
+                    self.points[p].outstanding = Some(id);
+                    self.inflight.insert(id, fl);
+                }
+                Reattached::Finished(c) => {
+                    store::event(
+                        &self.pool,
+                        "attempt-adopted",
+                        Some(&point_id),
+                        Some(iteration),
+                        Some(id),
+                        "finished while no orchestrator watched",
+                    )
+                    .await?;
+                    self.points[p].outstanding = Some(id);
+                    self.inflight.insert(id, fl);
+                    self.on_completion(c).await?;
+                }
+                Reattached::Gone { reason } => {
+                    self.settle(
+                        id,
+                        Some(&fl),
+                        lost(format!("lost when the orchestrator stopped: {reason}")),
+                    )
+                    .await?;
+                }
+            }
+        }
+        // Completions that arrived during the reattach calls are processed by the main loop.
+        let _ = rx;
+        for (i, p) in self.points.iter().enumerate() {
+            if p.phase == PointPhase::Active && p.outstanding.is_none() {
+                self.ready.push_back(i);
+            }
+        }
+        Ok(())
+    }
+
+    /// Start work for ready points while slots are free.
+    async fn schedule(&mut self) -> Result<()> {
+        let slots = self.executor.slots().max(1);
+        let mut waiting = VecDeque::new();
+        while let Some(p) = self.ready.pop_front() {
+            if self.points[p].phase != PointPhase::Active || self.points[p].outstanding.is_some() {
+                continue;
+            }
+            if self.points[p].next_stage >= self.campaign.stages.len() {
+                self.finish_iteration(p).await?;
+                if self.points[p].phase == PointPhase::Active {
+                    self.ready.push_back(p);
+                }
+                continue;
+            }
+            let stage = &self.campaign.stages[self.points[p].next_stage];
+            let is_builtin = matches!(stage.kind, StageKind::Mix(_));
+            if !is_builtin && self.inflight.len() >= slots {
+                waiting.push_back(p);
+                continue;
+            }
+            self.start_attempt(p).await?;
+            if self.points[p].outstanding.is_none() && self.points[p].phase == PointPhase::Active {
+                // A built-in ran to its end, or a launch failed at once: go on with this point.
+                self.ready.push_back(p);
+            }
+        }
+        self.ready = waiting;
+        Ok(())
+    }
+
+    fn show(&mut self) {
+        let mut active = 0;
+        let mut done = 0;
+        let mut its = Vec::new();
+        for p in &self.points {
+            match p.phase {
+                PointPhase::Active => {
+                    active += 1;
+                    its.push(format!("{}:{}", p.spec.id, p.iteration));
+                }
+                PointPhase::Done => done += 1,
+            }
+        }
+        self.progress.status(format!(
+            "{done}/{} points stopped · {active} active · {} attempts running · {}",
+            self.points.len(),
+            self.inflight.len(),
+            its.join(" ")
+        ));
+    }
+
+    /// Resolve the artifact feeding one input of a stage.
+    async fn input_hash(
+        &self,
+        point: &str,
+        iteration: u32,
+        src: &Source,
+    ) -> Result<Option<String>> {
+        let output_of = |stage: &str, role: &str, it: u32| {
+            let stage = stage.to_string();
+            let role = role.to_string();
+            async move {
+                let h: Option<String> = sqlx::query_scalar(
+                    "SELECT o.artifact FROM attempts a JOIN attempt_outputs o ON o.attempt_id = a.id \
+                     WHERE a.point = ? AND a.iteration = ? AND a.stage = ? AND a.state = 'succeeded' AND o.role = ?",
+                )
+                .bind(point)
+                .bind(i64::from(it))
+                .bind(&stage)
+                .bind(&role)
+                .fetch_optional(&self.pool)
+                .await?;
+                anyhow::Ok(h)
+            }
+        };
+        let start = |name: &str| {
+            let name = name.to_string();
+            async move {
+                let h: Option<String> =
+                    sqlx::query_scalar("SELECT artifact FROM start_files WHERE name = ?")
+                        .bind(&name)
+                        .fetch_optional(&self.pool)
+                        .await?;
+                anyhow::Ok(h)
+            }
+        };
+        match src {
+            Source::Same { stage, role } => output_of(stage, role, iteration).await,
+            Source::Start(name) => start(name).await,
+            Source::Previous {
+                stage,
+                role,
+                initially,
+            } => {
+                if iteration > 1 {
+                    output_of(stage, role, iteration - 1).await
+                } else {
+                    match initially {
+                        Some(name) => start(name).await,
+                        None => Ok(None),
+                    }
+                }
+            }
+        }
+    }
+
+    /// Plan, record and launch (or run, for built-ins) the next attempt of a point.
+    async fn start_attempt(&mut self, p: usize) -> Result<()> {
+        let sidx = self.points[p].next_stage;
+        let stage = self.campaign.stages[sidx].clone();
+        let point = self.points[p].spec.clone();
+        let iteration = self.points[p].iteration;
+        let attempt: i64 = sqlx::query_scalar(
+            "SELECT coalesce(max(attempt), 0) + 1 FROM attempts WHERE point = ? AND iteration = ? AND stage = ?",
+        )
+        .bind(&point.id)
+        .bind(i64::from(iteration))
+        .bind(&stage.name)
+        .fetch_one(&self.pool)
+        .await?;
+        let attempt = attempt as u32;
+        let workdir = self
+            .paths
+            .scratch
+            .join(&point.id)
+            .join(format!("i{iteration:04}"))
+            .join(format!("{}.a{attempt}", stage.name));
+        if workdir.exists() {
+            std::fs::remove_dir_all(&workdir)
+                .with_context(|| format!("{}: cannot clear the scratch dir", workdir.display()))?;
+        }
+        let inputs_dir = workdir.join("inputs");
+        std::fs::create_dir_all(&inputs_dir)
+            .with_context(|| format!("{}: cannot create", inputs_dir.display()))?;
+        // Inputs: resolve and place.
+        let mut inputs: Vec<(String, String, PathBuf)> = Vec::new();
+        for (role, src) in &stage.inputs {
+            let Some(hash) = self.input_hash(&point.id, iteration, src).await? else {
+                if matches!(stage.kind, StageKind::Mix(_)) || iteration == 1 {
+                    continue;
+                }
+                bail!(
+                    "internal: input `{role}` of stage `{}` at {} iteration {iteration} has no artifact",
+                    stage.name,
+                    point.id
+                );
+            };
+            let ext: String = sqlx::query_scalar::<_, String>(
+                "SELECT original_name FROM artifacts WHERE hash = ?",
+            )
+            .bind(&hash)
+            .fetch_one(&self.pool)
+            .await
+            .map(|n| {
+                Path::new(&n)
+                    .extension()
+                    .map(|e| format!(".{}", e.to_string_lossy()))
+                    .unwrap_or_default()
+            })?;
+            let dest = inputs_dir.join(format!("{role}{ext}"));
+            std::fs::copy(self.artifacts.path_of(&hash), &dest)
+                .with_context(|| format!("cannot place artifact {hash} as {}", dest.display()))?;
+            let rel = format!("inputs/{role}{ext}");
+            inputs.push((role.clone(), hash, PathBuf::from(rel)));
+        }
+        // The mixer's own history: the state of the previous iteration's attempt.
+        let mut mix_state: Option<String> = None;
+        if matches!(stage.kind, StageKind::Mix(_)) && iteration > 1 {
+            let src = Source::Previous {
+                stage: stage.name.clone(),
+                role: "state".into(),
+                initially: None,
+            };
+            if let Some(h) = self.input_hash(&point.id, iteration, &src).await? {
+                let dest = inputs_dir.join("state.json");
+                std::fs::copy(self.artifacts.path_of(&h), &dest).with_context(|| {
+                    format!("cannot place the mixer state as {}", dest.display())
+                })?;
+                inputs.push((
+                    "state".into(),
+                    h.clone(),
+                    PathBuf::from("inputs/state.json"),
+                ));
+                mix_state = Some(h);
+            }
+        }
+        let _ = mix_state;
+        let seed = rondo_numerics::rng::derive_seed(
+            self.campaign.seed,
+            &[
+                &self.campaign.name,
+                &point.id,
+                &iteration.to_string(),
+                &stage.name,
+            ],
+        );
+        let mut params = self.parameters.clone();
+        for (k, v) in &point.values {
+            params.insert(k.clone(), v.to_json());
+        }
+        let (argv, program_path, program_hash, program_version, uses_seed, executor_kind) =
+            match &stage.kind {
+                StageKind::Mix(with) => (
+                    builtins::mix_argv(with),
+                    self.rondo_exe.0.clone(),
+                    self.rondo_exe.1.clone(),
+                    Some(format!("rondo {RONDO_VERSION}")),
+                    false,
+                    "builtin",
+                ),
+                StageKind::Command {
+                    template,
+                    program,
+                    shell,
+                } => {
+                    let resolved = self.campaign.programs.get(program).cloned();
+                    let Some(resolved) = resolved else {
+                        bail!("internal: program `{program}` was not resolved");
+                    };
+                    let (hash, version) = self
+                        .programs
+                        .get(&resolved.path, resolved.version_flag.as_deref())
+                        .await;
+                    let lookup = |ns: Option<&str>, name: &str| -> Option<String> {
+                        match (ns, name) {
+                            (Some("param"), n) => point
+                                .values
+                                .iter()
+                                .find(|(k, _)| k == n)
+                                .map(|(_, v)| v.to_string())
+                                .or_else(|| {
+                                    self.campaign
+                                        .parameters
+                                        .iter()
+                                        .find(|(k, _)| k == n)
+                                        .map(|(_, v)| v.to_string())
+                                }),
+                            (Some("input"), n) => inputs
+                                .iter()
+                                .find(|(r, _, _)| r == n)
+                                .map(|(_, _, f)| f.display().to_string()),
+                            (Some("output"), n) => stage
+                                .outputs
+                                .iter()
+                                .find(|(r, _)| r == n)
+                                .map(|(_, f)| f.clone()),
+                            (Some("point"), "id") => Some(point.id.clone()),
+                            (Some("point"), "index") => Some(point.index.to_string()),
+                            (None, "iteration") => Some(iteration.to_string()),
+                            (None, "cpus") => Some(stage.resources.cpus().to_string()),
+                            (None, "tasks") => {
+                                Some(stage.resources.ntasks.unwrap_or(1).to_string())
+                            }
+                            (None, "seed") => Some(seed.to_string()),
+                            (None, "stage") => Some(stage.name.clone()),
+                            (None, "campaign") => Some(self.campaign.name.clone()),
+                            (None, "workdir") => Some(workdir.display().to_string()),
+                            _ => None,
+                        }
+                    };
+                    let rendered = if *shell {
+                        template.render_shell(lookup)
+                    } else {
+                        template.render(lookup)
+                    };
+                    let mut argv = match rendered {
+                        Ok(a) => a,
+                        Err(e) => bail!("stage `{}`: {e}", stage.name),
+                    };
+                    let path_text = resolved.path.display().to_string();
+                    if *shell {
+                        if let Some(script) = argv.get_mut(2) {
+                            if let Some(rest) = script.strip_prefix(program.as_str()) {
+                                *script = format!("{}{rest}", shell_quote(&path_text));
+                            }
+                        }
+                    } else if let Some(first) = argv.first_mut() {
+                        *first = path_text;
+                    }
+                    if let Some(launcher) = &stage.resources.launcher {
+                        let t = Template::parse(launcher).map_err(|e| {
+                            anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name)
+                        })?;
+                        let mut pre = t.render(lookup).map_err(|e| {
+                            anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name)
+                        })?;
+                        pre.extend(argv);
+                        argv = pre;
+                    }
+                    let uses_seed = template
+                        .placeholders()
+                        .any(|(ns, n, _)| ns.is_none() && n == "seed");
+                    (
+                        argv,
+                        resolved.path.clone(),
+                        hash,
+                        version,
+                        uses_seed,
+                        self.opts.executor.kind(),
+                    )
+                }
+            };
+        // Record the planned attempt before anything runs.
+        let mut tx = self.pool.begin().await?;
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO attempts(point, iteration, stage, attempt, state, argv_json, workdir, executor, \
+             program_path, program_blake3, program_version, parameters_json, seed, rondo_version, created_at) \
+             VALUES (?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?) RETURNING id",
+        )
+        .bind(&point.id)
+        .bind(i64::from(iteration))
+        .bind(&stage.name)
+        .bind(i64::from(attempt))
+        .bind(serde_json::to_string(&argv)?)
+        .bind(workdir.display().to_string())
+        .bind(executor_kind)
+        .bind(program_path.display().to_string())
+        .bind(&program_hash)
+        .bind(&program_version)
+        .bind(serde_json::Value::Object(params).to_string())
+        .bind(uses_seed.then(|| seed.to_string()))
+        .bind(RONDO_VERSION)
+        .bind(store::now())
+        .fetch_one(&mut *tx)
+        .await?;
+        for (role, hash, _) in &inputs {
+            sqlx::query("INSERT INTO attempt_inputs(attempt_id, role, artifact) VALUES (?,?,?)")
+                .bind(id)
+                .bind(role)
+                .bind(hash)
+                .execute(&mut *tx)
+                .await?;
+        }
+        sqlx::query("UPDATE points SET state = 'running' WHERE id = ? AND state = 'planned'")
+            .bind(&point.id)
+            .execute(&mut *tx)
+            .await?;
+        tx.commit().await?;
+        let fl = InFlight {
+            point: p,
+            stage: sidx,
+            iteration,
+            attempt,
+            workdir: workdir.clone(),
+        };
+        match &stage.kind {
+            StageKind::Mix(with) => {
+                let started = Utc::now();
+                sqlx::query(
+                    "UPDATE attempts SET state = 'running', started_at = ?, host = ? WHERE id = ?",
+                )
+                .bind(store::time_text(started))
+                .bind(&self.host)
+                .bind(id)
+                .execute(&self.pool)
+                .await?;
+                let out_name = stage
+                    .outputs
+                    .first()
+                    .map(|(_, f)| f.clone())
+                    .unwrap_or_default();
+                let new = inputs
+                    .iter()
+                    .find(|(r, _, _)| r == "new")
+                    .map(|(_, _, f)| workdir.join(f));
+                let state = inputs
+                    .iter()
+                    .find(|(r, _, _)| r == "state")
+                    .map(|(_, _, f)| workdir.join(f));
+                let result = match new {
+                    None => Err("the input `new` has no artifact".to_string()),
+                    Some(new) => builtins::mix(
+                        with,
+                        &new,
+                        state.as_deref(),
+                        &workdir.join(&out_name),
+                        &workdir.join(builtins::STATE_FILE),
+                    ),
+                };
+                let ended = match result {
+                    Ok(report) => {
+                        let mut ended = self.check_outputs(
+                            &stage,
+                            &workdir,
+                            Some(report.metrics),
+                            Some(started),
+                            Some(Utc::now()),
+                            Some(self.host.clone()),
+                        );
+                        if let Ended::Ok { event, .. } = &mut ended {
+                            *event = report.event;
+                        }
+                        ended
+                    }
+                    Err(message) => Ended::Failed {
+                        kind: "builtin-failed".into(),
+                        message,
+                        exit_status: None,
+                        started: Some(started),
+                        ended: Some(Utc::now()),
+                        host: Some(self.host.clone()),
+                        free: false,
+                        state: "failed",
+                    },
+                };
+                self.settle(id, Some(&fl), ended).await?;
+            }
+            StageKind::Command { .. } => {
+                let mut env = BTreeMap::new();
+                env.insert("RONDO_POINT".to_string(), point.id.clone());
+                env.insert("RONDO_ITERATION".to_string(), iteration.to_string());
+                env.insert("RONDO_STAGE".to_string(), stage.name.clone());
+                let req = LaunchRequest {
+                    attempt_id: id,
+                    job_name: format!(
+                        "{}.{}.i{}.{}",
+                        self.campaign.name, point.id, iteration, stage.name
+                    ),
+                    argv,
+                    workdir: workdir.clone(),
+                    env,
+                    time_limit: stage.time_limit,
+                    resources: stage.resources.clone(),
+                };
+                self.points[p].outstanding = Some(id);
+                self.inflight.insert(id, fl.clone());
+                match self.executor.launch(req).await {
+                    Ok(handle) => {
+                        let state = if self.opts.executor.kind() == "local" {
+                            "running"
+                        } else {
+                            "submitted"
+                        };
+                        sqlx::query(
+                            "UPDATE attempts SET state = ?, handle_id = ?, host = ?, started_at = coalesce(started_at, ?) \
+                             WHERE id = ? AND state = 'planned'",
+                        )
+                        .bind(state)
+                        .bind(&handle.id)
+                        .bind(&handle.host)
+                        .bind(store::now())
+                        .bind(id)
+                        .execute(&self.pool)
+                        .await?;
+                    }
+                    Err(e) => {
+                        let ended = Ended::Failed {
+                            kind: "launch-failed".into(),
+                            message: e.to_string(),
+                            exit_status: None,
+                            started: None,
+                            ended: Some(Utc::now()),
+                            host: None,
+                            free: false,
+                            state: "failed",
+                        };
+                        self.settle(id, Some(&fl), ended).await?;
+                    }
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// Output checks after a clean exit (or a built-in's end).
+    fn check_outputs(
+        &self,
+        stage: &Stage,
+        workdir: &Path,
+        builtin_metrics: Option<Vec<Metric>>,
+        started: Option<DateTime<Utc>>,
+        ended: Option<DateTime<Utc>>,
+        host: Option<String>,
+    ) -> Ended {
+        let fail = |inv: validate::Invalid| Ended::Failed {
+            kind: inv.kind.to_string(),
+            message: inv.message,
+            exit_status: Some(0),
+            started,
+            ended,
+            host: host.clone(),
+            free: false,
+            state: "failed",
+        };
+        for (role, file) in &stage.outputs {
+            if let Err(inv) =
+                validate::check_output(&workdir.join(file), role, stage.allow_nonfinite)
+            {
+                return fail(inv);
+            }
+        }
+        let metrics = match builtin_metrics {
+            Some(m) => m,
+            None => match validate::read_metrics(
+                workdir,
+                &stage.required_metrics,
+                stage.allow_nonfinite,
+            ) {
+                Ok(m) => m,
+                Err(inv) => return fail(inv),
+            },
+        };
+        Ended::Ok {
+            metrics,
+            started,
+            ended,
+            host,
+            event: None,
+        }
+    }
+
+    async fn on_completion(&mut self, c: Completion) -> Result<()> {
+        let Some(fl) = self.inflight.get(&c.attempt_id).cloned() else {
+            tracing::warn!(
+                attempt = c.attempt_id,
+                "completion for an attempt not in flight"
+            );
+            return Ok(());
+        };
+        let stage = self.campaign.stages[fl.stage].clone();
+        let failed = |kind: &str,
+                      message: String,
+                      exit_status: Option<i32>,
+                      free: bool,
+                      state: &'static str| Ended::Failed {
+            kind: kind.to_string(),
+            message,
+            exit_status,
+            started: c.started_at,
+            ended: c.ended_at,
+            host: c.host.clone(),
+            free,
+            state,
+        };
+        let ended = match &c.outcome {
+            Outcome::Exited { code: 0 } => self.check_outputs(
+                &stage,
+                &fl.workdir,
+                None,
+                c.started_at,
+                c.ended_at,
+                c.host.clone(),
+            ),
+            Outcome::Exited { code } => failed(
+                "exit-status",
+                format!("exited with status {code}{}", stderr_tail(&fl.workdir)),
+                Some(*code),
+                false,
+                "failed",
+            ),
+            Outcome::Signaled { signal } => failed(
+                "signal",
+                format!("killed by signal {signal}{}", stderr_tail(&fl.workdir)),
+                None,
+                false,
+                "failed",
+            ),
+            Outcome::TimedOut => failed(
+                "timeout",
+                format!(
+                    "exceeded its time limit{}",
+                    stage
+                        .time_limit
+                        .map(|d| format!(" of {} s", d.as_secs()))
+                        .unwrap_or_default()
+                ),
+                None,
+                false,
+                "failed",
+            ),
+            Outcome::Cancelled { by } if by == "rondo" => failed(
+                "cancelled",
+                "stopped by rondo".into(),
+                None,
+                true,
+                "cancelled",
+            ),
+            Outcome::Cancelled { by } => failed(
+                "cancelled",
+                format!("cancelled by {by}"),
+                None,
+                false,
+                "failed",
+            ),
+            Outcome::NodeFailure => failed(
+                "node-failure",
+                "its node failed".into(),
+                None,
+                false,
+                "failed",
+            ),
+            Outcome::Preempted => failed(
+                "preempted",
+                "preempted by the scheduler".into(),
+                None,
+                false,
+                "failed",
+            ),
+            Outcome::LaunchFailed { message } => {
+                failed("launch-failed", message.clone(), None, false, "failed")
+            }
+            Outcome::Lost { reason } => failed("lost", reason.clone(), None, true, "lost"),
+        };
+        self.settle(c.attempt_id, Some(&fl), ended).await
+    }
+
+    /// Record the end of an attempt and move its point on.
+    async fn settle(&mut self, id: i64, fl: Option<&InFlight>, ended: Ended) -> Result<()> {
+        self.inflight.remove(&id);
+        let stage = fl.map(|f| self.campaign.stages[f.stage].clone());
+        match ended {
+            Ended::Ok {
+                metrics,
+                started,
+                ended,
+                host,
+                event,
+            } => {
+                let (Some(fl), Some(stage)) = (fl, stage) else {
+                    bail!("internal: success without a stage");
+                };
+                // Artifacts into the store first, then one transaction.
+                let mut outs: Vec<(String, String, u64, String)> = Vec::new();
+                let mut files: Vec<(String, String)> = stage.outputs.clone();
+                if matches!(stage.kind, StageKind::Mix(_)) {
+                    files.push(("state".into(), builtins::STATE_FILE.into()));
+                }
+                if fl.workdir.join(validate::METRICS_FILE).is_file() {
+                    files.push(("metrics".into(), validate::METRICS_FILE.into()));
+                }
+                for (role, file) in &files {
+                    let path = fl.workdir.join(file);
+                    let (h, size) = self
+                        .artifacts
+                        .put_file(&path)
+                        .with_context(|| format!("{}: cannot store the output", path.display()))?;
+                    outs.push((role.clone(), h, size, file.clone()));
+                }
+                let point_id = self.points[fl.point].spec.id.clone();
+                let mut tx = self.pool.begin().await?;
+                for (role, h, size, file) in &outs {
+                    store::artifact(&mut *tx, h, *size, file).await?;
+                    sqlx::query(
+                        "INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES (?,?,?)",
+                    )
+                    .bind(id)
+                    .bind(role)
+                    .bind(h)
+                    .execute(&mut *tx)
+                    .await?;
+                }
+                for m in &metrics {
+                    sqlx::query(
+                        "INSERT INTO metrics(attempt_id, name, value, error) VALUES (?,?,?,?)",
+                    )
+                    .bind(id)
+                    .bind(format!("{}.{}", stage.name, m.name))
+                    .bind(m.value)
+                    .bind(m.error)
+                    .execute(&mut *tx)
+                    .await?;
+                }
+                sqlx::query(
+                    "UPDATE attempts SET state = 'succeeded', exit_status = 0, ended_at = ?, \
+                     started_at = coalesce(?, started_at), host = coalesce(?, host) WHERE id = ?",
+                )
+                .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
+                .bind(started.map(store::time_text))
+                .bind(host)
+                .bind(id)
+                .execute(&mut *tx)
+                .await?;
+                if let Some(ev) = &event {
+                    store::event(
+                        &mut *tx,
+                        "mixer",
+                        Some(&point_id),
+                        Some(fl.iteration),
+                        Some(id),
+                        ev,
+                    )
+                    .await?;
+                }
+                tx.commit().await?;
+                if let Some(ev) = event {
+                    self.progress
+                        .line(format!("{point_id} iteration {}: {ev}", fl.iteration));
+                }
+                if !self.opts.keep_scratch {
+                    let _ = std::fs::remove_dir_all(&fl.workdir);
+                }
+                let pr = &mut self.points[fl.point];
+                pr.outstanding = None;
+                pr.next_stage = fl.stage + 1;
+                self.ready.push_back(fl.point);
+            }
+            Ended::Failed {
+                kind,
+                message,
+                exit_status,
+                started,
+                ended,
+                host,
+                free,
+                state,
+            } => {
+                sqlx::query(
+                    "UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, exit_status = ?, \
+                     ended_at = ?, started_at = coalesce(?, started_at), host = coalesce(?, host) WHERE id = ?",
+                )
+                .bind(state)
+                .bind(&kind)
+                .bind(&message)
+                .bind(exit_status)
+                .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
+                .bind(started.map(store::time_text))
+                .bind(host)
+                .bind(id)
+                .execute(&self.pool)
+                .await?;
+                let Some(fl) = fl else { return Ok(()) };
+                let Some(stage) = stage else { return Ok(()) };
+                let point_id = self.points[fl.point].spec.id.clone();
+                store::event(
+                    &self.pool,
+                    &format!("attempt-{state}"),
+                    Some(&point_id),
+                    Some(fl.iteration),
+                    Some(id),
+                    &format!("{kind}: {message}"),
+                )
+                .await?;
+                if free {
+                    let pr = &mut self.points[fl.point];
+                    pr.outstanding = None;
+                    self.ready.push_back(fl.point);
+                    return Ok(());
+                }
+                self.progress.line(format!(
+                    "{point_id} iteration {} stage {} attempt {} failed ({kind}): {}",
+                    fl.iteration,
+                    stage.name,
+                    fl.attempt,
+                    first_line(&message)
+                ));
+                let failures: i64 = sqlx::query_scalar(
+                    "SELECT count(*) FROM attempts WHERE point = ? AND iteration = ? AND stage = ? AND state = 'failed'",
+                )
+                .bind(&point_id)
+                .bind(i64::from(fl.iteration))
+                .bind(&stage.name)
+                .fetch_one(&self.pool)
+                .await?;
+                let pr = &mut self.points[fl.point];
+                pr.outstanding = None;
+                if failures > i64::from(stage.retries) {
+                    let reason = format!(
+                        "stage `{}` failed at iteration {} after {failures} attempt(s); last: {kind}: {}",
+                        stage.name,
+                        fl.iteration,
+                        first_line(&message)
+                    );
+                    pr.phase = PointPhase::Done;
+                    let mut tx = self.pool.begin().await?;
+                    sqlx::query("UPDATE iterations SET state = 'failed', ended_at = ? WHERE point = ? AND iteration = ?")
+                        .bind(store::now())
+                        .bind(&point_id)
+                        .bind(i64::from(fl.iteration))
+                        .execute(&mut *tx)
+                        .await?;
+                    sqlx::query("UPDATE points SET state = 'failed', reason = ? WHERE id = ?")
+                        .bind(&reason)
+                        .bind(&point_id)
+                        .execute(&mut *tx)
+                        .await?;
+                    store::event(
+                        &mut *tx,
+                        "point-failed",
+                        Some(&point_id),
+                        Some(fl.iteration),
+                        Some(id),
+                        &reason,
+                    )
+                    .await?;
+                    tx.commit().await?;
+                    self.progress.line(format!("{point_id} failed: {reason}"));
+                } else {
+                    self.ready.push_back(fl.point);
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// All stages of the point's iteration succeeded: apply the stopping rules.
+    async fn finish_iteration(&mut self, p: usize) -> Result<()> {
+        let point_id = self.points[p].spec.id.clone();
+        let n = self.points[p].iteration;
+        let rows = sqlx::query(
+            "SELECT a.iteration AS it, m.name AS name, m.value AS value, m.error AS error \
+             FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
+             LEFT JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration \
+             WHERE a.point = ? AND a.state = 'succeeded' AND (i.state = 'good' OR a.iteration = ?)",
+        )
+        .bind(&point_id)
+        .bind(i64::from(n))
+        .fetch_all(&self.pool)
+        .await?;
+        let mut history: BTreeMap<u32, BTreeMap<String, Sample>> = BTreeMap::new();
+        history.entry(n).or_default();
+        for r in rows {
+            history
+                .entry(r.get::<i64, _>("it") as u32)
+                .or_default()
+                .insert(
+                    r.get("name"),
+                    Sample {
+                        value: r.get("value"),
+                        error: r.get("error"),
+                    },
+                );
+        }
+        let decision = stop::decide(
+            &self.campaign.rules,
+            self.campaign.combine,
+            self.campaign.max_iterations,
+            &history,
+        );
+        let mut tx = self.pool.begin().await?;
+        sqlx::query("UPDATE iterations SET state = 'good', ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
+            .bind(store::now())
+            .bind(serde_json::to_string(&decision)?)
+            .bind(&point_id)
+            .bind(i64::from(n))
+            .execute(&mut *tx)
+            .await?;
+        let summary = decision
+            .rules
+            .iter()
+            .map(|r| {
+                format!(
+                    "{} Δ={}",
+                    r.metric,
+                    r.change
+                        .map(|c| format!("{c:.3e}"))
+                        .unwrap_or_else(|| "–".into())
+                )
+            })
+            .collect::<Vec<_>>()
+            .join(", ");
+        if decision.converged || decision.capped {
+            let (state, reason) = if decision.converged {
+                ("converged", format!("stopping rules met at iteration {n}"))
+            } else {
+                (
+                    "capped",
+                    format!("reached max-iterations ({n}) without meeting the stopping rules"),
+                )
+            };
+            sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
+                .bind(state)
+                .bind(&reason)
+                .bind(&point_id)
+                .execute(&mut *tx)
+                .await?;
+            store::event(
+                &mut *tx,
+                &format!("point-{state}"),
+                Some(&point_id),
+                Some(n),
+                None,
+                &reason,
+            )
+            .await?;
+            tx.commit().await?;
+            self.points[p].phase = PointPhase::Done;
+            self.progress
+                .line(format!("{point_id} {state} at iteration {n} ({summary})"));
+        } else {
+            sqlx::query("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)")
+                .bind(&point_id)
+                .bind(i64::from(n + 1))
+                .bind(store::now())
+                .execute(&mut *tx)
+                .await?;
+            tx.commit().await?;
+            self.progress
+                .line(format!("{point_id} iteration {n} good ({summary})"));
+            let pr = &mut self.points[p];
+            pr.iteration = n + 1;
+            pr.next_stage = 0;
+        }
+        Ok(())
+    }
+
+    /// Stop on a signal or a cancel request: end or detach from outstanding attempts and
+    /// record what happened.
+    async fn stop_everything(
+        &mut self,
+        rx: &mut mpsc::UnboundedReceiver<Completion>,
+        cancelled: bool,
+    ) -> Result<()> {
+        let why = if cancelled {
+            "cancel requested (rondo cancel)"
+        } else {
+            "signal received"
+        };
+        self.progress
+            .line(format!("stopping: {why}; ending outstanding attempts"));
+        store::event(
+            &self.pool,
+            if cancelled {
+                "cancel"
+            } else {
+                "run-interrupted"
+            },
+            None,
+            None,
+            None,
+            why,
+        )
+        .await?;
+        let batch = self.opts.executor.kind() != "local";
+        if cancelled && batch {
+            let ids: Vec<i64> = self.inflight.keys().copied().collect();
+            for id in ids {
+                if let Err(e) = self.executor.cancel(id, why).await {
+                    tracing::warn!(attempt = id, %e, "cancel failed");
+                }
+            }
+        }
+        let mode = if batch && !cancelled {
+            Shutdown::Detach
+        } else {
+            Shutdown::Terminate {
+                grace: self.opts.grace,
+            }
+        };
+        self.executor
+            .shutdown(mode)
+            .await
+            .map_err(|e| anyhow::anyhow!("shutting down the executor: {e}"))?;
+        // Completions of the ended attempts (local: Cancelled by rondo).
+        let deadline =
+            tokio::time::Instant::now() + Duration::from_secs(if batch { 2 } else { 30 });
+        while !self.inflight.is_empty() && !(batch && !cancelled) {
+            match tokio::time::timeout_at(deadline, rx.recv()).await {
+                Ok(Some(c)) => {
+                    let id = c.attempt_id;
+                    let Some(fl) = self.inflight.get(&id).cloned() else {
+                        continue;
+                    };
+                    let ended = Ended::Failed {
+                        kind: "cancelled".into(),
+                        message: why.to_string(),
+                        exit_status: None,
+                        started: c.started_at,
+                        ended: c.ended_at,
+                        host: c.host,
+                        free: true,
+                        state: "cancelled",
+                    };
+                    self.settle(id, Some(&fl), ended).await?;
+                }
+                _ => break,
+            }
+        }
+        if cancelled {
+            let mut tx = self.pool.begin().await?;
+            for p in &self.points {
+                if p.phase == PointPhase::Active {
+                    sqlx::query("UPDATE points SET state = 'cancelled', reason = ? WHERE id = ?")
+                        .bind(why)
+                        .bind(&p.spec.id)
+                        .execute(&mut *tx)
+                        .await?;
+                }
+            }
+            tx.commit().await?;
+            let _ = std::fs::remove_file(&self.paths.cancel_request);
+        }
+        Ok(())
+    }
+}
+
+fn first_line(s: &str) -> &str {
+    s.lines().next().unwrap_or("")
+}
+
+/// The last lines of the attempt's stderr, for failure messages.
+fn stderr_tail(workdir: &Path) -> String {
+    let Ok(text) = std::fs::read_to_string(workdir.join("stderr.txt")) else {
+        return String::new();
+    };
+    let lines: Vec<&str> = text.lines().filter(|l| !l.trim().is_empty()).collect();
+    if lines.is_empty() {
+        return String::new();
+    }
+    let tail = lines[lines.len().saturating_sub(5)..].join("\n");
+    format!(
+        "; stderr ends: {}",
+        tail.chars().take(1500).collect::<String>()
+    )
+}

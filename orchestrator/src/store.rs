@@ -10,6 +10,7 @@ use std::str::FromStr;
 use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
+use chrono::{DateTime, SecondsFormat, Utc};
 use sqlx::migrate::{Migration, MigrationType, Migrator};
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
@@ -98,6 +99,125 @@ pub fn hostname() -> String {
     let n = buf.iter().position(|&b| b == 0).unwrap_or(buf.len());
     String::from_utf8_lossy(&buf[..n]).into_owned()
 }
+
+/// Now, as the store writes times: RFC 3339 UTC with milliseconds.
+pub fn now() -> String {
+    Utc::now().to_rfc3339_opts(SecondsFormat::Millis, true)
+}
+
+/// A time as the store writes it.
+pub fn time_text(t: DateTime<Utc>) -> String {
+    t.to_rfc3339_opts(SecondsFormat::Millis, true)
+}
+
+/// The `campaign` row.
+#[derive(Debug, Clone)]
+pub struct CampaignRow {
+    /// Name.
+    pub name: String,
+    /// Campaign file path as given at the first run.
+    pub spec_path: String,
+    /// The exact campaign file text.
+    pub spec_text: String,
+    /// BLAKE3 of the text.
+    pub spec_blake3: String,
+    /// When the workspace was made.
+    pub created_at: String,
+    /// rondo version that made it.
+    pub rondo_version: String,
+    /// Random id given to children as `RONDO_WORKSPACE_ID`.
+    pub workspace_id: String,
+}
+
+/// Read the campaign row, if the workspace has one.
+pub async fn campaign_row(pool: &SqlitePool) -> Result<Option<CampaignRow>> {
+    use sqlx::Row;
+    let row = sqlx::query(
+        "SELECT name, spec_path, spec_text, spec_blake3, created_at, rondo_version, workspace_id \
+         FROM campaign WHERE id = 1",
+    )
+    .fetch_optional(pool)
+    .await?;
+    Ok(row.map(|r| CampaignRow {
+        name: r.get("name"),
+        spec_path: r.get("spec_path"),
+        spec_text: r.get("spec_text"),
+        spec_blake3: r.get("spec_blake3"),
+        created_at: r.get("created_at"),
+        rondo_version: r.get("rondo_version"),
+        workspace_id: r.get("workspace_id"),
+    }))
+}
+
+/// Append to the event log.
+pub async fn event<'e, E>(
+    ex: E,
+    kind: &str,
+    point: Option<&str>,
+    iteration: Option<u32>,
+    attempt_id: Option<i64>,
+    detail: &str,
+) -> Result<()>
+where
+    E: sqlx::Executor<'e, Database = sqlx::Sqlite>,
+{
+    sqlx::query(
+        "INSERT INTO events(at, kind, point, iteration, attempt_id, detail) VALUES (?,?,?,?,?,?)",
+    )
+    .bind(now())
+    .bind(kind)
+    .bind(point)
+    .bind(iteration.map(i64::from))
+    .bind(attempt_id)
+    .bind(detail)
+    .execute(ex)
+    .await?;
+    Ok(())
+}
+
+/// Record an artifact row (idempotent: the first name and time are kept).
+pub async fn artifact<'e, E>(ex: E, hash: &str, size: u64, name: &str) -> Result<()>
+where
+    E: sqlx::Executor<'e, Database = sqlx::Sqlite>,
+{
+    sqlx::query(
+        "INSERT INTO artifacts(hash, size, original_name, created_at) VALUES (?,?,?,?) \
+         ON CONFLICT(hash) DO NOTHING",
+    )
+    .bind(hash)
+    .bind(i64::try_from(size).unwrap_or(i64::MAX))
+    .bind(name)
+    .bind(now())
+    .execute(ex)
+    .await?;
+    Ok(())
+}
+
+/// Open an existing workspace's database (no migration of a missing file: a clear error).
+pub async fn open_existing(ws: &Path) -> Result<SqlitePool> {
+    let db = ws.join(DB_FILE);
+    if !db.is_file() {
+        bail!(
+            "{}: no rondo workspace here (no {DB_FILE}); give --workspace or run the campaign first",
+            ws.display()
+        );
+    }
+    let pool = open(&db).await?;
+    let ok: Option<i64> = sqlx::query_scalar("SELECT count(*) FROM campaign")
+        .fetch_optional(&pool)
+        .await
+        .with_context(|| format!("{}: the workspace database is unreadable", db.display()))?;
+    if ok.unwrap_or(0) != 1 {
+        bail!(
+            "{}: the workspace database holds no campaign (an interrupted first run?); run the campaign again",
+            db.display()
+        );
+    }
+    Ok(pool)
+}
+
+/// File name of the database inside a workspace.
+pub const DB_FILE: &str = "rondo.db";
 
 #[cfg(test)]
 mod tests {

@@ -1,0 +1,178 @@
+//! Stopping rules: after each good iteration, decide from the metric history of a point
+//! whether it has converged, has hit the iteration cap, or goes on.
+//!
+//! A rule holds at iteration j when the change of its metric between iterations j−1 and j
+//! passes the rule's test; it is satisfied at iteration n when it held at each of the last
+//! `for` iterations n−for+1..n. Iteration 1 has no change, so no rule holds there.
+
+use std::collections::BTreeMap;
+
+use serde::Serialize;
+
+use crate::spec::{Combine, Rule, RuleTest};
+
+/// A metric value with its standard error (if noisy), at one iteration.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Sample {
+    /// Value.
+    pub value: f64,
+    /// Standard error.
+    pub error: Option<f64>,
+}
+
+/// Evaluation of one rule at the latest iteration (recorded as JSON with the iteration).
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct RuleState {
+    /// `stage.metric`.
+    pub metric: String,
+    /// |x_n − x_{n−1}|, if both exist.
+    pub change: Option<f64>,
+    /// The threshold the change was compared with at iteration n.
+    pub threshold: Option<f64>,
+    /// Consecutive iterations (ending at n) at which the test held.
+    pub streak: u32,
+    /// Needed streak.
+    pub needed: u32,
+    /// Whether the rule is satisfied.
+    pub satisfied: bool,
+}
+
+/// The decision after a good iteration.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Decision {
+    /// The rules, evaluated.
+    pub rules: Vec<RuleState>,
+    /// All (or any) rules satisfied.
+    pub converged: bool,
+    /// The iteration cap is reached without convergence.
+    pub capped: bool,
+}
+
+/// Whether the test holds between a previous and a current sample; also the threshold used.
+fn holds(test: RuleTest, prev: Sample, cur: Sample) -> (bool, Option<f64>) {
+    let change = (cur.value - prev.value).abs();
+    let threshold = match test {
+        RuleTest::Abs(tol) => Some(tol),
+        RuleTest::Rel(tol) => Some(tol * cur.value.abs()),
+        RuleTest::Errors(k) => match (prev.error, cur.error) {
+            (Some(a), Some(b)) => Some(k * (a * a + b * b).sqrt()),
+            _ => None,
+        },
+    };
+    match (test, threshold) {
+        (RuleTest::Errors(_), Some(t)) => (change <= t, Some(t)),
+        (_, Some(t)) => (change < t, Some(t)),
+        (_, None) => (false, None),
+    }
+}
+
+/// Evaluate the rules at the last iteration of `history` (iteration → metric → sample; the
+/// iterations must be the good ones 1..=n of one point).
+pub fn decide(
+    rules: &[Rule],
+    combine: Combine,
+    max_iterations: u32,
+    history: &BTreeMap<u32, BTreeMap<String, Sample>>,
+) -> Decision {
+    let n = history.keys().next_back().copied().unwrap_or(0);
+    let mut states = Vec::with_capacity(rules.len());
+    for rule in rules {
+        let sample = |j: u32| history.get(&j).and_then(|m| m.get(&rule.metric)).copied();
+        let mut streak = 0;
+        let mut change = None;
+        let mut threshold = None;
+        let mut j = n;
+        while j >= 2 {
+            let (Some(cur), Some(prev)) = (sample(j), sample(j - 1)) else {
+                break;
+            };
+            let (ok, t) = holds(rule.test, prev, cur);
+            if j == n {
+                change = Some((cur.value - prev.value).abs());
+                threshold = t;
+            }
+            if !ok {
+                break;
+            }
+            streak += 1;
+            if streak >= rule.for_ {
+                break;
+            }
+            j -= 1;
+        }
+        states.push(RuleState {
+            metric: rule.metric.clone(),
+            change,
+            threshold,
+            streak,
+            needed: rule.for_,
+            satisfied: streak >= rule.for_,
+        });
+    }
+    let converged = !states.is_empty()
+        && match combine {
+            Combine::All => states.iter().all(|s| s.satisfied),
+            Combine::Any => states.iter().any(|s| s.satisfied),
+        };
+    Decision {
+        rules: states,
+        converged,
+        capped: !converged && n >= max_iterations,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn hist(values: &[f64]) -> BTreeMap<u32, BTreeMap<String, Sample>> {
+        values
+            .iter()
+            .enumerate()
+            .map(|(i, v)| {
+                let mut m = BTreeMap::new();
+                m.insert(
+                    "update.n_f".to_string(),
+                    Sample {
+                        value: *v,
+                        error: Some(0.01),
+                    },
+                );
+                (i as u32 + 1, m)
+            })
+            .collect()
+    }
+
+    fn rule(test: RuleTest, k: u32) -> Rule {
+        Rule {
+            metric: "update.n_f".into(),
+            test,
+            for_: k,
+        }
+    }
+
+    #[test]
+    fn change_below_for_k() {
+        let r = [rule(RuleTest::Abs(1e-3), 2)];
+        // changes: 0.1, 1e-4 (holds once) → not yet
+        let d = decide(&r, Combine::All, 10, &hist(&[1.0, 1.1, 1.1001]));
+        assert!(!d.converged);
+        assert_eq!(d.rules[0].streak, 1);
+        let d = decide(&r, Combine::All, 10, &hist(&[1.0, 1.1, 1.1001, 1.1002]));
+        assert!(d.converged, "{d:?}");
+        // cap
+        let d = decide(&r, Combine::All, 3, &hist(&[1.0, 1.1, 1.2]));
+        assert!(d.capped && !d.converged);
+    }
+
+    #[test]
+    fn relative_and_noise_aware() {
+        let r = [rule(RuleTest::Rel(1e-3), 1)];
+        assert!(decide(&r, Combine::All, 9, &hist(&[100.0, 100.05])).converged);
+        assert!(!decide(&r, Combine::All, 9, &hist(&[1.0, 1.05])).converged);
+        // within 2 combined errors: 2 * sqrt(2) * 0.01 = 0.0283
+        let r = [rule(RuleTest::Errors(2.0), 1)];
+        assert!(decide(&r, Combine::All, 9, &hist(&[1.0, 1.02])).converged);
+        assert!(!decide(&r, Combine::All, 9, &hist(&[1.0, 1.03])).converged);
+    }
+}
