@@ -4,8 +4,10 @@
 //! `MinJobAge`), cancelled with `scancel`. Also Slurm's time syntax and the helper that
 //! lengthens a wall-time limit for a retry after TIMEOUT.
 //!
-//! The job script, markers and the poller are shared with PBS in [`batch`].
+//! The job script, markers and the poller are shared with PBS in [`batch`]; the helpers for
+//! running rondo itself inside a chain of allocation jobs are in [`allocation`].
 
+pub mod allocation;
 pub mod batch;
 
 use std::collections::HashMap;

@@ -4,7 +4,9 @@
 //! `RONDO_REQUIRE_SLURM=1` (as in `scripts/test`).
 //!
 //! Tests that disturb the whole scheduler (node down, controller restart) take the lock below
-//! exclusively; the others share it, so they never see each other's disturbances.
+//! exclusively; the others share it, so they never see each other's disturbances. The long
+//! tests are named `a1_`, `a2_`, `a3_` so that libtest (which starts tests in name order)
+//! runs them first, side by side, keeping the whole file near two minutes.
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -13,6 +15,9 @@ use std::time::Duration;
 
 use rondo_adapters::executor::{
     Completion, Executor, Handle, LaunchRequest, Outcome, Reattached, Resources, Shutdown,
+};
+use rondo_adapters::slurm::allocation::{
+    submit_continuation, warning_signal, write_allocation_script, AllocationEnv, AllocationSpec,
 };
 use rondo_adapters::slurm::{lengthen_time, parse_kv_line, SlurmConfig, SlurmExecutor};
 use tokio::sync::mpsc::{unbounded_channel, UnboundedReceiver};
@@ -275,7 +280,7 @@ async fn external_scancel_and_rondo_cancel_are_told_apart() {
 /// A 1-minute limit on a job that sleeps 5 minutes: Slurm's TIMEOUT (about 60 to 90 s plus
 /// KillWait) becomes `TimedOut`; the retry asks for a longer limit and is accepted with it.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn a_time_limit_kill_is_timed_out_and_retried_longer() {
+async fn a1_time_limit_kill_is_timed_out_and_retried_longer() {
     if !slurm_available() {
         return;
     }
@@ -412,7 +417,7 @@ async fn slurmctld_restart_during_a_run_is_survived() {
 /// anything: queued/running → Active (completion later), finished with a marker → Finished
 /// (also after the scheduler has purged it), vanished without a marker → Gone.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn a_second_instance_adopts_finished_and_running_jobs() {
+async fn a3_second_instance_adopts_finished_and_running_jobs() {
     if !slurm_available() {
         return;
     }
@@ -537,4 +542,87 @@ async fn a_second_instance_adopts_finished_and_running_jobs() {
     ));
     assert_eq!(second.stats().submissions, 0, "nothing was resubmitted");
     second.shutdown(Shutdown::Detach).await.expect("detach");
+}
+
+const WORKER_VAR: &str = "RONDO_TEST_ALLOCATION_WORKER";
+const CHAIN_TEST: &str = "a2_allocation_chain_continues_after_the_warning_signal";
+
+/// An allocation script runs this test binary (as a stand-in for `rondo run`) in a job with a
+/// 1-minute limit and `--signal=B:USR1@40`. The first job waits for the warning signal and
+/// submits its continuation with the adapters' helper; the second finishes. Two successive
+/// jobs, joined by an `afterany` dependency.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a2_allocation_chain_continues_after_the_warning_signal() {
+    if let Ok(dir) = std::env::var(WORKER_VAR) {
+        // Inside the allocation job: play rondo's part.
+        allocation_worker(Path::new(&dir)).await;
+        return;
+    }
+    if !slurm_available() {
+        return;
+    }
+    let _shared = SCHEDULER.read().await;
+    let dir = tempfile::tempdir().expect("tempdir");
+    let script = dir.path().join("allocation.sh");
+    let exe = std::env::current_exe().expect("test binary path");
+    let spec = AllocationSpec {
+        job_name: "test campaign/allocation".into(),
+        resources: Resources {
+            time: Some("1".into()),
+            ..Default::default()
+        },
+        warning: Duration::from_secs(40),
+        workdir: dir.path().to_path_buf(),
+        command: vec![
+            exe.display().to_string(),
+            "--exact".into(),
+            CHAIN_TEST.into(),
+            "--nocapture".into(),
+            "--test-threads=1".into(),
+        ],
+        env: [(WORKER_VAR.to_string(), dir.path().display().to_string())].into(),
+        max_continuations: 1,
+    };
+    write_allocation_script(&spec, &script).expect("write script");
+    let first = submit_continuation("sbatch", &script, None, 0, Duration::from_secs(60))
+        .await
+        .expect("submit the first job");
+    wait_for("the second job of the chain finishes", 240, || {
+        dir.path().join("done").exists()
+    })
+    .await;
+    let read = |f: &str| std::fs::read_to_string(dir.path().join(f)).unwrap_or_default();
+    assert_eq!(read("signal-0"), first, "the first job got USR1");
+    let second = read("submitted-1");
+    assert!(!second.is_empty() && second != first);
+    assert_eq!(read("done"), format!("1 {second}"));
+    assert_eq!(job_fields(&first)["JobState"], "COMPLETED");
+    // The continuation waited for the first job.
+    let f = job_fields(&second);
+    assert!(
+        f.get("JobState")
+            .is_some_and(|s| s == "COMPLETED" || s == "COMPLETING"),
+        "{f:?}"
+    );
+}
+
+async fn allocation_worker(dir: &Path) {
+    let mut usr1 = warning_signal().expect("USR1 handler");
+    let env = AllocationEnv::from_env();
+    assert!(env.in_allocation(), "{env:?}");
+    let job = env.job_id.clone().expect("SLURM_JOB_ID");
+    let script = env.script.clone().expect("allocation script");
+    if env.continuation == 0 {
+        // Work that never ends by itself: only the warning stops it.
+        tokio::time::timeout(Duration::from_secs(200), usr1.recv())
+            .await
+            .expect("USR1 before the time limit");
+        std::fs::write(dir.join("signal-0"), &job).expect("write");
+        let next = submit_continuation("sbatch", &script, Some(&job), 1, Duration::from_secs(60))
+            .await
+            .expect("submit the continuation");
+        std::fs::write(dir.join("submitted-1"), next).expect("write");
+    } else {
+        std::fs::write(dir.join("done"), format!("{} {job}", env.continuation)).expect("write");
+    }
 }
