@@ -3,7 +3,9 @@
 //!
 //! `cargo run --release -p model-solid --example scan -- [name=value ...]` where names are
 //! model constants (core_a, p_core, eps_f0, feedback, t0, hyb0, p_t, p_v) or run settings
-//! (u, kmesh, nw, electrons, alpha, temps=300,1200, volumes=26,27,28,29,30).
+//! (u, kmesh, nw, electrons, alpha, max_iter, energy_tol, temps=300,1200,
+//! volumes=26,27,28,29,30). A point has converged when n_f changes by less than 1e-6 and the
+//! energy by less than energy_tol (eV) in two successive iterations.
 //! The cycle and the mixing rule are the ones the campaign runs: iteration 1 takes the new
 //! self-energy unchanged, afterwards Σ ← Σ_prev + α (Σ_new − Σ_prev).
 
@@ -25,6 +27,7 @@ struct Settings {
     temps: Vec<f64>,
     volumes: Vec<f64>,
     max_iter: usize,
+    energy_tol: f64,
 }
 
 fn list(v: &str) -> Result<Vec<f64>> {
@@ -44,6 +47,7 @@ fn main() -> Result<()> {
         temps: vec![300.0, 1200.0],
         volumes: vec![26.0, 27.0, 28.0, 29.0, 30.0],
         max_iter: 40,
+        energy_tol: 1e-7,
     };
     for arg in std::env::args().skip(1) {
         let Some((k, v)) = arg.split_once('=') else {
@@ -66,6 +70,7 @@ fn main() -> Result<()> {
             "electrons" => s.electrons = x()?,
             "alpha" => s.alpha = x()?,
             "max_iter" => s.max_iter = v.parse()?,
+            "energy_tol" => s.energy_tol = x()?,
             "temps" => s.temps = list(v)?,
             "volumes" => s.volumes = list(v)?,
             _ => bail!("unknown name '{k}'"),
@@ -131,8 +136,16 @@ fn point(m: &Model, s: &Settings, volume: f64, t: f64) -> Result<(usize, f64, De
         }
         let up = update::update(m, &b.mesh, &sigma, beta, s.electrons, volume, &density)?;
         let change = (up.density.n_f - density.n_f).abs();
+        let de = match (up.density.energy, density.energy) {
+            (Some(a), Some(b)) => (a - b).abs(),
+            _ => f64::INFINITY,
+        };
         density = up.density;
-        quiet = if change < 1e-6 { quiet + 1 } else { 0 };
+        quiet = if change < 1e-6 && de < s.energy_tol {
+            quiet + 1
+        } else {
+            0
+        };
         if quiet >= 2 {
             return Ok((it, density.energy.unwrap_or(f64::NAN), density, true));
         }

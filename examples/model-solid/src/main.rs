@@ -205,7 +205,7 @@ fn run(cli: Cli) -> Result<()> {
             out_levels,
             out_gloc,
         } => {
-            let beta = io::beta_from_temperature(temperature)?;
+            let beta = beta_arg(temperature)?;
             if let (Some(lo), Some(hi)) = (emin, emax) {
                 if lo >= hi {
                     bail!("--emin ({lo}) must lie below --emax ({hi})");
@@ -278,7 +278,8 @@ fn run(cli: Cli) -> Result<()> {
             volume,
             out,
         } => {
-            let beta = io::beta_from_temperature(temperature)?;
+            let beta = beta_arg(temperature)?;
+            electrons_arg(electrons)?;
             let mesh = io::read_hk(&hk)?;
             let sig = io::read_matsubara(&sigma, "the self-energy")?;
             if sig.len() < 4 {
@@ -290,7 +291,13 @@ fn run(cli: Cli) -> Result<()> {
             }
             let prev = io::read_density(&density)?;
             let res = update::update(&DEMO, &mesh, &sig, beta, electrons, volume, &prev)
-                .with_context(|| format!("{}: density update failed", sigma.display()))?;
+                .with_context(|| {
+                    format!(
+                        "{}, {}: density update failed",
+                        hk.display(),
+                        sigma.display()
+                    )
+                })?;
             io::write_json(&out, &res.density)?;
             res.metrics
         }
@@ -300,9 +307,7 @@ fn run(cli: Cli) -> Result<()> {
             out_density,
             out_sigma,
         } => {
-            if !(electrons.is_finite() && electrons > 0.0 && electrons < 4.0) {
-                bail!("--electrons must lie in (0, 4) per site, got {electrons}");
-            }
+            electrons_arg(electrons)?;
             // One f electron when there are enough (the correlated orbital half filled),
             // the rest in the conduction band.
             let n_f = electrons.min(1.0).max(electrons - 2.0);
@@ -323,6 +328,22 @@ fn run(cli: Cli) -> Result<()> {
         }
     };
     io::write_metrics(&cli.metrics, &metrics)
+}
+
+/// β in 1/eV from `--temperature` in kelvin.
+fn beta_arg(t_kelvin: f64) -> Result<f64> {
+    io::beta_from_temperature(t_kelvin).map_err(|_| {
+        anyhow::anyhow!("--temperature: must be a finite positive number of kelvin, got {t_kelvin}")
+    })
+}
+
+/// `--electrons`: the two spin-degenerate orbitals hold between 0 and 4 electrons per site.
+fn electrons_arg(x: f64) -> Result<()> {
+    if x.is_finite() && x > 0.0 && x < 4.0 {
+        Ok(())
+    } else {
+        bail!("--electrons: the electron count must lie in (0, 4) per site, got {x}")
+    }
 }
 
 /// Refuse to write a non-finite array (a solver that produced NaN is a failed stage).

@@ -52,7 +52,7 @@ pub const DEMO: Model = Model {
     eps_f0: -1.2,
     feedback: 0.8,
     n_ref: 1.0,
-    core_a: 0.30,
+    core_a: 0.38,
     p_core: 4.0,
 };
 
