@@ -438,10 +438,7 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
             "attempts": attempts,
         }));
     }
-    let running: Option<String> = match store::lock(ws) {
-        Ok(_) => None,
-        Err(e) => Some(e.to_string()),
-    };
+    let running = store::holder(ws);
     pool.close().await;
     Ok(serde_json::json!({
         "campaign": camp.name,

@@ -88,6 +88,23 @@ pub fn lock(ws: &Path) -> Result<WorkspaceLock> {
     Ok(WorkspaceLock { _file: f })
 }
 
+/// Who holds the workspace lock, if anyone, without taking it (a shared probe that is
+/// released at once, so a starting `rondo run` is not disturbed).
+pub fn holder(ws: &Path) -> Option<String> {
+    let path = ws.join("lock");
+    let mut f = File::open(&path).ok()?;
+    // SAFETY: flock on a file descriptor we own.
+    let r = unsafe { libc::flock(f.as_raw_fd(), libc::LOCK_SH | libc::LOCK_NB) };
+    if r == 0 {
+        // SAFETY: as above.
+        unsafe { libc::flock(f.as_raw_fd(), libc::LOCK_UN) };
+        return None;
+    }
+    let mut holder = String::new();
+    let _ = f.read_to_string(&mut holder);
+    Some(holder.trim().to_string())
+}
+
 /// This machine's host name.
 pub fn hostname() -> String {
     let mut buf = [0u8; 256];
