@@ -125,16 +125,23 @@ pub fn format_slurm_time(d: Duration) -> String {
 pub fn lengthen_time(res: &Resources, factor: f64) -> Resources {
     let mut out = res.clone();
     if let Some(t) = res.time.as_deref().and_then(|t| parse_slurm_time(t).ok()) {
-        let factor = if factor.is_finite() && factor > 1.0 {
-            factor
-        } else {
-            1.0
-        };
-        let longer = Duration::from_secs_f64(t.as_secs_f64() * factor);
-        let minute_more = t + Duration::from_secs(60);
-        out.time = Some(format_slurm_time(longer.max(minute_more)));
+        out.time = Some(format_slurm_time(lengthen_limit(t, factor)));
     }
     out
+}
+
+/// A time limit for a retry after a wall-time kill: `limit × factor` (factors below 1 or not
+/// finite count as 1), at least one minute longer, rounded up to whole minutes (Slurm's
+/// resolution). For stages whose limit is a `time-limit` rather than `resources.time`.
+pub fn lengthen_limit(limit: Duration, factor: f64) -> Duration {
+    let factor = if factor.is_finite() && factor > 1.0 {
+        factor
+    } else {
+        1.0
+    };
+    let longer = Duration::from_secs_f64(limit.as_secs_f64() * factor);
+    let at_least = longer.max(limit + Duration::from_secs(60));
+    Duration::from_secs(at_least.as_secs().div_ceil(60) * 60)
 }
 
 /// The `#SBATCH` lines for these resources and this job name.
@@ -518,6 +525,11 @@ mod tests {
             lengthen_time(&Resources::default(), 2.0),
             Resources::default()
         );
+        let m = |s: u64, f: f64| lengthen_limit(Duration::from_secs(s), f).as_secs();
+        assert_eq!(m(60, 2.0), 120);
+        assert_eq!(m(600, 1.5), 900);
+        assert_eq!(m(30, 1.0), 120); // 30 s + 1 min, rounded up to 2 min
+        assert_eq!(m(100, f64::NAN), 180);
     }
 
     #[test]

@@ -30,6 +30,12 @@ fn required() -> bool {
     std::env::var("RONDO_REQUIRE_SLURM").as_deref() == Ok("1")
 }
 
+/// Straight to the process's stderr: libtest hides `eprintln!` output of passing tests.
+fn loud(message: &str) {
+    use std::io::Write;
+    let _ = writeln!(std::io::stderr(), "{message}");
+}
+
 fn slurm_available() -> bool {
     let found = std::env::var_os("PATH")
         .map(|p| std::env::split_paths(&p).any(|d| d.join("sbatch").is_file()))
@@ -38,9 +44,7 @@ fn slurm_available() -> bool {
         if required() {
             panic!("RONDO_REQUIRE_SLURM=1 but sbatch is not on PATH; run scripts/dev-slurm start");
         }
-        eprintln!(
-            "!!! SKIPPING Slurm test: sbatch not on PATH (run `scripts/dev-slurm start`) !!!"
-        );
+        loud("!!! SKIPPING Slurm test: sbatch not on PATH (run `scripts/dev-slurm start`) !!!");
     }
     found
 }
@@ -55,7 +59,7 @@ fn slurm_admin_available() -> bool {
         if required() {
             panic!("RONDO_REQUIRE_SLURM=1 but this test must run as root (it sets the node down or restarts slurmctld)");
         }
-        eprintln!("!!! SKIPPING Slurm admin test: not root !!!");
+        loud("!!! SKIPPING Slurm admin test: not root (it sets the node down or restarts slurmctld) !!!");
         return false;
     }
     true
@@ -275,6 +279,33 @@ async fn external_scancel_and_rondo_cancel_are_told_apart() {
     assert!(got[0].started_at.is_some(), "it had started");
     assert_eq!(got[1].outcome, Outcome::Cancelled { by: "rondo".into() });
     assert!(ex.watched().is_empty());
+
+    // `rondo cancel` while no orchestrator runs: a fresh executor cancels a job it knows
+    // only from its recorded handle.
+    let d3 = tempfile::tempdir().expect("tempdir");
+    let h3 = ex
+        .launch(request(13, d3.path(), "sleep 60"))
+        .await
+        .expect("submit");
+    ex.shutdown(Shutdown::Detach).await.expect("detach");
+    let (tx, _rx) = unbounded_channel();
+    let other = SlurmExecutor::new(config(), "ws-test".into(), tx);
+    other
+        .cancel_recorded(&h3, "rondo cancel")
+        .await
+        .expect("cancel recorded");
+    wait_for("job 13 is cancelled", 60, || {
+        job_fields(&h3.id)
+            .get("JobState")
+            .is_some_and(|s| s == "CANCELLED")
+    })
+    .await;
+    // A handle of another executor is refused, not misread.
+    let local = Handle {
+        executor: "local".into(),
+        ..h3
+    };
+    assert!(other.reattach(13, &local, d3.path()).await.is_err());
 }
 
 /// A 1-minute limit on a job that sleeps 5 minutes: Slurm's TIMEOUT (about 60 to 90 s plus
@@ -536,6 +567,18 @@ async fn a3_second_instance_adopts_finished_and_running_jobs() {
     assert!(matches!(
         second
             .reattach(23, &ghost, empty.path())
+            .await
+            .expect("reattach"),
+        Reattached::Gone { .. }
+    ));
+    // No job id recorded (killed between sbatch and the store): gone, without a query.
+    let unrecorded = Handle {
+        id: String::new(),
+        ..ghost
+    };
+    assert!(matches!(
+        second
+            .reattach(27, &unrecorded, empty.path())
             .await
             .expect("reattach"),
         Reattached::Gone { .. }

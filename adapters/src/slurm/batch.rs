@@ -458,7 +458,44 @@ impl<B: BatchSystem> BatchCore<B> {
         handle: &Handle,
         workdir: &Path,
     ) -> Result<Reattached, ExecError> {
-        let states = self.shared.query(std::slice::from_ref(&handle.id)).await?;
+        if handle.executor != self.shared.system.kind() {
+            return Err(ExecError::Invalid(format!(
+                "attempt {attempt_id} was launched by the `{}` executor, not `{}`",
+                handle.executor,
+                self.shared.system.kind()
+            )));
+        }
+        if handle.id.trim().is_empty() {
+            // Killed between submission and recording the job id: nothing to ask about.
+            return Ok(if read_exit(workdir).is_some() {
+                Reattached::Finished(completion(attempt_id, workdir, None, false))
+            } else {
+                Reattached::Gone {
+                    reason: "no job id was recorded for it".into(),
+                }
+            });
+        }
+        // The controller may be restarting just when rondo is: retry like a submission.
+        let mut delay = self
+            .shared
+            .settings
+            .poll_interval
+            .min(Duration::from_secs(5));
+        let mut tries = 0;
+        let states = loop {
+            match self.shared.query(std::slice::from_ref(&handle.id)).await {
+                Ok(s) => break s,
+                Err(ExecError::Unavailable { what, message })
+                    if tries < self.shared.settings.submit_retries =>
+                {
+                    tries += 1;
+                    tracing::warn!(%what, %message, tries, "status query failed; retrying");
+                    tokio::time::sleep(delay).await;
+                    delay = (delay * 2).min(self.shared.settings.max_backoff);
+                }
+                Err(e) => return Err(e),
+            }
+        };
         match states.get(&handle.id) {
             // The exit marker is the job script's last act: once it exists the command has
             // ended, even while the scheduler still lists the job (e.g. COMPLETING).
