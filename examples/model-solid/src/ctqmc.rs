@@ -9,7 +9,7 @@
 //!   w = Π_σ |det F_σ| · exp(−ε Σ_σ L_σ − U O),
 //!
 //! with L_σ the occupied time of flavour σ, O the time both are occupied and
-//! F_σ,ba = F(e_b − s_a), F(τ) = −Δ(τ). The segment picture has no sign problem here.
+//! F_σ,ba = F(s_a − e_b), F(τ) = −Δ(τ). The segment picture has no sign problem here.
 //!
 //! Moves (each picked with probability 1/4 for a random flavour), with the proposal
 //! probabilities in the acceptance ratios (k segments before the move):
@@ -23,9 +23,15 @@
 //!   end of the merged segment, β if k = 1): R = k/(β l_max) · e^{−ε l − U o} · |det ratio|;
 //!
 //! where l is the length of the segment or hole and o its overlap with the other flavour.
+//! Two further moves shift one operator: the end of a segment uniformly within the gap up
+//! to the next start, or its start within the gap after the previous end (symmetric
+//! proposals, R = e^{−ε Δl − U Δo} · |det ratio|, one row or column of F changes).
+//! After each sweep a global move exchanges the two flavours with probability 1/2. Its
+//! acceptance ratio is 1 because ε and Δ do not depend on spin. Without it a local moment
+//! (large U, low T) stays polarised for very long.
 //!
 //! Measurements, once per sweep after the warm-up: G(τ) from the pairs of the inverse
-//! hybridization matrix, G(τ) = −(1/β)⟨Σ_ab M_ab δ⁻(τ, e_b − s_a)⟩ (δ⁻ carries a minus sign for
+//! hybridization matrix, G(τ) = (1/β)⟨Σ_ab M_ab δ⁻(τ, e_b − s_a)⟩ (δ⁻ carries a minus sign for
 //! negative differences shifted by β), both binned and directly as Legendre coefficients with
 //! the shared kernel; the occupations, the double occupancy and P(0), P(1), P(2) from the
 //! time each atomic configuration occupies. Error bars: standard error over fixed blocks of
@@ -226,7 +232,7 @@ struct Sampler<'a> {
     fl: [Flavour; 2],
     mats: [HybMatrix; 2],
     rng: SplitMix64,
-    stats: [MoveStats; 4],
+    stats: [MoveStats; 6],
 }
 
 impl<'a> Sampler<'a> {
@@ -239,7 +245,7 @@ impl<'a> Sampler<'a> {
             fl: [Flavour::empty(beta), Flavour::empty(beta)],
             mats: [HybMatrix::new(), HybMatrix::new()],
             rng: SplitMix64::new(seed),
-            stats: [MoveStats::default(); 4],
+            stats: [MoveStats::default(); 6],
         }
     }
 
@@ -248,15 +254,32 @@ impl<'a> Sampler<'a> {
         u < ratio
     }
 
+    /// Global move: exchange the spin flavours (weight unchanged for spin-independent ε, Δ).
+    fn maybe_flip_spins(&mut self) {
+        if self.rng.uniform() < 0.5 {
+            self.fl.swap(0, 1);
+            self.mats.swap(0, 1);
+        }
+    }
+
+    fn sweep(&mut self, moves: u32) {
+        for _ in 0..moves {
+            self.step();
+        }
+        self.maybe_flip_spins();
+    }
+
     fn step(&mut self) {
         let s = self.rng.below(2) as usize;
-        let kind = self.rng.below(4) as usize;
+        let kind = self.rng.below(6) as usize;
         self.stats[kind].proposed += 1;
         let ok = match kind {
             0 => self.insert_segment(s),
             1 => self.remove_segment(s),
             2 => self.insert_hole(s),
-            _ => self.remove_hole(s),
+            3 => self.remove_hole(s),
+            4 => self.move_end(s),
+            _ => self.move_start(s),
         };
         if ok {
             self.stats[kind].accepted += 1;
@@ -359,6 +382,64 @@ impl<'a> Sampler<'a> {
         true
     }
 
+    fn move_end(&mut self, s: usize) -> bool {
+        let k = self.fl[s].order();
+        if k == 0 {
+            return false;
+        }
+        let beta = self.beta;
+        let i = self.rng.below(k as u64) as usize;
+        let (start, end) = self.fl[s].seg(i);
+        let l_old = self.fl[s].seg_len(i);
+        let l_max = if k == 1 {
+            beta
+        } else {
+            segments::wrap(self.fl[s].seg((i + 1) % k).0 - start, beta)
+        };
+        let l_new = l_max * self.rng.uniform();
+        let new_end = segments::wrap(start + l_new, beta);
+        let other = &self.fl[1 - s];
+        let d_o = other.overlap_with(start, l_new) - other.overlap_with(start, l_old);
+        let (b, det) = self.mats[s].ratio_move_end(self.f, end, new_end);
+        let r = (-self.eps * (l_new - l_old) - self.u * d_o).exp() * det.abs();
+        if !self.accept(r) {
+            return false;
+        }
+        self.mats[s].accept_move_end(b, new_end);
+        self.fl[s].remove(i);
+        self.fl[s].insert(start, new_end);
+        true
+    }
+
+    fn move_start(&mut self, s: usize) -> bool {
+        let k = self.fl[s].order();
+        if k == 0 {
+            return false;
+        }
+        let beta = self.beta;
+        let i = self.rng.below(k as u64) as usize;
+        let (start, end) = self.fl[s].seg(i);
+        let l_old = self.fl[s].seg_len(i);
+        let l_max = if k == 1 {
+            beta
+        } else {
+            segments::wrap(end - self.fl[s].seg((i + k - 1) % k).1, beta)
+        };
+        let l_new = l_max * self.rng.uniform();
+        let new_start = segments::wrap(end - l_new, beta);
+        let other = &self.fl[1 - s];
+        let d_o = other.overlap_with(new_start, l_new) - other.overlap_with(start, l_old);
+        let (a, det) = self.mats[s].ratio_move_start(self.f, start, new_start);
+        let r = (-self.eps * (l_new - l_old) - self.u * d_o).exp() * det.abs();
+        if !self.accept(r) {
+            return false;
+        }
+        self.mats[s].accept_move_start(a, new_start);
+        self.fl[s].remove(i);
+        self.fl[s].insert(new_start, end);
+        true
+    }
+
     /// Occupied times (L↑, L↓) and the overlap O.
     fn times(&self) -> (f64, f64, f64) {
         let lu = self.fl[0].occupied_length();
@@ -386,9 +467,9 @@ impl<'a> Sampler<'a> {
                     let d = e - s;
                     let mab = m.get(a, b);
                     if d < 0.0 {
-                        est.add(d + self.beta, mab * scale);
+                        est.add(d + self.beta, -mab * scale);
                     } else {
-                        est.add(d, -mab * scale);
+                        est.add(d, mab * scale);
                     }
                 }
             }
@@ -465,9 +546,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         }
     };
     for _ in 0..params.warmup_sweeps {
-        for _ in 0..params.moves_per_sweep {
-            smp.step();
-        }
+        smp.sweep(params.moves_per_sweep);
         sweep_no += 1;
         check(&mut smp, sweep_no);
     }
@@ -478,9 +557,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         est.clear();
         let mut sc = [0.0; N_SCALARS];
         for _ in 0..per_block {
-            for _ in 0..params.moves_per_sweep {
-                smp.step();
-            }
+            smp.sweep(params.moves_per_sweep);
             sweep_no += 1;
             check(&mut smp, sweep_no);
             smp.measure_green(&mut est);
@@ -569,6 +646,8 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     metrics.insert("accept_segment_remove", (smp.stats[1].rate(), None));
     metrics.insert("accept_hole_insert", (smp.stats[2].rate(), None));
     metrics.insert("accept_hole_remove", (smp.stats[3].rate(), None));
+    metrics.insert("accept_shift_end", (smp.stats[4].rate(), None));
+    metrics.insert("accept_shift_start", (smp.stats[5].rate(), None));
 
     Ok(CtqmcResult {
         gl,
@@ -585,5 +664,44 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         metrics,
         elapsed_seconds,
         moves,
+    })
+}
+
+/// Name of the metric that carries the standard error of `name`, for statistical metrics.
+fn error_key(name: &str) -> Option<&'static str> {
+    Some(match name {
+        "n_f" => "n_f_err",
+        "n_up" => "n_up_err",
+        "n_dn" => "n_dn_err",
+        "docc" => "docc_err",
+        "p0" => "p0_err",
+        "p1" => "p1_err",
+        "p2" => "p2_err",
+        "order_up" => "order_up_err",
+        "order_dn" => "order_dn_err",
+        "sigma_inf" => "sigma_inf_err",
+        _ => return None,
+    })
+}
+
+/// The solve-stage entry point: default parameters with the sweeps of the input, and the
+/// metrics flattened to numbers (each statistical metric `x` also as `x_err`).
+pub fn run(input: &SolverInput<'_>) -> Result<crate::solve::SolverOutput> {
+    let mut params = CtqmcParams::default();
+    if let Some(s) = input.sweeps {
+        params.sweeps = s;
+    }
+    let r = solve(input, &params)?;
+    let mut metrics = BTreeMap::new();
+    for (name, (value, err)) in &r.metrics {
+        metrics.insert(*name, *value);
+        if let (Some(e), Some(k)) = (err, error_key(name)) {
+            metrics.insert(k, *e);
+        }
+    }
+    Ok(crate::solve::SolverOutput {
+        g: r.g_iw,
+        sigma: r.sigma,
+        metrics,
     })
 }

@@ -17,6 +17,8 @@ use std::collections::BTreeMap;
 pub enum SolverKind {
     /// The deterministic atomic-limit solver.
     HubbardI,
+    /// Hybridization-expansion CT-QMC in the segment picture (`crate::ctqmc`).
+    Ctqmc,
 }
 
 impl std::str::FromStr for SolverKind {
@@ -24,7 +26,10 @@ impl std::str::FromStr for SolverKind {
     fn from_str(s: &str) -> Result<Self, Self::Err> {
         match s {
             "hubbard-i" => Ok(SolverKind::HubbardI),
-            other => Err(format!("unknown solver '{other}' (available: hubbard-i)")),
+            "ctqmc" => Ok(SolverKind::Ctqmc),
+            other => Err(format!(
+                "unknown solver '{other}' (available: hubbard-i, ctqmc)"
+            )),
         }
     }
 }
@@ -68,6 +73,7 @@ pub fn run_solver(kind: SolverKind, input: &SolverInput<'_>) -> Result<SolverOut
     }
     match kind {
         SolverKind::HubbardI => Ok(hubbard_i(input)),
+        SolverKind::Ctqmc => crate::ctqmc::run(input),
     }
 }
 

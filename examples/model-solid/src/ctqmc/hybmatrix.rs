@@ -1,8 +1,9 @@
 //! The inverse hybridization matrix of one flavour with fast block updates.
 //!
 //! For the k creators c†(s_a) and annihilators c(e_b) of a flavour the weight carries
-//! det F with F_{ba} = F(e_b − s_a), F(τ) = −Δ(τ) continued antiperiodically
-//! (F(τ − β) = −F(τ)). We keep M = F⁻¹ (rows: starts, columns: ends) and update it in
+//! |det F| with F_{ba} = F(s_a − e_b), F(τ) = −Δ(τ) continued antiperiodically
+//! (F(τ − β) = −F(τ)): tracing out the bath pairs the bath annihilator at the time of each
+//! c† with the bath creator at the time of each c, ⟨T a(s) a†(e)⟩ = −g_bath(s − e). We keep M = F⁻¹ (rows: starts, columns: ends) and update it in
 //! O(k²) when one (end, start) pair is added or removed (inverse by partitioning, as in
 //! Gull et al., Rev. Mod. Phys. 83, 349 (2011), appendix on fast updates). A full O(k³)
 //! recomputation serves as the accuracy check.
@@ -78,9 +79,9 @@ impl HybMatrix {
         let n = self.n;
         self.mq.clear();
         self.r.clear();
-        // Q_b = F(e_b − start) (new column), R_a = F(end − s_a) (new row).
-        let q: Vec<f64> = self.ends.iter().map(|&e| f.eval(e - start)).collect();
-        self.r.extend(self.starts.iter().map(|&s| f.eval(end - s)));
+        // Q_b = F(start − e_b) (new column), R_a = F(s_a − end) (new row).
+        let q: Vec<f64> = self.ends.iter().map(|&e| f.eval(start - e)).collect();
+        self.r.extend(self.starts.iter().map(|&s| f.eval(s - end)));
         let mut rmq = 0.0;
         for a in 0..n {
             let row = &self.m[a * self.stride..a * self.stride + n];
@@ -88,7 +89,7 @@ impl HybMatrix {
             self.mq.push(v);
             rmq += self.r[a] * v;
         }
-        self.s = f.eval(end - start) - rmq;
+        self.s = f.eval(start - end) - rmq;
         self.s
     }
 
@@ -122,6 +123,81 @@ impl HybMatrix {
         self.starts.push(start);
         self.ends.push(end);
         self.n = n + 1;
+    }
+
+    /// Determinant ratio for moving the annihilator at `old` to `new` (one row of F
+    /// changes): ratio = Σ_a F(s_a − new) M_{ab}. Keeps v = R' − R for the update.
+    pub(crate) fn ratio_move_end(&mut self, f: &HybFunction, old: f64, new: f64) -> (usize, f64) {
+        let b = Self::index_of(&self.ends, old);
+        self.r.clear();
+        let mut ratio = 0.0;
+        for (a, &s) in self.starts.iter().enumerate() {
+            let new_v = f.eval(s - new);
+            ratio += new_v * self.get(a, b);
+            self.r.push(new_v - f.eval(s - old));
+        }
+        self.s = ratio;
+        (b, ratio)
+    }
+
+    /// Apply the end move last proposed (Sherman–Morrison on row b of F).
+    pub(crate) fn accept_move_end(&mut self, b: usize, new: f64) {
+        let n = self.n;
+        let st = self.stride;
+        // (vᵀM)_y = Σ_a v_a M_ay.
+        self.rm.clear();
+        self.rm.resize(n, 0.0);
+        for a in 0..n {
+            let va = self.r[a];
+            for y in 0..n {
+                self.rm[y] += va * self.m[a * st + y];
+            }
+        }
+        let inv = 1.0 / self.s;
+        let col: Vec<f64> = (0..n).map(|x| self.m[x * st + b] * inv).collect();
+        for (x, cx) in col.iter().enumerate() {
+            for y in 0..n {
+                self.m[x * st + y] -= cx * self.rm[y];
+            }
+        }
+        self.ends[b] = new;
+    }
+
+    /// Determinant ratio for moving the creator at `old` to `new` (one column of F
+    /// changes): ratio = Σ_b M_{ab} F(new − e_b). Keeps w = Q' − Q for the update.
+    pub(crate) fn ratio_move_start(&mut self, f: &HybFunction, old: f64, new: f64) -> (usize, f64) {
+        let a = Self::index_of(&self.starts, old);
+        self.r.clear();
+        let mut ratio = 0.0;
+        for (b, &e) in self.ends.iter().enumerate() {
+            let new_v = f.eval(new - e);
+            ratio += self.get(a, b) * new_v;
+            self.r.push(new_v - f.eval(old - e));
+        }
+        self.s = ratio;
+        (a, ratio)
+    }
+
+    /// Apply the start move last proposed (Sherman–Morrison on column a of F).
+    pub(crate) fn accept_move_start(&mut self, a: usize, new: f64) {
+        let n = self.n;
+        let st = self.stride;
+        // (M w)_x = Σ_b M_xb w_b.
+        self.mq.clear();
+        for x in 0..n {
+            let row = &self.m[x * st..x * st + n];
+            self.mq
+                .push(row.iter().zip(&self.r).map(|(m, w)| m * w).sum());
+        }
+        let inv = 1.0 / self.s;
+        let row_a: Vec<f64> = (0..n).map(|y| self.m[a * st + y] * inv).collect();
+        for x in 0..n {
+            let f = self.mq[x];
+            for (y, ry) in row_a.iter().enumerate() {
+                self.m[x * st + y] -= f * ry;
+            }
+        }
+        self.starts[a] = new;
     }
 
     fn index_of(v: &[f64], t: f64) -> usize {
@@ -180,7 +256,7 @@ impl HybMatrix {
         if n == 0 {
             return 0.0;
         }
-        let fm = DMatrix::from_fn(n, n, |b, a| f.eval(self.ends[b] - self.starts[a]));
+        let fm = DMatrix::from_fn(n, n, |b, a| f.eval(self.starts[a] - self.ends[b]));
         let Some(inv) = fm.try_inverse() else {
             return f64::INFINITY;
         };
