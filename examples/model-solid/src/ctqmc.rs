@@ -34,8 +34,9 @@
 //! hybridization matrix, G(τ) = (1/β)⟨Σ_ab M_ab δ⁻(τ, e_b − s_a)⟩ (δ⁻ carries a minus sign for
 //! negative differences shifted by β), both binned and directly as Legendre coefficients with
 //! the shared kernel; the occupations, the double occupancy and P(0), P(1), P(2) from the
-//! time each atomic configuration occupies. Error bars: standard error over fixed blocks of
-//! measurements (independent when each block is much longer than the autocorrelation time).
+//! time each atomic configuration occupies. Error bars: the measurements are averaged into
+//! bins of consecutive sweeps and the standard error of each observable comes from the
+//! Flyvbjerg–Petersen binning analysis of its bin series (J. Chem. Phys. 91, 461 (1989)).
 
 mod delta_tau;
 mod dyson;
@@ -48,6 +49,7 @@ use crate::solve::SolverInput;
 use anyhow::{bail, Result};
 use hybmatrix::HybMatrix;
 use num_complex::Complex64;
+use rondo_numerics::binning::binning_analysis;
 use rondo_numerics::legendre::LegendreAccumulator;
 use rondo_numerics::matsubara::high_frequency_constant;
 use rondo_numerics::rng::SplitMix64;
@@ -69,7 +71,8 @@ pub struct CtqmcParams {
     pub n_tau_bins: usize,
     /// Intervals of the Δ(τ) interpolation grid.
     pub n_tau_grid: usize,
-    /// Measurement blocks for the error bars.
+    /// Measurement bins: consecutive sweeps are averaged into this many bins (at most one
+    /// per sweep), the level-0 series of the binning analysis of the error bars.
     pub n_blocks: usize,
     /// A full recomputation of the inverse matrices every this many sweeps (0: never).
     pub check_every: u64,
@@ -84,7 +87,7 @@ impl Default for CtqmcParams {
             n_legendre: 40,
             n_tau_bins: 200,
             n_tau_grid: 5_000,
-            n_blocks: 32,
+            n_blocks: 1024,
             check_every: 500,
         }
     }
@@ -98,11 +101,10 @@ impl CtqmcParams {
                 self.n_blocks
             );
         }
-        if self.sweeps < self.n_blocks as u64 {
+        if self.sweeps < 2 {
             bail!(
-                "CT-QMC sweeps ({}) must be at least the number of measurement blocks ({})",
-                self.sweeps,
-                self.n_blocks
+                "CT-QMC needs at least 2 measured sweeps for an error bar, got {}",
+                self.sweeps
             );
         }
         if self.moves_per_sweep == 0 || self.n_legendre == 0 || self.n_tau_bins == 0 {
@@ -496,6 +498,36 @@ const SC_P2: usize = 5;
 const SC_KUP: usize = 6;
 const SC_KDN: usize = 7;
 
+/// Mean and standard error of a series of measurement bins by the Flyvbjerg–Petersen
+/// binning analysis of the numerics crate (plain standard error of the bins when it has too
+/// few of them for a plateau).
+fn estimate(bins: &[f64]) -> Estimate {
+    match binning_analysis(bins) {
+        Ok(a) => Estimate {
+            value: a.mean,
+            error: a.std_error,
+        },
+        Err(_) => mean_and_error(bins),
+    }
+}
+
+/// At most `n` coarse blocks of consecutive bins (for linear maps of the bins whose error
+/// is wanted without a binning analysis per output, e.g. G(iω_n) from G_l).
+fn coarse_blocks(bins: &[Vec<f64>], n: usize) -> Vec<Vec<f64>> {
+    let size = (bins.len() / n).max(1);
+    bins.chunks_exact(size)
+        .map(|chunk| {
+            let mut m = vec![0.0; chunk[0].len()];
+            for b in chunk {
+                for (acc, v) in m.iter_mut().zip(b) {
+                    *acc += v / size as f64;
+                }
+            }
+            m
+        })
+        .collect()
+}
+
 fn mean_and_error(blocks: &[f64]) -> Estimate {
     let n = blocks.len() as f64;
     let mean = blocks.iter().sum::<f64>() / n;
@@ -534,7 +566,8 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     let eps = input.level + c0;
     let mut smp = Sampler::new(beta, eps, input.u, &f, input.seed);
     let mut est = GreenEstimator::new(beta, params.n_legendre, params.n_tau_bins);
-    let per_block = params.sweeps / params.n_blocks as u64;
+    let n_bins = (params.n_blocks as u64).min(params.sweeps) as usize;
+    let per_block = params.sweeps / n_bins as u64;
     let mut max_dev: f64 = 0.0;
     let mut n_checks = 0u64;
     let mut sweep_no = 0u64;
@@ -550,10 +583,10 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         sweep_no += 1;
         check(&mut smp, sweep_no);
     }
-    let mut gl_blocks = Vec::with_capacity(params.n_blocks);
-    let mut gtau_blocks = Vec::with_capacity(params.n_blocks);
-    let mut sc_blocks = Vec::with_capacity(params.n_blocks);
-    for _ in 0..params.n_blocks {
+    let mut gl_blocks = Vec::with_capacity(n_bins);
+    let mut gtau_blocks = Vec::with_capacity(n_bins);
+    let mut sc_blocks = Vec::with_capacity(n_bins);
+    for _ in 0..n_bins {
         est.clear();
         let mut sc = [0.0; N_SCALARS];
         for _ in 0..per_block {
@@ -581,21 +614,21 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
 
     let (gl, gl_err): (Vec<f64>, Vec<f64>) = (0..params.n_legendre)
         .map(|l| {
-            let e = mean_and_error(&column(&gl_blocks, l));
+            let e = estimate(&column(&gl_blocks, l));
             (e.value, e.error)
         })
         .unzip();
     let (g_tau, g_tau_err): (Vec<f64>, Vec<f64>) = (0..params.n_tau_bins)
         .map(|i| {
-            let e = mean_and_error(&column(&gtau_blocks, i));
+            let e = estimate(&column(&gtau_blocks, i));
             (e.value, e.error)
         })
         .unzip();
-    let sc = |i: usize| mean_and_error(&column(&sc_blocks, i));
+    let sc = |i: usize| estimate(&column(&sc_blocks, i));
     let n_sigma = [sc(SC_NUP), sc(SC_NDN)];
     let docc = sc(SC_DOCC);
     let p = [sc(SC_P0), sc(SC_P1), sc(SC_P2)];
-    let n_tot = mean_and_error(
+    let n_tot = estimate(
         &sc_blocks
             .iter()
             .map(|b| b[SC_NUP] + b[SC_NDN])
@@ -607,7 +640,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         beta,
         gl: &gl,
         gl_err: &gl_err,
-        gl_blocks: &gl_blocks,
+        gl_blocks: &coarse_blocks(&gl_blocks, 32),
         delta: input.delta,
         level: input.level,
         u: input.u,
@@ -638,10 +671,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     metrics.insert("tail_from_n", (dy.crossover as f64, None));
     metrics.insert("det_check_max_dev", (max_dev, None));
     metrics.insert("det_checks", (n_checks as f64, None));
-    metrics.insert(
-        "sweeps",
-        ((per_block * params.n_blocks as u64) as f64, None),
-    );
+    metrics.insert("sweeps", ((per_block * n_bins as u64) as f64, None));
     metrics.insert("accept_segment_insert", (smp.stats[0].rate(), None));
     metrics.insert("accept_segment_remove", (smp.stats[1].rate(), None));
     metrics.insert("accept_hole_insert", (smp.stats[2].rate(), None));
