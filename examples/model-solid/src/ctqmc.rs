@@ -81,7 +81,7 @@ pub struct CtqmcParams {
 impl Default for CtqmcParams {
     fn default() -> Self {
         Self {
-            sweeps: 20_000,
+            sweeps: 50_000,
             warmup_sweeps: 1_000,
             moves_per_sweep: 50,
             n_legendre: 40,

@@ -84,6 +84,7 @@ struct EdCase {
     p: [f64; 3],
     gl: Vec<f64>,
     gtau_bins: Vec<f64>,
+    giw: Vec<Complex64>,
 }
 
 fn ed_cases() -> (usize, Vec<EdCase>) {
@@ -120,6 +121,12 @@ fn ed_cases() -> (usize, Vec<EdCase>) {
                 p: [p[0], p[1], p[2]],
                 gl: fv(&c["gl"]),
                 gtau_bins: fv(&c["gtau_bins"]),
+                giw: c["giw"]
+                    .as_array()
+                    .expect("giw")
+                    .iter()
+                    .map(|z| Complex64::new(f(&z[0]), f(&z[1])))
+                    .collect(),
             }
         })
         .collect();
@@ -171,6 +178,13 @@ fn z_scores(c: &EdCase, n_bins: usize, params: &CtqmcParams, seed: u64) -> Vec<(
     }
     for l in 0..8 {
         push(format!("G_{l}"), r.gl[l], r.gl_err[l], c.gl[l]);
+    }
+    // G(iω_n) from the kept G_l through T_nl (below the tail crossover).
+    let cross = r.metrics["tail_from_n"].0 as usize;
+    for n in 0..3.min(cross) {
+        let (g, e, w) = (r.g_iw[n], r.g_iw_err[n], c.giw[n]);
+        push(format!("Re G(iω_{n})"), g.re, e.re, w.re);
+        push(format!("Im G(iω_{n})"), g.im, e.im, w.im);
     }
     for i in (0..n_bins).step_by(3) {
         push(
