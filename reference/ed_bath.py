@@ -15,7 +15,7 @@ import os
 
 import numpy as np
 from numpy.polynomial.legendre import leggauss
-from scipy.special import eval_legendre
+from scipy.special import eval_legendre, spherical_jn
 
 CASES = [
     # name, beta, U, eps, bath [(eps_b, V_b)]
@@ -110,6 +110,32 @@ def solve(beta, U, eps, bath):
                 giw=giw)
 
 
+def t_nl(n, l):
+    """T_nl = (-1)^n i^(l+1) sqrt(2l+1) j_l((2n+1)pi/2) (Boehnke et al. 2011)."""
+    return (-1) ** n * 1j ** (l + 1) * np.sqrt(2 * l + 1) * spherical_jn(l, (2 * n + 1) * np.pi / 2)
+
+
+def self_checks(r, beta, U, eps, bath):
+    """Consistency of the reference itself: G(iw_n) from G_l against the Lehmann sum, the
+    jump G(0+) + G(beta-) = -1, the tail c1 = -(2/beta) sum_even sqrt(2l+1) G_l = 1, and at
+    U = 0 G(iw) = 1/(iw - eps - Delta(iw))."""
+    gl = np.array(r["gl"])
+    dev_iw = 0.0
+    dev_u0 = 0.0
+    for n, (re, im) in enumerate(r["giw"]):
+        g_leg = sum(t_nl(n, l) * gl[l] for l in range(len(gl)))
+        dev_iw = max(dev_iw, abs(g_leg - (re + 1j * im)))
+        if U == 0.0:
+            iw = 1j * (2 * n + 1) * np.pi / beta
+            delta = sum(v * v / (iw - e) for e, v in bath)
+            dev_u0 = max(dev_u0, abs(1 / (iw - eps - delta) - (re + 1j * im)))
+    g = r["gtau_points"]["g"]
+    jump = g[0] + g[-1] + 1.0
+    c1 = -2.0 / beta * sum(np.sqrt(2 * l + 1) * gl[l] for l in range(0, len(gl), 2))
+    return dict(legendre_vs_lehmann=float(dev_iw), jump=float(jump), c1_minus_1=float(c1 - 1.0),
+                u0_vs_dyson=float(dev_u0))
+
+
 def main():
     out = []
     for name, beta, U, eps, bath in CASES:
@@ -121,6 +147,8 @@ def main():
               f"P=({r['p'][0]:.15f}, {r['p'][1]:.15f}, {r['p'][2]:.15f})")
         print("  G_l[0:4] = " + ", ".join(f"{v:.15f}" for v in r["gl"][:4]))
         print(f"  G(0+)={r['gtau_points']['g'][0]:.15f} G(beta/2)={r['gtau_points']['g'][N_TAU // 2]:.15f}")
+        chk = self_checks(r, beta, U, eps, bath)
+        print("  self-checks: " + ", ".join(f"{k}={v:.1e}" for k, v in chk.items()))
     here = os.path.dirname(os.path.abspath(__file__))
     os.makedirs(os.path.join(here, "output"), exist_ok=True)
     path = os.path.join(here, "output", "ed_bath.json")
