@@ -17,16 +17,18 @@ CREATE TABLE IF NOT EXISTS reports (
     rondo_version  TEXT NOT NULL
 );
 
-CREATE TABLE IF NOT EXISTS report_sources (
-    report_id  INTEGER NOT NULL REFERENCES reports(id),
-    attempt_id INTEGER NOT NULL REFERENCES attempts(id),   -- an attempt whose metrics were read
-    PRIMARY KEY (report_id, attempt_id)
-);
-
 CREATE TABLE IF NOT EXISTS report_outputs (
     report_id INTEGER NOT NULL REFERENCES reports(id),
-    role      TEXT NOT NULL,               -- file name inside the report folder, e.g. "eos-t100.csv"
+    role      TEXT NOT NULL,               -- file name inside the report folder, e.g. "eos.csv"
     artifact  TEXT NOT NULL REFERENCES artifacts(hash),
     PRIMARY KEY (report_id, role)
 );
 CREATE INDEX IF NOT EXISTS report_outputs_by_artifact ON report_outputs(artifact);
+
+CREATE TABLE IF NOT EXISTS report_sources (
+    report_id  INTEGER NOT NULL,
+    role       TEXT NOT NULL,              -- the output file whose numbers came from ...
+    attempt_id INTEGER NOT NULL REFERENCES attempts(id),   -- ... this attempt's metrics
+    PRIMARY KEY (report_id, role, attempt_id),
+    FOREIGN KEY (report_id, role) REFERENCES report_outputs(report_id, role)
+);

@@ -8,6 +8,7 @@ pub mod cli;
 pub mod engine;
 pub mod graph;
 pub mod progress;
+pub mod prov;
 pub mod report;
 pub mod spec;
 pub mod stop;
