@@ -142,6 +142,8 @@ pub struct CtqmcResult {
     pub g_iw_err: Vec<Complex64>,
     /// Σ(iω_n).
     pub sigma: Vec<Complex64>,
+    /// Linearised standard errors of Re and Im Σ(iω_n) (zero where the tail is used).
+    pub sigma_err: Vec<Complex64>,
     /// Occupation per flavour (up, down).
     pub n_sigma: [Estimate; 2],
     /// ⟨n↑n↓⟩.
@@ -636,6 +638,13 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     );
     let n_avg = 0.5 * n_tot.value;
 
+    if gl.iter().all(|g| *g == 0.0) {
+        bail!(
+            "CT-QMC sampled no configuration with hybridization events in {} sweeps \
+             (is Δ(iω) zero or tiny?); use the hubbard-i solver or more sweeps",
+            params.sweeps
+        );
+    }
     let dy = dyson::dyson(&dyson::DysonInput {
         beta,
         gl: &gl,
@@ -647,6 +656,13 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         n_other: n_avg,
     });
 
+    if let Some(n) = dy
+        .sigma
+        .iter()
+        .position(|z| !(z.re.is_finite() && z.im.is_finite()))
+    {
+        bail!("CT-QMC produced a non-finite self-energy at ω_{n}; rerun with more sweeps");
+    }
     let mut metrics: BTreeMap<&'static str, (f64, Option<f64>)> = BTreeMap::new();
     let with = |e: Estimate| (e.value, Some(e.error));
     metrics.insert("n_f", with(n_tot));
@@ -663,6 +679,10 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         "sigma_inf",
         (input.u * n_avg, Some(input.u * 0.5 * n_tot.error)),
     );
+    if let (Some(s), Some(e)) = (dy.sigma.first(), dy.sigma_err.first()) {
+        metrics.insert("sigma_iw0_re", (s.re, Some(e.re)));
+        metrics.insert("sigma_iw0_im", (s.im, Some(e.im)));
+    }
     metrics.insert("legendre_kept", (dy.kept as f64, None));
     metrics.insert(
         "legendre_dropped",
@@ -688,6 +708,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         g_iw: dy.g,
         g_iw_err: dy.g_err,
         sigma: dy.sigma,
+        sigma_err: dy.sigma_err,
         n_sigma,
         docc,
         p,
@@ -710,6 +731,8 @@ fn error_key(name: &str) -> Option<&'static str> {
         "order_up" => "order_up_err",
         "order_dn" => "order_dn_err",
         "sigma_inf" => "sigma_inf_err",
+        "sigma_iw0_re" => "sigma_iw0_re_err",
+        "sigma_iw0_im" => "sigma_iw0_im_err",
         _ => return None,
     })
 }

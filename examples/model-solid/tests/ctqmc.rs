@@ -186,6 +186,14 @@ fn z_scores(c: &EdCase, n_bins: usize, params: &CtqmcParams, seed: u64) -> Vec<(
         push(format!("Re G(iω_{n})"), g.re, e.re, w.re);
         push(format!("Im G(iω_{n})"), g.im, e.im, w.im);
     }
+    // Σ(iω_n) against Σ_ED = iω − ε − Δ − 1/G_ED (linearised errors).
+    for n in 0..3.min(cross) {
+        let iw = Complex64::new(0.0, fermionic_frequency(c.beta, n as i64));
+        let want = iw - c.eps - delta[n] - c.giw[n].inv();
+        let (s, e) = (r.sigma[n], r.sigma_err[n]);
+        push(format!("Re Σ(iω_{n})"), s.re, e.re, want.re);
+        push(format!("Im Σ(iω_{n})"), s.im, e.im, want.im);
+    }
     for i in (0..n_bins).step_by(3) {
         push(
             format!("G(τ bin {i})"),
@@ -340,6 +348,9 @@ fn bad_parameters_are_rejected() {
     p.sweeps = 100;
     assert!(solve(&input(&delta, 0.0, 1.0, -1.0, 1), &p).is_err());
     assert!(solve(&input(&[], 0.0, 1.0, 10.0, 1), &p).is_err());
+    let zero = vec![Complex64::new(0.0, 0.0); 64];
+    let err = solve(&input(&zero, 0.0, 1.0, 10.0, 1), &p).unwrap_err();
+    assert!(format!("{err:#}").contains("no configuration"), "{err:#}");
     let nan = vec![Complex64::new(f64::NAN, 0.0); 8];
     assert!(solve(&input(&nan, 0.0, 1.0, 10.0, 1), &p).is_err());
 }

@@ -18,6 +18,8 @@ pub(crate) struct DysonOutput {
     /// Standard error of Re and Im of G(iω_n) (from the block G_l), zero in the tail region.
     pub g_err: Vec<Complex64>,
     pub sigma: Vec<Complex64>,
+    /// Linearised standard error of Σ(iω_n): |δG|/|G|² in Re and Im (zero in the tail).
+    pub sigma_err: Vec<Complex64>,
     pub kept: usize,
     pub crossover: usize,
 }
@@ -81,6 +83,15 @@ pub(crate) fn dyson(inp: &DysonInput<'_>) -> DysonOutput {
             crossover = n;
         }
     }
+    // δΣ = δG/G² to first order.
+    let mut sigma_err: Vec<Complex64> = g_leg
+        .iter()
+        .zip(&g_err)
+        .map(|(g, e)| {
+            let d = e.norm() / g.norm_sqr();
+            Complex64::new(d, d)
+        })
+        .collect();
     let mut g = g_leg;
     let mut sigma = sigma_leg;
     for n in crossover..n_w {
@@ -88,11 +99,13 @@ pub(crate) fn dyson(inp: &DysonInput<'_>) -> DysonOutput {
         sigma[n] = sigma_tail[n];
         g[n] = (iw - inp.level - inp.delta[n] - sigma_tail[n]).inv();
         g_err[n] = Complex64::new(0.0, 0.0);
+        sigma_err[n] = Complex64::new(0.0, 0.0);
     }
     DysonOutput {
         g,
         g_err,
         sigma,
+        sigma_err,
         kept,
         crossover,
     }

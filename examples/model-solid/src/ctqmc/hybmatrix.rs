@@ -274,3 +274,103 @@ impl HybMatrix {
         dev / scale.max(f64::MIN_POSITIVE)
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use num_complex::Complex64;
+    use rondo_numerics::matsubara::fermionic_frequency;
+    use rondo_numerics::rng::SplitMix64;
+
+    #[test]
+    fn fast_updates_match_lu_inverse() {
+        // Random insertions, removals and operator moves; after each, M must equal the LU
+        // inverse of F built from scratch, and each ratio must equal det F'/det F.
+        let beta = 10.0;
+        let delta: Vec<Complex64> = (0..512)
+            .map(|n| {
+                let iw = Complex64::new(0.0, fermionic_frequency(beta, n));
+                0.25 / (iw + 0.3) + 0.5 / (iw - 0.7)
+            })
+            .collect();
+        let f = HybFunction::from_matsubara(beta, &delta, 0.0, 2000).unwrap();
+        let det = |m: &HybMatrix| {
+            let n = m.ends.len();
+            DMatrix::from_fn(n, n, |b, a| f.eval(m.starts[a] - m.ends[b])).determinant()
+        };
+        let mut rng = SplitMix64::new(3);
+        let mut m = HybMatrix::new();
+        let mut accepted = 0;
+        for step in 0..600 {
+            let before = if m.n == 0 { 1.0 } else { det(&m) };
+            let n = m.n;
+            let choice = if n < 2 {
+                0
+            } else if n > 12 {
+                1
+            } else {
+                rng.below(4)
+            };
+            // Accept only well-conditioned changes (|ratio| ≥ 0.05), as the sampler mostly does.
+            let ratio = match choice {
+                0 => {
+                    let (e, s) = (beta * rng.uniform(), beta * rng.uniform());
+                    let r = m.ratio_insert(&f, e, s);
+                    if r.abs() < 0.05 {
+                        continue;
+                    }
+                    m.accept_insert(e, s);
+                    r
+                }
+                1 => {
+                    let (a, b) = (rng.below(n as u64) as usize, rng.below(n as u64) as usize);
+                    let (e, s) = (m.ends[b], m.starts[a]);
+                    let r = m.ratio_remove(e, s);
+                    if r.abs() < 0.05 {
+                        continue;
+                    }
+                    m.accept_remove(e, s);
+                    // Removing row b, column a of F: det ratio up to the permutation sign.
+                    r * if (a + b) % 2 == 0 { 1.0 } else { -1.0 }
+                }
+                2 => {
+                    let old = m.ends[rng.below(n as u64) as usize];
+                    let new = beta * rng.uniform();
+                    let (b, r) = m.ratio_move_end(&f, old, new);
+                    if r.abs() < 0.05 {
+                        continue;
+                    }
+                    m.accept_move_end(b, new);
+                    r
+                }
+                _ => {
+                    let old = m.starts[rng.below(n as u64) as usize];
+                    let new = beta * rng.uniform();
+                    let (a, r) = m.ratio_move_start(&f, old, new);
+                    if r.abs() < 0.05 {
+                        continue;
+                    }
+                    m.accept_move_start(a, new);
+                    r
+                }
+            };
+            let after = if m.n == 0 { 1.0 } else { det(&m) };
+            if choice != 1 {
+                assert!(
+                    (ratio - after / before).abs() < 1e-8 * (after / before).abs().max(1e-3),
+                    "step {step} move {choice}: ratio {ratio} vs {}",
+                    after / before
+                );
+            } else {
+                assert!(
+                    (ratio.abs() - (after / before).abs()).abs() < 1e-8 * ratio.abs().max(1e-3)
+                );
+            }
+            let mut copy = m.clone();
+            let dev = copy.recompute(&f);
+            assert!(dev < 1e-8, "step {step}: relative deviation {dev}");
+            accepted += 1;
+        }
+        assert!(accepted > 100, "{accepted} accepted changes");
+    }
+}
