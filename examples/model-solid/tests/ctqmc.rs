@@ -187,9 +187,9 @@ fn z_scores(c: &EdCase, n_bins: usize, params: &CtqmcParams, seed: u64) -> Vec<(
         push(format!("Im G(iω_{n})"), g.im, e.im, w.im);
     }
     // Σ(iω_n) against Σ_ED = iω − ε − Δ − 1/G_ED (linearised errors).
-    for n in 0..3.min(cross) {
+    for (n, d) in delta.iter().enumerate().take(3.min(cross)) {
         let iw = Complex64::new(0.0, fermionic_frequency(c.beta, n as i64));
-        let want = iw - c.eps - delta[n] - c.giw[n].inv();
+        let want = iw - c.eps - d - c.giw[n].inv();
         let (s, e) = (r.sigma[n], r.sigma_err[n]);
         push(format!("Re Σ(iω_{n})"), s.re, e.re, want.re);
         push(format!("Im Σ(iω_{n})"), s.im, e.im, want.im);
