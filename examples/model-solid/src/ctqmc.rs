@@ -48,6 +48,7 @@ pub use delta_tau::HybFunction;
 use crate::solve::SolverInput;
 use anyhow::{bail, Result};
 use hybmatrix::HybMatrix;
+use nalgebra::DMatrix;
 use num_complex::Complex64;
 use rondo_numerics::binning::binning_analysis;
 use rondo_numerics::legendre::LegendreAccumulator;
@@ -487,6 +488,34 @@ impl<'a> Sampler<'a> {
             .map(|m| m.recompute(f))
             .fold(0.0, f64::max)
     }
+
+    /// The sign of the full weight, from the time-ordered determinant of each flavour:
+    /// Π_σ sign(det F_σ) (−1)^{k_σ} (−1)^{w_σ}, with rows and columns in segment order and w_σ = 1
+    /// when a segment winds through β. It is +1 for a causal Δ (the segment picture of one
+    /// orbital has no sign problem); a −1 flags a non-causal hybridization function, whose
+    /// weights the sampler replaces by their absolute values.
+    fn weight_sign(&self) -> f64 {
+        let mut sign = 1.0;
+        for fl in &self.fl {
+            let segs = fl.segments();
+            let k = segs.len();
+            if k == 0 {
+                continue;
+            }
+            let m = DMatrix::from_fn(k, k, |i, j| self.f.eval(segs[j].0 - segs[i].1));
+            let d = m.determinant();
+            let wind = segs[k - 1].1 < segs[k - 1].0;
+            let mut s = d.signum();
+            if k % 2 == 1 {
+                s = -s;
+            }
+            if wind {
+                s = -s;
+            }
+            sign *= s;
+        }
+        sign
+    }
 }
 
 /// Index of the scalar observables in a block record.
@@ -572,11 +601,15 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     let per_block = params.sweeps / n_bins as u64;
     let mut max_dev: f64 = 0.0;
     let mut n_checks = 0u64;
+    let mut negative_signs = 0u64;
     let mut sweep_no = 0u64;
     let t0 = std::time::Instant::now();
     let mut check = |smp: &mut Sampler<'_>, sweep_no: u64| {
         if params.check_every > 0 && sweep_no % params.check_every == 0 {
             max_dev = max_dev.max(smp.recompute());
+            if smp.weight_sign() < 0.0 {
+                negative_signs += 1;
+            }
             n_checks += 1;
         }
     };
@@ -691,6 +724,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     metrics.insert("tail_from_n", (dy.crossover as f64, None));
     metrics.insert("det_check_max_dev", (max_dev, None));
     metrics.insert("det_checks", (n_checks as f64, None));
+    metrics.insert("negative_sign_checks", (negative_signs as f64, None));
     metrics.insert("sweeps", ((per_block * n_bins as u64) as f64, None));
     metrics.insert("accept_segment_insert", (smp.stats[0].rate(), None));
     metrics.insert("accept_segment_remove", (smp.stats[1].rate(), None));

@@ -148,6 +148,9 @@ fn z_scores(c: &EdCase, n_bins: usize, params: &CtqmcParams, seed: u64) -> Vec<(
     let mut p = params.clone();
     p.n_tau_bins = n_bins;
     let r = solve(&input(&delta, c.eps, c.u, c.beta, seed), &p).expect("solver runs");
+    // A causal Δ has positive weights only (checked at every full recomputation).
+    assert_eq!(r.metrics["negative_sign_checks"].0, 0.0, "{}", c.name);
+    assert!(r.metrics["det_checks"].0 > 0.0);
     let mut z = Vec::new();
     let mut push = |label: String, got: f64, err: f64, want: f64| {
         // An error of exactly zero means no fluctuation at all: the value must be exact.
@@ -381,4 +384,17 @@ fn z_scores_over_fifty_seeds_are_standard_normal() {
         "fraction within 1σ: {within}"
     );
     assert!(worst < 5.0, "largest |z| = {worst}");
+}
+
+#[test]
+fn non_causal_hybridization_is_flagged_by_the_sign_check() {
+    // Δ(iω) = −V²/(iω − ε_b) has negative spectral weight: F(τ) = −Δ(τ) < 0 and
+    // configurations of odd order acquire negative weights, which the sampler reports.
+    let beta = 10.0;
+    let delta: Vec<Complex64> = bath_delta(beta, &[(0.3, 0.6)], 128)
+        .into_iter()
+        .map(|d| -d)
+        .collect();
+    let r = solve(&input(&delta, -0.5, 1.0, beta, 2), &short_params(4000)).unwrap();
+    assert!(r.metrics["negative_sign_checks"].0 > 0.0, "{:?}", r.metrics);
 }
