@@ -243,8 +243,9 @@ pub async fn resolve_target(pool: &SqlitePool, ws: &Path, target: &str) -> Resul
 }
 
 /// Resolve what a user pointed at:
-/// * an existing file (absolute, or relative to the current directory): hashed with BLAKE3
-///   and looked up among the recorded artifacts;
+/// * an existing file (absolute, relative to the current directory, or else relative to the
+///   workspace): hashed with BLAKE3 (`progress(bytes done, bytes total)`) and looked up among
+///   the recorded artifacts;
 /// * a hash prefix of at least [`MIN_PREFIX`] hex digits;
 /// * `POINT/ITERATION/stage.metric`, e.g. `p003/4/update.energy` or `p003/last/update.energy`
 ///   (`last`: the last good iteration).
@@ -254,8 +255,13 @@ pub async fn resolve(
     target: &str,
     progress: &mut dyn FnMut(u64, u64),
 ) -> Result<Target> {
-    let _ = ws;
-    let path = Path::new(target);
+    let given = Path::new(target);
+    let in_ws = ws.join(target);
+    let path = if !given.is_file() && given.is_relative() && in_ws.is_file() {
+        in_ws.as_path()
+    } else {
+        given
+    };
     if path.is_file() {
         let hash = hash_file_with_progress(path, progress)?;
         let known: Option<String> = sqlx::query_scalar("SELECT hash FROM artifacts WHERE hash = ?")

@@ -1419,7 +1419,7 @@ fn build(
          body {{ font-family: sans-serif; margin: 2em; color: #222; background: #fff; }}\n\
          figure {{ margin: 1.5em 0; }} img {{ max-width: 100%; border: 1px solid #ccc; }}\n\
          table {{ border-collapse: collapse; font-size: 0.9em; }}\n\
-         th, td {{ border: 1px solid #bbb; padding: 0.25em 0.6em; text-align: right; }}\n\
+         th, td {{ border: 1px solid #bbb; padding: 0.25em 0.6em; text-align: right; white-space: nowrap; }}\n\
          th {{ background: #eef; }} td.failed, td.capped {{ color: #b00; }}\n\
          .notes li {{ color: #a50; }}\n</style>\n</head>\n<body>\n\
          <h1>Campaign {c}</h1>\n",

@@ -353,3 +353,81 @@ async fn chromium_screenshot_of_the_report_is_not_blank() -> Result<()> {
     assert!(colours > 20, "{colours} colours");
     Ok(())
 }
+
+#[tokio::test]
+async fn workspace_relative_paths_resolve() -> Result<()> {
+    let d = tempfile::tempdir()?;
+    let (fx, sum, _) = make_report(d.path()).await?;
+    // the report folder is <ws>/report in this fixture
+    assert_eq!(sum.out_dir, d.path().join("report"));
+    let mut seen = (0, 0);
+    let t = audit::resolve(
+        &fx.pool,
+        &fx.ws,
+        "report/probabilities.csv",
+        &mut |done, total| seen = (done, total),
+    )
+    .await?;
+    let audit::Target::Artifact { hash } = t else {
+        bail!("expected an artifact");
+    };
+    let size = std::fs::metadata(sum.out_dir.join("probabilities.csv"))?.len();
+    assert_eq!(seen, (size, size), "hashing progress reached the file size");
+    assert!(sum
+        .files
+        .iter()
+        .any(|f| f.name == "probabilities.csv" && f.blake3 == hash));
+    Ok(())
+}
+
+/// The report tables are created on demand and by store migration 2 alike: a migrator that
+/// has 0002 registered (as the store will) applies cleanly both to a workspace whose report
+/// already created them and to a new one.
+#[tokio::test]
+async fn migration_two_agrees_with_the_on_demand_tables() -> Result<()> {
+    use sqlx::migrate::{Migration, MigrationType, Migrator};
+    fn with_two() -> Migrator {
+        let m = vec![
+            Migration::new(
+                1,
+                "initial".into(),
+                MigrationType::Simple,
+                include_str!("../migrations/0001_initial.sql").into(),
+                false,
+            ),
+            Migration::new(
+                2,
+                "report provenance".into(),
+                MigrationType::Simple,
+                include_str!("../migrations/0002_report_provenance.sql").into(),
+                false,
+            ),
+        ];
+        Migrator {
+            migrations: m.into(),
+            ..Migrator::DEFAULT
+        }
+    }
+    let d = tempfile::tempdir()?;
+    let (fx, sum, _) = make_report(d.path()).await?;
+    with_two().run(&fx.pool).await?;
+    let n: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM report_outputs WHERE report_id = ?")
+        .bind(sum.report_id)
+        .fetch_one(&fx.pool)
+        .await?;
+    assert_eq!(
+        n as usize,
+        sum.files.len(),
+        "migration 2 kept the recorded report"
+    );
+    // a new workspace migrated to version 2 first
+    let d2 = tempfile::tempdir()?;
+    let pool = rondo::store::open(&d2.path().join("rondo.db")).await?;
+    with_two().run(&pool).await?;
+    report::ensure_schema(&pool).await?;
+    let v: i64 = sqlx::query_scalar("SELECT MAX(version) FROM _sqlx_migrations")
+        .fetch_one(&pool)
+        .await?;
+    assert_eq!(v, 2);
+    Ok(())
+}
