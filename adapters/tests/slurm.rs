@@ -130,6 +130,17 @@ fn job_fields(id: &str) -> std::collections::HashMap<String, String> {
         .unwrap_or_default()
 }
 
+/// Seconds a finished job stays in slurmctld's memory (`MinJobAge`, slurm.conf(5)).
+fn min_job_age() -> u64 {
+    cmd_out("scontrol", &["show", "config"])
+        .lines()
+        .find_map(|l| {
+            let (k, v) = l.split_once('=')?;
+            (k.trim() == "MinJobAge").then(|| v.split_whitespace().next()?.parse().ok())?
+        })
+        .unwrap_or(300)
+}
+
 fn node_name() -> String {
     cmd_out("sinfo", &["-h", "-N", "-o", "%N"])
         .lines()
@@ -238,6 +249,20 @@ async fn exit_codes_markers_and_job_names() {
     assert_eq!(v, "a b'c");
     assert!(ok.path().join(format!("slurm-{}.out", h1.id)).exists());
     assert_eq!(ex.stats().submissions, 2);
+
+    // A launcher prefix, as the engine renders it: already in argv, and in resources.
+    let par = tempfile::tempdir().expect("tempdir");
+    let mut req = request(3, par.path(), "echo \"step $SLURM_STEP_ID\" > step.txt");
+    req.argv
+        .splice(0..0, ["srun".to_string(), "-n1".to_string()]);
+    req.resources.launcher = Some(vec!["srun".into(), "-n1".into()]);
+    let script = ex.render_script(&req).expect("script");
+    assert_eq!(script.matches("srun").count(), 1, "{script}");
+    ex.launch(req).await.expect("submit");
+    let c = next(&mut rx).await;
+    assert_eq!((c.attempt_id, c.outcome), (3, Outcome::Exited { code: 0 }));
+    let step = std::fs::read_to_string(par.path().join("step.txt")).expect("step.txt");
+    assert_eq!(step.trim(), "step 0", "ran as the job's first srun step");
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -324,11 +349,23 @@ async fn a1_time_limit_kill_is_timed_out_and_retried_longer() {
     let h = ex.launch(req.clone()).await.expect("submit");
     assert_eq!(job_fields(&h.id)["TimeLimit"], "00:01:00");
     let c = next_within(&mut rx, 240).await;
-    assert_eq!((c.attempt_id, &c.outcome), (31, &Outcome::TimedOut));
+    assert_eq!(
+        (c.attempt_id, &c.outcome),
+        (31, &Outcome::TimedOut),
+        "{c:?}"
+    );
     assert!(c.outcome.is_transient(), "a wall-time kill is retried");
-    assert!(c.started_at.is_some());
-    assert!(!dir.path().join("out.txt").exists());
-    assert_eq!(job_fields(&h.id)["JobState"], "TIMEOUT");
+    assert!(c.started_at.is_some(), "start marker read: {c:?}");
+    assert!(
+        !dir.path().join("out.txt").exists(),
+        "the command was cut short"
+    );
+    // Slurm agrees (scontrol may lag behind squeue by a moment).
+    let id = h.id.clone();
+    wait_for("scontrol shows TIMEOUT", 30, move || {
+        job_fields(&id).get("JobState").map(String::as_str) == Some("TIMEOUT")
+    })
+    .await;
 
     // The retry: twice the time, in the same directory (stale markers are removed).
     let retry = LaunchRequest {
@@ -494,9 +531,11 @@ async fn a3_second_instance_adopts_finished_and_running_jobs() {
             .all(|d| d.path().join(".rondo-exit").exists())
     })
     .await;
-    wait_for("the scheduler purges jobs 25 and 26", 180, || {
-        squeue_name(&hp.id).is_empty() && squeue_name(&hl.id).is_empty()
-    })
+    wait_for(
+        "the scheduler purges jobs 25 and 26",
+        min_job_age() + 120,
+        || squeue_name(&hp.id).is_empty() && squeue_name(&hl.id).is_empty(),
+    )
     .await;
     std::fs::remove_file(lost.path().join(".rondo-exit")).expect("remove marker");
     assert_eq!(job_fields(&hh.id)["JobState"], "PENDING");

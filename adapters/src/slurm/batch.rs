@@ -120,6 +120,8 @@ pub fn sanitize_job_name(name: &str) -> String {
 }
 
 /// Replace `{{cpus}}` and `{{tasks}}` in the launcher prefix with the request's numbers.
+/// For callers that build a command themselves: [`job_script`] does not add the launcher,
+/// because the engine puts it into [`LaunchRequest::argv`] already (for every executor).
 pub fn render_launcher(req: &LaunchRequest) -> Vec<String> {
     let cpus = req.resources.cpus().to_string();
     let tasks = req.resources.ntasks.unwrap_or(1).to_string();
@@ -132,8 +134,9 @@ pub fn render_launcher(req: &LaunchRequest) -> Vec<String> {
 }
 
 /// The whole job script: shebang, directives, then a body that records the start, exports the
-/// environment, runs the (launcher-prefixed) command with every word shell-quoted, and writes
-/// the exit status to [`EXIT_MARKER`] through a temporary file and a rename.
+/// environment, runs `argv` as given (already launcher-prefixed by the engine) with every word
+/// shell-quoted, and writes the exit status to [`EXIT_MARKER`] through a temporary file and a
+/// rename.
 pub fn job_script(directives: &[String], req: &LaunchRequest) -> Result<String, ExecError> {
     if req.argv.is_empty() {
         return Err(ExecError::Invalid(format!(
@@ -167,11 +170,7 @@ pub fn job_script(directives: &[String], req: &LaunchRequest) -> Result<String, 
         }
         s.push_str(&format!("export {k}={}\n", shell_quote(v)));
     }
-    let words: Vec<String> = render_launcher(req)
-        .iter()
-        .chain(req.argv.iter())
-        .map(|w| shell_quote(w))
-        .collect();
+    let words: Vec<String> = req.argv.iter().map(|w| shell_quote(w)).collect();
     s.push_str(&words.join(" "));
     s.push('\n');
     s.push_str("rc=$?\n");
@@ -740,7 +739,14 @@ mod tests {
         let req = LaunchRequest {
             attempt_id: 7,
             job_name: "c/p/1/s".into(),
-            argv: vec!["/bin/echo".into(), "a b".into(), "$X".into()],
+            argv: vec![
+                "mpirun".into(),
+                "-np".into(),
+                "4".into(),
+                "/bin/echo".into(),
+                "a b".into(),
+                "$X".into(),
+            ],
             workdir: "/tmp/w d".into(),
             env: [("OMP_NUM_THREADS".to_string(), "2".to_string())].into(),
             time_limit: None,
@@ -752,7 +758,13 @@ mod tests {
         };
         let s = job_script(&["#SBATCH --ntasks=4".into()], &req).expect("script");
         assert!(s.starts_with("#!/bin/sh\n#SBATCH --ntasks=4\n"));
+        // The launcher in `resources` is not added a second time.
         assert!(s.contains("\nmpirun -np 4 /bin/echo 'a b' '$X'\n"));
+        assert_eq!(s.matches("mpirun").count(), 1);
+        assert_eq!(
+            render_launcher(&req),
+            ["mpirun".to_string(), "-np".into(), "4".into()]
+        );
         assert!(s.contains("export OMP_NUM_THREADS=2\n"));
         assert!(s.contains("> '/tmp/w d/.rondo-exit'.tmp.$$ && mv -f '/tmp/w d/.rondo-exit'.tmp.$$ '/tmp/w d/.rondo-exit'"));
         let bad = LaunchRequest {
