@@ -10,7 +10,7 @@ use anyhow::{Context, Result};
 use serde_json::{json, Map, Value};
 use sqlx::{Row, SqlitePool};
 
-use crate::audit::{self, AttemptRecord};
+use crate::audit::{self, AttemptRecord, Target};
 
 /// Namespace of rondo's own terms.
 pub const NS_RONDO: &str = "https://example.invalid/rondo/ns#";
@@ -73,13 +73,26 @@ pub async fn export(pool: &SqlitePool, target: Option<&str>) -> Result<Value> {
 
 /// [`export`] naming `user` as the person responsible.
 pub async fn export_as(pool: &SqlitePool, target: Option<&str>, user: &str) -> Result<Value> {
+    let t = target.map(|h| Target::Artifact {
+        hash: h.to_string(),
+    });
+    export_target(pool, t.as_ref(), user).await
+}
+
+/// Export the lineage of any resolved target (an artifact or a metric; see
+/// [`audit::resolve`]), or of the whole campaign with `None`, naming `user`.
+pub async fn export_target(
+    pool: &SqlitePool,
+    target: Option<&Target>,
+    user: &str,
+) -> Result<Value> {
     let campaign = audit::campaign(pool).await?;
     let workspace_id: String = sqlx::query_scalar("SELECT workspace_id FROM campaign WHERE id = 1")
         .fetch_one(pool)
         .await?;
     let (records, start): (Vec<AttemptRecord>, Vec<audit::StartFile>) = match target {
-        Some(hash) => {
-            let l = audit::lineage(pool, hash).await?;
+        Some(t) => {
+            let l = audit::lineage_of(pool, t).await?;
             (l.attempts, l.sources)
         }
         None => {
@@ -108,8 +121,8 @@ pub async fn export_as(pool: &SqlitePool, target: Option<&str>, user: &str) -> R
         }
     };
     let mut hashes: BTreeSet<String> = BTreeSet::new();
-    if let Some(h) = target {
-        hashes.insert(h.to_string());
+    if let Some(Target::Artifact { hash }) = target {
+        hashes.insert(hash.clone());
     }
     if target.is_none() {
         let all: Vec<String> = sqlx::query_scalar("SELECT hash FROM artifacts")

@@ -196,3 +196,26 @@ async fn export_of_an_unknown_target_fails_clearly() -> Result<()> {
     );
     Ok(())
 }
+
+#[tokio::test]
+async fn export_of_a_metric_is_the_lineage_of_its_attempt() -> Result<()> {
+    let d = tempfile::tempdir()?;
+    let fx = fixtures::build(d.path()).await?;
+    let t = audit::resolve(&fx.pool, &fx.ws, "p001/2/update.energy", &mut |_, _| {}).await?;
+    let doc = prov::export_target(&fx.pool, Some(&t), "alice").await?;
+    let (entities, activities, agents) = prov::counts(&doc);
+    // iterations 1 and 2 of p001, five stages each; the failed band attempt produced
+    // nothing this metric depends on
+    assert_eq!(activities, 10);
+    // the start density, 7 artifacts per iteration, the plan
+    assert_eq!(entities, 1 + 7 * 2 + 1);
+    assert!(!doc["activity"]
+        .as_object()
+        .context("activities")?
+        .values()
+        .any(|a| a["rondo:state"] == "failed"));
+    if let Some(py) = prov_python()? {
+        validate(&py, &doc, d.path(), entities, activities, agents)?;
+    }
+    Ok(())
+}
