@@ -17,7 +17,8 @@ use rondo_adapters::executor::{
     Completion, Executor, Handle, LaunchRequest, Outcome, Reattached, Resources, Shutdown,
 };
 use rondo_adapters::slurm::allocation::{
-    submit_continuation, warning_signal, write_allocation_script, AllocationEnv, AllocationSpec,
+    submit_continuation, time_left, warning_signal, write_allocation_script, AllocationEnv,
+    AllocationSpec,
 };
 use rondo_adapters::slurm::{lengthen_time, parse_kv_line, SlurmConfig, SlurmExecutor};
 use tokio::sync::mpsc::{unbounded_channel, UnboundedReceiver};
@@ -678,6 +679,7 @@ async fn a2_allocation_chain_continues_after_the_warning_signal() {
     let second = read("submitted-1");
     assert!(!second.is_empty() && second != first);
     assert_eq!(read("done"), format!("1 {second}"));
+    assert!(dir.path().join("left-0").exists() && dir.path().join("left-1").exists());
     assert_eq!(job_fields(&first)["JobState"], "COMPLETED");
     // The continuation waited for the first job.
     let f = job_fields(&second);
@@ -694,6 +696,15 @@ async fn allocation_worker(dir: &Path) {
     assert!(env.in_allocation(), "{env:?}");
     let job = env.job_id.clone().expect("SLURM_JOB_ID");
     let script = env.script.clone().expect("allocation script");
+    let left = time_left("squeue", &job, Duration::from_secs(60))
+        .await
+        .expect("squeue answers")
+        .expect("the job has a limit");
+    assert!(
+        left <= Duration::from_secs(60),
+        "{left:?} left of a 1-minute job"
+    );
+    std::fs::write(dir.join(format!("left-{}", env.continuation)), "").expect("write");
     if env.continuation == 0 {
         // Work that never ends by itself: only the warning stops it.
         tokio::time::timeout(Duration::from_secs(200), usr1.recv())

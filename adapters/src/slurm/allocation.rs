@@ -160,6 +160,34 @@ pub async fn submit_continuation(
     Ok(id)
 }
 
+/// Parse squeue's time-left column (`%L`): `[D-]HH:MM:SS` or `MM:SS`; `None` for
+/// `UNLIMITED`, `NOT_SET`, `INVALID` or anything else that is not a time.
+pub fn parse_time_left(text: &str) -> Option<Duration> {
+    let t = text.trim();
+    if t.is_empty() || !t.starts_with(|c: char| c.is_ascii_digit()) || !t.contains(':') {
+        return None;
+    }
+    parse_slurm_time(t).ok()
+}
+
+/// How long job `job_id` has left before its time limit (one `squeue -h -j ID -o %L` call),
+/// so that rondo inside an allocation can decline to start a stage that cannot finish in time.
+/// `Ok(None)` when the job has no limit.
+pub async fn time_left(
+    squeue: &str,
+    job_id: &str,
+    timeout: Duration,
+) -> Result<Option<Duration>, ExecError> {
+    let args = ["-h", "-j", job_id, "-o", "%L"].map(String::from);
+    let out = run_capture(squeue, &args, timeout)
+        .await
+        .map_err(|m| ExecError::Unavailable {
+            what: "squeue (time left)".into(),
+            message: m,
+        })?;
+    Ok(out.lines().next().and_then(parse_time_left))
+}
+
 /// Where rondo runs, as far as an allocation chain is concerned (read from the environment
 /// Slurm and the allocation script set).
 #[derive(Debug, Clone, PartialEq, Eq, Default)]
@@ -299,6 +327,20 @@ mod tests {
             continuation_args(Path::new("/w/a.sh"), None, 0),
             ["--parsable", "--export=ALL,RONDO_CONTINUATION=0", "/w/a.sh"]
         );
+    }
+
+    #[test]
+    fn time_left_in_squeue_forms() {
+        // Forms of squeue(1) %L: days-hours:minutes:seconds, shortened when zero.
+        let t = |s: &str| parse_time_left(s).map(|d| d.as_secs());
+        assert_eq!(t("0:42"), Some(42));
+        assert_eq!(t("59:58"), Some(3598));
+        assert_eq!(t("1:00:00"), Some(3600));
+        assert_eq!(t("2-03:04:05"), Some(2 * 86_400 + 3 * 3600 + 4 * 60 + 5));
+        assert_eq!(t("UNLIMITED"), None);
+        assert_eq!(t("NOT_SET"), None);
+        assert_eq!(t("INVALID"), None);
+        assert_eq!(t(""), None);
     }
 
     #[test]
