@@ -597,8 +597,9 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     let eps = input.level + c0;
     let mut smp = Sampler::new(beta, eps, input.u, &f, input.seed);
     let mut est = GreenEstimator::new(beta, params.n_legendre, params.n_tau_bins);
-    let n_bins = (params.n_blocks as u64).min(params.sweeps) as usize;
-    let per_block = params.sweeps / n_bins as u64;
+    // Bins of equal length covering all but at most per_block − 1 of the requested sweeps.
+    let per_block = params.sweeps.div_ceil(params.n_blocks as u64);
+    let n_bins = (params.sweeps / per_block) as usize;
     let mut max_dev: f64 = 0.0;
     let mut n_checks = 0u64;
     let mut negative_signs = 0u64;

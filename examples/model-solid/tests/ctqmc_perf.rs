@@ -49,7 +49,7 @@ fn demo_size_solve_report() {
     }
     let hub = run_solver(SolverKind::HubbardI, &inp(&p0.delta, level, beta)).expect("hubbard-i");
     let p1 = project(&b.mesh, &hub.sigma, density.mu, beta, Window::default()).expect("project");
-    for sweeps in [2_000u64, 20_000] {
+    for sweeps in [2_000u64, 50_000] {
         let params = CtqmcParams {
             sweeps,
             ..CtqmcParams::default()
