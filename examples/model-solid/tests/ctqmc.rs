@@ -398,3 +398,22 @@ fn non_causal_hybridization_is_flagged_by_the_sign_check() {
     let r = solve(&input(&delta, -0.5, 1.0, beta, 2), &short_params(4000)).unwrap();
     assert!(r.metrics["negative_sign_checks"].0 > 0.0, "{:?}", r.metrics);
 }
+
+#[test]
+fn solve_stage_dispatch_runs_ctqmc() {
+    use model_solid::solve::{run_solver, SolverKind};
+    let kind: SolverKind = "ctqmc".parse().unwrap();
+    let delta = bath_delta(10.0, &[(0.0, 0.5)], 128);
+    let mut inp = input(&delta, -1.0, 2.0, 10.0, 4);
+    inp.sweeps = Some(2_000);
+    let out = run_solver(kind, &inp).unwrap();
+    assert_eq!(out.sigma.len(), 128);
+    assert_eq!(out.metrics["sweeps"], 2_000.0);
+    assert!(out.metrics["docc_err"] > 0.0 && out.metrics["n_f_err"] > 0.0);
+    // Half filling of a particle-hole symmetric problem (reference/ed_bath.py: n_σ = 1/2).
+    assert!((out.metrics["n_f"] - 1.0).abs() < 4.0 * out.metrics["n_f_err"]);
+    assert!(out
+        .sigma
+        .iter()
+        .all(|s| s.re.is_finite() && s.im.is_finite()));
+}
