@@ -542,23 +542,6 @@ fn estimate(bins: &[f64]) -> Estimate {
     }
 }
 
-/// At most `n` coarse blocks of consecutive bins (for linear maps of the bins whose error
-/// is wanted without a binning analysis per output, e.g. G(iω_n) from G_l).
-fn coarse_blocks(bins: &[Vec<f64>], n: usize) -> Vec<Vec<f64>> {
-    let size = (bins.len() / n).max(1);
-    bins.chunks_exact(size)
-        .map(|chunk| {
-            let mut m = vec![0.0; chunk[0].len()];
-            for b in chunk {
-                for (acc, v) in m.iter_mut().zip(b) {
-                    *acc += v / size as f64;
-                }
-            }
-            m
-        })
-        .collect()
-}
-
 fn mean_and_error(blocks: &[f64]) -> Estimate {
     let n = blocks.len() as f64;
     let mean = blocks.iter().sum::<f64>() / n;
@@ -683,7 +666,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
         beta,
         gl: &gl,
         gl_err: &gl_err,
-        gl_blocks: &coarse_blocks(&gl_blocks, 32),
+        gl_blocks: &gl_blocks,
         delta: input.delta,
         level: input.level,
         u: input.u,

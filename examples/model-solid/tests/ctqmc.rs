@@ -371,6 +371,11 @@ fn z_scores_over_fifty_seeds_are_standard_normal() {
     let mut all = Vec::new();
     for seed in 0..50 {
         let z = z_scores(&c, n_bins, &params, 1000 + seed);
+        for (label, zz) in &z {
+            if zz.abs() > 3.5 {
+                println!("seed {}: {label} z = {zz:.2}", 1000 + seed);
+            }
+        }
         all.extend(z.into_iter().map(|(_, z)| z));
     }
     let within = all.iter().filter(|z| z.abs() < 1.0).count() as f64 / all.len() as f64;
