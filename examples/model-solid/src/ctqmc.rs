@@ -9,9 +9,12 @@
 //!   w = Π_σ |det F_σ| · exp(−ε Σ_σ L_σ − U O),
 //!
 //! with L_σ the occupied time of flavour σ, O the time both are occupied and
-//! F_σ,ba = F(s_a − e_b), F(τ) = −Δ(τ). The segment picture has no sign problem here.
+//! F_σ,ba = F(s_a − e_b), F(τ) = −Δ(τ). For a causal Δ the weights are positive (the segment
+//! picture of one orbital has no sign problem); the sign is recomputed at every full check
+//! and negative signs are counted in the metric `negative_sign_checks`. A constant part of
+//! Δ(iω) at high frequency is moved into the level ε.
 //!
-//! Moves (each picked with probability 1/4 for a random flavour), with the proposal
+//! Moves (each of the six picked with probability 1/6 for a random flavour), with the proposal
 //! probabilities in the acceptance ratios (k segments before the move):
 //! - insert a segment: start uniform on [0, β), length uniform on (0, l_max) with l_max the
 //!   gap up to the next start (β if empty); R = β l_max/(k+1) · e^{−ε l − U o} · |det ratio|;
