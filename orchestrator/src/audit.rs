@@ -726,8 +726,17 @@ impl Lineage {
             for (r, h) in &a.inputs {
                 let _ = writeln!(s, "  in  {r:<10} {h}");
             }
+            // a report wrote many files: show the traced one(s) only
+            let mut hidden = 0;
             for (r, h) in &a.outputs {
+                if a.kind == "report" && *h != self.target {
+                    hidden += 1;
+                    continue;
+                }
                 let _ = writeln!(s, "  out {r:<10} {h}");
+            }
+            if hidden > 0 {
+                let _ = writeln!(s, "  out        ... and {hidden} other report files");
             }
             for (n, m) in &a.metrics {
                 let err = m.error.map(|e| format!(" ± {e}")).unwrap_or_default();
@@ -1178,9 +1187,8 @@ impl PointDiff {
         for d in &self.inputs {
             let _ = writeln!(
                 s,
-                "  {}.{:<16} A {} B {}",
-                d.stage,
-                d.role,
+                "  {:<24} A {} B {}",
+                format!("{}.{}", d.stage, d.role),
                 d.a.as_deref().unwrap_or("(absent)"),
                 d.b.as_deref().unwrap_or("(absent)")
             );

@@ -537,7 +537,7 @@ where
                 c.configure_mesh()
                     .x_desc("iteration")
                     .y_desc(name.clone())
-                    .x_labels(n_it as usize + 1)
+                    .x_labels((n_it as usize + 1).min(21))
                     .x_label_formatter(&|x| format!("{x:.0}"))
                     .y_label_formatter(&|y| format!("{y:.prec$}"))
                     .draw()
@@ -573,7 +573,7 @@ where
                     .y_labels(6)
                     .x_desc("iteration")
                     .y_desc("|change|")
-                    .x_labels(n_it as usize + 1)
+                    .x_labels((n_it as usize + 1).min(21))
                     .x_label_formatter(&|x| format!("{x:.0}"))
                     .y_label_formatter(&|y| format!("{y:.0e}"))
                     .draw()
@@ -1345,7 +1345,7 @@ fn build(
         csv.push(',');
     }
     csv.push_str("state,iteration,metric,value,error\n");
-    let mut table = String::from("<table>\n<thead><tr><th>point</th>");
+    let mut table = String::from("<div class=\"wide\">\n<table>\n<thead><tr><th>point</th>");
     for a in &axes {
         let _ = write!(table, "<th>{}</th>", html_escape(a));
     }
@@ -1400,7 +1400,7 @@ fn build(
         }
         table.push_str("</tr>\n");
     }
-    table.push_str("</tbody>\n</table>\n");
+    table.push_str("</tbody>\n</table>\n</div>\n");
     write("observables.csv", &csv)?;
     out.add("observables.csv", &src);
     all_sources.extend(src.iter().copied());
@@ -1421,7 +1421,7 @@ fn build(
          table {{ border-collapse: collapse; font-size: 0.9em; }}\n\
          th, td {{ border: 1px solid #bbb; padding: 0.25em 0.6em; text-align: right; white-space: nowrap; }}\n\
          th {{ background: #eef; }} td.failed, td.capped {{ color: #b00; }}\n\
-         .notes li {{ color: #a50; }}\n</style>\n</head>\n<body>\n\
+         .notes li {{ color: #a50; }} .wide {{ overflow-x: auto; }}\n</style>\n</head>\n<body>\n\
          <h1>Campaign {c}</h1>\n",
         c = html_escape(campaign)
     );

@@ -216,6 +216,12 @@ async fn report_csv_traces_back_to_the_band_program() -> Result<()> {
     let j = serde_json::to_value(&lin)?;
     assert_eq!(j["attempts"][0]["stage"], "report");
     assert!(j["attempts"][0]["point"].is_null());
+    let text = lin.to_text();
+    assert!(
+        text.contains(&format!("out convergence-p003.csv {hash}")),
+        "{text}"
+    );
+    assert!(text.contains("other report files") && text.contains(&fx.band_program_blake3));
     // the EOS data file: read from all ten points' last update
     let h = audit::resolve_target(
         &fx.pool,
