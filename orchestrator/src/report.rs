@@ -1165,6 +1165,12 @@ fn build(
         }
         let vols: Vec<f64> = s.points.iter().map(|p| p.0).collect();
         let ens: Vec<f64> = s.points.iter().map(|p| p.1).collect();
+        // weighted by the reported errors when every energy has one
+        let sigma: Option<Vec<f64>> = s
+            .points
+            .iter()
+            .map(|p| p.2.filter(|e| *e > 0.0 && e.is_finite()))
+            .collect();
         let distinct = vols
             .iter()
             .map(|v| v.to_bits())
@@ -1178,7 +1184,7 @@ fn build(
             ));
         } else {
             for model in [EosModel::BirchMurnaghan3, EosModel::Vinet] {
-                match eos::fit(model, &vols, &ens, None) {
+                match eos::fit(model, &vols, &ens, sigma.as_deref()) {
                     Ok(f) => {
                         let (v0, v1) = (vols[0], vols[vols.len() - 1]);
                         let pts: Vec<(f64, f64)> = (0..=120)

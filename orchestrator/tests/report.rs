@@ -437,3 +437,31 @@ async fn migration_two_agrees_with_the_on_demand_tables() -> Result<()> {
     assert_eq!(v, 2);
     Ok(())
 }
+
+#[tokio::test]
+async fn energies_with_errors_give_a_weighted_fit() -> Result<()> {
+    let d = tempfile::tempdir()?;
+    let fx = fixtures::build(d.path()).await?;
+    sqlx::query("UPDATE metrics SET error = 2e-4 WHERE name = 'update.energy'")
+        .execute(&fx.pool)
+        .await?;
+    let sum = report::generate(&fx.pool, &fx.ws, &d.path().join("r"), &mut |_| {}).await?;
+    let bm: Vec<_> = sum
+        .eos
+        .iter()
+        .filter(|r| r.fit.model == rondo_numerics::eos::EosModel::BirchMurnaghan3)
+        .collect();
+    assert_eq!(bm.len(), 2);
+    for r in bm {
+        let t = r.temperature.context("temperature")?;
+        // exact Birch-Murnaghan data: the weighted fit still recovers V0
+        assert!((r.fit.v0 - fixtures::eos_params(t).v0).abs() < 1e-6);
+        assert!(r.fit.chi2_per_dof.is_some(), "σ were passed to the fit");
+        assert!(r.fit.stderr_absolute_sigma.is_some());
+    }
+    let csv = std::fs::read_to_string(sum.out_dir.join("eos.csv"))?;
+    assert!(csv
+        .lines()
+        .any(|l| l.starts_with("data,") && l.contains(",0.0002,")));
+    Ok(())
+}
