@@ -78,6 +78,7 @@ fn killed_runs_end_with_the_numbers_of_an_uninterrupted_run() {
     let o = run_rondo(a.path(), &["run", "model-sweep.yaml", "--jobs", "2", "-q"]);
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let reference = record(&a.path().join("model-sweep.rondo"));
+    check_demo_results_and_trace(a.path());
 
     // Interrupted: SIGKILL at seeded random instants, then run to the end.
     let seed = std::env::var("RONDO_CRASH_SEED")
@@ -155,4 +156,106 @@ fn killed_runs_end_with_the_numbers_of_an_uninterrupted_run() {
         processes_of_workspace(&ws_id).is_empty(),
         "children left behind"
     );
+}
+
+/// The demo's own results: every point converged, the equation of state per temperature,
+/// and `rondo trace` from a converged output file back through every stage.
+fn check_demo_results_and_trace(dir: &Path) {
+    let ws = dir.join("model-sweep.rondo");
+    let s = status_json(dir, &ws);
+    let points = s["points"].as_array().cloned().unwrap_or_default();
+    assert_eq!(points.len(), 10, "5 volumes x 2 temperatures");
+    for p in &points {
+        assert_eq!(p["state"], "converged", "{p}");
+        // electron count conserved by the density update (1.8 per site in the demo)
+        let n = p["metrics"]["update.n_total"].as_f64().unwrap_or(f64::NAN);
+        assert!((n - 1.8).abs() < 1e-8, "{p}");
+    }
+    let groups = s["eos"]["groups"].as_array().cloned().unwrap_or_default();
+    assert_eq!(
+        groups.len(),
+        2,
+        "one fit group per temperature: {}",
+        s["eos"]
+    );
+    for g in &groups {
+        for model in ["birch-murnaghan", "vinet"] {
+            let v0 = g["fits"][model]["v0"].as_f64().unwrap_or(f64::NAN);
+            assert!(
+                (26.0..30.0).contains(&v0),
+                "{model} V0 inside the scan: {g}"
+            );
+        }
+    }
+    // Trace the final density of p003 (volume 27, 300 K) from a copy outside the workspace.
+    let (hash, iteration): (String, i64) = query(&ws, |pool| {
+        Box::pin(async move {
+            let r = sqlx::query(
+                "SELECT o.artifact, a.iteration FROM attempts a JOIN attempt_outputs o ON o.attempt_id = a.id \
+                 WHERE a.point = 'p003' AND a.stage = 'update' AND a.state = 'succeeded' AND o.role = 'density' \
+                 ORDER BY a.iteration DESC LIMIT 1",
+            )
+            .fetch_one(pool)
+            .await
+            .unwrap_or_else(|e| panic!("{e}"));
+            (r.get(0), r.get(1))
+        })
+    });
+    let copy = dir.join("final-density.json");
+    std::fs::copy(ws.join("store").join(&hash[..2]).join(&hash[2..]), &copy)
+        .unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(
+        dir,
+        &[
+            "trace",
+            "--workspace",
+            &ws.display().to_string(),
+            "--json",
+            &copy.display().to_string(),
+        ],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    let t: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(t["target"], hash.as_str());
+    let attempts = t["attempts"].as_array().cloned().unwrap_or_default();
+    let first = &attempts[0];
+    assert_eq!(first["stage"], "update");
+    assert_eq!(first["iteration"], iteration);
+    let engine_hash = blake3::hash(&std::fs::read(model_solid()).unwrap_or_default())
+        .to_hex()
+        .to_string();
+    for stage in ["band", "project", "solve", "mix", "update"] {
+        let a = attempts
+            .iter()
+            .find(|a| a["stage"] == stage && a["iteration"] == iteration)
+            .unwrap_or_else(|| panic!("no {stage} attempt of iteration {iteration} upstream"));
+        assert!(a["argv"].as_array().is_some_and(|v| !v.is_empty()), "{a}");
+        assert!(
+            a["program"]["blake3"]
+                .as_str()
+                .is_some_and(|h| h.len() == 64),
+            "{a}"
+        );
+        if stage != "mix" {
+            assert_eq!(
+                a["program"]["blake3"],
+                engine_hash.as_str(),
+                "{stage} program hash"
+            );
+            assert_eq!(a["parameters"]["volume"], 27.0);
+            assert_eq!(a["parameters"]["temperature"], 300);
+        }
+        assert!(
+            a["inputs"].as_object().is_some_and(|m| !m.is_empty()),
+            "{a}"
+        );
+        assert!(
+            a["outputs"].as_object().is_some_and(|m| !m.is_empty()),
+            "{a}"
+        );
+    }
+    // the walk reaches back to iteration 1 (whose inputs are start files)
+    assert!(attempts
+        .iter()
+        .any(|a| a["iteration"] == 1 && a["stage"] == "band"));
 }

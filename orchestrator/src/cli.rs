@@ -106,6 +106,18 @@ enum Command {
         #[arg(long)]
         workspace: Option<PathBuf>,
     },
+    /// Lineage of a file, an artifact hash prefix, or POINT/ITERATION/stage.metric: every
+    /// attempt upstream with argv, program hash, parameters, inputs and outputs.
+    Trace {
+        /// What to trace.
+        target: String,
+        /// Workspace folder (default: the single *.rondo folder here).
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+        /// Machine-readable output (documented in docs/provenance.md).
+        #[arg(long)]
+        json: bool,
+    },
     /// Print the JSON Schema of the campaign file.
     Schema,
 }
@@ -167,7 +179,7 @@ async fn dispatch(cmd: Command) -> Result<u8> {
     match cmd {
         Command::Check { file } => {
             let c = load(&file)?;
-            print!("{}", plan_text(&c));
+            emit(&plan_text(&c));
             Ok(EXIT_OK)
         }
         Command::Run {
@@ -236,9 +248,9 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             let ws = find_workspace(file.as_deref(), workspace)?;
             let status = status(&ws).await?;
             if json {
-                println!("{}", serde_json::to_string_pretty(&status)?);
+                emit(&format!("{}\n", serde_json::to_string_pretty(&status)?));
             } else {
-                print!("{}", status_text(&status));
+                emit(&status_text(&status));
             }
             Ok(EXIT_OK)
         }
@@ -246,10 +258,45 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             let ws = find_workspace(file.as_deref(), workspace)?;
             cancel(&ws).await
         }
-        Command::Schema => {
-            print!("{}", spec::json_schema());
+        Command::Trace {
+            target,
+            workspace,
+            json,
+        } => {
+            let ws = find_workspace(None, workspace)?;
+            let pool = store::open_existing(&ws).await?;
+            let mut bar = crate::progress::Bytes::new("hashing");
+            let t =
+                crate::audit::resolve(&pool, &ws, &target, &mut |done, total| bar.set(done, total))
+                    .await
+                    .map_err(|e| BadInput(format!("{e:#}")))?;
+            bar.finish();
+            let lineage = crate::audit::lineage_of(&pool, &t).await?;
+            if json {
+                emit(&format!("{}\n", serde_json::to_string_pretty(&lineage)?));
+            } else {
+                emit(&lineage.to_text());
+            }
+            pool.close().await;
             Ok(EXIT_OK)
         }
+        Command::Schema => {
+            emit(&spec::json_schema());
+            Ok(EXIT_OK)
+        }
+    }
+}
+
+/// Write to stdout; a closed pipe (`rondo trace ... | head`) ends the output quietly.
+fn emit(text: &str) {
+    use std::io::Write;
+    let mut out = std::io::stdout().lock();
+    if out
+        .write_all(text.as_bytes())
+        .and_then(|()| out.flush())
+        .is_err()
+    {
+        // The reader went away; nothing more to say.
     }
 }
 
@@ -420,6 +467,21 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
                 }
             }
         }
+        let mut averages = serde_json::Map::new();
+        let (first, last) = crate::analysis::convergence_marks(&pool, &id).await?;
+        if let (Some(f), Some(l)) = (first, last) {
+            if f < l {
+                for name in metrics.keys() {
+                    if let Some(v) = crate::analysis::final_value(&pool, &id, name).await? {
+                        averages.insert(
+                            name.clone(),
+                            serde_json::json!({
+                            "value": v.value, "error": v.error, "iterations": v.iterations }),
+                        );
+                    }
+                }
+            }
+        }
         let attempts: i64 = sqlx::query_scalar("SELECT count(*) FROM attempts WHERE point = ?")
             .bind(&id)
             .fetch_one(&pool)
@@ -435,10 +497,14 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
             "iteration": good.unwrap_or(0),
             "metrics": metrics,
             "errors": errors,
+            "averages": averages,
             "attempts": attempts,
         }));
     }
     let running = store::holder(ws);
+    let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
+        .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
+    let eos = crate::analysis::latest_eos(&pool, &artifacts).await?;
     pool.close().await;
     Ok(serde_json::json!({
         "campaign": camp.name,
@@ -449,8 +515,22 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
         "orchestrator": running,
         "counts": counts,
         "points": points,
+        "eos": eos,
     }))
 }
+
+/// Metric names the text status shows (all are in `--json`).
+const SHOWN_METRICS: &[&str] = &[
+    ".n_f",
+    ".energy",
+    ".mu",
+    ".docc",
+    ".p0",
+    ".p1",
+    ".p2",
+    ".residual_norm",
+    ".x",
+];
 
 fn status_text(s: &serde_json::Value) -> String {
     use std::fmt::Write;
@@ -479,7 +559,7 @@ fn status_text(s: &serde_json::Value) -> String {
             .as_object()
             .map(|m| {
                 m.iter()
-                    .filter(|(k, _)| !k.ends_with(".history") && !k.ends_with(".resets"))
+                    .filter(|(k, _)| SHOWN_METRICS.iter().any(|m| k.ends_with(m)))
                     .map(|(k, v)| {
                         let err = p["errors"][k.as_str()]
                             .as_f64()
@@ -505,6 +585,24 @@ fn status_text(s: &serde_json::Value) -> String {
         );
         if !metrics.is_empty() {
             let _ = writeln!(out, "      {metrics}");
+        }
+    }
+    for g in s["eos"]["groups"].as_array().unwrap_or(&empty) {
+        for (model, f) in g["fits"].as_object().cloned().unwrap_or_default() {
+            let text = match f["refused"].as_str() {
+                Some(r) => format!("refused: {r}"),
+                None => format!(
+                    "E0 = {:.6} eV, V0 = {:.4} ± {:.4} Å³, B0 = {:.2} ± {:.2} GPa, B0' = {:.2} ± {:.2}",
+                    f["e0"].as_f64().unwrap_or(f64::NAN),
+                    f["v0"].as_f64().unwrap_or(f64::NAN),
+                    f["stderr"]["v0"].as_f64().unwrap_or(f64::NAN),
+                    f["b0_gpa"].as_f64().unwrap_or(f64::NAN),
+                    f["stderr"]["b0_gpa"].as_f64().unwrap_or(f64::NAN),
+                    f["b0_prime"].as_f64().unwrap_or(f64::NAN),
+                    f["stderr"]["b0_prime"].as_f64().unwrap_or(f64::NAN),
+                ),
+            };
+            let _ = writeln!(out, "  eos {} {model}: {text}", g["group"]);
         }
     }
     out

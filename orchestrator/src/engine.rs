@@ -532,6 +532,28 @@ impl Engine<'_> {
         }
         if interrupted || cancelled {
             self.stop_everything(&mut rx, cancelled).await?;
+        } else if let Some(eos) = &self.campaign.eos {
+            let doc =
+                crate::analysis::record_eos(&self.pool, &self.paths.root, &self.artifacts, eos)
+                    .await?;
+            for g in doc["groups"].as_array().cloned().unwrap_or_default() {
+                for (model, f) in g["fits"].as_object().cloned().unwrap_or_default() {
+                    let text = match f["refused"].as_str() {
+                        Some(r) => format!("refused: {r}"),
+                        None => format!(
+                            "V0 = {:.4} ± {:.4} Å³, B0 = {:.2} ± {:.2} GPa, B0' = {:.2} ± {:.2}",
+                            f["v0"].as_f64().unwrap_or(f64::NAN),
+                            f["stderr"]["v0"].as_f64().unwrap_or(f64::NAN),
+                            f["b0_gpa"].as_f64().unwrap_or(f64::NAN),
+                            f["stderr"]["b0_gpa"].as_f64().unwrap_or(f64::NAN),
+                            f["b0_prime"].as_f64().unwrap_or(f64::NAN),
+                            f["stderr"]["b0_prime"].as_f64().unwrap_or(f64::NAN),
+                        ),
+                    };
+                    self.progress
+                        .line(format!("eos {} {model}: {text}", g["group"]));
+                }
+            }
         }
         let mut states = BTreeMap::new();
         for row in sqlx::query("SELECT state, count(*) AS n FROM points GROUP BY state")
@@ -1627,15 +1649,47 @@ impl Engine<'_> {
             })
             .collect::<Vec<_>>()
             .join(", ");
-        if decision.converged || decision.capped {
-            let (state, reason) = if decision.converged {
-                ("converged", format!("stopping rules met at iteration {n}"))
+        let first_met: Option<i64> = sqlx::query_scalar(
+            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = 'good' \
+             AND json_extract(stop_json, '$.rules_met') = 1",
+        )
+        .bind(&point_id)
+        .fetch_one(&mut *tx)
+        .await?;
+        let first_met = first_met.map(|i| i as u32);
+        let window = self.campaign.final_window;
+        let fate = if let Some(why) = &decision.diverged {
+            Some(("failed", format!("diverging: {why}")))
+        } else if let Some(f) = first_met {
+            if n >= f + window {
+                Some((
+                    "converged",
+                    if window > 0 {
+                        format!(
+                            "stopping rules met at iteration {f}; averaged over iterations {}..{n}",
+                            f + 1
+                        )
+                    } else {
+                        format!("stopping rules met at iteration {n}")
+                    },
+                ))
+            } else if decision.at_cap {
+                Some((
+                    "converged",
+                    format!("stopping rules met at iteration {f}; final window cut short by max-iterations at {n}"),
+                ))
             } else {
-                (
-                    "capped",
-                    format!("reached max-iterations ({n}) without meeting the stopping rules"),
-                )
-            };
+                None
+            }
+        } else if decision.at_cap {
+            Some((
+                "capped",
+                format!("reached max-iterations ({n}) without meeting the stopping rules"),
+            ))
+        } else {
+            None
+        };
+        if let Some((state, reason)) = fate {
             sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
                 .bind(state)
                 .bind(&reason)
@@ -1663,8 +1717,13 @@ impl Engine<'_> {
                 .execute(&mut *tx)
                 .await?;
             tx.commit().await?;
+            let note = if first_met.is_some() {
+                " [final window]"
+            } else {
+                ""
+            };
             self.progress
-                .line(format!("{point_id} iteration {n} good ({summary})"));
+                .line(format!("{point_id} iteration {n} good ({summary}){note}"));
             let pr = &mut self.points[p];
             pr.iteration = n + 1;
             pr.next_stage = 0;

@@ -1,6 +1,7 @@
 //! rondo: runs charge self-consistent DFT+DMFT campaigns unattended, resumes them after any
 //! crash, and records the provenance of every number they produce.
 
+pub mod analysis;
 pub mod artifacts;
 pub mod audit;
 pub mod builtins;

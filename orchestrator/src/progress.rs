@@ -74,3 +74,40 @@ impl Progress {
         }
     }
 }
+
+/// A byte-count bar for long operations (hashing big files), shown only on a terminal and
+/// only once the operation is big enough to be worth it.
+pub struct Bytes {
+    bar: Option<ProgressBar>,
+    what: &'static str,
+}
+
+impl Bytes {
+    /// A bar labelled `what` (not shown until [`Bytes::set`] sees more than 64 MiB).
+    pub fn new(what: &'static str) -> Bytes {
+        Bytes { bar: None, what }
+    }
+
+    /// Progress: `done` of `total` bytes.
+    pub fn set(&mut self, done: u64, total: u64) {
+        if self.bar.is_none() && total > 64 << 20 && std::io::stderr().is_terminal() {
+            let bar = ProgressBar::new(total);
+            bar.set_style(
+                ProgressStyle::with_template("{msg} {bar:40} {bytes}/{total_bytes} ({eta})")
+                    .unwrap_or_else(|_| ProgressStyle::default_bar()),
+            );
+            bar.set_message(self.what);
+            self.bar = Some(bar);
+        }
+        if let Some(bar) = &self.bar {
+            bar.set_position(done);
+        }
+    }
+
+    /// Clear the bar.
+    pub fn finish(&self) {
+        if let Some(bar) = &self.bar {
+            bar.finish_and_clear();
+        }
+    }
+}

@@ -281,6 +281,9 @@ pub struct RuleSpec {
     /// Number of consecutive iterations the condition must hold.
     #[serde(default = "one", rename = "for")]
     pub for_: u32,
+    /// Fail the point as diverging when |x_n − x_{n−1}| exceeds this (from iteration 3 on).
+    #[serde(default)]
+    pub diverge_above: Option<f64>,
 }
 
 fn one() -> u32 {
@@ -299,6 +302,55 @@ pub struct StopSpec {
     pub combine: Combine,
     /// Iteration cap: a point that reaches it without converging is `capped`.
     pub max_iterations: u32,
+    /// After the rules are met, run this many more iterations and report the metrics
+    /// averaged over them, with binning error bars (0: stop at once).
+    #[serde(default)]
+    pub final_window: u32,
+}
+
+/// Equation-of-state model names.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum EosModelName {
+    /// Third-order Birch–Murnaghan.
+    BirchMurnaghan,
+    /// Vinet.
+    Vinet,
+}
+
+/// The equation-of-state analysis of a campaign.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct EosSpec {
+    /// The energy per site, `stage.metric` (eV).
+    #[schemars(with = "String")]
+    pub energy: Spanned<String>,
+    /// The sweep axis holding the volume per site (Å³); default `volume`.
+    #[serde(default)]
+    pub volume: Option<String>,
+    /// Models to fit; default both.
+    #[serde(default)]
+    pub models: Option<Vec<EosModelName>>,
+}
+
+/// Campaign-level analyses, run when every point has stopped.
+#[derive(Debug, Clone, Default, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct AnalysisSpec {
+    /// Energy versus volume, fitted per group of the other sweep axes.
+    #[serde(default)]
+    pub eos: Option<EosSpec>,
+}
+
+/// A checked equation-of-state analysis.
+#[derive(Debug, Clone)]
+pub struct EosAnalysis {
+    /// `stage.metric` of the energy.
+    pub energy: String,
+    /// Volume axis.
+    pub volume: String,
+    /// Models.
+    pub models: Vec<EosModelName>,
 }
 
 /// The campaign file as written.
@@ -333,6 +385,9 @@ pub struct CampaignFile {
     pub cycle: OrderedMap<StageSpec>,
     /// Stopping rules.
     pub stop: StopSpec,
+    /// Campaign-level analyses.
+    #[serde(default)]
+    pub analysis: AnalysisSpec,
 }
 
 /// One problem found in a campaign file.
@@ -448,6 +503,8 @@ pub struct Rule {
     pub test: RuleTest,
     /// Consecutive iterations.
     pub for_: u32,
+    /// Divergence threshold on the change.
+    pub diverge_above: Option<f64>,
 }
 
 /// A stopping condition.
@@ -499,6 +556,10 @@ pub struct Campaign {
     pub max_iterations: u32,
     /// Base seed.
     pub seed: u64,
+    /// Iterations averaged after convergence.
+    pub final_window: u32,
+    /// Equation-of-state analysis.
+    pub eos: Option<EosAnalysis>,
 }
 
 impl Campaign {
@@ -937,10 +998,19 @@ impl Validator<'_> {
                 );
                 continue;
             }
+            if r.diverge_above.is_some_and(|x| !(x.is_finite() && x > 0.0)) {
+                self.push(
+                    at,
+                    "diverge-above must be a positive number",
+                    "e.g. diverge-above: 0.5",
+                );
+                continue;
+            }
             rules.push(Rule {
                 metric: r.metric.value.clone(),
                 test: set[0],
                 for_: r.for_,
+                diverge_above: r.diverge_above,
             });
         }
 
@@ -964,6 +1034,62 @@ impl Validator<'_> {
             }
         };
 
+        // Campaign-level analysis.
+        let eos = raw.analysis.eos.as_ref().and_then(|e| {
+            let at = loc(&e.energy);
+            let volume = e.volume.clone().unwrap_or_else(|| "volume".into());
+            let axes: Vec<&str> = points
+                .first()
+                .map(|p| p.values.iter().map(|(k, _)| k.as_str()).collect())
+                .unwrap_or_default();
+            if !axes.contains(&volume.as_str()) {
+                self.push(
+                    at,
+                    format!("the eos analysis needs the sweep axis `{volume}`"),
+                    format!(
+                        "sweep axes: {}; set `volume:` to the axis holding the volume",
+                        axes.join(", ")
+                    ),
+                );
+                return None;
+            }
+            let Some((st, m)) = split_ref(&e.energy.value) else {
+                self.push(
+                    at,
+                    "eos `energy` must be written stage.metric",
+                    "e.g. energy: update.energy",
+                );
+                return None;
+            };
+            match raw.cycle.get(st) {
+                None => {
+                    self.push(
+                        at,
+                        format!("eos energy names unknown stage `{st}`"),
+                        "use stage.metric",
+                    );
+                    return None;
+                }
+                Some(sp) if sp.builtin.is_none() && !sp.metrics.iter().any(|x| x == m) => {
+                    self.push(
+                        at,
+                        format!("stage `{st}` does not list metric `{m}`"),
+                        format!("add `{m}` to the stage's `metrics:`"),
+                    );
+                    return None;
+                }
+                Some(_) => {}
+            }
+            Some(EosAnalysis {
+                energy: e.energy.value.clone(),
+                volume,
+                models: e
+                    .models
+                    .clone()
+                    .unwrap_or_else(|| vec![EosModelName::BirchMurnaghan, EosModelName::Vinet]),
+            })
+        });
+
         if !self.diags.is_empty() {
             self.diags.sort_by_key(|d| (d.line, d.column));
             return Err(SpecErrors {
@@ -984,6 +1110,8 @@ impl Validator<'_> {
             combine: raw.stop.combine,
             max_iterations: raw.stop.max_iterations,
             seed: raw.seed.unwrap_or(0),
+            final_window: raw.stop.final_window,
+            eos,
         })
     }
 

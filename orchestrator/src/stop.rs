@@ -37,15 +37,18 @@ pub struct RuleState {
     pub satisfied: bool,
 }
 
-/// The decision after a good iteration.
+/// The evaluation of the rules after a good iteration (recorded as the iteration's
+/// `stop_json`); the engine combines it with the final window into the point's fate.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct Decision {
     /// The rules, evaluated.
     pub rules: Vec<RuleState>,
-    /// All (or any) rules satisfied.
-    pub converged: bool,
-    /// The iteration cap is reached without convergence.
-    pub capped: bool,
+    /// All (or any) rules satisfied at this iteration.
+    pub rules_met: bool,
+    /// The iteration cap is reached.
+    pub at_cap: bool,
+    /// Why the point is diverging, if a rule's change exceeds its `diverge-above`.
+    pub diverged: Option<String>,
 }
 
 /// Whether the test holds between a previous and a current sample; also the threshold used.
@@ -109,15 +112,26 @@ pub fn decide(
             satisfied: streak >= rule.for_,
         });
     }
-    let converged = !states.is_empty()
+    let rules_met = !states.is_empty()
         && match combine {
             Combine::All => states.iter().all(|s| s.satisfied),
             Combine::Any => states.iter().any(|s| s.satisfied),
         };
+    let diverged = rules.iter().zip(&states).find_map(|(r, s)| {
+        let limit = r.diverge_above?;
+        let change = s.change?;
+        (n >= 3 && change > limit).then(|| {
+            format!(
+                "{} changed by {change:.3e} at iteration {n}, above diverge-above {limit:.3e}",
+                r.metric
+            )
+        })
+    });
     Decision {
         rules: states,
-        converged,
-        capped: !converged && n >= max_iterations,
+        rules_met,
+        at_cap: n >= max_iterations,
+        diverged,
     }
 }
 
@@ -148,6 +162,7 @@ mod tests {
             metric: "update.n_f".into(),
             test,
             for_: k,
+            diverge_above: Some(0.5),
         }
     }
 
@@ -156,23 +171,26 @@ mod tests {
         let r = [rule(RuleTest::Abs(1e-3), 2)];
         // changes: 0.1, 1e-4 (holds once) → not yet
         let d = decide(&r, Combine::All, 10, &hist(&[1.0, 1.1, 1.1001]));
-        assert!(!d.converged);
+        assert!(!d.rules_met);
         assert_eq!(d.rules[0].streak, 1);
         let d = decide(&r, Combine::All, 10, &hist(&[1.0, 1.1, 1.1001, 1.1002]));
-        assert!(d.converged, "{d:?}");
+        assert!(d.rules_met, "{d:?}");
         // cap
         let d = decide(&r, Combine::All, 3, &hist(&[1.0, 1.1, 1.2]));
-        assert!(d.capped && !d.converged);
+        assert!(d.at_cap && !d.rules_met);
+        // divergence: a change above 0.5 from iteration 3 on
+        let d = decide(&r, Combine::All, 9, &hist(&[1.0, 1.1, 1.2, 2.0]));
+        assert!(d.diverged.is_some_and(|m| m.contains("diverge-above")));
     }
 
     #[test]
     fn relative_and_noise_aware() {
         let r = [rule(RuleTest::Rel(1e-3), 1)];
-        assert!(decide(&r, Combine::All, 9, &hist(&[100.0, 100.05])).converged);
-        assert!(!decide(&r, Combine::All, 9, &hist(&[1.0, 1.05])).converged);
+        assert!(decide(&r, Combine::All, 9, &hist(&[100.0, 100.05])).rules_met);
+        assert!(!decide(&r, Combine::All, 9, &hist(&[1.0, 1.05])).rules_met);
         // within 2 combined errors: 2 * sqrt(2) * 0.01 = 0.0283
         let r = [rule(RuleTest::Errors(2.0), 1)];
-        assert!(decide(&r, Combine::All, 9, &hist(&[1.0, 1.02])).converged);
-        assert!(!decide(&r, Combine::All, 9, &hist(&[1.0, 1.03])).converged);
+        assert!(decide(&r, Combine::All, 9, &hist(&[1.0, 1.02])).rules_met);
+        assert!(!decide(&r, Combine::All, 9, &hist(&[1.0, 1.03])).rules_met);
     }
 }

@@ -18,13 +18,22 @@ use sqlx::sqlite::{
 
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
-    let m = vec![Migration::new(
-        1,
-        "initial".into(),
-        MigrationType::Simple,
-        include_str!("../migrations/0001_initial.sql").into(),
-        false,
-    )];
+    let m = vec![
+        Migration::new(
+            1,
+            "initial".into(),
+            MigrationType::Simple,
+            include_str!("../migrations/0001_initial.sql").into(),
+            false,
+        ),
+        Migration::new(
+            2,
+            "report provenance".into(),
+            MigrationType::Simple,
+            include_str!("../migrations/0002_report_provenance.sql").into(),
+            false,
+        ),
+    ];
     Migrator {
         migrations: m.into(),
         ..Migrator::DEFAULT
