@@ -1,4 +1,5 @@
-//! Built-in stages that run inside rondo instead of as a program: the mixer.
+//! Built-in stages that run inside rondo instead of as a program: the mixer and the
+//! Legendre noise filter.
 //!
 //! `mix` reads the stage's input array `new` (.npy, real or complex), the mixer state kept as
 //! an artifact of the previous iteration (absent at iteration 1), and writes the mixed array
@@ -12,7 +13,7 @@ use rondo_numerics::mixing::{self, Method, MixerConfig, MixerState};
 use rondo_numerics::npy::{self, NpyArray};
 use serde::{Deserialize, Serialize};
 
-use crate::spec::{MixMethod, MixWith};
+use crate::spec::{FilterWith, MixMethod, MixWith};
 use crate::validate::Metric;
 
 /// File name of the mixer state in the attempt's scratch directory.
@@ -157,6 +158,181 @@ pub fn mix(
     })
 }
 
+/// The argv recorded for a built-in filter attempt.
+pub fn filter_argv(with: &FilterWith) -> Vec<String> {
+    vec![
+        "rondo".into(),
+        "builtin".into(),
+        "filter".into(),
+        format!("--legendre={}", with.legendre),
+        format!("--matsubara={}", with.matsubara),
+    ]
+}
+
+fn metric(name: &str, value: f64) -> Metric {
+    Metric {
+        name: name.into(),
+        value,
+        error: None,
+    }
+}
+
+/// The level ε of `levels.json`: `{"level": ε}`, or `{"eps_f": a, "mu": b}` meaning ε = a − b.
+fn read_level(path: &Path) -> Result<f64, String> {
+    let text = std::fs::read_to_string(path).map_err(|e| format!("{}: {e}", path.display()))?;
+    let v: serde_json::Value = serde_json::from_str(&text)
+        .map_err(|e| format!("{}: malformed JSON: {e}", path.display()))?;
+    if let Some(l) = v.get("level").and_then(|x| x.as_f64()) {
+        return Ok(l);
+    }
+    match (
+        v.get("eps_f").and_then(|x| x.as_f64()),
+        v.get("mu").and_then(|x| x.as_f64()),
+    ) {
+        (Some(e), Some(m)) => Ok(e - m),
+        _ => Err(format!(
+            "{}: needs {{\"level\": ε}} or {{\"eps_f\": .., \"mu\": ..}}",
+            path.display()
+        )),
+    }
+}
+
+/// The Legendre filter (Boehnke et al., Phys. Rev. B 84, 075145 (2011)): from G(τ) on a
+/// uniform grid 0..β (`.npy` of shape (n, 2) = τ, G or (n, 3) = τ, G, σ) fit G_l with the
+/// same kernel the model engine's Monte Carlo solver uses, drop the coefficients lost in
+/// the noise (with σ given), and write the requested outputs: `gtau` (filtered, same grid
+/// and layout (n, 2)), `gl` ((kept, 2) = G_l, σ_l), `giw` (complex, `matsubara` positive
+/// frequencies), and with Δ(iω_n) and the level ε, `sigma` = iω − ε − Δ − 1/G.
+pub fn filter(
+    with: &FilterWith,
+    gtau: &Path,
+    delta: Option<&Path>,
+    levels: Option<&Path>,
+    outputs: &[(String, std::path::PathBuf)],
+) -> Result<MixReport, String> {
+    use num_complex::Complex64;
+    use rondo_numerics::legendre;
+    let shown = gtau.display();
+    let arr = npy::read_any(gtau).map_err(|e| format!("{shown}: {e}"))?;
+    let data = arr
+        .as_real()
+        .ok_or_else(|| format!("{shown}: G(τ) must be a real float64 array"))?;
+    let cols = arr.shape.get(1).copied().unwrap_or(0);
+    if arr.shape.len() != 2 || !(cols == 2 || cols == 3) || arr.shape[0] < 3 {
+        return Err(format!(
+            "{shown}: G(τ) must have shape (n ≥ 3, 2) = τ, G or (n, 3) = τ, G, σ; found {:?}",
+            arr.shape
+        ));
+    }
+    if arr.has_nonfinite() {
+        return Err(format!("{shown}: G(τ) contains NaN or infinite values"));
+    }
+    let n = arr.shape[0];
+    let tau: Vec<f64> = (0..n).map(|i| data[i * cols]).collect();
+    let g: Vec<f64> = (0..n).map(|i| data[i * cols + 1]).collect();
+    let sigma: Option<Vec<f64>> = (cols == 3).then(|| (0..n).map(|i| data[i * cols + 2]).collect());
+    let beta = tau[n - 1];
+    if !(beta > 0.0) || tau[0].abs() > 1e-12 * beta {
+        return Err(format!("{shown}: the τ grid must run from 0 to β > 0"));
+    }
+    let h = beta / (n - 1) as f64;
+    if let Some(i) = (0..n).find(|&i| (tau[i] - i as f64 * h).abs() > 1e-9 * beta) {
+        return Err(format!(
+            "{shown}: row {i}: the τ grid is not uniform (τ = {}, expected {})",
+            tau[i],
+            i as f64 * h
+        ));
+    }
+    if sigma.as_ref().is_some_and(|s| s.iter().any(|e| *e < 0.0)) {
+        return Err(format!("{shown}: negative error bars in column 3"));
+    }
+    let nl = with.legendre;
+    let mut gl = legendre::gl_from_uniform_tau(&g, beta, nl);
+    // Errors of G_l by linear propagation of independent σ_i through the same quadrature.
+    let gl_err: Option<Vec<f64>> = sigma.as_ref().map(|s| {
+        let mut var = vec![0.0; nl];
+        let mut unit = vec![0.0; n];
+        for i in 0..n {
+            if s[i] == 0.0 {
+                continue;
+            }
+            unit[i] = 1.0;
+            let k = legendre::gl_from_uniform_tau(&unit, beta, nl);
+            unit[i] = 0.0;
+            for l in 0..nl {
+                var[l] += (k[l] * s[i]).powi(2);
+            }
+        }
+        var.into_iter().map(f64::sqrt).collect()
+    });
+    let kept = match &gl_err {
+        Some(e) => legendre::significant_count(&gl, e),
+        None => nl,
+    };
+    gl.truncate(kept);
+    let giw = legendre::gl_to_giw_many(&gl, with.matsubara);
+    let tail = legendre::tail_moments(&gl, beta);
+    for (role, path) in outputs {
+        let res = match role.as_str() {
+            "gtau" => {
+                let mut flat = Vec::with_capacity(2 * n);
+                for t in &tau {
+                    flat.push(*t);
+                    flat.push(legendre::gl_to_gtau(&gl, beta, *t));
+                }
+                npy::write_real(path, &[n, 2], &flat)
+            }
+            "gl" => {
+                let e = gl_err.clone().unwrap_or_else(|| vec![0.0; nl]);
+                let flat: Vec<f64> = gl.iter().zip(&e).flat_map(|(a, b)| [*a, *b]).collect();
+                npy::write_real(path, &[kept, 2], &flat)
+            }
+            "giw" => npy::write_complex(path, &[giw.len()], &giw),
+            "sigma" => {
+                let (Some(d), Some(l)) = (delta, levels) else {
+                    return Err("the output `sigma` needs the inputs `delta` and `levels`".into());
+                };
+                let eps = read_level(l)?;
+                let da = npy::read_any(d).map_err(|e| format!("{}: {e}", d.display()))?;
+                let dz = da
+                    .as_complex()
+                    .ok_or_else(|| format!("{}: Δ(iω_n) must be complex128", d.display()))?;
+                if dz.len() < giw.len() {
+                    return Err(format!(
+                        "{}: Δ has {} frequencies, fewer than matsubara = {}",
+                        d.display(),
+                        dz.len(),
+                        giw.len()
+                    ));
+                }
+                let s: Vec<Complex64> = giw
+                    .iter()
+                    .enumerate()
+                    .map(|(k, gk)| {
+                        let w = rondo_numerics::matsubara::fermionic_frequency(beta, k as i64);
+                        Complex64::new(-eps, w) - dz[k] - gk.inv()
+                    })
+                    .collect();
+                if s.iter().any(|z| !z.re.is_finite() || !z.im.is_finite()) {
+                    return Err("Σ(iω_n) is not finite: G(iω_n) vanished somewhere".into());
+                }
+                npy::write_complex(path, &[s.len()], &s)
+            }
+            other => return Err(format!("the filter has no output `{other}`")),
+        };
+        res.map_err(|e| format!("{}: {e}", path.display()))?;
+    }
+    Ok(MixReport {
+        metrics: vec![
+            metric("legendre_kept", kept as f64),
+            metric("legendre_dropped", (nl - kept) as f64),
+            metric("density_per_spin", -legendre::gl_to_gtau(&gl, beta, beta)),
+            metric("tail_c1", tail[0]),
+        ],
+        event: None,
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -170,6 +346,58 @@ mod tests {
             w0: None,
             restart_after_growth: None,
         }
+    }
+
+    /// A free level ε at inverse temperature β: G(τ) = −e^{−ετ}/(1+e^{−βε}) and
+    /// G(iω_n) = 1/(iω_n − ε) (fact of the trade). The filter must give back G(iω_n), Σ = 0
+    /// with Δ = 0, c1 = 1, and the density per spin f(ε).
+    #[test]
+    fn filter_recovers_a_free_level() -> Result<(), Box<dyn std::error::Error>> {
+        let d = tempfile::tempdir()?;
+        let (beta, eps, n) = (10.0, 0.3, 2001usize);
+        let mut flat = Vec::new();
+        for i in 0..n {
+            let t = beta * i as f64 / (n - 1) as f64;
+            flat.extend([t, -(-eps * t).exp() / (1.0 + (-beta * eps).exp()), 1e-6]);
+        }
+        let g = d.path().join("g.npy");
+        npy::write_real(&g, &[n, 3], &flat)?;
+        let delta = d.path().join("delta.npy");
+        npy::write_complex(&delta, &[64], &vec![Complex64::new(0.0, 0.0); 64])?;
+        let lv = d.path().join("levels.json");
+        std::fs::write(&lv, format!("{{\"level\": {eps}}}"))?;
+        let outs = vec![
+            ("giw".to_string(), d.path().join("giw.npy")),
+            ("sigma".to_string(), d.path().join("sigma.npy")),
+            ("gl".to_string(), d.path().join("gl.npy")),
+        ];
+        let w = FilterWith {
+            legendre: 30,
+            matsubara: 64,
+        };
+        let r = filter(&w, &g, Some(&delta), Some(&lv), &outs)?;
+        let giw = npy::read_any(d.path().join("giw.npy"))?;
+        let giw = giw.as_complex().ok_or("complex")?;
+        for (k, z) in giw.iter().enumerate() {
+            let wk = rondo_numerics::matsubara::fermionic_frequency(beta, k as i64);
+            let exact = Complex64::new(-eps, wk).inv();
+            assert!((z - exact).norm() < 1e-6, "n = {k}: {z} vs {exact}");
+        }
+        let sig = npy::read_any(d.path().join("sigma.npy"))?;
+        let sig = sig.as_complex().ok_or("complex")?;
+        assert!(
+            sig.iter().take(16).all(|z| z.norm() < 1e-3),
+            "{:?}",
+            &sig[..4]
+        );
+        let get = |n: &str| r.metrics.iter().find(|m| m.name == n).map(|m| m.value);
+        assert!((get("tail_c1").unwrap_or(0.0) - 1.0).abs() < 1e-6);
+        let f = 1.0 / ((beta * eps).exp() + 1.0);
+        assert!((get("density_per_spin").unwrap_or(0.0) - f).abs() < 1e-6);
+        // bad grid
+        npy::write_real(&g, &[2, 2], &[0.0, -0.5, 1.0, -0.5])?;
+        assert!(filter(&w, &g, None, None, &outs[..1]).is_err_and(|m| m.contains("shape")));
+        Ok(())
     }
 
     #[test]

@@ -118,6 +118,48 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Write (and submit, unless --print-only) a batch script that runs this campaign inside
+    /// Slurm allocations, each job continuing the last at Slurm's warning before the limit.
+    Submit {
+        /// The campaign file.
+        file: PathBuf,
+        /// Workspace folder (default: <campaign>.rondo beside the file).
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+        /// Wall time of each job (`--time`), e.g. 24:00:00.
+        #[arg(long)]
+        time: String,
+        /// Nodes of each job (`--nodes`).
+        #[arg(long)]
+        nodes: Option<u32>,
+        /// Tasks of each job (`--ntasks`).
+        #[arg(long)]
+        ntasks: Option<u32>,
+        /// CPUs per task (`--cpus-per-task`).
+        #[arg(long)]
+        cpus_per_task: Option<u32>,
+        /// Partition (`--partition`).
+        #[arg(long)]
+        partition: Option<String>,
+        /// Account (`--account`).
+        #[arg(long)]
+        account: Option<String>,
+        /// Quality of service (`--qos`).
+        #[arg(long)]
+        qos: Option<String>,
+        /// Seconds before the limit at which Slurm warns rondo (`--signal=B:USR1@N`).
+        #[arg(long, default_value_t = 300)]
+        warning: u64,
+        /// Most continuation jobs after the first (a guard against endless chains).
+        #[arg(long, default_value_t = 20)]
+        max_continuations: u32,
+        /// Attempts running at once inside the allocation.
+        #[arg(long, default_value_t = 1)]
+        jobs: usize,
+        /// Only write and print the script.
+        #[arg(long)]
+        print_only: bool,
+    },
     /// Print the JSON Schema of the campaign file.
     Schema,
 }
@@ -219,6 +261,10 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                 retry_failed,
                 keep_scratch,
                 grace: Duration::from_secs(grace),
+                allocation: {
+                    let env = rondo_adapters::slurm::allocation::AllocationEnv::from_env();
+                    env.in_allocation().then_some(env)
+                },
             };
             let summary = engine::run(&c, &opts, Progress::for_stderr(quiet)).await?;
             let counts = summary
@@ -229,6 +275,10 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                 .join(", ");
             if !quiet {
                 eprintln!("rondo: {}: {counts}", c.name);
+            }
+            if let Some(id) = &summary.continued_as {
+                eprintln!("rondo: the allocation ends; the campaign continues in job {id}");
+                return Ok(EXIT_INTERRUPTED);
             }
             if summary.interrupted {
                 eprintln!("rondo: interrupted; `rondo run` again continues where this stopped");
@@ -278,6 +328,72 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                 emit(&lineage.to_text());
             }
             pool.close().await;
+            Ok(EXIT_OK)
+        }
+        Command::Submit {
+            file,
+            workspace,
+            time,
+            nodes,
+            ntasks,
+            cpus_per_task,
+            partition,
+            account,
+            qos,
+            warning,
+            max_continuations,
+            jobs,
+            print_only,
+        } => {
+            let c = load(&file)?;
+            let file = absolute(file)?;
+            let ws = absolute(workspace.unwrap_or_else(|| engine::default_workspace(&file)))?;
+            let exe = std::env::current_exe().context("cannot find the rondo executable")?;
+            let dir = file.parent().map(Path::to_path_buf).unwrap_or_default();
+            let script = dir.join(format!("{}.allocation.sh", c.name));
+            let spec = rondo_adapters::slurm::allocation::AllocationSpec {
+                job_name: format!("{}.allocation", c.name),
+                resources: rondo_adapters::executor::Resources {
+                    nodes,
+                    ntasks,
+                    cpus_per_task,
+                    time: Some(time),
+                    partition,
+                    account,
+                    qos,
+                    ..Default::default()
+                },
+                warning: Duration::from_secs(warning),
+                workdir: dir.clone(),
+                command: vec![
+                    exe.display().to_string(),
+                    "run".into(),
+                    file.display().to_string(),
+                    "--workspace".into(),
+                    ws.display().to_string(),
+                    "--jobs".into(),
+                    jobs.to_string(),
+                ],
+                env: Default::default(),
+                max_continuations,
+            };
+            let text = rondo_adapters::slurm::allocation::write_allocation_script(&spec, &script)
+                .map_err(|e| BadInput(e.to_string()))?;
+            emit(&text);
+            eprintln!("rondo: wrote {}", script.display());
+            if !print_only {
+                let id = rondo_adapters::slurm::allocation::submit_continuation(
+                    "sbatch",
+                    &script,
+                    None,
+                    0,
+                    Duration::from_secs(60),
+                )
+                .await
+                .map_err(|e| anyhow::anyhow!("sbatch: {e}"))?;
+                eprintln!("rondo: submitted job {id}");
+                emit(&format!("{id}\n"));
+            }
             Ok(EXIT_OK)
         }
         Command::Schema => {
@@ -382,6 +498,10 @@ pub fn plan_text(c: &Campaign) -> String {
                     if *shell { " via /bin/sh" } else { "" }
                 )
             }
+            StageKind::Filter(w) => format!(
+                "built-in filter ({} Legendre coefficients, {} Matsubara frequencies)",
+                w.legendre, w.matsubara
+            ),
             StageKind::Mix(w) => {
                 format!("built-in mix ({:?}, alpha {})", w.method, w.alpha).to_lowercase()
             }

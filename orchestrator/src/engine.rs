@@ -75,6 +75,8 @@ pub struct RunOptions {
     pub keep_scratch: bool,
     /// Grace period between SIGTERM and SIGKILL for local children.
     pub grace: Duration,
+    /// Set when rondo runs inside a self-continuing Slurm allocation (`rondo submit`).
+    pub allocation: Option<rondo_adapters::slurm::allocation::AllocationEnv>,
 }
 
 /// How a run ended.
@@ -86,6 +88,8 @@ pub struct RunSummary {
     pub interrupted: bool,
     /// Stopped by `rondo cancel`.
     pub cancelled: bool,
+    /// Inside an allocation: the job id of the continuation submitted at the warning signal.
+    pub continued_as: Option<String>,
 }
 
 impl RunSummary {
@@ -502,6 +506,16 @@ impl Engine<'_> {
             .context("cannot install the SIGINT handler")?;
         let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
             .context("cannot install the SIGTERM handler")?;
+        // Inside an allocation, Slurm's warning signal (USR1) means: stop, and continue in
+        // the next job of the chain. Installed early: USR1 would otherwise end the process.
+        let mut usr1 = match &self.opts.allocation {
+            Some(_) => Some(
+                rondo_adapters::slurm::allocation::warning_signal()
+                    .context("cannot install the USR1 handler")?,
+            ),
+            None => None,
+        };
+        let mut warned = false;
         let mut tick = tokio::time::interval(Duration::from_millis(500));
         tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
         let mut interrupted = false;
@@ -522,6 +536,12 @@ impl Engine<'_> {
                 },
                 _ = sigint.recv() => { interrupted = true; break; }
                 _ = sigterm.recv() => { interrupted = true; break; }
+                _ = async {
+                    match usr1.as_mut() {
+                        Some(s) => { s.recv().await; }
+                        None => std::future::pending::<()>().await,
+                    }
+                } => { interrupted = true; warned = true; break; }
                 _ = tick.tick() => {
                     if self.paths.cancel_request.exists() {
                         cancelled = true;
@@ -530,8 +550,12 @@ impl Engine<'_> {
                 }
             }
         }
+        let mut continued_as = None;
         if interrupted || cancelled {
             self.stop_everything(&mut rx, cancelled).await?;
+            if warned {
+                continued_as = self.continue_allocation().await?;
+            }
         } else if let Some(eos) = &self.campaign.eos {
             let doc =
                 crate::analysis::record_eos(&self.pool, &self.paths.root, &self.artifacts, eos)
@@ -569,7 +593,47 @@ impl Engine<'_> {
             states,
             interrupted,
             cancelled,
+            continued_as,
         })
+    }
+
+    /// After the allocation's warning signal: submit the next job of the chain (the same
+    /// script, after this job) when any point still has work.
+    async fn continue_allocation(&mut self) -> Result<Option<String>> {
+        let Some(env) = self.opts.allocation.clone() else {
+            return Ok(None);
+        };
+        if self.points.iter().all(|p| p.phase == PointPhase::Done) {
+            return Ok(None);
+        }
+        let Some(script) = env.script.clone() else {
+            return Ok(None);
+        };
+        let next = env.continuation + 1;
+        let id = rondo_adapters::slurm::allocation::submit_continuation(
+            "sbatch",
+            &script,
+            env.job_id.as_deref(),
+            next,
+            Duration::from_secs(60),
+        )
+        .await
+        .map_err(|e| anyhow::anyhow!("cannot submit the continuation job: {e}"))?;
+        let detail = format!(
+            "allocation job {} ends; continuation {next} submitted as job {id}",
+            env.job_id.as_deref().unwrap_or("?")
+        );
+        store::event(
+            &self.pool,
+            "allocation-continued",
+            None,
+            None,
+            None,
+            &detail,
+        )
+        .await?;
+        self.progress.line(detail);
+        Ok(Some(id))
     }
 
     /// Rebuild each point's place from the store.
@@ -814,7 +878,7 @@ impl Engine<'_> {
                 continue;
             }
             let stage = &self.campaign.stages[self.points[p].next_stage];
-            let is_builtin = matches!(stage.kind, StageKind::Mix(_));
+            let is_builtin = stage.kind.is_builtin();
             if !is_builtin && self.inflight.len() >= slots {
                 waiting.push_back(p);
                 continue;
@@ -937,7 +1001,7 @@ impl Engine<'_> {
         let mut inputs: Vec<(String, String, PathBuf)> = Vec::new();
         for (role, src) in &stage.inputs {
             let Some(hash) = self.input_hash(&point.id, iteration, src).await? else {
-                if matches!(stage.kind, StageKind::Mix(_)) || iteration == 1 {
+                if stage.kind.is_builtin() || iteration == 1 {
                     continue;
                 }
                 bail!(
@@ -1001,6 +1065,14 @@ impl Engine<'_> {
         }
         let (argv, program_path, program_hash, program_version, uses_seed, executor_kind) =
             match &stage.kind {
+                StageKind::Filter(with) => (
+                    builtins::filter_argv(with),
+                    self.rondo_exe.0.clone(),
+                    self.rondo_exe.1.clone(),
+                    Some(format!("rondo {RONDO_VERSION}")),
+                    false,
+                    "builtin",
+                ),
                 StageKind::Mix(with) => (
                     builtins::mix_argv(with),
                     self.rondo_exe.0.clone(),
@@ -1145,7 +1217,7 @@ impl Engine<'_> {
             workdir: workdir.clone(),
         };
         match &stage.kind {
-            StageKind::Mix(with) => {
+            StageKind::Mix(_) | StageKind::Filter(_) => {
                 let started = Utc::now();
                 sqlx::query(
                     "UPDATE attempts SET state = 'running', started_at = ?, host = ? WHERE id = ?",
@@ -1155,28 +1227,48 @@ impl Engine<'_> {
                 .bind(id)
                 .execute(&self.pool)
                 .await?;
-                let out_name = stage
-                    .outputs
-                    .first()
-                    .map(|(_, f)| f.clone())
-                    .unwrap_or_default();
-                let new = inputs
-                    .iter()
-                    .find(|(r, _, _)| r == "new")
-                    .map(|(_, _, f)| workdir.join(f));
-                let state = inputs
-                    .iter()
-                    .find(|(r, _, _)| r == "state")
-                    .map(|(_, _, f)| workdir.join(f));
-                let result = match new {
-                    None => Err("the input `new` has no artifact".to_string()),
-                    Some(new) => builtins::mix(
-                        with,
-                        &new,
-                        state.as_deref(),
-                        &workdir.join(&out_name),
-                        &workdir.join(builtins::STATE_FILE),
-                    ),
+                let input_path = |role: &str| {
+                    inputs
+                        .iter()
+                        .find(|(r, _, _)| r == role)
+                        .map(|(_, _, f)| workdir.join(f))
+                };
+                let result = match &stage.kind {
+                    StageKind::Mix(with) => {
+                        let out_name = stage
+                            .outputs
+                            .first()
+                            .map(|(_, f)| f.clone())
+                            .unwrap_or_default();
+                        match input_path("new") {
+                            None => Err("the input `new` has no artifact".to_string()),
+                            Some(new) => builtins::mix(
+                                with,
+                                &new,
+                                input_path("state").as_deref(),
+                                &workdir.join(&out_name),
+                                &workdir.join(builtins::STATE_FILE),
+                            ),
+                        }
+                    }
+                    StageKind::Filter(with) => {
+                        let outs: Vec<(String, PathBuf)> = stage
+                            .outputs
+                            .iter()
+                            .map(|(r, f)| (r.clone(), workdir.join(f)))
+                            .collect();
+                        match input_path("gtau") {
+                            None => Err("the input `gtau` has no artifact".to_string()),
+                            Some(g) => builtins::filter(
+                                with,
+                                &g,
+                                input_path("delta").as_deref(),
+                                input_path("levels").as_deref(),
+                                &outs,
+                            ),
+                        }
+                    }
+                    StageKind::Command { .. } => Err("internal: not a built-in".to_string()),
                 };
                 let ended = match result {
                     Ok(report) => {

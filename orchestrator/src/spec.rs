@@ -248,7 +248,28 @@ pub struct StageSpec {
     pub allow_nonfinite: bool,
     /// Settings of a built-in stage.
     #[serde(default)]
-    pub with: Option<MixWith>,
+    pub with: Option<BuiltinWith>,
+}
+
+/// Settings of a built-in stage: `mix` or `filter`.
+#[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(untagged)]
+pub enum BuiltinWith {
+    /// Settings of `mix`.
+    Mix(MixWith),
+    /// Settings of `filter`.
+    Filter(FilterWith),
+}
+
+/// Settings of the built-in `filter` stage (Legendre noise filter of a G(τ)).
+#[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct FilterWith {
+    /// Legendre coefficients fitted (fewer are kept when the input has error bars and the
+    /// higher ones drown in noise).
+    pub legendre: usize,
+    /// Positive Matsubara frequencies of the G(iω_n) and Σ(iω_n) outputs.
+    pub matsubara: usize,
 }
 
 /// How stop rules combine.
@@ -483,6 +504,15 @@ pub enum StageKind {
     },
     /// Built-in mixing.
     Mix(MixWith),
+    /// Built-in Legendre filter of a G(τ).
+    Filter(FilterWith),
+}
+
+impl StageKind {
+    /// Whether the stage runs inside rondo.
+    pub fn is_builtin(&self) -> bool {
+        !matches!(self, StageKind::Command { .. })
+    }
 }
 
 /// A program resolved to a file.
@@ -880,18 +910,18 @@ impl Validator<'_> {
                 (Some(run), None) => {
                     self.command(&sname, st, run, &param_names, &mut programs, &base, &inputs)
                 }
-                (None, Some(b)) => {
-                    if b.value != "mix" {
+                (None, Some(b)) => match b.value.as_str() {
+                    "mix" => self.mix(&sname, st, at, &inputs),
+                    "filter" => self.filter(&sname, st, at, &inputs),
+                    _ => {
                         self.push(
                             loc(b),
                             format!("unknown built-in `{}`", b.value),
-                            "built-ins: mix",
+                            "built-ins: mix, filter",
                         );
                         None
-                    } else {
-                        self.mix(&sname, st, at, &inputs)
                     }
-                }
+                },
                 (Some(_), Some(_)) => {
                     self.push(
                         at,
@@ -1299,11 +1329,11 @@ impl Validator<'_> {
         at: (u64, u64),
         inputs: &[(String, Source)],
     ) -> Option<StageKind> {
-        let Some(with) = st.with.clone() else {
+        let Some(BuiltinWith::Mix(with)) = st.with.clone() else {
             self.push(
                 at,
                 format!("built-in stage `{sname}` needs `with: {{ method: linear, alpha: 0.5 }}`"),
-                "add `with:`",
+                "add `with:` with the mixer settings",
             );
             return None;
         };
@@ -1336,6 +1366,68 @@ impl Validator<'_> {
             );
         }
         Some(StageKind::Mix(with))
+    }
+
+    fn filter(
+        &mut self,
+        sname: &str,
+        st: &StageSpec,
+        at: (u64, u64),
+        inputs: &[(String, Source)],
+    ) -> Option<StageKind> {
+        let Some(BuiltinWith::Filter(with)) = st.with.clone() else {
+            self.push(
+                at,
+                format!(
+                    "built-in stage `{sname}` needs `with: {{ legendre: 40, matsubara: 512 }}`"
+                ),
+                "add `with:` with the filter settings",
+            );
+            return None;
+        };
+        if with.legendre == 0 || with.matsubara == 0 {
+            self.push(
+                at,
+                format!("stage `{sname}`: legendre and matsubara must be at least 1"),
+                "e.g. legendre: 40, matsubara: 512",
+            );
+        }
+        let roles: Vec<&str> = inputs.iter().map(|(r, _)| r.as_str()).collect();
+        if !roles.contains(&"gtau")
+            || roles
+                .iter()
+                .any(|r| !["gtau", "delta", "levels"].contains(r))
+        {
+            self.push(
+                at,
+                format!(
+                    "built-in stage `{sname}` takes inputs `gtau` (and `delta`, `levels` for Σ)"
+                ),
+                "write inputs: { gtau: solve.gtau }",
+            );
+        }
+        let outs: Vec<&str> = st.outputs.keys().collect();
+        if outs.is_empty()
+            || outs
+                .iter()
+                .any(|r| !["gtau", "giw", "sigma", "gl"].contains(r))
+        {
+            self.push(
+                at,
+                format!("built-in stage `{sname}` writes some of the outputs gtau, giw, sigma, gl"),
+                "write outputs: { giw: giw.npy, sigma: sigma.npy }",
+            );
+        }
+        if outs.contains(&"sigma") && !(roles.contains(&"delta") && roles.contains(&"levels")) {
+            self.push(
+                at,
+                format!(
+                    "stage `{sname}`: the output `sigma` needs the inputs `delta` and `levels`"
+                ),
+                "add them or drop `sigma`",
+            );
+        }
+        Some(StageKind::Filter(with))
     }
 
     fn points(&mut self, raw: &CampaignFile) -> Vec<PointSpec> {
