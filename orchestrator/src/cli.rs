@@ -118,6 +118,54 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Compare two points (of this workspace or of two workspaces): sweep values, parameters,
+    /// program hashes, inputs, stopping rules, and where their metrics first diverge.
+    Diff {
+        /// First point: an id (p003) or sweep values (volume=27,temperature=300).
+        a: String,
+        /// Second point.
+        b: String,
+        /// Workspace of the first point (default: the single *.rondo folder here).
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+        /// Workspace of the second point (default: the same).
+        #[arg(long)]
+        other_workspace: Option<PathBuf>,
+        /// Machine-readable output.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Export lineage as W3C PROV-JSON: of TARGET (file, hash prefix, metric), or of the
+    /// whole campaign.
+    Export {
+        /// Output file of the PROV-JSON document.
+        #[arg(long)]
+        prov: PathBuf,
+        /// What to export (default: everything).
+        target: Option<String>,
+        /// Workspace folder.
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+    },
+    /// Write a self-contained report folder: convergence, energy versus volume with the
+    /// fitted equation of state, configuration probabilities, observables with error bars.
+    Report {
+        /// Workspace folder.
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+        /// Report folder (default: <workspace>/report).
+        #[arg(long)]
+        out: Option<PathBuf>,
+        /// Sweep axis holding the volume.
+        #[arg(long, default_value = "volume")]
+        volume_axis: String,
+        /// Sweep axis holding the temperature.
+        #[arg(long, default_value = "temperature")]
+        temperature_axis: String,
+        /// Metric with the total energy per site.
+        #[arg(long, default_value = "update.energy")]
+        energy: String,
+    },
     /// Write (and submit, unless --print-only) a batch script that runs this campaign inside
     /// Slurm allocations, each job continuing the last at Slurm's warning before the limit.
     Submit {
@@ -328,6 +376,105 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                 emit(&lineage.to_text());
             }
             pool.close().await;
+            Ok(EXIT_OK)
+        }
+        Command::Diff {
+            a,
+            b,
+            workspace,
+            other_workspace,
+            json,
+        } => {
+            let ws_a = find_workspace(None, workspace)?;
+            let ws_b = match other_workspace {
+                Some(w) => absolute(w)?,
+                None => ws_a.clone(),
+            };
+            let pa = store::open_existing(&ws_a).await?;
+            let pb = store::open_existing(&ws_b).await?;
+            let d = crate::audit::diff(&pa, &a, &pb, &b)
+                .await
+                .map_err(|e| BadInput(format!("{e:#}")))?;
+            if json {
+                emit(&format!("{}\n", serde_json::to_string_pretty(&d)?));
+            } else {
+                emit(&d.to_text());
+            }
+            Ok(EXIT_OK)
+        }
+        Command::Export {
+            prov,
+            target,
+            workspace,
+        } => {
+            let ws = find_workspace(None, workspace)?;
+            let pool = store::open_existing(&ws).await?;
+            let t = match &target {
+                Some(t) => {
+                    let mut bar = crate::progress::Bytes::new("hashing");
+                    let r = crate::audit::resolve(&pool, &ws, t, &mut |d, n| bar.set(d, n))
+                        .await
+                        .map_err(|e| BadInput(format!("{e:#}")))?;
+                    bar.finish();
+                    Some(r)
+                }
+                None => None,
+            };
+            let doc =
+                crate::prov::export_target(&pool, t.as_ref(), &crate::prov::current_user()).await?;
+            let mut text = serde_json::to_string_pretty(&doc)?;
+            text.push('\n');
+            crate::artifacts::write_new(&prov, text.as_bytes())
+                .with_context(|| format!("{}: cannot write", prov.display()))?;
+            let (e, a, g) = crate::prov::counts(&doc);
+            eprintln!(
+                "rondo: wrote {} ({e} entities, {a} activities, {g} agents)",
+                prov.display()
+            );
+            Ok(EXIT_OK)
+        }
+        Command::Report {
+            workspace,
+            out,
+            volume_axis,
+            temperature_axis,
+            energy,
+        } => {
+            let ws = find_workspace(None, workspace)?;
+            let pool = store::open_existing(&ws).await?;
+            let out = absolute(out.unwrap_or_else(|| ws.join("report")))?;
+            let opts = crate::report::ReportOptions {
+                volume_axis,
+                temperature_axis,
+                energy_metric: energy,
+                argv: std::env::args().collect(),
+                ..Default::default()
+            };
+            let bar = if std::io::IsTerminal::is_terminal(&std::io::stderr()) {
+                Some(indicatif::ProgressBar::new(1))
+            } else {
+                None
+            };
+            let summary = crate::report::generate_with(&pool, &ws, &out, &opts, &mut |p| {
+                if let Some(b) = &bar {
+                    b.set_length(p.total as u64);
+                    b.set_position(p.done as u64);
+                    b.set_message(p.step.clone());
+                }
+            })
+            .await?;
+            if let Some(b) = &bar {
+                b.finish_and_clear();
+            }
+            for n in &summary.notes {
+                eprintln!("rondo: report: {n}");
+            }
+            eprintln!(
+                "rondo: report in {} ({} figures, {} tables); open index.html",
+                summary.out_dir.display(),
+                summary.figures.len(),
+                summary.tables.len()
+            );
             Ok(EXIT_OK)
         }
         Command::Submit {
