@@ -345,3 +345,46 @@ fn the_committed_json_schema_matches_the_rust_types() {
         "schemas/campaign.schema.json is stale: regenerate it with `rondo schema > schemas/campaign.schema.json`"
     );
 }
+
+#[test]
+fn a_scheduled_parameter_follows_the_loop_and_is_recorded_per_attempt() {
+    let d = tmp();
+    let f = halfstep_campaign(d.path(), "ok", "", "[1.0]");
+    let text = std::fs::read_to_string(&f)
+        .unwrap_or_default()
+        .replace(
+            r#""{{param:a}}"]"#,
+            r#""{{param:a}}", "--sweeps={{param:sweeps}}"]"#,
+        )
+        .replace(
+            "stop:\n",
+            "schedules:\n  sweeps: { start: 100, factor: 2, max: 800, metric: s.x, change-below: 0.1 }\nstop:\n",
+        );
+    std::fs::write(&f, text).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let rows: Vec<(i64, String, String)> = query(&d.path().join("c.rondo"), |pool| {
+        Box::pin(async move {
+            sqlx::query("SELECT iteration, parameters_json, argv_json FROM attempts WHERE state = 'succeeded' ORDER BY iteration")
+                .fetch_all(pool)
+                .await
+                .unwrap_or_default()
+                .into_iter()
+                .map(|r| (r.get(0), r.get(1), r.get(2)))
+                .collect()
+        })
+    });
+    assert!(rows.len() >= 8, "{rows:?}");
+    for (it, params, argv) in rows {
+        // x_n = 1 − 2^−n changes by 2^−j at iteration j: below 0.1 from j = 4 on, so the
+        // value doubles once per earlier iteration j in 4..n−1, from 100 up to 800.
+        let held = (it - 4).max(0);
+        let want = (100i64 << held.min(3)).min(800);
+        let p: serde_json::Value = serde_json::from_str(&params).unwrap_or_default();
+        assert_eq!(p["sweeps"], want, "iteration {it}: {params}");
+        assert!(
+            argv.contains(&format!("--sweeps={want}")),
+            "iteration {it}: {argv}"
+        );
+    }
+}

@@ -1063,6 +1063,15 @@ impl Engine<'_> {
         for (k, v) in &point.values {
             params.insert(k.clone(), v.to_json());
         }
+        let scheduled = self.schedule_values(&point.id, iteration).await?;
+        for (k, v) in &scheduled {
+            let value = v
+                .parse::<i64>()
+                .map(serde_json::Value::from)
+                .or_else(|_| v.parse::<f64>().map(serde_json::Value::from))
+                .unwrap_or_else(|_| serde_json::Value::from(v.clone()));
+            params.insert(k.clone(), value);
+        }
         let (argv, program_path, program_hash, program_version, uses_seed, executor_kind) =
             match &stage.kind {
                 StageKind::Filter(with) => (
@@ -1107,6 +1116,12 @@ impl Engine<'_> {
                                         .iter()
                                         .find(|(k, _)| k == n)
                                         .map(|(_, v)| v.to_string())
+                                })
+                                .or_else(|| {
+                                    scheduled
+                                        .iter()
+                                        .find(|(k, _)| k == n)
+                                        .map(|(_, v)| v.clone())
                                 }),
                             (Some("input"), n) => inputs
                                 .iter()
@@ -1353,6 +1368,52 @@ impl Engine<'_> {
             }
         }
         Ok(())
+    }
+
+    /// Values of the loop-driven parameters for a point's iteration, from the metrics of its
+    /// earlier good iterations (so a resumed run computes the same values).
+    async fn schedule_values(&self, point: &str, iteration: u32) -> Result<Vec<(String, String)>> {
+        let mut out = Vec::new();
+        for sc in &self.campaign.schedules {
+            let rows = sqlx::query(
+                "SELECT a.iteration, m.value, m.error FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
+                 JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration AND i.state = 'good' \
+                 WHERE a.point = ? AND a.state = 'succeeded' AND m.name = ? AND a.iteration < ? ORDER BY a.iteration",
+            )
+            .bind(point)
+            .bind(&sc.metric)
+            .bind(i64::from(iteration))
+            .fetch_all(&self.pool)
+            .await?;
+            let samples: Vec<Sample> = rows
+                .iter()
+                .map(|r| Sample {
+                    value: r.get("value"),
+                    error: r.get("error"),
+                })
+                .collect();
+            let held = samples
+                .windows(2)
+                .filter(|w| stop::holds(sc.test, w[0], w[1]).0)
+                .count();
+            let mut v = sc.start;
+            for _ in 0..held {
+                v *= sc.factor;
+                if v >= sc.max {
+                    break;
+                }
+            }
+            let v = v.min(sc.max);
+            out.push((
+                sc.name.clone(),
+                if sc.integer {
+                    format!("{}", v.round() as i64)
+                } else {
+                    format!("{v:?}")
+                },
+            ));
+        }
+        Ok(out)
     }
 
     /// Output checks after a clean exit (or a built-in's end).

@@ -409,6 +409,52 @@ pub struct CampaignFile {
     /// Campaign-level analyses.
     #[serde(default)]
     pub analysis: AnalysisSpec,
+    /// Parameters that follow the loop: name → schedule (usable as `{{param:NAME}}`).
+    #[serde(default)]
+    pub schedules: OrderedMap<ScheduleSpec>,
+}
+
+/// A parameter driven by the loop: `start × factor^k`, capped at `max`, where k counts the
+/// earlier iterations of the point at which the change of `metric` was within
+/// `within-errors` combined standard errors (or below `change-below`). Typical use: double
+/// the Monte Carlo sweeps once the iteration-to-iteration change is lost in the noise.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct ScheduleSpec {
+    /// Value at iteration 1.
+    pub start: Scalar,
+    /// Factor applied each time the condition held.
+    pub factor: f64,
+    /// Largest value.
+    pub max: Scalar,
+    /// `stage.metric` watched.
+    #[schemars(with = "String")]
+    pub metric: Spanned<String>,
+    /// Condition: |Δ| ≤ k · combined standard error.
+    #[serde(default)]
+    pub within_errors: Option<f64>,
+    /// Condition: |Δ| below this.
+    #[serde(default)]
+    pub change_below: Option<f64>,
+}
+
+/// A checked schedule.
+#[derive(Debug, Clone)]
+pub struct Schedule {
+    /// Parameter name.
+    pub name: String,
+    /// Start value.
+    pub start: f64,
+    /// Growth factor.
+    pub factor: f64,
+    /// Cap.
+    pub max: f64,
+    /// Integer-valued (start and max are integers).
+    pub integer: bool,
+    /// Watched metric.
+    pub metric: String,
+    /// Condition.
+    pub test: RuleTest,
 }
 
 /// One problem found in a campaign file.
@@ -590,6 +636,8 @@ pub struct Campaign {
     pub final_window: u32,
     /// Equation-of-state analysis.
     pub eos: Option<EosAnalysis>,
+    /// Loop-driven parameters.
+    pub schedules: Vec<Schedule>,
 }
 
 impl Campaign {
@@ -792,6 +840,69 @@ impl Validator<'_> {
             for (k, _) in &p.values {
                 param_names.insert(k.clone());
             }
+        }
+        let mut schedules = Vec::new();
+        for (k, sc) in &raw.schedules.0 {
+            let at = loc(k);
+            if param_names.contains(&k.value) {
+                self.push(
+                    at,
+                    format!(
+                        "`{}` is both a schedule and a parameter or sweep axis",
+                        k.value
+                    ),
+                    "keep one",
+                );
+                continue;
+            }
+            let num = |v: &Scalar| match v {
+                Scalar::Int(i) => Some((*i as f64, true)),
+                Scalar::Real(x) => Some((*x, false)),
+                _ => None,
+            };
+            let (Some((start, si)), Some((max, mi))) = (num(&sc.start), num(&sc.max)) else {
+                self.push(
+                    at,
+                    format!("schedule `{}`: start and max must be numbers", k.value),
+                    "e.g. start: 20000, max: 320000",
+                );
+                continue;
+            };
+            if !(sc.factor.is_finite() && sc.factor > 0.0)
+                || !(start.is_finite() && max.is_finite())
+            {
+                self.push(
+                    at,
+                    format!("schedule `{}`: factor must be a positive number", k.value),
+                    "e.g. factor: 2",
+                );
+                continue;
+            }
+            let test = match (sc.within_errors, sc.change_below) {
+                (Some(e), None) if e > 0.0 => RuleTest::Errors(e),
+                (None, Some(c)) if c > 0.0 => RuleTest::Abs(c),
+                _ => {
+                    self.push(at, format!("schedule `{}` needs exactly one positive condition: within-errors or change-below", k.value), "e.g. within-errors: 2");
+                    continue;
+                }
+            };
+            match split_ref(&sc.metric.value) {
+                Some((st, _)) if raw.cycle.get(st).is_some() => {}
+                _ => {
+                    self.push(loc(&sc.metric), format!("schedule `{}`: metric `{}` must be stage.metric of a stage of the cycle", k.value, sc.metric.value), "e.g. metric: solve.n_f");
+                    continue;
+                }
+            }
+            param_names.insert(k.value.clone());
+            schedules.push(Schedule {
+                name: k.value.clone(),
+                start,
+                factor: sc.factor,
+                max,
+                integer: si && mi,
+                metric: sc.metric.value.clone(),
+                test,
+            });
         }
 
         // Stages.
@@ -1142,6 +1253,7 @@ impl Validator<'_> {
             seed: raw.seed.unwrap_or(0),
             final_window: raw.stop.final_window,
             eos,
+            schedules,
         })
     }
 

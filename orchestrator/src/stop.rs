@@ -52,7 +52,7 @@ pub struct Decision {
 }
 
 /// Whether the test holds between a previous and a current sample; also the threshold used.
-fn holds(test: RuleTest, prev: Sample, cur: Sample) -> (bool, Option<f64>) {
+pub fn holds(test: RuleTest, prev: Sample, cur: Sample) -> (bool, Option<f64>) {
     let change = (cur.value - prev.value).abs();
     let threshold = match test {
         RuleTest::Abs(tol) => Some(tol),
