@@ -388,3 +388,74 @@ fn a_scheduled_parameter_follows_the_loop_and_is_recorded_per_attempt() {
         );
     }
 }
+
+#[test]
+fn sigterm_stops_starting_ends_the_children_and_a_rerun_continues() {
+    let d = tmp();
+    std::fs::write(
+        d.path().join("c.yaml"),
+        r#"campaign: sleepy
+sweep:
+  product:
+    k: [1, 2, 3]
+cycle:
+  nap:
+    run: [/bin/sleep, "30"]
+stop:
+  max-iterations: 1
+"#,
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let mut child = Command::new(rondo())
+        .args(["run", "c.yaml", "--grace", "1", "--jobs", "2"])
+        .current_dir(d.path())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|e| panic!("spawn: {e}"));
+    let ws = d.path().join("c.rondo");
+    let t0 = Instant::now();
+    let running = |ws: &Path| -> i64 {
+        query(ws, |pool| {
+            Box::pin(async move {
+                sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'running'")
+                    .fetch_one(pool)
+                    .await
+                    .unwrap_or(0)
+            })
+        })
+    };
+    while !(ws.join("rondo.db").is_file() && running(&ws) == 2) {
+        assert!(t0.elapsed() < Duration::from_secs(60), "attempts did not start");
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    // SAFETY: signalling our own child process.
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    let status = child.wait().unwrap_or_else(|e| panic!("wait: {e}"));
+    assert_eq!(status.code(), Some(4), "interrupted");
+    let (states, ws_id): (Vec<String>, String) = query(&ws, |pool| {
+        Box::pin(async move {
+            let s = sqlx::query_scalar("SELECT state FROM attempts ORDER BY id")
+                .fetch_all(pool)
+                .await
+                .unwrap_or_default();
+            let id = sqlx::query_scalar("SELECT workspace_id FROM campaign")
+                .fetch_one(pool)
+                .await
+                .unwrap_or_default();
+            (s, id)
+        })
+    });
+    // two were running and were ended and recorded; the third was never started
+    assert_eq!(states, ["cancelled", "cancelled"]);
+    assert!(processes_of_workspace(&ws_id).is_empty(), "children left behind");
+    let events: Vec<String> = query(&ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar("SELECT kind FROM events ORDER BY seq")
+                .fetch_all(pool)
+                .await
+                .unwrap_or_default()
+        })
+    });
+    assert!(events.iter().any(|e| e == "run-interrupted"), "{events:?}");
+}
