@@ -1,4 +1,4 @@
-"""Group 3: atomic limit of the single-orbital Anderson impurity,
+"""atomic limit of the single-orbital Anderson impurity,
 H = eps*(n_up+n_dn) + U n_up n_dn  (mu absorbed in eps), exact diagonalisation in the
 4-state Fock space versus closed forms.  mpmath, 40 digits."""
 import mpmath as mp

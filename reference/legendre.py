@@ -1,4 +1,4 @@
-"""Group 2: Legendre representation of G(tau) (Boehnke et al., PRB 84, 075145 (2011)).
+"""Legendre representation of G(tau) (Boehnke et al., PRB 84, 075145 (2011)).
   G(tau) = sum_l sqrt(2l+1)/beta * P_l(x(tau)) * G_l,   x = 2 tau/beta - 1
   G_l    = sqrt(2l+1) * int_0^beta dtau P_l(x(tau)) G(tau)
   G(iw_n)= sum_l T_nl G_l,  T_nl = (-1)^n i^(l+1) sqrt(2l+1) j_l((2n+1) pi/2)

@@ -1,4 +1,4 @@
-"""Group 6: linear mixing, Anderson acceleration (Walker-Ni form), modified Broyden
+"""linear mixing, Anderson acceleration (Walker-Ni form), modified Broyden
 (Johnson 1988), GMRES equivalence (Walker & Ni 2011), scipy.optimize.anderson.
 Fixed-point map g(x) = A x + b, residual f(x) = g(x) - x, x0 = 0,
 count K = smallest k with ||f(x_k)||_2 < 1e-10 (number of updates; g is evaluated K+1 times)."""

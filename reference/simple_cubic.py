@@ -1,4 +1,4 @@
-"""Group 5: simple-cubic tight binding eps(k) = -2t(cos kx + cos ky + cos kz), t=1.
+"""simple-cubic tight binding eps(k) = -2t(cos kx + cos ky + cos kz), t=1.
 DOS at the band centre by two independent integrals (mpmath), k-grid sum rules (numpy)."""
 import mpmath as mp
 import numpy as np

@@ -426,7 +426,10 @@ stop:
         })
     };
     while !(ws.join("rondo.db").is_file() && running(&ws) == 2) {
-        assert!(t0.elapsed() < Duration::from_secs(60), "attempts did not start");
+        assert!(
+            t0.elapsed() < Duration::from_secs(60),
+            "attempts did not start"
+        );
         std::thread::sleep(Duration::from_millis(100));
     }
     // SAFETY: signalling our own child process.
@@ -448,7 +451,10 @@ stop:
     });
     // two were running and were ended and recorded; the third was never started
     assert_eq!(states, ["cancelled", "cancelled"]);
-    assert!(processes_of_workspace(&ws_id).is_empty(), "children left behind");
+    assert!(
+        processes_of_workspace(&ws_id).is_empty(),
+        "children left behind"
+    );
     let events: Vec<String> = query(&ws, |pool| {
         Box::pin(async move {
             sqlx::query_scalar("SELECT kind FROM events ORDER BY seq")

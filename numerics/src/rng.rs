@@ -1,7 +1,7 @@
 //! A portable, seedable random generator: SplitMix64 with Box–Muller normals.
 //!
-//! Bit for bit the generator that check-values group 8 specifies, so tests can match
-//! reference data exactly and a resumed Monte Carlo run reproduces an uninterrupted one.
+//! Bit for bit the published SplitMix64 (Steele, Lea & Flood 2014) with the textbook
+//! Box–Muller transform (Box & Muller 1958), so tests can match reference data exactly and a resumed Monte Carlo run reproduces an uninterrupted one.
 //! Seeds for stage attempts are derived from stable names with [`derive_seed`].
 
 /// SplitMix64 state (Steele, Lea & Flood, OOPSLA 2014). All arithmetic wraps mod 2⁶⁴.
@@ -14,7 +14,10 @@ pub struct SplitMix64 {
 impl SplitMix64 {
     /// A generator whose state starts at `seed`.
     pub fn new(seed: u64) -> Self {
-        Self { state: seed, spare_normal: None }
+        Self {
+            state: seed,
+            spare_normal: None,
+        }
     }
 
     /// The raw state, for checkpointing; restore with [`SplitMix64::from_state`].
@@ -24,7 +27,10 @@ impl SplitMix64 {
 
     /// Restore a generator from [`SplitMix64::state`].
     pub fn from_state(state: u64, spare: Option<f64>) -> Self {
-        Self { state, spare_normal: spare.map(f64::to_bits) }
+        Self {
+            state,
+            spare_normal: spare.map(f64::to_bits),
+        }
     }
 
     /// Next 64-bit output.
@@ -88,12 +94,11 @@ mod tests {
 
     #[test]
     fn splitmix_reference_outputs() {
-        // check-values group 8: seed 0 gives the published reference outputs
-        // (the reference sequence itself is quoted there from memory).
+        // Seed 0 gives the published SplitMix64 reference outputs (quoted from memory).
         let mut g = SplitMix64::new(0);
         assert_eq!(g.next_u64(), 0xe220_a839_7b1d_cdaf);
         assert_eq!(g.next_u64(), 0x6e78_9e6a_a1b9_65f4);
-        // check-values group 8, seed 1 (computed there).
+        // Seed 1, computed by reference/binning.py's portable generator.
         let mut g = SplitMix64::new(1);
         assert_eq!(g.next_u64(), 0x910a_2dec_8902_5cc1);
         assert_eq!(g.next_u64(), 0xbeeb_8da1_658e_ec67);
@@ -101,7 +106,7 @@ mod tests {
 
     #[test]
     fn box_muller_reference_normals() {
-        // check-values group 8, seed 1: first four normals.
+        // Seed 1: first four Box–Muller normals, from reference/binning.py.
         let expected = [
             -0.028_249_746_095_854_695,
             -1.065_617_648_414_326,

@@ -232,7 +232,7 @@ pub fn filter(
     let g: Vec<f64> = (0..n).map(|i| data[i * cols + 1]).collect();
     let sigma: Option<Vec<f64>> = (cols == 3).then(|| (0..n).map(|i| data[i * cols + 2]).collect());
     let beta = tau[n - 1];
-    if !(beta > 0.0) || tau[0].abs() > 1e-12 * beta {
+    if beta.partial_cmp(&0.0) != Some(std::cmp::Ordering::Greater) || tau[0].abs() > 1e-12 * beta {
         return Err(format!("{shown}: the τ grid must run from 0 to β > 0"));
     }
     let h = beta / (n - 1) as f64;

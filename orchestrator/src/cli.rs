@@ -288,10 +288,12 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                 absolute(workspace.unwrap_or_else(|| engine::default_workspace(&file)))?;
             let executor = match executor {
                 ExecutorArg::Local => ExecutorChoice::Local,
-                ExecutorArg::Slurm => ExecutorChoice::Slurm(rondo_adapters::slurm::SlurmConfig {
-                    poll_interval: Duration::from_secs(poll_interval.max(1)),
-                    ..Default::default()
-                }),
+                ExecutorArg::Slurm => {
+                    ExecutorChoice::Slurm(Box::new(rondo_adapters::slurm::SlurmConfig {
+                        poll_interval: Duration::from_secs(poll_interval.max(1)),
+                        ..Default::default()
+                    }))
+                }
             };
             let jobs = jobs.unwrap_or(match executor {
                 ExecutorChoice::Local => std::thread::available_parallelism()

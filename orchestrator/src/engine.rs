@@ -48,7 +48,7 @@ pub enum ExecutorChoice {
     /// Local child processes.
     Local,
     /// Slurm batch jobs.
-    Slurm(SlurmConfig),
+    Slurm(Box<SlurmConfig>),
 }
 
 impl ExecutorChoice {
@@ -420,7 +420,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
             LocalExecutor::new(opts.jobs, ws.workspace_id.clone(), tx).with_grace(opts.grace),
         ),
         ExecutorChoice::Slurm(cfg) => {
-            let mut cfg = cfg.clone();
+            let mut cfg = (**cfg).clone();
             cfg.max_jobs = cfg.max_jobs.min(opts.jobs.max(1));
             Arc::new(SlurmExecutor::new(cfg, ws.workspace_id.clone(), tx))
         }
@@ -1934,7 +1934,7 @@ impl Engine<'_> {
         // Completions of the ended attempts (local: Cancelled by rondo).
         let deadline =
             tokio::time::Instant::now() + Duration::from_secs(if batch { 2 } else { 30 });
-        while !self.inflight.is_empty() && !(batch && !cancelled) {
+        while !self.inflight.is_empty() && (!batch || cancelled) {
             match tokio::time::timeout_at(deadline, rx.recv()).await {
                 Ok(Some(c)) => {
                     let id = c.attempt_id;

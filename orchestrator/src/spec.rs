@@ -868,9 +868,7 @@ impl Validator<'_> {
                 );
                 continue;
             };
-            if !(sc.factor.is_finite() && sc.factor > 0.0)
-                || !(start.is_finite() && max.is_finite())
-            {
+            if !(sc.factor.is_finite() && sc.factor > 0.0 && start.is_finite() && max.is_finite()) {
                 self.push(
                     at,
                     format!("schedule `{}`: factor must be a positive number", k.value),
