@@ -435,13 +435,15 @@ struct Attempt {
     handle: Option<String>,
     workdir: PathBuf,
     failure_kind: Option<String>,
+    failure_message: Option<String>,
 }
 
 fn attempts(ws: &Path, filter: &'static str) -> Vec<Attempt> {
     query(ws, move |pool| {
         Box::pin(async move {
             sqlx::query(&format!(
-                "SELECT id, point, iteration, stage, state, executor, handle_id, workdir, failure_kind \
+                "SELECT id, point, iteration, stage, state, executor, handle_id, workdir, failure_kind, \
+                 failure_message \
                  FROM attempts {filter} ORDER BY id"
             ))
             .fetch_all(pool)
@@ -458,6 +460,7 @@ fn attempts(ws: &Path, filter: &'static str) -> Vec<Attempt> {
                 handle: r.get(6),
                 workdir: PathBuf::from(r.get::<String, _>(7)),
                 failure_kind: r.get(8),
+                failure_message: r.get(9),
             })
             .collect()
         })
@@ -478,6 +481,35 @@ fn events(ws: &Path, kind: &'static str) -> Vec<(Option<i64>, String)> {
             .into_iter()
             .map(|r| (r.get(0), r.get(1)))
             .collect()
+        })
+    })
+}
+
+/// The model engine behind a shell wrapper that first sleeps two minutes (not for
+/// `--version`), so that its jobs are surely running when a test acts on them.
+fn slow_engine(dir: &Path) -> PathBuf {
+    let slow = dir.join("slow-engine");
+    std::fs::write(
+        &slow,
+        format!(
+            "#!/bin/sh\ncase \"$1\" in --version) ;; *) sleep 120 ;; esac\nexec '{}' \"$@\"\n",
+            model_solid().display()
+        ),
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(&slow, std::fs::Permissions::from_mode(0o755))
+        .unwrap_or_else(|e| panic!("{e}"));
+    slow
+}
+
+fn workspace_id(ws: &Path) -> String {
+    query(ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar("SELECT workspace_id FROM campaign")
+                .fetch_one(pool)
+                .await
+                .unwrap_or_else(|e| panic!("{e}"))
         })
     })
 }
@@ -857,20 +889,7 @@ fn cancel_scancels_every_outstanding_job() {
     let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
     let dir = d.path();
     // The engine, slowed down so that a job is surely running when the cancel comes.
-    let slow = dir.join("slow-engine");
-    std::fs::write(
-        &slow,
-        format!(
-            "#!/bin/sh\ncase \"$1\" in --version) ;; *) sleep 120 ;; esac\nexec '{}' \"$@\"\n",
-            model_solid().display()
-        ),
-    )
-    .unwrap_or_else(|e| panic!("{e}"));
-    {
-        use std::os::unix::fs::PermissionsExt;
-        std::fs::set_permissions(&slow, std::fs::Permissions::from_mode(0o755))
-            .unwrap_or_else(|e| panic!("{e}"));
-    }
+    let slow = slow_engine(dir);
     campaign_in(dir, Some(&slow));
     let ws = dir.join(WS);
     let blockers = Blockers::submit(3);
@@ -917,6 +936,12 @@ fn cancel_scancels_every_outstanding_job() {
             .unwrap_or_else(|| panic!("no attempt for job {j:?}"));
         assert_eq!(a.state, "cancelled", "{a:?}");
         assert_eq!(a.failure_kind.as_deref(), Some("cancelled"), "{a:?}");
+        assert!(
+            a.failure_message
+                .as_deref()
+                .is_some_and(|m| m.contains("rondo cancel")),
+            "why is recorded: {a:?}"
+        );
         assert_eq!(a.stage, "band", "{a:?}");
         assert_eq!(j.name, job_name(a), "the job is named after its attempt");
         assert!(
@@ -935,18 +960,87 @@ fn cancel_scancels_every_outstanding_job() {
     }
     assert!(!events(&ws, "cancel").is_empty(), "the cancel is recorded");
     // the sleeping program of the running job is gone too
-    let ws_id: String = query(&ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar("SELECT workspace_id FROM campaign")
-                .fetch_one(pool)
-                .await
-                .unwrap_or_default()
-        })
-    });
+    let ws_id = workspace_id(&ws);
     wait_for(
         "the cancelled job's processes to end",
         Duration::from_secs(30),
         || processes_of_workspace(&ws_id).is_empty().then_some(()),
     );
     eprintln!("cancel test took {:.1} s", t0.elapsed().as_secs_f64());
+}
+
+#[test]
+fn cancel_without_a_running_orchestrator_scancels_the_recorded_jobs() {
+    let _serial = serial();
+    if !slurm_or_skip("cancel_without_a_running_orchestrator_scancels_the_recorded_jobs") {
+        return;
+    }
+    let t0 = Instant::now();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    let slow = slow_engine(dir);
+    campaign_in(dir, Some(&slow));
+    let ws = dir.join(WS);
+    let mut run = Background::run(dir, "run.log");
+    let before = wait_for(
+        "both points' first jobs running",
+        Duration::from_secs(60),
+        || {
+            run.still_running(dir, "run.log");
+            let jobs = jobs_under(&ws);
+            (jobs.iter().filter(|j| j.state == "RUNNING").count() == 2).then_some(jobs)
+        },
+    );
+    run.sigkill();
+    // rondo is gone; its jobs run on until `rondo cancel` finds them in the store.
+    assert!(jobs_under(&ws).iter().all(Job::active));
+    let o = run_rondo(dir, &["cancel", FILE]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("cancelled 2 outstanding attempt(s)"),
+        "{}",
+        shown(&o)
+    );
+    let after = wait_for("the cancelled jobs to end", Duration::from_secs(30), || {
+        let jobs = jobs_under(&ws);
+        (!jobs.iter().any(Job::active)).then_some(jobs)
+    });
+    for j in &before {
+        let now = after
+            .iter()
+            .find(|a| a.id == j.id)
+            .unwrap_or_else(|| panic!("{j:?} forgotten by Slurm already"));
+        assert_eq!(now.state, "CANCELLED", "{j:?} -> {now:?}");
+    }
+    let all = attempts(&ws, "");
+    assert_eq!(all.len(), 2, "{all:?}");
+    for a in &all {
+        assert_eq!(a.state, "cancelled", "{a:?}");
+        assert!(
+            before
+                .iter()
+                .any(|j| a.handle.as_deref() == Some(j.id.as_str())),
+            "{a:?}"
+        );
+    }
+    let s = status_json(dir, &ws);
+    for p in s["points"].as_array().cloned().unwrap_or_default() {
+        assert_eq!(p["state"], "cancelled", "{p}");
+    }
+    assert!(
+        events(&ws, "cancel")
+            .iter()
+            .any(|(_, d)| d.contains("2 outstanding attempt(s) cancelled")),
+        "the cancel is recorded"
+    );
+    let ws_id = workspace_id(&ws);
+    wait_for(
+        "the cancelled jobs' processes to end",
+        Duration::from_secs(30),
+        || processes_of_workspace(&ws_id).is_empty().then_some(()),
+    );
+    eprintln!(
+        "cancel without orchestrator took {:.1} s",
+        t0.elapsed().as_secs_f64()
+    );
 }
