@@ -1051,7 +1051,6 @@ fn cancel_without_a_running_orchestrator_scancels_the_recorded_jobs() {
 /// with a SIGKILL on purpose, so the test puts the store into that state itself. The rerun
 /// must find the job by its comment and adopt it instead of submitting the stage again.
 #[test]
-#[ignore = "reconcile does not yet look for a job without a recorded id; it submits a second one"]
 fn killed_between_sbatch_and_recording_the_job_id_adopts_the_job() {
     let _serial = serial();
     if !slurm_or_skip("killed_between_sbatch_and_recording_the_job_id_adopts_the_job") {

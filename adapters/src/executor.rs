@@ -174,6 +174,9 @@ pub struct Completion {
 pub enum Reattached {
     /// Still queued or running; its [`Completion`] will arrive on the channel later.
     Active,
+    /// Still queued or running under this handle, which the store did not know (the
+    /// orchestrator died between submitting and recording it): record it, then as `Active`.
+    Found(Handle),
     /// It ended while nobody watched; here is how.
     Finished(Completion),
     /// It is gone without a trace (or was ended by the reattach, e.g. a local orphan):

@@ -333,6 +333,22 @@ impl BatchSystem for Slurm {
         Ok(id)
     }
 
+    async fn find_attempt(&self, attempt_id: i64) -> Result<Option<String>, ExecError> {
+        let tag = format!("rondo:{}:{}", self.workspace_id, attempt_id);
+        let args: Vec<String> = ["-h", "-t", "all", "-o", "%i %k"]
+            .iter()
+            .map(|s| s.to_string())
+            .collect();
+        let out = run_capture(&self.config.squeue, &args, self.config.client_timeout)
+            .await
+            .map_err(|m| unavailable_or_invalid("squeue", m))?;
+        Ok(out.lines().find_map(|l| {
+            let mut it = l.split_whitespace();
+            let id = it.next()?;
+            (it.next()? == tag).then(|| id.to_string())
+        }))
+    }
+
     async fn query(&self, ids: &[String]) -> Result<HashMap<String, JobState>, ExecError> {
         let args = vec![
             "-h".to_string(),

@@ -815,6 +815,28 @@ impl Engine<'_> {
                 workdir,
             };
             match answer {
+                Reattached::Found(h) => {
+                    sqlx::query("UPDATE attempts SET state = 'submitted', handle_id = ?, host = ? WHERE id = ?")
+                        .bind(&h.id)
+                        .bind(&h.host)
+                        .bind(id)
+                        .execute(&self.pool)
+                        .await?;
+                    store::event(
+                        &self.pool,
+                        "attempt-adopted",
+                        Some(&point_id),
+                        Some(iteration),
+                        Some(id),
+                        &format!(
+                            "job {} found by its tag; its id had not been recorded",
+                            h.id
+                        ),
+                    )
+                    .await?;
+                    self.points[p].outstanding = Some(id);
+                    self.inflight.insert(id, fl);
+                }
                 Reattached::Active => {
                     store::event(
                         &self.pool,

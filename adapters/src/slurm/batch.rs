@@ -72,6 +72,12 @@ pub trait BatchSystem: Send + Sync + 'static {
     /// Last resort for a job absent from the queue and without an exit marker: a record of
     /// finished jobs, if the site keeps one. `None` when nothing is known.
     async fn lookup_finished(&self, id: &str) -> Option<EndKind>;
+    /// The job of this attempt, found by the tag every job carries, for an attempt whose
+    /// job id was never recorded (rondo died between submitting and recording). `Ok(None)`
+    /// when no such job is known.
+    async fn find_attempt(&self, _attempt_id: i64) -> Result<Option<String>, ExecError> {
+        Ok(None)
+    }
 }
 
 /// Polling and submission settings common to the batch executors.
@@ -465,14 +471,30 @@ impl<B: BatchSystem> BatchCore<B> {
             )));
         }
         if handle.id.trim().is_empty() {
-            // Killed between submission and recording the job id: nothing to ask about.
-            return Ok(if read_exit(workdir).is_some() {
-                Reattached::Finished(completion(attempt_id, workdir, None, false))
-            } else {
-                Reattached::Gone {
-                    reason: "no job id was recorded for it".into(),
+            // Killed between submission and recording the job id: the job may exist all the
+            // same. Its marker tells if it ended; else ask the scheduler for the job tagged
+            // with this attempt, so it is adopted instead of submitted a second time.
+            if read_exit(workdir).is_some() {
+                return Ok(Reattached::Finished(completion(
+                    attempt_id, workdir, None, false,
+                )));
+            }
+            return match self.shared.system.find_attempt(attempt_id).await? {
+                Some(id) => {
+                    let found = Handle {
+                        id,
+                        ..handle.clone()
+                    };
+                    match Box::pin(self.reattach(attempt_id, &found, workdir)).await? {
+                        Reattached::Active => Ok(Reattached::Found(found)),
+                        other => Ok(other),
+                    }
                 }
-            });
+                None => Ok(Reattached::Gone {
+                    reason: "no job id was recorded for it and the scheduler knows no job of it"
+                        .into(),
+                }),
+            };
         }
         // The controller may be restarting just when rondo is: retry like a submission.
         let mut delay = self
