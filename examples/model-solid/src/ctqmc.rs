@@ -739,43 +739,24 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     })
 }
 
-/// Name of the metric that carries the standard error of `name`, for statistical metrics.
-fn error_key(name: &str) -> Option<&'static str> {
-    Some(match name {
-        "n_f" => "n_f_err",
-        "n_up" => "n_up_err",
-        "n_dn" => "n_dn_err",
-        "docc" => "docc_err",
-        "p0" => "p0_err",
-        "p1" => "p1_err",
-        "p2" => "p2_err",
-        "order_up" => "order_up_err",
-        "order_dn" => "order_dn_err",
-        "sigma_inf" => "sigma_inf_err",
-        "sigma_iw0_re" => "sigma_iw0_re_err",
-        "sigma_iw0_im" => "sigma_iw0_im_err",
-        _ => return None,
-    })
-}
-
-/// The solve-stage entry point: default parameters with the sweeps of the input, and the
-/// metrics flattened to numbers (each statistical metric `x` also as `x_err`).
+/// The solve-stage entry point: default parameters with the sweeps of the input; the
+/// metrics keep their standard errors, and G_l and G(τ) are passed on for optional output.
 pub fn run(input: &SolverInput<'_>) -> Result<crate::solve::SolverOutput> {
     let mut params = CtqmcParams::default();
     if let Some(s) = input.sweeps {
         params.sweeps = s;
     }
     let r = solve(input, &params)?;
-    let mut metrics = BTreeMap::new();
-    for (name, (value, err)) in &r.metrics {
-        metrics.insert(*name, *value);
-        if let (Some(e), Some(k)) = (err, error_key(name)) {
-            metrics.insert(k, *e);
-        }
-    }
     Ok(crate::solve::SolverOutput {
         g: r.g_iw,
         sigma: r.sigma,
-        metrics,
+        metrics: r.metrics,
+        imaginary_time: Some(crate::solve::ImaginaryTime {
+            gl: r.gl,
+            gl_err: r.gl_err,
+            tau: r.tau,
+            g_tau: r.g_tau,
+            g_tau_err: r.g_tau_err,
+        }),
     })
 }

@@ -175,17 +175,38 @@ pub fn write_json<T: Serialize>(path: &Path, value: &T) -> Result<()> {
     Ok(())
 }
 
-/// Write `metrics.json`: a flat object name → number; refuses non-finite values.
-pub fn write_metrics(path: &Path, metrics: &BTreeMap<&'static str, f64>) -> Result<()> {
-    for (k, v) in metrics {
+/// Write `metrics.json`: a flat object name → number, or name → `{"value": x, "error": e}`
+/// for a metric that carries a standard error; refuses non-finite values and negative errors.
+pub fn write_metrics(
+    path: &Path,
+    metrics: &BTreeMap<&'static str, crate::solve::Metric>,
+) -> Result<()> {
+    let mut out = serde_json::Map::new();
+    for (k, (v, e)) in metrics {
         if !v.is_finite() {
             bail!(
                 "metric '{k}' is not finite ({v}); refusing to write {}",
                 path.display()
             );
         }
+        let entry = match e {
+            None => serde_json::json!(v),
+            Some(e) if e.is_finite() && *e >= 0.0 => serde_json::json!({"value": v, "error": e}),
+            Some(e) => bail!(
+                "metric '{k}' has an invalid error bar ({e}); refusing to write {}",
+                path.display()
+            ),
+        };
+        out.insert((*k).to_string(), entry);
     }
-    write_json(path, metrics)
+    write_json(path, &serde_json::Value::Object(out))
+}
+
+/// Metrics without error bars, in the form `write_metrics` takes.
+pub fn exact_metrics(
+    metrics: BTreeMap<&'static str, f64>,
+) -> BTreeMap<&'static str, crate::solve::Metric> {
+    metrics.into_iter().map(|(k, v)| (k, (v, None))).collect()
 }
 
 /// β in 1/eV from a temperature in kelvin, rejecting non-positive or non-finite values.

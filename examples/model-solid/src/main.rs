@@ -3,7 +3,8 @@
 //!
 //! Every subcommand reads its input files, computes everything in memory, then writes its
 //! outputs (each through a temporary file and a rename) and finally `metrics.json`: a flat
-//! JSON object of numbers. Any bad input ends the program with a message of the form
+//! JSON object whose values are numbers, or `{"value": x, "error": e}` for the statistical
+//! estimates of a Monte Carlo solver. Any bad input ends the program with a message of the form
 //! `file: what is wrong` and a non-zero exit status, before any output is written.
 
 use anyhow::{bail, Context, Result};
@@ -23,7 +24,8 @@ use model_solid::{band, project, update};
 #[derive(Debug, Parser)]
 #[command(name = "model-solid")]
 struct Cli {
-    /// Where to write the metrics of the stage (a flat JSON object of numbers).
+    /// Where to write the metrics of the stage (a flat JSON object of numbers and
+    /// {"value", "error"} objects).
     #[arg(
         long,
         global = true,
@@ -111,6 +113,14 @@ enum Command {
         /// Also write the impurity G(iω_n) (.npy, complex128).
         #[arg(long)]
         out_g: Option<PathBuf>,
+        /// Also write the Legendre coefficients G_l (.npy, float64, shape (n_l, 2): value,
+        /// standard error; ctqmc only).
+        #[arg(long)]
+        out_gl: Option<PathBuf>,
+        /// Also write the binned G(τ) (.npy, float64, shape (n_τ, 3): bin centre τ, value,
+        /// standard error; ctqmc only).
+        #[arg(long)]
+        out_gtau: Option<PathBuf>,
     },
     /// Density update: μ at fixed electron count, occupations, f-level feedback, energy.
     Update {
@@ -192,7 +202,7 @@ fn run(cli: Cli) -> Result<()> {
             let d = io::read_density(&density)?;
             let res = band::band(&DEMO, volume, usize::from(kmesh), &d, full_mesh);
             io::write_hk(&out, &res.mesh)?;
-            res.metrics
+            io::exact_metrics(res.metrics)
         }
         Command::Project {
             hk,
@@ -234,7 +244,7 @@ fn run(cli: Cli) -> Result<()> {
             let mut m = res.metrics;
             m.insert("mu", d.mu);
             m.insert("n_w", sig.len() as f64);
-            m
+            io::exact_metrics(m)
         }
         Command::Solve {
             delta,
@@ -245,7 +255,12 @@ fn run(cli: Cli) -> Result<()> {
             sweeps,
             out_sigma,
             out_g,
+            out_gl,
+            out_gtau,
         } => {
+            if (out_gl.is_some() || out_gtau.is_some()) && solver != SolverKind::Ctqmc {
+                bail!("--out-gl and --out-gtau need a Monte Carlo solver (--solver ctqmc)");
+            }
             if !u.is_finite() || u < 0.0 {
                 bail!("--u must be a finite non-negative number of eV, got {u}");
             }
@@ -266,6 +281,27 @@ fn run(cli: Cli) -> Result<()> {
             if let Some(g) = &out_g {
                 check_finite(g, &res.g)?;
                 io::write_matsubara(g, &res.g)?;
+            }
+            if let Some(it) = &res.imaginary_time {
+                if let Some(p) = &out_gl {
+                    let flat: Vec<f64> = it
+                        .gl
+                        .iter()
+                        .zip(&it.gl_err)
+                        .flat_map(|(v, e)| [*v, *e])
+                        .collect();
+                    write_table(p, 2, &flat)?;
+                }
+                if let Some(p) = &out_gtau {
+                    let flat: Vec<f64> = it
+                        .tau
+                        .iter()
+                        .zip(&it.g_tau)
+                        .zip(&it.g_tau_err)
+                        .flat_map(|((t, v), e)| [*t, *v, *e])
+                        .collect();
+                    write_table(p, 3, &flat)?;
+                }
             }
             res.metrics
         }
@@ -299,7 +335,7 @@ fn run(cli: Cli) -> Result<()> {
                     )
                 })?;
             io::write_json(&out, &res.density)?;
-            res.metrics
+            io::exact_metrics(res.metrics)
         }
         Command::Init {
             nw,
@@ -324,7 +360,7 @@ fn run(cli: Cli) -> Result<()> {
             m.insert("n_f", density.n_f);
             m.insert("n_c", density.n_c);
             m.insert("n_w", f64::from(nw));
-            m
+            io::exact_metrics(m)
         }
     };
     io::write_metrics(&cli.metrics, &metrics)
@@ -344,6 +380,20 @@ fn electrons_arg(x: f64) -> Result<()> {
     } else {
         bail!("--electrons: the electron count must lie in (0, 4) per site, got {x}")
     }
+}
+
+/// Write a float64 table of `cols` columns (atomically), refusing non-finite values.
+fn write_table(path: &Path, cols: usize, flat: &[f64]) -> Result<()> {
+    if let Some(i) = flat.iter().position(|x| !x.is_finite()) {
+        bail!(
+            "{}: refusing to write: row {} is not finite",
+            path.display(),
+            i / cols
+        );
+    }
+    rondo_numerics::npy::write_real(path, &[flat.len() / cols, cols], flat)
+        .with_context(|| format!("{}: cannot write the table", path.display()))?;
+    Ok(())
 }
 
 /// Refuse to write a non-finite array (a solver that produced NaN is a failed stage).

@@ -52,6 +52,24 @@ pub struct SolverInput<'a> {
     pub sweeps: Option<u64>,
 }
 
+/// A metric: its value and, for statistical estimates, its standard error.
+pub type Metric = (f64, Option<f64>);
+
+/// Imaginary-time data of a stochastic solver, for reports and diagnostics.
+#[derive(Debug, Clone)]
+pub struct ImaginaryTime {
+    /// Legendre coefficients G_l (spin averaged).
+    pub gl: Vec<f64>,
+    /// Standard errors of `gl`.
+    pub gl_err: Vec<f64>,
+    /// τ of the histogram bins (bin centres).
+    pub tau: Vec<f64>,
+    /// G(τ) bin averages.
+    pub g_tau: Vec<f64>,
+    /// Standard errors of `g_tau`.
+    pub g_tau_err: Vec<f64>,
+}
+
 /// What every solver returns.
 #[derive(Debug, Clone)]
 pub struct SolverOutput {
@@ -59,8 +77,11 @@ pub struct SolverOutput {
     pub g: Vec<Complex64>,
     /// Self-energy Σ(iω_n).
     pub sigma: Vec<Complex64>,
-    /// Metrics (n_f, docc, p0, p1, p2, ...).
-    pub metrics: BTreeMap<&'static str, f64>,
+    /// Metrics (n_f, docc, p0, p1, p2, ...): value and standard error (`None` for exact or
+    /// deterministic quantities).
+    pub metrics: BTreeMap<&'static str, Metric>,
+    /// G_l and G(τ) with errors (stochastic solvers only).
+    pub imaginary_time: Option<ImaginaryTime>,
 }
 
 /// The one dispatch point: further solvers add a variant and an arm here.
@@ -127,16 +148,26 @@ pub fn hubbard_i(input: &SolverInput<'_>) -> SolverOutput {
         sigma.push(iw - e - ga.inv());
         g.push(ga);
     }
-    let mut metrics = BTreeMap::new();
-    metrics.insert("n_f", 2.0 * at.n_sigma);
-    metrics.insert("docc", at.docc);
-    metrics.insert("p0", at.p[0]);
-    metrics.insert("p1", at.p[1]);
-    metrics.insert("p2", at.p[2]);
-    metrics.insert("energy_atomic", at.energy);
-    metrics.insert("level", e);
-    metrics.insert("sigma_inf", sigma.last().map(|s| s.re).unwrap_or(0.0));
-    SolverOutput { g, sigma, metrics }
+    let sigma_inf = sigma.last().map(|s| s.re).unwrap_or(0.0);
+    let metrics = [
+        ("n_f", 2.0 * at.n_sigma),
+        ("docc", at.docc),
+        ("p0", at.p[0]),
+        ("p1", at.p[1]),
+        ("p2", at.p[2]),
+        ("energy_atomic", at.energy),
+        ("level", e),
+        ("sigma_inf", sigma_inf),
+    ]
+    .into_iter()
+    .map(|(k, v)| (k, (v, None)))
+    .collect();
+    SolverOutput {
+        g,
+        sigma,
+        metrics,
+        imaginary_time: None,
+    }
 }
 
 #[cfg(test)]
@@ -166,11 +197,11 @@ mod tests {
         // β = 20, U = 4, ε = −2
         let out = run(-2.0, 4.0, 20.0, 8);
         let m = &out.metrics;
-        assert!((m["p0"] - 2.124_177_127_645_794_5e-18).abs() < 1e-28);
-        assert!((m["p2"] - 2.124_177_127_645_794_5e-18).abs() < 1e-28);
-        assert!((m["p1"] - 1.0).abs() < 1e-15);
-        assert!((m["n_f"] - 1.0).abs() < 1e-15);
-        assert!((m["energy_atomic"] + 2.0).abs() < 1e-10);
+        assert!((m["p0"].0 - 2.124_177_127_645_794_5e-18).abs() < 1e-28);
+        assert!((m["p2"].0 - 2.124_177_127_645_794_5e-18).abs() < 1e-28);
+        assert!((m["p1"].0 - 1.0).abs() < 1e-15);
+        assert!((m["n_f"].0 - 1.0).abs() < 1e-15);
+        assert!((m["energy_atomic"].0 + 2.0).abs() < 1e-10);
         assert!((out.g[0] - Complex64::new(0.0, -0.039_029_156_709_354_01)).norm() < 1e-15);
         assert!((out.g[1] - Complex64::new(0.0, -0.111_613_339_769_206_03)).norm() < 1e-15);
         assert!((out.g[5] - Complex64::new(0.0, -0.247_349_835_126_927_13)).norm() < 1e-15);
@@ -181,12 +212,12 @@ mod tests {
         // β = 10, U = 3, ε = −0.5
         let out = run(-0.5, 3.0, 10.0, 8);
         let m = &out.metrics;
-        assert!((m["p0"] - 0.003_357_661_626_479_377_5).abs() < 1e-12);
-        assert!((m["p1"] - 0.996_642_338_366_6).abs() < 1e-12);
-        assert!((m["p2"] - 6.920_656_424_340_909e-12).abs() < 1e-20);
-        assert!((m["docc"] - 6.920_656_424_340_909e-12).abs() < 1e-20);
-        assert!((m["n_f"] - 0.996_642_338_380_441_3).abs() < 1e-12);
-        assert!((m["energy_atomic"] + 0.498_321_169_169_458_7).abs() < 1e-10);
+        assert!((m["p0"].0 - 0.003_357_661_626_479_377_5).abs() < 1e-12);
+        assert!((m["p1"].0 - 0.996_642_338_366_6).abs() < 1e-12);
+        assert!((m["p2"].0 - 6.920_656_424_340_909e-12).abs() < 1e-20);
+        assert!((m["docc"].0 - 6.920_656_424_340_909e-12).abs() < 1e-20);
+        assert!((m["n_f"].0 - 0.996_642_338_380_441_3).abs() < 1e-12);
+        assert!((m["energy_atomic"].0 + 0.498_321_169_169_458_7).abs() < 1e-10);
         assert!(
             (out.g[0] - Complex64::new(0.523_134_366_701_935_2, -0.476_648_748_891_871_6)).norm()
                 < 1e-10
@@ -212,9 +243,9 @@ mod tests {
         // P(1) = 1/2 (fact of the trade); Σ vanishes.
         for beta in [1.0, 10.0, 100.0] {
             let out = run(0.0, 0.0, beta, 16);
-            assert!((out.metrics["p0"] - 0.25).abs() < 1e-15);
-            assert!((out.metrics["p1"] - 0.5).abs() < 1e-15);
-            assert!((out.metrics["p2"] - 0.25).abs() < 1e-15);
+            assert!((out.metrics["p0"].0 - 0.25).abs() < 1e-15);
+            assert!((out.metrics["p1"].0 - 0.5).abs() < 1e-15);
+            assert!((out.metrics["p2"].0 - 0.25).abs() < 1e-15);
             assert!(out.sigma.iter().all(|s| s.norm() < 1e-12)); // roundoff of iω − 1/G
         }
     }
@@ -222,7 +253,7 @@ mod tests {
     #[test]
     fn extreme_levels_do_not_overflow() {
         let out = run(-50.0, 4.0, 1000.0, 4);
-        assert!((out.metrics["p2"] - 1.0).abs() < 1e-15);
+        assert!((out.metrics["p2"].0 - 1.0).abs() < 1e-15);
         assert!(out
             .sigma
             .iter()

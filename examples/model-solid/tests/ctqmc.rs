@@ -413,10 +413,14 @@ fn solve_stage_dispatch_runs_ctqmc() {
     inp.sweeps = Some(2_000);
     let out = run_solver(kind, &inp).unwrap();
     assert_eq!(out.sigma.len(), 128);
-    assert_eq!(out.metrics["sweeps"], 2_000.0);
-    assert!(out.metrics["docc_err"] > 0.0 && out.metrics["n_f_err"] > 0.0);
+    assert_eq!(out.metrics["sweeps"], (2_000.0, None));
+    let (n_f, n_f_err) = out.metrics["n_f"];
+    let n_f_err = n_f_err.expect("n_f carries an error bar");
+    assert!(out.metrics["docc"].1.is_some_and(|e| e > 0.0) && n_f_err > 0.0);
     // Half filling of a particle-hole symmetric problem (reference/ed_bath.py: n_σ = 1/2).
-    assert!((out.metrics["n_f"] - 1.0).abs() < 4.0 * out.metrics["n_f_err"]);
+    assert!((n_f - 1.0).abs() < 4.0 * n_f_err);
+    let it = out.imaginary_time.as_ref().expect("ctqmc passes G_l on");
+    assert_eq!(it.gl.len(), it.gl_err.len());
     assert!(out
         .sigma
         .iter()

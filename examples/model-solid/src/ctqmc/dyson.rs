@@ -97,8 +97,12 @@ pub(crate) fn dyson(inp: &DysonInput<'_>) -> DysonOutput {
     }
     // Crossover: best agreement between the Legendre and the tail self-energy, searched from
     // half the number of kept coefficients to four times it.
-    let lo = (kept / 2).min(n_w.saturating_sub(1));
-    let hi = (4 * kept).clamp(lo + 1, n_w.max(lo + 1));
+    // The crossover stays in the lower half of the grid, so that the upper half (from which
+    // the density update reads the Hartree constant and the 1/(iω) coefficient) is the
+    // noise-free tail.
+    let half = (n_w / 2).max(1);
+    let lo = (kept / 2).min(half - 1);
+    let hi = (4 * kept).clamp(lo + 1, half);
     let mut crossover = n_w;
     let mut best = f64::INFINITY;
     for n in lo..hi.min(n_w) {
