@@ -278,6 +278,7 @@ fn check_report_diff_and_prov(dir: &Path, engine_hash: &str) {
     ] {
         assert!(ws.join("report").join(f).is_file(), "report/{f} missing");
     }
+    screenshot_is_not_blank(dir, &ws.join("report/index.html"));
     let csv = ws.join("report/eos.csv").display().to_string();
     let o = run_rondo(dir, &["trace", "--workspace", &wss, "--json", &csv]);
     assert!(o.status.success(), "{}", shown(&o));
@@ -355,4 +356,68 @@ fn check_report_diff_and_prov(dir: &Path, engine_hash: &str) {
             panic!("prov_check.py refused the export: {err}");
         }
     }
+}
+
+/// Open the demo's report page in headless Chromium (Debian's package) and check that the
+/// screenshot shows something: decoded by orchestrator/tests/fixtures/png_stats.py.
+fn screenshot_is_not_blank(dir: &Path, page: &Path) {
+    let browser = Path::new("/usr/bin/chromium");
+    if !browser.is_file() {
+        assert!(
+            std::env::var("RONDO_REQUIRE_BROWSER").as_deref() != Ok("1"),
+            "RONDO_REQUIRE_BROWSER=1 but /usr/bin/chromium is missing"
+        );
+        eprintln!(
+            "SKIPPED: /usr/bin/chromium is not installed; the demo report was not screenshotted"
+        );
+        return;
+    }
+    let shot = dir.join("report-screenshot.png");
+    let out = std::process::Command::new(browser)
+        .args([
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--disable-quic",
+            "--no-first-run",
+            "--disable-background-networking",
+            "--disable-component-update",
+            "--disable-sync",
+            "--hide-scrollbars",
+            "--window-size=1200,900",
+        ])
+        .arg(format!(
+            "--user-data-dir={}",
+            dir.join("chromium-profile").display()
+        ))
+        .arg(format!("--screenshot={}", shot.display()))
+        .arg(format!("file://{}", page.display()))
+        .output()
+        .unwrap_or_else(|e| panic!("cannot run chromium: {e}"));
+    assert!(
+        shot.is_file(),
+        "no screenshot: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let stats = std::process::Command::new("python3")
+        .arg(repo().join("orchestrator/tests/fixtures/png_stats.py"))
+        .arg(&shot)
+        .output()
+        .unwrap_or_else(|e| panic!("python3: {e}"));
+    let text = String::from_utf8_lossy(&stats.stdout).to_string();
+    let f: Vec<f64> = text
+        .split_whitespace()
+        .filter_map(|x| x.parse().ok())
+        .collect();
+    assert_eq!(
+        f.len(),
+        5,
+        "png_stats: {text} {}",
+        String::from_utf8_lossy(&stats.stderr)
+    );
+    assert_eq!((f[0], f[1]), (1200.0, 900.0), "screenshot size");
+    assert!(
+        f[2] > 0.01 && f[4] > 20.0,
+        "the report page looks blank: {text}"
+    );
 }
