@@ -501,7 +501,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
 impl Engine<'_> {
     async fn main(&mut self, mut rx: mpsc::UnboundedReceiver<Completion>) -> Result<RunSummary> {
         self.restore().await?;
-        self.reconcile(&mut rx).await?;
+        self.reconcile().await?;
         let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
             .context("cannot install the SIGINT handler")?;
         let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
@@ -740,7 +740,7 @@ impl Engine<'_> {
     }
 
     /// Settle attempts an earlier orchestrator left planned, submitted or running.
-    async fn reconcile(&mut self, rx: &mut mpsc::UnboundedReceiver<Completion>) -> Result<()> {
+    async fn reconcile(&mut self) -> Result<()> {
         let rows = sqlx::query(
             "SELECT id, point, iteration, stage, attempt, executor, handle_id, host, workdir FROM attempts \
              WHERE state IN ('planned', 'submitted', 'running') ORDER BY id",
@@ -875,7 +875,6 @@ impl Engine<'_> {
             }
         }
         // Completions that arrived during the reattach calls are processed by the main loop.
-        let _ = rx;
         for (i, p) in self.points.iter().enumerate() {
             if p.phase == PointPhase::Active && p.outstanding.is_none() {
                 self.ready.push_back(i);
@@ -1051,7 +1050,6 @@ impl Engine<'_> {
             inputs.push((role.clone(), hash, PathBuf::from(rel)));
         }
         // The mixer's own history: the state of the previous iteration's attempt.
-        let mut mix_state: Option<String> = None;
         if matches!(stage.kind, StageKind::Mix(_)) && iteration > 1 {
             let src = Source::Previous {
                 stage: stage.name.clone(),
@@ -1068,10 +1066,8 @@ impl Engine<'_> {
                     h.clone(),
                     PathBuf::from("inputs/state.json"),
                 ));
-                mix_state = Some(h);
             }
         }
-        let _ = mix_state;
         let seed = rondo_numerics::rng::derive_seed(
             self.campaign.seed,
             &[
