@@ -237,8 +237,7 @@ pub fn main() -> ExitCode {
         )
         .with_writer(std::io::stderr)
         .try_init();
-    let runtime = match tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
+    let runtime = match tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
     {

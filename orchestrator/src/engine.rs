@@ -346,6 +346,10 @@ enum PointPhase {
     Done,
 }
 
+/// Metric samples per good iteration (and the current one), for the stopping rules and
+/// the schedules.
+type History = BTreeMap<u32, BTreeMap<String, Sample>>;
+
 #[derive(Debug)]
 struct PointRun {
     spec: PointSpec,
@@ -353,6 +357,53 @@ struct PointRun {
     iteration: u32,
     next_stage: usize,
     outstanding: Option<i64>,
+    /// Highest attempt number recorded per stage in the current iteration. This run is the
+    /// workspace's only writer (the lock), so the store need not be asked each time.
+    attempts: Vec<u32>,
+    /// The point's metric history, read from the store once (on first use) and then kept up
+    /// to date as stages succeed; `None` until read.
+    history: Option<History>,
+    /// The first good iteration whose stopping rules were met (start of the final window);
+    /// valid once `history` is read.
+    first_met: Option<u32>,
+}
+
+impl PointRun {
+    fn new(spec: &PointSpec, stages: usize) -> PointRun {
+        PointRun {
+            spec: spec.clone(),
+            phase: PointPhase::Active,
+            iteration: 1,
+            next_stage: 0,
+            outstanding: None,
+            attempts: vec![0; stages],
+            history: None,
+            first_met: None,
+        }
+    }
+}
+
+/// What the stopping rules decided for a point's finished iteration: computed before the
+/// transaction that records it, applied in memory after the commit.
+struct Verdict {
+    iteration: u32,
+    decision: stop::Decision,
+    /// The point stops: its new state and the reason.
+    fate: Option<(&'static str, String)>,
+    /// One-line summary of the rules' changes for the log.
+    summary: String,
+    first_met: Option<u32>,
+}
+
+/// A local attempt's launch not yet written to the store. Recording it costs a transaction
+/// per attempt; most short attempts end before it would matter, and their end is recorded
+/// with everything the launch knew. Longer ones are written at the next tick. A crash before
+/// that leaves the attempt `planned`; resume finds its processes by their environment tag.
+#[derive(Debug, Clone)]
+struct UnrecordedLaunch {
+    handle_id: String,
+    host: String,
+    started_at: String,
 }
 
 /// An attempt in flight.
@@ -403,6 +454,7 @@ struct Engine<'a> {
     rondo_exe: (PathBuf, String),
     progress: Progress,
     parameters: serde_json::Map<String, serde_json::Value>,
+    unrecorded: HashMap<i64, UnrecordedLaunch>,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -446,6 +498,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         rondo_exe: (rondo_exe, rondo_hash),
         progress,
         parameters,
+        unrecorded: HashMap::new(),
     };
     store::event(
         &engine.pool,
@@ -543,6 +596,7 @@ impl Engine<'_> {
                     }
                 } => { interrupted = true; warned = true; break; }
                 _ = tick.tick() => {
+                    self.record_launches().await?;
                     if self.paths.cancel_request.exists() {
                         cancelled = true;
                         break;
@@ -638,18 +692,45 @@ impl Engine<'_> {
 
     /// Rebuild each point's place from the store.
     async fn restore(&mut self) -> Result<()> {
+        // Three reads for all points and one transaction, whatever the number of points: a
+        // sweep of thousands of points resumes in a handful of statements.
+        let states: HashMap<String, String> =
+            sqlx::query_as::<_, (String, String)>("SELECT id, state FROM points")
+                .fetch_all(&self.pool)
+                .await?
+                .into_iter()
+                .collect();
+        // SQLite's bare-column rule: with max(), `state` comes from the row holding the max.
+        let lasts: HashMap<String, (i64, String)> = sqlx::query_as::<_, (String, i64, String)>(
+            "SELECT point, max(iteration), state FROM iterations GROUP BY point",
+        )
+        .fetch_all(&self.pool)
+        .await?
+        .into_iter()
+        .map(|(p, it, st)| (p, (it, st)))
+        .collect();
+        // Per point and stage of its last iteration: attempts so far and whether one succeeded.
+        let mut tried: HashMap<(String, String), (u32, bool)> = HashMap::new();
+        for (point, stage, max_attempt, succeeded) in sqlx::query_as::<_, (String, String, i64, bool)>(
+            "SELECT a.point, a.stage, max(a.attempt), max(a.state = 'succeeded') FROM attempts a \
+             JOIN (SELECT point, max(iteration) AS it FROM iterations GROUP BY point) l \
+             ON l.point = a.point AND a.iteration = l.it GROUP BY a.point, a.stage",
+        )
+        .fetch_all(&self.pool)
+        .await?
+        {
+            tried.insert((point, stage), (max_attempt as u32, succeeded));
+        }
+        let nstages = self.campaign.stages.len();
+        let mut tx = self.pool.begin().await?;
         for spec in &self.campaign.points {
-            let state: String = sqlx::query_scalar("SELECT state FROM points WHERE id = ?")
-                .bind(&spec.id)
-                .fetch_one(&self.pool)
-                .await?;
-            let mut run = PointRun {
-                spec: spec.clone(),
-                phase: PointPhase::Active,
-                iteration: 1,
-                next_stage: 0,
-                outstanding: None,
+            let Some(state) = states.get(&spec.id) else {
+                bail!(
+                    "internal: point {} is not in the workspace database",
+                    spec.id
+                );
             };
+            let mut run = PointRun::new(spec, nstages);
             let resumable = match state.as_str() {
                 "converged" | "capped" => false,
                 "failed" => self.opts.retry_failed,
@@ -660,14 +741,8 @@ impl Engine<'_> {
                 self.points.push(run);
                 continue;
             }
-            let last: Option<(i64, String)> = sqlx::query_as(
-                "SELECT iteration, state FROM iterations WHERE point = ? ORDER BY iteration DESC LIMIT 1",
-            )
-            .bind(&spec.id)
-            .fetch_optional(&self.pool)
-            .await?;
-            let mut tx = self.pool.begin().await?;
-            match last {
+            let mut fresh_iteration = true;
+            match lasts.get(&spec.id) {
                 None => {
                     sqlx::query(
                         "INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,1,'running',?)",
@@ -678,18 +753,11 @@ impl Engine<'_> {
                     .await?;
                 }
                 Some((it, st)) => {
-                    run.iteration = it as u32;
-                    if st == "failed" || st == "cancelled" {
-                        // Only reached with --retry-failed or after a cancel: run it again.
-                        sqlx::query("UPDATE iterations SET state = 'running', ended_at = NULL WHERE point = ? AND iteration = ?")
-                            .bind(&spec.id)
-                            .bind(it)
-                            .execute(&mut *tx)
-                            .await?;
-                    } else if st == "good" {
+                    run.iteration = *it as u32;
+                    if st == "good" {
                         // The decision after a good iteration is committed with it; a good
                         // last iteration of a resumable point means the next one is due.
-                        run.iteration = it as u32 + 1;
+                        run.iteration = *it as u32 + 1;
                         sqlx::query(
                             "INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)",
                         )
@@ -698,8 +766,35 @@ impl Engine<'_> {
                         .bind(store::now())
                         .execute(&mut *tx)
                         .await?;
+                    } else {
+                        fresh_iteration = false;
+                        if st == "failed" || st == "cancelled" {
+                            // Only reached with --retry-failed or after a cancel: run it again.
+                            sqlx::query("UPDATE iterations SET state = 'running', ended_at = NULL WHERE point = ? AND iteration = ?")
+                                .bind(&spec.id)
+                                .bind(it)
+                                .execute(&mut *tx)
+                                .await?;
+                        }
                     }
                 }
+            }
+            if !fresh_iteration {
+                for (k, st) in self.campaign.stages.iter().enumerate() {
+                    if let Some((n, _)) = tried.get(&(spec.id.clone(), st.name.clone())) {
+                        run.attempts[k] = *n;
+                    }
+                }
+                run.next_stage = self
+                    .campaign
+                    .stages
+                    .iter()
+                    .position(|st| {
+                        !tried
+                            .get(&(spec.id.clone(), st.name.clone()))
+                            .is_some_and(|(_, ok)| *ok)
+                    })
+                    .unwrap_or(nstages);
             }
             if state != "planned" && state != "running" {
                 sqlx::query("UPDATE points SET state = 'running', reason = NULL WHERE id = ?")
@@ -716,27 +811,56 @@ impl Engine<'_> {
                 )
                 .await?;
             }
-            tx.commit().await?;
-            run.next_stage = self.first_unfinished_stage(&spec.id, run.iteration).await?;
             self.points.push(run);
         }
+        tx.commit().await?;
         Ok(())
     }
 
-    async fn first_unfinished_stage(&self, point: &str, iteration: u32) -> Result<usize> {
-        let done: Vec<String> = sqlx::query_scalar(
-            "SELECT stage FROM attempts WHERE point = ? AND iteration = ? AND state = 'succeeded'",
+    /// Read a point's metric history from the store unless it is already in memory: the
+    /// metrics of its good iterations and of the current one, and the start of its final
+    /// window. A resumed run reads exactly what an uninterrupted one kept in memory.
+    async fn ensure_history(&mut self, p: usize) -> Result<()> {
+        if self.points[p].history.is_some() {
+            return Ok(());
+        }
+        let point_id = self.points[p].spec.id.clone();
+        let n = self.points[p].iteration;
+        let rows = sqlx::query(
+            "SELECT a.iteration AS it, m.name AS name, m.value AS value, m.error AS error \
+             FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
+             LEFT JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration \
+             WHERE a.point = ? AND a.state = 'succeeded' AND (i.state = 'good' OR a.iteration = ?)",
         )
-        .bind(point)
-        .bind(i64::from(iteration))
+        .bind(&point_id)
+        .bind(i64::from(n))
         .fetch_all(&self.pool)
         .await?;
-        Ok(self
-            .campaign
-            .stages
-            .iter()
-            .position(|s| !done.contains(&s.name))
-            .unwrap_or(self.campaign.stages.len()))
+        let mut history = History::new();
+        history.entry(n).or_default();
+        for r in rows {
+            history
+                .entry(r.get::<i64, _>("it") as u32)
+                .or_default()
+                .insert(
+                    r.get("name"),
+                    Sample {
+                        value: r.get("value"),
+                        error: r.get("error"),
+                    },
+                );
+        }
+        let first_met: Option<i64> = sqlx::query_scalar(
+            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = 'good' \
+             AND json_extract(stop_json, '$.rules_met') = 1",
+        )
+        .bind(&point_id)
+        .fetch_one(&self.pool)
+        .await?;
+        let pr = &mut self.points[p];
+        pr.history = Some(history);
+        pr.first_met = first_met.map(|i| i as u32);
+        Ok(())
     }
 
     /// Settle attempts an earlier orchestrator left planned, submitted or running.
@@ -996,15 +1120,7 @@ impl Engine<'_> {
         let stage = self.campaign.stages[sidx].clone();
         let point = self.points[p].spec.clone();
         let iteration = self.points[p].iteration;
-        let attempt: i64 = sqlx::query_scalar(
-            "SELECT coalesce(max(attempt), 0) + 1 FROM attempts WHERE point = ? AND iteration = ? AND stage = ?",
-        )
-        .bind(&point.id)
-        .bind(i64::from(iteration))
-        .bind(&stage.name)
-        .fetch_one(&self.pool)
-        .await?;
-        let attempt = attempt as u32;
+        let attempt = self.points[p].attempts[sidx] + 1;
         let workdir = self
             .paths
             .scratch
@@ -1015,9 +1131,23 @@ impl Engine<'_> {
             std::fs::remove_dir_all(&workdir)
                 .with_context(|| format!("{}: cannot clear the scratch dir", workdir.display()))?;
         }
+        // One mkdir in the common case (the iteration's folder exists after its first stage).
+        if let Err(e) = std::fs::create_dir(&workdir) {
+            if e.kind() != std::io::ErrorKind::NotFound {
+                return Err(e).with_context(|| format!("{}: cannot create", workdir.display()));
+            }
+            if let Some(parent) = workdir.parent() {
+                std::fs::create_dir_all(parent)
+                    .with_context(|| format!("{}: cannot create", parent.display()))?;
+            }
+            std::fs::create_dir(&workdir)
+                .with_context(|| format!("{}: cannot create", workdir.display()))?;
+        }
         let inputs_dir = workdir.join("inputs");
-        std::fs::create_dir_all(&inputs_dir)
-            .with_context(|| format!("{}: cannot create", inputs_dir.display()))?;
+        if !stage.inputs.is_empty() || matches!(stage.kind, StageKind::Mix(_)) {
+            std::fs::create_dir(&inputs_dir)
+                .with_context(|| format!("{}: cannot create", inputs_dir.display()))?;
+        }
         // Inputs: resolve and place.
         let mut inputs: Vec<(String, String, PathBuf)> = Vec::new();
         for (role, src) in &stage.inputs {
@@ -1081,7 +1211,7 @@ impl Engine<'_> {
         for (k, v) in &point.values {
             params.insert(k.clone(), v.to_json());
         }
-        let scheduled = self.schedule_values(&point.id, iteration).await?;
+        let scheduled = self.schedule_values(p, iteration).await?;
         for (k, v) in &scheduled {
             let value = v
                 .parse::<i64>()
@@ -1206,12 +1336,13 @@ impl Engine<'_> {
                     )
                 }
             };
-        // Record the planned attempt before anything runs.
-        let mut tx = self.pool.begin().await?;
-        let id: i64 = sqlx::query_scalar(
+        // Record the planned attempt before anything runs: one statement, or one transaction
+        // with the inputs (the point turns `running` by a trigger of the store).
+        let local_host = matches!(executor_kind, "local" | "builtin").then(|| self.host.clone());
+        let insert = sqlx::query_scalar::<_, i64>(
             "INSERT INTO attempts(point, iteration, stage, attempt, state, argv_json, workdir, executor, \
-             program_path, program_blake3, program_version, parameters_json, seed, rondo_version, created_at) \
-             VALUES (?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?) RETURNING id",
+             program_path, program_blake3, program_version, parameters_json, seed, rondo_version, created_at, host) \
+             VALUES (?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?,?) RETURNING id",
         )
         .bind(&point.id)
         .bind(i64::from(iteration))
@@ -1227,21 +1358,23 @@ impl Engine<'_> {
         .bind(uses_seed.then(|| seed.to_string()))
         .bind(RONDO_VERSION)
         .bind(store::now())
-        .fetch_one(&mut *tx)
-        .await?;
-        for (role, hash, _) in &inputs {
-            sqlx::query("INSERT INTO attempt_inputs(attempt_id, role, artifact) VALUES (?,?,?)")
-                .bind(id)
-                .bind(role)
-                .bind(hash)
-                .execute(&mut *tx)
-                .await?;
-        }
-        sqlx::query("UPDATE points SET state = 'running' WHERE id = ? AND state = 'planned'")
-            .bind(&point.id)
-            .execute(&mut *tx)
-            .await?;
-        tx.commit().await?;
+        .bind(local_host);
+        let id: i64 = if inputs.is_empty() {
+            insert.fetch_one(&self.pool).await?
+        } else {
+            let mut tx = self.pool.begin().await?;
+            let id = insert.fetch_one(&mut *tx).await?;
+            let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                "INSERT INTO attempt_inputs(attempt_id, role, artifact) ",
+            );
+            q.push_values(&inputs, |mut b, (role, hash, _)| {
+                b.push_bind(id).push_bind(role).push_bind(hash);
+            });
+            q.build().execute(&mut *tx).await?;
+            tx.commit().await?;
+            id
+        };
+        self.points[p].attempts[sidx] = attempt;
         let fl = InFlight {
             point: p,
             stage: sidx,
@@ -1351,12 +1484,18 @@ impl Engine<'_> {
                 self.points[p].outstanding = Some(id);
                 self.inflight.insert(id, fl.clone());
                 match self.executor.launch(req).await {
+                    Ok(handle) if self.opts.executor.kind() == "local" => {
+                        self.unrecorded.insert(
+                            id,
+                            UnrecordedLaunch {
+                                handle_id: handle.id,
+                                host: handle.host,
+                                started_at: store::now(),
+                            },
+                        );
+                    }
                     Ok(handle) => {
-                        let state = if self.opts.executor.kind() == "local" {
-                            "running"
-                        } else {
-                            "submitted"
-                        };
+                        let state = "submitted";
                         sqlx::query(
                             "UPDATE attempts SET state = ?, handle_id = ?, host = ?, started_at = coalesce(started_at, ?) \
                              WHERE id = ? AND state = 'planned'",
@@ -1390,25 +1529,19 @@ impl Engine<'_> {
 
     /// Values of the loop-driven parameters for a point's iteration, from the metrics of its
     /// earlier good iterations (so a resumed run computes the same values).
-    async fn schedule_values(&self, point: &str, iteration: u32) -> Result<Vec<(String, String)>> {
+    async fn schedule_values(&mut self, p: usize, iteration: u32) -> Result<Vec<(String, String)>> {
         let mut out = Vec::new();
+        if self.campaign.schedules.is_empty() {
+            return Ok(out);
+        }
+        self.ensure_history(p).await?;
+        let history = self.points[p].history.as_ref();
         for sc in &self.campaign.schedules {
-            let rows = sqlx::query(
-                "SELECT a.iteration, m.value, m.error FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
-                 JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration AND i.state = 'good' \
-                 WHERE a.point = ? AND a.state = 'succeeded' AND m.name = ? AND a.iteration < ? ORDER BY a.iteration",
-            )
-            .bind(point)
-            .bind(&sc.metric)
-            .bind(i64::from(iteration))
-            .fetch_all(&self.pool)
-            .await?;
-            let samples: Vec<Sample> = rows
-                .iter()
-                .map(|r| Sample {
-                    value: r.get("value"),
-                    error: r.get("error"),
-                })
+            // Every iteration before the current one in the history is a good one.
+            let samples: Vec<Sample> = history
+                .into_iter()
+                .flat_map(|h| h.range(..iteration))
+                .filter_map(|(_, m)| m.get(&sc.metric).copied())
                 .collect();
             let held = samples
                 .windows(2)
@@ -1609,39 +1742,82 @@ impl Engine<'_> {
                     outs.push((role.clone(), h, size, file.clone()));
                 }
                 let point_id = self.points[fl.point].spec.id.clone();
-                let mut tx = self.pool.begin().await?;
-                for (role, h, size, file) in &outs {
-                    store::artifact(&mut *tx, h, *size, file).await?;
-                    sqlx::query(
-                        "INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES (?,?,?)",
-                    )
-                    .bind(id)
-                    .bind(role)
-                    .bind(h)
-                    .execute(&mut *tx)
-                    .await?;
+                let launch = self.unrecorded.remove(&id);
+                // The iteration's last stage: its verdict goes into the same transaction.
+                let last = fl.stage + 1 == self.campaign.stages.len();
+                if last {
+                    self.ensure_history(fl.point).await?;
                 }
-                for m in &metrics {
-                    sqlx::query(
-                        "INSERT INTO metrics(attempt_id, name, value, error) VALUES (?,?,?,?)",
-                    )
-                    .bind(id)
-                    .bind(format!("{}.{}", stage.name, m.name))
-                    .bind(m.value)
-                    .bind(m.error)
-                    .execute(&mut *tx)
-                    .await?;
+                if let Some(h) = self.points[fl.point].history.as_mut() {
+                    let at = h.entry(fl.iteration).or_default();
+                    for m in &metrics {
+                        at.insert(
+                            format!("{}.{}", stage.name, m.name),
+                            Sample {
+                                value: m.value,
+                                error: m.error,
+                            },
+                        );
+                    }
+                }
+                let verdict = if last {
+                    Some(self.judge(fl.point)?)
+                } else {
+                    None
+                };
+                let mut tx = self.pool.begin().await?;
+                if !outs.is_empty() {
+                    let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                        "INSERT INTO artifacts(hash, size, original_name, created_at) ",
+                    );
+                    let now = store::now();
+                    q.push_values(&outs, |mut b, (_, h, size, file)| {
+                        b.push_bind(h)
+                            .push_bind(i64::try_from(*size).unwrap_or(i64::MAX))
+                            .push_bind(file)
+                            .push_bind(now.clone());
+                    });
+                    q.push(" ON CONFLICT(hash) DO NOTHING");
+                    q.build().execute(&mut *tx).await?;
+                    let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                        "INSERT INTO attempt_outputs(attempt_id, role, artifact) ",
+                    );
+                    q.push_values(&outs, |mut b, (role, h, _, _)| {
+                        b.push_bind(id).push_bind(role).push_bind(h);
+                    });
+                    q.build().execute(&mut *tx).await?;
+                }
+                for chunk in metrics.chunks(200) {
+                    let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                        "INSERT INTO metrics(attempt_id, name, value, error) ",
+                    );
+                    q.push_values(chunk, |mut b, m| {
+                        b.push_bind(id)
+                            .push_bind(format!("{}.{}", stage.name, m.name))
+                            .push_bind(m.value)
+                            .push_bind(m.error);
+                    });
+                    q.build().execute(&mut *tx).await?;
                 }
                 sqlx::query(
                     "UPDATE attempts SET state = 'succeeded', exit_status = 0, ended_at = ?, \
-                     started_at = coalesce(?, started_at), host = coalesce(?, host) WHERE id = ?",
+                     started_at = coalesce(?, started_at), host = coalesce(?, host), \
+                     handle_id = coalesce(?, handle_id) WHERE id = ?",
                 )
                 .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
-                .bind(started.map(store::time_text))
-                .bind(host)
+                .bind(
+                    started
+                        .map(store::time_text)
+                        .or_else(|| launch.as_ref().map(|l| l.started_at.clone())),
+                )
+                .bind(host.or_else(|| launch.as_ref().map(|l| l.host.clone())))
+                .bind(launch.as_ref().map(|l| l.handle_id.clone()))
                 .bind(id)
                 .execute(&mut *tx)
                 .await?;
+                if let Some(v) = &verdict {
+                    self.record_verdict(&mut tx, &point_id, v).await?;
+                }
                 if let Some(ev) = &event {
                     store::event(
                         &mut *tx,
@@ -1664,7 +1840,12 @@ impl Engine<'_> {
                 let pr = &mut self.points[fl.point];
                 pr.outstanding = None;
                 pr.next_stage = fl.stage + 1;
-                self.ready.push_back(fl.point);
+                if let Some(v) = verdict {
+                    self.apply_verdict(fl.point, v);
+                }
+                if self.points[fl.point].phase == PointPhase::Active {
+                    self.ready.push_back(fl.point);
+                }
             }
             Ended::Failed {
                 kind,
@@ -1676,17 +1857,24 @@ impl Engine<'_> {
                 free,
                 state,
             } => {
+                let launch = self.unrecorded.remove(&id);
                 sqlx::query(
                     "UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, exit_status = ?, \
-                     ended_at = ?, started_at = coalesce(?, started_at), host = coalesce(?, host) WHERE id = ?",
+                     ended_at = ?, started_at = coalesce(?, started_at), host = coalesce(?, host), \
+                     handle_id = coalesce(?, handle_id) WHERE id = ?",
                 )
                 .bind(state)
                 .bind(&kind)
                 .bind(&message)
                 .bind(exit_status)
                 .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
-                .bind(started.map(store::time_text))
-                .bind(host)
+                .bind(
+                    started
+                        .map(store::time_text)
+                        .or_else(|| launch.as_ref().map(|l| l.started_at.clone())),
+                )
+                .bind(host.or_else(|| launch.as_ref().map(|l| l.host.clone())))
+                .bind(launch.as_ref().map(|l| l.handle_id.clone()))
                 .bind(id)
                 .execute(&self.pool)
                 .await?;
@@ -1764,48 +1952,33 @@ impl Engine<'_> {
         Ok(())
     }
 
-    /// All stages of the point's iteration succeeded: apply the stopping rules.
+    /// All stages of the point's iteration succeeded (found so on resume): apply the
+    /// stopping rules. Normally the verdict is recorded with the last stage's success.
     async fn finish_iteration(&mut self, p: usize) -> Result<()> {
+        self.ensure_history(p).await?;
+        let v = self.judge(p)?;
         let point_id = self.points[p].spec.id.clone();
-        let n = self.points[p].iteration;
-        let rows = sqlx::query(
-            "SELECT a.iteration AS it, m.name AS name, m.value AS value, m.error AS error \
-             FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
-             LEFT JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration \
-             WHERE a.point = ? AND a.state = 'succeeded' AND (i.state = 'good' OR a.iteration = ?)",
-        )
-        .bind(&point_id)
-        .bind(i64::from(n))
-        .fetch_all(&self.pool)
-        .await?;
-        let mut history: BTreeMap<u32, BTreeMap<String, Sample>> = BTreeMap::new();
+        let mut tx = self.pool.begin().await?;
+        self.record_verdict(&mut tx, &point_id, &v).await?;
+        tx.commit().await?;
+        self.apply_verdict(p, v);
+        Ok(())
+    }
+
+    /// The stopping rules on the point's history (which holds its current iteration).
+    fn judge(&mut self, p: usize) -> Result<Verdict> {
+        let pr = &mut self.points[p];
+        let n = pr.iteration;
+        let Some(history) = pr.history.as_mut() else {
+            bail!("internal: metric history of {} not read", pr.spec.id);
+        };
         history.entry(n).or_default();
-        for r in rows {
-            history
-                .entry(r.get::<i64, _>("it") as u32)
-                .or_default()
-                .insert(
-                    r.get("name"),
-                    Sample {
-                        value: r.get("value"),
-                        error: r.get("error"),
-                    },
-                );
-        }
         let decision = stop::decide(
             &self.campaign.rules,
             self.campaign.combine,
             self.campaign.max_iterations,
-            &history,
+            history,
         );
-        let mut tx = self.pool.begin().await?;
-        sqlx::query("UPDATE iterations SET state = 'good', ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
-            .bind(store::now())
-            .bind(serde_json::to_string(&decision)?)
-            .bind(&point_id)
-            .bind(i64::from(n))
-            .execute(&mut *tx)
-            .await?;
         let summary = decision
             .rules
             .iter()
@@ -1820,14 +1993,7 @@ impl Engine<'_> {
             })
             .collect::<Vec<_>>()
             .join(", ");
-        let first_met: Option<i64> = sqlx::query_scalar(
-            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = 'good' \
-             AND json_extract(stop_json, '$.rules_met') = 1",
-        )
-        .bind(&point_id)
-        .fetch_one(&mut *tx)
-        .await?;
-        let first_met = first_met.map(|i| i as u32);
+        let first_met = pr.first_met.or(decision.rules_met.then_some(n));
         let window = self.campaign.final_window;
         let fate = if let Some(why) = &decision.diverged {
             Some(("failed", format!("diverging: {why}")))
@@ -1860,45 +2026,109 @@ impl Engine<'_> {
         } else {
             None
         };
-        if let Some((state, reason)) = fate {
+        Ok(Verdict {
+            iteration: n,
+            decision,
+            fate,
+            summary,
+            first_met,
+        })
+    }
+
+    /// Write a verdict: the iteration is good (with the rules' evaluation), and either the
+    /// point stops or its next iteration begins.
+    async fn record_verdict(
+        &self,
+        tx: &mut sqlx::Transaction<'_, sqlx::Sqlite>,
+        point_id: &str,
+        v: &Verdict,
+    ) -> Result<()> {
+        let n = v.iteration;
+        sqlx::query("UPDATE iterations SET state = 'good', ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
+            .bind(store::now())
+            .bind(serde_json::to_string(&v.decision)?)
+            .bind(point_id)
+            .bind(i64::from(n))
+            .execute(&mut **tx)
+            .await?;
+        if let Some((state, reason)) = &v.fate {
             sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
-                .bind(state)
-                .bind(&reason)
-                .bind(&point_id)
-                .execute(&mut *tx)
+                .bind(*state)
+                .bind(reason)
+                .bind(point_id)
+                .execute(&mut **tx)
                 .await?;
             store::event(
-                &mut *tx,
+                &mut **tx,
                 &format!("point-{state}"),
-                Some(&point_id),
+                Some(point_id),
                 Some(n),
                 None,
-                &reason,
+                reason,
             )
             .await?;
-            tx.commit().await?;
-            self.points[p].phase = PointPhase::Done;
-            self.progress
-                .line(format!("{point_id} {state} at iteration {n} ({summary})"));
         } else {
             sqlx::query("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)")
-                .bind(&point_id)
+                .bind(point_id)
                 .bind(i64::from(n + 1))
                 .bind(store::now())
-                .execute(&mut *tx)
+                .execute(&mut **tx)
                 .await?;
-            tx.commit().await?;
-            let note = if first_met.is_some() {
+        }
+        Ok(())
+    }
+
+    /// After the verdict is committed: move the point on in memory and log it.
+    fn apply_verdict(&mut self, p: usize, v: Verdict) {
+        let nstages = self.campaign.stages.len();
+        let pr = &mut self.points[p];
+        let point_id = pr.spec.id.clone();
+        let n = v.iteration;
+        pr.first_met = v.first_met;
+        if let Some((state, _)) = &v.fate {
+            pr.phase = PointPhase::Done;
+            self.progress.line(format!(
+                "{point_id} {state} at iteration {n} ({})",
+                v.summary
+            ));
+        } else {
+            pr.iteration = n + 1;
+            pr.next_stage = 0;
+            pr.attempts = vec![0; nstages];
+            if let Some(h) = pr.history.as_mut() {
+                h.entry(n + 1).or_default();
+            }
+            let note = if v.first_met.is_some() {
                 " [final window]"
             } else {
                 ""
             };
-            self.progress
-                .line(format!("{point_id} iteration {n} good ({summary}){note}"));
-            let pr = &mut self.points[p];
-            pr.iteration = n + 1;
-            pr.next_stage = 0;
+            self.progress.line(format!(
+                "{point_id} iteration {n} good ({}){note}",
+                v.summary
+            ));
         }
+    }
+
+    /// Write the launches of local attempts still running (see [`UnrecordedLaunch`]).
+    async fn record_launches(&mut self) -> Result<()> {
+        if self.unrecorded.is_empty() {
+            return Ok(());
+        }
+        let mut tx = self.pool.begin().await?;
+        for (id, l) in self.unrecorded.drain() {
+            sqlx::query(
+                "UPDATE attempts SET state = 'running', handle_id = ?, host = ?, started_at = coalesce(started_at, ?) \
+                 WHERE id = ? AND state = 'planned'",
+            )
+            .bind(&l.handle_id)
+            .bind(&l.host)
+            .bind(&l.started_at)
+            .bind(id)
+            .execute(&mut *tx)
+            .await?;
+        }
+        tx.commit().await?;
         Ok(())
     }
 

@@ -33,6 +33,13 @@ pub fn migrator() -> Migrator {
             include_str!("../migrations/0002_report_provenance.sql").into(),
             false,
         ),
+        Migration::new(
+            3,
+            "point started trigger".into(),
+            MigrationType::Simple,
+            include_str!("../migrations/0003_point_started_trigger.sql").into(),
+            false,
+        ),
     ];
     Migrator {
         migrations: m.into(),
