@@ -346,6 +346,9 @@ enum PointPhase {
     Done,
 }
 
+/// Active points whose iteration the live status line lists.
+const SHOWN_POINTS: usize = 12;
+
 /// Metric samples per good iteration (and the current one), for the stopping rules and
 /// the schedules.
 type History = BTreeMap<u32, BTreeMap<String, Sample>>;
@@ -451,7 +454,9 @@ struct Engine<'a> {
     ready: VecDeque<usize>,
     inflight: HashMap<i64, InFlight>,
     programs: ProgramCache,
-    rondo_exe: (PathBuf, String),
+    /// rondo's own executable and its BLAKE3 (the program of built-in stages), hashed on
+    /// first use: a release binary is tens of megabytes.
+    rondo_exe: (PathBuf, Option<String>),
     progress: Progress,
     parameters: serde_json::Map<String, serde_json::Value>,
     unrecorded: HashMap<i64, UnrecordedLaunch>,
@@ -478,7 +483,6 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         }
     };
     let rondo_exe = std::env::current_exe().unwrap_or_else(|_| PathBuf::from("rondo"));
-    let rondo_hash = hash_file(&rondo_exe).map(|(h, _)| h).unwrap_or_default();
     let mut parameters = serde_json::Map::new();
     for (k, v) in &campaign.parameters {
         parameters.insert(k.clone(), v.to_json());
@@ -495,7 +499,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         ready: VecDeque::new(),
         inflight: HashMap::new(),
         programs: ProgramCache::default(),
-        rondo_exe: (rondo_exe, rondo_hash),
+        rondo_exe: (rondo_exe, None),
         progress,
         parameters,
         unrecorded: HashMap::new(),
@@ -1038,7 +1042,22 @@ impl Engine<'_> {
         Ok(())
     }
 
+    /// The BLAKE3 of rondo's executable, computed once.
+    fn rondo_hash(&mut self) -> String {
+        if let Some(h) = &self.rondo_exe.1 {
+            return h.clone();
+        }
+        let h = hash_file(&self.rondo_exe.0)
+            .map(|(h, _)| h)
+            .unwrap_or_default();
+        self.rondo_exe.1 = Some(h.clone());
+        h
+    }
+
     fn show(&mut self) {
+        if !self.progress.live() {
+            return;
+        }
         let mut active = 0;
         let mut done = 0;
         let mut its = Vec::new();
@@ -1046,13 +1065,16 @@ impl Engine<'_> {
             match p.phase {
                 PointPhase::Active => {
                     active += 1;
-                    its.push(format!("{}:{}", p.spec.id, p.iteration));
+                    if its.len() < SHOWN_POINTS {
+                        its.push(format!("{}:{}", p.spec.id, p.iteration));
+                    }
                 }
                 PointPhase::Done => done += 1,
             }
         }
+        let more = if active > its.len() { " …" } else { "" };
         self.progress.status(format!(
-            "{done}/{} points stopped · {active} active · {} attempts running · {}",
+            "{done}/{} points stopped · {active} active · {} attempts running · {}{more}",
             self.points.len(),
             self.inflight.len(),
             its.join(" ")
@@ -1225,7 +1247,7 @@ impl Engine<'_> {
                 StageKind::Filter(with) => (
                     builtins::filter_argv(with),
                     self.rondo_exe.0.clone(),
-                    self.rondo_exe.1.clone(),
+                    self.rondo_hash(),
                     Some(format!("rondo {RONDO_VERSION}")),
                     false,
                     "builtin",
@@ -1233,7 +1255,7 @@ impl Engine<'_> {
                 StageKind::Mix(with) => (
                     builtins::mix_argv(with),
                     self.rondo_exe.0.clone(),
-                    self.rondo_exe.1.clone(),
+                    self.rondo_hash(),
                     Some(format!("rondo {RONDO_VERSION}")),
                     false,
                     "builtin",

@@ -44,6 +44,11 @@ impl Progress {
         }
     }
 
+    /// Whether a live status line is shown (a terminal, not quiet).
+    pub fn live(&self) -> bool {
+        self.bar.is_some()
+    }
+
     /// The current summary (shown live on a terminal; not printed as lines).
     pub fn status(&mut self, msg: String) {
         if msg == self.last_status {
