@@ -947,4 +947,120 @@ mod tests {
         assert_eq!(st["layout"][1]["weight"], 8.0);
         Ok(())
     }
+
+    /// The engine around a failing multi-array mix: a stage feeds the mixer a complex
+    /// array and a JSON object; at iteration 3 one role goes bad (shape change, NaN,
+    /// changed JSON field set; the producer allows non-finite output, so the NaN reaches
+    /// the mixer). The point fails at that mix attempt with the reason
+    /// recorded, and that attempt stores no output artifact.
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn a_bad_role_fails_the_point_and_stores_nothing(
+    ) -> Result<(), Box<dyn std::error::Error>> {
+        use crate::engine::{self, ExecutorChoice, RunOptions};
+        use sqlx::Row;
+        let script = "#!/bin/sh\n\
+            # $1 b input, $2 bad b, $3 b output, $4 a output, $5 same|keys\n\
+            if [ \"$RONDO_ITERATION\" -ge 3 ]; then cp \"$2\" \"$3\"; else cp \"$1\" \"$3\"; fi\n\
+            if [ \"$RONDO_ITERATION\" -ge 3 ] && [ \"$5\" = keys ]; then\n\
+              printf '{\"x\": 0.5, \"y\": 1.0, \"label\": \"k\"}\\n' > \"$4\"\n\
+            else\n\
+              printf '{\"x\": 0.%s, \"label\": \"k\"}\\n' \"$RONDO_ITERATION\" > \"$4\"\n\
+            fi\n";
+        let c = |re: f64| Complex64::new(re, 0.5);
+        for (case, bad, flag, needle) in [
+            (
+                "shape",
+                vec![c(1.0); 3],
+                "same",
+                "complex array of shape [2]",
+            ),
+            ("nan", vec![c(f64::NAN), c(1.0)], "same", "NaN"),
+            ("keys", vec![c(1.0); 2], "keys", "numeric fields"),
+        ] {
+            let d = tempfile::tempdir()?;
+            let p = |n: &str| d.path().join(n);
+            std::fs::write(p("step.sh"), script)?;
+            npy::write_complex(p("b0.npy"), &[2], &[c(2.0), c(3.0)])?;
+            npy::write_complex(p("bad.npy"), &[bad.len()], &bad)?;
+            let yaml = format!(
+                "campaign: mixfail-{case}\n\
+                 start: {{ b: b0.npy, bad: bad.npy }}\n\
+                 cycle:\n\
+                 \x20 step:\n\
+                 \x20   run: [/bin/sh, \"{script}\", \"{{{{input:b}}}}\", \"{{{{input:bad}}}}\", \"{{{{output:b}}}}\", \"{{{{output:a}}}}\", {flag}]\n\
+                 \x20   inputs: {{ b: {{ previous: mix.b, initially: start.b }}, bad: start.bad }}\n\
+                 \x20   outputs: {{ b: b.npy, a: a.json }}\n\
+                 \x20   allow-nonfinite: true\n\
+                 \x20 mix:\n\
+                 \x20   builtin: mix\n\
+                 \x20   inputs: {{ b: step.b, a: step.a }}\n\
+                 \x20   outputs: {{ b: b.npy, a: a.json }}\n\
+                 \x20   with: {{ method: anderson, alpha: 0.5 }}\n\
+                 stop: {{ max-iterations: 5 }}\n",
+                script = p("step.sh").display()
+            );
+            std::fs::write(p("c.yaml"), yaml)?;
+            let campaign = crate::spec::load(&p("c.yaml")).map_err(|e| e.to_string())?;
+            let opts = RunOptions {
+                workspace: engine::default_workspace(&p("c.yaml")),
+                executor: ExecutorChoice::Local,
+                jobs: 1,
+                retry_failed: false,
+                keep_scratch: false,
+                grace: std::time::Duration::from_secs(1),
+                allocation: None,
+            };
+            let summary = engine::run(
+                &campaign,
+                &opts,
+                crate::progress::Progress::for_stderr(true),
+            )
+            .await?;
+            assert_eq!(
+                summary.states.get("failed"),
+                Some(&1),
+                "{case}: {summary:?}"
+            );
+            let db = opts.workspace.join("rondo.db");
+            let pool =
+                sqlx::SqlitePool::connect(&format!("sqlite://{}?mode=ro", db.display())).await?;
+            let rows = sqlx::query(
+                "SELECT a.id, a.failure_message, \
+                 (SELECT count(*) FROM attempt_outputs o WHERE o.attempt_id = a.id) \
+                 FROM attempts a WHERE a.stage = 'mix' AND a.iteration = 3",
+            )
+            .fetch_all(&pool)
+            .await?;
+            if rows.is_empty() {
+                let all =
+                    sqlx::query("SELECT stage, iteration, state, failure_message FROM attempts")
+                        .fetch_all(&pool)
+                        .await?;
+                let all: Vec<(String, i64, String, Option<String>)> = all
+                    .iter()
+                    .map(|r| (r.get(0), r.get(1), r.get(2), r.get(3)))
+                    .collect();
+                panic!("{case}: no mix attempt at iteration 3: {all:?}");
+            }
+            for r in &rows {
+                let msg: Option<String> = r.get(1);
+                let outputs: i64 = r.get(2);
+                assert!(
+                    msg.as_deref().is_some_and(|m| m.contains(needle)),
+                    "{case}: {msg:?}"
+                );
+                assert_eq!(outputs, 0, "{case}: a failed mix stored outputs");
+            }
+            // iterations 1 and 2 mixed both roles and stored them with the state
+            let ok: i64 = sqlx::query_scalar(
+                "SELECT count(*) FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
+                 WHERE a.stage = 'mix' AND a.state = 'succeeded' AND o.role IN ('a', 'b', 'state')",
+            )
+            .fetch_one(&pool)
+            .await?;
+            assert_eq!(ok, 6, "{case}");
+            pool.close().await;
+        }
+        Ok(())
+    }
 }
