@@ -86,7 +86,8 @@ struct LegacyStateFile {
 /// What a mixing step reports.
 #[derive(Debug, Clone)]
 pub struct MixReport {
-    /// Metrics: `residual_norm` (from the second step on), `history`, `resets`.
+    /// Metrics: `residual_norm` (from the second step on; with several roles also
+    /// `residual_norm_ROLE` per role), `history`, `resets`.
     pub metrics: Vec<Metric>,
     /// Out-of-the-ordinary event for the log (history reset, fallback).
     pub event: Option<String>,
