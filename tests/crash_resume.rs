@@ -187,12 +187,13 @@ fn check_demo_results_and_trace(dir: &Path) {
             );
         }
     }
-    // Trace the final density of p003 (volume 27, 300 K) from a copy outside the workspace.
+    // Trace the final mixed density of p003 (volume 27, 300 K) from a copy outside the
+    // workspace: the mix stage ends the iteration, so every stage of it is upstream.
     let (hash, iteration): (String, i64) = query(&ws, |pool| {
         Box::pin(async move {
             let r = sqlx::query(
                 "SELECT o.artifact, a.iteration FROM attempts a JOIN attempt_outputs o ON o.attempt_id = a.id \
-                 WHERE a.point = 'p003' AND a.stage = 'update' AND a.state = 'succeeded' AND o.role = 'density' \
+                 WHERE a.point = 'p003' AND a.stage = 'mix' AND a.state = 'succeeded' AND o.role = 'density' \
                  ORDER BY a.iteration DESC LIMIT 1",
             )
             .fetch_one(pool)
@@ -219,7 +220,7 @@ fn check_demo_results_and_trace(dir: &Path) {
     assert_eq!(t["target"], hash.as_str());
     let attempts = t["attempts"].as_array().cloned().unwrap_or_default();
     let first = &attempts[0];
-    assert_eq!(first["stage"], "update");
+    assert_eq!(first["stage"], "mix");
     assert_eq!(first["iteration"], iteration);
     let engine_hash = blake3::hash(&std::fs::read(model_solid()).unwrap_or_default())
         .to_hex()

@@ -1423,21 +1423,23 @@ impl Engine<'_> {
                 };
                 let result = match &stage.kind {
                     StageKind::Mix(with) => {
-                        let out_name = stage
-                            .outputs
-                            .first()
-                            .map(|(_, f)| f.clone())
-                            .unwrap_or_default();
-                        match input_path("new") {
-                            None => Err("the input `new` has no artifact".to_string()),
-                            Some(new) => builtins::mix(
+                        let in_roles: Vec<String> =
+                            stage.inputs.iter().map(|(r, _)| r.clone()).collect();
+                        builtins::mix_pairs(&in_roles, &stage.outputs).and_then(|pairs| {
+                            let mut roles = Vec::with_capacity(pairs.len());
+                            for (role, file) in pairs {
+                                let Some(new) = input_path(&role) else {
+                                    return Err(format!("the input `{role}` has no artifact"));
+                                };
+                                roles.push((role, new, workdir.join(file)));
+                            }
+                            builtins::mix(
                                 with,
-                                &new,
+                                &roles,
                                 input_path("state").as_deref(),
-                                &workdir.join(&out_name),
                                 &workdir.join(builtins::STATE_FILE),
-                            ),
-                        }
+                            )
+                        })
                     }
                     StageKind::Filter(with) => {
                         let outs: Vec<(String, PathBuf)> = stage

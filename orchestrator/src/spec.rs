@@ -208,6 +208,12 @@ pub struct MixWith {
     /// Restart the history after this many residual increases in a row.
     #[serde(default)]
     pub restart_after_growth: Option<usize>,
+    /// Per-role weights (input role → positive number, default 1): the mixer works on the
+    /// vector whose block of each role is multiplied by its weight, so the residual norm and
+    /// the least-squares fits of Anderson and Broyden count that role's residual `weight`
+    /// times; linear mixing is unaffected.
+    #[serde(default)]
+    pub weights: Option<BTreeMap<String, f64>>,
 }
 
 /// One stage of the cycle.
@@ -1093,7 +1099,19 @@ impl Validator<'_> {
                     ),
                 ),
                 Some(st) => {
-                    if st.builtin.is_some() && m != "residual" {
+                    let is_mix = st.builtin.as_ref().is_some_and(|b| b.value == "mix");
+                    let mix_metric = |m: &str| {
+                        ["residual_norm", "history", "resets"].contains(&m)
+                            || m.strip_prefix("residual_norm_")
+                                .is_some_and(|r| st.inputs.get(r).is_some())
+                    };
+                    if is_mix && !mix_metric(m) {
+                        self.push(
+                            at,
+                            format!("built-in stage `{s}` reports residual_norm, residual_norm_ROLE (several inputs), history and resets, not `{m}`"),
+                            format!("use `{s}.residual_norm`"),
+                        );
+                    } else if !is_mix && st.builtin.is_some() && m != "residual" {
                         self.push(
                             at,
                             format!("built-in stage `{s}` reports only `residual`"),
@@ -1454,19 +1472,78 @@ impl Validator<'_> {
                 "e.g. alpha: 0.5",
             );
         }
-        if inputs.len() != 1 || inputs[0].0 != "new" {
+        let legacy = inputs.len() == 1 && inputs[0].0 == crate::builtins::LEGACY_ROLE;
+        if inputs.is_empty() {
             self.push(
                 at,
-                format!("built-in stage `{sname}` takes exactly one input, `new`"),
-                "write inputs: { new: stage.output }",
+                format!("built-in stage `{sname}` has no inputs to mix"),
+                "write inputs: { sigma: solve.sigma, density: update.density }",
             );
         }
-        if st.outputs.len() != 1 || !st.outputs.0[0].1.ends_with(".npy") {
+        if inputs.iter().any(|(r, _)| r == "state") {
             self.push(
                 at,
-                format!("built-in stage `{sname}` has exactly one .npy output (the mixed array)"),
-                "write outputs: { NAME: NAME.npy }",
+                format!("built-in stage `{sname}`: the input role `state` is reserved for the mixer's history"),
+                "rename the input",
             );
+        }
+        for (ok, ov) in &st.outputs.0 {
+            if !(ov.ends_with(".npy") || ov.ends_with(".json")) {
+                self.push(
+                    loc(ok),
+                    format!("mix output `{}` = `{ov}` is neither .npy nor .json", ok.value),
+                    "the mixed file has the type of its input: NAME.npy for arrays, NAME.json for JSON objects",
+                );
+            }
+        }
+        if legacy {
+            if st.outputs.len() != 1 {
+                self.push(
+                    at,
+                    format!("built-in stage `{sname}` with the single input `new` has exactly one output (the mixed array)"),
+                    "write outputs: { NAME: NAME.npy }",
+                );
+            }
+        } else if !inputs.is_empty() {
+            let in_roles: Vec<&str> = inputs.iter().map(|(r, _)| r.as_str()).collect();
+            for (ok, _) in &st.outputs.0 {
+                if !in_roles.contains(&ok.value.as_str()) {
+                    self.push(
+                        loc(ok),
+                        format!(
+                            "mix output `{}` is not one of the stage's input roles ({})",
+                            ok.value,
+                            in_roles.join(", ")
+                        ),
+                        "a mix stage writes one output per input role, with the same role name",
+                    );
+                }
+            }
+            for r in &in_roles {
+                if st.outputs.get(r).is_none() {
+                    self.push(
+                        at,
+                        format!("built-in stage `{sname}` mixes input `{r}` but declares no output `{r}`"),
+                        format!("add `{r}: {r}.npy` (or .json) to its outputs"),
+                    );
+                }
+            }
+        }
+        for (role, w) in with.weights.iter().flatten() {
+            if !inputs.iter().any(|(r, _)| r == role) {
+                self.push(
+                    at,
+                    format!("stage `{sname}`: weight for `{role}`, which is not an input role"),
+                    "weights name input roles of the mix stage",
+                );
+            }
+            if !(w.is_finite() && *w > 0.0) {
+                self.push(
+                    at,
+                    format!("stage `{sname}`: weight of `{role}` is {w}, not a positive number"),
+                    "e.g. weights: { density: 10 }",
+                );
+            }
         }
         if st.outputs.get("state").is_some() {
             self.push(
@@ -1474,6 +1551,15 @@ impl Validator<'_> {
                 "the mixer's `state` output is implicit",
                 "rename the output",
             );
+        }
+        if let Some(h) = with.history {
+            if h == 0 {
+                self.push(
+                    at,
+                    format!("stage `{sname}`: history must be at least 1"),
+                    "e.g. history: 8 (use method linear for no history)",
+                );
+            }
         }
         Some(StageKind::Mix(with))
     }
@@ -1642,5 +1728,94 @@ mod tests {
         assert_eq!(parse_duration("5"), Some(Duration::from_secs(300)));
         assert_eq!(parse_duration("2:30"), Some(Duration::from_secs(150)));
         assert_eq!(parse_duration("x"), None);
+    }
+
+    /// The demo campaign with one replacement, and the diagnostics of parsing it.
+    fn demo_with(from: &str, to: &str) -> String {
+        let file = Path::new(env!("CARGO_MANIFEST_DIR")).join("../examples/model-sweep.yaml");
+        let text = std::fs::read_to_string(&file).unwrap_or_default();
+        assert!(text.contains(from), "the demo has no `{from}`");
+        match parse(&file, &text.replacen(from, to, 1)) {
+            Ok(_) => String::new(),
+            Err(e) => e.to_string(),
+        }
+    }
+
+    /// The multi-array mix stage: outputs are exactly its input roles, files are .npy or
+    /// .json, weights name input roles and are positive, stop rules name its metrics; each
+    /// refusal is a `file:line:col` diagnostic.
+    #[test]
+    fn mix_stage_roles_weights_and_metrics() {
+        let outs = "outputs: { sigma: sigma.npy, density: density.json }";
+        let with = "with: { method: anderson, alpha: 0.4, history: 8 }";
+        // a diagnostic whose message (after file:line:col) is about the mixer
+        let mixes = |d: &str| {
+            d.lines()
+                .any(|l| l.splitn(4, ':').nth(3).is_some_and(|m| m.contains("mix")))
+        };
+        assert!(!mixes(&demo_with(outs, outs)), "{}", demo_with(outs, outs));
+        let cases = [
+            (
+                outs,
+                "outputs: { sigma: sigma.npy, rho: density.json }",
+                "mix output `rho` is not one of the stage's input roles",
+            ),
+            (
+                outs,
+                "outputs: { sigma: sigma.npy }",
+                "mixes input `density` but declares no output `density`",
+            ),
+            (
+                outs,
+                "outputs: { sigma: sigma.npy, density: density.txt }",
+                "is neither .npy nor .json",
+            ),
+            (
+                with,
+                "with: { method: anderson, alpha: 0.4, weights: { rho: 2 } }",
+                "weight for `rho`, which is not an input role",
+            ),
+            (
+                with,
+                "with: { method: anderson, alpha: 0.4, weights: { density: -1 } }",
+                "not a positive number",
+            ),
+            (
+                with,
+                "with: { method: anderson, alpha: 0.4, history: 0 }",
+                "history must be at least 1",
+            ),
+            (
+                "metric: update.energy,",
+                "metric: mix.residual,",
+                "reports residual_norm, residual_norm_ROLE",
+            ),
+            (
+                "inputs: { sigma: solve.sigma, density: update.density }",
+                "inputs: { sigma: solve.sigma, state: update.density }",
+                "reserved",
+            ),
+        ];
+        for (from, to, needle) in cases {
+            let e = demo_with(from, to);
+            let line = e.lines().find(|l| l.contains(needle));
+            let Some(line) = line else {
+                panic!("`{to}`: no diagnostic `{needle}` in:\n{e}");
+            };
+            // file:line:col: message
+            let mut it = line.splitn(4, ':');
+            let (_, l, c) = (it.next(), it.next(), it.next());
+            assert!(
+                l.is_some_and(|l| l.parse::<u64>().is_ok_and(|n| n > 0))
+                    && c.is_some_and(|c| c.parse::<u64>().is_ok()),
+                "{line}"
+            );
+        }
+        // the mixer's metrics, per role too, are valid stop-rule metrics
+        let e = demo_with(
+            "metric: update.energy,",
+            "metric: mix.residual_norm_density,",
+        );
+        assert!(!mixes(&e), "{e}");
     }
 }
