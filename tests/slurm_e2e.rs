@@ -598,13 +598,14 @@ fn slurm_run_matches_the_local_run_and_trace_shows_job_ids() {
         None => eprintln!("note: no readable jobcomp/filetxt file; Slurm's record not checked"),
     }
 
-    // `rondo trace` of p001's final density, copied out of the workspace.
+    // `rondo trace` of p001's final mixed density, copied out of the workspace: the mix
+    // stage ends the iteration, so every stage of it is upstream.
     let last = all
         .iter()
-        .filter(|a| a.point == "p001" && a.stage == "update")
+        .filter(|a| a.point == "p001" && a.stage == "mix")
         .max_by_key(|a| a.iteration)
         .cloned()
-        .unwrap_or_else(|| panic!("no update attempt of p001"));
+        .unwrap_or_else(|| panic!("no mix attempt of p001"));
     let hash: String = query(&ws, move |pool| {
         Box::pin(async move {
             sqlx::query_scalar(
