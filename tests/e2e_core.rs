@@ -246,7 +246,7 @@ stop:
         assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
         assert!(!marker.exists(), "shell={shell}: the value was executed");
         let args =
-            std::fs::read_to_string(d.path().join("c.rondo/scratch/p001/i0001/s.a1/args.txt"))
+            std::fs::read_to_string(d.path().join("c.rondo/scratch/p001.i0001.s.a1/args.txt"))
                 .unwrap_or_else(|e| panic!("shell={shell}: args.txt: {e}"));
         let lines: Vec<&str> = args.lines().collect();
         assert_eq!(lines.len(), 2, "shell={shell}: {args}");

@@ -34,6 +34,7 @@ use tokio::sync::mpsc;
 use crate::artifacts::{hash_file, ArtifactStore};
 use crate::builtins;
 use crate::progress::Progress;
+use crate::scratch;
 use crate::spec::{Campaign, PointSpec, Source, Stage, StageKind};
 use crate::stop::{self, Sample};
 use crate::store;
@@ -277,15 +278,18 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
             .bind(&workspace_id)
             .execute(&mut *tx)
             .await?;
-            for p in &campaign.points {
-                sqlx::query(
-                    "INSERT INTO points(id, idx, values_json, state) VALUES (?,?,?,'planned')",
-                )
-                .bind(&p.id)
-                .bind(p.index as i64)
-                .bind(values_json(p).to_string())
-                .execute(&mut *tx)
-                .await?;
+            // Multi-row inserts: a sweep of thousands of points is a few statements.
+            for chunk in campaign.points.chunks(300) {
+                let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                    "INSERT INTO points(id, idx, values_json, state) ",
+                );
+                q.push_values(chunk, |mut b, p| {
+                    b.push_bind(&p.id)
+                        .push_bind(p.index as i64)
+                        .push_bind(values_json(p).to_string())
+                        .push("'planned'");
+                });
+                q.build().execute(&mut *tx).await?;
             }
             for (name, h, size, fname) in &starts {
                 store::artifact(&mut *tx, h, *size, fname).await?;
@@ -460,6 +464,7 @@ struct Engine<'a> {
     progress: Progress,
     parameters: serde_json::Map<String, serde_json::Value>,
     unrecorded: HashMap<i64, UnrecordedLaunch>,
+    scratch: scratch::Pool,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -487,6 +492,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
     for (k, v) in &campaign.parameters {
         parameters.insert(k.clone(), v.to_json());
     }
+    let paths_scratch = paths.scratch.clone();
     let mut engine = Engine {
         campaign,
         opts,
@@ -503,6 +509,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         progress,
         parameters,
         unrecorded: HashMap::new(),
+        scratch: scratch::Pool::open(&paths_scratch)?,
     };
     store::event(
         &engine.pool,
@@ -726,6 +733,7 @@ impl Engine<'_> {
             tried.insert((point, stage), (max_attempt as u32, succeeded));
         }
         let nstages = self.campaign.stages.len();
+        let mut new_iterations: Vec<(String, i64)> = Vec::new();
         let mut tx = self.pool.begin().await?;
         for spec in &self.campaign.points {
             let Some(state) = states.get(&spec.id) else {
@@ -747,29 +755,14 @@ impl Engine<'_> {
             }
             let mut fresh_iteration = true;
             match lasts.get(&spec.id) {
-                None => {
-                    sqlx::query(
-                        "INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,1,'running',?)",
-                    )
-                    .bind(&spec.id)
-                    .bind(store::now())
-                    .execute(&mut *tx)
-                    .await?;
-                }
+                None => new_iterations.push((spec.id.clone(), 1)),
                 Some((it, st)) => {
                     run.iteration = *it as u32;
                     if st == "good" {
                         // The decision after a good iteration is committed with it; a good
                         // last iteration of a resumable point means the next one is due.
                         run.iteration = *it as u32 + 1;
-                        sqlx::query(
-                            "INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)",
-                        )
-                        .bind(&spec.id)
-                        .bind(it + 1)
-                        .bind(store::now())
-                        .execute(&mut *tx)
-                        .await?;
+                        new_iterations.push((spec.id.clone(), it + 1));
                     } else {
                         fresh_iteration = false;
                         if st == "failed" || st == "cancelled" {
@@ -816,6 +809,19 @@ impl Engine<'_> {
                 .await?;
             }
             self.points.push(run);
+        }
+        let now = store::now();
+        for chunk in new_iterations.chunks(300) {
+            let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                "INSERT INTO iterations(point, iteration, state, started_at) ",
+            );
+            q.push_values(chunk, |mut b, (point, it)| {
+                b.push_bind(point)
+                    .push_bind(*it)
+                    .push("'running'")
+                    .push_bind(now.clone());
+            });
+            q.build().execute(&mut *tx).await?;
         }
         tx.commit().await?;
         Ok(())
@@ -1143,30 +1149,22 @@ impl Engine<'_> {
         let point = self.points[p].spec.clone();
         let iteration = self.points[p].iteration;
         let attempt = self.points[p].attempts[sidx] + 1;
-        let workdir = self
-            .paths
-            .scratch
-            .join(&point.id)
-            .join(format!("i{iteration:04}"))
-            .join(format!("{}.a{attempt}", stage.name));
+        let workdir = scratch::attempt_dir(
+            &self.paths.scratch,
+            &point.id,
+            iteration,
+            &stage.name,
+            attempt,
+        );
         if workdir.exists() {
             std::fs::remove_dir_all(&workdir)
                 .with_context(|| format!("{}: cannot clear the scratch dir", workdir.display()))?;
         }
-        // One mkdir in the common case (the iteration's folder exists after its first stage).
-        if let Err(e) = std::fs::create_dir(&workdir) {
-            if e.kind() != std::io::ErrorKind::NotFound {
-                return Err(e).with_context(|| format!("{}: cannot create", workdir.display()));
-            }
-            if let Some(parent) = workdir.parent() {
-                std::fs::create_dir_all(parent)
-                    .with_context(|| format!("{}: cannot create", parent.display()))?;
-            }
-            std::fs::create_dir(&workdir)
-                .with_context(|| format!("{}: cannot create", workdir.display()))?;
-        }
+        self.scratch.create(&workdir)?;
         let inputs_dir = workdir.join("inputs");
-        if !stage.inputs.is_empty() || matches!(stage.kind, StageKind::Mix(_)) {
+        if (!stage.inputs.is_empty() || matches!(stage.kind, StageKind::Mix(_)))
+            && !inputs_dir.is_dir()
+        {
             std::fs::create_dir(&inputs_dir)
                 .with_context(|| format!("{}: cannot create", inputs_dir.display()))?;
         }
@@ -1789,77 +1787,78 @@ impl Engine<'_> {
                 } else {
                     None
                 };
-                let mut tx = self.pool.begin().await?;
+                // Everything of this success (and the iteration's verdict) in one script.
+                let mut script = store::Script::new();
                 if !outs.is_empty() {
-                    let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
-                        "INSERT INTO artifacts(hash, size, original_name, created_at) ",
-                    );
                     let now = store::now();
-                    q.push_values(&outs, |mut b, (_, h, size, file)| {
-                        b.push_bind(h)
-                            .push_bind(i64::try_from(*size).unwrap_or(i64::MAX))
-                            .push_bind(file)
-                            .push_bind(now.clone());
-                    });
-                    q.push(" ON CONFLICT(hash) DO NOTHING");
-                    q.build().execute(&mut *tx).await?;
-                    let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
-                        "INSERT INTO attempt_outputs(attempt_id, role, artifact) ",
-                    );
-                    q.push_values(&outs, |mut b, (role, h, _, _)| {
-                        b.push_bind(id).push_bind(role).push_bind(h);
-                    });
-                    q.build().execute(&mut *tx).await?;
+                    script.stmt(&format!(
+                        "INSERT INTO artifacts(hash, size, original_name, created_at) VALUES {} \
+                         ON CONFLICT(hash) DO NOTHING",
+                        store::rows(outs.len(), 4)
+                    ));
+                    for (_, h, size, file) in &outs {
+                        script
+                            .bind(h.clone())
+                            .bind(i64::try_from(*size).unwrap_or(i64::MAX))
+                            .bind(file.clone())
+                            .bind(now.clone());
+                    }
+                    script.stmt(&format!(
+                        "INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES {}",
+                        store::rows(outs.len(), 3)
+                    ));
+                    for (role, h, _, _) in &outs {
+                        script.bind(id).bind(role.clone()).bind(h.clone());
+                    }
                 }
                 for chunk in metrics.chunks(200) {
-                    let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
-                        "INSERT INTO metrics(attempt_id, name, value, error) ",
-                    );
-                    q.push_values(chunk, |mut b, m| {
-                        b.push_bind(id)
-                            .push_bind(format!("{}.{}", stage.name, m.name))
-                            .push_bind(m.value)
-                            .push_bind(m.error);
-                    });
-                    q.build().execute(&mut *tx).await?;
+                    script.stmt(&format!(
+                        "INSERT INTO metrics(attempt_id, name, value, error) VALUES {}",
+                        store::rows(chunk.len(), 4)
+                    ));
+                    for m in chunk {
+                        script
+                            .bind(id)
+                            .bind(format!("{}.{}", stage.name, m.name))
+                            .bind(m.value)
+                            .bind(m.error);
+                    }
                 }
-                sqlx::query(
-                    "UPDATE attempts SET state = 'succeeded', exit_status = 0, ended_at = ?, \
-                     started_at = coalesce(?, started_at), host = coalesce(?, host), \
-                     handle_id = coalesce(?, handle_id) WHERE id = ?",
-                )
-                .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
-                .bind(
-                    started
-                        .map(store::time_text)
-                        .or_else(|| launch.as_ref().map(|l| l.started_at.clone())),
-                )
-                .bind(host.or_else(|| launch.as_ref().map(|l| l.host.clone())))
-                .bind(launch.as_ref().map(|l| l.handle_id.clone()))
-                .bind(id)
-                .execute(&mut *tx)
-                .await?;
+                script
+                    .stmt(
+                        "UPDATE attempts SET state = 'succeeded', exit_status = 0, ended_at = ?, \
+                         started_at = coalesce(?, started_at), host = coalesce(?, host), \
+                         handle_id = coalesce(?, handle_id) WHERE id = ?",
+                    )
+                    .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
+                    .bind(
+                        started
+                            .map(store::time_text)
+                            .or_else(|| launch.as_ref().map(|l| l.started_at.clone())),
+                    )
+                    .bind(host.or_else(|| launch.as_ref().map(|l| l.host.clone())))
+                    .bind(launch.as_ref().map(|l| l.handle_id.clone()))
+                    .bind(id);
                 if let Some(v) = &verdict {
-                    self.record_verdict(&mut tx, &point_id, v).await?;
+                    record_verdict(&mut script, &point_id, v)?;
                 }
                 if let Some(ev) = &event {
-                    store::event(
-                        &mut *tx,
+                    store::event_stmt(
+                        &mut script,
                         "mixer",
                         Some(&point_id),
                         Some(fl.iteration),
                         Some(id),
                         ev,
-                    )
-                    .await?;
+                    );
                 }
-                tx.commit().await?;
+                script.commit(&self.pool).await?;
                 if let Some(ev) = event {
                     self.progress
                         .line(format!("{point_id} iteration {}: {ev}", fl.iteration));
                 }
                 if !self.opts.keep_scratch {
-                    let _ = std::fs::remove_dir_all(&fl.workdir);
+                    self.scratch.recycle(&fl.workdir);
                 }
                 let pr = &mut self.points[fl.point];
                 pr.outstanding = None;
@@ -1982,9 +1981,9 @@ impl Engine<'_> {
         self.ensure_history(p).await?;
         let v = self.judge(p)?;
         let point_id = self.points[p].spec.id.clone();
-        let mut tx = self.pool.begin().await?;
-        self.record_verdict(&mut tx, &point_id, &v).await?;
-        tx.commit().await?;
+        let mut script = store::Script::new();
+        record_verdict(&mut script, &point_id, &v)?;
+        script.commit(&self.pool).await?;
         self.apply_verdict(p, v);
         Ok(())
     }
@@ -2057,49 +2056,6 @@ impl Engine<'_> {
             summary,
             first_met,
         })
-    }
-
-    /// Write a verdict: the iteration is good (with the rules' evaluation), and either the
-    /// point stops or its next iteration begins.
-    async fn record_verdict(
-        &self,
-        tx: &mut sqlx::Transaction<'_, sqlx::Sqlite>,
-        point_id: &str,
-        v: &Verdict,
-    ) -> Result<()> {
-        let n = v.iteration;
-        sqlx::query("UPDATE iterations SET state = 'good', ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
-            .bind(store::now())
-            .bind(serde_json::to_string(&v.decision)?)
-            .bind(point_id)
-            .bind(i64::from(n))
-            .execute(&mut **tx)
-            .await?;
-        if let Some((state, reason)) = &v.fate {
-            sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
-                .bind(*state)
-                .bind(reason)
-                .bind(point_id)
-                .execute(&mut **tx)
-                .await?;
-            store::event(
-                &mut **tx,
-                &format!("point-{state}"),
-                Some(point_id),
-                Some(n),
-                None,
-                reason,
-            )
-            .await?;
-        } else {
-            sqlx::query("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)")
-                .bind(point_id)
-                .bind(i64::from(n + 1))
-                .bind(store::now())
-                .execute(&mut **tx)
-                .await?;
-        }
-        Ok(())
     }
 
     /// After the verdict is committed: move the point on in memory and log it.
@@ -2244,6 +2200,40 @@ impl Engine<'_> {
         }
         Ok(())
     }
+}
+
+/// Write a verdict: the iteration is good (with the rules' evaluation), and either the point
+/// stops or its next iteration begins.
+fn record_verdict(script: &mut store::Script, point_id: &str, v: &Verdict) -> Result<()> {
+    let n = v.iteration;
+    script
+        .stmt("UPDATE iterations SET state = 'good', ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
+        .bind(store::now())
+        .bind(serde_json::to_string(&v.decision)?)
+        .bind(point_id.to_string())
+        .bind(i64::from(n));
+    if let Some((state, reason)) = &v.fate {
+        script
+            .stmt("UPDATE points SET state = ?, reason = ? WHERE id = ?")
+            .bind(state.to_string())
+            .bind(reason.clone())
+            .bind(point_id.to_string());
+        store::event_stmt(
+            script,
+            &format!("point-{state}"),
+            Some(point_id),
+            Some(n),
+            None,
+            reason,
+        );
+    } else {
+        script
+            .stmt("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)")
+            .bind(point_id.to_string())
+            .bind(i64::from(n + 1))
+            .bind(store::now());
+    }
+    Ok(())
 }
 
 fn first_line(s: &str) -> &str {

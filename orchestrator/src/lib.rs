@@ -11,6 +11,7 @@ pub mod graph;
 pub mod progress;
 pub mod prov;
 pub mod report;
+pub mod scratch;
 pub mod spec;
 pub mod stop;
 pub mod store;

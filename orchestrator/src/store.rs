@@ -138,6 +138,104 @@ pub fn now() -> String {
     Utc::now().to_rfc3339_opts(SecondsFormat::Millis, true)
 }
 
+/// Statements sent to SQLite as one script that runs as one transaction, in a single call to
+/// the database thread: each separate statement costs two thread wake-ups, which dominate
+/// the bookkeeping of short stages. The `?` placeholders of all statements take the bound
+/// values in order; their counts are checked before anything runs. Statements must not
+/// return rows.
+#[derive(Default)]
+pub struct Script {
+    sql: String,
+    args: sqlx::sqlite::SqliteArguments<'static>,
+    placeholders: usize,
+    bound: usize,
+    error: Option<String>,
+}
+
+impl Script {
+    /// An empty script.
+    pub fn new() -> Script {
+        Script::default()
+    }
+
+    /// Append one statement.
+    pub fn stmt(&mut self, sql: &str) -> &mut Script {
+        self.placeholders += sql.matches('?').count();
+        self.sql.push_str(sql);
+        self.sql.push_str(";\n");
+        self
+    }
+
+    /// Bind the next placeholder.
+    pub fn bind<T>(&mut self, value: T) -> &mut Script
+    where
+        T: 'static + Send + sqlx::Encode<'static, sqlx::Sqlite> + sqlx::Type<sqlx::Sqlite>,
+    {
+        use sqlx::Arguments;
+        self.bound += 1;
+        if let Err(e) = self.args.add(value) {
+            self.error.get_or_insert_with(|| e.to_string());
+        }
+        self
+    }
+
+    /// Whether no statement was added.
+    pub fn is_empty(&self) -> bool {
+        self.sql.is_empty()
+    }
+
+    /// Run every statement in one transaction (rolled back if any fails).
+    pub async fn commit(self, pool: &SqlitePool) -> Result<()> {
+        if let Some(e) = self.error {
+            bail!("internal: cannot bind a value: {e}");
+        }
+        if self.placeholders != self.bound {
+            bail!(
+                "internal: store script has {} placeholders but {} values",
+                self.placeholders,
+                self.bound
+            );
+        }
+        if self.sql.is_empty() {
+            return Ok(());
+        }
+        let text = format!("BEGIN IMMEDIATE;\n{}COMMIT;", self.sql);
+        let mut conn = pool.acquire().await?;
+        let result = sqlx::query_with(&text, self.args).execute(&mut *conn).await;
+        if let Err(e) = result {
+            // The script stops at the failing statement with the transaction open.
+            let _ = sqlx::query("ROLLBACK").execute(&mut *conn).await;
+            return Err(e).context("store transaction");
+        }
+        Ok(())
+    }
+}
+
+/// `n` rows of `cols` placeholders for a multi-row `VALUES`: `(?,?),(?,?)`.
+pub fn rows(n: usize, cols: usize) -> String {
+    let row = format!("({})", vec!["?"; cols].join(","));
+    vec![row; n].join(",")
+}
+
+/// Append an event to a script (see [`event`]).
+pub fn event_stmt(
+    script: &mut Script,
+    kind: &str,
+    point: Option<&str>,
+    iteration: Option<u32>,
+    attempt_id: Option<i64>,
+    detail: &str,
+) {
+    script
+        .stmt("INSERT INTO events(at, kind, point, iteration, attempt_id, detail) VALUES (?,?,?,?,?,?)")
+        .bind(now())
+        .bind(kind.to_string())
+        .bind(point.map(str::to_string))
+        .bind(iteration.map(i64::from))
+        .bind(attempt_id)
+        .bind(detail.to_string());
+}
+
 /// A time as the store writes it.
 pub fn time_text(t: DateTime<Utc>) -> String {
     t.to_rfc3339_opts(SecondsFormat::Millis, true)
@@ -271,6 +369,53 @@ mod tests {
         .execute(&pool)
         .await;
         assert!(r.is_err());
+        Ok(())
+    }
+
+    #[tokio::test]
+    async fn a_script_binds_across_statements_and_is_all_or_nothing() -> Result<()> {
+        let d = tempfile::tempdir()?;
+        let pool = open(&d.path().join("rondo.db")).await?;
+        let mut ok = Script::new();
+        ok.stmt("INSERT INTO events(at, kind, detail) VALUES (?, ?, ?)")
+            .bind("t1".to_string())
+            .bind("a".to_string())
+            .bind("first".to_string());
+        ok.stmt("INSERT INTO events(at, kind, detail) VALUES (?, 'b', ?)")
+            .bind("t2".to_string())
+            .bind("second".to_string());
+        ok.commit(&pool).await?;
+        let rows: Vec<(String, String, String)> =
+            sqlx::query_as("SELECT at, kind, detail FROM events ORDER BY seq")
+                .fetch_all(&pool)
+                .await?;
+        assert_eq!(
+            rows,
+            vec![
+                ("t1".into(), "a".into(), "first".into()),
+                ("t2".into(), "b".into(), "second".into())
+            ]
+        );
+        // The second statement breaks a foreign key: the first must not stay.
+        let mut bad = Script::new();
+        bad.stmt("INSERT INTO events(at, kind, detail) VALUES ('t3', 'c', 'kept?')");
+        bad.stmt("INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES (?, 'x', 'y')")
+            .bind(999_i64);
+        assert!(bad.commit(&pool).await.is_err());
+        let n: i64 = sqlx::query_scalar("SELECT count(*) FROM events")
+            .fetch_one(&pool)
+            .await?;
+        assert_eq!(n, 2, "a failed script leaves nothing behind");
+        // The connection is usable (no transaction left open).
+        sqlx::query("INSERT INTO events(at, kind, detail) VALUES ('t4', 'd', 'after')")
+            .execute(&pool)
+            .await?;
+        // Placeholder and value counts must agree.
+        let mut short = Script::new();
+        short
+            .stmt("INSERT INTO events(at, kind, detail) VALUES (?, ?, ?)")
+            .bind("t5".to_string());
+        assert!(short.commit(&pool).await.is_err());
         Ok(())
     }
 
