@@ -1035,8 +1035,11 @@ impl Engine<'_> {
             let stage = &self.campaign.stages[self.points[p].next_stage];
             let is_builtin = stage.kind.is_builtin();
             if !is_builtin && self.inflight.len() >= slots {
+                // Every slot is taken: the rest wait for the next completion as they are
+                // (scanning them all on every event would cost O(points) per attempt).
                 waiting.push_back(p);
-                continue;
+                waiting.extend(self.ready.drain(..));
+                break;
             }
             self.start_attempt(p).await?;
             if self.points[p].outstanding.is_none() && self.points[p].phase == PointPhase::Active {
