@@ -1767,7 +1767,8 @@ impl Engine<'_> {
                     outs.push((role.clone(), h, size, file.clone()));
                 }
                 let point_id = self.points[fl.point].spec.id.clone();
-                let launch = self.unrecorded.remove(&id);
+                let (launch_started, launch_host, launch_handle) =
+                    launch_fields(started, host, self.unrecorded.remove(&id));
                 // The iteration's last stage: its verdict goes into the same transaction.
                 let last = fl.stage + 1 == self.campaign.stages.len();
                 if last {
@@ -1834,13 +1835,9 @@ impl Engine<'_> {
                          handle_id = coalesce(?, handle_id) WHERE id = ?",
                     )
                     .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
-                    .bind(
-                        started
-                            .map(store::time_text)
-                            .or_else(|| launch.as_ref().map(|l| l.started_at.clone())),
-                    )
-                    .bind(host.or_else(|| launch.as_ref().map(|l| l.host.clone())))
-                    .bind(launch.as_ref().map(|l| l.handle_id.clone()))
+                    .bind(launch_started)
+                    .bind(launch_host)
+                    .bind(launch_handle)
                     .bind(id);
                 if let Some(v) = &verdict {
                     record_verdict(&mut script, &point_id, v)?;
@@ -1883,7 +1880,8 @@ impl Engine<'_> {
                 free,
                 state,
             } => {
-                let launch = self.unrecorded.remove(&id);
+                let (launch_started, launch_host, launch_handle) =
+                    launch_fields(started, host, self.unrecorded.remove(&id));
                 sqlx::query(
                     "UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, exit_status = ?, \
                      ended_at = ?, started_at = coalesce(?, started_at), host = coalesce(?, host), \
@@ -1894,13 +1892,9 @@ impl Engine<'_> {
                 .bind(&message)
                 .bind(exit_status)
                 .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
-                .bind(
-                    started
-                        .map(store::time_text)
-                        .or_else(|| launch.as_ref().map(|l| l.started_at.clone())),
-                )
-                .bind(host.or_else(|| launch.as_ref().map(|l| l.host.clone())))
-                .bind(launch.as_ref().map(|l| l.handle_id.clone()))
+                .bind(launch_started)
+                .bind(launch_host)
+                .bind(launch_handle)
                 .bind(id)
                 .execute(&self.pool)
                 .await?;
@@ -2203,6 +2197,24 @@ impl Engine<'_> {
         }
         Ok(())
     }
+}
+
+/// Start time, host and process group of an ended attempt, as its final row records them:
+/// from its completion where it says, else from its launch not yet written.
+fn launch_fields(
+    started: Option<DateTime<Utc>>,
+    host: Option<String>,
+    launch: Option<UnrecordedLaunch>,
+) -> (Option<String>, Option<String>, Option<String>) {
+    let (l_started, l_host, l_handle) = match launch {
+        Some(l) => (Some(l.started_at), Some(l.host), Some(l.handle_id)),
+        None => (None, None, None),
+    };
+    (
+        started.map(store::time_text).or(l_started),
+        host.or(l_host),
+        l_handle,
+    )
 }
 
 /// Write a verdict: the iteration is good (with the rules' evaluation), and either the point
