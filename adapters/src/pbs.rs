@@ -23,9 +23,7 @@ use std::time::Duration;
 
 use tokio::sync::mpsc::UnboundedSender;
 
-use crate::executor::{
-    Completion, ExecError, Executor, Handle, LaunchRequest, Reattached, Resources, Shutdown,
-};
+use crate::executor::{Completion, ExecError, LaunchRequest, Resources};
 use crate::slurm::batch::{
     self, run_capture, run_full, BatchCore, BatchStats, BatchSystem, EndKind, JobState,
     PollSettings,
@@ -484,41 +482,7 @@ impl PbsExecutor {
     }
 }
 
-#[async_trait::async_trait]
-impl Executor for PbsExecutor {
-    fn kind(&self) -> &'static str {
-        "pbs"
-    }
-
-    fn slots(&self) -> usize {
-        self.core.slots()
-    }
-
-    async fn launch(&self, req: LaunchRequest) -> Result<Handle, ExecError> {
-        self.core.launch(req).await
-    }
-
-    async fn reattach(
-        &self,
-        attempt_id: i64,
-        handle: &Handle,
-        workdir: &Path,
-    ) -> Result<Reattached, ExecError> {
-        self.core.reattach(attempt_id, handle, workdir).await
-    }
-
-    async fn cancel(&self, attempt_id: i64, reason: &str) -> Result<(), ExecError> {
-        self.core.cancel(attempt_id, reason).await
-    }
-
-    async fn cancel_recorded(&self, handle: &Handle, reason: &str) -> Result<(), ExecError> {
-        self.core.cancel_recorded(handle, reason).await
-    }
-
-    async fn shutdown(&self, mode: Shutdown) -> Result<(), ExecError> {
-        self.core.shutdown(mode).await
-    }
-}
+crate::batch_executor!(PbsExecutor, "pbs");
 
 #[cfg(test)]
 mod tests {

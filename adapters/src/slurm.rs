@@ -16,9 +16,7 @@ use std::time::Duration;
 
 use tokio::sync::mpsc::UnboundedSender;
 
-use crate::executor::{
-    Completion, ExecError, Executor, Handle, LaunchRequest, Reattached, Resources, Shutdown,
-};
+use crate::executor::{Completion, ExecError, LaunchRequest, Resources};
 use batch::{
     run_capture, sanitize_job_name, BatchCore, BatchStats, BatchSystem, EndKind, JobState,
     PollSettings,
@@ -457,41 +455,7 @@ impl SlurmExecutor {
     }
 }
 
-#[async_trait::async_trait]
-impl Executor for SlurmExecutor {
-    fn kind(&self) -> &'static str {
-        "slurm"
-    }
-
-    fn slots(&self) -> usize {
-        self.core.slots()
-    }
-
-    async fn launch(&self, req: LaunchRequest) -> Result<Handle, ExecError> {
-        self.core.launch(req).await
-    }
-
-    async fn reattach(
-        &self,
-        attempt_id: i64,
-        handle: &Handle,
-        workdir: &Path,
-    ) -> Result<Reattached, ExecError> {
-        self.core.reattach(attempt_id, handle, workdir).await
-    }
-
-    async fn cancel(&self, attempt_id: i64, reason: &str) -> Result<(), ExecError> {
-        self.core.cancel(attempt_id, reason).await
-    }
-
-    async fn cancel_recorded(&self, handle: &Handle, reason: &str) -> Result<(), ExecError> {
-        self.core.cancel_recorded(handle, reason).await
-    }
-
-    async fn shutdown(&self, mode: Shutdown) -> Result<(), ExecError> {
-        self.core.shutdown(mode).await
-    }
-}
+crate::batch_executor!(SlurmExecutor, "slurm");
 
 #[cfg(test)]
 mod tests {

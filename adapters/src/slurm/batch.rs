@@ -19,6 +19,64 @@ use crate::executor::{
     Completion, ExecError, Handle, LaunchRequest, Outcome, Reattached, Shutdown,
 };
 
+/// Implements [`crate::executor::Executor`] for a batch executor type that holds its
+/// [`BatchCore`] in a field `core`: every call goes to the core, which does the work the
+/// same way for every batch system.
+#[macro_export]
+macro_rules! batch_executor {
+    ($ty:ty, $kind:literal) => {
+        #[async_trait::async_trait]
+        impl $crate::executor::Executor for $ty {
+            fn kind(&self) -> &'static str {
+                $kind
+            }
+
+            fn slots(&self) -> usize {
+                self.core.slots()
+            }
+
+            async fn launch(
+                &self,
+                req: $crate::executor::LaunchRequest,
+            ) -> Result<$crate::executor::Handle, $crate::executor::ExecError> {
+                self.core.launch(req).await
+            }
+
+            async fn reattach(
+                &self,
+                attempt_id: i64,
+                handle: &$crate::executor::Handle,
+                workdir: &std::path::Path,
+            ) -> Result<$crate::executor::Reattached, $crate::executor::ExecError> {
+                self.core.reattach(attempt_id, handle, workdir).await
+            }
+
+            async fn cancel(
+                &self,
+                attempt_id: i64,
+                reason: &str,
+            ) -> Result<(), $crate::executor::ExecError> {
+                self.core.cancel(attempt_id, reason).await
+            }
+
+            async fn cancel_recorded(
+                &self,
+                handle: &$crate::executor::Handle,
+                reason: &str,
+            ) -> Result<(), $crate::executor::ExecError> {
+                self.core.cancel_recorded(handle, reason).await
+            }
+
+            async fn shutdown(
+                &self,
+                mode: $crate::executor::Shutdown,
+            ) -> Result<(), $crate::executor::ExecError> {
+                self.core.shutdown(mode).await
+            }
+        }
+    };
+}
+
 /// File (in the attempt's workdir) the job script writes when the program starts:
 /// `<host> <UTC time>`.
 pub const START_MARKER: &str = ".rondo-start";
