@@ -880,6 +880,38 @@ fn killed_while_jobs_wait_and_run_adopts_them_and_redoes_nothing() {
     );
 }
 
+/// After a cancel: every job of `before` is CANCELLED in Slurm's view `after`, and every
+/// point of the campaign is `cancelled`. Returns the attempts of the store.
+fn assert_jobs_and_points_cancelled(
+    dir: &Path,
+    ws: &Path,
+    before: &[Job],
+    after: &[Job],
+) -> Vec<Attempt> {
+    for j in before {
+        let now = after
+            .iter()
+            .find(|a| a.id == j.id)
+            .unwrap_or_else(|| panic!("{j:?} forgotten by Slurm already"));
+        assert_eq!(now.state, "CANCELLED", "{j:?} -> {now:?}");
+    }
+    let s = status_json(dir, ws);
+    for p in s["points"].as_array().cloned().unwrap_or_default() {
+        assert_eq!(p["state"], "cancelled", "{p}");
+    }
+    attempts(ws, "")
+}
+
+/// Wait until no process of the workspace is left (the cancelled jobs' programs).
+fn wait_for_no_processes(ws: &Path) {
+    let ws_id = workspace_id(ws);
+    wait_for(
+        "the cancelled jobs' processes to end",
+        Duration::from_secs(30),
+        || processes_of_workspace(&ws_id).is_empty().then_some(()),
+    );
+}
+
 #[test]
 fn cancel_scancels_every_outstanding_job() {
     let _serial = serial();
@@ -921,15 +953,8 @@ fn cancel_scancels_every_outstanding_job() {
     let after = jobs_under(&ws);
     let left: Vec<_> = after.iter().filter(|j| j.active()).collect();
     assert!(left.is_empty(), "jobs left after the cancel: {left:?}");
-    for j in &before {
-        let now = after
-            .iter()
-            .find(|a| a.id == j.id)
-            .unwrap_or_else(|| panic!("{j:?} forgotten by Slurm already"));
-        assert_eq!(now.state, "CANCELLED", "{j:?} -> {now:?}");
-    }
-    // The store: those attempts cancelled, nothing outstanding, points cancelled, why recorded.
-    let all = attempts(&ws, "");
+    let all = assert_jobs_and_points_cancelled(dir, &ws, &before, &after);
+    // The store: those attempts cancelled, nothing outstanding, why recorded.
     for j in &before {
         let a = all
             .iter()
@@ -955,18 +980,9 @@ fn cancel_scancels_every_outstanding_job() {
             .all(|a| !matches!(a.state.as_str(), "planned" | "submitted" | "running")),
         "{all:?}"
     );
-    let s = status_json(dir, &ws);
-    for p in s["points"].as_array().cloned().unwrap_or_default() {
-        assert_eq!(p["state"], "cancelled", "{p}");
-    }
     assert!(!events(&ws, "cancel").is_empty(), "the cancel is recorded");
     // the sleeping program of the running job is gone too
-    let ws_id = workspace_id(&ws);
-    wait_for(
-        "the cancelled job's processes to end",
-        Duration::from_secs(30),
-        || processes_of_workspace(&ws_id).is_empty().then_some(()),
-    );
+    wait_for_no_processes(&ws);
     eprintln!("cancel test took {:.1} s", t0.elapsed().as_secs_f64());
 }
 
@@ -1006,14 +1022,7 @@ fn cancel_without_a_running_orchestrator_scancels_the_recorded_jobs() {
         let jobs = jobs_under(&ws);
         (!jobs.iter().any(Job::active)).then_some(jobs)
     });
-    for j in &before {
-        let now = after
-            .iter()
-            .find(|a| a.id == j.id)
-            .unwrap_or_else(|| panic!("{j:?} forgotten by Slurm already"));
-        assert_eq!(now.state, "CANCELLED", "{j:?} -> {now:?}");
-    }
-    let all = attempts(&ws, "");
+    let all = assert_jobs_and_points_cancelled(dir, &ws, &before, &after);
     assert_eq!(all.len(), 2, "{all:?}");
     for a in &all {
         assert_eq!(a.state, "cancelled", "{a:?}");
@@ -1024,22 +1033,13 @@ fn cancel_without_a_running_orchestrator_scancels_the_recorded_jobs() {
             "{a:?}"
         );
     }
-    let s = status_json(dir, &ws);
-    for p in s["points"].as_array().cloned().unwrap_or_default() {
-        assert_eq!(p["state"], "cancelled", "{p}");
-    }
     assert!(
         events(&ws, "cancel")
             .iter()
             .any(|(_, d)| d.contains("2 outstanding attempt(s) cancelled")),
         "the cancel is recorded"
     );
-    let ws_id = workspace_id(&ws);
-    wait_for(
-        "the cancelled jobs' processes to end",
-        Duration::from_secs(30),
-        || processes_of_workspace(&ws_id).is_empty().then_some(()),
-    );
+    wait_for_no_processes(&ws);
     eprintln!(
         "cancel without orchestrator took {:.1} s",
         t0.elapsed().as_secs_f64()
