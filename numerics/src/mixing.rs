@@ -336,7 +336,11 @@ pub fn mix(
         _ => 0,
     };
     let mut force_linear = false;
-    if config.restart_after_growth > 0 && growth_count >= config.restart_after_growth {
+    // Linear mixing has no history to reset: a growing residual is only counted.
+    if config.method != Method::Linear
+        && config.restart_after_growth > 0
+        && growth_count >= config.restart_after_growth
+    {
         events.push(format!(
             "history reset: residual grew {growth_count} times; linear step"
         ));

@@ -686,11 +686,52 @@ pub fn plan_text(c: &Campaign) -> String {
             st.retries
         );
     }
-    let _ = writeln!(s, "  stop ({:?} of):", c.combine);
+    let _ = writeln!(
+        s,
+        "  stop when {} of:",
+        match c.combine {
+            crate::spec::Combine::All => "all",
+            crate::spec::Combine::Any => "any",
+        }
+    );
+    let describe = |t: &crate::spec::RuleTest| match *t {
+        crate::spec::RuleTest::Abs(t) => format!("|change| < {t}"),
+        crate::spec::RuleTest::Rel(t) => format!("|change| < {t} × |value|"),
+        crate::spec::RuleTest::Errors(k) => format!("|change| ≤ {k} combined standard errors"),
+    };
     for r in &c.rules {
-        let _ = writeln!(s, "    {} {:?} for {}", r.metric, r.test, r.for_);
+        let test = describe(&r.test);
+        let _ = writeln!(
+            s,
+            "    {} {test}, {} iteration{} in a row{}",
+            r.metric,
+            r.for_,
+            if r.for_ == 1 { "" } else { "s" },
+            r.diverge_above
+                .map(|d| format!("; diverging if |change| > {d}"))
+                .unwrap_or_default()
+        );
     }
     let _ = writeln!(s, "    at most {} iterations", c.max_iterations);
+    if c.final_window > 0 {
+        let _ = writeln!(
+            s,
+            "    then a final window of {} iterations, averaged",
+            c.final_window
+        );
+    }
+    for sc in &c.schedules {
+        let _ = writeln!(
+            s,
+            "  schedule {}: {} at iteration 1, × {} (at most {}) after each iteration where {} {}",
+            sc.name,
+            sc.start,
+            sc.factor,
+            sc.max,
+            sc.metric,
+            describe(&sc.test)
+        );
+    }
     s
 }
 
@@ -823,25 +864,52 @@ fn status_text(s: &serde_json::Value) -> String {
                     .join(" ")
             })
             .unwrap_or_default();
-        let metrics = p["metrics"]
-            .as_object()
-            .map(|m| {
-                m.iter()
-                    .filter(|(k, _)| SHOWN_METRICS.iter().any(|m| k.ends_with(m)))
-                    .map(|(k, v)| {
-                        let err = p["errors"][k.as_str()]
-                            .as_f64()
-                            .map(|e| format!("±{e:.2e}"))
-                            .unwrap_or_default();
-                        format!("{k}={:.6}{err}", v.as_f64().unwrap_or(f64::NAN))
-                    })
-                    .collect::<Vec<_>>()
-                    .join(" ")
-            })
+        // After a final window the averages are the point's result; otherwise the metrics
+        // of the last good iteration.
+        let averaged = p["averages"].as_object().filter(|a| !a.is_empty());
+        let shown = |k: &str| SHOWN_METRICS.iter().any(|m| k.ends_with(m));
+        let metrics = match averaged {
+            Some(a) => a
+                .iter()
+                .filter(|(k, _)| shown(k))
+                .map(|(k, v)| {
+                    format!(
+                        "{k}={}",
+                        format_measurement(
+                            v["value"].as_f64().unwrap_or(f64::NAN),
+                            v["error"].as_f64()
+                        )
+                    )
+                })
+                .collect::<Vec<_>>(),
+            None => p["metrics"]
+                .as_object()
+                .map(|m| {
+                    m.iter()
+                        .filter(|(k, _)| shown(k))
+                        .map(|(k, v)| {
+                            format!(
+                                "{k}={}",
+                                format_measurement(
+                                    v.as_f64().unwrap_or(f64::NAN),
+                                    p["errors"][k.as_str()].as_f64()
+                                )
+                            )
+                        })
+                        .collect::<Vec<_>>()
+                })
+                .unwrap_or_default(),
+        }
+        .join(" ");
+        let window = averaged
+            .and_then(|a| a.values().next())
+            .and_then(|v| v["iterations"].as_array())
+            .and_then(|its| Some((its.first()?.as_i64()?, its.last()?.as_i64()?)))
+            .map(|(a, b)| format!(", averaged over iterations {a}-{b}"))
             .unwrap_or_default();
         let _ = writeln!(
             out,
-            "  {} {values}: {} at iteration {}{}",
+            "  {} {values}: {} at iteration {}{window}{}",
             p["id"].as_str().unwrap_or(""),
             p["state"].as_str().unwrap_or(""),
             p["iteration"],
@@ -874,6 +942,34 @@ fn status_text(s: &serde_json::Value) -> String {
         }
     }
     out
+}
+
+/// A value for people: with an error bar, the value to the error's second significant digit
+/// and the error to two digits (`0.92603 ± 0.00025`); without, six decimals, in scientific
+/// notation when it is very small or very large.
+fn format_measurement(value: f64, error: Option<f64>) -> String {
+    fn plain(v: f64) -> String {
+        if v == 0.0 {
+            "0".into()
+        } else if (1e-3..1e6).contains(&v.abs()) {
+            format!("{v:.6}")
+        } else if v.is_finite() {
+            format!("{v:.3e}")
+        } else {
+            format!("{v}")
+        }
+    }
+    match error {
+        Some(e) if e.is_finite() && e > 0.0 && value.is_finite() => {
+            let decimals = (1 - e.log10().floor() as i32).max(0) as usize;
+            if decimals > 10 || value.abs() >= 1e6 {
+                format!("{value:.5e} ± {e:.1e}")
+            } else {
+                format!("{value:.decimals$} ± {e:.decimals$}")
+            }
+        }
+        _ => plain(value),
+    }
 }
 
 /// `rondo cancel`: ask a running orchestrator to stop, or cancel what an earlier one left.
@@ -951,5 +1047,29 @@ async fn cancel(ws: &Path) -> Result<u8> {
             eprintln!("rondo: no orchestrator was running; cancelled {n} outstanding attempt(s)");
             Ok(EXIT_OK)
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::format_measurement;
+
+    #[test]
+    fn measurements_are_shown_to_the_precision_of_their_errors() {
+        assert_eq!(
+            format_measurement(0.926026511, Some(2.544e-4)),
+            "0.92603 ± 0.00025"
+        );
+        assert_eq!(
+            format_measurement(-1.7122489, Some(0.0138)),
+            "-1.712 ± 0.014"
+        );
+        assert_eq!(format_measurement(27.89, Some(0.3)), "27.89 ± 0.30");
+        assert_eq!(format_measurement(1234.5, Some(25.0)), "1234 ± 25");
+        assert_eq!(format_measurement(0.4, Some(0.0)), "0.400000");
+        assert_eq!(format_measurement(-1.719533505, None), "-1.719534");
+        assert_eq!(format_measurement(3.2e-7, None), "3.200e-7");
+        assert_eq!(format_measurement(0.0, None), "0");
+        assert_eq!(format_measurement(f64::NAN, None), "NaN");
     }
 }

@@ -2,6 +2,8 @@
 //! read-only looks into a workspace's SQLite store.
 #![allow(dead_code)]
 
+use sqlx::Row;
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
@@ -33,6 +35,18 @@ pub fn repo() -> PathBuf {
 /// A test fixture program.
 pub fn fixture(name: &str) -> PathBuf {
     repo().join("tests").join("fixtures").join(name)
+}
+
+/// Copy a campaign of `examples/` and its start files into `dir`.
+pub fn demo_in(dir: &Path, campaign: &str) {
+    let ex = repo().join("examples");
+    std::fs::copy(ex.join(campaign), dir.join(campaign))
+        .unwrap_or_else(|e| panic!("copy {campaign}: {e}"));
+    std::fs::create_dir_all(dir.join("start")).unwrap_or_else(|e| panic!("{e}"));
+    for f in ["density.json", "sigma.npy"] {
+        std::fs::copy(ex.join("start").join(f), dir.join("start").join(f))
+            .unwrap_or_else(|e| panic!("copy start file: {e}"));
+    }
 }
 
 /// Run rondo with arguments in `dir`.
@@ -114,4 +128,139 @@ pub fn processes_of_workspace(ws_id: &str) -> Vec<i32> {
         }
     }
     found
+}
+
+/// Everything a run recorded that must not depend on interruptions: per succeeded attempt,
+/// (point, iteration, stage) → outputs (role → hash) and metrics (name → value bits).
+pub type Record =
+    BTreeMap<(String, i64, String), (BTreeMap<String, String>, BTreeMap<String, u64>)>;
+
+pub fn record(ws: &Path) -> Record {
+    query(ws, |pool| {
+        Box::pin(async move {
+            let mut out = Record::new();
+            let rows = sqlx::query(
+                "SELECT a.id, a.point, a.iteration, a.stage FROM attempts a WHERE a.state = 'succeeded'",
+            )
+            .fetch_all(pool)
+            .await
+            .unwrap_or_default();
+            for r in rows {
+                let id: i64 = r.get(0);
+                let outs =
+                    sqlx::query("SELECT role, artifact FROM attempt_outputs WHERE attempt_id = ?")
+                        .bind(id)
+                        .fetch_all(pool)
+                        .await
+                        .unwrap_or_default()
+                        .into_iter()
+                        .map(|o| (o.get::<String, _>(0), o.get::<String, _>(1)))
+                        .collect();
+                let mets = sqlx::query("SELECT name, value FROM metrics WHERE attempt_id = ?")
+                    .bind(id)
+                    .fetch_all(pool)
+                    .await
+                    .unwrap_or_default()
+                    .into_iter()
+                    .map(|m| (m.get::<String, _>(0), m.get::<f64, _>(1).to_bits()))
+                    .collect();
+                let key = (r.get(1), r.get(2), r.get(3));
+                assert!(out.insert(key, (outs, mets)).is_none());
+            }
+            out
+        })
+    })
+}
+
+/// The seed of the kill instants: `RONDO_CRASH_SEED` when set, else `default`.
+pub fn crash_seed(default: u64) -> u64 {
+    std::env::var("RONDO_CRASH_SEED")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(default)
+}
+
+/// Start `rondo run CAMPAIGN --jobs 2` in `dir` `kills` times, SIGKILL it after a seeded
+/// random wait drawn from `window_ms` each time, then run it to the end (exit 0 required).
+/// Prints the seed and the instants so a failure can be replayed.
+pub fn kill_and_finish(
+    dir: &Path,
+    campaign: &str,
+    seed: u64,
+    kills: usize,
+    window_ms: std::ops::Range<u64>,
+) {
+    use std::process::Stdio;
+    let mut rng = rondo_numerics::rng::SplitMix64::new(seed);
+    let mut done = Vec::new();
+    for _ in 0..kills {
+        let wait = std::time::Duration::from_millis(
+            window_ms.start + rng.below(window_ms.end - window_ms.start),
+        );
+        let mut child = Command::new(rondo())
+            .args(["run", campaign, "--jobs", "2", "-q"])
+            .current_dir(dir)
+            .env("PATH", path_with_binaries())
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
+        std::thread::sleep(wait);
+        let finished = child.try_wait().ok().flatten().is_some();
+        let _ = child.kill(); // SIGKILL
+        let _ = child.wait();
+        done.push((wait.as_millis(), finished));
+    }
+    eprintln!("crash test seed {seed}: kills after (ms, had already finished) {done:?}");
+    let o = run_rondo(dir, &["run", campaign, "--jobs", "2", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+}
+
+/// The resumed run recorded exactly the attempts, output hashes and metric bits of the
+/// uninterrupted one.
+pub fn assert_same_record(reference: &Record, resumed: &Record, seed: u64) {
+    assert_eq!(
+        reference.len(),
+        resumed.len(),
+        "the same attempts succeeded (seed {seed})"
+    );
+    for (key, want) in reference {
+        let got = resumed
+            .get(key)
+            .unwrap_or_else(|| panic!("{key:?} missing after the crashes (seed {seed})"));
+        assert_eq!(got.0, want.0, "output hashes of {key:?} (seed {seed})");
+        assert_eq!(got.1, want.1, "metric bits of {key:?} (seed {seed})");
+    }
+}
+
+/// After kills and a resume: at most one success per point/iteration/stage, at least one
+/// attempt was caught in flight (else the test proved nothing), and no child is left.
+pub fn assert_resume_was_clean(ws: &Path, seed: u64) {
+    let (dups, ws_id, lost): (i64, String, i64) = query(ws, |pool| {
+        Box::pin(async move {
+            let d = sqlx::query_scalar(
+                "SELECT count(*) FROM (SELECT point, iteration, stage FROM attempts \
+                 WHERE state = 'succeeded' GROUP BY 1, 2, 3 HAVING count(*) > 1)",
+            )
+            .fetch_one(pool)
+            .await
+            .unwrap_or(-1);
+            let id = sqlx::query_scalar("SELECT workspace_id FROM campaign")
+                .fetch_one(pool)
+                .await
+                .unwrap_or_default();
+            let lost = sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'lost'")
+                .fetch_one(pool)
+                .await
+                .unwrap_or(0);
+            (d, id, lost)
+        })
+    });
+    assert_eq!(dups, 0, "a stage recorded succeeded twice (seed {seed})");
+    eprintln!("attempts lost to the kills and re-run: {lost}");
+    assert!(lost >= 1, "no kill hit an attempt in flight (seed {seed})");
+    assert!(
+        processes_of_workspace(&ws_id).is_empty(),
+        "children left behind (seed {seed})"
+    );
 }
