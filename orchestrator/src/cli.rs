@@ -703,10 +703,15 @@ pub fn plan_text(c: &Campaign) -> String {
         let test = describe(&r.test);
         let _ = writeln!(
             s,
-            "    {} {test}, {} iteration{} in a row{}",
+            "    {} {test}, {} iteration{} in a row{}{}",
             r.metric,
             r.for_,
             if r.for_ == 1 { "" } else { "s" },
+            if r.compare == crate::spec::Compare::Window {
+                " (every pair of the window)"
+            } else {
+                ""
+            },
             r.diverge_above
                 .map(|d| format!("; diverging if |change| > {d}"))
                 .unwrap_or_default()

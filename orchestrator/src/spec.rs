@@ -308,6 +308,12 @@ pub struct RuleSpec {
     /// Number of consecutive iterations the condition must hold.
     #[serde(default = "one", rename = "for")]
     pub for_: u32,
+    /// `successive` (default): each of the last `for` changes x_j − x_{j−1} passes the test.
+    /// `window`: every pair of the last `for` + 1 values passes it, so a slow drift that
+    /// stays below the noise from one iteration to the next but accumulates over the window
+    /// is not taken for convergence.
+    #[serde(default)]
+    pub compare: Compare,
     /// Fail the point as diverging when |x_n − x_{n−1}| exceeds this (from iteration 3 on).
     #[serde(default)]
     pub diverge_above: Option<f64>,
@@ -315,6 +321,17 @@ pub struct RuleSpec {
 
 fn one() -> u32 {
     1
+}
+
+/// Which values a stopping rule compares.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case")]
+pub enum Compare {
+    /// Each value with the one before it.
+    #[default]
+    Successive,
+    /// Every pair of values of the window of the last `for` + 1 iterations.
+    Window,
 }
 
 /// Stopping rules.
@@ -585,6 +602,8 @@ pub struct Rule {
     pub test: RuleTest,
     /// Consecutive iterations.
     pub for_: u32,
+    /// Successive changes or all pairs of the window.
+    pub compare: Compare,
     /// Divergence threshold on the change.
     pub diverge_above: Option<f64>,
 }
@@ -1167,6 +1186,7 @@ impl Validator<'_> {
                 metric: r.metric.value.clone(),
                 test: set[0],
                 for_: r.for_,
+                compare: r.compare,
                 diverge_above: r.diverge_above,
             });
         }

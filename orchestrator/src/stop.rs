@@ -3,13 +3,16 @@
 //!
 //! A rule holds at iteration j when the change of its metric between iterations j−1 and j
 //! passes the rule's test; it is satisfied at iteration n when it held at each of the last
-//! `for` iterations n−for+1..n. Iteration 1 has no change, so no rule holds there.
+//! `for` iterations n−for+1..n. Iteration 1 has no change, so no rule holds there. With
+//! `compare: window` the value of iteration j−1 must pass the test against every value of
+//! j..n, not only against x_j: the rule is satisfied when all pairs of the last `for` + 1
+//! values agree, which a slow drift hidden in the noise of each step does not.
 
 use std::collections::BTreeMap;
 
 use serde::Serialize;
 
-use crate::spec::{Combine, Rule, RuleTest};
+use crate::spec::{Combine, Compare, Rule, RuleTest};
 
 /// A metric value with its standard error (if noisy), at one iteration.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -85,7 +88,7 @@ pub fn decide(
         let mut change = None;
         let mut threshold = None;
         let mut j = n;
-        while j >= 2 {
+        'back: while j >= 2 {
             let (Some(cur), Some(prev)) = (sample(j), sample(j - 1)) else {
                 break;
             };
@@ -96,6 +99,15 @@ pub fn decide(
             }
             if !ok {
                 break;
+            }
+            if rule.compare == Compare::Window {
+                // x_{j−1} against the later values of the window too.
+                for later in j + 1..=n {
+                    match sample(later) {
+                        Some(x) if holds(rule.test, prev, x).0 => {}
+                        _ => break 'back,
+                    }
+                }
             }
             streak += 1;
             if streak >= rule.for_ {
@@ -162,6 +174,7 @@ mod tests {
             metric: "update.n_f".into(),
             test,
             for_: k,
+            compare: Compare::Successive,
             diverge_above: Some(0.5),
         }
     }
@@ -192,5 +205,24 @@ mod tests {
         let r = [rule(RuleTest::Errors(2.0), 1)];
         assert!(decide(&r, Combine::All, 9, &hist(&[1.0, 1.02])).rules_met);
         assert!(!decide(&r, Combine::All, 9, &hist(&[1.0, 1.03])).rules_met);
+    }
+
+    #[test]
+    fn a_window_rule_sees_a_drift_hidden_in_the_noise_of_each_step() {
+        // Errors 0.01: two combined errors are 0.0283. Steps of 0.02 pass one by one, but
+        // over three steps the drift is 0.06.
+        let drift = hist(&[1.0, 1.02, 1.04, 1.06]);
+        let successive = [rule(RuleTest::Errors(2.0), 3)];
+        assert!(decide(&successive, Combine::All, 9, &drift).rules_met);
+        let mut window = successive.clone();
+        window[0].compare = Compare::Window;
+        let d = decide(&window, Combine::All, 9, &drift);
+        assert!(!d.rules_met, "{d:?}");
+        // 1.06 passes against 1.04 only: the window that agrees ends with a streak of 1.
+        assert_eq!(d.rules[0].streak, 1);
+        // Noise around a plateau passes both.
+        let plateau = hist(&[1.0, 1.02, 1.0, 1.015, 0.998]);
+        assert!(decide(&window, Combine::All, 9, &plateau).rules_met);
+        assert!(decide(&successive, Combine::All, 9, &plateau).rules_met);
     }
 }
