@@ -147,3 +147,116 @@ fn check_results(dir: &std::path::Path, ws: &std::path::Path) {
         "{text}"
     );
 }
+
+/// The built-in Legendre filter on a user-style solver output: the Monte Carlo solver's
+/// histogram G(τ) (bin centres, values, errors) goes through `builtin: filter`, whose G_l
+/// and Σ(iω_n) must agree with what the solver itself derived from its direct Legendre
+/// measurement of the same samples.
+#[test]
+fn filter_stage_turns_a_histogram_into_the_solvers_self_energy() {
+    let _ = model_solid();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    demo_in(d.path(), CAMPAIGN);
+    let spec = r#"campaign: filter-check
+programs:
+  engine: { path: model-solid }
+parameters: { volume: 28.0, temperature: 1200 }
+start:
+  density: start/density.json
+  sigma: start/sigma.npy
+seed: 7
+cycle:
+  band:
+    run: [engine, band, --volume, "{{param:volume}}", --kmesh, "6", --density, "{{input:density}}", --out, "{{output:hk}}"]
+    inputs: { density: start.density }
+    outputs: { hk: hk.npy }
+  project:
+    run: [engine, project, --hk, "{{input:hk}}", --sigma, "{{input:sigma}}", --density, "{{input:density}}",
+          --temperature, "{{param:temperature}}", --out-delta, "{{output:delta}}", --out-levels, "{{output:levels}}"]
+    inputs: { hk: band.hk, sigma: start.sigma, density: start.density }
+    outputs: { delta: delta.npy, levels: levels.json }
+  solve:
+    run: [engine, solve, --delta, "{{input:delta}}", --levels, "{{input:levels}}", --u, "6", --solver, ctqmc,
+          --seed, "{{seed}}", --sweeps, "200000", --out-sigma, "{{output:sigma}}", --out-gtau, "{{output:gtau}}",
+          --out-gl, "{{output:gl}}"]
+    inputs: { delta: project.delta, levels: project.levels }
+    outputs: { sigma: sigma.npy, gtau: gtau.npy, gl: gl.npy }
+  filter:
+    builtin: filter
+    inputs: { gtau: solve.gtau, delta: project.delta, levels: project.levels }
+    outputs: { sigma: sigma.npy, gl: gl.npy }
+    with: { legendre: 40, matsubara: 512 }
+stop:
+  max-iterations: 1
+"#;
+    std::fs::write(d.path().join("f.yaml"), spec).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "f.yaml", "-q"]);
+    assert!(matches!(o.status.code(), Some(0 | 3)), "{}", shown(&o));
+    let ws = d.path().join("f.rondo");
+    let s = status_json(d.path(), &ws);
+    let m = &s["points"][0]["metrics"];
+    let e = &s["points"][0]["errors"];
+    let kept = m["filter.legendre_kept"].as_f64().unwrap_or(0.0);
+    assert!((4.0..=40.0).contains(&kept), "kept {kept}: {m}");
+    // Σ(iω_n) at the lowest frequencies: the two estimates of the same samples agree within
+    // the solver's error bar of Σ(iω_0).
+    let store = rondo::artifacts::ArtifactStore::open(&ws.join("store"))
+        .unwrap_or_else(|e| panic!("artifact store: {e:#}"));
+    let artifact = |stage: &'static str, role: &'static str| {
+        let hash: String = query(&ws, |pool| {
+            Box::pin(async move {
+                sqlx::query_scalar(
+                    "SELECT o.artifact FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
+                     WHERE a.stage = ? AND a.state = 'succeeded' AND o.role = ?",
+                )
+                .bind(stage)
+                .bind(role)
+                .fetch_one(pool)
+                .await
+                .unwrap_or_default()
+            })
+        });
+        rondo_numerics::npy::read_any(store.path_of(&hash))
+            .unwrap_or_else(|e| panic!("{stage}.{role} {hash}: {e}"))
+    };
+    let sig = |stage| {
+        artifact(stage, "sigma")
+            .as_complex()
+            .map(<[_]>::to_vec)
+            .unwrap_or_default()
+    };
+    let gl = |stage| {
+        artifact(stage, "gl")
+            .as_real()
+            .map(<[_]>::to_vec)
+            .unwrap_or_default()
+    };
+    // G_l: the filter's projection of the histogram against the solver's direct
+    // measurement, coefficient by coefficient (value, error pairs).
+    let (ga, gb) = (gl("solve"), gl("filter"));
+    // G_0 is the histogram's total weight, the same sum of samples in both: exact. The
+    // others differ by the histogram's bin error (h = β/200), measured up to 1σ at l = 12.
+    assert!(
+        (ga[0] - gb[0]).abs() < 1e-9 * ga[0].abs(),
+        "G_0: {} vs {}",
+        ga[0],
+        gb[0]
+    );
+    for l in 1..kept as usize {
+        let (x, y, sx) = (ga[2 * l], gb[2 * l], ga[2 * l + 1]);
+        assert!(
+            (x - y).abs() < 2.0 * sx,
+            "G_{l}: solver {x} ± {sx}, filter {y}"
+        );
+    }
+    let (a, b) = (sig("solve"), sig("filter"));
+    let tol = e["solve.sigma_iw0_im"].as_f64().unwrap_or(f64::NAN);
+    for n in 0..4 {
+        assert!(
+            (a[n] - b[n]).norm() < 2.0 * tol,
+            "Σ(iω_{n}): solver {} vs filter {} (solver's error at n = 0: {tol})",
+            a[n],
+            b[n]
+        );
+    }
+}

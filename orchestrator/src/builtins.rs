@@ -507,7 +507,8 @@ fn read_level(path: &Path) -> Result<f64, String> {
 }
 
 /// The Legendre filter (Boehnke et al., Phys. Rev. B 84, 075145 (2011)): from G(τ) on a
-/// uniform grid 0..β (`.npy` of shape (n, 2) = τ, G or (n, 3) = τ, G, σ) fit G_l with the
+/// uniform grid 0..β or on the bin centres of a histogram (`.npy` of shape (n, 2) = τ, G or
+/// (n, 3) = τ, G, σ) fit G_l with the
 /// same kernel the model engine's Monte Carlo solver uses, drop the coefficients lost in
 /// the noise (with σ given), and write the requested outputs: `gtau` (filtered, same grid
 /// and layout (n, 2)), `gl` ((kept, 2) = G_l, σ_l), `giw` (complex, `matsubara` positive
@@ -540,40 +541,38 @@ pub fn filter(
     let tau: Vec<f64> = (0..n).map(|i| data[i * cols]).collect();
     let g: Vec<f64> = (0..n).map(|i| data[i * cols + 1]).collect();
     let sigma: Option<Vec<f64>> = (cols == 3).then(|| (0..n).map(|i| data[i * cols + 2]).collect());
-    let beta = tau[n - 1];
-    if beta.partial_cmp(&0.0) != Some(std::cmp::Ordering::Greater) || tau[0].abs() > 1e-12 * beta {
-        return Err(format!("{shown}: the τ grid must run from 0 to β > 0"));
+    // Two uniform grids: τ_i = iβ/(n−1) (values at the points, τ_0 = 0), or the bin centres
+    // τ_i = (i + ½)β/n of a histogram (bin averages, τ_0 = h/2).
+    let h = if n > 1 { tau[1] - tau[0] } else { 0.0 };
+    let (grid, beta) = if tau[0].abs() <= 1e-12 * tau[n - 1].abs() {
+        (legendre::TauGrid::Endpoints, tau[n - 1])
+    } else {
+        (legendre::TauGrid::Midpoints, tau[n - 1] + 0.5 * h)
+    };
+    if !(beta > 0.0 && h > 0.0)
+        || (grid == legendre::TauGrid::Midpoints && (tau[0] - 0.5 * h).abs() > 1e-9 * beta)
+    {
+        return Err(format!(
+            "{shown}: the τ grid must be uniform on [0, β]: from τ = 0 to β, or the bin centres \
+             (i + ½)β/n of a histogram; found τ_0 = {}, τ_1 = {}, τ_last = {}",
+            tau[0],
+            tau.get(1).copied().unwrap_or(f64::NAN),
+            tau[n - 1]
+        ));
     }
-    let h = beta / (n - 1) as f64;
-    if let Some(i) = (0..n).find(|&i| (tau[i] - i as f64 * h).abs() > 1e-9 * beta) {
+    let t0 = tau[0];
+    if let Some(i) = (0..n).find(|&i| (tau[i] - t0 - i as f64 * h).abs() > 1e-9 * beta) {
         return Err(format!(
             "{shown}: row {i}: the τ grid is not uniform (τ = {}, expected {})",
             tau[i],
-            i as f64 * h
+            t0 + i as f64 * h
         ));
     }
     if sigma.as_ref().is_some_and(|s| s.iter().any(|e| *e < 0.0)) {
         return Err(format!("{shown}: negative error bars in column 3"));
     }
     let nl = with.legendre;
-    let mut gl = legendre::gl_from_uniform_tau(&g, beta, nl);
-    // Errors of G_l by linear propagation of independent σ_i through the same quadrature.
-    let gl_err: Option<Vec<f64>> = sigma.as_ref().map(|s| {
-        let mut var = vec![0.0; nl];
-        let mut unit = vec![0.0; n];
-        for i in 0..n {
-            if s[i] == 0.0 {
-                continue;
-            }
-            unit[i] = 1.0;
-            let k = legendre::gl_from_uniform_tau(&unit, beta, nl);
-            unit[i] = 0.0;
-            for l in 0..nl {
-                var[l] += (k[l] * s[i]).powi(2);
-            }
-        }
-        var.into_iter().map(f64::sqrt).collect()
-    });
+    let (mut gl, gl_err) = legendre::gl_from_tau_grid(&g, sigma.as_deref(), beta, grid, nl);
     let kept = match &gl_err {
         Some(e) => legendre::significant_count(&gl, e),
         None => nl,
