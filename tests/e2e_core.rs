@@ -465,3 +465,61 @@ stop:
     });
     assert!(events.iter().any(|e| e == "run-interrupted"), "{events:?}");
 }
+
+#[test]
+fn a_child_whose_row_a_crash_never_wrote_is_ended_before_the_rerun_starts() {
+    // A local child is started before its planned row is written (the row rides along with
+    // the next store call). Simulate the crash in between: a process tagged with this
+    // workspace and an attempt id the store has never seen.
+    use std::os::unix::process::CommandExt;
+    let d = tmp();
+    std::fs::write(
+        d.path().join("c.yaml"),
+        "campaign: quick\ncycle:\n  nop:\n    run: [/bin/true]\nstop:\n  max-iterations: 1\n",
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert!(matches!(o.status.code(), Some(0 | 3)), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let ws_id: String = query(&ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar("SELECT workspace_id FROM campaign")
+                .fetch_one(pool)
+                .await
+                .unwrap_or_default()
+        })
+    });
+    let mut stray = Command::new("/bin/sleep")
+        .arg("300")
+        .env("RONDO_WORKSPACE_ID", &ws_id)
+        .env("RONDO_ATTEMPT_ID", "987654")
+        .process_group(0)
+        .spawn()
+        .unwrap_or_else(|e| panic!("spawn: {e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--grace", "1"]);
+    assert!(matches!(o.status.code(), Some(0 | 3)), "{}", shown(&o));
+    let t0 = Instant::now();
+    let status = loop {
+        if let Some(s) = stray.try_wait().unwrap_or_else(|e| panic!("wait: {e}")) {
+            break s;
+        }
+        if t0.elapsed() > Duration::from_secs(10) {
+            let _ = stray.kill();
+            panic!("the unrecorded child was left running");
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    };
+    assert!(!status.success(), "ended by a signal: {status:?}");
+    let events: Vec<String> = query(&ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar("SELECT detail FROM events WHERE kind = 'orphans-ended'")
+                .fetch_all(pool)
+                .await
+                .unwrap_or_default()
+        })
+    });
+    assert!(
+        events.len() == 1 && events[0].contains("987654"),
+        "{events:?}"
+    );
+}

@@ -413,6 +413,77 @@ struct UnrecordedLaunch {
     started_at: String,
 }
 
+/// The planned row of a local attempt, not yet written. A local child is started before its
+/// row reaches the store; the row goes into the store call that records the attempt's end
+/// (or the next tick, or a stop), so a short attempt costs one store call instead of two.
+/// A crash in between leaves a child with no row: the next run ends it by its environment
+/// tag before starting anything (`end_untracked_children`), and the attempt number and id
+/// are simply used again.
+#[derive(Debug, Clone)]
+struct PlannedRow {
+    id: i64,
+    point: String,
+    iteration: u32,
+    stage: String,
+    attempt: u32,
+    argv_json: String,
+    workdir: String,
+    executor: &'static str,
+    program_path: String,
+    program_blake3: String,
+    program_version: Option<String>,
+    parameters_json: String,
+    seed: Option<String>,
+    created_at: String,
+    host: Option<String>,
+    inputs: Vec<(String, String)>,
+}
+
+/// Append the INSERTs of planned attempt rows (and their inputs) to a store script.
+fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
+    if rows.is_empty() {
+        return;
+    }
+    script.stmt(&format!(
+        "INSERT INTO attempts(id, point, iteration, stage, attempt, state, argv_json, workdir, executor, \
+         program_path, program_blake3, program_version, parameters_json, seed, rondo_version, created_at, host) \
+         VALUES {}",
+        vec!["(?,?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?,?)"; rows.len()].join(",")
+    ));
+    for r in &rows {
+        script
+            .bind(r.id)
+            .bind(r.point.clone())
+            .bind(i64::from(r.iteration))
+            .bind(r.stage.clone())
+            .bind(i64::from(r.attempt))
+            .bind(r.argv_json.clone())
+            .bind(r.workdir.clone())
+            .bind(r.executor)
+            .bind(r.program_path.clone())
+            .bind(r.program_blake3.clone())
+            .bind(r.program_version.clone())
+            .bind(r.parameters_json.clone())
+            .bind(r.seed.clone())
+            .bind(RONDO_VERSION)
+            .bind(r.created_at.clone())
+            .bind(r.host.clone());
+    }
+    let inputs: Vec<(i64, &String, &String)> = rows
+        .iter()
+        .flat_map(|r| r.inputs.iter().map(move |(role, h)| (r.id, role, h)))
+        .collect();
+    if !inputs.is_empty() {
+        script.stmt(&format!(
+            "INSERT INTO attempt_inputs(attempt_id, role, artifact) VALUES {}",
+            store::rows(inputs.len(), 3)
+        ));
+        for (id, role, h) in inputs {
+            script.bind(id).bind(role.clone()).bind(h.clone());
+        }
+    }
+}
+
 /// An attempt in flight.
 #[derive(Debug, Clone)]
 struct InFlight {
@@ -464,6 +535,12 @@ struct Engine<'a> {
     progress: Progress,
     parameters: serde_json::Map<String, serde_json::Value>,
     unrecorded: HashMap<i64, UnrecordedLaunch>,
+    /// Planned rows of started local attempts, not yet written (see [`PlannedRow`]).
+    planned: Vec<PlannedRow>,
+    /// The id the next attempt gets (ids are chosen here: the workspace lock makes this
+    /// orchestrator the only writer of attempts).
+    next_id: i64,
+    workspace_id: String,
     scratch: scratch::Pool,
 }
 
@@ -509,6 +586,9 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         progress,
         parameters,
         unrecorded: HashMap::new(),
+        planned: Vec::new(),
+        next_id: 0,
+        workspace_id: ws.workspace_id.clone(),
         scratch: scratch::Pool::open(&paths_scratch)?,
     };
     store::event(
@@ -566,6 +646,11 @@ impl Engine<'_> {
     async fn main(&mut self, mut rx: mpsc::UnboundedReceiver<Completion>) -> Result<RunSummary> {
         self.restore().await?;
         self.reconcile().await?;
+        self.end_untracked_children().await?;
+        self.next_id =
+            sqlx::query_scalar::<_, i64>("SELECT coalesce(max(id), 0) + 1 FROM attempts")
+                .fetch_one(&self.pool)
+                .await?;
         let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
             .context("cannot install the SIGINT handler")?;
         let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
@@ -1359,44 +1444,40 @@ impl Engine<'_> {
                     )
                 }
             };
-        // Record the planned attempt before anything runs: one statement, or one transaction
-        // with the inputs (the point turns `running` by a trigger of the store).
+        // The planned row: written now (one store call) for built-ins and batch jobs, whose
+        // later updates need it; for a local child it rides along with the store call that
+        // records the attempt's end (see `PlannedRow`).
         let local_host = matches!(executor_kind, "local" | "builtin").then(|| self.host.clone());
-        let insert = sqlx::query_scalar::<_, i64>(
-            "INSERT INTO attempts(point, iteration, stage, attempt, state, argv_json, workdir, executor, \
-             program_path, program_blake3, program_version, parameters_json, seed, rondo_version, created_at, host) \
-             VALUES (?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?,?) RETURNING id",
-        )
-        .bind(&point.id)
-        .bind(i64::from(iteration))
-        .bind(&stage.name)
-        .bind(i64::from(attempt))
-        .bind(serde_json::to_string(&argv)?)
-        .bind(workdir.display().to_string())
-        .bind(executor_kind)
-        .bind(program_path.display().to_string())
-        .bind(&program_hash)
-        .bind(&program_version)
-        .bind(serde_json::Value::Object(params).to_string())
-        .bind(uses_seed.then(|| seed.to_string()))
-        .bind(RONDO_VERSION)
-        .bind(store::now())
-        .bind(local_host);
-        let id: i64 = if inputs.is_empty() {
-            insert.fetch_one(&self.pool).await?
-        } else {
-            let mut tx = self.pool.begin().await?;
-            let id = insert.fetch_one(&mut *tx).await?;
-            let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
-                "INSERT INTO attempt_inputs(attempt_id, role, artifact) ",
-            );
-            q.push_values(&inputs, |mut b, (role, hash, _)| {
-                b.push_bind(id).push_bind(role).push_bind(hash);
-            });
-            q.build().execute(&mut *tx).await?;
-            tx.commit().await?;
-            id
+        let id = self.next_id;
+        self.next_id += 1;
+        let row = PlannedRow {
+            id,
+            point: point.id.clone(),
+            iteration,
+            stage: stage.name.clone(),
+            attempt,
+            argv_json: serde_json::to_string(&argv)?,
+            workdir: workdir.display().to_string(),
+            executor: executor_kind,
+            program_path: program_path.display().to_string(),
+            program_blake3: program_hash.clone(),
+            program_version: program_version.clone(),
+            parameters_json: serde_json::Value::Object(params).to_string(),
+            seed: uses_seed.then(|| seed.to_string()),
+            created_at: store::now(),
+            host: local_host,
+            inputs: inputs
+                .iter()
+                .map(|(role, hash, _)| (role.clone(), hash.clone()))
+                .collect(),
         };
+        if executor_kind == "local" && matches!(stage.kind, StageKind::Command { .. }) {
+            self.planned.push(row);
+        } else {
+            let mut script = store::Script::new();
+            push_planned(&mut script, vec![row]);
+            script.commit(&self.pool).await?;
+        }
         self.points[p].attempts[sidx] = attempt;
         let fl = InFlight {
             point: p,
@@ -1791,8 +1872,10 @@ impl Engine<'_> {
                 } else {
                     None
                 };
-                // Everything of this success (and the iteration's verdict) in one script.
+                // Everything of this success (and the iteration's verdict) in one script, after
+                // the planned rows not yet written (this attempt's among them, if it was short).
                 let mut script = store::Script::new();
+                push_planned(&mut script, std::mem::take(&mut self.planned));
                 if !outs.is_empty() {
                     let now = store::now();
                     script.stmt(&format!(
@@ -1880,6 +1963,7 @@ impl Engine<'_> {
                 free,
                 state,
             } => {
+                self.flush_planned().await?;
                 let (launch_started, launch_host, launch_handle) =
                     launch_fields(started, host, self.unrecorded.remove(&id));
                 sqlx::query(
@@ -2089,23 +2173,64 @@ impl Engine<'_> {
 
     /// Write the launches of local attempts still running (see [`UnrecordedLaunch`]).
     async fn record_launches(&mut self) -> Result<()> {
-        if self.unrecorded.is_empty() {
+        if self.unrecorded.is_empty() && self.planned.is_empty() {
             return Ok(());
         }
-        let mut tx = self.pool.begin().await?;
+        let mut script = store::Script::new();
+        push_planned(&mut script, std::mem::take(&mut self.planned));
         for (id, l) in self.unrecorded.drain() {
-            sqlx::query(
-                "UPDATE attempts SET state = 'running', handle_id = ?, host = ?, started_at = coalesce(started_at, ?) \
-                 WHERE id = ? AND state = 'planned'",
-            )
-            .bind(&l.handle_id)
-            .bind(&l.host)
-            .bind(&l.started_at)
-            .bind(id)
-            .execute(&mut *tx)
-            .await?;
+            script
+                .stmt(
+                    "UPDATE attempts SET state = 'running', handle_id = ?, host = ?, \
+                     started_at = coalesce(started_at, ?) WHERE id = ? AND state = 'planned'",
+                )
+                .bind(l.handle_id)
+                .bind(l.host)
+                .bind(l.started_at)
+                .bind(id);
         }
-        tx.commit().await?;
+        script.commit(&self.pool).await
+    }
+
+    /// Write the planned rows not yet written.
+    async fn flush_planned(&mut self) -> Result<()> {
+        if self.planned.is_empty() {
+            return Ok(());
+        }
+        let mut script = store::Script::new();
+        push_planned(&mut script, std::mem::take(&mut self.planned));
+        script.commit(&self.pool).await
+    }
+
+    /// Local children of this workspace left by an earlier orchestrator that no recorded
+    /// attempt accounts for (started, then the orchestrator died before the row was
+    /// written): end them before anything starts. Recorded attempts were reconciled already.
+    async fn end_untracked_children(&mut self) -> Result<()> {
+        if self.opts.executor.kind() != "local" {
+            return Ok(());
+        }
+        let orphans: Vec<(i64, i32)> = rondo_adapters::local::find_orphans(&self.workspace_id)
+            .into_iter()
+            .filter(|(attempt, _)| !self.inflight.contains_key(attempt))
+            .collect();
+        if orphans.is_empty() {
+            return Ok(());
+        }
+        let n = rondo_adapters::local::kill_orphans(&self.workspace_id, &orphans, self.opts.grace)
+            .await;
+        let ids: Vec<String> = orphans.iter().map(|(a, _)| a.to_string()).collect();
+        store::event(
+            &self.pool,
+            "orphans-ended",
+            None,
+            None,
+            None,
+            &format!(
+                "{n} unrecorded attempt(s) of an earlier orchestrator still running, ended: ids {}",
+                ids.join(", ")
+            ),
+        )
+        .await?;
         Ok(())
     }
 
@@ -2121,6 +2246,7 @@ impl Engine<'_> {
         } else {
             "signal received"
         };
+        self.record_launches().await?;
         self.progress
             .line(format!("stopping: {why}; ending outstanding attempts"));
         store::event(
