@@ -310,14 +310,7 @@ stop:
     assert_eq!(status.code(), Some(3));
     let s = status_json(d.path(), &ws);
     assert_eq!(s["points"][0]["state"], "cancelled");
-    let ws_id = query(&ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar::<_, String>("SELECT workspace_id FROM campaign")
-                .fetch_one(pool)
-                .await
-                .unwrap_or_default()
-        })
-    });
+    let ws_id = workspace_id(&ws);
     assert!(
         processes_of_workspace(&ws_id).is_empty(),
         "children left behind"
@@ -481,14 +474,7 @@ fn a_child_whose_row_a_crash_never_wrote_is_ended_before_the_rerun_starts() {
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert!(matches!(o.status.code(), Some(0 | 3)), "{}", shown(&o));
     let ws = d.path().join("c.rondo");
-    let ws_id: String = query(&ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar("SELECT workspace_id FROM campaign")
-                .fetch_one(pool)
-                .await
-                .unwrap_or_default()
-        })
-    });
+    let ws_id = workspace_id(&ws);
     let mut stray = Command::new("/bin/sleep")
         .arg("300")
         .env("RONDO_WORKSPACE_ID", &ws_id)

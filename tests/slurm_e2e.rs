@@ -36,10 +36,6 @@ const WS: &str = "campaign.rondo";
 /// Command stages of the demo (`mix` is built in and runs inside rondo).
 const COMMAND_STAGES: [&str; 4] = ["band", "project", "solve", "update"];
 
-/// Per succeeded attempt, (point, iteration, stage) → (output role → artifact hash,
-/// metric name → value bits).
-type Record = BTreeMap<(String, i64, String), (BTreeMap<String, String>, BTreeMap<String, u64>)>;
-
 // ---------------------------------------------------------------- Slurm presence and helpers
 
 /// Whether a working Slurm is here; skips loudly (or fails under RONDO_REQUIRE_SLURM=1).
@@ -339,43 +335,6 @@ fn campaign_in(dir: &Path, engine: Option<&Path>) {
     }
 }
 
-fn record(ws: &Path) -> Record {
-    query(ws, |pool| {
-        Box::pin(async move {
-            let mut out = Record::new();
-            let rows = sqlx::query(
-                "SELECT id, point, iteration, stage FROM attempts WHERE state = 'succeeded'",
-            )
-            .fetch_all(pool)
-            .await
-            .unwrap_or_else(|e| panic!("{e}"));
-            for r in rows {
-                let id: i64 = r.get(0);
-                let outs =
-                    sqlx::query("SELECT role, artifact FROM attempt_outputs WHERE attempt_id = ?")
-                        .bind(id)
-                        .fetch_all(pool)
-                        .await
-                        .unwrap_or_else(|e| panic!("{e}"))
-                        .into_iter()
-                        .map(|o| (o.get::<String, _>(0), o.get::<String, _>(1)))
-                        .collect();
-                let mets = sqlx::query("SELECT name, value FROM metrics WHERE attempt_id = ?")
-                    .bind(id)
-                    .fetch_all(pool)
-                    .await
-                    .unwrap_or_else(|e| panic!("{e}"))
-                    .into_iter()
-                    .map(|m| (m.get::<String, _>(0), m.get::<f64, _>(1).to_bits()))
-                    .collect();
-                let key = (r.get(1), r.get(2), r.get(3));
-                assert!(out.insert(key, (outs, mets)).is_none());
-            }
-            out
-        })
-    })
-}
-
 /// The same campaign with the local executor, run once for all tests.
 fn local_reference() -> &'static Record {
     static REF: OnceLock<Record> = OnceLock::new();
@@ -501,17 +460,6 @@ fn slow_engine(dir: &Path) -> PathBuf {
     std::fs::set_permissions(&slow, std::fs::Permissions::from_mode(0o755))
         .unwrap_or_else(|e| panic!("{e}"));
     slow
-}
-
-fn workspace_id(ws: &Path) -> String {
-    query(ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar("SELECT workspace_id FROM campaign")
-                .fetch_one(pool)
-                .await
-                .unwrap_or_else(|e| panic!("{e}"))
-        })
-    })
 }
 
 fn job_name(a: &Attempt) -> String {

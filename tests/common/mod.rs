@@ -109,6 +109,18 @@ where
     })
 }
 
+/// The workspace id recorded in `ws` (the tag of its child processes).
+pub fn workspace_id(ws: &Path) -> String {
+    query(ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar("SELECT workspace_id FROM campaign")
+                .fetch_one(pool)
+                .await
+                .unwrap_or_else(|e| panic!("{e}"))
+        })
+    })
+}
+
 /// Live processes whose environment tags them with this workspace id.
 pub fn processes_of_workspace(ws_id: &str) -> Vec<i32> {
     let mut found = Vec::new();
@@ -135,6 +147,7 @@ pub fn processes_of_workspace(ws_id: &str) -> Vec<i32> {
 pub type Record =
     BTreeMap<(String, i64, String), (BTreeMap<String, String>, BTreeMap<String, u64>)>;
 
+/// What `ws` recorded, read through rondo's own store layer (a store error fails the test).
 pub fn record(ws: &Path) -> Record {
     query(ws, |pool| {
         Box::pin(async move {
@@ -144,7 +157,7 @@ pub fn record(ws: &Path) -> Record {
             )
             .fetch_all(pool)
             .await
-            .unwrap_or_default();
+            .unwrap_or_else(|e| panic!("{e}"));
             for r in rows {
                 let id: i64 = r.get(0);
                 let outs =
@@ -152,7 +165,7 @@ pub fn record(ws: &Path) -> Record {
                         .bind(id)
                         .fetch_all(pool)
                         .await
-                        .unwrap_or_default()
+                        .unwrap_or_else(|e| panic!("{e}"))
                         .into_iter()
                         .map(|o| (o.get::<String, _>(0), o.get::<String, _>(1)))
                         .collect();
@@ -160,7 +173,7 @@ pub fn record(ws: &Path) -> Record {
                     .bind(id)
                     .fetch_all(pool)
                     .await
-                    .unwrap_or_default()
+                    .unwrap_or_else(|e| panic!("{e}"))
                     .into_iter()
                     .map(|m| (m.get::<String, _>(0), m.get::<f64, _>(1).to_bits()))
                     .collect();
@@ -236,7 +249,8 @@ pub fn assert_same_record(reference: &Record, resumed: &Record, seed: u64) {
 /// After kills and a resume: at most one success per point/iteration/stage, at least one
 /// attempt was caught in flight (else the test proved nothing), and no child is left.
 pub fn assert_resume_was_clean(ws: &Path, seed: u64) {
-    let (dups, ws_id, lost): (i64, String, i64) = query(ws, |pool| {
+    let ws_id = workspace_id(ws);
+    let (dups, lost): (i64, i64) = query(ws, |pool| {
         Box::pin(async move {
             let d = sqlx::query_scalar(
                 "SELECT count(*) FROM (SELECT point, iteration, stage FROM attempts \
@@ -245,15 +259,11 @@ pub fn assert_resume_was_clean(ws: &Path, seed: u64) {
             .fetch_one(pool)
             .await
             .unwrap_or(-1);
-            let id = sqlx::query_scalar("SELECT workspace_id FROM campaign")
-                .fetch_one(pool)
-                .await
-                .unwrap_or_default();
             let lost = sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'lost'")
                 .fetch_one(pool)
                 .await
                 .unwrap_or(0);
-            (d, id, lost)
+            (d, lost)
         })
     });
     assert_eq!(dups, 0, "a stage recorded succeeded twice (seed {seed})");
