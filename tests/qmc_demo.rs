@@ -138,6 +138,33 @@ fn check_results(dir: &std::path::Path, ws: &std::path::Path) {
         );
     }
 
+    // The published number traces back: `POINT/final/stage.metric` is the window mean that
+    // status reports, and its lineage starts at every attempt averaged.
+    let o = run_rondo(dir, &["trace", "p003/final/solve.n_f", "--json"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let t: serde_json::Value =
+        serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("trace --json: {e}"));
+    let avg = &points[2]["averages"]["solve.n_f"];
+    assert_eq!(t["final"]["value"], avg["value"], "{t}");
+    assert_eq!(t["final"]["error"], avg["error"]);
+    assert_eq!(t["final"]["how"], "window");
+    assert_eq!(t["final"]["iterations"], avg["iterations"]);
+    let listed: Vec<i64> = t["attempts"]
+        .as_array()
+        .map(|a| a.iter().filter_map(|x| x["id"].as_i64()).collect())
+        .unwrap_or_default();
+    let averaged = t["final"]["attempts"]
+        .as_array()
+        .cloned()
+        .unwrap_or_default();
+    assert_eq!(averaged.len(), 6);
+    for id in averaged.iter().filter_map(serde_json::Value::as_i64) {
+        assert!(
+            listed.contains(&id),
+            "attempt {id} of the window not in the lineage"
+        );
+    }
+
     // The text status shows the window averages with their error bars.
     let o = run_rondo(dir, &["status", CAMPAIGN]);
     let text = String::from_utf8_lossy(&o.stdout);

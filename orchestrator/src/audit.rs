@@ -133,6 +133,27 @@ pub struct MetricTarget {
     pub attempt_id: i64,
 }
 
+/// A point's final value of a metric, `POINT/final/stage.metric`: the final-window average
+/// (what `rondo status` and the equation of state report) or, without a window, the value of
+/// the last good iteration.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FinalTarget {
+    /// Point id.
+    pub point: String,
+    /// `stage.metric`.
+    pub name: String,
+    /// The final value.
+    pub value: f64,
+    /// Its standard error, if known.
+    pub error: Option<f64>,
+    /// `window` (an average) or `last`.
+    pub how: &'static str,
+    /// Iterations it comes from.
+    pub iterations: Vec<u32>,
+    /// Attempts whose metrics it uses (the lineage starts at all of them).
+    pub attempts: Vec<i64>,
+}
+
 /// What a user pointed at, resolved against the store.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 #[serde(tag = "kind", rename_all = "kebab-case")]
@@ -144,6 +165,8 @@ pub enum Target {
     },
     /// A metric of one attempt.
     Metric(MetricTarget),
+    /// A point's final value of a metric (several attempts when averaged).
+    Final(FinalTarget),
 }
 
 /// The upstream lineage of a target.
@@ -154,6 +177,9 @@ pub struct Lineage {
     /// The metric, when the target is one.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub metric: Option<MetricTarget>,
+    /// The final value, when the target is `POINT/final/stage.metric`.
+    #[serde(rename = "final", skip_serializing_if = "Option::is_none")]
+    pub final_value: Option<FinalTarget>,
     /// Campaign of the workspace.
     pub campaign: CampaignRef,
     /// Attempts, nearest first (breadth-first, each once).
@@ -203,8 +229,19 @@ fn is_hex(s: &str) -> bool {
     !s.is_empty() && s.bytes().all(|b| b.is_ascii_hexdigit())
 }
 
-/// Parse `POINT/ITERATION/stage.metric` (ITERATION a number or `last`).
-fn parse_metric_ref(s: &str) -> Option<(String, Option<i64>, String)> {
+/// Which iteration a metric reference names.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Which {
+    /// A number.
+    At(i64),
+    /// `last`: the last good iteration.
+    Last,
+    /// `final`: the final value (window average or last good).
+    Final,
+}
+
+/// Parse `POINT/ITERATION/stage.metric` (ITERATION a number, `last` or `final`).
+fn parse_metric_ref(s: &str) -> Option<(String, Which, String)> {
     let mut it = s.splitn(3, '/');
     let point = it.next()?;
     let iter = it.next()?;
@@ -212,12 +249,12 @@ fn parse_metric_ref(s: &str) -> Option<(String, Option<i64>, String)> {
     if point.is_empty() || !name.contains('.') || name.contains('/') {
         return None;
     }
-    let iteration = if iter == "last" {
-        None
-    } else {
-        Some(iter.parse::<i64>().ok()?)
+    let which = match iter {
+        "last" => Which::Last,
+        "final" => Which::Final,
+        n => Which::At(n.parse::<i64>().ok()?),
     };
-    Some((point.to_string(), iteration, name.to_string()))
+    Some((point.to_string(), which, name.to_string()))
 }
 
 /// Resolve a target to an artifact hash (see [`resolve`] for the accepted forms). A metric
@@ -239,6 +276,11 @@ pub async fn resolve_target(pool: &SqlitePool, ws: &Path, target: &str) -> Resul
                 )
             })
         }
+        Target::Final(f) => bail!(
+            "{target} is computed from {} attempts' metrics, not one file; trace it \
+             (`rondo trace {target}`) or name one iteration",
+            f.attempts.len()
+        ),
     }
 }
 
@@ -248,7 +290,8 @@ pub async fn resolve_target(pool: &SqlitePool, ws: &Path, target: &str) -> Resul
 ///   the recorded artifacts;
 /// * a hash prefix of at least [`MIN_PREFIX`] hex digits;
 /// * `POINT/ITERATION/stage.metric`, e.g. `p003/4/update.energy` or `p003/last/update.energy`
-///   (`last`: the last good iteration).
+///   (`last`: the last good iteration; `final`: the point's final value, the final-window
+///   mean when the campaign has a window).
 pub async fn resolve(
     pool: &SqlitePool,
     ws: &Path,
@@ -278,10 +321,16 @@ pub async fn resolve(
         }
         return Ok(Target::Artifact { hash });
     }
-    if let Some((point, iteration, name)) = parse_metric_ref(target) {
-        return resolve_metric(pool, &point, iteration, &name)
-            .await
-            .map(Target::Metric);
+    if let Some((point, which, name)) = parse_metric_ref(target) {
+        return match which {
+            Which::At(i) => resolve_metric(pool, &point, Some(i), &name)
+                .await
+                .map(Target::Metric),
+            Which::Last => resolve_metric(pool, &point, None, &name)
+                .await
+                .map(Target::Metric),
+            Which::Final => resolve_final(pool, &point, &name).await.map(Target::Final),
+        };
     }
     let t = target.to_ascii_lowercase();
     if is_hex(&t) {
@@ -330,6 +379,25 @@ fn list_short(items: &[String]) -> String {
             items[..6].join(", "),
             items[items.len() - 3..].join(", ")
         )
+    }
+}
+
+async fn resolve_final(pool: &SqlitePool, point: &str, name: &str) -> Result<FinalTarget> {
+    let point = resolve_point(pool, point).await?;
+    match crate::analysis::final_value(pool, &point, name).await? {
+        Some(v) => Ok(FinalTarget {
+            point,
+            name: name.to_string(),
+            value: v.value,
+            error: v.error,
+            how: v.how,
+            iterations: v.iterations,
+            attempts: v.attempts,
+        }),
+        // No value: let the per-iteration lookup say what is recorded instead.
+        None => resolve_metric(pool, &point, None, name)
+            .await
+            .and_then(|_| bail!("point {point} has no final value of `{name}` yet")),
     }
 }
 
@@ -620,6 +688,14 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
                 Some(m.clone()),
             )
         }
+        Target::Final(f) => {
+            queue.extend(f.attempts.iter().copied());
+            (format!("{}/final/{}", f.point, f.name), None)
+        }
+    };
+    let final_value = match target {
+        Target::Final(f) => Some(f.clone()),
+        _ => None,
     };
     let mut seen: HashSet<i64> = HashSet::new();
     while let Some(id) = queue.pop_front() {
@@ -647,6 +723,7 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
     Ok(Lineage {
         target: target_str,
         metric,
+        final_value,
         campaign,
         attempts,
         sources: sources.into_iter().collect(),
@@ -665,6 +742,23 @@ impl Lineage {
         if let Some(m) = &self.metric {
             let err = m.error.map(|e| format!(" ± {e}")).unwrap_or_default();
             let _ = writeln!(s, "value    {}{} (attempt {})", m.value, err, m.attempt_id);
+        }
+        if let Some(f) = &self.final_value {
+            let err = f.error.map(|e| format!(" ± {e}")).unwrap_or_default();
+            let from = match (f.how, f.iterations.first(), f.iterations.last()) {
+                ("window", Some(a), Some(b)) => {
+                    format!("mean of the final window, iterations {a}-{b}")
+                }
+                (_, _, Some(b)) => format!("last good iteration {b}"),
+                _ => "no iteration".to_string(),
+            };
+            let ids: Vec<String> = f.attempts.iter().map(|a| a.to_string()).collect();
+            let _ = writeln!(
+                s,
+                "value    {}{err} ({from}; attempts {})",
+                f.value,
+                ids.join(", ")
+            );
         }
         let _ = writeln!(
             s,
