@@ -439,6 +439,15 @@ struct PlannedRow {
     inputs: Vec<(String, String)>,
 }
 
+/// Successes of attempts that ran shorter than this are committed together (at the next
+/// half-second tick, after [`BATCH_MAX`] of them, or before the engine next reads the
+/// store); longer ones at once. A crash loses at most half a second of short work, which
+/// the next run repeats with the same numbers; nothing that took long is ever held back.
+const SHORT_ATTEMPT: Duration = Duration::from_secs(1);
+
+/// Most successes held in one group commit.
+const BATCH_MAX: usize = 256;
+
 /// Append the INSERTs of planned attempt rows (and their inputs) to a store script.
 fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
     if rows.is_empty() {
@@ -537,6 +546,10 @@ struct Engine<'a> {
     unrecorded: HashMap<i64, UnrecordedLaunch>,
     /// Planned rows of started local attempts, not yet written (see [`PlannedRow`]).
     planned: Vec<PlannedRow>,
+    /// Records of short successes not yet committed (group commit, see [`SHORT_ATTEMPT`]),
+    /// and how many.
+    batch: store::Script,
+    batched: usize,
     /// The id the next attempt gets (ids are chosen here: the workspace lock makes this
     /// orchestrator the only writer of attempts).
     next_id: i64,
@@ -587,6 +600,8 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         parameters,
         unrecorded: HashMap::new(),
         planned: Vec::new(),
+        batch: store::Script::new(),
+        batched: 0,
         next_id: 0,
         workspace_id: ws.workspace_id.clone(),
         scratch: scratch::Pool::open(&paths_scratch)?,
@@ -700,6 +715,7 @@ impl Engine<'_> {
                 }
             }
         }
+        self.flush().await?;
         let mut continued_as = None;
         if interrupted || cancelled {
             self.stop_everything(&mut rx, cancelled).await?;
@@ -840,7 +856,14 @@ impl Engine<'_> {
             }
             let mut fresh_iteration = true;
             match lasts.get(&spec.id) {
-                None => new_iterations.push((spec.id.clone(), 1)),
+                None => {
+                    // A point that never ran has no history to read: keep it in memory from
+                    // its first metric on.
+                    let mut h = History::new();
+                    h.entry(1).or_default();
+                    run.history = Some(h);
+                    new_iterations.push((spec.id.clone(), 1));
+                }
                 Some((it, st)) => {
                     run.iteration = *it as u32;
                     if st == "good" {
@@ -919,6 +942,7 @@ impl Engine<'_> {
         if self.points[p].history.is_some() {
             return Ok(());
         }
+        self.flush().await?;
         let point_id = self.points[p].spec.id.clone();
         let n = self.points[p].iteration;
         let rows = sqlx::query(
@@ -1256,7 +1280,10 @@ impl Engine<'_> {
             std::fs::create_dir(&inputs_dir)
                 .with_context(|| format!("{}: cannot create", inputs_dir.display()))?;
         }
-        // Inputs: resolve and place.
+        // Inputs: resolve and place (from the store, so held-back records go in first).
+        if !stage.inputs.is_empty() || matches!(stage.kind, StageKind::Mix(_)) {
+            self.flush().await?;
+        }
         let mut inputs: Vec<(String, String, PathBuf)> = Vec::new();
         for (role, src) in &stage.inputs {
             let Some(hash) = self.input_hash(&point.id, iteration, src).await? else {
@@ -1474,7 +1501,10 @@ impl Engine<'_> {
         if executor_kind == "local" && matches!(stage.kind, StageKind::Command { .. }) {
             self.planned.push(row);
         } else {
-            let mut script = store::Script::new();
+            // After everything held back (its iteration's row may be among it).
+            let mut script = std::mem::take(&mut self.batch);
+            self.batched = 0;
+            push_planned(&mut script, std::mem::take(&mut self.planned));
             push_planned(&mut script, vec![row]);
             script.commit(&self.pool).await?;
         }
@@ -1874,7 +1904,7 @@ impl Engine<'_> {
                 };
                 // Everything of this success (and the iteration's verdict) in one script, after
                 // the planned rows not yet written (this attempt's among them, if it was short).
-                let mut script = store::Script::new();
+                let mut script = std::mem::take(&mut self.batch);
                 push_planned(&mut script, std::mem::take(&mut self.planned));
                 if !outs.is_empty() {
                     let now = store::now();
@@ -1935,7 +1965,17 @@ impl Engine<'_> {
                         ev,
                     );
                 }
-                script.commit(&self.pool).await?;
+                let short = match (started, ended) {
+                    (Some(a), Some(b)) => (b - a).to_std().is_ok_and(|d| d < SHORT_ATTEMPT),
+                    _ => false,
+                };
+                self.batched += 1;
+                if short && self.batched < BATCH_MAX {
+                    self.batch = script;
+                } else {
+                    self.batched = 0;
+                    script.commit(&self.pool).await?;
+                }
                 if let Some(ev) = event {
                     self.progress
                         .line(format!("{point_id} iteration {}: {ev}", fl.iteration));
@@ -1963,7 +2003,7 @@ impl Engine<'_> {
                 free,
                 state,
             } => {
-                self.flush_planned().await?;
+                self.flush().await?;
                 let (launch_started, launch_host, launch_handle) =
                     launch_fields(started, host, self.unrecorded.remove(&id));
                 sqlx::query(
@@ -2173,10 +2213,11 @@ impl Engine<'_> {
 
     /// Write the launches of local attempts still running (see [`UnrecordedLaunch`]).
     async fn record_launches(&mut self) -> Result<()> {
-        if self.unrecorded.is_empty() && self.planned.is_empty() {
+        if self.unrecorded.is_empty() && self.planned.is_empty() && self.batch.is_empty() {
             return Ok(());
         }
-        let mut script = store::Script::new();
+        let mut script = std::mem::take(&mut self.batch);
+        self.batched = 0;
         push_planned(&mut script, std::mem::take(&mut self.planned));
         for (id, l) in self.unrecorded.drain() {
             script
@@ -2192,12 +2233,14 @@ impl Engine<'_> {
         script.commit(&self.pool).await
     }
 
-    /// Write the planned rows not yet written.
-    async fn flush_planned(&mut self) -> Result<()> {
-        if self.planned.is_empty() {
+    /// Commit what is held back: grouped successes and planned rows not yet written. Called
+    /// before the engine reads the store, so it always reads what it has decided.
+    async fn flush(&mut self) -> Result<()> {
+        if self.planned.is_empty() && self.batch.is_empty() {
             return Ok(());
         }
-        let mut script = store::Script::new();
+        let mut script = std::mem::take(&mut self.batch);
+        self.batched = 0;
         push_planned(&mut script, std::mem::take(&mut self.planned));
         script.commit(&self.pool).await
     }
