@@ -2,12 +2,16 @@
 //! executor, records every transition in the store, applies the stopping rules, and resumes
 //! from whatever the store holds.
 //!
-//! Crash safety rests on three rules. (1) An attempt row (with its argv, parameters, program
-//! hash and input hashes) is committed before its program starts, so a later orchestrator can
-//! always find and reconcile it. (2) An attempt becomes `succeeded` in one transaction that
-//! also records its output artifacts and metrics; artifacts are copied into the
-//! content-addressed store before that transaction, so the record never names a missing
-//! file. (3) Everything an attempt consumes is an artifact of an earlier succeeded attempt
+//! Crash safety rests on three rules. (1) Whatever runs can be found by a later
+//! orchestrator: a built-in's or batch job's attempt row (argv, parameters, program hash,
+//! input hashes) is committed before it starts; a local child carries the workspace and
+//! attempt ids in its environment, and its row is written with the record of its end (or at
+//! the next tick), so children a crash left without a row are ended by their tag at the next
+//! start. (2) An attempt becomes `succeeded` in one transaction that also records its output
+//! artifacts and metrics; artifacts are copied into the content-addressed store before that
+//! transaction, so the record never names a missing file. Successes of attempts under a
+//! second are committed in groups (the next tick, [`BATCH_MAX`], or before the engine next
+//! reads the store); a crash loses at most those, and they are repeated. (3) Everything an attempt consumes is an artifact of an earlier succeeded attempt
 //! (or a start file) and every random seed is derived from campaign, point, iteration and
 //! stage, so re-running a lost attempt gives the same inputs and the same numbers.
 //!
