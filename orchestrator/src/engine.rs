@@ -10,7 +10,7 @@
 //! start. (2) An attempt becomes `succeeded` in one transaction that also records its output
 //! artifacts and metrics; artifacts are copied into the content-addressed store before that
 //! transaction, so the record never names a missing file. Successes of attempts under a
-//! second are committed in groups (the next tick, [`BATCH_MAX`], or before the engine next
+//! second are committed in groups (the next tick, `BATCH_MAX` of them, or before the engine next
 //! reads the store); a crash loses at most those, and they are repeated. (3) Everything an attempt consumes is an artifact of an earlier succeeded attempt
 //! (or a start file) and every random seed is derived from campaign, point, iteration and
 //! stage, so re-running a lost attempt gives the same inputs and the same numbers.
