@@ -27,7 +27,7 @@ fn killed_runs_end_with_the_numbers_of_an_uninterrupted_run() {
     // Interrupted: SIGKILL at seeded random instants, then run to the end.
     let ws = b.path().join("model-sweep.rondo");
     let seed = crash_seed(20_261_202);
-    kill_and_finish(b.path(), "model-sweep.yaml", seed, 5, 300..5_300);
+    kill_and_finish(b.path(), "model-sweep.yaml", seed, 5, 300..5_300, 0);
     assert_same_record(&reference, &record(&ws), seed);
     let s = status_json(b.path(), &ws);
     for p in s["points"].as_array().cloned().unwrap_or_default() {
@@ -335,38 +335,7 @@ stop:
     );
     let seed = crash_seed(20_261_204);
     let ws = b.path().join("q.rondo");
-    // kill_and_finish wants exit 0 at the end; this campaign ends capped (3), so kill here.
-    let mut rng = rondo_numerics::rng::SplitMix64::new(seed);
-    for _ in 0..4 {
-        let wait = std::time::Duration::from_millis(100 + rng.below(1_500));
-        let mut child = std::process::Command::new(rondo())
-            .args(["run", "q.yaml", "--jobs", "2", "-q"])
-            .current_dir(b.path())
-            .stdout(std::process::Stdio::null())
-            .stderr(std::process::Stdio::null())
-            .spawn()
-            .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
-        std::thread::sleep(wait);
-        let _ = child.kill();
-        let _ = child.wait();
-    }
-    let o = run_rondo(b.path(), &["run", "q.yaml", "--jobs", "2", "-q"]);
-    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    kill_and_finish(b.path(), "q.yaml", seed, 4, 100..1_600, 3);
     assert_same_record(&reference, &record(&ws), seed);
-    let dups: i64 = query(&ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar(
-                "SELECT count(*) FROM (SELECT point, iteration, stage FROM attempts \
-                 WHERE state = 'succeeded' GROUP BY 1, 2, 3 HAVING count(*) > 1)",
-            )
-            .fetch_one(pool)
-            .await
-            .unwrap_or(-1)
-        })
-    });
-    assert_eq!(dups, 0, "seed {seed}");
-    assert!(
-        processes_of_workspace(&workspace_id(&ws)).is_empty(),
-        "children left behind (seed {seed})"
-    );
+    assert_no_double_success_nor_children(&ws, seed);
 }

@@ -315,14 +315,7 @@ stop:
         processes_of_workspace(&ws_id).is_empty(),
         "children left behind"
     );
-    let states: Vec<String> = query(&ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar("SELECT state FROM attempts")
-                .fetch_all(pool)
-                .await
-                .unwrap_or_default()
-        })
-    });
+    let states = strings(&ws, "SELECT state FROM attempts");
     assert_eq!(states, ["cancelled"]);
 }
 
@@ -448,14 +441,7 @@ stop:
         processes_of_workspace(&ws_id).is_empty(),
         "children left behind"
     );
-    let events: Vec<String> = query(&ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar("SELECT kind FROM events ORDER BY seq")
-                .fetch_all(pool)
-                .await
-                .unwrap_or_default()
-        })
-    });
+    let events = strings(&ws, "SELECT kind FROM events ORDER BY seq");
     assert!(events.iter().any(|e| e == "run-interrupted"), "{events:?}");
 }
 
@@ -496,14 +482,10 @@ fn a_child_whose_row_a_crash_never_wrote_is_ended_before_the_rerun_starts() {
         std::thread::sleep(Duration::from_millis(50));
     };
     assert!(!status.success(), "ended by a signal: {status:?}");
-    let events: Vec<String> = query(&ws, |pool| {
-        Box::pin(async move {
-            sqlx::query_scalar("SELECT detail FROM events WHERE kind = 'orphans-ended'")
-                .fetch_all(pool)
-                .await
-                .unwrap_or_default()
-        })
-    });
+    let events = strings(
+        &ws,
+        "SELECT detail FROM events WHERE kind = 'orphans-ended'",
+    );
     assert!(
         events.len() == 1 && events[0].contains("987654"),
         "{events:?}"

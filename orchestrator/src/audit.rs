@@ -232,10 +232,8 @@ fn is_hex(s: &str) -> bool {
 /// Which iteration a metric reference names.
 #[derive(Debug, Clone, Copy, PartialEq)]
 enum Which {
-    /// A number.
-    At(i64),
-    /// `last`: the last good iteration.
-    Last,
+    /// A number, or `None` for `last` (the last good iteration).
+    Iteration(Option<i64>),
     /// `final`: the final value (window average or last good).
     Final,
 }
@@ -250,9 +248,9 @@ fn parse_metric_ref(s: &str) -> Option<(String, Which, String)> {
         return None;
     }
     let which = match iter {
-        "last" => Which::Last,
+        "last" => Which::Iteration(None),
         "final" => Which::Final,
-        n => Which::At(n.parse::<i64>().ok()?),
+        n => Which::Iteration(Some(n.parse::<i64>().ok()?)),
     };
     Some((point.to_string(), which, name.to_string()))
 }
@@ -323,10 +321,7 @@ pub async fn resolve(
     }
     if let Some((point, which, name)) = parse_metric_ref(target) {
         return match which {
-            Which::At(i) => resolve_metric(pool, &point, Some(i), &name)
-                .await
-                .map(Target::Metric),
-            Which::Last => resolve_metric(pool, &point, None, &name)
+            Which::Iteration(i) => resolve_metric(pool, &point, i, &name)
                 .await
                 .map(Target::Metric),
             Which::Final => resolve_final(pool, &point, &name).await.map(Target::Final),
@@ -649,7 +644,7 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
     let mut queue: VecDeque<i64> = VecDeque::new();
     let mut attempts = Vec::new();
     let mut sources = BTreeSet::new();
-    let (target_str, metric) = match target {
+    let (target_str, metric, final_value) = match target {
         Target::Artifact { hash } => {
             let known: Option<String> =
                 sqlx::query_scalar("SELECT hash FROM artifacts WHERE hash = ?")
@@ -679,23 +674,24 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
                      the store may have been edited by hand"
                 );
             }
-            (hash.clone(), None)
+            (hash.clone(), None, None)
         }
         Target::Metric(m) => {
             queue.push_back(m.attempt_id);
             (
                 format!("{}/{}/{}", m.point, m.iteration, m.name),
                 Some(m.clone()),
+                None,
             )
         }
         Target::Final(f) => {
             queue.extend(f.attempts.iter().copied());
-            (format!("{}/final/{}", f.point, f.name), None)
+            (
+                format!("{}/final/{}", f.point, f.name),
+                None,
+                Some(f.clone()),
+            )
         }
-    };
-    let final_value = match target {
-        Target::Final(f) => Some(f.clone()),
-        _ => None,
     };
     let mut seen: HashSet<i64> = HashSet::new();
     while let Some(id) = queue.pop_front() {

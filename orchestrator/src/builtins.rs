@@ -508,8 +508,8 @@ fn read_level(path: &Path) -> Result<f64, String> {
 
 /// The Legendre filter (Boehnke et al., Phys. Rev. B 84, 075145 (2011)): from G(τ) on a
 /// uniform grid 0..β or on the bin centres of a histogram (`.npy` of shape (n, 2) = τ, G or
-/// (n, 3) = τ, G, σ) fit G_l with the
-/// same kernel the model engine's Monte Carlo solver uses, drop the coefficients lost in
+/// (n, 3) = τ, G, σ) fit G_l with the same kernel the model engine's Monte Carlo solver
+/// uses, drop the coefficients lost in
 /// the noise (with σ given), and write the requested outputs: `gtau` (filtered, same grid
 /// and layout (n, 2)), `gl` ((kept, 2) = G_l, σ_l), `giw` (complex, `matsubara` positive
 /// frequencies), and with Δ(iω_n) and the level ε, `sigma` = iω − ε − Δ − 1/G.

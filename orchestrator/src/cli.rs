@@ -872,40 +872,34 @@ fn status_text(s: &serde_json::Value) -> String {
         // After a final window the averages are the point's result; otherwise the metrics
         // of the last good iteration.
         let averaged = p["averages"].as_object().filter(|a| !a.is_empty());
-        let shown = |k: &str| SHOWN_METRICS.iter().any(|m| k.ends_with(m));
-        let metrics = match averaged {
+        let empty_map = serde_json::Map::new();
+        let values_and_errors: Vec<(&String, f64, Option<f64>)> = match averaged {
             Some(a) => a
                 .iter()
-                .filter(|(k, _)| shown(k))
                 .map(|(k, v)| {
-                    format!(
-                        "{k}={}",
-                        format_measurement(
-                            v["value"].as_f64().unwrap_or(f64::NAN),
-                            v["error"].as_f64()
-                        )
+                    (
+                        k,
+                        v["value"].as_f64().unwrap_or(f64::NAN),
+                        v["error"].as_f64(),
                     )
                 })
-                .collect::<Vec<_>>(),
+                .collect(),
             None => p["metrics"]
                 .as_object()
-                .map(|m| {
-                    m.iter()
-                        .filter(|(k, _)| shown(k))
-                        .map(|(k, v)| {
-                            format!(
-                                "{k}={}",
-                                format_measurement(
-                                    v.as_f64().unwrap_or(f64::NAN),
-                                    p["errors"][k.as_str()].as_f64()
-                                )
-                            )
-                        })
-                        .collect::<Vec<_>>()
+                .unwrap_or(&empty_map)
+                .iter()
+                .map(|(k, v)| {
+                    let e = p["errors"][k.as_str()].as_f64();
+                    (k, v.as_f64().unwrap_or(f64::NAN), e)
                 })
-                .unwrap_or_default(),
-        }
-        .join(" ");
+                .collect(),
+        };
+        let metrics = values_and_errors
+            .into_iter()
+            .filter(|(k, _, _)| SHOWN_METRICS.iter().any(|m| k.ends_with(m)))
+            .map(|(k, v, e)| format!("{k}={}", format_measurement(v, e)))
+            .collect::<Vec<_>>()
+            .join(" ");
         let window = averaged
             .and_then(|a| a.values().next())
             .and_then(|v| v["iterations"].as_array())

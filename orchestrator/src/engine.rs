@@ -10,10 +10,11 @@
 //! start. (2) An attempt becomes `succeeded` in one transaction that also records its output
 //! artifacts and metrics; artifacts are copied into the content-addressed store before that
 //! transaction, so the record never names a missing file. Successes of attempts under a
-//! second are committed in groups (the next tick, `BATCH_MAX` of them, or before the engine next
-//! reads the store); a crash loses at most those, and they are repeated. (3) Everything an attempt consumes is an artifact of an earlier succeeded attempt
-//! (or a start file) and every random seed is derived from campaign, point, iteration and
-//! stage, so re-running a lost attempt gives the same inputs and the same numbers.
+//! second are committed in groups (the next tick, `BATCH_MAX` of them, or before the engine
+//! next reads the store); a crash loses at most those, and they are repeated. (3) Everything
+//! an attempt consumes is an artifact of an earlier succeeded attempt (or a start file) and
+//! every random seed is derived from campaign, point, iteration and stage, so re-running a
+//! lost attempt gives the same inputs and the same numbers.
 //!
 //! Attempts lost to a crash, and attempts ended because rondo itself was stopped, do not use
 //! up a stage's retries; only real failures (exit status, signal, time limit, bad outputs,
@@ -463,36 +464,34 @@ fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
          VALUES {}",
         vec!["(?,?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?,?)"; rows.len()].join(",")
     ));
-    for r in &rows {
+    let mut inputs: Vec<(i64, String, String)> = Vec::new();
+    for r in rows {
+        inputs.extend(r.inputs.into_iter().map(|(role, h)| (r.id, role, h)));
         script
             .bind(r.id)
-            .bind(r.point.clone())
+            .bind(r.point)
             .bind(i64::from(r.iteration))
-            .bind(r.stage.clone())
+            .bind(r.stage)
             .bind(i64::from(r.attempt))
-            .bind(r.argv_json.clone())
-            .bind(r.workdir.clone())
+            .bind(r.argv_json)
+            .bind(r.workdir)
             .bind(r.executor)
-            .bind(r.program_path.clone())
-            .bind(r.program_blake3.clone())
-            .bind(r.program_version.clone())
-            .bind(r.parameters_json.clone())
-            .bind(r.seed.clone())
+            .bind(r.program_path)
+            .bind(r.program_blake3)
+            .bind(r.program_version)
+            .bind(r.parameters_json)
+            .bind(r.seed)
             .bind(RONDO_VERSION)
-            .bind(r.created_at.clone())
-            .bind(r.host.clone());
+            .bind(r.created_at)
+            .bind(r.host);
     }
-    let inputs: Vec<(i64, &String, &String)> = rows
-        .iter()
-        .flat_map(|r| r.inputs.iter().map(move |(role, h)| (r.id, role, h)))
-        .collect();
     if !inputs.is_empty() {
         script.stmt(&format!(
             "INSERT INTO attempt_inputs(attempt_id, role, artifact) VALUES {}",
             store::rows(inputs.len(), 3)
         ));
         for (id, role, h) in inputs {
-            script.bind(id).bind(role.clone()).bind(h.clone());
+            script.bind(id).bind(role).bind(h);
         }
     }
 }
@@ -1506,9 +1505,7 @@ impl Engine<'_> {
             self.planned.push(row);
         } else {
             // After everything held back (its iteration's row may be among it).
-            let mut script = std::mem::take(&mut self.batch);
-            self.batched = 0;
-            push_planned(&mut script, std::mem::take(&mut self.planned));
+            let (mut script, _) = self.held_back();
             push_planned(&mut script, vec![row]);
             script.commit(&self.pool).await?;
         }
@@ -1908,8 +1905,7 @@ impl Engine<'_> {
                 };
                 // Everything of this success (and the iteration's verdict) in one script, after
                 // the planned rows not yet written (this attempt's among them, if it was short).
-                let mut script = std::mem::take(&mut self.batch);
-                push_planned(&mut script, std::mem::take(&mut self.planned));
+                let (mut script, held) = self.held_back();
                 if !outs.is_empty() {
                     let now = store::now();
                     script.stmt(&format!(
@@ -1973,11 +1969,10 @@ impl Engine<'_> {
                     (Some(a), Some(b)) => (b - a).to_std().is_ok_and(|d| d < SHORT_ATTEMPT),
                     _ => false,
                 };
-                self.batched += 1;
-                if short && self.batched < BATCH_MAX {
+                if short && held + 1 < BATCH_MAX {
                     self.batch = script;
+                    self.batched = held + 1;
                 } else {
-                    self.batched = 0;
                     script.commit(&self.pool).await?;
                 }
                 if let Some(ev) = event {
@@ -2220,9 +2215,7 @@ impl Engine<'_> {
         if self.unrecorded.is_empty() && self.planned.is_empty() && self.batch.is_empty() {
             return Ok(());
         }
-        let mut script = std::mem::take(&mut self.batch);
-        self.batched = 0;
-        push_planned(&mut script, std::mem::take(&mut self.planned));
+        let (mut script, _) = self.held_back();
         for (id, l) in self.unrecorded.drain() {
             script
                 .stmt(
@@ -2240,13 +2233,16 @@ impl Engine<'_> {
     /// Commit what is held back: grouped successes and planned rows not yet written. Called
     /// before the engine reads the store, so it always reads what it has decided.
     async fn flush(&mut self) -> Result<()> {
-        if self.planned.is_empty() && self.batch.is_empty() {
-            return Ok(());
-        }
-        let mut script = std::mem::take(&mut self.batch);
-        self.batched = 0;
-        push_planned(&mut script, std::mem::take(&mut self.planned));
+        let (script, _) = self.held_back();
         script.commit(&self.pool).await
+    }
+
+    /// Take what is held back as the start of a new script: the grouped successes (and how
+    /// many), then the planned rows not yet written. The caller commits it or holds it again.
+    fn held_back(&mut self) -> (store::Script, usize) {
+        let mut script = std::mem::take(&mut self.batch);
+        push_planned(&mut script, std::mem::take(&mut self.planned));
+        (script, std::mem::take(&mut self.batched))
     }
 
     /// Local children of this workspace left by an earlier orchestrator that no recorded

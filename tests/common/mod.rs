@@ -194,7 +194,8 @@ pub fn crash_seed(default: u64) -> u64 {
 }
 
 /// Start `rondo run CAMPAIGN --jobs 2` in `dir` `kills` times, SIGKILL it after a seeded
-/// random wait drawn from `window_ms` each time, then run it to the end (exit 0 required).
+/// random wait drawn from `window_ms` each time, then run it to the end (exit `final_code`
+/// required: 0 when every point converges, 3 when some are capped).
 /// Prints the seed and the instants so a failure can be replayed.
 pub fn kill_and_finish(
     dir: &Path,
@@ -202,6 +203,7 @@ pub fn kill_and_finish(
     seed: u64,
     kills: usize,
     window_ms: std::ops::Range<u64>,
+    final_code: i32,
 ) {
     use std::process::Stdio;
     let mut rng = rondo_numerics::rng::SplitMix64::new(seed);
@@ -226,7 +228,7 @@ pub fn kill_and_finish(
     }
     eprintln!("crash test seed {seed}: kills after (ms, had already finished) {done:?}");
     let o = run_rondo(dir, &["run", campaign, "--jobs", "2", "-q"]);
-    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    assert_eq!(o.status.code(), Some(final_code), "{}", shown(&o));
 }
 
 /// The resumed run recorded exactly the attempts, output hashes and metric bits of the
@@ -249,28 +251,47 @@ pub fn assert_same_record(reference: &Record, resumed: &Record, seed: u64) {
 /// After kills and a resume: at most one success per point/iteration/stage, at least one
 /// attempt was caught in flight (else the test proved nothing), and no child is left.
 pub fn assert_resume_was_clean(ws: &Path, seed: u64) {
-    let ws_id = workspace_id(ws);
-    let (dups, lost): (i64, i64) = query(ws, |pool| {
+    assert_no_double_success_nor_children(ws, seed);
+    let lost: i64 = query(ws, |pool| {
         Box::pin(async move {
-            let d = sqlx::query_scalar(
+            sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'lost'")
+                .fetch_one(pool)
+                .await
+                .unwrap_or(0)
+        })
+    });
+    eprintln!("attempts lost to the kills and re-run: {lost}");
+    assert!(lost >= 1, "no kill hit an attempt in flight (seed {seed})");
+}
+
+/// At most one success per point/iteration/stage, and no child of the workspace alive.
+pub fn assert_no_double_success_nor_children(ws: &Path, seed: u64) {
+    let dups: i64 = query(ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar(
                 "SELECT count(*) FROM (SELECT point, iteration, stage FROM attempts \
                  WHERE state = 'succeeded' GROUP BY 1, 2, 3 HAVING count(*) > 1)",
             )
             .fetch_one(pool)
             .await
-            .unwrap_or(-1);
-            let lost = sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'lost'")
-                .fetch_one(pool)
-                .await
-                .unwrap_or(0);
-            (d, lost)
+            .unwrap_or(-1)
         })
     });
     assert_eq!(dups, 0, "a stage recorded succeeded twice (seed {seed})");
-    eprintln!("attempts lost to the kills and re-run: {lost}");
-    assert!(lost >= 1, "no kill hit an attempt in flight (seed {seed})");
     assert!(
-        processes_of_workspace(&ws_id).is_empty(),
+        processes_of_workspace(&workspace_id(ws)).is_empty(),
         "children left behind (seed {seed})"
     );
+}
+
+/// The first column of a query's rows, as text (a store error fails the test).
+pub fn strings(ws: &Path, sql: &'static str) -> Vec<String> {
+    query(ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar(sql)
+                .fetch_all(pool)
+                .await
+                .unwrap_or_else(|e| panic!("{sql}: {e}"))
+        })
+    })
 }
