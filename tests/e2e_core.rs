@@ -58,7 +58,7 @@ fn tmp() -> tempfile::TempDir {
 fn toy_campaign_converges_and_status_json_has_the_contract_fields() {
     let d = tmp();
     halfstep_campaign(d.path(), "ok", "", "[1.0, 2.0, 4.0]");
-    let o = run_rondo(d.path(), &["run", "c.yaml", "--jobs", "2"]);
+    let o = run_rondo(d.path(), &["run", "c.yaml", "--max-running", "2"]);
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let s = status_json(d.path(), &d.path().join("c.rondo"));
     assert_eq!(s["campaign"], "halfstep");
@@ -393,7 +393,7 @@ stop:
     )
     .unwrap_or_else(|e| panic!("{e}"));
     let mut child = Command::new(rondo())
-        .args(["run", "c.yaml", "--grace", "1", "--jobs", "2"])
+        .args(["run", "c.yaml", "--grace", "1", "--max-running", "2"])
         .current_dir(d.path())
         .stdout(Stdio::null())
         .stderr(Stdio::piped())

@@ -20,7 +20,7 @@ fn qmc_demo_converges_within_its_errors_and_resumes_bit_identically() {
     demo_in(a.path(), CAMPAIGN);
     demo_in(b.path(), CAMPAIGN);
 
-    let o = run_rondo(a.path(), &["run", CAMPAIGN, "--jobs", "2", "-q"]);
+    let o = run_rondo(a.path(), &["run", CAMPAIGN, "--max-running", "2", "-q"]);
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let ws = a.path().join("model-sweep-qmc.rondo");
     check_results(a.path(), &ws);
@@ -212,7 +212,7 @@ cycle:
     builtin: filter
     inputs: { gtau: solve.gtau, delta: project.delta, levels: project.levels }
     outputs: { sigma: sigma.npy, gl: gl.npy }
-    with: { legendre: 40, matsubara: 512 }
+    settings: { legendre: 40, matsubara: 512 }
 stop:
   max-iterations: 1
 "#;

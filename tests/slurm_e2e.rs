@@ -1,7 +1,7 @@
 //! End-to-end tests of the Slurm executor on the real one-node Slurm (`scripts/dev-slurm`),
 //! through the real `rondo` binary and a reduced copy of the demo campaign:
 //!
-//! - a run with `--executor slurm` converges with bit-identical metrics and output hashes to a
+//! - a run with `--on slurm` converges with bit-identical metrics and output hashes to a
 //!   run with the local executor, one batch job per command attempt, and `rondo trace` shows
 //!   the Slurm job ids (cross-checked against Slurm's own job-completion record);
 //! - rondo SIGKILLed while jobs are pending and running, then run again: every outstanding job
@@ -215,11 +215,11 @@ impl Background {
             .args([
                 "run",
                 FILE,
-                "--executor",
+                "--on",
                 "slurm",
                 "--poll-interval",
                 "1",
-                "--jobs",
+                "--max-running",
                 "4",
                 "-q",
             ])
@@ -342,7 +342,7 @@ fn local_reference() -> &'static Record {
         let _ = model_solid();
         let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
         campaign_in(d.path(), None);
-        let o = run_rondo(d.path(), &["run", FILE, "--jobs", "2", "-q"]);
+        let o = run_rondo(d.path(), &["run", FILE, "--max-running", "2", "-q"]);
         assert_eq!(
             o.status.code(),
             Some(0),
@@ -485,11 +485,11 @@ fn slurm_run_matches_the_local_run_and_trace_shows_job_ids() {
         &[
             "run",
             FILE,
-            "--executor",
+            "--on",
             "slurm",
             "--poll-interval",
             "1",
-            "--jobs",
+            "--max-running",
             "4",
             "-q",
         ],

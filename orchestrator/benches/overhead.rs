@@ -1,7 +1,7 @@
 //! Orchestrator overhead benchmark: 2,000 no-op stage attempts (`true`) run by `rondo run`
 //! with full provenance in SQLite, against the same 2,000 `true` commands run by
 //! `xargs -P`. Two campaign shapes (200 points × 10 iterations, 2,000 points × 1 iteration),
-//! `--jobs 2` and `--jobs 4`, each repeated (default 3 times); medians are reported, with a
+//! `--max-running 2` and `--max-running 4`, each repeated (default 3 times); medians are reported, with a
 //! per-attempt breakdown of where rondo's time goes taken from the attempt timestamps in
 //! the workspace database.
 //!
@@ -55,7 +55,7 @@ fn main() -> Result<()> {
             // Interleave the two so slow phases of a noisy machine hit both alike.
             for rep in 0..repeats {
                 let (t, ph) = run_rondo(&rondo, &truth, points, iters, j)?;
-                eprintln!("rondo {points}x{iters} --jobs {j} rep {rep}: {t:.2} s");
+                eprintln!("rondo {points}x{iters} --max-running {j} rep {rep}: {t:.2} s");
                 rondo_t.push(t);
                 phases.push(ph);
                 let x = run_xargs(&truth, j)?;
@@ -186,7 +186,7 @@ fn run_rondo(
             "run",
             "overhead.yaml",
             "--quiet",
-            "--jobs",
+            "--max-running",
             &jobs.to_string(),
         ])
         .current_dir(dir.path())

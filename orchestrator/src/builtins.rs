@@ -16,7 +16,7 @@ use rondo_numerics::mixing::{self, Method, MixerConfig, MixerState};
 use rondo_numerics::npy::{self, NpyArray};
 use serde::{Deserialize, Serialize};
 
-use crate::spec::{FilterWith, MixMethod, MixWith};
+use crate::spec::{FilterSettings, MixMethod, MixSettings};
 use crate::validate::Metric;
 
 /// File name of the mixer state in the attempt's scratch directory.
@@ -59,7 +59,7 @@ struct Block {
     kind: BlockKind,
     /// Number of vector elements of the block.
     len: usize,
-    /// Weight of the block in the mixer's metric (1 unless set in `with: weights`).
+    /// Weight of the block in the mixer's metric (1 unless set in `settings: weights`).
     weight: f64,
 }
 
@@ -94,7 +94,7 @@ pub struct MixReport {
 }
 
 /// The mixer configuration of a stage.
-pub fn config(with: &MixWith) -> MixerConfig {
+pub fn config(with: &MixSettings) -> MixerConfig {
     let d = MixerConfig::default();
     MixerConfig {
         method: match with.method {
@@ -111,7 +111,7 @@ pub fn config(with: &MixWith) -> MixerConfig {
 
 /// The argv recorded for a built-in mix attempt (it names the options that determine it).
 /// Weights appear only when set, so the one-array form keeps its argv.
-pub fn mix_argv(with: &MixWith) -> Vec<String> {
+pub fn mix_argv(with: &MixSettings) -> Vec<String> {
     let c = config(with);
     let mut argv = vec![
         "rondo".into(),
@@ -259,7 +259,7 @@ pub fn mix_pairs(
 /// One mixing step over `roles` = (role, new file, output file), in vector order. Errors are
 /// messages naming the file and what is wrong; nothing is written on error.
 pub fn mix(
-    with: &MixWith,
+    with: &MixSettings,
     roles: &[(String, PathBuf, PathBuf)],
     state: Option<&Path>,
     state_out: &Path,
@@ -468,7 +468,7 @@ fn check_layout(
 }
 
 /// The argv recorded for a built-in filter attempt.
-pub fn filter_argv(with: &FilterWith) -> Vec<String> {
+pub fn filter_argv(with: &FilterSettings) -> Vec<String> {
     vec![
         "rondo".into(),
         "builtin".into(),
@@ -514,7 +514,7 @@ fn read_level(path: &Path) -> Result<f64, String> {
 /// and layout (n, 2)), `gl` ((kept, 2) = G_l, σ_l), `giw` (complex, `matsubara` positive
 /// frequencies), and with Δ(iω_n) and the level ε, `sigma` = iω − ε − Δ − 1/G.
 pub fn filter(
-    with: &FilterWith,
+    with: &FilterSettings,
     gtau: &Path,
     delta: Option<&Path>,
     levels: Option<&Path>,
@@ -647,8 +647,8 @@ mod tests {
     use num_complex::Complex64;
     use std::collections::BTreeMap;
 
-    fn with(alpha: f64) -> MixWith {
-        MixWith {
+    fn with(alpha: f64) -> MixSettings {
+        MixSettings {
             method: MixMethod::Linear,
             alpha,
             history: None,
@@ -686,7 +686,7 @@ mod tests {
             ("sigma".to_string(), d.path().join("sigma.npy")),
             ("gl".to_string(), d.path().join("gl.npy")),
         ];
-        let w = FilterWith {
+        let w = FilterSettings {
             legendre: 30,
             matsubara: 64,
         };
@@ -995,7 +995,7 @@ mod tests {
                  \x20   builtin: mix\n\
                  \x20   inputs: {{ b: step.b, a: step.a }}\n\
                  \x20   outputs: {{ b: b.npy, a: a.json }}\n\
-                 \x20   with: {{ method: anderson, alpha: 0.5 }}\n\
+                 \x20   settings: {{ method: anderson, alpha: 0.5 }}\n\
                  stop: {{ max-iterations: 5 }}\n",
                 script = p("step.sh").display()
             );

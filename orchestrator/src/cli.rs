@@ -65,11 +65,11 @@ enum Command {
         /// Workspace folder (default: <campaign>.rondo beside the file).
         #[arg(long)]
         workspace: Option<PathBuf>,
-        /// Where command stages run.
-        #[arg(long, value_enum, default_value = "local")]
+        /// Where command stages run: as local child processes, or as Slurm batch jobs.
+        #[arg(long = "on", value_name = "PLACE", value_enum, default_value = "local")]
         executor: ExecutorArg,
         /// Most attempts outstanding at once (default: number of CPUs for local, 20 for slurm).
-        #[arg(long)]
+        #[arg(long = "max-running", value_name = "N")]
         jobs: Option<usize>,
         /// Give points that failed in an earlier run a fresh set of retries.
         #[arg(long)]
@@ -202,7 +202,7 @@ enum Command {
         #[arg(long, default_value_t = 20)]
         max_continuations: u32,
         /// Attempts running at once inside the allocation.
-        #[arg(long, default_value_t = 1)]
+        #[arg(long = "max-running", value_name = "N", default_value_t = 1)]
         jobs: usize,
         /// Only write and print the script.
         #[arg(long)]
@@ -301,7 +301,7 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                 ExecutorChoice::Slurm(_) => 20,
             });
             if jobs == 0 {
-                bail!(BadInput("--jobs must be at least 1".into()));
+                bail!(BadInput("--max-running must be at least 1".into()));
             }
             let opts = RunOptions {
                 workspace,
@@ -519,7 +519,7 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                     file.display().to_string(),
                     "--workspace".into(),
                     ws.display().to_string(),
-                    "--jobs".into(),
+                    "--max-running".into(),
                     jobs.to_string(),
                 ],
                 env: Default::default(),

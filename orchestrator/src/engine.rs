@@ -1030,7 +1030,7 @@ impl Engine<'_> {
             if executor != self.opts.executor.kind() {
                 bail!(
                     "attempt {id} ({point_id} iteration {iteration} stage {stage_name}) was left \
-                     outstanding on the `{executor}` executor; continue with --executor {executor} \
+                     outstanding on the `{executor}` executor; continue with --on {executor} \
                      so it can be reconciled"
                 );
             }

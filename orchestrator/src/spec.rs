@@ -194,7 +194,7 @@ pub enum MixMethod {
 /// Settings of the built-in `mix` stage.
 #[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
 #[serde(deny_unknown_fields, rename_all = "kebab-case")]
-pub struct MixWith {
+pub struct MixSettings {
     /// Method.
     pub method: MixMethod,
     /// Mixing parameter α in (0, 1].
@@ -254,23 +254,23 @@ pub struct StageSpec {
     pub allow_nonfinite: bool,
     /// Settings of a built-in stage.
     #[serde(default)]
-    pub with: Option<BuiltinWith>,
+    pub settings: Option<BuiltinSettings>,
 }
 
 /// Settings of a built-in stage: `mix` or `filter`.
 #[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
 #[serde(untagged)]
-pub enum BuiltinWith {
+pub enum BuiltinSettings {
     /// Settings of `mix`.
-    Mix(MixWith),
+    Mix(MixSettings),
     /// Settings of `filter`.
-    Filter(FilterWith),
+    Filter(FilterSettings),
 }
 
 /// Settings of the built-in `filter` stage (Legendre noise filter of a G(τ)).
 #[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
 #[serde(deny_unknown_fields, rename_all = "kebab-case")]
-pub struct FilterWith {
+pub struct FilterSettings {
     /// Legendre coefficients fitted (fewer are kept when the input has error bars and the
     /// higher ones drown in noise).
     pub legendre: usize,
@@ -572,9 +572,9 @@ pub enum StageKind {
         shell: bool,
     },
     /// Built-in mixing.
-    Mix(MixWith),
+    Mix(MixSettings),
     /// Built-in Legendre filter of a G(τ).
-    Filter(FilterWith),
+    Filter(FilterSettings),
 }
 
 impl StageKind {
@@ -1376,11 +1376,11 @@ impl Validator<'_> {
             );
             return None;
         };
-        if st.with.is_some() {
+        if st.settings.is_some() {
             self.push(
                 loc(first),
-                format!("stage `{sname}`: `with` is for built-in stages"),
-                "remove `with`",
+                format!("stage `{sname}`: `settings` is for built-in stages"),
+                "remove `settings`",
             );
         }
         let args: Vec<String> = run.iter().map(|s| s.value.clone()).collect();
@@ -1477,11 +1477,11 @@ impl Validator<'_> {
         at: (u64, u64),
         inputs: &[(String, Source)],
     ) -> Option<StageKind> {
-        let Some(BuiltinWith::Mix(with)) = st.with.clone() else {
+        let Some(BuiltinSettings::Mix(with)) = st.settings.clone() else {
             self.push(
                 at,
-                format!("built-in stage `{sname}` needs `with: {{ method: linear, alpha: 0.5 }}`"),
-                "add `with:` with the mixer settings",
+                format!("built-in stage `{sname}` needs `settings: {{ method: linear, alpha: 0.5 }}`"),
+                "add `settings:` with the mixer settings",
             );
             return None;
         };
@@ -1591,13 +1591,13 @@ impl Validator<'_> {
         at: (u64, u64),
         inputs: &[(String, Source)],
     ) -> Option<StageKind> {
-        let Some(BuiltinWith::Filter(with)) = st.with.clone() else {
+        let Some(BuiltinSettings::Filter(with)) = st.settings.clone() else {
             self.push(
                 at,
                 format!(
-                    "built-in stage `{sname}` needs `with: {{ legendre: 40, matsubara: 512 }}`"
+                    "built-in stage `{sname}` needs `settings: {{ legendre: 40, matsubara: 512 }}`"
                 ),
-                "add `with:` with the filter settings",
+                "add `settings:` with the filter settings",
             );
             return None;
         };
@@ -1767,7 +1767,7 @@ mod tests {
     #[test]
     fn mix_stage_roles_weights_and_metrics() {
         let outs = "outputs: { sigma: sigma.npy, density: density.json }";
-        let with = "with: { method: anderson, alpha: 0.4, history: 8 }";
+        let with = "settings: { method: anderson, alpha: 0.4, history: 8 }";
         // a diagnostic whose message (after file:line:col) is about the mixer
         let mixes = |d: &str| {
             d.lines()
@@ -1792,17 +1792,17 @@ mod tests {
             ),
             (
                 with,
-                "with: { method: anderson, alpha: 0.4, weights: { rho: 2 } }",
+                "settings: { method: anderson, alpha: 0.4, weights: { rho: 2 } }",
                 "weight for `rho`, which is not an input role",
             ),
             (
                 with,
-                "with: { method: anderson, alpha: 0.4, weights: { density: -1 } }",
+                "settings: { method: anderson, alpha: 0.4, weights: { density: -1 } }",
                 "not a positive number",
             ),
             (
                 with,
-                "with: { method: anderson, alpha: 0.4, history: 0 }",
+                "settings: { method: anderson, alpha: 0.4, history: 0 }",
                 "history must be at least 1",
             ),
             (

@@ -193,7 +193,7 @@ pub fn crash_seed(default: u64) -> u64 {
         .unwrap_or(default)
 }
 
-/// Start `rondo run CAMPAIGN --jobs 2` in `dir` `kills` times, SIGKILL it after a seeded
+/// Start `rondo run CAMPAIGN --max-running 2` in `dir` `kills` times, SIGKILL it after a seeded
 /// random wait drawn from `window_ms` each time, then run it to the end (exit `final_code`
 /// required: 0 when every point converges, 3 when some are capped).
 /// Prints the seed and the instants so a failure can be replayed.
@@ -213,7 +213,7 @@ pub fn kill_and_finish(
             window_ms.start + rng.below(window_ms.end - window_ms.start),
         );
         let mut child = Command::new(rondo())
-            .args(["run", campaign, "--jobs", "2", "-q"])
+            .args(["run", campaign, "--max-running", "2", "-q"])
             .current_dir(dir)
             .env("PATH", path_with_binaries())
             .stdout(Stdio::null())
@@ -227,7 +227,7 @@ pub fn kill_and_finish(
         done.push((wait.as_millis(), finished));
     }
     eprintln!("crash test seed {seed}: kills after (ms, had already finished) {done:?}");
-    let o = run_rondo(dir, &["run", campaign, "--jobs", "2", "-q"]);
+    let o = run_rondo(dir, &["run", campaign, "--max-running", "2", "-q"]);
     assert_eq!(o.status.code(), Some(final_code), "{}", shown(&o));
 }
 
