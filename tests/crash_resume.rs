@@ -19,7 +19,10 @@ fn killed_runs_end_with_the_numbers_of_an_uninterrupted_run() {
     demo_in(b.path(), "model-sweep.yaml");
 
     // Uninterrupted reference.
-    let o = run_rondo(a.path(), &["run", "model-sweep.yaml", "--max-running", "2", "-q"]);
+    let o = run_rondo(
+        a.path(),
+        &["run", "model-sweep.yaml", "--max-running", "2", "-q"],
+    );
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let reference = record(&a.path().join("model-sweep.rondo"));
     check_demo_results_and_trace(a.path());

@@ -37,6 +37,10 @@ pub struct PbsConfig {
     pub poll_interval: Duration,
     /// Longest wait between `qstat` calls while the server does not answer. Default 300 s.
     pub max_backoff: Duration,
+    /// Time between two looks at the outstanding jobs' exit markers on the shared file
+    /// system (one `stat` per job, no scheduler call). Default 1 s: a job's end is noticed
+    /// about a second after it, not at the next `qstat`. `Duration::ZERO` turns it off.
+    pub marker_interval: Duration,
     /// Program names (or paths) of the PBS clients.
     pub qsub: String,
     /// See [`PbsConfig::qsub`].
@@ -61,6 +65,7 @@ impl Default for PbsConfig {
         PbsConfig {
             poll_interval: Duration::from_secs(30),
             max_backoff: Duration::from_secs(300),
+            marker_interval: Duration::from_secs(1),
             qsub: "qsub".into(),
             qstat: "qstat".into(),
             qdel: "qdel".into(),
@@ -462,6 +467,7 @@ impl PbsExecutor {
         let settings = PollSettings {
             poll_interval: config.poll_interval,
             max_backoff: config.max_backoff,
+            marker_interval: config.marker_interval,
             submit_retries: config.submit_retries,
             max_jobs: config.max_jobs,
         };

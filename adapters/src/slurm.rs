@@ -30,6 +30,10 @@ pub struct SlurmConfig {
     pub poll_interval: Duration,
     /// Longest wait between `squeue` calls while the controller does not answer.
     pub max_backoff: Duration,
+    /// Time between two looks at the outstanding jobs' exit markers on the shared file
+    /// system (one `stat` per job, no scheduler call). Default 1 s: a job's end is noticed
+    /// about a second after it, not at the next `squeue`. `Duration::ZERO` turns it off.
+    pub marker_interval: Duration,
     /// Program names (or paths) of the Slurm clients.
     pub sbatch: String,
     /// See [`SlurmConfig::sbatch`].
@@ -56,6 +60,7 @@ impl Default for SlurmConfig {
         SlurmConfig {
             poll_interval: Duration::from_secs(30),
             max_backoff: Duration::from_secs(300),
+            marker_interval: Duration::from_secs(1),
             sbatch: "sbatch".into(),
             squeue: "squeue".into(),
             scancel: "scancel".into(),
@@ -423,6 +428,7 @@ impl SlurmExecutor {
         let settings = PollSettings {
             poll_interval: config.poll_interval,
             max_backoff: config.max_backoff,
+            marker_interval: config.marker_interval,
             submit_retries: config.submit_retries,
             max_jobs: config.max_jobs,
         };

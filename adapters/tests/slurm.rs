@@ -719,3 +719,82 @@ async fn allocation_worker(dir: &Path) {
         std::fs::write(dir.join("done"), format!("{} {job}", env.continuation)).expect("write");
     }
 }
+
+/// A job's end is noticed from its exit marker on the file system, without a status query:
+/// with an hour between `squeue` calls, three jobs that end at once and one that ends later
+/// all complete, and the scheduler was never asked about them. The marker is the only way
+/// the end could have been noticed, so this needs no timing.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn job_ends_are_noticed_from_their_markers_between_status_queries() {
+    if !slurm_available() {
+        return;
+    }
+    let _shared = SCHEDULER.read().await;
+    let (tx, mut rx) = unbounded_channel();
+    let cfg = SlurmConfig {
+        poll_interval: Duration::from_secs(3600),
+        marker_interval: Duration::from_millis(500),
+        ..config()
+    };
+    let ex = SlurmExecutor::new(cfg, "ws-markers".into(), tx);
+    let dirs: Vec<_> = (0..4)
+        .map(|_| tempfile::tempdir().expect("tempdir"))
+        .collect();
+    for (i, d) in dirs.iter().enumerate() {
+        let script = if i == 3 { "sleep 2; exit 5" } else { "exit 0" };
+        ex.launch(request(10 + i as i64, d.path(), script))
+            .await
+            .expect("submit");
+    }
+    let mut got = Vec::new();
+    for _ in 0..4 {
+        got.push(next_within(&mut rx, 180).await);
+    }
+    got.sort_by_key(|c| c.attempt_id);
+    let outcomes: Vec<_> = got
+        .iter()
+        .map(|c| (c.attempt_id, c.outcome.clone()))
+        .collect();
+    assert_eq!(
+        outcomes,
+        vec![
+            (10, Outcome::Exited { code: 0 }),
+            (11, Outcome::Exited { code: 0 }),
+            (12, Outcome::Exited { code: 0 }),
+            (13, Outcome::Exited { code: 5 }),
+        ]
+    );
+    assert!(got
+        .iter()
+        .all(|c| c.started_at.is_some() && c.host.is_some()));
+    let stats = ex.stats();
+    assert_eq!(stats.submissions, 4);
+    assert_eq!(
+        stats.queries, 0,
+        "every end came from its marker; the scheduler was not polled"
+    );
+    assert!(ex.watched().is_empty());
+}
+
+/// With marker watching off, the ends come from the status queries (the scheduler path the
+/// marker watch must not replace: jobs that end without a marker rely on it).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn without_marker_watching_ends_come_from_status_queries() {
+    if !slurm_available() {
+        return;
+    }
+    let _shared = SCHEDULER.read().await;
+    let (tx, mut rx) = unbounded_channel();
+    let cfg = SlurmConfig {
+        marker_interval: Duration::ZERO,
+        ..config()
+    };
+    let ex = SlurmExecutor::new(cfg, "ws-nomarkers".into(), tx);
+    let d = tempfile::tempdir().expect("tempdir");
+    ex.launch(request(20, d.path(), "exit 0"))
+        .await
+        .expect("submit");
+    let c = next(&mut rx).await;
+    assert_eq!(c.outcome, Outcome::Exited { code: 0 });
+    assert!(ex.stats().queries >= 1, "{:?}", ex.stats());
+}

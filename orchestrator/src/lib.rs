@@ -7,6 +7,7 @@ pub mod audit;
 pub mod builtins;
 pub mod cli;
 pub mod engine;
+pub mod fsinfo;
 pub mod graph;
 pub mod progress;
 pub mod prov;

@@ -1480,7 +1480,9 @@ impl Validator<'_> {
         let Some(BuiltinSettings::Mix(with)) = st.settings.clone() else {
             self.push(
                 at,
-                format!("built-in stage `{sname}` needs `settings: {{ method: linear, alpha: 0.5 }}`"),
+                format!(
+                    "built-in stage `{sname}` needs `settings: {{ method: linear, alpha: 0.5 }}`"
+                ),
                 "add `settings:` with the mixer settings",
             );
             return None;

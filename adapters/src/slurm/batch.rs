@@ -143,6 +143,11 @@ pub trait BatchSystem: Send + Sync + 'static {
 pub struct PollSettings {
     /// Time between two status queries.
     pub poll_interval: Duration,
+    /// Time between two looks at the watched jobs' exit markers (one `stat` per watched job
+    /// on the shared file system, no scheduler call). A job whose marker appears is complete
+    /// at once; the status query at `poll_interval` only tells queued, running and vanished
+    /// jobs apart. `Duration::ZERO` turns marker watching off.
+    pub marker_interval: Duration,
     /// Longest wait between queries while the controller does not answer.
     pub max_backoff: Duration,
     /// How often a submission refused as "unavailable" is tried again.
@@ -745,23 +750,75 @@ pub fn completion(
     }
 }
 
+/// The exit marker's path in a job's workdir (see [`job_script`]).
+fn exit_marker(workdir: &Path) -> PathBuf {
+    workdir.join(EXIT_MARKER)
+}
+
+/// Report the end of job `id` (if still watched) and stop watching it. `false` when the
+/// engine has gone away.
+fn finish<B: BatchSystem>(shared: &Shared<B>, id: &str, end: Option<EndKind>) -> bool {
+    let Some(w) = lock(&shared.jobs).remove(id) else {
+        return true;
+    };
+    let c = completion(w.attempt_id, &w.workdir, end, w.cancelled_by_us);
+    tracing::debug!(job = %id, attempt_id = w.attempt_id, outcome = ?c.outcome, "job ended");
+    shared.tx.send(c).is_ok()
+}
+
+/// The one poller of a batch executor. Two clocks: every `marker_interval` it looks for the
+/// exit markers of the watched jobs (cheap: a `stat` each, on the shared file system), so a
+/// short job's end is noticed within about a second; every `poll_interval` it asks the
+/// scheduler about all of them in one call, to notice jobs that ended without a marker
+/// (time limit, node failure, cancellation, preemption). The scheduler therefore sees one
+/// status query per poll interval, however many jobs end in between.
 async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
     let interval = shared.settings.poll_interval;
+    let marker = shared.settings.marker_interval;
+    let tick = if marker.is_zero() {
+        interval
+    } else {
+        marker.min(interval)
+    };
     let mut delay = interval;
+    let mut next_query = tokio::time::Instant::now() + delay;
     loop {
-        tokio::time::sleep(delay).await;
-        let ids: Vec<String> = lock(&shared.jobs).keys().cloned().collect();
+        let now = tokio::time::Instant::now();
+        tokio::time::sleep(next_query.saturating_duration_since(now).min(tick)).await;
+        let ids: Vec<(String, PathBuf)> = lock(&shared.jobs)
+            .iter()
+            .map(|(id, w)| (id.clone(), w.workdir.clone()))
+            .collect();
         if ids.is_empty() {
             delay = interval;
+            next_query = tokio::time::Instant::now() + delay;
+            continue;
+        }
+        if !marker.is_zero() {
+            for (id, workdir) in &ids {
+                // The marker is written by rename, so its existence means it is complete.
+                if exit_marker(workdir).exists() && !finish(&shared, id, None) {
+                    return;
+                }
+            }
+        }
+        if tokio::time::Instant::now() < next_query {
+            continue;
+        }
+        let ids: Vec<String> = lock(&shared.jobs).keys().cloned().collect();
+        if ids.is_empty() {
+            next_query = tokio::time::Instant::now() + interval;
             continue;
         }
         let states = match shared.query(&ids).await {
             Ok(s) => {
                 delay = interval;
+                next_query = tokio::time::Instant::now() + delay;
                 s
             }
             Err(e) => {
                 delay = (delay * 2).min(shared.settings.max_backoff.max(interval));
+                next_query = tokio::time::Instant::now() + delay;
                 tracing::warn!(error = %e, next_try = ?delay, "status query failed; backing off");
                 continue;
             }
@@ -780,10 +837,7 @@ async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
                 None if read_exit(&w.workdir).is_some() => None,
                 None => shared.system.lookup_finished(&id).await,
             };
-            let c = completion(w.attempt_id, &w.workdir, end, w.cancelled_by_us);
-            lock(&shared.jobs).remove(&id);
-            tracing::debug!(job = %id, attempt_id = w.attempt_id, outcome = ?c.outcome, "job ended");
-            if shared.tx.send(c).is_err() {
+            if !finish(&shared, &id, end) {
                 return;
             }
         }
