@@ -1,6 +1,8 @@
-//! The workspace's SQLite store: opening with WAL, busy timeout and foreign keys, the
-//! versioned migrations in `orchestrator/migrations/`, and the workspace lock (a lock file
-//! holding pid and host, taken with `flock`).
+//! The workspace's SQLite store: opening with the journal mode its file system allows (WAL
+//! on a local disk, a rollback journal on a file system other hosts share; see
+//! [`crate::fsinfo`]), busy timeout and foreign keys, the versioned migrations in
+//! `orchestrator/migrations/`, and the workspace lock (a lock file holding pid, host and
+//! boot id, taken with `flock`; broken only when its holder is provably gone).
 
 use std::fs::{File, OpenOptions};
 use std::io::{Read, Seek, Write};
@@ -10,6 +12,8 @@ use std::str::FromStr;
 use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
+
+use crate::fsinfo::{self, Journal};
 use chrono::{DateTime, SecondsFormat, Utc};
 use sqlx::migrate::{Migration, MigrationType, Migrator};
 use sqlx::sqlite::{
@@ -50,11 +54,17 @@ pub fn migrator() -> Migrator {
 /// Open (creating) the database file and apply migrations.
 pub async fn open(db: &Path) -> Result<SqlitePool> {
     let url = format!("sqlite://{}", db.display());
+    let (journal, why) = journal_mode(db)?;
+    tracing::debug!(db = %db.display(), ?journal, why, "journal mode");
+    let (mode, sync) = match journal {
+        Journal::Wal => (SqliteJournalMode::Wal, SqliteSynchronous::Normal),
+        Journal::Rollback => (SqliteJournalMode::Delete, SqliteSynchronous::Full),
+    };
     let opts = SqliteConnectOptions::from_str(&url)
         .with_context(|| format!("{}: bad database path", db.display()))?
         .create_if_missing(true)
-        .journal_mode(SqliteJournalMode::Wal)
-        .synchronous(SqliteSynchronous::Normal)
+        .journal_mode(mode)
+        .synchronous(sync)
         .foreign_keys(true)
         .busy_timeout(Duration::from_secs(30));
     let pool = SqlitePoolOptions::new()
@@ -69,39 +79,85 @@ pub async fn open(db: &Path) -> Result<SqlitePool> {
     Ok(pool)
 }
 
+/// The journal mode for the database at `db`, from its folder's file system and
+/// `RONDO_JOURNAL`, with the reason.
+pub fn journal_mode(db: &Path) -> Result<(Journal, String)> {
+    let dir = db
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let kind = fsinfo::detect(dir)
+        .with_context(|| format!("{}: cannot tell its file system (statfs)", dir.display()))?;
+    let env = std::env::var("RONDO_JOURNAL").ok();
+    fsinfo::journal_for(kind, env.as_deref()).map_err(|e| anyhow::anyhow!(e))
+}
+
 /// An exclusive lock on a workspace, held while the value lives.
 #[derive(Debug)]
 pub struct WorkspaceLock {
     _file: File,
 }
 
-/// Take the workspace lock, or fail naming the holder's pid and host.
+/// Take the workspace lock, or fail naming the holder's pid and host. A lock whose holder
+/// is provably gone (same host, and another boot or no such process: a lock a crashed node
+/// left on a shared file system) is broken, once, with a warning.
 pub fn lock(ws: &Path) -> Result<WorkspaceLock> {
     let path = ws.join("lock");
-    let mut f = OpenOptions::new()
-        .read(true)
-        .write(true)
-        .create(true)
-        .truncate(false)
-        .open(&path)
-        .with_context(|| format!("{}: cannot open the lock file", path.display()))?;
-    // SAFETY: flock on a file descriptor we own; no memory is involved.
-    let r = unsafe { libc::flock(f.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
-    if r != 0 {
-        let mut holder = String::new();
-        let _ = f.read_to_string(&mut holder);
-        bail!(
-            "workspace {} is in use by another rondo ({}); wait for it to finish or stop it with `rondo cancel`",
-            ws.display(),
-            holder.trim()
-        );
-    }
     let host = hostname();
-    f.set_len(0)?;
-    f.rewind()?;
-    write!(f, "pid {} on host {}", std::process::id(), host)?;
-    f.flush()?;
-    Ok(WorkspaceLock { _file: f })
+    let mut broke = false;
+    loop {
+        let mut f = OpenOptions::new()
+            .read(true)
+            .write(true)
+            .create(true)
+            .truncate(false)
+            .open(&path)
+            .with_context(|| format!("{}: cannot open the lock file", path.display()))?;
+        // SAFETY: flock on a file descriptor we own; no memory is involved.
+        let r = unsafe { libc::flock(f.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
+        if r != 0 {
+            let mut text = String::new();
+            let _ = f.read_to_string(&mut text);
+            let judged = fsinfo::LockRecord::parse(&text).map(|rec| {
+                fsinfo::judge(
+                    &rec,
+                    &host,
+                    fsinfo::boot_id().as_deref(),
+                    fsinfo::pid_running,
+                )
+            });
+            match judged {
+                Some(fsinfo::Holder::Gone(why)) if !broke => {
+                    tracing::warn!(lock = %path.display(), why, "breaking a stale workspace lock");
+                    eprintln!(
+                        "rondo: breaking the stale lock of workspace {}: {why}",
+                        ws.display()
+                    );
+                    // A new file (a new inode) carries the new lock; the stale holder's
+                    // lock stays on the unlinked one.
+                    std::fs::remove_file(&path).with_context(|| {
+                        format!("{}: cannot remove the stale lock file", path.display())
+                    })?;
+                    broke = true;
+                    continue;
+                }
+                Some(fsinfo::Holder::Alive(who)) | Some(fsinfo::Holder::Gone(who)) => bail!(
+                    "workspace {} is in use by another rondo ({who}); wait for it to finish or stop it with `rondo cancel`",
+                    ws.display()
+                ),
+                None => bail!(
+                    "workspace {} is in use by another rondo ({}); wait for it to finish or stop it with `rondo cancel`",
+                    ws.display(),
+                    text.trim()
+                ),
+            }
+        }
+        f.set_len(0)?;
+        f.rewind()?;
+        f.write_all(fsinfo::LockRecord::this_process(host).to_text().as_bytes())?;
+        f.flush()?;
+        return Ok(WorkspaceLock { _file: f });
+    }
 }
 
 /// Who holds the workspace lock, if anyone, without taking it (a shared probe that is
@@ -118,7 +174,11 @@ pub fn holder(ws: &Path) -> Option<String> {
     }
     let mut holder = String::new();
     let _ = f.read_to_string(&mut holder);
-    Some(holder.trim().to_string())
+    Some(
+        fsinfo::LockRecord::parse(&holder)
+            .map(|r| r.describe())
+            .unwrap_or_else(|| holder.trim().to_string()),
+    )
 }
 
 /// This machine's host name.
@@ -416,6 +476,85 @@ mod tests {
             .stmt("INSERT INTO events(at, kind, detail) VALUES (?, ?, ?)")
             .bind("t5".to_string());
         assert!(short.commit(&pool).await.is_err());
+        Ok(())
+    }
+
+    #[test]
+    fn a_lock_left_by_a_dead_holder_is_broken_and_a_live_one_is_not() -> Result<()> {
+        // A stale lock as a crashed node leaves it on a shared file system: the flock is
+        // still held (here by a child process standing in for the file server's record),
+        // but its record names this host and an earlier boot.
+        let d = tempfile::tempdir()?;
+        let path = d.path().join("lock");
+        let stale = fsinfo::LockRecord {
+            pid: std::process::id(),
+            host: hostname(),
+            boot_id: Some("an-earlier-boot".into()),
+        };
+        std::fs::write(&path, stale.to_text())?;
+        let mut holder = std::process::Command::new("flock")
+            .args(["-x", path.to_str().expect("utf-8 path"), "sleep", "30"])
+            .spawn()
+            .context("flock(1) from util-linux")?;
+        let held = (0..100).any(|_| {
+            std::thread::sleep(Duration::from_millis(20));
+            holder_probe(&path)
+        });
+        assert!(held, "the child took the lock");
+        let l = lock(d.path());
+        let _ = holder.kill();
+        let _ = holder.wait();
+        let l = l?;
+        let text = std::fs::read_to_string(&path)?;
+        let rec = fsinfo::LockRecord::parse(&text).expect("new record");
+        assert_eq!(rec.pid, std::process::id());
+        assert_eq!(rec.boot_id, fsinfo::boot_id());
+        drop(l);
+
+        // A live holder on this host (this very boot, a running pid): refused, named.
+        std::fs::write(
+            &path,
+            fsinfo::LockRecord::this_process(hostname()).to_text(),
+        )?;
+        let mut holder = std::process::Command::new("flock")
+            .args(["-x", path.to_str().expect("utf-8 path"), "sleep", "30"])
+            .spawn()
+            .context("flock(1) from util-linux")?;
+        let held = (0..100).any(|_| {
+            std::thread::sleep(Duration::from_millis(20));
+            holder_probe(&path)
+        });
+        assert!(held, "the child took the lock");
+        let e = lock(d.path()).expect_err("held by a live process");
+        let _ = holder.kill();
+        let _ = holder.wait();
+        let msg = format!("{e:#}");
+        assert!(
+            msg.contains(&format!(
+                "pid {} on host {}",
+                std::process::id(),
+                hostname()
+            )),
+            "{msg}"
+        );
+        Ok(())
+    }
+
+    /// Whether someone holds an exclusive flock on `path`.
+    fn holder_probe(path: &Path) -> bool {
+        let Ok(f) = File::open(path) else {
+            return false;
+        };
+        // SAFETY: flock on a descriptor we own.
+        let r = unsafe { libc::flock(f.as_raw_fd(), libc::LOCK_SH | libc::LOCK_NB) };
+        r != 0
+    }
+
+    #[test]
+    fn journal_mode_is_wal_on_this_machines_disk() -> Result<()> {
+        let d = tempfile::tempdir()?;
+        let (j, why) = journal_mode(&d.path().join("rondo.db"))?;
+        assert_eq!(j, Journal::Wal, "{why}");
         Ok(())
     }
 
