@@ -39,7 +39,11 @@ fn the_rollback_journal_for_shared_file_systems_keeps_crash_equivalence() {
     );
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let wa = a.path().join("model-sweep.rondo");
-    assert_eq!(format_versions(&wa.join("rondo.db")), (1, 1), "rollback journal");
+    assert_eq!(
+        format_versions(&wa.join("rondo.db")),
+        (1, 1),
+        "rollback journal"
+    );
     assert!(!wa.join("rondo.db-wal").exists());
     let reference = record(&wa);
     let s = status_json(a.path(), &wa);
@@ -52,7 +56,11 @@ fn the_rollback_journal_for_shared_file_systems_keeps_crash_equivalence() {
     let wb = b.path().join("model-sweep.rondo");
     let seed = crash_seed(20_261_203);
     kill_and_finish(b.path(), "model-sweep.yaml", seed, 4, 300..4_300, 0);
-    assert_eq!(format_versions(&wb.join("rondo.db")), (1, 1), "rollback journal");
+    assert_eq!(
+        format_versions(&wb.join("rondo.db")),
+        (1, 1),
+        "rollback journal"
+    );
     assert_same_record(&reference, &record(&wb), seed);
     assert_resume_was_clean(&wb, seed);
 }

@@ -1,10 +1,32 @@
 //! The content-addressed artifact store: files named by their BLAKE3 hash under
 //! `<workspace>/store/<2 hex>/<rest>`, written to a temporary name, synced and renamed, so a
 //! crash leaves either no file or a complete one; identical content is stored once.
+//!
+//! Large files are never copied when that can be avoided: an output enters the store as a
+//! hard link when the scratch folder is on the same file system (file and folder fsynced),
+//! and is copied then fsynced only across file systems; an input is placed by hard link (or a
+//! copy-on-write clone) of the read-only stored file, and copied only when neither works or
+//! when the stage asked for a private, writable copy. Files of 32 MiB and more are hashed
+//! with BLAKE3's multi-threaded mode over a memory map.
 
 use std::fs::{self, File};
 use std::io::{self, Read, Write};
+use std::os::unix::fs::PermissionsExt;
 use std::path::{Path, PathBuf};
+
+/// From this size on, files are hashed over a memory map on all cores.
+pub const PARALLEL_HASH_FROM: u64 = 32 << 20;
+
+/// How an input file was put in place.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Placement {
+    /// A hard link to the stored (read-only) file: no data written.
+    Linked,
+    /// A copy-on-write clone (`FICLONE`): no data written until the stage writes.
+    Cloned,
+    /// A full copy.
+    Copied,
+}
 
 /// The store folder of one workspace.
 #[derive(Debug, Clone)]
@@ -12,9 +34,16 @@ pub struct ArtifactStore {
     root: PathBuf,
 }
 
-/// BLAKE3 of a file, streamed, as lowercase hex.
+/// BLAKE3 of a file as lowercase hex, with its size: streamed for small files, over a
+/// memory map on all cores from [`PARALLEL_HASH_FROM`] bytes.
 pub fn hash_file(path: &Path) -> io::Result<(String, u64)> {
     let mut f = File::open(path)?;
+    let len = f.metadata()?.len();
+    if len >= PARALLEL_HASH_FROM {
+        let mut h = blake3::Hasher::new();
+        h.update_mmap_rayon(path)?;
+        return Ok((h.finalize().to_hex().to_string(), len));
+    }
     let mut h = blake3::Hasher::new();
     let mut buf = vec![0u8; 1 << 20];
     let mut size = 0u64;
@@ -60,6 +89,68 @@ impl ArtifactStore {
         Ok((hash, size))
     }
 
+    /// Take a file into the store without copying it; returns (hash, size). On the same
+    /// file system the stored file is a hard link to `src` (made read-only; fsynced before,
+    /// the store folder after), so no data is written and `src` stays where it is until its
+    /// scratch folder is recycled after the success is recorded (a crash in between leaves
+    /// the outputs in place for the attempt to be adopted). Across file systems, or where
+    /// links are refused, a copy that is fsynced. Content already stored is not rewritten.
+    pub fn put_file_linked(&self, src: &Path) -> io::Result<(String, u64)> {
+        let (hash, size) = hash_file(src)?;
+        let dest = self.path_of(&hash);
+        if dest.is_file() {
+            return Ok((hash, size));
+        }
+        let dir = dest.parent().unwrap_or(&self.root);
+        fs::create_dir_all(dir)?;
+        File::open(src)?.sync_all()?;
+        fs::set_permissions(src, fs::Permissions::from_mode(0o444))?;
+        match fs::hard_link(src, &dest) {
+            Ok(()) => {}
+            Err(e) if e.kind() == io::ErrorKind::AlreadyExists => {}
+            Err(_) => {
+                let tmp = dir.join(format!(".tmp-{}-{}", std::process::id(), &hash[..16]));
+                fs::copy(src, &tmp)?;
+                File::open(&tmp)?.sync_all()?;
+                fs::set_permissions(&tmp, fs::Permissions::from_mode(0o444))?;
+                fs::rename(&tmp, &dest)?;
+            }
+        }
+        sync_dir(dir)?;
+        Ok((hash, size))
+    }
+
+    /// Put the stored artifact `hash` at `dest` (which must not exist). A shared input is a
+    /// hard link to the read-only stored file, else a copy-on-write clone, else a copy. A
+    /// `private` input is always the stage's own writable file: a clone or a copy. As root,
+    /// read-only permissions do not stop a write, so a root process never gets a hard link:
+    /// a stage that rewrote its input in place would change the stored content.
+    pub fn place(&self, hash: &str, dest: &Path, private: bool) -> io::Result<Placement> {
+        let src = self.path_of(hash);
+        // SAFETY: geteuid has no preconditions and cannot fail.
+        let root = unsafe { libc::geteuid() } == 0;
+        if !private && !root {
+            let m = fs::metadata(&src)?;
+            if m.permissions().mode() & 0o222 != 0 {
+                // Stored by an older rondo: make it read-only before sharing its inode.
+                fs::set_permissions(&src, fs::Permissions::from_mode(0o444))?;
+            }
+            if fs::hard_link(&src, dest).is_ok() {
+                return Ok(Placement::Linked);
+            }
+        }
+        let placed = if clone_file(&src, dest).is_ok() {
+            Placement::Cloned
+        } else {
+            let _ = fs::remove_file(dest);
+            fs::copy(&src, dest)?;
+            Placement::Copied
+        };
+        let mode = if private { 0o644 } else { 0o444 };
+        fs::set_permissions(dest, fs::Permissions::from_mode(mode))?;
+        Ok(placed)
+    }
+
     /// Store bytes; returns (hash, size).
     pub fn put_bytes(&self, bytes: &[u8]) -> io::Result<(String, u64)> {
         let hash = blake3::hash(bytes).to_hex().to_string();
@@ -75,6 +166,35 @@ impl ArtifactStore {
         }
         Ok((hash, bytes.len() as u64))
     }
+}
+
+/// fsync a folder, so that a rename into it is durable.
+pub fn sync_dir(dir: &Path) -> io::Result<()> {
+    File::open(dir)?.sync_all()
+}
+
+/// A copy-on-write clone of `src` at `dest` (Linux `FICLONE`: btrfs, xfs with reflink,
+/// bcachefs, overlayfs over those). Fails where the file system cannot share extents, and
+/// across file systems.
+fn clone_file(src: &Path, dest: &Path) -> io::Result<()> {
+    use std::os::fd::AsRawFd;
+    let from = File::open(src)?;
+    let to = fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(dest)?;
+    // FICLONE = _IOW(0x94, 9, int) from linux/fs.h (a fact of the kernel ABI).
+    const FICLONE: libc::c_ulong = 0x4004_9409;
+    // SAFETY: both descriptors are open and owned for the duration of the call; the ioctl
+    // takes the source descriptor as its integer argument and touches no memory of ours.
+    let r = unsafe { libc::ioctl(to.as_raw_fd(), FICLONE as _, from.as_raw_fd()) };
+    if r != 0 {
+        let e = io::Error::last_os_error();
+        drop(to);
+        let _ = fs::remove_file(dest);
+        return Err(e);
+    }
+    Ok(())
 }
 
 /// Write a small file atomically (temporary name, sync, rename).
@@ -111,6 +231,79 @@ mod tests {
         let (h2, _) = s.put_file(&f)?;
         assert_eq!(h1, h2);
         assert!(s.path_of(&h1).is_file());
+        Ok(())
+    }
+
+    #[test]
+    fn outputs_enter_by_link_and_inputs_share_the_stored_inode() -> io::Result<()> {
+        use std::os::unix::fs::MetadataExt;
+        let d = tempfile::tempdir()?;
+        let s = ArtifactStore::open(&d.path().join("store"))?;
+        let out = d.path().join("restart.bin");
+        let data: Vec<u8> = (0..200_000u32).flat_map(|i| i.to_le_bytes()).collect();
+        fs::write(&out, &data)?;
+        let ino = fs::metadata(&out)?.ino();
+        let (h, n) = s.put_file_linked(&out)?;
+        assert_eq!(h, blake3::hash(&data).to_hex().to_string());
+        assert_eq!(n, data.len() as u64);
+        let stored = fs::metadata(s.path_of(&h))?;
+        assert_eq!(
+            stored.ino(),
+            ino,
+            "same inode: linked into the store, not copied"
+        );
+        assert_eq!(stored.nlink(), 2);
+        assert_eq!(stored.permissions().mode() & 0o777, 0o444);
+        assert_eq!(
+            fs::read(&out)?,
+            data,
+            "the output stays in place until recycled"
+        );
+
+        // Identical content again stores nothing new.
+        let again = d.path().join("again.bin");
+        fs::write(&again, &data)?;
+        assert_eq!(s.put_file_linked(&again)?.0, h);
+        assert_eq!(fs::metadata(&again)?.nlink(), 1);
+
+        // A shared input: a hard link to the stored file unless we are root (then a clone
+        // or a copy); a private one: the stage's own writable file, never the stored inode.
+        let shared = d.path().join("in-shared.bin");
+        let how = s.place(&h, &shared, false)?;
+        // SAFETY: geteuid cannot fail.
+        if unsafe { libc::geteuid() } == 0 {
+            assert_ne!(how, Placement::Linked);
+        } else {
+            assert_eq!(how, Placement::Linked);
+            assert_eq!(fs::metadata(&shared)?.ino(), ino);
+        }
+        assert_eq!(fs::metadata(&shared)?.permissions().mode() & 0o222, 0);
+        let private = d.path().join("in-private.bin");
+        assert_ne!(s.place(&h, &private, true)?, Placement::Linked);
+        assert_ne!(fs::metadata(&private)?.ino(), ino);
+        fs::write(&private, b"rewritten in place")?;
+        assert_eq!(
+            fs::read(s.path_of(&h))?,
+            data,
+            "the stored content is untouched"
+        );
+        assert_eq!(fs::read(&shared)?, data);
+        Ok(())
+    }
+
+    #[test]
+    fn large_files_hash_in_parallel_to_the_same_value() -> io::Result<()> {
+        let d = tempfile::tempdir()?;
+        let f = d.path().join("big");
+        let mut rng = rondo_numerics::rng::SplitMix64::new(7);
+        let data: Vec<u8> = (0..(PARALLEL_HASH_FROM as usize / 8 + 12_345))
+            .flat_map(|_| rng.next_u64().to_le_bytes())
+            .collect();
+        fs::write(&f, &data)?;
+        let (h, n) = hash_file(&f)?;
+        assert_eq!(n, data.len() as u64);
+        // The one-shot single-threaded hash of the same bytes.
+        assert_eq!(h, blake3::hash(&data).to_hex().to_string());
         Ok(())
     }
 }

@@ -1312,7 +1312,8 @@ impl Engine<'_> {
                     .unwrap_or_default()
             })?;
             let dest = inputs_dir.join(format!("{role}{ext}"));
-            std::fs::copy(self.artifacts.path_of(&hash), &dest)
+            self.artifacts
+                .place(&hash, &dest, false)
                 .with_context(|| format!("cannot place artifact {hash} as {}", dest.display()))?;
             let rel = format!("inputs/{role}{ext}");
             inputs.push((role.clone(), hash, PathBuf::from(rel)));
@@ -1326,7 +1327,7 @@ impl Engine<'_> {
             };
             if let Some(h) = self.input_hash(&point.id, iteration, &src).await? {
                 let dest = inputs_dir.join("state.json");
-                std::fs::copy(self.artifacts.path_of(&h), &dest).with_context(|| {
+                self.artifacts.place(&h, &dest, false).with_context(|| {
                     format!("cannot place the mixer state as {}", dest.display())
                 })?;
                 inputs.push((
@@ -1872,9 +1873,14 @@ impl Engine<'_> {
                 }
                 for (role, file) in &files {
                     let path = fl.workdir.join(file);
-                    let (h, size) = self
-                        .artifacts
-                        .put_file(&path)
+                    // Linked into the store (no copy; read-only from now on) unless the
+                    // user keeps the scratch folders to work in them.
+                    let stored = if self.opts.keep_scratch {
+                        self.artifacts.put_file(&path)
+                    } else {
+                        self.artifacts.put_file_linked(&path)
+                    };
+                    let (h, size) = stored
                         .with_context(|| format!("{}: cannot store the output", path.display()))?;
                     outs.push((role.clone(), h, size, file.clone()));
                 }

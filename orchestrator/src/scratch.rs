@@ -128,7 +128,13 @@ fn empty_out(dir: &Path) -> std::io::Result<()> {
         let kind = entry.file_type()?;
         let name = entry.file_name();
         let path = entry.path();
-        if kind.is_file() && LOGS.iter().any(|l| name == *l) {
+        // A log that is also a stored output shares its inode with the store (outputs are
+        // linked in): remove that name, never truncate the stored content.
+        let linked = || {
+            use std::os::unix::fs::MetadataExt;
+            entry.metadata().map(|m| m.nlink() > 1).unwrap_or(true)
+        };
+        if kind.is_file() && LOGS.iter().any(|l| name == *l) && !linked() {
             std::fs::OpenOptions::new()
                 .write(true)
                 .open(&path)?

@@ -1,0 +1,125 @@
+//! Large outputs enter the store without a copy and inputs are placed without one: through
+//! the real binary, a stage writes an 8 MiB file and its stdout, the next stage reads the
+//! file. The stored artifacts carry the right BLAKE3, are read-only, and no second copy is
+//! left once the scratch folders are recycled; a log that is also an output keeps its
+//! content (recycling must not truncate the shared inode). Run as an unprivileged user the
+//! input is a hard link to the stored file (root gets a clone or a copy instead, since
+//! read-only permissions do not stop root).
+
+mod common;
+
+use std::os::unix::fs::{MetadataExt, PermissionsExt};
+use std::path::Path;
+use std::process::Command;
+
+use common::*;
+
+fn campaign(dir: &Path) {
+    let text = r#"campaign: zero-copy
+about: test campaign (not physics)
+programs:
+  sh: { path: /bin/sh }
+sweep:
+  product:
+    x: [1, 2]
+cycle:
+  w:
+    run: [sh, -c, 'yes "{{param:x}}" | head -c 8388608 > big.bin; echo "wrote big.bin"; echo "{\"x\": {{param:x}}}" > metrics.json']
+    outputs: { big: big.bin, log: stdout.txt }
+    metrics: [x]
+  r:
+    run: [sh, -c, 'printf "{\"size\": %s, \"links\": %s}\n" $(wc -c < "$1") $(stat -c %h "$1") > metrics.json', sh, "{{input:big}}"]
+    inputs: { big: w.big }
+    metrics: [size, links]
+stop:
+  when:
+    - { metric: w.x, change-below: 0.5, for: 1 }
+  max-iterations: 3
+"#;
+    std::fs::write(dir.join("c.yaml"), text).unwrap_or_else(|e| panic!("{e}"));
+}
+
+fn check(dir: &Path, expect_linked: bool) {
+    let ws = dir.join("c.rondo");
+    let s = status_json(dir, &ws);
+    let points = s["points"].as_array().cloned().unwrap_or_default();
+    assert_eq!(points.len(), 2, "{s}");
+    for p in &points {
+        assert_eq!(p["state"], "converged", "{p}");
+        assert_eq!(p["metrics"]["r.size"].as_f64(), Some(8_388_608.0), "{p}");
+        let links = p["metrics"]["r.links"].as_f64().unwrap_or(0.0);
+        if expect_linked {
+            // The store's name and the input's name (the output's scratch name may be
+            // recycled already or not: at least two).
+            assert!(links >= 2.0, "the input is a hard link: {p}");
+        } else {
+            assert_eq!(links, 1.0, "root gets its own inode: {p}");
+        }
+    }
+    let rows = strings(
+        &ws,
+        "SELECT o.role || ' ' || o.artifact FROM attempt_outputs o JOIN attempts a \
+         ON a.id = o.attempt_id WHERE a.state = 'succeeded' AND a.stage = 'w' ORDER BY 1",
+    );
+    // 2 points × 2 iterations × (big, log, metrics).
+    assert_eq!(rows.len(), 2 * 2 * 3, "{rows:?}");
+    for row in rows {
+        let (role, hash) = row.split_once(' ').unwrap_or_default();
+        let path = ws.join("store").join(&hash[..2]).join(&hash[2..]);
+        let bytes = std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+        assert_eq!(blake3::hash(&bytes).to_hex().as_str(), hash, "{role}");
+        let m = std::fs::metadata(&path).unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(
+            m.permissions().mode() & 0o222,
+            0,
+            "stored read-only: {role}"
+        );
+        match role {
+            "big" => assert_eq!(bytes.len(), 8_388_608),
+            "log" => assert_eq!(bytes, b"wrote big.bin\n", "the log kept its content"),
+            _ => {}
+        }
+        // Once the scratch folders are recycled, the store holds the only name.
+        assert_eq!(m.nlink(), 1, "no second name left for {role}");
+    }
+}
+
+#[test]
+fn large_outputs_and_inputs_move_without_copies() {
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    campaign(d.path());
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    // SAFETY: geteuid cannot fail.
+    let root = unsafe { libc::geteuid() } == 0;
+    check(d.path(), !root);
+
+    if !root {
+        return;
+    }
+    // As root, run the same campaign again as `nobody` to see the hard-link path.
+    let have_setpriv = Command::new("setpriv").arg("--version").output().is_ok();
+    assert!(
+        have_setpriv,
+        "setpriv (util-linux) is needed to run the unprivileged half of this test"
+    );
+    let n = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    campaign(n.path());
+    let chown = Command::new("chown")
+        .args(["-R", "65534:65534"])
+        .arg(n.path())
+        .status()
+        .unwrap_or_else(|e| panic!("chown: {e}"));
+    assert!(chown.success());
+    let o = Command::new("setpriv")
+        .args(["--reuid=65534", "--regid=65534", "--clear-groups"])
+        .arg(rondo())
+        .args(["run", "c.yaml", "-q"])
+        .current_dir(n.path())
+        .env("PATH", path_with_binaries())
+        .env("HOME", n.path())
+        .output()
+        .unwrap_or_else(|e| panic!("setpriv rondo: {e}"));
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    check(n.path(), true);
+}
