@@ -491,3 +491,203 @@ fn a_child_whose_row_a_crash_never_wrote_is_ended_before_the_rerun_starts() {
         "{events:?}"
     );
 }
+
+// ---------------------------------------------------------------------------------------
+// Numbers and provenance of the equation-of-state analysis, on a real small workspace.
+
+/// Energies (eV) per volume (Å³) that serde_json's default number parser reads one unit in
+/// the last place off. Found by a search over the doubles next to a third-order
+/// Birch–Murnaghan curve (E0 = −12 eV, V0 = 28 Å³, B0 = 0.5 eV/Å³, B0' = 4.5; invented
+/// numbers) with serde_json 1.0.154 without `float_roundtrip`: each text is the shortest
+/// representation of its double (Rust's exact parser gives the double back), and the default
+/// parser returned the neighbour double instead (−1, +1, −1, +1, −1 units in the last place).
+const INEXACT_UNDER_DEFAULT_PARSER: [(&str, &str); 5] = [
+    ("26", "-11.959089291369073"),
+    ("27", "-11.990455887023707"),
+    ("28", "-12.000000000000005"),
+    ("29", "-11.991627802281503"),
+    ("30", "-11.968529824472133"),
+];
+
+/// A campaign of one stage that reports, per volume, the energy of
+/// [`INEXACT_UNDER_DEFAULT_PARSER`] (the same at every iteration, so each point converges at
+/// iteration 2), at one temperature, with the equation-of-state analysis.
+fn eos_campaign(dir: &Path) -> PathBuf {
+    use std::os::unix::fs::PermissionsExt;
+    let mut script = String::from(
+        "#!/bin/sh\n# test program (not physics): fixed energy per volume\ncase \"$1\" in\n",
+    );
+    for (v, e) in INEXACT_UNDER_DEFAULT_PARSER {
+        script.push_str(&format!("  {v}|{v}.0) e={e} ;;\n"));
+    }
+    script.push_str("  *) echo \"no energy for volume $1\" >&2; exit 64 ;;\nesac\n");
+    script.push_str("printf '{\"energy\": %s}\\n' \"$e\" > metrics.json\n");
+    let prog = dir.join("energy.sh");
+    std::fs::write(&prog, script).unwrap_or_else(|e| panic!("{e}"));
+    std::fs::set_permissions(&prog, std::fs::Permissions::from_mode(0o755))
+        .unwrap_or_else(|e| panic!("{e}"));
+    let volumes: Vec<&str> = INEXACT_UNDER_DEFAULT_PARSER.iter().map(|p| p.0).collect();
+    let text = format!(
+        r#"campaign: exact-numbers
+about: test campaign (not physics)
+programs:
+  energy: {{ path: {prog} }}
+sweep:
+  product:
+    volume: [{volumes}]
+    temperature: [300]
+cycle:
+  e:
+    run: [energy, "{{{{param:volume}}}}"]
+    metrics: [energy]
+stop:
+  when:
+    - {{ metric: e.energy, change-below: 1.0e-9, for: 1 }}
+  max-iterations: 3
+analysis:
+  eos: {{ energy: e.energy, volume: volume }}
+"#,
+        prog = prog.display(),
+        volumes = volumes.join(", "),
+    );
+    let f = dir.join("c.yaml");
+    std::fs::write(&f, text).unwrap_or_else(|e| panic!("{e}"));
+    f
+}
+
+/// The number tokens of a JSON text, in order, as written (outside strings).
+fn number_tokens(text: &str) -> Vec<String> {
+    let mut out = Vec::new();
+    let mut in_string = false;
+    let mut escaped = false;
+    let mut current = String::new();
+    for c in text.chars() {
+        if in_string {
+            if escaped {
+                escaped = false;
+            } else if c == '\\' {
+                escaped = true;
+            } else if c == '"' {
+                in_string = false;
+            }
+            continue;
+        }
+        if c.is_ascii_digit() || matches!(c, '-' | '+' | '.' | 'e' | 'E') {
+            current.push(c);
+            continue;
+        }
+        if !current.is_empty() {
+            out.push(std::mem::take(&mut current));
+        }
+        if c == '"' {
+            in_string = true;
+        }
+    }
+    if !current.is_empty() {
+        out.push(current);
+    }
+    out
+}
+
+/// The text of the value of `"key": {...}` in a pretty-printed JSON document.
+fn object_text<'a>(text: &'a str, key: &str) -> &'a str {
+    let start = text
+        .find(&format!("\"{key}\": {{"))
+        .unwrap_or_else(|| panic!("no object `{key}` in {text}"));
+    let body = &text[start..];
+    let open = body.find('{').unwrap_or(0);
+    let (mut depth, mut in_string, mut escaped) = (0usize, false, false);
+    for (i, c) in body[open..].char_indices() {
+        if in_string {
+            match c {
+                _ if escaped => escaped = false,
+                '\\' => escaped = true,
+                '"' => in_string = false,
+                _ => {}
+            }
+            continue;
+        }
+        match c {
+            '"' => in_string = true,
+            '{' | '[' => depth += 1,
+            '}' | ']' => {
+                depth -= 1;
+                if depth == 0 {
+                    return &body[open..open + i + 1];
+                }
+            }
+            _ => {}
+        }
+    }
+    panic!("unbalanced object `{key}` in {text}")
+}
+
+#[test]
+fn published_numbers_come_out_bit_for_bit_as_the_program_wrote_and_the_artifact_stores_them() {
+    let d = tmp();
+    eos_campaign(d.path());
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    // 1. The store holds each energy exactly as the program printed it.
+    let stored: Vec<(String, f64)> = query(&ws, |pool| {
+        Box::pin(async move {
+            sqlx::query(
+                "SELECT p.values_json, m.value FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
+                 JOIN points p ON p.id = a.point WHERE m.name = 'e.energy' AND a.iteration = 1 ORDER BY p.idx",
+            )
+            .fetch_all(pool)
+            .await
+            .unwrap_or_else(|e| panic!("{e}"))
+            .into_iter()
+            .map(|r| (r.get(0), r.get(1)))
+            .collect()
+        })
+    });
+    assert_eq!(stored.len(), INEXACT_UNDER_DEFAULT_PARSER.len(), "{stored:?}");
+    for ((values, got), (v, text)) in stored.iter().zip(INEXACT_UNDER_DEFAULT_PARSER) {
+        let want: f64 = text.parse().unwrap_or(f64::NAN);
+        assert_eq!(
+            got.to_bits(),
+            want.to_bits(),
+            "volume {v} ({values}): the program wrote {text}, the store holds {got:?}"
+        );
+    }
+    // 2. `status --json` prints the metrics as written ...
+    let o = run_rondo(
+        d.path(),
+        &["status", "--workspace", &ws.display().to_string(), "--json"],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    let status = String::from_utf8_lossy(&o.stdout).to_string();
+    for (_, text) in INEXACT_UNDER_DEFAULT_PARSER {
+        assert!(
+            status.contains(&format!("\"e.energy\": {text}")),
+            "status --json does not show the energy {text} as written:\n{status}"
+        );
+    }
+    // 3. ... and every number of the analysis artifact exactly as the artifact holds it.
+    let artifact = std::fs::read_to_string(ws.join("analysis/eos.json"))
+        .unwrap_or_else(|e| panic!("analysis/eos.json: {e}"));
+    let stored_numbers = number_tokens(&artifact);
+    let shown_numbers = number_tokens(object_text(&status, "eos"));
+    assert!(
+        stored_numbers.len() > 30,
+        "the artifact has its energies, fits and residuals: {artifact}"
+    );
+    for (v, e) in INEXACT_UNDER_DEFAULT_PARSER {
+        assert!(
+            artifact.contains(&format!("\"energy\": {e}")),
+            "the artifact holds the energy of volume {v} as written: {artifact}"
+        );
+    }
+    let differ: Vec<(&String, &String)> = stored_numbers
+        .iter()
+        .zip(&shown_numbers)
+        .filter(|(a, b)| a != b)
+        .collect();
+    assert!(
+        stored_numbers.len() == shown_numbers.len() && differ.is_empty(),
+        "status --json changed numbers of the artifact (stored → shown): {differ:?}"
+    );
+}

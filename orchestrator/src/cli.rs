@@ -1071,4 +1071,27 @@ mod tests {
         assert_eq!(format_measurement(0.0, None), "0");
         assert_eq!(format_measurement(f64::NAN, None), "NaN");
     }
+
+    /// Numbers that serde_json's default (fast, inexact) float parser reads one unit in the
+    /// last place off: found by a search over the doubles next to a Birch–Murnaghan curve
+    /// with serde_json 1.0.154 without `float_roundtrip` (the same values drive the end-to-end
+    /// test `published_numbers_come_out_bit_for_bit_...`). Each is the shortest text of its
+    /// double, so Rust's own correctly rounded parser gives the reference.
+    #[test]
+    fn json_numbers_are_read_exactly() {
+        for text in [
+            "-11.959089291369073",
+            "-11.990455887023707",
+            "-12.000000000000005",
+            "-11.991627802281503",
+            "-11.968529824472133",
+        ] {
+            let exact: f64 = text.parse().unwrap_or(f64::NAN);
+            let read: f64 = serde_json::from_str(text).unwrap_or(f64::NAN);
+            assert_eq!(read.to_bits(), exact.to_bits(), "{text} read as {read:?}");
+            let value: serde_json::Value = serde_json::from_str(text).unwrap_or_default();
+            assert_eq!(value.as_f64().map(f64::to_bits), Some(exact.to_bits()));
+            assert_eq!(serde_json::to_string(&exact).unwrap_or_default(), text);
+        }
+    }
 }
