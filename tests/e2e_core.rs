@@ -511,8 +511,9 @@ const INEXACT_UNDER_DEFAULT_PARSER: [(&str, &str); 5] = [
 
 /// A campaign of one stage that reports, per volume, the energy of
 /// [`INEXACT_UNDER_DEFAULT_PARSER`] (the same at every iteration, so each point converges at
-/// iteration 2), at one temperature, with the equation-of-state analysis.
-fn eos_campaign(dir: &Path) -> PathBuf {
+/// iteration 2), at one temperature, with the equation-of-state analysis. With `mix`, the
+/// stage also writes the energy as a file that the built-in `mix` stage mixes.
+fn eos_campaign(dir: &Path, mix: bool) -> PathBuf {
     use std::os::unix::fs::PermissionsExt;
     let mut script = String::from(
         "#!/bin/sh\n# test program (not physics): fixed energy per volume\ncase \"$1\" in\n",
@@ -522,6 +523,9 @@ fn eos_campaign(dir: &Path) -> PathBuf {
     }
     script.push_str("  *) echo \"no energy for volume $1\" >&2; exit 64 ;;\nesac\n");
     script.push_str("printf '{\"energy\": %s}\\n' \"$e\" > metrics.json\n");
+    if mix {
+        script.push_str("cp metrics.json x.json\n");
+    }
     let prog = dir.join("energy.sh");
     std::fs::write(&prog, script).unwrap_or_else(|e| panic!("{e}"));
     std::fs::set_permissions(&prog, std::fs::Permissions::from_mode(0o755))
@@ -540,7 +544,7 @@ cycle:
   e:
     run: [energy, "{{{{param:volume}}}}"]
     metrics: [energy]
-stop:
+{mix}stop:
   when:
     - {{ metric: e.energy, change-below: 1.0e-9, for: 1 }}
   max-iterations: 3
@@ -549,6 +553,12 @@ analysis:
 "#,
         prog = prog.display(),
         volumes = volumes.join(", "),
+        mix = if mix {
+            "    outputs: { x: x.json }\n  mix:\n    builtin: mix\n    inputs: { x: e.x }\n    \
+             outputs: { x: x.json }\n    settings: { method: linear, alpha: 0.5 }\n"
+        } else {
+            ""
+        },
     );
     let f = dir.join("c.yaml");
     std::fs::write(&f, text).unwrap_or_else(|e| panic!("{e}"));
@@ -625,7 +635,7 @@ fn object_text<'a>(text: &'a str, key: &str) -> &'a str {
 #[test]
 fn published_numbers_come_out_bit_for_bit_as_the_program_wrote_and_the_artifact_stores_them() {
     let d = tmp();
-    eos_campaign(d.path());
+    eos_campaign(d.path(), false);
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let ws = d.path().join("c.rondo");
@@ -644,7 +654,11 @@ fn published_numbers_come_out_bit_for_bit_as_the_program_wrote_and_the_artifact_
             .collect()
         })
     });
-    assert_eq!(stored.len(), INEXACT_UNDER_DEFAULT_PARSER.len(), "{stored:?}");
+    assert_eq!(
+        stored.len(),
+        INEXACT_UNDER_DEFAULT_PARSER.len(),
+        "{stored:?}"
+    );
     for ((values, got), (v, text)) in stored.iter().zip(INEXACT_UNDER_DEFAULT_PARSER) {
         let want: f64 = text.parse().unwrap_or(f64::NAN);
         assert_eq!(
@@ -690,4 +704,165 @@ fn published_numbers_come_out_bit_for_bit_as_the_program_wrote_and_the_artifact_
         stored_numbers.len() == shown_numbers.len() && differ.is_empty(),
         "status --json changed numbers of the artifact (stored → shown): {differ:?}"
     );
+}
+
+/// One recorded equation-of-state generation: argv, program BLAKE3, why the hash is unknown,
+/// artifact.
+type EosRecord = (Vec<String>, Option<String>, Option<String>, String);
+
+/// The recorded equation-of-state generations of a workspace, oldest first.
+fn eos_records(ws: &Path) -> Vec<EosRecord> {
+    query(ws, |pool| {
+        Box::pin(async move {
+            sqlx::query(
+                "SELECT r.argv_json, r.program_blake3, r.program_unknown, o.artifact FROM reports r \
+                 JOIN report_outputs o ON o.report_id = r.id WHERE o.role = 'eos.json' ORDER BY r.id",
+            )
+            .fetch_all(pool)
+            .await
+            .unwrap_or_else(|e| panic!("{e}"))
+            .into_iter()
+            .map(|r| {
+                let argv: String = r.get(0);
+                (
+                    serde_json::from_str(&argv).unwrap_or_else(|e| panic!("{argv}: {e}")),
+                    r.get(1),
+                    r.get(2),
+                    r.get(3),
+                )
+            })
+            .collect()
+        })
+    })
+}
+
+#[test]
+fn the_command_recorded_with_the_eos_result_reruns_it_to_the_same_artifact() {
+    let d = tmp();
+    eos_campaign(d.path(), false);
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let first = eos_records(&ws);
+    assert_eq!(first.len(), 1, "{first:?}");
+    let (argv, program, unknown, hash) = &first[0];
+    let exe_hash = blake3::hash(&std::fs::read(rondo()).unwrap_or_default())
+        .to_hex()
+        .to_string();
+    assert_eq!(program.as_deref(), Some(exe_hash.as_str()));
+    assert_eq!(unknown, &None);
+    assert_eq!(
+        argv[1..],
+        ["analyze", "--workspace", &ws.display().to_string()],
+        "{argv:?}"
+    );
+    // A reader reruns exactly what is recorded, from anywhere.
+    let o = Command::new(&argv[0])
+        .args(&argv[1..])
+        .current_dir("/")
+        .output()
+        .unwrap_or_else(|e| panic!("cannot run the recorded argv {argv:?}: {e}"));
+    assert_eq!(o.status.code(), Some(0), "{argv:?}: {}", shown(&o));
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        out.contains("eos at temperature 300, birch-murnaghan: E0 = "),
+        "{out}"
+    );
+    let again = eos_records(&ws);
+    assert_eq!(again.len(), 2, "{again:?}");
+    assert_eq!(again[1].3, *hash, "the rerun reproduces the artifact");
+    assert_eq!(again[1].0, *argv, "and records the same command");
+    let file = std::fs::read(ws.join("analysis/eos.json")).unwrap_or_default();
+    assert_eq!(blake3::hash(&file).to_hex().to_string(), *hash);
+    // A campaign without an analysis has nothing to rerun; the message says so.
+    let h = tmp();
+    halfstep_campaign(h.path(), "ok", "", "[1.0]");
+    let o = run_rondo(h.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let o = run_rondo(h.path(), &["analyze", "c.yaml"]);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("no `analysis:` section"),
+        "{}",
+        shown(&o)
+    );
+}
+
+/// Run a copy of rondo whose file is deleted before it starts (it runs from an open file
+/// descriptor), so it cannot read its own executable to hash it.
+fn run_deleted_rondo(dir: &Path, args: &[&str]) -> std::process::Output {
+    use std::os::fd::AsRawFd;
+    let bin = dir.join("bin");
+    std::fs::create_dir_all(&bin).unwrap_or_else(|e| panic!("{e}"));
+    let copy = bin.join("rondo");
+    std::fs::copy(rondo(), &copy).unwrap_or_else(|e| panic!("copy rondo: {e}"));
+    let file = std::fs::File::open(&copy).unwrap_or_else(|e| panic!("{e}"));
+    std::fs::remove_file(&copy).unwrap_or_else(|e| panic!("{e}"));
+    let o = Command::new(format!("/proc/self/fd/{}", file.as_raw_fd()))
+        .args(args)
+        .current_dir(dir)
+        .env("PATH", path_with_binaries())
+        .output()
+        .unwrap_or_else(|e| panic!("cannot run the deleted copy of rondo: {e}"));
+    drop(file);
+    o
+}
+
+#[test]
+fn an_unreadable_rondo_executable_is_recorded_as_unknown_and_trace_says_so() {
+    let d = tmp();
+    eos_campaign(d.path(), true);
+    let o = run_deleted_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let why = |u: &Option<String>| {
+        u.as_deref()
+            .is_some_and(|u| u.contains("(deleted)") && u.contains("No such file"))
+    };
+    let mixes: Vec<(Option<String>, Option<String>)> = query(&ws, |pool| {
+        Box::pin(async move {
+            sqlx::query("SELECT program_blake3, program_unknown FROM attempts WHERE stage = 'mix'")
+                .fetch_all(pool)
+                .await
+                .unwrap_or_else(|e| panic!("{e}"))
+                .into_iter()
+                .map(|r| (r.get(0), r.get(1)))
+                .collect()
+        })
+    });
+    assert_eq!(mixes.len(), 10, "5 points × 2 iterations: {mixes:?}");
+    for (hash, unknown) in &mixes {
+        assert_eq!(hash, &None, "no hash is made up");
+        assert!(why(unknown), "the reason is recorded: {unknown:?}");
+    }
+    let eos = eos_records(&ws);
+    assert_eq!(eos.len(), 1, "{eos:?}");
+    assert_eq!(eos[0].1, None);
+    assert!(why(&eos[0].2), "{:?}", eos[0].2);
+    // The command stage's program was readable: its hash is there.
+    let e_hashes = strings(&ws, "SELECT program_blake3 FROM attempts WHERE stage = 'e'");
+    assert!(
+        e_hashes.len() == 10 && e_hashes.iter().all(|h| h.len() == 64),
+        "{e_hashes:?}"
+    );
+    let wsa = ws.display().to_string();
+    for target in ["p001/1/mix.history", "analysis/eos.json"] {
+        let o = run_rondo(d.path(), &["trace", target, "--workspace", &wsa]);
+        assert!(o.status.success(), "{target}: {}", shown(&o));
+        let text = String::from_utf8_lossy(&o.stdout);
+        assert!(
+            text.contains("program hash unknown: cannot read")
+                && text.contains("(deleted): No such file"),
+            "{target}: {text}"
+        );
+        let o = run_rondo(d.path(), &["trace", target, "--workspace", &wsa, "--json"]);
+        let j: serde_json::Value = serde_json::from_slice(&o.stdout)
+            .unwrap_or_else(|e| panic!("{target}: {e}: {}", shown(&o)));
+        let a0 = &j["attempts"][0];
+        assert!(a0["program"]["blake3"].is_null(), "{target}: {a0}");
+        assert!(
+            why(&a0["program_unknown"].as_str().map(str::to_string)),
+            "{target}: {a0}"
+        );
+    }
 }

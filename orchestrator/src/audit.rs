@@ -90,6 +90,10 @@ pub struct AttemptRecord {
     pub failure_kind: Option<String>,
     /// Program run.
     pub program: ProgramRef,
+    /// Why the program's hash is unknown (`program.blake3` is then null): the program file
+    /// could not be read when the record was made.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub program_unknown: Option<String>,
     /// Resolved parameters.
     pub parameters: Value,
     /// `{{seed}}` value, if used.
@@ -519,16 +523,12 @@ fn opt_json<T: serde::de::DeserializeOwned>(s: &str, what: &str, id: i64) -> Res
 
 /// Load one attempt with its inputs, outputs and metrics.
 pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
-    let r = sqlx::query(
-        "SELECT point, iteration, stage, attempt, state, argv_json, workdir, executor, handle_id,
-                host, started_at, ended_at, exit_status, failure_kind, program_path,
-                program_blake3, program_version, parameters_json, seed, rondo_version
-         FROM attempts WHERE id = ?",
-    )
-    .bind(id)
-    .fetch_optional(pool)
-    .await?
-    .with_context(|| format!("attempt {id} is not recorded"))?;
+    // Every column: `program_unknown` is absent from stores made before migration 4.
+    let r = sqlx::query("SELECT * FROM attempts WHERE id = ?")
+        .bind(id)
+        .fetch_optional(pool)
+        .await?
+        .with_context(|| format!("attempt {id} is not recorded"))?;
     let argv_json: String = r.try_get("argv_json")?;
     let params_json: String = r.try_get("parameters_json")?;
     let mut rec = AttemptRecord {
@@ -553,6 +553,7 @@ pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
             blake3: r.try_get("program_blake3")?,
             version: r.try_get("program_version")?,
         },
+        program_unknown: r.try_get("program_unknown").ok().flatten(),
         parameters: opt_json(&params_json, "parameters_json", id)?,
         seed: r.try_get("seed")?,
         rondo_version: r.try_get("rondo_version")?,
@@ -730,6 +731,21 @@ fn opt(s: &Option<String>) -> &str {
     s.as_deref().unwrap_or("-")
 }
 
+/// `BLAKE3 <hash>`, or `program hash unknown: <reason>` when the program could not be read
+/// (recorded as a NULL hash and a reason; older stores wrote `unreadable: <reason>` for a
+/// command stage's program).
+fn program_hash_text(a: &AttemptRecord) -> String {
+    match (&a.program.blake3, &a.program_unknown) {
+        (Some(h), None) if h.is_empty() => "program hash unknown: not recorded".into(),
+        (Some(h), _) => match h.strip_prefix("unreadable: ") {
+            Some(why) => format!("program hash unknown: {why}"),
+            None => format!("BLAKE3 {h}"),
+        },
+        (None, Some(why)) => format!("program hash unknown: {why}"),
+        (None, None) => "program hash unknown: not recorded".into(),
+    }
+}
+
 impl Lineage {
     /// Human-readable rendering.
     pub fn to_text(&self) -> String {
@@ -783,9 +799,9 @@ impl Lineage {
             let _ = writeln!(s, "  argv      {}", a.argv.join(" "));
             let _ = writeln!(
                 s,
-                "  program   {} BLAKE3 {}{}",
+                "  program   {} {}{}",
                 opt(&a.program.path),
-                opt(&a.program.blake3),
+                program_hash_text(a),
                 a.program
                     .version
                     .as_ref()

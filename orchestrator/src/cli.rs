@@ -106,6 +106,15 @@ enum Command {
         #[arg(long)]
         workspace: Option<PathBuf>,
     },
+    /// Run the campaign's analyses (the equation-of-state fits) again on a finished workspace
+    /// and record the result; this is the command recorded with every analysis result.
+    Analyze {
+        /// The campaign file (its default workspace is used).
+        file: Option<PathBuf>,
+        /// Workspace folder.
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+    },
     /// Lineage of a file, an artifact hash prefix, or POINT/ITERATION/stage.metric: every
     /// attempt upstream with argv, program hash, parameters, inputs and outputs.
     Trace {
@@ -356,6 +365,10 @@ async fn dispatch(cmd: Command) -> Result<u8> {
         Command::Cancel { file, workspace } => {
             let ws = find_workspace(file.as_deref(), workspace)?;
             cancel(&ws).await
+        }
+        Command::Analyze { file, workspace } => {
+            let ws = find_workspace(file.as_deref(), workspace)?;
+            analyze(&ws).await
         }
         Command::Trace {
             target,
@@ -922,23 +935,8 @@ fn status_text(s: &serde_json::Value) -> String {
             let _ = writeln!(out, "      {metrics}");
         }
     }
-    for g in s["eos"]["groups"].as_array().unwrap_or(&empty) {
-        for (model, f) in g["fits"].as_object().cloned().unwrap_or_default() {
-            let text = match f["refused"].as_str() {
-                Some(r) => format!("refused: {r}"),
-                None => format!(
-                    "E0 = {:.6} eV, V0 = {:.4} ± {:.4} Å³, B0 = {:.2} ± {:.2} GPa, B0' = {:.2} ± {:.2}",
-                    f["e0"].as_f64().unwrap_or(f64::NAN),
-                    f["v0"].as_f64().unwrap_or(f64::NAN),
-                    f["stderr"]["v0"].as_f64().unwrap_or(f64::NAN),
-                    f["b0_gpa"].as_f64().unwrap_or(f64::NAN),
-                    f["stderr"]["b0_gpa"].as_f64().unwrap_or(f64::NAN),
-                    f["b0_prime"].as_f64().unwrap_or(f64::NAN),
-                    f["stderr"]["b0_prime"].as_f64().unwrap_or(f64::NAN),
-                ),
-            };
-            let _ = writeln!(out, "  eos {} {model}: {text}", g["group"]);
-        }
+    for line in crate::analysis::eos_lines(&s["eos"]) {
+        let _ = writeln!(out, "  {line}");
     }
     out
 }
@@ -969,6 +967,55 @@ fn format_measurement(value: f64, error: Option<f64>) -> String {
         }
         _ => plain(value),
     }
+}
+
+/// `rondo analyze`: compute the recorded campaign's analyses again from the workspace's
+/// records and record the result (the same artifact when nothing changed).
+async fn analyze(ws: &Path) -> Result<u8> {
+    let pool = store::open_existing(ws).await?;
+    let _lock = store::lock(ws)?;
+    let Some(camp) = store::campaign_row(&pool).await? else {
+        bail!("{}: no campaign recorded", ws.display());
+    };
+    let Some(eos) = crate::analysis::recorded_eos(&camp.spec_text)
+        .with_context(|| format!("{}: campaign {}", ws.display(), camp.name))?
+    else {
+        bail!(BadInput(format!(
+            "campaign {} has no `analysis:` section; there is nothing to analyze",
+            camp.name
+        )));
+    };
+    let open: i64 =
+        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN ('planned', 'running')")
+            .fetch_one(&pool)
+            .await?;
+    if open > 0 {
+        bail!(BadInput(format!(
+            "campaign {}: {open} point(s) have not stopped yet; `rondo run` the campaign to its end first",
+            camp.name
+        )));
+    }
+    let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
+        .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
+    let doc = crate::analysis::record_eos(&pool, ws, &artifacts, &eos).await?;
+    let hash = crate::analysis::latest_eos_hash(&pool)
+        .await?
+        .unwrap_or_default();
+    pool.close().await;
+    let mut text = String::new();
+    for line in crate::analysis::eos_lines(&doc) {
+        text.push_str(&line);
+        text.push('\n');
+    }
+    emit(&text);
+    eprintln!(
+        "rondo: wrote {} (artifact {})",
+        ws.join("analysis")
+            .join(crate::analysis::EOS_ROLE)
+            .display(),
+        hash.get(..12).unwrap_or(&hash)
+    );
+    Ok(EXIT_OK)
 }
 
 /// `rondo cancel`: ask a running orchestrator to stop, or cancel what an earlier one left.
