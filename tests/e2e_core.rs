@@ -866,3 +866,56 @@ fn an_unreadable_rondo_executable_is_recorded_as_unknown_and_trace_says_so() {
         );
     }
 }
+
+#[test]
+fn status_names_the_iteration_a_point_failed_in_and_eos_groups_by_name_and_value() {
+    let d = tmp();
+    halfstep_campaign(d.path(), "always-fail-p002", "", "[1.0, 2.0]");
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    let s = status_json(d.path(), &d.path().join("c.rondo"));
+    let p2 = &s["points"][1];
+    assert_eq!(p2["state"], "failed", "{p2}");
+    let reason = p2["reason"].as_str().unwrap_or("");
+    assert!(reason.contains("failed at iteration 1 "), "{reason}");
+    assert_eq!(
+        (p2["iteration"].as_i64(), p2["last_iteration"].as_i64()),
+        (Some(0), Some(1))
+    );
+    let o = run_rondo(d.path(), &["status"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    let line = text
+        .lines()
+        .find(|l| l.trim_start().starts_with("p002 "))
+        .unwrap_or_else(|| panic!("no line for p002: {text}"));
+    assert!(
+        line.contains("failed at iteration 1 (stage `s` failed at iteration 1 "),
+        "{line}"
+    );
+    let p1 = text
+        .lines()
+        .find(|l| l.trim_start().starts_with("p001 "))
+        .unwrap_or_default();
+    let it = s["points"][0]["iteration"].as_i64().unwrap_or(0);
+    assert!(p1.contains(&format!("converged at iteration {it}")), "{p1}");
+
+    let e = tmp();
+    eos_campaign(e.path(), false);
+    let o = run_rondo(e.path(), &["run", "c.yaml"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let run_err = String::from_utf8_lossy(&o.stderr).to_string();
+    let o = run_rondo(e.path(), &["status"]);
+    let text = String::from_utf8_lossy(&o.stdout).to_string();
+    for shown_by in [&text, &run_err] {
+        assert!(
+            shown_by.contains("eos at temperature 300, birch-murnaghan: E0 = ")
+                && shown_by.contains("eos at temperature 300, vinet: "),
+            "{shown_by}"
+        );
+        assert!(
+            !shown_by.contains("{\"temperature\""),
+            "raw JSON: {shown_by}"
+        );
+    }
+}

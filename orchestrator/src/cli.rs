@@ -775,6 +775,11 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
         .bind(&id)
         .fetch_one(&pool)
         .await?;
+        let latest: Option<i64> =
+            sqlx::query_scalar("SELECT max(iteration) FROM iterations WHERE point = ?")
+                .bind(&id)
+                .fetch_one(&pool)
+                .await?;
         let mut metrics = serde_json::Map::new();
         let mut errors = serde_json::Map::new();
         if let Some(it) = good {
@@ -822,6 +827,7 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
             "state": state,
             "reason": r.get::<Option<String>, _>("reason"),
             "iteration": good.unwrap_or(0),
+            "last_iteration": latest.unwrap_or(0),
             "metrics": metrics,
             "errors": errors,
             "averages": averages,
@@ -919,12 +925,17 @@ fn status_text(s: &serde_json::Value) -> String {
             .and_then(|its| Some((its.first()?.as_i64()?, its.last()?.as_i64()?)))
             .map(|(a, b)| format!(", averaged over iterations {a}-{b}"))
             .unwrap_or_default();
+        // The iteration the point is at or stopped in (a point that failed in iteration 1
+        // has no good iteration yet).
+        let at = match p["last_iteration"].as_i64().unwrap_or(0) {
+            0 => "before its first iteration".to_string(),
+            n => format!("at iteration {n}"),
+        };
         let _ = writeln!(
             out,
-            "  {} {values}: {} at iteration {}{window}{}",
+            "  {} {values}: {} {at}{window}{}",
             p["id"].as_str().unwrap_or(""),
             p["state"].as_str().unwrap_or(""),
-            p["iteration"],
             p["reason"]
                 .as_str()
                 .filter(|_| p["state"] != "converged")
