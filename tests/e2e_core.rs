@@ -919,3 +919,225 @@ fn status_names_the_iteration_a_point_failed_in_and_eos_groups_by_name_and_value
         );
     }
 }
+
+#[test]
+fn trace_is_compact_by_default_with_labels_that_say_what_they_are() {
+    let d = tmp();
+    // p001 converges over about a dozen iterations of one stage, each using the last one's
+    // output; p002's values are of order 1e-90.
+    halfstep_campaign(d.path(), "ok", "", "[1.0, 1.0e-90]");
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let s = status_json(d.path(), &d.path().join("c.rondo"));
+    let n = s["points"][0]["iteration"].as_i64().unwrap_or(0);
+    assert!(n >= 10, "{s}");
+    let trace = |args: &[&str]| {
+        let mut all = vec!["trace"];
+        all.extend_from_slice(args);
+        let o = run_rondo(d.path(), &all);
+        assert!(o.status.success(), "{args:?}: {}", shown(&o));
+        String::from_utf8_lossy(&o.stdout).to_string()
+    };
+    let compact = trace(&["p001/last/s.x"]);
+    let one_liners = |t: &str| t.lines().filter(|l| l.starts_with("  [")).count();
+    // The target attempt in full, the one before it on one line, the rest counted.
+    assert_eq!(compact.matches("  argv ").count(), 1, "{compact}");
+    assert_eq!(one_liners(&compact), 1, "{compact}");
+    assert!(
+        compact.contains(&format!(
+            "{n} attempts upstream (2 shown: the target's iteration and those just before it)"
+        )) && compact.contains(&format!("... and {} attempts of earlier iterations", n - 2)),
+        "{compact}"
+    );
+    assert!(compact.lines().count() < 30, "{compact}");
+    // A local child is a pid, its emptied scratch folder is said to be gone.
+    assert!(compact.contains("local, pid "), "{compact}");
+    assert!(!compact.contains(" job "), "{compact}");
+    assert!(
+        compact.contains(&format!(
+            "scratch folder {} was removed",
+            d.path()
+                .join(format!("c.rondo/scratch/p001.i{n:04}.s.a1"))
+                .display()
+        )),
+        "{compact}"
+    );
+    // Numbers as `rondo status` shows them.
+    let x = s["points"][0]["metrics"]["s.x"]
+        .as_f64()
+        .unwrap_or(f64::NAN);
+    assert!(
+        compact.contains(&format!("value    {x:.6} (attempt ")),
+        "{compact}"
+    );
+    let tiny = trace(&["p002/last/s.x"]);
+    let x2 = s["points"][1]["metrics"]["s.x"]
+        .as_f64()
+        .unwrap_or(f64::NAN);
+    assert!(x2 > 0.0 && x2 < 1e-90, "{s}");
+    assert!(
+        tiny.contains(&format!("metric    s.x = {x2:.3e}")),
+        "{tiny}"
+    );
+    assert!(!tiny.contains("0.000000000"), "{tiny}");
+    // Every attempt with --depth all, each in full with --long.
+    let all = trace(&["p001/last/s.x", "--depth", "all"]);
+    assert_eq!(one_liners(&all), n as usize - 1, "{all}");
+    let long = trace(&["p001/last/s.x", "--depth", "all", "--long"]);
+    assert_eq!(long.matches("  argv ").count(), n as usize, "{long}");
+    let three = trace(&["p001/last/s.x", "--depth", "3"]);
+    assert_eq!(one_liners(&three), 2, "{three}");
+    // --json keeps everything unless a depth is asked for.
+    let j: serde_json::Value = serde_json::from_str(&trace(&["p001/last/s.x", "--json"]))
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(j["attempts"].as_array().map(Vec::len), Some(n as usize));
+    assert!(j.get("omitted_attempts").is_none(), "{j}");
+    assert_eq!(j["attempts"][0]["executor"], "local");
+    let j: serde_json::Value =
+        serde_json::from_str(&trace(&["p001/last/s.x", "--json", "--depth", "1"]))
+            .unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(j["attempts"].as_array().map(Vec::len), Some(1));
+    assert_eq!(j["omitted_attempts"], n - 1);
+    let o = run_rondo(d.path(), &["trace", "p001/last/s.x", "--depth", "0"]);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    // An output role is a target too: the metrics file the last iteration wrote.
+    let by_role = trace(&["p001/last/s.metrics"]);
+    let want = &j["attempts"][0]["outputs"]["metrics"];
+    assert!(
+        want.as_str()
+            .is_some_and(|h| by_role.starts_with(&format!("target   {h}\n"))),
+        "{want}: {by_role}"
+    );
+}
+
+#[test]
+fn extract_writes_an_artifact_found_like_a_trace_target_and_never_clobbers() {
+    let d = tmp();
+    eos_campaign(d.path(), true);
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let s = status_json(d.path(), &ws);
+    let n = s["points"][0]["iteration"].as_i64().unwrap_or(0);
+    assert_eq!(n, 2, "{s}");
+    // What the store says each name is: the outputs of p001's succeeded attempts.
+    let outputs: Vec<String> = strings(
+        &ws,
+        "SELECT a.iteration || '/' || a.stage || '.' || o.role || '=' || o.artifact \
+         FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
+         WHERE a.point = 'p001' AND a.state = 'succeeded' ORDER BY a.iteration, a.stage, o.role",
+    );
+    let recorded = |key: &str| -> String {
+        outputs
+            .iter()
+            .find_map(|r| r.strip_prefix(&format!("{key}=")))
+            .unwrap_or_else(|| panic!("{key} not in {outputs:?}"))
+            .to_string()
+    };
+    let out = d.path().join("out");
+    std::fs::create_dir_all(&out).unwrap_or_else(|e| panic!("{e}"));
+    let extract = |args: &[&str]| {
+        let mut all = vec!["extract"];
+        all.extend_from_slice(args);
+        run_rondo(d.path(), &all)
+    };
+    let hash_of = |p: &Path| {
+        blake3::hash(&std::fs::read(p).unwrap_or_default())
+            .to_hex()
+            .to_string()
+    };
+    // POINT/final/stage.output: the converged point's last output.
+    let f = out.join("mixed.json");
+    let o = extract(&["p001/final/mix.x", "-o", &f.display().to_string()]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let mixed = recorded(&format!("{n}/mix.x"));
+    assert_eq!(hash_of(&f), mixed);
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains(&format!("BLAKE3 {mixed} verified")),
+        "{}",
+        shown(&o)
+    );
+    let stored = ws.join("store").join(&mixed[..2]).join(&mixed[2..]);
+    assert_eq!(
+        std::fs::read(&stored).unwrap_or_default(),
+        std::fs::read(&f).unwrap_or_default()
+    );
+    // The other forms trace accepts.
+    let first = recorded("1/e.x");
+    let metrics = recorded(&format!("{n}/e.metrics"));
+    for (target, name, want) in [
+        ("p001/1/e.x".to_string(), "by-iteration.json", first.clone()),
+        (
+            "p001/last/e.metrics".to_string(),
+            "by-last.json",
+            metrics.clone(),
+        ),
+        // a metric names its attempt's metrics file; a final value of one iteration too
+        (
+            "p001/final/e.energy".to_string(),
+            "by-metric.json",
+            metrics.clone(),
+        ),
+        (mixed[..10].to_string(), "by-prefix.json", mixed.clone()),
+        (f.display().to_string(), "by-file.json", mixed.clone()),
+    ] {
+        let g = out.join(name);
+        let o = extract(&[&target, "-o", &g.display().to_string()]);
+        assert!(o.status.success(), "{target}: {}", shown(&o));
+        assert_eq!(hash_of(&g), want, "{target}");
+    }
+    let text = std::fs::read_to_string(out.join("by-metric.json")).unwrap_or_default();
+    assert!(text.contains(INEXACT_UNDER_DEFAULT_PARSER[0].1), "{text}");
+    // A folder: the file keeps its recorded name.
+    let o = extract(&["p001/final/mix.x", "-o", &out.display().to_string()]);
+    assert!(o.status.success(), "{}", shown(&o));
+    assert_eq!(hash_of(&out.join("x.json")), mixed);
+    // An existing file is refused and left alone; --force replaces it.
+    let g = out.join("by-iteration.json");
+    std::fs::write(&g, "keep me").unwrap_or_else(|e| panic!("{e}"));
+    let o = extract(&["p001/final/mix.x", "-o", &g.display().to_string()]);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("exists; pass --force"),
+        "{}",
+        shown(&o)
+    );
+    assert_eq!(std::fs::read_to_string(&g).unwrap_or_default(), "keep me");
+    let o = extract(&[
+        "p001/final/mix.x",
+        "-o",
+        &g.display().to_string(),
+        "--force",
+    ]);
+    assert!(o.status.success(), "{}", shown(&o));
+    assert_eq!(hash_of(&g), mixed);
+    // No temporary file is left behind.
+    let left: Vec<String> = std::fs::read_dir(&out)
+        .map(|r| {
+            r.flatten()
+                .map(|e| e.file_name().to_string_lossy().into_owned())
+                .filter(|n| n.starts_with('.'))
+                .collect()
+        })
+        .unwrap_or_default();
+    assert!(left.is_empty(), "{left:?}");
+    // A damaged store copy is caught by the hash check, and nothing is written.
+    std::fs::write(&stored, "{\"x\": 0}\n").unwrap_or_else(|e| panic!("{e}"));
+    let h = out.join("damaged.json");
+    let o = extract(&[&mixed, "-o", &h.display().to_string()]);
+    assert_eq!(o.status.code(), Some(1), "{}", shown(&o));
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("damaged"),
+        "{}",
+        shown(&o)
+    );
+    assert!(!h.exists());
+    // Unknown names say what there is.
+    let o = extract(&["p001/1/e.y", "-o", "/dev/null"]);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("outputs: e.metrics, e.x, mix.state, mix.x"),
+        "{err}"
+    );
+}

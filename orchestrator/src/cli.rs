@@ -115,17 +115,40 @@ enum Command {
         #[arg(long)]
         workspace: Option<PathBuf>,
     },
-    /// Lineage of a file, an artifact hash prefix, or POINT/ITERATION/stage.metric: every
-    /// attempt upstream with argv, program hash, parameters, inputs and outputs.
+    /// Lineage of a file, an artifact hash prefix, POINT/ITERATION/stage.metric or
+    /// POINT/ITERATION/stage.output: the record that made it in full (argv, program hash,
+    /// parameters, inputs, outputs), then one line per attempt upstream.
     Trace {
-        /// What to trace.
+        /// What to trace (ITERATION: a number, `last` or `final`).
         target: String,
         /// Workspace folder (default: the single *.rondo folder here).
         #[arg(long)]
         workspace: Option<PathBuf>,
+        /// How many iterations back to show, counting the target's own: a number, or `all`
+        /// (default 2; with --json, all).
+        #[arg(long, value_name = "N|all")]
+        depth: Option<crate::audit::Depth>,
+        /// Every attempt in full, not one line each.
+        #[arg(long)]
+        long: bool,
         /// Machine-readable output (documented in docs/provenance.md).
         #[arg(long)]
         json: bool,
+    },
+    /// Write an artifact, named as `rondo trace` accepts (file, hash prefix,
+    /// POINT/ITERATION/stage.output, POINT/final/stage.output), to a file of your choice.
+    Extract {
+        /// What to write out, e.g. p003/final/solve.sigma.
+        target: String,
+        /// Where to write it (an existing folder: the file keeps its recorded name).
+        #[arg(short, long, value_name = "PATH")]
+        output: PathBuf,
+        /// Replace an existing file.
+        #[arg(long)]
+        force: bool,
+        /// Workspace folder (default: the single *.rondo folder here).
+        #[arg(long)]
+        workspace: Option<PathBuf>,
     },
     /// Compare two points (of this workspace or of two workspaces): sweep values, parameters,
     /// program hashes, inputs, stopping rules, and where their metrics first diverge.
@@ -373,6 +396,8 @@ async fn dispatch(cmd: Command) -> Result<u8> {
         Command::Trace {
             target,
             workspace,
+            depth,
+            long,
             json,
         } => {
             let ws = find_workspace(None, workspace)?;
@@ -383,13 +408,40 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                     .await
                     .map_err(|e| BadInput(format!("{e:#}")))?;
             bar.finish();
-            let lineage = crate::audit::lineage_of(&pool, &t).await?;
+            let mut lineage = crate::audit::lineage_of(&pool, &t).await?;
+            pool.close().await;
             if json {
+                if let Some(d) = depth {
+                    lineage.limit(d);
+                }
                 emit(&format!("{}\n", serde_json::to_string_pretty(&lineage)?));
             } else {
-                emit(&lineage.to_text());
+                lineage.limit(depth.unwrap_or(crate::audit::DEFAULT_DEPTH));
+                emit(&lineage.render(&crate::audit::TextView { long }));
             }
+            Ok(EXIT_OK)
+        }
+        Command::Extract {
+            target,
+            output,
+            force,
+            workspace,
+        } => {
+            let ws = find_workspace(None, workspace)?;
+            let pool = store::open_existing(&ws).await?;
+            let out = absolute(output)?;
+            let done = crate::audit::extract(&pool, &ws, &target, &out, force).await;
             pool.close().await;
+            let done = done.map_err(|e| match e.downcast_ref::<crate::audit::Refused>() {
+                Some(r) => anyhow::Error::new(BadInput(r.0.clone())),
+                None => e,
+            })?;
+            eprintln!(
+                "rondo: wrote {} ({} bytes, BLAKE3 {} verified)",
+                done.path.display(),
+                done.size,
+                done.hash
+            );
             Ok(EXIT_OK)
         }
         Command::Diff {
@@ -955,7 +1007,7 @@ fn status_text(s: &serde_json::Value) -> String {
 /// A value for people: with an error bar, the value to the error's second significant digit
 /// and the error to two digits (`0.92603 ± 0.00025`); without, six decimals, in scientific
 /// notation when it is very small or very large.
-fn format_measurement(value: f64, error: Option<f64>) -> String {
+pub fn format_measurement(value: f64, error: Option<f64>) -> String {
     fn plain(v: f64) -> String {
         if v == 0.0 {
             "0".into()
