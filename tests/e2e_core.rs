@@ -1,8 +1,10 @@
 //! End-to-end tests of the core through the real `rondo` binary and real child processes:
 //! convergence and `status --json`, retries after each kind of stage failure, a point that
 //! fails for good while the others go on, bad input refused without writing anything, no
-//! shell injection through parameter values, the workspace lock and `rondo cancel`, and the
-//! JSON Schema drift check.
+//! shell injection through parameter values, the workspace lock and `rondo cancel`, the
+//! JSON Schema drift check; and on small real workspaces: numbers that come out bit for bit,
+//! the equation-of-state result's recorded command rerun, a program hash recorded as unknown,
+//! the status lines, the compact `rondo trace` and `rondo extract`.
 
 mod common;
 
