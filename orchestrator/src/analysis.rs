@@ -3,9 +3,10 @@
 //! fits of energy versus volume per group of the other sweep axes. The fits are written as an
 //! artifact (`analysis/eos.json`) and recorded like a report generation, with the attempts
 //! behind every energy as sources, so `rondo trace analysis/eos.json` reaches the programs.
+//! The command recorded with the result, `rondo analyze --workspace W`, computes it again.
 
 use std::collections::BTreeMap;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
 use rondo_numerics::binning;
@@ -17,8 +18,135 @@ use crate::artifacts::ArtifactStore;
 use crate::spec::{EosAnalysis, EosModelName};
 use crate::store;
 
-/// argv recorded for the equation-of-state analysis.
-pub const EOS_ARGV: [&str; 3] = ["rondo", "analysis", "eos"];
+/// Role (and file name) of the equation-of-state result among a generation's outputs.
+pub const EOS_ROLE: &str = "eos.json";
+
+/// The command that computes the equation-of-state result of workspace `ws` again, as
+/// recorded with the result: `<rondo executable> analyze --workspace <ws>`.
+pub fn eos_argv(program: &Path, ws: &Path) -> Vec<String> {
+    vec![
+        program.display().to_string(),
+        "analyze".into(),
+        "--workspace".into(),
+        ws.display().to_string(),
+    ]
+}
+
+/// rondo's own executable as recorded for built-in stages, analyses and reports: its path and
+/// either its BLAKE3 hash or the reason the hash is unknown (the file could not be read).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct OwnProgram {
+    /// Path of the running executable (as the kernel names it; a deleted file ends in
+    /// ` (deleted)`).
+    pub path: PathBuf,
+    /// Its BLAKE3 hash, or why it is unknown.
+    pub blake3: Result<String, String>,
+}
+
+impl OwnProgram {
+    /// Find and hash the running executable.
+    pub fn current() -> OwnProgram {
+        match std::env::current_exe() {
+            Ok(path) => {
+                let blake3 = crate::artifacts::hash_file(&path)
+                    .map(|(h, _)| h)
+                    .map_err(|e| format!("cannot read {}: {e}", path.display()));
+                OwnProgram { path, blake3 }
+            }
+            Err(e) => OwnProgram {
+                path: PathBuf::from("rondo"),
+                blake3: Err(format!("cannot find rondo's own executable: {e}")),
+            },
+        }
+    }
+
+    /// The hash, when known.
+    pub fn hash(&self) -> Option<String> {
+        self.blake3.clone().ok()
+    }
+
+    /// Why the hash is unknown, when it is.
+    pub fn unknown(&self) -> Option<String> {
+        self.blake3.clone().err()
+    }
+}
+
+/// The equation-of-state analysis of a campaign file text as recorded in a workspace (its
+/// `analysis: eos:` section with the defaults of docs/campaign-file.md), or `None` when the
+/// campaign has none. Only that section is read: the recorded campaign was validated when it
+/// first ran, and its start files or programs need not exist any more.
+pub fn recorded_eos(spec_text: &str) -> Result<Option<EosAnalysis>> {
+    let v: serde_json::Value = serde_saphyr::from_str(spec_text)
+        .map_err(|e| anyhow::anyhow!("{e}"))
+        .context("the campaign file recorded in the workspace does not parse")?;
+    let Some(e) = v.get("analysis").and_then(|a| a.get("eos")) else {
+        return Ok(None);
+    };
+    if e.is_null() {
+        return Ok(None);
+    }
+    let energy = e["energy"]
+        .as_str()
+        .context("the recorded campaign's `analysis: eos:` has no `energy`")?
+        .to_string();
+    let volume = e["volume"].as_str().unwrap_or("volume").to_string();
+    let models = match e.get("models").filter(|m| !m.is_null()) {
+        Some(m) => serde_json::from_value::<Vec<EosModelName>>(m.clone())
+            .context("the recorded campaign's `analysis: eos: models:` is not a list of models")?,
+        None => vec![EosModelName::BirchMurnaghan, EosModelName::Vinet],
+    };
+    Ok(Some(EosAnalysis {
+        energy,
+        volume,
+        models,
+    }))
+}
+
+/// How a group of the other sweep axes reads: `temperature 300`, `temperature 300, u 6`
+/// (names and values; the campaign file gives sweep axes no units). Empty for a campaign
+/// whose only axis is the volume.
+pub fn group_text(group: &serde_json::Map<String, serde_json::Value>) -> String {
+    group
+        .iter()
+        .map(|(k, v)| match v {
+            serde_json::Value::String(s) => format!("{k} {s}"),
+            v => format!("{k} {v}"),
+        })
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+/// One line per group and model of an equation-of-state result (`eos.json`), as `rondo run`,
+/// `rondo analyze` and `rondo status` print them.
+pub fn eos_lines(doc: &serde_json::Value) -> Vec<String> {
+    let num = |v: &serde_json::Value| v.as_f64().unwrap_or(f64::NAN);
+    let mut out = Vec::new();
+    for g in doc["groups"].as_array().into_iter().flatten() {
+        let group = g["group"]
+            .as_object()
+            .map(group_text)
+            .filter(|t| !t.is_empty())
+            .map(|t| format!(" at {t}"))
+            .unwrap_or_default();
+        for (model, f) in g["fits"].as_object().into_iter().flatten() {
+            let text = match f["refused"].as_str() {
+                Some(r) => format!("refused: {r}"),
+                None => format!(
+                    "E0 = {:.6} eV, V0 = {:.4} ± {:.4} Å³, B0 = {:.2} ± {:.2} GPa, B0' = {:.2} ± {:.2}",
+                    num(&f["e0"]),
+                    num(&f["v0"]),
+                    num(&f["stderr"]["v0"]),
+                    num(&f["b0_gpa"]),
+                    num(&f["stderr"]["b0_gpa"]),
+                    num(&f["b0_prime"]),
+                    num(&f["stderr"]["b0_prime"]),
+                ),
+            };
+            out.push(format!("eos{group}, {model}: {text}"));
+        }
+    }
+    out
+}
 
 /// A point's final value of one metric.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -227,8 +355,9 @@ pub fn eos_json(groups: &[EosGroup], spec: &EosAnalysis) -> serde_json::Value {
     })
 }
 
-/// Run the equation-of-state analysis and record its result as an artifact with provenance.
-/// Returns the JSON written.
+/// Run the equation-of-state analysis and record its result as an artifact with provenance:
+/// the command that computes it again ([`eos_argv`]), rondo's executable with its hash (or
+/// why the hash is unknown), and the attempts behind every energy. Returns the JSON written.
 pub async fn record_eos(
     pool: &SqlitePool,
     ws: &Path,
@@ -242,44 +371,48 @@ pub async fn record_eos(
     text.push('\n');
     let dir = ws.join("analysis");
     std::fs::create_dir_all(&dir).with_context(|| format!("{}: cannot create", dir.display()))?;
-    let file = dir.join("eos.json");
+    let file = dir.join(EOS_ROLE);
     crate::artifacts::write_new(&file, text.as_bytes())
         .with_context(|| format!("{}: cannot write", file.display()))?;
     let (hash, size) = artifacts
         .put_bytes(text.as_bytes())
         .context("cannot store the equation-of-state result")?;
-    let exe = std::env::current_exe().unwrap_or_default();
-    let exe_hash = crate::artifacts::hash_file(&exe).map(|h| h.0).ok();
+    let exe = OwnProgram::current();
     let mut tx = pool.begin().await?;
-    store::artifact(&mut *tx, &hash, size, "eos.json").await?;
+    store::artifact(&mut *tx, &hash, size, EOS_ROLE).await?;
     let id: i64 = sqlx::query_scalar(
-        "INSERT INTO reports(argv_json, out_dir, options_json, program_path, program_blake3, host, \
-         started_at, ended_at, rondo_version) VALUES (?,?,?,?,?,?,?,?,?) RETURNING id",
+        "INSERT INTO reports(argv_json, out_dir, options_json, program_path, program_blake3, \
+         program_unknown, host, started_at, ended_at, rondo_version) VALUES (?,?,?,?,?,?,?,?,?,?) \
+         RETURNING id",
     )
-    .bind(serde_json::to_string(&EOS_ARGV)?)
+    .bind(serde_json::to_string(&eos_argv(&exe.path, ws))?)
     .bind(dir.display().to_string())
-    .bind(serde_json::json!({"energy": spec.energy, "volume": spec.volume, "models": spec.models}).to_string())
-    .bind(exe.display().to_string())
-    .bind(exe_hash)
+    .bind(
+        serde_json::json!({"energy": spec.energy, "volume": spec.volume, "models": spec.models})
+            .to_string(),
+    )
+    .bind(exe.path.display().to_string())
+    .bind(exe.hash())
+    .bind(exe.unknown())
     .bind(store::hostname())
     .bind(&started)
     .bind(store::now())
     .bind(crate::engine::RONDO_VERSION)
     .fetch_one(&mut *tx)
     .await?;
-    sqlx::query("INSERT INTO report_outputs(report_id, role, artifact) VALUES (?, 'eos.json', ?)")
+    sqlx::query("INSERT INTO report_outputs(report_id, role, artifact) VALUES (?, ?, ?)")
         .bind(id)
+        .bind(EOS_ROLE)
         .bind(&hash)
         .execute(&mut *tx)
         .await?;
     for a in &sources {
-        sqlx::query(
-            "INSERT INTO report_sources(report_id, role, attempt_id) VALUES (?, 'eos.json', ?)",
-        )
-        .bind(id)
-        .bind(a)
-        .execute(&mut *tx)
-        .await?;
+        sqlx::query("INSERT INTO report_sources(report_id, role, attempt_id) VALUES (?, ?, ?)")
+            .bind(id)
+            .bind(EOS_ROLE)
+            .bind(a)
+            .execute(&mut *tx)
+            .await?;
     }
     store::event(
         &mut *tx,
@@ -294,20 +427,24 @@ pub async fn record_eos(
     Ok(doc)
 }
 
+/// The hash of the latest recorded equation-of-state result, if any.
+pub async fn latest_eos_hash(pool: &SqlitePool) -> Result<Option<String>> {
+    Ok(sqlx::query_scalar(
+        "SELECT o.artifact FROM report_outputs o WHERE o.role = ? ORDER BY o.report_id DESC LIMIT 1",
+    )
+    .bind(EOS_ROLE)
+    .fetch_optional(pool)
+    .await?)
+}
+
 /// The latest recorded equation-of-state result, if any.
 pub async fn latest_eos(
     pool: &SqlitePool,
     artifacts: &ArtifactStore,
 ) -> Result<Option<serde_json::Value>> {
-    let argv = serde_json::to_string(&EOS_ARGV)?;
-    let hash: Option<String> = sqlx::query_scalar(
-        "SELECT o.artifact FROM reports r JOIN report_outputs o ON o.report_id = r.id \
-         WHERE r.argv_json = ? ORDER BY r.id DESC LIMIT 1",
-    )
-    .bind(argv)
-    .fetch_optional(pool)
-    .await?;
-    let Some(hash) = hash else { return Ok(None) };
+    let Some(hash) = latest_eos_hash(pool).await? else {
+        return Ok(None);
+    };
     let path = artifacts.path_of(&hash);
     let text = std::fs::read_to_string(&path).with_context(|| {
         format!(
@@ -316,4 +453,43 @@ pub async fn latest_eos(
         )
     })?;
     Ok(Some(serde_json::from_str(&text)?))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_recorded_analysis_section_is_read_with_its_defaults() -> Result<()> {
+        let text = "campaign: c\ncycle: {}\nanalysis:\n  eos: { energy: update.energy }\n";
+        let e = recorded_eos(text)?.context("an eos analysis")?;
+        assert_eq!(e.energy, "update.energy");
+        assert_eq!(e.volume, "volume");
+        assert_eq!(
+            e.models,
+            vec![EosModelName::BirchMurnaghan, EosModelName::Vinet]
+        );
+        let text = "campaign: c\nanalysis:\n  eos: { energy: u.e, volume: v, models: [vinet] }\n";
+        let e = recorded_eos(text)?.context("an eos analysis")?;
+        assert_eq!(
+            (e.volume.as_str(), e.models),
+            ("v", vec![EosModelName::Vinet])
+        );
+        assert!(recorded_eos("campaign: c\n")?.is_none());
+        Ok(())
+    }
+
+    #[test]
+    fn groups_read_as_names_and_values() {
+        let g: serde_json::Map<String, serde_json::Value> =
+            serde_json::from_str(r#"{"temperature": 300, "phase": "alpha", "u": 6.5}"#)
+                .unwrap_or_default();
+        assert_eq!(group_text(&g), "phase alpha, temperature 300, u 6.5");
+        let doc = serde_json::json!({"groups": [{"group": {"temperature": 300},
+            "fits": {"vinet": {"refused": "too few points"}}}]});
+        assert_eq!(
+            eos_lines(&doc),
+            vec!["eos at temperature 300, vinet: refused: too few points".to_string()]
+        );
+    }
 }

@@ -90,6 +90,10 @@ pub struct AttemptRecord {
     pub failure_kind: Option<String>,
     /// Program run.
     pub program: ProgramRef,
+    /// Why the program's hash is unknown (`program.blake3` is then null): the program file
+    /// could not be read when the record was made.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub program_unknown: Option<String>,
     /// Resolved parameters.
     pub parameters: Value,
     /// `{{seed}}` value, if used.
@@ -186,6 +190,52 @@ pub struct Lineage {
     pub attempts: Vec<AttemptRecord>,
     /// Campaign start files reached.
     pub sources: Vec<StartFile>,
+    /// Attempts left out by a depth limit ([`Lineage::limit`]); only then present.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub omitted_attempts: Option<usize>,
+    /// The records that produced the target itself, as (kind, id): the attempt of a metric,
+    /// the attempts of a final value, the producers of an artifact (attempts, or report and
+    /// analysis generations).
+    #[serde(skip)]
+    pub direct: Vec<(String, i64)>,
+    /// Attempts the depth limit counts iterations back from: the direct attempts, and for a
+    /// generation the attempts whose metrics it read.
+    #[serde(skip)]
+    pub anchors: Vec<i64>,
+}
+
+/// How far `rondo trace` looks upstream, in iterations.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Depth {
+    /// The target's own iteration and N − 1 before it, per point.
+    Iterations(u32),
+    /// Everything upstream.
+    All,
+}
+
+impl std::str::FromStr for Depth {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Depth, String> {
+        if s == "all" {
+            return Ok(Depth::All);
+        }
+        match s.parse::<u32>() {
+            Ok(n) if n >= 1 => Ok(Depth::Iterations(n)),
+            _ => Err(format!(
+                "`{s}` is not a depth: give a number of iterations (1 or more) or `all`"
+            )),
+        }
+    }
+}
+
+/// The default depth of the text view: the target's iteration and the one before.
+pub const DEFAULT_DEPTH: Depth = Depth::Iterations(2);
+
+/// How `Lineage::render` shows a lineage.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct TextView {
+    /// Every attempt in full (`--long`), instead of one line per upstream attempt.
+    pub long: bool,
 }
 
 /// Campaign row of a workspace.
@@ -320,11 +370,29 @@ pub async fn resolve(
         return Ok(Target::Artifact { hash });
     }
     if let Some((point, which, name)) = parse_metric_ref(target) {
-        return match which {
-            Which::Iteration(i) => resolve_metric(pool, &point, i, &name)
-                .await
-                .map(Target::Metric),
-            Which::Final => resolve_final(pool, &point, &name).await.map(Target::Final),
+        // A metric of that name first; else an output role of the stage.
+        let (metric, iteration) = match which {
+            Which::Iteration(i) => (
+                resolve_metric(pool, &point, i, &name)
+                    .await
+                    .map(Target::Metric),
+                i,
+            ),
+            Which::Final => (
+                resolve_final(pool, &point, &name).await.map(Target::Final),
+                None,
+            ),
+        };
+        return match metric {
+            Ok(t) => Ok(t),
+            Err(e) => match resolve_output(pool, &point, iteration, &name).await? {
+                Ok(hash) => Ok(Target::Artifact { hash }),
+                Err(outputs) if outputs.is_empty() => Err(e),
+                Err(outputs) => Err(anyhow::anyhow!(
+                    "{e:#}; nor is `{name}` an output of that iteration (outputs: {})",
+                    outputs.join(", ")
+                )),
+            },
         };
     }
     let t = target.to_ascii_lowercase();
@@ -375,6 +443,57 @@ fn list_short(items: &[String]) -> String {
             items[items.len() - 3..].join(", ")
         )
     }
+}
+
+/// The artifact of output `stage.role` of a point's succeeded attempt at an iteration (`None`:
+/// the last good iteration, which is also what `final` names for an output), or the outputs
+/// that iteration has (`stage.role`) when there is no such one.
+async fn resolve_output(
+    pool: &SqlitePool,
+    point: &str,
+    iteration: Option<i64>,
+    name: &str,
+) -> Result<std::result::Result<String, Vec<String>>> {
+    let Ok(point) = resolve_point(pool, point).await else {
+        return Ok(Err(Vec::new()));
+    };
+    let iteration = match iteration {
+        Some(i) => Some(i),
+        None => {
+            sqlx::query_scalar(
+                "SELECT MAX(iteration) FROM iterations WHERE point = ? AND state = 'good'",
+            )
+            .bind(&point)
+            .fetch_one(pool)
+            .await?
+        }
+    };
+    let Some(iteration) = iteration else {
+        return Ok(Err(Vec::new()));
+    };
+    let rows = sqlx::query(
+        "SELECT a.stage, o.role, o.artifact FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id
+         WHERE a.point = ? AND a.iteration = ? AND a.state = 'succeeded' ORDER BY a.stage, o.role, a.id DESC",
+    )
+    .bind(&point)
+    .bind(iteration)
+    .fetch_all(pool)
+    .await?;
+    let mut names = Vec::new();
+    for r in rows {
+        let full = format!(
+            "{}.{}",
+            r.try_get::<String, _>(0)?,
+            r.try_get::<String, _>(1)?
+        );
+        if full == name {
+            return Ok(Ok(r.try_get(2)?));
+        }
+        if names.last() != Some(&full) {
+            names.push(full);
+        }
+    }
+    Ok(Err(names))
 }
 
 async fn resolve_final(pool: &SqlitePool, point: &str, name: &str) -> Result<FinalTarget> {
@@ -519,16 +638,12 @@ fn opt_json<T: serde::de::DeserializeOwned>(s: &str, what: &str, id: i64) -> Res
 
 /// Load one attempt with its inputs, outputs and metrics.
 pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
-    let r = sqlx::query(
-        "SELECT point, iteration, stage, attempt, state, argv_json, workdir, executor, handle_id,
-                host, started_at, ended_at, exit_status, failure_kind, program_path,
-                program_blake3, program_version, parameters_json, seed, rondo_version
-         FROM attempts WHERE id = ?",
-    )
-    .bind(id)
-    .fetch_optional(pool)
-    .await?
-    .with_context(|| format!("attempt {id} is not recorded"))?;
+    // Every column: `program_unknown` is absent from stores made before migration 4.
+    let r = sqlx::query("SELECT * FROM attempts WHERE id = ?")
+        .bind(id)
+        .fetch_optional(pool)
+        .await?
+        .with_context(|| format!("attempt {id} is not recorded"))?;
     let argv_json: String = r.try_get("argv_json")?;
     let params_json: String = r.try_get("parameters_json")?;
     let mut rec = AttemptRecord {
@@ -553,6 +668,7 @@ pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
             blake3: r.try_get("program_blake3")?,
             version: r.try_get("program_version")?,
         },
+        program_unknown: r.try_get("program_unknown").ok().flatten(),
         parameters: opt_json(&params_json, "parameters_json", id)?,
         seed: r.try_get("seed")?,
         rondo_version: r.try_get("rondo_version")?,
@@ -644,6 +760,8 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
     let mut queue: VecDeque<i64> = VecDeque::new();
     let mut attempts = Vec::new();
     let mut sources = BTreeSet::new();
+    let mut direct: Vec<(String, i64)> = Vec::new();
+    let mut anchors: Vec<i64> = Vec::new();
     let (target_str, metric, final_value) = match target {
         Target::Artifact { hash } => {
             let known: Option<String> =
@@ -654,11 +772,15 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
             if known.is_none() {
                 bail!("artifact {hash} is not recorded in this workspace");
             }
-            let direct = producers(pool, hash, None).await?;
-            queue.extend(direct.iter().copied());
-            if direct.is_empty() {
+            let producing = producers(pool, hash, None).await?;
+            queue.extend(producing.iter().copied());
+            direct.extend(producing.iter().map(|id| ("attempt".to_string(), *id)));
+            anchors.extend(producing.iter().copied());
+            if producing.is_empty() {
                 for rep in crate::report::producing_reports(pool, hash).await? {
                     queue.extend(rep.sources.iter().copied());
+                    anchors.extend(rep.sources.iter().copied());
+                    direct.push((rep.kind.clone(), rep.id));
                     attempts.push(rep);
                 }
             }
@@ -678,6 +800,8 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
         }
         Target::Metric(m) => {
             queue.push_back(m.attempt_id);
+            direct.push(("attempt".into(), m.attempt_id));
+            anchors.push(m.attempt_id);
             (
                 format!("{}/{}/{}", m.point, m.iteration, m.name),
                 Some(m.clone()),
@@ -686,6 +810,8 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
         }
         Target::Final(f) => {
             queue.extend(f.attempts.iter().copied());
+            direct.extend(f.attempts.iter().map(|id| ("attempt".to_string(), *id)));
+            anchors.extend(f.attempts.iter().copied());
             (
                 format!("{}/final/{}", f.point, f.name),
                 None,
@@ -723,6 +849,9 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
         campaign,
         attempts,
         sources: sources.into_iter().collect(),
+        omitted_attempts: None,
+        direct,
+        anchors,
     })
 }
 
@@ -730,17 +859,81 @@ fn opt(s: &Option<String>) -> &str {
     s.as_deref().unwrap_or("-")
 }
 
+/// `BLAKE3 <hash>`, or `program hash unknown: <reason>` when the program could not be read
+/// (recorded as a NULL hash and a reason; older stores wrote `unreadable: <reason>` for a
+/// command stage's program).
+fn program_hash_text(a: &AttemptRecord) -> String {
+    match (&a.program.blake3, &a.program_unknown) {
+        (Some(h), None) if h.is_empty() => "program hash unknown: not recorded".into(),
+        (Some(h), _) => match h.strip_prefix("unreadable: ") {
+            Some(why) => format!("program hash unknown: {why}"),
+            None => format!("BLAKE3 {h}"),
+        },
+        (None, Some(why)) => format!("program hash unknown: {why}"),
+        (None, None) => "program hash unknown: not recorded".into(),
+    }
+}
+
 impl Lineage {
-    /// Human-readable rendering.
+    /// Keep the attempts within `depth` iterations of the target, per point: an attempt
+    /// stays when it produced the target, or when its iteration is at most `N − 1` below the
+    /// lowest iteration of that point's anchors (the attempts behind the target; for a point
+    /// with none, its highest iteration in the lineage). Generations (reports, analyses)
+    /// always stay. The number left out is kept in `omitted_attempts`.
+    pub fn limit(&mut self, depth: Depth) {
+        let Depth::Iterations(n) = depth else { return };
+        let mut reference: BTreeMap<String, i64> = BTreeMap::new();
+        for a in &self.attempts {
+            if let (Some(p), Some(i)) = (&a.point, a.iteration) {
+                if self.anchors.contains(&a.id) && a.kind == "attempt" {
+                    let r = reference.entry(p.clone()).or_insert(i);
+                    *r = (*r).min(i);
+                }
+            }
+        }
+        let mut highest: BTreeMap<String, i64> = BTreeMap::new();
+        for a in &self.attempts {
+            if let (Some(p), Some(i)) = (&a.point, a.iteration) {
+                if !reference.contains_key(p) {
+                    let h = highest.entry(p.clone()).or_insert(i);
+                    *h = (*h).max(i);
+                }
+            }
+        }
+        reference.extend(highest);
+        let before = self.attempts.len();
+        let direct = self.direct.clone();
+        self.attempts.retain(|a| {
+            let (Some(p), Some(i)) = (&a.point, a.iteration) else {
+                return true;
+            };
+            direct.contains(&(a.kind.clone(), a.id))
+                || reference.get(p).is_none_or(|r| i > r - i64::from(n))
+        });
+        self.omitted_attempts = Some(before - self.attempts.len());
+    }
+
+    /// Human-readable rendering of everything: every attempt in full (`rondo trace --long
+    /// --depth all`).
     pub fn to_text(&self) -> String {
+        self.render(&TextView { long: true })
+    }
+
+    /// Human-readable rendering: the target, then the records that produced it in full, then
+    /// one line per upstream attempt (every attempt in full with `long`).
+    pub fn render(&self, view: &TextView) -> String {
+        let fmt = crate::cli::format_measurement;
         let mut s = String::new();
         let _ = writeln!(s, "target   {}", self.target);
         if let Some(m) = &self.metric {
-            let err = m.error.map(|e| format!(" ± {e}")).unwrap_or_default();
-            let _ = writeln!(s, "value    {}{} (attempt {})", m.value, err, m.attempt_id);
+            let _ = writeln!(
+                s,
+                "value    {} (attempt {})",
+                fmt(m.value, m.error),
+                m.attempt_id
+            );
         }
         if let Some(f) = &self.final_value {
-            let err = f.error.map(|e| format!(" ± {e}")).unwrap_or_default();
             let from = match (f.how, f.iterations.first(), f.iterations.last()) {
                 ("window", Some(a), Some(b)) => {
                     format!("mean of the final window, iterations {a}-{b}")
@@ -751,8 +944,8 @@ impl Lineage {
             let ids: Vec<String> = f.attempts.iter().map(|a| a.to_string()).collect();
             let _ = writeln!(
                 s,
-                "value    {}{err} ({from}; attempts {})",
-                f.value,
+                "value    {} ({from}; attempts {})",
+                fmt(f.value, f.error),
                 ids.join(", ")
             );
         }
@@ -761,80 +954,57 @@ impl Lineage {
             "campaign {} ({}, BLAKE3 {})",
             self.campaign.name, self.campaign.spec_path, self.campaign.spec_blake3
         );
+        let shown = self.attempts.len();
+        let omitted = self.omitted_attempts.unwrap_or(0);
         let _ = writeln!(
             s,
-            "{} attempts upstream, nearest first:",
-            self.attempts.len()
+            "{} attempts upstream{}, nearest first{}",
+            shown + omitted,
+            if omitted > 0 {
+                format!(" ({shown} shown: the target's iteration and those just before it)")
+            } else {
+                String::new()
+            },
+            if view.long {
+                ":"
+            } else {
+                "; the records that made the target in full, the others one line each:"
+            }
         );
-        for a in &self.attempts {
+        // The record shown in full in the compact view: the newest that made the target.
+        let detailed: Option<(String, i64)> = if view.long {
+            None
+        } else {
+            self.attempts
+                .iter()
+                .filter(|a| self.direct.contains(&(a.kind.clone(), a.id)))
+                .max_by_key(|a| (a.iteration.unwrap_or(i64::MAX), a.id))
+                .map(|a| (a.kind.clone(), a.id))
+        };
+        if let Some(key) = &detailed {
+            if let Some(a) = self
+                .attempts
+                .iter()
+                .find(|a| (a.kind.clone(), a.id) == *key)
+            {
+                let _ = writeln!(s);
+                self.details(&mut s, a);
+            }
             let _ = writeln!(s);
-            match (&a.point, a.iteration) {
-                (Some(p), Some(i)) => {
-                    let _ = writeln!(
-                        s,
-                        "[{}] {} iteration {} stage {} attempt {} ({})",
-                        a.id, p, i, a.stage, a.attempt, a.state
-                    );
-                }
-                _ => {
-                    let _ = writeln!(s, "[report {}] {} ({})", a.id, a.stage, a.state);
-                }
+        }
+        for a in &self.attempts {
+            if view.long {
+                let _ = writeln!(s);
+                self.details(&mut s, a);
+            } else if detailed.as_ref() != Some(&(a.kind.clone(), a.id)) {
+                let _ = writeln!(s, "{}", one_line(a));
             }
-            let _ = writeln!(s, "  argv      {}", a.argv.join(" "));
+        }
+        if omitted > 0 {
             let _ = writeln!(
                 s,
-                "  program   {} BLAKE3 {}{}",
-                opt(&a.program.path),
-                opt(&a.program.blake3),
-                a.program
-                    .version
-                    .as_ref()
-                    .map(|v| format!(" version {}", v.trim()))
-                    .unwrap_or_default()
+                "  ... and {omitted} attempts of earlier iterations (`--depth N` for N iterations, `--depth all` for every one)"
             );
-            let _ = writeln!(
-                s,
-                "  ran       {} on {} job {} workdir {}",
-                a.executor,
-                opt(&a.host),
-                opt(&a.job_id),
-                opt(&a.workdir)
-            );
-            let _ = writeln!(
-                s,
-                "  times     {} .. {} exit {}",
-                opt(&a.started_at),
-                opt(&a.ended_at),
-                a.exit_status
-                    .map(|e| e.to_string())
-                    .unwrap_or_else(|| "-".into())
-            );
-            if let Some(seed) = &a.seed {
-                let _ = writeln!(s, "  seed      {seed}");
-            }
-            let _ = writeln!(s, "  params    {}", a.parameters);
-            for (r, h) in &a.inputs {
-                let _ = writeln!(s, "  in  {r:<10} {h}");
-            }
-            // a report wrote many files: show the traced one(s) only
-            let mut hidden = 0;
-            for (r, h) in &a.outputs {
-                if a.kind == "report" && *h != self.target {
-                    hidden += 1;
-                    continue;
-                }
-                let _ = writeln!(s, "  out {r:<10} {h}");
-            }
-            if hidden > 0 {
-                let _ = writeln!(s, "  out        ... and {hidden} other report files");
-            }
-            for (n, m) in &a.metrics {
-                let err = m.error.map(|e| format!(" ± {e}")).unwrap_or_default();
-                let _ = writeln!(s, "  metric    {n} = {}{err}", m.value);
-            }
-            if !a.sources.is_empty() {
-                let _ = writeln!(s, "  read metrics of {} attempts", a.sources.len());
-            }
         }
         if !self.sources.is_empty() {
             let _ = writeln!(s);
@@ -845,6 +1015,305 @@ impl Lineage {
         }
         s
     }
+
+    /// Every recorded detail of one attempt or generation.
+    fn details(&self, s: &mut String, a: &AttemptRecord) {
+        let fmt = crate::cli::format_measurement;
+        let _ = writeln!(s, "{}", heading(a));
+        let _ = writeln!(s, "  argv      {}", a.argv.join(" "));
+        let _ = writeln!(
+            s,
+            "  program   {} {}{}",
+            opt(&a.program.path),
+            program_hash_text(a),
+            a.program
+                .version
+                .as_ref()
+                .map(|v| format!(" version {}", v.trim()))
+                .unwrap_or_default()
+        );
+        let _ = writeln!(s, "  ran       {}", where_it_ran(a));
+        let _ = writeln!(
+            s,
+            "  times     {} .. {} exit {}",
+            opt(&a.started_at),
+            opt(&a.ended_at),
+            a.exit_status
+                .map(|e| e.to_string())
+                .unwrap_or_else(|| "-".into())
+        );
+        if let Some(seed) = &a.seed {
+            let _ = writeln!(s, "  seed      {seed}");
+        }
+        let _ = writeln!(s, "  params    {}", a.parameters);
+        for (r, h) in &a.inputs {
+            let _ = writeln!(s, "  in  {r:<10} {h}");
+        }
+        // a report wrote many files: show the traced one(s) only
+        let mut hidden = 0;
+        for (r, h) in &a.outputs {
+            if a.kind == "report" && *h != self.target {
+                hidden += 1;
+                continue;
+            }
+            let _ = writeln!(s, "  out {r:<10} {h}");
+        }
+        if hidden > 0 {
+            let _ = writeln!(s, "  out        ... and {hidden} other report files");
+        }
+        for (n, m) in &a.metrics {
+            let _ = writeln!(s, "  metric    {n} = {}", fmt(m.value, m.error));
+        }
+        if !a.sources.is_empty() {
+            let _ = writeln!(s, "  read metrics of {} attempts", a.sources.len());
+        }
+    }
+}
+
+/// A refusal of `rondo extract` caused by what the user asked (an unknown target, a file in
+/// the way): the command line reports it as bad input.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct Refused(pub String);
+
+/// An artifact written out by [`extract`].
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Extracted {
+    /// Where it was written.
+    pub path: std::path::PathBuf,
+    /// Its BLAKE3 hash, checked on the written file.
+    pub hash: String,
+    /// Its size in bytes.
+    pub size: u64,
+}
+
+/// Write the artifact named by `target` (any form [`resolve`] accepts; a metric names its
+/// attempt's metrics file) to `out`, or into `out` under its recorded name when `out` is a
+/// folder. An existing file is refused unless `force`. The bytes go to a temporary file in
+/// the same folder, are synced and hashed, and only a file whose BLAKE3 matches the record
+/// is moved into place (no other process ever sees a partial file).
+pub async fn extract(
+    pool: &SqlitePool,
+    ws: &Path,
+    target: &str,
+    out: &Path,
+    force: bool,
+) -> Result<Extracted> {
+    let refused = |m: String| anyhow::Error::new(Refused(m));
+    let hash = match resolve(pool, ws, target, &mut |_, _| {}).await {
+        Err(e) => return Err(refused(format!("{e:#}"))),
+        Ok(Target::Final(f)) if f.attempts.len() == 1 => resolve_target(
+            pool,
+            ws,
+            &format!(
+                "{}/{}/{}",
+                f.point,
+                f.iterations.first().copied().unwrap_or_default(),
+                f.name
+            ),
+        )
+        .await
+        .map_err(|e| refused(format!("{e:#}")))?,
+        Ok(Target::Final(f)) => {
+            return Err(refused(format!(
+                "{target} is the mean of {} iterations' values, not a file; extract one \
+                 iteration's metrics file (e.g. {}/{}/{}) or an output (POINT/final/stage.output)",
+                f.attempts.len(),
+                f.point,
+                f.iterations.last().copied().unwrap_or(1),
+                f.name
+            )))
+        }
+        Ok(_) => resolve_target(pool, ws, target)
+            .await
+            .map_err(|e| refused(format!("{e:#}")))?,
+    };
+    let name: String = sqlx::query_scalar("SELECT original_name FROM artifacts WHERE hash = ?")
+        .bind(&hash)
+        .fetch_one(pool)
+        .await?;
+    let dest = if out.is_dir() {
+        out.join(
+            Path::new(&name)
+                .file_name()
+                .map(|n| n.to_os_string())
+                .unwrap_or_else(|| hash.clone().into()),
+        )
+    } else {
+        out.to_path_buf()
+    };
+    if !force && dest.symlink_metadata().is_ok() {
+        return Err(refused(format!(
+            "{} exists; pass --force to replace it",
+            dest.display()
+        )));
+    }
+    let src = ws.join("store").join(&hash[..2]).join(&hash[2..]);
+    let dir = match dest.parent() {
+        Some(d) if !d.as_os_str().is_empty() => d.to_path_buf(),
+        _ => std::path::PathBuf::from("."),
+    };
+    if !dir.is_dir() {
+        return Err(refused(format!(
+            "{}: no such folder to write into",
+            dir.display()
+        )));
+    }
+    let file_name = dest
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let tmp = dir.join(format!(".{file_name}.rondo-{}.tmp", std::process::id()));
+    let written = (|| -> Result<(String, u64)> {
+        let mut from = File::open(&src).with_context(|| {
+            format!(
+                "{}: artifact {hash} is recorded but missing from the store",
+                src.display()
+            )
+        })?;
+        let mut to =
+            File::create(&tmp).with_context(|| format!("{}: cannot create", tmp.display()))?;
+        std::io::copy(&mut from, &mut to)
+            .with_context(|| format!("{}: cannot write", tmp.display()))?;
+        to.sync_all()
+            .with_context(|| format!("{}: cannot sync", tmp.display()))?;
+        let size = to.metadata()?.len();
+        drop(to);
+        Ok((hash_file_with_progress(&tmp, &mut |_, _| {})?, size))
+    })();
+    let (got, size) = match written {
+        Ok(w) => w,
+        Err(e) => {
+            let _ = std::fs::remove_file(&tmp);
+            return Err(e);
+        }
+    };
+    if got != hash {
+        let _ = std::fs::remove_file(&tmp);
+        bail!(
+            "the copy of artifact {hash} has BLAKE3 {got}: the store's file is damaged \
+             ({}); nothing was written to {}",
+            src.display(),
+            dest.display()
+        );
+    }
+    // Without --force, a hard link never replaces a file that appeared meanwhile.
+    let placed = if force {
+        std::fs::rename(&tmp, &dest)
+    } else {
+        std::fs::hard_link(&tmp, &dest).and_then(|()| std::fs::remove_file(&tmp))
+    };
+    if let Err(e) = placed {
+        let _ = std::fs::remove_file(&tmp);
+        if e.kind() == std::io::ErrorKind::AlreadyExists {
+            return Err(refused(format!(
+                "{} exists; pass --force to replace it",
+                dest.display()
+            )));
+        }
+        return Err(e).with_context(|| format!("{}: cannot write", dest.display()));
+    }
+    if let Ok(d) = File::open(&dir) {
+        let _ = d.sync_all();
+    }
+    Ok(Extracted {
+        path: dest,
+        hash,
+        size,
+    })
+}
+
+/// `[57] p003 iteration 4 stage update attempt 1 (succeeded)`, or `[report 3] ...`.
+fn heading(a: &AttemptRecord) -> String {
+    match (&a.point, a.iteration) {
+        (Some(p), Some(i)) => format!(
+            "[{}] {} iteration {} stage {} attempt {} ({})",
+            a.id, p, i, a.stage, a.attempt, a.state
+        ),
+        _ => format!("[{}] ({})", generation(a), a.state),
+    }
+}
+
+/// `report 3`, or `analysis 2 (equation of state)` for the generation of `eos.json`.
+fn generation(a: &AttemptRecord) -> String {
+    if a.outputs.contains_key(crate::analysis::EOS_ROLE) {
+        format!("analysis {} (equation of state)", a.id)
+    } else {
+        format!("report {}", a.id)
+    }
+}
+
+/// One line of the compact view: who, what ran, where, how long.
+fn one_line(a: &AttemptRecord) -> String {
+    let who = match (&a.point, a.iteration) {
+        (Some(p), Some(i)) => format!(
+            "[{}] {p} iteration {i} {} #{} {}",
+            a.id, a.stage, a.attempt, a.state
+        ),
+        _ => format!("[{}] {}", generation(a), a.state),
+    };
+    let program = a
+        .program
+        .path
+        .as_deref()
+        .map(|p| {
+            Path::new(p)
+                .file_name()
+                .map(|n| n.to_string_lossy().into_owned())
+                .unwrap_or_else(|| p.to_string())
+        })
+        .unwrap_or_else(|| "-".into());
+    let hash = match program_hash_text(a).strip_prefix("BLAKE3 ") {
+        Some(h) => format!("BLAKE3 {}", h.get(..12).unwrap_or(h)),
+        None => "program hash unknown".into(),
+    };
+    let took = match (&a.started_at, &a.ended_at) {
+        (Some(t0), Some(t1)) => match (
+            chrono::DateTime::parse_from_rfc3339(t0),
+            chrono::DateTime::parse_from_rfc3339(t1),
+        ) {
+            (Ok(t0), Ok(t1)) => format!(
+                ", {:.1} s",
+                (t1 - t0).num_milliseconds().max(0) as f64 / 1000.0
+            ),
+            _ => String::new(),
+        },
+        _ => String::new(),
+    };
+    format!("  {who} · {program} {hash} · {}{took}", process_label(a))
+}
+
+/// What ran it, labelled by what the id is: `local, pid 4242 on node1`, `Slurm job 4711 on
+/// node07`, `batch job 12.server (PBS)`, `inside rondo on node1`.
+fn process_label(a: &AttemptRecord) -> String {
+    let on = a
+        .host
+        .as_deref()
+        .map(|h| format!(" on {h}"))
+        .unwrap_or_default();
+    match (a.executor.as_str(), &a.job_id) {
+        ("local", Some(id)) => format!("local, pid {id}{on}"),
+        ("slurm", Some(id)) => format!("Slurm job {id}{on}"),
+        ("pbs", Some(id)) => format!("batch job {id} (PBS){on}"),
+        ("builtin", _) => format!("inside rondo{on}"),
+        (kind, Some(id)) => format!("{kind}, batch job {id}{on}"),
+        (kind, None) => format!("{kind}, not started{on}"),
+    }
+}
+
+/// `local, pid 4242 on node1; scratch folder /…/p003.i0004.update.a1 was removed`.
+fn where_it_ran(a: &AttemptRecord) -> String {
+    let folder = if a.kind == "report" {
+        "output folder"
+    } else {
+        "scratch folder"
+    };
+    let dir = match a.workdir.as_deref() {
+        Some(w) if Path::new(w).is_dir() => format!("; {folder} {w}"),
+        Some(w) => format!("; {folder} {w} was removed"),
+        None => String::new(),
+    };
+    format!("{}{dir}", process_label(a))
 }
 
 // ---------------------------------------------------------------------------------------

@@ -106,17 +106,49 @@ enum Command {
         #[arg(long)]
         workspace: Option<PathBuf>,
     },
-    /// Lineage of a file, an artifact hash prefix, or POINT/ITERATION/stage.metric: every
-    /// attempt upstream with argv, program hash, parameters, inputs and outputs.
+    /// Run the campaign's analyses (the equation-of-state fits) again on a finished workspace
+    /// and record the result; this is the command recorded with every analysis result.
+    Analyze {
+        /// The campaign file (its default workspace is used).
+        file: Option<PathBuf>,
+        /// Workspace folder.
+        #[arg(long)]
+        workspace: Option<PathBuf>,
+    },
+    /// Lineage of a file, an artifact hash prefix, POINT/ITERATION/stage.metric or
+    /// POINT/ITERATION/stage.output: the record that made it in full (argv, program hash,
+    /// parameters, inputs, outputs), then one line per attempt upstream.
     Trace {
-        /// What to trace.
+        /// What to trace (ITERATION: a number, `last` or `final`).
         target: String,
         /// Workspace folder (default: the single *.rondo folder here).
         #[arg(long)]
         workspace: Option<PathBuf>,
+        /// How many iterations back to show, counting the target's own: a number, or `all`
+        /// (default 2; with --json, all).
+        #[arg(long, value_name = "N|all")]
+        depth: Option<crate::audit::Depth>,
+        /// Every attempt in full, not one line each.
+        #[arg(long)]
+        long: bool,
         /// Machine-readable output (documented in docs/provenance.md).
         #[arg(long)]
         json: bool,
+    },
+    /// Write an artifact, named as `rondo trace` accepts (file, hash prefix,
+    /// POINT/ITERATION/stage.output, POINT/final/stage.output), to a file of your choice.
+    Extract {
+        /// What to write out, e.g. p003/final/solve.sigma.
+        target: String,
+        /// Where to write it (an existing folder: the file keeps its recorded name).
+        #[arg(short, long, value_name = "PATH")]
+        output: PathBuf,
+        /// Replace an existing file.
+        #[arg(long)]
+        force: bool,
+        /// Workspace folder (default: the single *.rondo folder here).
+        #[arg(long)]
+        workspace: Option<PathBuf>,
     },
     /// Compare two points (of this workspace or of two workspaces): sweep values, parameters,
     /// program hashes, inputs, stopping rules, and where their metrics first diverge.
@@ -357,9 +389,15 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             let ws = find_workspace(file.as_deref(), workspace)?;
             cancel(&ws).await
         }
+        Command::Analyze { file, workspace } => {
+            let ws = find_workspace(file.as_deref(), workspace)?;
+            analyze(&ws).await
+        }
         Command::Trace {
             target,
             workspace,
+            depth,
+            long,
             json,
         } => {
             let ws = find_workspace(None, workspace)?;
@@ -370,13 +408,40 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                     .await
                     .map_err(|e| BadInput(format!("{e:#}")))?;
             bar.finish();
-            let lineage = crate::audit::lineage_of(&pool, &t).await?;
+            let mut lineage = crate::audit::lineage_of(&pool, &t).await?;
+            pool.close().await;
             if json {
+                if let Some(d) = depth {
+                    lineage.limit(d);
+                }
                 emit(&format!("{}\n", serde_json::to_string_pretty(&lineage)?));
             } else {
-                emit(&lineage.to_text());
+                lineage.limit(depth.unwrap_or(crate::audit::DEFAULT_DEPTH));
+                emit(&lineage.render(&crate::audit::TextView { long }));
             }
+            Ok(EXIT_OK)
+        }
+        Command::Extract {
+            target,
+            output,
+            force,
+            workspace,
+        } => {
+            let ws = find_workspace(None, workspace)?;
+            let pool = store::open_existing(&ws).await?;
+            let out = absolute(output)?;
+            let done = crate::audit::extract(&pool, &ws, &target, &out, force).await;
             pool.close().await;
+            let done = done.map_err(|e| match e.downcast_ref::<crate::audit::Refused>() {
+                Some(r) => anyhow::Error::new(BadInput(r.0.clone())),
+                None => e,
+            })?;
+            eprintln!(
+                "rondo: wrote {} ({} bytes, BLAKE3 {} verified)",
+                done.path.display(),
+                done.size,
+                done.hash
+            );
             Ok(EXIT_OK)
         }
         Command::Diff {
@@ -762,6 +827,11 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
         .bind(&id)
         .fetch_one(&pool)
         .await?;
+        let latest: Option<i64> =
+            sqlx::query_scalar("SELECT max(iteration) FROM iterations WHERE point = ?")
+                .bind(&id)
+                .fetch_one(&pool)
+                .await?;
         let mut metrics = serde_json::Map::new();
         let mut errors = serde_json::Map::new();
         if let Some(it) = good {
@@ -809,6 +879,7 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
             "state": state,
             "reason": r.get::<Option<String>, _>("reason"),
             "iteration": good.unwrap_or(0),
+            "last_iteration": latest.unwrap_or(0),
             "metrics": metrics,
             "errors": errors,
             "averages": averages,
@@ -906,12 +977,17 @@ fn status_text(s: &serde_json::Value) -> String {
             .and_then(|its| Some((its.first()?.as_i64()?, its.last()?.as_i64()?)))
             .map(|(a, b)| format!(", averaged over iterations {a}-{b}"))
             .unwrap_or_default();
+        // The iteration the point is at or stopped in (a point that failed in iteration 1
+        // has no good iteration yet).
+        let at = match p["last_iteration"].as_i64().unwrap_or(0) {
+            0 => "before its first iteration".to_string(),
+            n => format!("at iteration {n}"),
+        };
         let _ = writeln!(
             out,
-            "  {} {values}: {} at iteration {}{window}{}",
+            "  {} {values}: {} {at}{window}{}",
             p["id"].as_str().unwrap_or(""),
             p["state"].as_str().unwrap_or(""),
-            p["iteration"],
             p["reason"]
                 .as_str()
                 .filter(|_| p["state"] != "converged")
@@ -922,23 +998,8 @@ fn status_text(s: &serde_json::Value) -> String {
             let _ = writeln!(out, "      {metrics}");
         }
     }
-    for g in s["eos"]["groups"].as_array().unwrap_or(&empty) {
-        for (model, f) in g["fits"].as_object().cloned().unwrap_or_default() {
-            let text = match f["refused"].as_str() {
-                Some(r) => format!("refused: {r}"),
-                None => format!(
-                    "E0 = {:.6} eV, V0 = {:.4} ± {:.4} Å³, B0 = {:.2} ± {:.2} GPa, B0' = {:.2} ± {:.2}",
-                    f["e0"].as_f64().unwrap_or(f64::NAN),
-                    f["v0"].as_f64().unwrap_or(f64::NAN),
-                    f["stderr"]["v0"].as_f64().unwrap_or(f64::NAN),
-                    f["b0_gpa"].as_f64().unwrap_or(f64::NAN),
-                    f["stderr"]["b0_gpa"].as_f64().unwrap_or(f64::NAN),
-                    f["b0_prime"].as_f64().unwrap_or(f64::NAN),
-                    f["stderr"]["b0_prime"].as_f64().unwrap_or(f64::NAN),
-                ),
-            };
-            let _ = writeln!(out, "  eos {} {model}: {text}", g["group"]);
-        }
+    for line in crate::analysis::eos_lines(&s["eos"]) {
+        let _ = writeln!(out, "  {line}");
     }
     out
 }
@@ -946,7 +1007,7 @@ fn status_text(s: &serde_json::Value) -> String {
 /// A value for people: with an error bar, the value to the error's second significant digit
 /// and the error to two digits (`0.92603 ± 0.00025`); without, six decimals, in scientific
 /// notation when it is very small or very large.
-fn format_measurement(value: f64, error: Option<f64>) -> String {
+pub fn format_measurement(value: f64, error: Option<f64>) -> String {
     fn plain(v: f64) -> String {
         if v == 0.0 {
             "0".into()
@@ -969,6 +1030,55 @@ fn format_measurement(value: f64, error: Option<f64>) -> String {
         }
         _ => plain(value),
     }
+}
+
+/// `rondo analyze`: compute the recorded campaign's analyses again from the workspace's
+/// records and record the result (the same artifact when nothing changed).
+async fn analyze(ws: &Path) -> Result<u8> {
+    let pool = store::open_existing(ws).await?;
+    let _lock = store::lock(ws)?;
+    let Some(camp) = store::campaign_row(&pool).await? else {
+        bail!("{}: no campaign recorded", ws.display());
+    };
+    let Some(eos) = crate::analysis::recorded_eos(&camp.spec_text)
+        .with_context(|| format!("{}: campaign {}", ws.display(), camp.name))?
+    else {
+        bail!(BadInput(format!(
+            "campaign {} has no `analysis:` section; there is nothing to analyze",
+            camp.name
+        )));
+    };
+    let open: i64 =
+        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN ('planned', 'running')")
+            .fetch_one(&pool)
+            .await?;
+    if open > 0 {
+        bail!(BadInput(format!(
+            "campaign {}: {open} point(s) have not stopped yet; `rondo run` the campaign to its end first",
+            camp.name
+        )));
+    }
+    let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
+        .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
+    let doc = crate::analysis::record_eos(&pool, ws, &artifacts, &eos).await?;
+    let hash = crate::analysis::latest_eos_hash(&pool)
+        .await?
+        .unwrap_or_default();
+    pool.close().await;
+    let mut text = String::new();
+    for line in crate::analysis::eos_lines(&doc) {
+        text.push_str(&line);
+        text.push('\n');
+    }
+    emit(&text);
+    eprintln!(
+        "rondo: wrote {} (artifact {})",
+        ws.join("analysis")
+            .join(crate::analysis::EOS_ROLE)
+            .display(),
+        hash.get(..12).unwrap_or(&hash)
+    );
+    Ok(EXIT_OK)
 }
 
 /// `rondo cancel`: ask a running orchestrator to stop, or cancel what an earlier one left.
@@ -1070,5 +1180,28 @@ mod tests {
         assert_eq!(format_measurement(3.2e-7, None), "3.200e-7");
         assert_eq!(format_measurement(0.0, None), "0");
         assert_eq!(format_measurement(f64::NAN, None), "NaN");
+    }
+
+    /// Numbers that serde_json's default (fast, inexact) float parser reads one unit in the
+    /// last place off: found by a search over the doubles next to a Birch–Murnaghan curve
+    /// with serde_json 1.0.154 without `float_roundtrip` (the same values drive the end-to-end
+    /// test `published_numbers_come_out_bit_for_bit_...`). Each is the shortest text of its
+    /// double, so Rust's own correctly rounded parser gives the reference.
+    #[test]
+    fn json_numbers_are_read_exactly() {
+        for text in [
+            "-11.959089291369073",
+            "-11.990455887023707",
+            "-12.000000000000005",
+            "-11.991627802281503",
+            "-11.968529824472133",
+        ] {
+            let exact: f64 = text.parse().unwrap_or(f64::NAN);
+            let read: f64 = serde_json::from_str(text).unwrap_or(f64::NAN);
+            assert_eq!(read.to_bits(), exact.to_bits(), "{text} read as {read:?}");
+            let value: serde_json::Value = serde_json::from_str(text).unwrap_or_default();
+            assert_eq!(value.as_f64().map(f64::to_bits), Some(exact.to_bits()));
+            assert_eq!(serde_json::to_string(&exact).unwrap_or_default(), text);
+        }
     }
 }

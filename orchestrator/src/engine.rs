@@ -435,7 +435,9 @@ struct PlannedRow {
     workdir: String,
     executor: &'static str,
     program_path: String,
-    program_blake3: String,
+    program_blake3: Option<String>,
+    /// Why the program's hash is unknown (`program_blake3` is then NULL).
+    program_unknown: Option<String>,
     program_version: Option<String>,
     parameters_json: String,
     seed: Option<String>,
@@ -460,9 +462,9 @@ fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
     }
     script.stmt(&format!(
         "INSERT INTO attempts(id, point, iteration, stage, attempt, state, argv_json, workdir, executor, \
-         program_path, program_blake3, program_version, parameters_json, seed, rondo_version, created_at, host) \
-         VALUES {}",
-        vec!["(?,?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?,?)"; rows.len()].join(",")
+         program_path, program_blake3, program_unknown, program_version, parameters_json, seed, rondo_version, \
+         created_at, host) VALUES {}",
+        vec!["(?,?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?,?,?)"; rows.len()].join(",")
     ));
     let mut inputs: Vec<(i64, String, String)> = Vec::new();
     for r in rows {
@@ -478,6 +480,7 @@ fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
             .bind(r.executor)
             .bind(r.program_path)
             .bind(r.program_blake3)
+            .bind(r.program_unknown)
             .bind(r.program_version)
             .bind(r.parameters_json)
             .bind(r.seed)
@@ -543,7 +546,7 @@ struct Engine<'a> {
     programs: ProgramCache,
     /// rondo's own executable and its BLAKE3 (the program of built-in stages), hashed on
     /// first use: a release binary is tens of megabytes.
-    rondo_exe: (PathBuf, Option<String>),
+    rondo_exe: (PathBuf, Option<Result<String, String>>),
     progress: Progress,
     parameters: serde_json::Map<String, serde_json::Value>,
     unrecorded: HashMap<i64, UnrecordedLaunch>,
@@ -729,23 +732,8 @@ impl Engine<'_> {
             let doc =
                 crate::analysis::record_eos(&self.pool, &self.paths.root, &self.artifacts, eos)
                     .await?;
-            for g in doc["groups"].as_array().cloned().unwrap_or_default() {
-                for (model, f) in g["fits"].as_object().cloned().unwrap_or_default() {
-                    let text = match f["refused"].as_str() {
-                        Some(r) => format!("refused: {r}"),
-                        None => format!(
-                            "V0 = {:.4} ± {:.4} Å³, B0 = {:.2} ± {:.2} GPa, B0' = {:.2} ± {:.2}",
-                            f["v0"].as_f64().unwrap_or(f64::NAN),
-                            f["stderr"]["v0"].as_f64().unwrap_or(f64::NAN),
-                            f["b0_gpa"].as_f64().unwrap_or(f64::NAN),
-                            f["stderr"]["b0_gpa"].as_f64().unwrap_or(f64::NAN),
-                            f["b0_prime"].as_f64().unwrap_or(f64::NAN),
-                            f["stderr"]["b0_prime"].as_f64().unwrap_or(f64::NAN),
-                        ),
-                    };
-                    self.progress
-                        .line(format!("eos {} {model}: {text}", g["group"]));
-                }
+            for line in crate::analysis::eos_lines(&doc) {
+                self.progress.line(line);
             }
         }
         let mut states = BTreeMap::new();
@@ -1163,14 +1151,15 @@ impl Engine<'_> {
         Ok(())
     }
 
-    /// The BLAKE3 of rondo's executable, computed once.
-    fn rondo_hash(&mut self) -> String {
+    /// The BLAKE3 of rondo's executable, or why it cannot be computed; computed once.
+    fn rondo_hash(&mut self) -> Result<String, String> {
         if let Some(h) = &self.rondo_exe.1 {
             return h.clone();
         }
-        let h = hash_file(&self.rondo_exe.0)
+        let path = &self.rondo_exe.0;
+        let h = hash_file(path)
             .map(|(h, _)| h)
-            .unwrap_or_default();
+            .map_err(|e| format!("cannot read {}: {e}", path.display()));
         self.rondo_exe.1 = Some(h.clone());
         h
     }
@@ -1468,7 +1457,7 @@ impl Engine<'_> {
                     (
                         argv,
                         resolved.path.clone(),
-                        hash,
+                        Ok(hash),
                         version,
                         uses_seed,
                         self.opts.executor.kind(),
@@ -1491,7 +1480,8 @@ impl Engine<'_> {
             workdir: workdir.display().to_string(),
             executor: executor_kind,
             program_path: program_path.display().to_string(),
-            program_blake3: program_hash.clone(),
+            program_blake3: program_hash.clone().ok(),
+            program_unknown: program_hash.clone().err(),
             program_version: program_version.clone(),
             parameters_json: serde_json::Value::Object(params).to_string(),
             seed: uses_seed.then(|| seed.to_string()),

@@ -12,16 +12,21 @@ use sqlx::{Row, SqlitePool};
 
 use crate::audit::{self, AttemptRecord, Target};
 
-/// Namespace of rondo's own terms.
-pub const NS_RONDO: &str = "https://example.invalid/rondo/ns#";
-/// Namespace of artifacts, identified by their BLAKE3 hash.
-pub const NS_ARTIFACT: &str = "urn:rondo:blake3:";
+/// rondo's namespace: a UUID URN (RFC 9562, the IANA-registered `uuid` namespace) minted
+/// once for rondo from the kernel's random source. Nobody else can mint the same UUID, so
+/// rondo owns the name without owning a domain; see docs/provenance.md for why it is not a
+/// `urn:rondo:` name or a tag URI. Every prefix below is this plus a fragment.
+pub const NS_BASE: &str = "urn:uuid:8cdbdefe-baa4-4a43-8f50-21e588a2d6ca";
+/// Namespace of rondo's own terms (`rondo:Attempt`, `rondo:argv`, ...).
+pub const NS_RONDO: &str = "urn:uuid:8cdbdefe-baa4-4a43-8f50-21e588a2d6ca#";
+/// Namespace of artifacts, identified by their BLAKE3 hash (the same in every workspace).
+pub const NS_ARTIFACT: &str = "urn:uuid:8cdbdefe-baa4-4a43-8f50-21e588a2d6ca#blake3:";
 /// Namespace of programs, identified by the BLAKE3 hash of their executable.
-pub const NS_PROGRAM: &str = "urn:rondo:program:";
+pub const NS_PROGRAM: &str = "urn:uuid:8cdbdefe-baa4-4a43-8f50-21e588a2d6ca#program:";
 /// Namespace of a workspace's attempts and reports: this, the workspace id and `:`.
-pub const NS_WORKSPACE: &str = "urn:rondo:workspace:";
+pub const NS_WORKSPACE: &str = "urn:uuid:8cdbdefe-baa4-4a43-8f50-21e588a2d6ca#workspace:";
 /// Namespace of users.
-pub const NS_USER: &str = "urn:rondo:user:";
+pub const NS_USER: &str = "urn:uuid:8cdbdefe-baa4-4a43-8f50-21e588a2d6ca#user:";
 
 fn qname(v: &str) -> Value {
     json!({"$": v, "type": "xsd:QName"})
@@ -226,6 +231,7 @@ pub async fn export_target(
             ("rondo:workdir", &r.workdir),
             ("rondo:seed", &r.seed),
             ("rondo:failureKind", &r.failure_kind),
+            ("rondo:programHashUnknown", &r.program_unknown),
         ] {
             if let Some(v) = v {
                 o.insert(k.into(), json!(v));

@@ -99,14 +99,12 @@ pub async fn load_report(
     id: i64,
     for_hash: Option<&str>,
 ) -> Result<AttemptRecord> {
-    let r = sqlx::query(
-        "SELECT argv_json, out_dir, options_json, program_path, program_blake3, host,
-                started_at, ended_at, rondo_version FROM reports WHERE id = ?",
-    )
-    .bind(id)
-    .fetch_optional(pool)
-    .await?
-    .with_context(|| format!("report {id} is not recorded"))?;
+    // Every column: `program_unknown` is absent from stores made before migration 4.
+    let r = sqlx::query("SELECT * FROM reports WHERE id = ?")
+        .bind(id)
+        .fetch_optional(pool)
+        .await?
+        .with_context(|| format!("report {id} is not recorded"))?;
     let argv_json: String = r.try_get("argv_json")?;
     let options_json: String = r.try_get("options_json")?;
     let ended_at: Option<String> = r.try_get("ended_at")?;
@@ -139,6 +137,7 @@ pub async fn load_report(
             blake3: r.try_get("program_blake3")?,
             version: Some(rondo_version.clone()),
         },
+        program_unknown: r.try_get("program_unknown").ok().flatten(),
         parameters: serde_json::from_str(&options_json)
             .with_context(|| format!("report {id}: malformed options_json"))?,
         seed: None,
@@ -901,25 +900,20 @@ pub async fn generate_with(
             .with_context(|| format!("{}: cannot store", p.display()))?;
         files.push((file.clone(), hash, size));
     }
-    let (program_path, program_blake3) = match std::env::current_exe() {
-        Ok(p) => {
-            let h = crate::artifacts::hash_file(&p).ok().map(|x| x.0);
-            (Some(p.display().to_string()), h)
-        }
-        Err(_) => (None, None),
-    };
+    let exe = crate::analysis::OwnProgram::current();
     ensure_schema(pool).await?;
     let mut tx = pool.begin().await?;
     let now = chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Secs, true);
     let r = sqlx::query(
-        "INSERT INTO reports(argv_json, out_dir, options_json, program_path, program_blake3, host,
-             started_at, ended_at, rondo_version) VALUES (?,?,?,?,?,?,?,?,?)",
+        "INSERT INTO reports(argv_json, out_dir, options_json, program_path, program_blake3,
+             program_unknown, host, started_at, ended_at, rondo_version) VALUES (?,?,?,?,?,?,?,?,?,?)",
     )
     .bind(serde_json::to_string(&opts.argv)?)
     .bind(out_dir.display().to_string())
     .bind(serde_json::to_string(opts)?)
-    .bind(&program_path)
-    .bind(&program_blake3)
+    .bind(exe.path.display().to_string())
+    .bind(exe.hash())
+    .bind(exe.unknown())
     .bind(crate::store::hostname())
     .bind(&started_at)
     .bind(&now)

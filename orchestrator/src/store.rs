@@ -44,6 +44,13 @@ pub fn migrator() -> Migrator {
             include_str!("../migrations/0003_point_started_trigger.sql").into(),
             false,
         ),
+        Migration::new(
+            4,
+            "program hash unknown".into(),
+            MigrationType::Simple,
+            include_str!("../migrations/0004_program_hash_unknown.sql").into(),
+            false,
+        ),
     ];
     Migrator {
         migrations: m.into(),

@@ -307,3 +307,36 @@ async fn diff_across_campaigns_sees_parameters_programs_and_stop_rules() -> Resu
     );
     Ok(())
 }
+
+#[tokio::test]
+async fn the_compact_trace_labels_batch_jobs_and_counts_what_it_leaves_out() -> Result<()> {
+    let d = tempfile::tempdir()?;
+    let fx = fixtures::build(d.path()).await?;
+    let t = audit::resolve(&fx.pool, &fx.ws, "p003/3/update.energy", &mut |_, _| {}).await?;
+    let mut lin = audit::lineage_of(&fx.pool, &t).await?;
+    assert_eq!(lin.attempts.len(), 15);
+    lin.limit(audit::DEFAULT_DEPTH);
+    // iterations 3 and 2 of p003, five stages each
+    assert_eq!(lin.attempts.len(), 10);
+    assert_eq!(lin.omitted_attempts, Some(5));
+    assert!(lin
+        .attempts
+        .iter()
+        .all(|a| a.iteration.is_some_and(|i| i >= 2)));
+    let text = lin.render(&audit::TextView { long: false });
+    // the fixture's stages ran as Slurm jobs (the builtin mix inside rondo)
+    assert!(text.contains("Slurm job "), "{text}");
+    assert!(text.contains("inside rondo"), "{text}");
+    assert!(
+        !text.replace("Slurm job ", "").contains(" job "),
+        "a bare `job`: {text}"
+    );
+    assert_eq!(text.matches("  argv ").count(), 1, "{text}");
+    assert!(
+        text.contains("... and 5 attempts of earlier iterations"),
+        "{text}"
+    );
+    let j = serde_json::to_value(&lin)?;
+    assert_eq!(j["omitted_attempts"], 5);
+    Ok(())
+}

@@ -219,3 +219,45 @@ async fn export_of_a_metric_is_the_lineage_of_its_attempt() -> Result<()> {
     }
     Ok(())
 }
+
+#[tokio::test]
+async fn the_export_uses_only_namespaces_rondo_owns() -> Result<()> {
+    let d = tempfile::tempdir()?;
+    let fx = fixtures::build(d.path()).await?;
+    let doc = prov::export_as(&fx.pool, None, "alice").await?;
+    let text = serde_json::to_string_pretty(&doc)?;
+    for placeholder in ["example.", ".invalid", "localhost", "urn:rondo:"] {
+        assert!(
+            !text.contains(placeholder),
+            "the export names a namespace nobody owns ({placeholder}):\n{}",
+            &doc["prefix"]
+        );
+    }
+    let prefixes = doc["prefix"].as_object().context("prefix")?;
+    for (p, uri) in prefixes {
+        let uri = uri.as_str().context("a prefix is a string")?;
+        assert!(
+            uri.starts_with(prov::NS_BASE) || uri == "http://www.w3.org/2001/XMLSchema#",
+            "prefix {p} = {uri} is not under rondo's namespace {}",
+            prov::NS_BASE
+        );
+    }
+    // rondo's namespace is a UUID URN (RFC 9562): "urn:uuid:" and 8-4-4-4-12 hex digits.
+    let uuid = prov::NS_BASE
+        .strip_prefix("urn:uuid:")
+        .context("a UUID URN")?;
+    let groups: Vec<usize> = uuid.split('-').map(str::len).collect();
+    assert_eq!(groups, [8, 4, 4, 4, 12], "{uuid}");
+    assert!(uuid
+        .chars()
+        .all(|c| c == '-' || c.is_ascii_hexdigit() && !c.is_ascii_uppercase()));
+    // Workspace-scoped names: attempts of two workspaces never share an identifier.
+    let ws_id: String = sqlx::query_scalar("SELECT workspace_id FROM campaign")
+        .fetch_one(&fx.pool)
+        .await?;
+    assert_eq!(
+        prefixes["run"],
+        format!("{}#workspace:{ws_id}:", prov::NS_BASE).as_str()
+    );
+    Ok(())
+}
