@@ -571,7 +571,9 @@ fn a_program_rewritten_during_the_run_stops_its_point_naming_the_program_and_bot
     assert_eq!(p["iteration"], 2, "{p}");
     let reason = p["reason"].as_str().unwrap_or("");
     for needle in [
-        step.canonicalize().map(|p| p.display().to_string()).unwrap_or_default(),
+        step.canonicalize()
+            .map(|p| p.display().to_string())
+            .unwrap_or_default(),
         before.clone(),
         after.clone(),
         "--retry-failed".to_string(),
@@ -579,7 +581,10 @@ fn a_program_rewritten_during_the_run_stops_its_point_naming_the_program_and_bot
         assert!(reason.contains(&needle), "`{needle}` not in: {reason}");
     }
     let at3 = strings(&ws, "SELECT state FROM attempts WHERE iteration = 3");
-    assert!(at3.is_empty(), "an attempt of the new build was started: {at3:?}");
+    assert!(
+        at3.is_empty(),
+        "an attempt of the new build was started: {at3:?}"
+    );
     // Rewritten again between runs: still refused (the recorded build is compared).
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--retry-failed"]);
     assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
@@ -675,14 +680,13 @@ fn reading_commands_work(dir: &Path, owner_ws: &Path, ws: &Path, wrap: &[&str], 
         vec!["diff", "p001", "p002", "--workspace", &ws_s],
         vec!["export", "--prov", &prov, "--workspace", &ws_s],
     ];
-    let owner_status = run_rondo(dir, &["status", "--workspace", &owner_ws, "--json"]);
-    assert!(owner_status.status.success(), "{}", shown(&owner_status));
     // What the owner sees, but for the path the reader named the workspace by.
     let seen = |bytes: &[u8]| {
         let mut v: serde_json::Value = serde_json::from_slice(bytes).unwrap_or_default();
         v["workspace"] = serde_json::Value::Null;
         v
     };
+    let mut reader_status = Vec::new();
     for args in &cmds {
         let rondo = rondo().display().to_string();
         let mut full: Vec<&str> = wrap.to_vec();
@@ -695,17 +699,24 @@ fn reading_commands_work(dir: &Path, owner_ws: &Path, ws: &Path, wrap: &[&str], 
             .unwrap_or_else(|e| panic!("{}: {e}", full[0]));
         assert!(o.status.success(), "{full:?}: {}", shown(&o));
         if args[0] == "status" && args.contains(&"--json") {
-            assert_eq!(
-                seen(&o.stdout),
-                seen(&owner_status.stdout),
-                "the reader sees what the owner sees"
-            );
+            reader_status = o.stdout.clone();
         }
     }
+    // Asked after the readers, so that they found the workspace as it was left.
+    let owner_status = run_rondo(dir, &["status", "--workspace", &owner_ws, "--json"]);
+    assert!(owner_status.status.success(), "{}", shown(&owner_status));
+    assert_eq!(
+        seen(&reader_status),
+        seen(&owner_status.stdout),
+        "the reader sees what the owner sees"
+    );
     let doc: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(&prov).unwrap_or_default())
             .unwrap_or_default();
-    assert!(doc["activity"].as_object().is_some_and(|a| !a.is_empty()), "{doc}");
+    assert!(
+        doc["activity"].as_object().is_some_and(|a| !a.is_empty()),
+        "{doc}"
+    );
     // `report` records its own provenance in the workspace: refused plainly, no database error.
     let mut full: Vec<String> = wrap.iter().map(|s| s.to_string()).collect();
     full.push(rondo().display().to_string());
@@ -718,7 +729,10 @@ fn reading_commands_work(dir: &Path, owner_ws: &Path, ws: &Path, wrap: &[&str], 
         .unwrap_or_else(|e| panic!("{e}"));
     let err = String::from_utf8_lossy(&o.stderr);
     assert_eq!(o.status.code(), Some(1), "{}", shown(&o));
-    assert!(err.contains("read-only") && !err.contains("database is"), "{err}");
+    assert!(
+        err.contains("read-only") && !err.contains("database is"),
+        "{err}"
+    );
 }
 
 #[test]
@@ -770,8 +784,12 @@ fn a_workspace_on_a_read_only_mount_is_read() {
         ws = ws.display(),
         ro = ro.display()
     );
+    // The probe also shows the mount is really read-only: a file cannot be made in it.
+    let no_write = format!("! touch {}/probe 2>/dev/null", ro.display());
     let probe = Command::new("/usr/bin/unshare")
-        .args(["--mount", "sh", "-c", &script, "sh", "/bin/true"])
+        .args([
+            "--mount", "sh", "-c", &script, "sh", "/bin/sh", "-c", &no_write,
+        ])
         .output()
         .unwrap_or_else(|e| panic!("{e}"));
     if !probe.status.success() {
@@ -784,14 +802,13 @@ fn a_workspace_on_a_read_only_mount_is_read() {
     let wrap = ["/usr/bin/unshare", "--mount", "sh", "-c", &script, "sh"];
     let out = d.path().join("out");
     std::fs::create_dir(&out).unwrap_or_else(|e| panic!("{e}"));
+    // An archived workspace (no -wal, no -shm), then one its owner has read since (a
+    // read-only reader leaves both files behind).
+    assert!(!ws.join("rondo.db-wal").exists() && !ws.join("rondo.db-shm").exists());
     reading_commands_work(d.path(), &ws, &ro, &wrap, &out);
-    // Nothing was left in the workspace by the readers.
-    let mut names: Vec<String> = std::fs::read_dir(&ws)
-        .unwrap_or_else(|e| panic!("{e}"))
-        .filter_map(|e| e.ok().map(|e| e.file_name().to_string_lossy().into_owned()))
-        .collect();
-    names.sort();
-    assert!(!names.iter().any(|n| n.contains("-wal") || n.contains("-shm")), "{names:?}");
+    assert!(ws.join("rondo.db-wal").exists() && ws.join("rondo.db-shm").exists());
+    reading_commands_work(d.path(), &ws, &ro, &wrap, &out);
+    assert!(!ws.join("probe").exists());
 }
 
 #[test]
@@ -815,7 +832,10 @@ fn cancel_reaches_the_running_orchestrator_and_records_the_reason() {
         if s.is_some_and(|s| s["points"][1]["attempts"].as_i64().unwrap_or(0) >= 1) {
             break;
         }
-        assert!(t0.elapsed() < Duration::from_secs(60), "the run did not start");
+        assert!(
+            t0.elapsed() < Duration::from_secs(60),
+            "the run did not start"
+        );
         std::thread::sleep(Duration::from_millis(100));
     }
     let o = run_rondo(d.path(), &["cancel", "--reason", "wrong U: 6 eV, not 8"]);
@@ -829,7 +849,9 @@ fn cancel_reaches_the_running_orchestrator_and_records_the_reason() {
     for p in s["points"].as_array().cloned().unwrap_or_default() {
         assert_eq!(p["state"], "cancelled", "{p}");
         assert!(
-            p["reason"].as_str().is_some_and(|r| r.contains("wrong U: 6 eV, not 8")),
+            p["reason"]
+                .as_str()
+                .is_some_and(|r| r.contains("wrong U: 6 eV, not 8")),
             "{p}"
         );
     }
@@ -841,8 +863,14 @@ fn cancel_reaches_the_running_orchestrator_and_records_the_reason() {
         events.len() == 1 && events[0].contains("wrong U: 6 eV, not 8"),
         "{events:?}"
     );
-    assert!(!ws.join("cancel-request").exists(), "the request was consumed");
-    assert!(processes_of_workspace(&workspace_id(&ws)).is_empty(), "children left");
+    assert!(
+        !ws.join("cancel-request").exists(),
+        "the request was consumed"
+    );
+    assert!(
+        processes_of_workspace(&workspace_id(&ws)).is_empty(),
+        "children left"
+    );
 }
 
 #[test]
@@ -856,7 +884,11 @@ fn without_file_or_workspace_the_only_workspace_here_or_one_level_below_is_used(
     // From the parent (the project root after the demo): the one workspace below is used.
     let o = run_rondo(d.path(), &["status"]);
     assert!(o.status.success(), "{}", shown(&o));
-    assert!(String::from_utf8_lossy(&o.stdout).contains("converged"), "{}", shown(&o));
+    assert!(
+        String::from_utf8_lossy(&o.stdout).contains("converged"),
+        "{}",
+        shown(&o)
+    );
     assert!(
         String::from_utf8_lossy(&o.stderr).contains("examples/c.rondo"),
         "says which workspace: {}",
@@ -878,7 +910,9 @@ fn without_file_or_workspace_the_only_workspace_here_or_one_level_below_is_used(
     let err = String::from_utf8_lossy(&o.stderr);
     assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
     assert!(
-        err.contains("examples/c.rondo") && err.contains("other/c.rondo") && err.contains("--workspace"),
+        err.contains("examples/c.rondo")
+            && err.contains("other/c.rondo")
+            && err.contains("--workspace"),
         "{err}"
     );
 }
@@ -886,9 +920,15 @@ fn without_file_or_workspace_the_only_workspace_here_or_one_level_below_is_used(
 #[test]
 fn the_demo_script_says_where_the_binary_is() {
     let demo = std::fs::read_to_string(repo().join("scripts/demo")).unwrap_or_default();
-    assert!(demo.contains("rondo is at"), "scripts/demo prints the binary's path");
+    assert!(
+        demo.contains("rondo is at"),
+        "scripts/demo prints the binary's path"
+    );
     let readme = std::fs::read_to_string(repo().join("README.md")).unwrap_or_default();
-    assert!(readme.contains("target/release/rondo"), "README says where rondo is");
+    assert!(
+        readme.contains("target/release/rondo"),
+        "README says where rondo is"
+    );
 }
 
 #[test]
@@ -898,7 +938,10 @@ fn a_changed_campaign_file_is_bad_input_exit_2() {
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let text = std::fs::read_to_string(&f).unwrap_or_default();
-    write(&f, &text.replace("max-iterations: 30", "max-iterations: 31"));
+    write(
+        &f,
+        &text.replace("max-iterations: 30", "max-iterations: 31"),
+    );
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
     assert!(
@@ -907,7 +950,10 @@ fn a_changed_campaign_file_is_bad_input_exit_2() {
         shown(&o)
     );
     let concepts = std::fs::read_to_string(repo().join("docs/concepts.md")).unwrap_or_default();
-    assert!(concepts.contains("| 2 | bad input"), "docs/concepts.md lists exit 2");
+    assert!(
+        concepts.contains("| 2 | bad input"),
+        "docs/concepts.md lists exit 2"
+    );
 }
 
 /// `rondo check` of a campaign text in a fresh folder: (exit code, stderr, stdout).
@@ -928,7 +974,10 @@ fn check_refuses_a_program_that_is_not_executable_at_its_entry() {
     let text = "campaign: c\nprograms:\n  step: { path: ./step.sh }\ncycle:\n  s:\n    run: [step]\nstop:\n  when:\n    - { metric: s.x, change-below: 0.1 }\n  max-iterations: 2\n";
     let (code, err, _) = check(text, |d| write(&d.join("step.sh"), "#!/bin/sh\n"));
     assert_eq!(code, Some(2), "{err}");
-    assert!(err.contains("c.yaml:3:17:") && err.contains("not executable"), "{err}");
+    assert!(
+        err.contains("c.yaml:3:17:") && err.contains("not executable"),
+        "{err}"
+    );
     assert!(err.contains("chmod"), "{err}");
     // A misspelt path: one diagnostic, at the entry, and not "declare it under programs:".
     let (code, err, _) = check(&text.replace("./step.sh", "./stpe.sh"), |d| {
@@ -937,7 +986,10 @@ fn check_refuses_a_program_that_is_not_executable_at_its_entry() {
     });
     assert_eq!(code, Some(2), "{err}");
     assert_eq!(err.lines().count(), 1, "{err}");
-    assert!(err.contains("c.yaml:3:17:") && err.contains("./stpe.sh"), "{err}");
+    assert!(
+        err.contains("c.yaml:3:17:") && err.contains("./stpe.sh"),
+        "{err}"
+    );
     assert!(!err.contains("declare it under"), "{err}");
     // A literal program path in `run` that is not executable: at the `run` element.
     let (code, err, _) = check(
@@ -945,7 +997,10 @@ fn check_refuses_a_program_that_is_not_executable_at_its_entry() {
         |d| write(&d.join("tool.sh"), "#!/bin/sh\n"),
     );
     assert_eq!(code, Some(2), "{err}");
-    assert!(err.contains("c.yaml:4:11:") && err.contains("not executable"), "{err}");
+    assert!(
+        err.contains("c.yaml:4:11:") && err.contains("not executable"),
+        "{err}"
+    );
 }
 
 #[test]
@@ -959,12 +1014,18 @@ fn a_campaign_without_stopping_rule_is_warned_about_and_its_status_says_so() {
     let err = String::from_utf8_lossy(&o.stderr);
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     assert!(
-        err.contains("c.yaml:5:1: warning: no stopping rule: every point runs max-iterations iterations"),
+        err.contains(
+            "c.yaml:5:1: warning: no stopping rule: every point runs max-iterations iterations"
+        ),
         "{err}"
     );
     let o = run_rondo(d.path(), &["run", "c.yaml"]);
     assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
-    assert!(!String::from_utf8_lossy(&o.stderr).contains("()"), "{}", shown(&o));
+    assert!(
+        !String::from_utf8_lossy(&o.stderr).contains("()"),
+        "{}",
+        shown(&o)
+    );
     let o = run_rondo(d.path(), &["status"]);
     let out = String::from_utf8_lossy(&o.stdout);
     assert!(
@@ -977,7 +1038,10 @@ fn a_campaign_without_stopping_rule_is_warned_about_and_its_status_says_so() {
 fn a_shell_stage_runs_one_script_with_every_value_single_quoted() {
     let d = tmp();
     let marker = d.path().join("pwned");
-    let evil = format!("a b; touch {m} | cat && $(touch {m}) `touch {m}` 'q' \"dq\" * ~ \\", m = marker.display());
+    let evil = format!(
+        "a b; touch {m} | cat && $(touch {m}) `touch {m}` 'q' \"dq\" * ~ \\",
+        m = marker.display()
+    );
     let text = format!(
         r#"campaign: shelly
 programs:
@@ -1004,10 +1068,16 @@ stop:
     assert_eq!(args, format!("{evil}\n--n=1\n"));
     // The script's program is hashed and recorded; the shell ran it.
     let ws = d.path().join("c.rondo");
-    let rows = strings(&ws, "SELECT program_path || ' ' || coalesce(program_version, '') FROM attempts");
+    let rows = strings(
+        &ws,
+        "SELECT program_path || ' ' || coalesce(program_version, '') FROM attempts",
+    );
     assert_eq!(rows.len(), 1);
     assert!(rows[0].starts_with("/bin/sh "), "{rows:?}");
-    assert!(rows[0].contains(&blake3_of(&fixture("argv.sh"))), "{rows:?}");
+    assert!(
+        rows[0].contains(&blake3_of(&fixture("argv.sh"))),
+        "{rows:?}"
+    );
     // The list form with shell: true, and a string without it, are refused at check.
     for (from, to, needle) in [
         (
@@ -1023,7 +1093,7 @@ stop:
         ),
         (
             "{{program:show}} {{param:evil}}",
-            "{{program:show}} \"{{param:evil}}\"",
+            "{{program:show}} \\\"{{param:evil}}\\\"",
             "inside quotes",
         ),
     ] {
@@ -1032,7 +1102,10 @@ stop:
         let o = run_rondo(d.path(), &["check", "bad.yaml"]);
         let err = String::from_utf8_lossy(&o.stderr);
         assert_eq!(o.status.code(), Some(2), "{to}: {}", shown(&o));
-        assert!(err.contains(needle) && err.contains("bad.yaml:"), "{to}: {err}");
+        assert!(
+            err.contains(needle) && err.contains("bad.yaml:"),
+            "{to}: {err}"
+        );
     }
 }
 
@@ -1042,9 +1115,15 @@ fn run_on_pbs_is_selectable_and_its_help_says_it_was_never_run_on_a_real_server(
     let o = run_rondo(d.path(), &["run", "--help"]);
     let help = String::from_utf8_lossy(&o.stdout);
     assert!(help.contains("pbs"), "{help}");
-    assert!(help.contains("not been run against a real PBS server"), "{help}");
+    assert!(
+        help.contains("not been run against a real PBS server"),
+        "{help}"
+    );
     let clusters = std::fs::read_to_string(repo().join("docs/clusters.md")).unwrap_or_default();
-    assert!(clusters.contains("--on pbs"), "docs/clusters.md shows --on pbs");
+    assert!(
+        clusters.contains("--on pbs"),
+        "docs/clusters.md shows --on pbs"
+    );
     // Stand-ins for the PBS clients (not a PBS server): qsub runs the job script at once
     // and prints an id; qstat -f -x reports each asked job finished; qdel does nothing.
     let bin = d.path().join("pbs-bin");
@@ -1065,7 +1144,10 @@ fn run_on_pbs_is_selectable_and_its_help_says_it_was_never_run_on_a_real_server(
     let o = Command::new(rondo())
         .args(["run", "c.yaml", "--on", "pbs", "--poll-interval", "1", "-q"])
         .current_dir(d.path())
-        .env("PATH", format!("{}:{}", bin.display(), path_with_binaries()))
+        .env(
+            "PATH",
+            format!("{}:{}", bin.display(), path_with_binaries()),
+        )
         .output()
         .unwrap_or_else(|e| panic!("{e}"));
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));

@@ -507,7 +507,10 @@ mod tests {
         let out = t
             .render_shell(|ns, n| Some(format!("{}{n} $x", ns.unwrap_or(""))))
             .unwrap();
-        assert!(out[2].starts_with("'programp $x' --a='parama $x' "), "{out:?}");
+        assert!(
+            out[2].starts_with("'programp $x' --a='parama $x' "),
+            "{out:?}"
+        );
     }
 
     #[test]

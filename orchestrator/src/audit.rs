@@ -1247,11 +1247,7 @@ fn program_diffs(
                 continue;
             }
             match diffs.last_mut() {
-                Some(d)
-                    if d.stage == **s
-                    && same_program(&d.a, x)
-                    && same_program(&d.b, y) =>
-                {
+                Some(d) if d.stage == **s && same_program(&d.a, x) && same_program(&d.b, y) => {
                     d.iterations.push(*it)
                 }
                 _ => diffs.push(ProgramDiff {

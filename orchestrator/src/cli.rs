@@ -1186,10 +1186,12 @@ async fn cancel_offline(ws: &Path, _lock: store::WorkspaceLock, reason: &str) ->
             .await?;
         n += 1;
     }
-    sqlx::query("UPDATE points SET state = 'cancelled', reason = ? WHERE state IN ('planned','running')")
-        .bind(format!("cancelled: {reason}"))
-        .execute(&pool)
-        .await?;
+    sqlx::query(
+        "UPDATE points SET state = 'cancelled', reason = ? WHERE state IN ('planned','running')",
+    )
+    .bind(format!("cancelled: {reason}"))
+    .execute(&pool)
+    .await?;
     store::event(
         &pool,
         "cancel",

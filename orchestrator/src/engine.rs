@@ -904,7 +904,14 @@ impl Engine<'_> {
         let mut built: HashMap<(String, String), BuiltWith> = HashMap::new();
         for (point, stage, it, path, hash, version) in sqlx::query_as::<
             _,
-            (String, String, i64, Option<String>, Option<String>, Option<String>),
+            (
+                String,
+                String,
+                i64,
+                Option<String>,
+                Option<String>,
+                Option<String>,
+            ),
         >(
             "SELECT point, stage, max(iteration), program_path, program_blake3, program_version \
              FROM attempts WHERE state = 'succeeded' GROUP BY point, stage",
@@ -1151,8 +1158,12 @@ impl Engine<'_> {
                 workdir,
                 built: BuiltWith {
                     iteration,
-                    path: row.get::<Option<String>, _>("program_path").unwrap_or_default(),
-                    hash: row.get::<Option<String>, _>("program_blake3").unwrap_or_default(),
+                    path: row
+                        .get::<Option<String>, _>("program_path")
+                        .unwrap_or_default(),
+                    hash: row
+                        .get::<Option<String>, _>("program_blake3")
+                        .unwrap_or_default(),
                     version: row.get("program_version"),
                 },
             };
@@ -1513,7 +1524,9 @@ impl Engine<'_> {
                 && built.known()
                 && before.hash != built.hash
             {
-                return self.stop_for_changed_program(p, &stage, &before, &built).await;
+                return self
+                    .stop_for_changed_program(p, &stage, &before, &built)
+                    .await;
             }
         }
         let workdir = scratch::attempt_dir(
@@ -2388,7 +2401,9 @@ impl Engine<'_> {
         } else if decision.at_cap && self.campaign.rules.is_empty() {
             Some((
                 "capped",
-                format!("ran all {n} iterations of max-iterations: the campaign has no stopping rule"),
+                format!(
+                    "ran all {n} iterations of max-iterations: the campaign has no stopping rule"
+                ),
             ))
         } else if decision.at_cap {
             Some((

@@ -231,7 +231,9 @@ impl<'de> Deserialize<'de> for RunSpec {
         impl<'de> Visitor<'de> for V {
             type Value = RunSpec;
             fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
-                f.write_str("an argument list [program, args...] or, with `shell: true`, one script string")
+                f.write_str(
+                    "an argument list [program, args...] or, with `shell: true`, one script string",
+                )
             }
             fn visit_str<E: serde::de::Error>(self, v: &str) -> Result<RunSpec, E> {
                 Ok(RunSpec::Script(v.to_string()))
@@ -239,7 +241,10 @@ impl<'de> Deserialize<'de> for RunSpec {
             fn visit_string<E: serde::de::Error>(self, v: String) -> Result<RunSpec, E> {
                 Ok(RunSpec::Script(v))
             }
-            fn visit_seq<A: serde::de::SeqAccess<'de>>(self, mut a: A) -> Result<RunSpec, A::Error> {
+            fn visit_seq<A: serde::de::SeqAccess<'de>>(
+                self,
+                mut a: A,
+            ) -> Result<RunSpec, A::Error> {
                 let mut out = Vec::new();
                 while let Some(x) = a.next_element::<Spanned<String>>()? {
                     out.push(x);
@@ -1758,7 +1763,9 @@ impl Validator<'_> {
         let Some(BuiltinSettings::Mix(with)) = st.settings.clone() else {
             self.push(
                 at,
-                format!("built-in stage `{sname}` needs `settings: {{ method: linear, alpha: 0.5 }}`"),
+                format!(
+                    "built-in stage `{sname}` needs `settings: {{ method: linear, alpha: 0.5 }}`"
+                ),
                 "add `settings:` with the mixer settings",
             );
             return None;
