@@ -87,13 +87,17 @@ impl CancelRequest {
     /// rondo) still cancels, with its text as the reason.
     pub fn read(path: &Path) -> Option<CancelRequest> {
         let text = std::fs::read_to_string(path).ok()?;
-        Some(
-            serde_json::from_str(&text).unwrap_or_else(|_| CancelRequest {
+        Some(serde_json::from_str(&text).unwrap_or_else(|_| {
+            let written = std::fs::metadata(path)
+                .and_then(|m| m.modified())
+                .map(|t| store::time_text(t.into()))
+                .unwrap_or_else(|_| store::now());
+            CancelRequest {
                 reason: text.trim().chars().take(500).collect(),
                 by: "unknown".into(),
-                at: store::now(),
-            }),
-        )
+                at: written,
+            }
+        }))
     }
 }
 
@@ -621,9 +625,13 @@ struct Engine<'a> {
 /// or `rondo cancel` asks to stop.
 pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> Result<RunSummary> {
     let paths = Paths::of(&opts.workspace);
+    let before_lock = store::now();
     let ws = prepare_workspace(campaign, &paths).await?;
-    // A cancel request left from before this run is void: running again means go on.
-    let _ = std::fs::remove_file(&paths.cancel_request);
+    // A cancel request left from before this run is void: running again means go on. One
+    // written since this run took the lock (`rondo cancel` found it holding it) stands.
+    if CancelRequest::read(&paths.cancel_request).is_some_and(|r| r.at < before_lock) {
+        let _ = std::fs::remove_file(&paths.cancel_request);
+    }
     std::fs::create_dir_all(&paths.scratch)
         .with_context(|| format!("{}: cannot create", paths.scratch.display()))?;
     let (tx, rx) = mpsc::unbounded_channel::<Completion>();
