@@ -233,7 +233,7 @@ parameters:
   quote: "it's $(touch {m2}) `touch {m2}`"
 cycle:
   s:
-    run: [show, "{{{{param:evil}}}}", "--q={{{{param:quote}}}}"]
+    run: {run}
     shell: {shell}
     metrics: [n]
 stop:
@@ -241,6 +241,12 @@ stop:
 "#,
             prog = fixture("argv.sh").display(),
             m2 = marker.display(),
+            // The shell form is one script; the list form one argument per element.
+            run = if shell {
+                r#""{{program:show}} {{param:evil}} --q={{param:quote}}""#
+            } else {
+                r#"[show, "{{param:evil}}", "--q={{param:quote}}"]"#
+            },
         );
         std::fs::write(d.path().join("c.yaml"), text).unwrap_or_else(|e| panic!("{e}"));
         let o = run_rondo(d.path(), &["run", "c.yaml", "--keep-scratch"]);
@@ -1142,4 +1148,665 @@ fn extract_writes_an_artifact_found_like_a_trace_target_and_never_clobbers() {
         err.contains("outputs: e.metrics, e.x, mix.state, mix.x"),
         "{err}"
     );
+}
+
+// What a new user tripped over (issue 13, items 5 and 7): program builds that change in
+// the middle of a campaign, read-only workspaces, cancel with a reason, finding the
+// workspace, exit codes, check diagnostics, the shell form, and `--on pbs`.
+
+/// A loud skip: under CI (or `RONDO_REQUIRE_ISOLATION`) a missing prerequisite fails.
+fn skip_or_fail(what: &str) {
+    let required = std::env::var("CI").is_ok_and(|v| v == "true")
+        || std::env::var_os("RONDO_REQUIRE_ISOLATION").is_some();
+    assert!(!required, "required but unavailable: {what}");
+    eprintln!("SKIPPED: {what}");
+}
+
+fn is_root() -> bool {
+    // SAFETY: geteuid has no preconditions.
+    unsafe { libc::geteuid() == 0 }
+}
+
+fn write(path: &Path, text: &str) {
+    std::fs::write(path, text).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+}
+
+fn make_executable(path: &Path) {
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(path, std::fs::Permissions::from_mode(0o755))
+        .unwrap_or_else(|e| panic!("chmod {}: {e}", path.display()));
+}
+
+fn blake3_of(path: &Path) -> String {
+    rondo::artifacts::hash_file(path)
+        .unwrap_or_else(|e| panic!("{}: {e}", path.display()))
+        .0
+}
+
+/// The halfstep campaign with its program replaced by a copy `step.sh` in `dir` that
+/// appends a comment to itself when point p001 runs iteration `edit_at` (a real script
+/// rewritten during the run, as an edited build would be).
+fn self_editing_campaign(dir: &Path, edit_at: u32) -> PathBuf {
+    let f = halfstep_campaign(dir, "ok", "", "[1.0]");
+    let step = dir.join("step.sh");
+    write(
+        &step,
+        &format!(
+            "#!/bin/sh\nif [ \"$RONDO_ITERATION\" = {edit_at} ] && ! grep -q '^# edited' \"$0\"; then\n  echo '# edited' >> \"$0\"\nfi\nexec {} \"$@\"\n",
+            fixture("halfstep.sh").display()
+        ),
+    );
+    make_executable(&step);
+    let text = std::fs::read_to_string(&f)
+        .unwrap_or_default()
+        .replace(&fixture("halfstep.sh").display().to_string(), "./step.sh");
+    write(&f, &text);
+    f
+}
+
+#[test]
+fn a_program_rewritten_during_the_run_stops_its_point_naming_the_program_and_both_hashes() {
+    let d = tmp();
+    self_editing_campaign(d.path(), 2);
+    let step = d.path().join("step.sh");
+    let before = blake3_of(&step);
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    let after = blake3_of(&step);
+    assert_ne!(before, after, "the script edited itself");
+    let ws = d.path().join("c.rondo");
+    let s = status_json(d.path(), &ws);
+    let p = &s["points"][0];
+    assert_eq!(p["state"], "failed", "{p}");
+    // iterations 1 and 2 ran the first build (2 was planned before the edit); 3 never ran
+    assert_eq!(p["iteration"], 2, "{p}");
+    let reason = p["reason"].as_str().unwrap_or("");
+    for needle in [
+        step.canonicalize()
+            .map(|p| p.display().to_string())
+            .unwrap_or_default(),
+        before.clone(),
+        after.clone(),
+        "--retry-failed".to_string(),
+    ] {
+        assert!(reason.contains(&needle), "`{needle}` not in: {reason}");
+    }
+    let at3 = strings(&ws, "SELECT state FROM attempts WHERE iteration = 3");
+    assert!(
+        at3.is_empty(),
+        "an attempt of the new build was started: {at3:?}"
+    );
+    // Rewritten again between runs: still refused (the recorded build is compared).
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--retry-failed"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    // The build that ran put back: the point goes on and converges on one build.
+    let original = std::fs::read_to_string(&step)
+        .unwrap_or_default()
+        .replace("# edited\n", "");
+    write(&step, &original);
+    assert_eq!(blake3_of(&step), before);
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--retry-failed"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let hashes = strings(
+        &ws,
+        "SELECT DISTINCT program_blake3 FROM attempts WHERE state = 'succeeded'",
+    );
+    assert_eq!(hashes, [before]);
+}
+
+#[test]
+fn diff_compares_program_hashes_per_stage_and_iteration() {
+    let d = tmp();
+    halfstep_campaign(d.path(), "ok", "", "[1.0, 1.0]");
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    // A workspace recorded before rondo checked builds: the program changed while both
+    // points ran, after p001's iteration 3 and after p002's iteration 1. Over all their
+    // attempts both points used the same two builds.
+    let new_build = "f".repeat(64);
+    query(&ws, |pool| {
+        let new_build = new_build.clone();
+        Box::pin(async move {
+            sqlx::query(
+                "UPDATE attempts SET program_blake3 = ? WHERE (point = 'p001' AND iteration > 3) \
+                 OR (point = 'p002' AND iteration > 1)",
+            )
+            .bind(new_build)
+            .execute(pool)
+            .await
+            .unwrap_or_else(|e| panic!("{e}"));
+        })
+    });
+    let ws_s = ws.display().to_string();
+    let o = run_rondo(d.path(), &["diff", "p001", "p002", "--workspace", &ws_s]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(!text.contains("programs: same"), "{text}");
+    assert!(text.contains("iterations 2-3"), "{text}");
+    assert!(text.contains(&new_build[..16]), "{text}");
+    assert!(
+        text.contains("A changed at iteration 4") && text.contains("B changed at iteration 2"),
+        "{text}"
+    );
+    let o = run_rondo(
+        d.path(),
+        &["diff", "p001", "p002", "--workspace", &ws_s, "--json"],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    let j: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap_or_default();
+    let progs = j["programs"].as_array().cloned().unwrap_or_default();
+    assert_eq!(progs.len(), 1, "{j}");
+    assert_eq!(progs[0]["stage"], "s");
+    assert_eq!(progs[0]["iterations"], serde_json::json!([2, 3]), "{j}");
+    assert_eq!(progs[0]["b"]["blake3"], new_build.as_str());
+    let changes = j["program_changes"].as_array().cloned().unwrap_or_default();
+    assert_eq!(changes.len(), 2, "{j}");
+}
+
+/// A converged two-point workspace in a folder others may enter, and the commands that only
+/// read it.
+fn readable_workspace() -> (tempfile::TempDir, PathBuf) {
+    use std::os::unix::fs::PermissionsExt;
+    let d = tmp();
+    std::fs::set_permissions(d.path(), std::fs::Permissions::from_mode(0o755))
+        .unwrap_or_else(|e| panic!("{e}"));
+    halfstep_campaign(d.path(), "ok", "", "[1.0, 2.0]");
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    (d, ws)
+}
+
+/// Run the reading commands on `ws` through `wrap` (a command prefix) and check each
+/// succeeds with the same answer the owner gets; `out` is a folder the reader may write.
+fn reading_commands_work(dir: &Path, owner_ws: &Path, ws: &Path, wrap: &[&str], out: &Path) {
+    let ws_s = ws.display().to_string();
+    let owner_ws = owner_ws.display().to_string();
+    let prov = out.join("prov.json").display().to_string();
+    let cmds: Vec<Vec<&str>> = vec![
+        vec!["status", "--workspace", &ws_s, "--json"],
+        vec!["status", "--workspace", &ws_s],
+        vec!["trace", "p001/last/s.x", "--workspace", &ws_s],
+        vec!["diff", "p001", "p002", "--workspace", &ws_s],
+        vec!["export", "--prov", &prov, "--workspace", &ws_s],
+    ];
+    // What the owner sees, but for the path the reader named the workspace by.
+    let seen = |bytes: &[u8]| {
+        let mut v: serde_json::Value = serde_json::from_slice(bytes).unwrap_or_default();
+        v["workspace"] = serde_json::Value::Null;
+        v
+    };
+    let mut reader_status = Vec::new();
+    for args in &cmds {
+        let rondo = rondo().display().to_string();
+        let mut full: Vec<&str> = wrap.to_vec();
+        full.push(&rondo);
+        full.extend(args.iter().copied());
+        let o = Command::new(full[0])
+            .args(&full[1..])
+            .current_dir(out)
+            .output()
+            .unwrap_or_else(|e| panic!("{}: {e}", full[0]));
+        assert!(o.status.success(), "{full:?}: {}", shown(&o));
+        if args[0] == "status" && args.contains(&"--json") {
+            reader_status = o.stdout.clone();
+        }
+    }
+    // Asked after the readers, so that they found the workspace as it was left.
+    let owner_status = run_rondo(dir, &["status", "--workspace", &owner_ws, "--json"]);
+    assert!(owner_status.status.success(), "{}", shown(&owner_status));
+    assert_eq!(
+        seen(&reader_status),
+        seen(&owner_status.stdout),
+        "the reader sees what the owner sees"
+    );
+    let doc: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&prov).unwrap_or_default())
+            .unwrap_or_default();
+    assert!(
+        doc["activity"].as_object().is_some_and(|a| !a.is_empty()),
+        "{doc}"
+    );
+    // `report` records its own provenance in the workspace: refused plainly, no database error.
+    let mut full: Vec<String> = wrap.iter().map(|s| s.to_string()).collect();
+    full.push(rondo().display().to_string());
+    full.extend(["report", "--workspace", &ws_s, "--out"].map(String::from));
+    full.push(out.join("report").display().to_string());
+    let o = Command::new(&full[0])
+        .args(&full[1..])
+        .current_dir(out)
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(1), "{}", shown(&o));
+    assert!(
+        err.contains("read-only") && !err.contains("database is"),
+        "{err}"
+    );
+}
+
+#[test]
+fn another_user_reads_a_workspace_without_write_access() {
+    if !is_root() || !Path::new("/usr/bin/setpriv").is_file() {
+        skip_or_fail("reading as another user needs root and setpriv (util-linux)");
+        return;
+    }
+    let (d, ws) = readable_workspace();
+    let out = d.path().join("nobody-out");
+    std::fs::create_dir(&out).unwrap_or_else(|e| panic!("{e}"));
+    // SAFETY: chown of a folder this test made.
+    let c = std::ffi::CString::new(out.display().to_string()).unwrap_or_default();
+    assert_eq!(unsafe { libc::chown(c.as_ptr(), 65534, 65534) }, 0);
+    let nobody = [
+        "/usr/bin/setpriv",
+        "--reuid=65534",
+        "--regid=65534",
+        "--clear-groups",
+    ];
+    // An archived workspace: no -wal or -shm file, and none can be made.
+    assert!(!ws.join("rondo.db-wal").exists());
+    reading_commands_work(d.path(), &ws, &ws, &nobody, &out);
+    // While the owner has it open (the -wal and -shm files exist, writable by the owner only).
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap_or_else(|e| panic!("{e}"));
+    let pool = rt
+        .block_on(rondo::store::open(&ws.join("rondo.db")))
+        .unwrap_or_else(|e| panic!("{e:#}"));
+    assert!(ws.join("rondo.db-wal").exists() && ws.join("rondo.db-shm").exists());
+    reading_commands_work(d.path(), &ws, &ws, &nobody, &out);
+    rt.block_on(pool.close());
+}
+
+#[test]
+fn a_workspace_on_a_read_only_mount_is_read() {
+    if !is_root() || !Path::new("/usr/bin/unshare").is_file() {
+        skip_or_fail("a read-only bind mount needs root and unshare (util-linux)");
+        return;
+    }
+    let (d, ws) = readable_workspace();
+    let ro = d.path().join("ro.rondo");
+    std::fs::create_dir(&ro).unwrap_or_else(|e| panic!("{e}"));
+    // A private mount namespace per command: the read-only bind mount is gone when it ends.
+    let script = format!(
+        "mount --bind {ws} {ro} && mount -o remount,bind,ro {ro} && exec \"$@\"",
+        ws = ws.display(),
+        ro = ro.display()
+    );
+    // The probe also shows the mount is really read-only: a file cannot be made in it.
+    let no_write = format!("! touch {}/probe 2>/dev/null", ro.display());
+    let probe = Command::new("/usr/bin/unshare")
+        .args([
+            "--mount", "sh", "-c", &script, "sh", "/bin/sh", "-c", &no_write,
+        ])
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    if !probe.status.success() {
+        skip_or_fail(&format!(
+            "cannot make a read-only bind mount here: {}",
+            String::from_utf8_lossy(&probe.stderr)
+        ));
+        return;
+    }
+    let wrap = ["/usr/bin/unshare", "--mount", "sh", "-c", &script, "sh"];
+    let out = d.path().join("out");
+    std::fs::create_dir(&out).unwrap_or_else(|e| panic!("{e}"));
+    // An archived workspace (no -wal, no -shm), then one its owner has read since (a
+    // read-only reader leaves both files behind).
+    assert!(!ws.join("rondo.db-wal").exists() && !ws.join("rondo.db-shm").exists());
+    reading_commands_work(d.path(), &ws, &ro, &wrap, &out);
+    assert!(ws.join("rondo.db-wal").exists() && ws.join("rondo.db-shm").exists());
+    reading_commands_work(d.path(), &ws, &ro, &wrap, &out);
+    assert!(!ws.join("probe").exists());
+}
+
+#[test]
+fn cancel_reaches_the_running_orchestrator_and_records_the_reason() {
+    let d = tmp();
+    write(
+        &d.path().join("c.yaml"),
+        "campaign: sleepy\nsweep:\n  product:\n    k: [1, 2]\ncycle:\n  nap:\n    run: [/bin/sleep, \"30\"]\nstop:\n  max-iterations: 3\n",
+    );
+    let mut first = Command::new(rondo())
+        .args(["run", "c.yaml", "--grace", "1"])
+        .current_dir(d.path())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|e| panic!("spawn: {e}"));
+    let ws = d.path().join("c.rondo");
+    let t0 = Instant::now();
+    loop {
+        let s = (ws.join("rondo.db").is_file()).then(|| status_json(d.path(), &ws));
+        if s.is_some_and(|s| s["points"][1]["attempts"].as_i64().unwrap_or(0) >= 1) {
+            break;
+        }
+        assert!(
+            t0.elapsed() < Duration::from_secs(60),
+            "the run did not start"
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    let o = run_rondo(d.path(), &["cancel", "--reason", "wrong U: 6 eV, not 8"]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{}", shown(&o));
+    assert!(!err.contains("in use"), "{err}");
+    assert!(err.contains(&format!("pid {}", first.id())), "{err}");
+    let status = first.wait().unwrap_or_else(|e| panic!("wait: {e}"));
+    assert_eq!(status.code(), Some(3), "a cancelled run exits 3");
+    let s = status_json(d.path(), &ws);
+    for p in s["points"].as_array().cloned().unwrap_or_default() {
+        assert_eq!(p["state"], "cancelled", "{p}");
+        assert!(
+            p["reason"]
+                .as_str()
+                .is_some_and(|r| r.contains("wrong U: 6 eV, not 8")),
+            "{p}"
+        );
+    }
+    let msgs = strings(&ws, "SELECT failure_message FROM attempts");
+    assert_eq!(msgs.len(), 2, "{msgs:?}");
+    assert!(msgs.iter().all(|m| m.contains("wrong U")), "{msgs:?}");
+    let events = strings(&ws, "SELECT detail FROM events WHERE kind = 'cancel'");
+    assert!(
+        events.len() == 1 && events[0].contains("wrong U: 6 eV, not 8"),
+        "{events:?}"
+    );
+    assert!(
+        !ws.join("cancel-request").exists(),
+        "the request was consumed"
+    );
+    assert!(
+        processes_of_workspace(&workspace_id(&ws)).is_empty(),
+        "children left"
+    );
+}
+
+#[test]
+fn without_file_or_workspace_the_only_workspace_here_or_one_level_below_is_used() {
+    let d = tmp();
+    let sub = d.path().join("examples");
+    std::fs::create_dir(&sub).unwrap_or_else(|e| panic!("{e}"));
+    halfstep_campaign(&sub, "ok", "", "[1.0]");
+    let o = run_rondo(&sub, &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    // From the parent (the project root after the demo): the one workspace below is used.
+    let o = run_rondo(d.path(), &["status"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    assert!(
+        String::from_utf8_lossy(&o.stdout).contains("converged"),
+        "{}",
+        shown(&o)
+    );
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("examples/c.rondo"),
+        "says which workspace: {}",
+        shown(&o)
+    );
+    let o = run_rondo(d.path(), &["trace", "p001/last/s.x"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    // A folder named *.rondo without a database is not a workspace.
+    std::fs::create_dir(d.path().join("empty.rondo")).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["status"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    // Two candidates: both are named and the user is asked to choose.
+    let other = d.path().join("other");
+    std::fs::create_dir(&other).unwrap_or_else(|e| panic!("{e}"));
+    halfstep_campaign(&other, "ok", "", "[1.0]");
+    let o = run_rondo(&other, &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let o = run_rondo(d.path(), &["status"]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    assert!(
+        err.contains("examples/c.rondo")
+            && err.contains("other/c.rondo")
+            && err.contains("--workspace"),
+        "{err}"
+    );
+}
+
+#[test]
+fn the_demo_script_says_where_the_binary_is() {
+    let demo = std::fs::read_to_string(repo().join("scripts/demo")).unwrap_or_default();
+    assert!(
+        demo.contains("rondo is at"),
+        "scripts/demo prints the binary's path"
+    );
+    let readme = std::fs::read_to_string(repo().join("README.md")).unwrap_or_default();
+    assert!(
+        readme.contains("target/release/rondo"),
+        "README says where rondo is"
+    );
+}
+
+#[test]
+fn a_changed_campaign_file_is_bad_input_exit_2() {
+    let d = tmp();
+    let f = halfstep_campaign(d.path(), "ok", "", "[1.0]");
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let text = std::fs::read_to_string(&f).unwrap_or_default();
+    write(
+        &f,
+        &text.replace("max-iterations: 30", "max-iterations: 31"),
+    );
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    assert!(
+        String::from_utf8_lossy(&o.stderr).contains("different campaign file"),
+        "{}",
+        shown(&o)
+    );
+    let concepts = std::fs::read_to_string(repo().join("docs/concepts.md")).unwrap_or_default();
+    assert!(
+        concepts.contains("| 2 | bad input"),
+        "docs/concepts.md lists exit 2"
+    );
+}
+
+/// `rondo check` of a campaign text in a fresh folder: (exit code, stderr, stdout).
+fn check(text: &str, setup: impl FnOnce(&Path)) -> (Option<i32>, String, String) {
+    let d = tmp();
+    setup(d.path());
+    write(&d.path().join("c.yaml"), text);
+    let o = run_rondo(d.path(), &["check", "c.yaml"]);
+    (
+        o.status.code(),
+        String::from_utf8_lossy(&o.stderr).into_owned(),
+        String::from_utf8_lossy(&o.stdout).into_owned(),
+    )
+}
+
+#[test]
+fn check_refuses_a_program_that_is_not_executable_at_its_entry() {
+    let text = "campaign: c\nprograms:\n  step: { path: ./step.sh }\ncycle:\n  s:\n    run: [step]\nstop:\n  when:\n    - { metric: s.x, change-below: 0.1 }\n  max-iterations: 2\n";
+    let (code, err, _) = check(text, |d| write(&d.join("step.sh"), "#!/bin/sh\n"));
+    assert_eq!(code, Some(2), "{err}");
+    assert!(
+        err.contains("c.yaml:3:17:") && err.contains("not executable"),
+        "{err}"
+    );
+    assert!(err.contains("chmod"), "{err}");
+    // A misspelt path: one diagnostic, at the entry, and not "declare it under programs:".
+    let (code, err, _) = check(&text.replace("./step.sh", "./stpe.sh"), |d| {
+        write(&d.join("step.sh"), "#!/bin/sh\n");
+        make_executable(&d.join("step.sh"));
+    });
+    assert_eq!(code, Some(2), "{err}");
+    assert_eq!(err.lines().count(), 1, "{err}");
+    assert!(
+        err.contains("c.yaml:3:17:") && err.contains("./stpe.sh"),
+        "{err}"
+    );
+    assert!(!err.contains("declare it under"), "{err}");
+    // A literal program path in `run` that is not executable: at the `run` element.
+    let (code, err, _) = check(
+        "campaign: c\ncycle:\n  s:\n    run: [./tool.sh, x]\nstop:\n  max-iterations: 1\n",
+        |d| write(&d.join("tool.sh"), "#!/bin/sh\n"),
+    );
+    assert_eq!(code, Some(2), "{err}");
+    assert!(
+        err.contains("c.yaml:4:11:") && err.contains("not executable"),
+        "{err}"
+    );
+}
+
+#[test]
+fn a_campaign_without_stopping_rule_is_warned_about_and_its_status_says_so() {
+    let d = tmp();
+    write(
+        &d.path().join("c.yaml"),
+        "campaign: c\ncycle:\n  s:\n    run: [/bin/true]\nstop:\n  max-iterations: 2\n",
+    );
+    let o = run_rondo(d.path(), &["check", "c.yaml"]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    assert!(
+        err.contains(
+            "c.yaml:5:1: warning: no stopping rule: every point runs max-iterations iterations"
+        ),
+        "{err}"
+    );
+    let o = run_rondo(d.path(), &["run", "c.yaml"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    assert!(
+        !String::from_utf8_lossy(&o.stderr).contains("()"),
+        "{}",
+        shown(&o)
+    );
+    let o = run_rondo(d.path(), &["status"]);
+    let out = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        out.contains("capped at iteration 2 (ran all 2 iterations of max-iterations: the campaign has no stopping rule)"),
+        "{out}"
+    );
+}
+
+#[test]
+fn a_shell_stage_runs_one_script_with_every_value_single_quoted() {
+    let d = tmp();
+    let marker = d.path().join("pwned");
+    let evil = format!(
+        "a b; touch {m} | cat && $(touch {m}) `touch {m}` 'q' \"dq\" * ~ \\",
+        m = marker.display()
+    );
+    let text = format!(
+        r#"campaign: shelly
+programs:
+  show: {{ path: {prog} }}
+parameters:
+  evil: {evil_yaml}
+cycle:
+  s:
+    run: "{{{{program:show}}}} {{{{param:evil}}}} --n={{{{point:index}}}} | tee log.txt > /dev/null && test -s log.txt"
+    shell: true
+    metrics: [n]
+stop:
+  max-iterations: 1
+"#,
+        prog = fixture("argv.sh").display(),
+        evil_yaml = serde_json::to_string(&evil).unwrap_or_default(),
+    );
+    write(&d.path().join("c.yaml"), &text);
+    let o = run_rondo(d.path(), &["run", "c.yaml", "--keep-scratch", "-q"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    assert!(!marker.exists(), "the value was executed");
+    let dir = d.path().join("c.rondo/scratch/p001.i0001.s.a1");
+    let args = std::fs::read_to_string(dir.join("args.txt")).unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(args, format!("{evil}\n--n=1\n"));
+    // The script's program is hashed and recorded; the shell ran it.
+    let ws = d.path().join("c.rondo");
+    let rows = strings(
+        &ws,
+        "SELECT program_path || ' ' || coalesce(program_version, '') FROM attempts",
+    );
+    assert_eq!(rows.len(), 1);
+    assert!(rows[0].starts_with("/bin/sh "), "{rows:?}");
+    assert!(
+        rows[0].contains(&blake3_of(&fixture("argv.sh"))),
+        "{rows:?}"
+    );
+    // The list form with shell: true, and a string without it, are refused at check.
+    for (from, to, needle) in [
+        (
+            r#"run: "{{program:show}} {{param:evil}} --n={{point:index}} | tee log.txt > /dev/null && test -s log.txt""#,
+            "run: [show, \"{{param:evil}}\"]",
+            "`shell: true` takes one script string",
+        ),
+        ("    shell: true\n", "", "`run` is one string"),
+        (
+            "{{program:show}} {{param:evil}}",
+            "{{program:shw}} {{param:evil}}",
+            "no program `shw`",
+        ),
+        (
+            "{{program:show}} {{param:evil}}",
+            "{{program:show}} \\\"{{param:evil}}\\\"",
+            "inside quotes",
+        ),
+    ] {
+        assert!(text.contains(from), "{from}");
+        write(&d.path().join("bad.yaml"), &text.replace(from, to));
+        let o = run_rondo(d.path(), &["check", "bad.yaml"]);
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert_eq!(o.status.code(), Some(2), "{to}: {}", shown(&o));
+        assert!(
+            err.contains(needle) && err.contains("bad.yaml:"),
+            "{to}: {err}"
+        );
+    }
+}
+
+#[test]
+fn run_on_pbs_is_selectable_and_its_help_says_it_was_never_run_on_a_real_server() {
+    let d = tmp();
+    let o = run_rondo(d.path(), &["run", "--help"]);
+    let help = String::from_utf8_lossy(&o.stdout);
+    assert!(help.contains("pbs"), "{help}");
+    assert!(
+        help.contains("not been run against a real PBS server"),
+        "{help}"
+    );
+    let clusters = std::fs::read_to_string(repo().join("docs/clusters.md")).unwrap_or_default();
+    assert!(
+        clusters.contains("--on pbs"),
+        "docs/clusters.md shows --on pbs"
+    );
+    // Stand-ins for the PBS clients (not a PBS server): qsub runs the job script at once
+    // and prints an id; qstat -f -x reports each asked job finished; qdel does nothing.
+    let bin = d.path().join("pbs-bin");
+    std::fs::create_dir(&bin).unwrap_or_else(|e| panic!("{e}"));
+    write(
+        &bin.join("qsub"),
+        "#!/bin/sh\nfor a; do s=$a; done\nn=$(($(cat \"$0.n\" 2>/dev/null || echo 4241) + 1)); echo $n > \"$0.n\"\n/bin/sh \"$s\" > /dev/null 2>&1\necho \"$n.pbs01\"\n",
+    );
+    write(
+        &bin.join("qstat"),
+        "#!/bin/sh\nfor a; do case $a in -*) ;; *) printf 'Job Id: %s\\n    job_state = F\\n    substate = 92\\n    Exit_status = 0\\n\\n' \"$a\";; esac; done\n",
+    );
+    write(&bin.join("qdel"), "#!/bin/sh\nexit 0\n");
+    for c in ["qsub", "qstat", "qdel"] {
+        make_executable(&bin.join(c));
+    }
+    halfstep_campaign(d.path(), "ok", "", "[1.0]");
+    let o = Command::new(rondo())
+        .args(["run", "c.yaml", "--on", "pbs", "--poll-interval", "1", "-q"])
+        .current_dir(d.path())
+        .env(
+            "PATH",
+            format!("{}:{}", bin.display(), path_with_binaries()),
+        )
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let kinds = strings(&ws, "SELECT DISTINCT executor FROM attempts");
+    assert_eq!(kinds, ["pbs"]);
+    let handles = strings(&ws, "SELECT handle_id FROM attempts ORDER BY id LIMIT 1");
+    assert_eq!(handles, ["4242.pbs01"]);
+    let s = status_json(d.path(), &ws);
+    assert_eq!(s["points"][0]["state"], "converged");
 }

@@ -7,10 +7,13 @@
 //! - [`Template::render`]: each template argument becomes exactly one argument of the
 //!   program. Substituted values are inserted verbatim and never re-parsed, so a value like
 //!   `x; touch /tmp/pwned` reaches the program as that one literal argument.
-//! - [`Template::render_shell`]: for stages that opt into a shell. The arguments are joined
-//!   with spaces into one script for `/bin/sh -c`; the template's literal text is shell
-//!   syntax written by the campaign author, and every substituted value is POSIX
-//!   single-quoted ([`shell_quote`]) so that it stays one literal word.
+//! - [`Template::render_shell`]: for stages that opt into a shell. The template is the
+//!   script for `/bin/sh -c` (a campaign's shell stage gives it as one string; several
+//!   arguments would be joined with spaces); its literal text is shell syntax written by the
+//!   campaign author, and every substituted value is POSIX single-quoted ([`shell_quote`])
+//!   so that it stays one literal word. A placeholder must therefore stand outside quotes in
+//!   the script: [`Template::placeholders_in_shell_quotes`] finds those that do not, for the
+//!   validator to refuse (`"--x={{param:x}}"` would pass the quote characters on).
 //!
 //! Placeholder syntax: `{{` optional whitespace, an optional `namespace:` prefix, a name,
 //! optional whitespace, `}}`. Namespaces and names consist of ASCII letters, digits, `_`,
@@ -21,7 +24,8 @@
 use std::fmt;
 
 /// Namespaces the campaign format defines (`{{param:volume}}`, `{{input:density}}`, ...).
-pub const NAMESPACES: &[&str] = &["param", "input", "output", "point"];
+/// `program` (`{{program:engine}}`, the path of a declared program) is for shell scripts.
+pub const NAMESPACES: &[&str] = &["param", "input", "output", "point", "program"];
 
 /// Names usable without a namespace (`{{iteration}}`, `{{cpus}}`, ...).
 pub const BARE_NAMES: &[&str] = &[
@@ -262,6 +266,65 @@ impl Template {
     }
 }
 
+impl Template {
+    /// Placeholders that a shell would see inside single or double quotes, or right after a
+    /// backslash, in the script [`Template::render_shell`] makes: their single-quoted values
+    /// would not be one plain word there. The scan follows POSIX quoting (2.2 "Quoting"):
+    /// `'...'`, `"..."` with `\` escapes inside double quotes, and `\` outside quotes.
+    pub fn placeholders_in_shell_quotes(&self) -> Vec<PlaceholderRef<'_>> {
+        #[derive(PartialEq)]
+        enum Q {
+            Out,
+            Single,
+            Double,
+        }
+        let mut q = Q::Out;
+        let mut escaped = false;
+        let mut found = Vec::new();
+        for (arg, pieces) in self.args.iter().enumerate() {
+            if arg > 0 {
+                // Joined with a space.
+                escaped = false;
+            }
+            for piece in pieces {
+                match piece {
+                    Piece::Literal(text) => {
+                        for c in text.chars() {
+                            if escaped {
+                                escaped = false;
+                                continue;
+                            }
+                            match (&q, c) {
+                                (Q::Out, '\'') => q = Q::Single,
+                                (Q::Out, '"') => q = Q::Double,
+                                (Q::Out, '\\') | (Q::Double, '\\') => escaped = true,
+                                (Q::Single, '\'') | (Q::Double, '"') => q = Q::Out,
+                                _ => {}
+                            }
+                        }
+                    }
+                    Piece::Placeholder {
+                        namespace,
+                        name,
+                        column,
+                    } => {
+                        if q != Q::Out || escaped {
+                            found.push(PlaceholderRef {
+                                namespace: namespace.as_deref(),
+                                name,
+                                arg,
+                                column: *column,
+                            });
+                        }
+                        escaped = false;
+                    }
+                }
+            }
+        }
+        found
+    }
+}
+
 fn render_pieces(
     arg: usize,
     pieces: &[Piece],
@@ -426,6 +489,28 @@ mod tests {
         assert_eq!(shell_quote(""), "''");
         assert_eq!(shell_quote("abc"), "'abc'");
         assert_eq!(shell_quote("it's"), "'it'\\''s'");
+    }
+
+    #[test]
+    fn placeholders_inside_shell_quotes_are_found() {
+        let t = Template::parse(&args(&[
+            "{{program:p}} --a={{param:a}} \"--b={{param:b}}\" '{{param:c}}' \\{{param:d}} \"x\\\"\" {{param:e}} | tee 'l o g'",
+        ]))
+        .unwrap();
+        let inside: Vec<&str> = t
+            .placeholders_in_shell_quotes()
+            .iter()
+            .map(|p| p.name)
+            .collect();
+        assert_eq!(inside, ["b", "c", "d"]);
+        // Rendered, each value is one quoted word.
+        let out = t
+            .render_shell(|ns, n| Some(format!("{}{n} $x", ns.unwrap_or(""))))
+            .unwrap();
+        assert!(
+            out[2].starts_with("'programp $x' --a='parama $x' "),
+            "{out:?}"
+        );
     }
 
     #[test]

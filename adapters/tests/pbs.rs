@@ -174,3 +174,124 @@ async fn generated_script_has_pbs_directives_and_runs_with_markers() {
     assert_eq!(c.outcome, Outcome::Exited { code: 4 });
     assert!(c.started_at.is_some() && c.host.is_some());
 }
+
+/// Stand-ins for the PBS clients that answer with the recorded outputs: `qsub` prints the
+/// id in `next-id`, `qstat` prints `answer` (stdout) or `answer.err` (stderr, exit 153) and,
+/// when `down-first` exists, first answers as a server that is down; every call's arguments
+/// are appended to `<client>.args`. Not a PBS server: only the recorded text is replayed.
+fn recorded_clients(dir: &Path) -> PbsConfig {
+    let fix: PathBuf = [env!("CARGO_MANIFEST_DIR"), "tests", "fixtures", "pbs"]
+        .iter()
+        .collect();
+    let d = dir.display();
+    let f = fix.display();
+    let scripts = [
+        (
+            "qsub",
+            format!("#!/bin/sh\necho \"$@\" >> \"$0.args\"\ncat {d}/next-id\n"),
+        ),
+        (
+            "qstat",
+            format!(
+                "#!/bin/sh\necho \"$@\" >> \"$0.args\"\n\
+                 if [ -f {d}/down-first ]; then rm {d}/down-first; cat {f}/qstat-down.err >&2; exit 2; fi\n\
+                 if [ -f {d}/answer.err ]; then cat {d}/answer.err >&2; exit 153; fi\n\
+                 cat {d}/answer\n"
+            ),
+        ),
+        ("qdel", "#!/bin/sh\necho \"$@\" >> \"$0.args\"\n".to_string()),
+    ];
+    for (name, text) in &scripts {
+        let p = dir.join(name);
+        std::fs::write(&p, text).expect("write client");
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o755)).expect("chmod");
+    }
+    PbsConfig {
+        poll_interval: std::time::Duration::from_millis(200),
+        max_backoff: std::time::Duration::from_millis(400),
+        qsub: dir.join("qsub").display().to_string(),
+        qstat: dir.join("qstat").display().to_string(),
+        qdel: dir.join("qdel").display().to_string(),
+        ..Default::default()
+    }
+}
+
+/// One attempt through the executor against recorded `qstat` output: the outcome it reports.
+async fn outcome_with(
+    id: &str,
+    answer: Option<&str>,
+    answer_err: Option<&str>,
+    down_first: bool,
+) -> (Outcome, String) {
+    use rondo_adapters::executor::Executor;
+    let clients = tempfile::tempdir().expect("tempdir");
+    let work = tempfile::tempdir().expect("tempdir");
+    let cfg = recorded_clients(clients.path());
+    std::fs::write(clients.path().join("next-id"), format!("{id}\n")).expect("id");
+    if let Some(a) = answer {
+        std::fs::write(clients.path().join("answer"), fixture(a)).expect("answer");
+    }
+    if let Some(e) = answer_err {
+        std::fs::write(clients.path().join("answer.err"), fixture(e)).expect("answer");
+    }
+    if down_first {
+        std::fs::write(clients.path().join("down-first"), "").expect("down");
+    }
+    let (tx, mut rx) = tokio::sync::mpsc::unbounded_channel();
+    let ex = PbsExecutor::new(cfg, tx);
+    let handle = ex.launch(request(work.path())).await.expect("qsub");
+    assert_eq!(handle.executor, "pbs");
+    assert_eq!(handle.id, id);
+    // A bound against a hang, not a timing check.
+    let c = tokio::time::timeout(std::time::Duration::from_secs(60), rx.recv())
+        .await
+        .expect("a completion")
+        .expect("channel open");
+    assert_eq!(c.attempt_id, 9);
+    let qsub_args = std::fs::read_to_string(clients.path().join("qsub.args")).expect("qsub args");
+    assert!(
+        qsub_args.trim_end().ends_with("rondo-job.sh"),
+        "qsub gets the script: {qsub_args}"
+    );
+    assert!(work.path().join("rondo-job.sh").is_file());
+    let qstat_args =
+        std::fs::read_to_string(clients.path().join("qstat.args")).expect("qstat args");
+    (c.outcome, qstat_args)
+}
+
+#[tokio::test]
+async fn the_executor_submits_polls_and_reports_from_recorded_output() {
+    // Walltime kill (-29), after one poll at which the server was down: retried, no false end.
+    let (o, args) = outcome_with("5003.pbs01", Some("qstat-fx-finished.txt"), None, true).await;
+    assert_eq!(o, Outcome::TimedOut);
+    let calls: Vec<&str> = args.lines().collect();
+    assert!(calls.len() >= 2, "{args}");
+    assert!(calls.iter().all(|l| *l == "-f -x 5003.pbs01"), "{args}");
+    // Killed by SIGKILL (265 = 256 + 9).
+    let (o, _) = outcome_with("5004.pbs01", Some("qstat-fx-finished.txt"), None, false).await;
+    assert_eq!(o, Outcome::Signaled { signal: 9 });
+    // Deleted by someone else while running (substate 91).
+    let (o, _) = outcome_with("5005.pbs01", Some("qstat-fx-finished.txt"), None, false).await;
+    assert!(
+        matches!(&o, Outcome::Cancelled { by } if by.starts_with("external")),
+        "{o:?}"
+    );
+    // Mother-superior node failure (-20).
+    let (o, _) = outcome_with("5006.pbs01", Some("qstat-fx-finished.txt"), None, false).await;
+    assert_eq!(o, Outcome::NodeFailure);
+    // The server printed a longer id (812.torque01.example.org) for the 812.torque01 qsub
+    // gave; the job completed (Torque's `C`, exit_status 0) but its script left no markers
+    // here (it never ran its program): lost, never taken for a success.
+    let (o, _) = outcome_with(
+        "812.torque01",
+        Some("qstat-torque-completed.txt"),
+        None,
+        false,
+    )
+    .await;
+    assert!(matches!(o, Outcome::Lost { .. }), "{o:?}");
+    // The server no longer knows the job, and no marker: lost.
+    let (o, _) = outcome_with("3999.pbs01", None, Some("qstat-unknown.err"), false).await;
+    assert!(matches!(o, Outcome::Lost { .. }), "{o:?}");
+}

@@ -1345,15 +1345,33 @@ pub struct ValueDiff {
     pub b: Option<Value>,
 }
 
-/// Programs of a stage that differ.
+/// A stage whose succeeded attempts ran different programs in A and B at the same
+/// iterations (compared by BLAKE3, or by path where a hash is missing).
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ProgramDiff {
     /// Stage.
     pub stage: String,
-    /// Programs used by A's attempts of that stage.
-    pub a: Vec<ProgramRef>,
-    /// Programs used by B's attempts of that stage.
-    pub b: Vec<ProgramRef>,
+    /// The iterations (both points have) at which A ran `a` and B ran `b`.
+    pub iterations: Vec<i64>,
+    /// A's program there.
+    pub a: ProgramRef,
+    /// B's program there.
+    pub b: ProgramRef,
+}
+
+/// A program that changed between two iterations of one point (its iterations mix builds).
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ProgramChange {
+    /// `A` or `B`.
+    pub side: String,
+    /// Stage.
+    pub stage: String,
+    /// First iteration that ran `to`.
+    pub iteration: i64,
+    /// The program of the iterations before.
+    pub from: ProgramRef,
+    /// The program from `iteration` on.
+    pub to: ProgramRef,
 }
 
 /// An input of the first iteration that differs.
@@ -1402,8 +1420,10 @@ pub struct PointDiff {
     pub sweep_values: Vec<ValueDiff>,
     /// Resolved parameters (other than sweep values) that differ, as `stage.name`.
     pub parameters: Vec<ValueDiff>,
-    /// Stages whose programs differ.
+    /// Stages whose programs differ, per run of iterations.
     pub programs: Vec<ProgramDiff>,
+    /// Programs that changed within A or within B.
+    pub program_changes: Vec<ProgramChange>,
     /// Stopping rules, when they differ.
     pub stop: Option<StopDiff>,
     /// Inputs of the first iteration that differ.
@@ -1419,7 +1439,8 @@ struct PointData {
     stop: Value,
     /// stage → first succeeded attempt's parameters.
     params: BTreeMap<String, Value>,
-    programs: BTreeMap<String, BTreeSet<ProgramRef>>,
+    /// stage → iteration → program of the succeeded attempt.
+    programs: BTreeMap<String, BTreeMap<i64, ProgramRef>>,
     first_inputs: BTreeMap<(String, String), String>,
     /// metric → iteration → value.
     metrics: BTreeMap<String, BTreeMap<i64, f64>>,
@@ -1477,14 +1498,14 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
         if state != "succeeded" {
             continue;
         }
-        d.programs
-            .entry(stage.clone())
-            .or_default()
-            .insert(ProgramRef {
+        d.programs.entry(stage.clone()).or_default().insert(
+            iteration,
+            ProgramRef {
                 path: r.try_get(3)?,
                 blake3: r.try_get(4)?,
                 version: r.try_get(5)?,
-            });
+            },
+        );
         if !d.params.contains_key(&stage) {
             let pj: String = r.try_get(6)?;
             d.params
@@ -1596,25 +1617,7 @@ pub async fn diff(
             &mut parameters,
         );
     }
-    let mut programs = Vec::new();
-    let pstages: BTreeSet<&String> = a.programs.keys().chain(b.programs.keys()).collect();
-    let none = BTreeSet::new();
-    for s in pstages {
-        let pa = a.programs.get(s).unwrap_or(&none);
-        let pb = b.programs.get(s).unwrap_or(&none);
-        let key = |p: &BTreeSet<ProgramRef>| {
-            p.iter()
-                .map(|x| (x.path.clone(), x.blake3.clone()))
-                .collect::<BTreeSet<_>>()
-        };
-        if key(pa) != key(pb) {
-            programs.push(ProgramDiff {
-                stage: s.clone(),
-                a: pa.iter().cloned().collect(),
-                b: pb.iter().cloned().collect(),
-            });
-        }
-    }
+    let (programs, program_changes) = program_diffs(&a.programs, &b.programs);
     let stop = (a.stop != b.stop).then(|| StopDiff {
         a: a.stop.clone(),
         b: b.stop.clone(),
@@ -1676,11 +1679,93 @@ pub async fn diff(
         sweep_values,
         parameters,
         programs,
+        program_changes,
         stop,
         inputs,
         metrics,
         metrics_equal,
     })
+}
+
+/// Whether two recorded programs are the same build: by BLAKE3 where both have one, else
+/// by path.
+fn same_program(x: &ProgramRef, y: &ProgramRef) -> bool {
+    match (x.blake3.as_deref(), y.blake3.as_deref()) {
+        (Some(a), Some(b)) if !a.is_empty() && !b.is_empty() => a == b,
+        _ => x.path == y.path && x.blake3 == y.blake3,
+    }
+}
+
+type ProgramsByIteration = BTreeMap<String, BTreeMap<i64, ProgramRef>>;
+
+/// Per stage and iteration: where A's and B's programs differ (consecutive iterations with
+/// the same pair of programs grouped), and where a program changed within one point.
+fn program_diffs(
+    a: &ProgramsByIteration,
+    b: &ProgramsByIteration,
+) -> (Vec<ProgramDiff>, Vec<ProgramChange>) {
+    let mut diffs: Vec<ProgramDiff> = Vec::new();
+    let empty = BTreeMap::new();
+    let stages: BTreeSet<&String> = a.keys().chain(b.keys()).collect();
+    for s in &stages {
+        let pa = a.get(*s).unwrap_or(&empty);
+        let pb = b.get(*s).unwrap_or(&empty);
+        for (it, x) in pa {
+            let Some(y) = pb.get(it) else { continue };
+            if same_program(x, y) {
+                continue;
+            }
+            match diffs.last_mut() {
+                Some(d) if d.stage == **s && same_program(&d.a, x) && same_program(&d.b, y) => {
+                    d.iterations.push(*it)
+                }
+                _ => diffs.push(ProgramDiff {
+                    stage: (*s).clone(),
+                    iterations: vec![*it],
+                    a: x.clone(),
+                    b: y.clone(),
+                }),
+            }
+        }
+    }
+    let mut changes = Vec::new();
+    for (side, progs) in [("A", a), ("B", b)] {
+        for (s, by_it) in progs {
+            let mut prev: Option<&ProgramRef> = None;
+            for (it, p) in by_it {
+                if let Some(q) = prev.filter(|q| !same_program(q, p)) {
+                    changes.push(ProgramChange {
+                        side: side.into(),
+                        stage: s.clone(),
+                        iteration: *it,
+                        from: q.clone(),
+                        to: p.clone(),
+                    });
+                }
+                prev = Some(p);
+            }
+        }
+    }
+    (diffs, changes)
+}
+
+/// `2-3, 5, 7-9`.
+fn iteration_runs(its: &[i64]) -> String {
+    let mut out: Vec<String> = Vec::new();
+    let mut i = 0;
+    while i < its.len() {
+        let mut j = i;
+        while j + 1 < its.len() && its[j + 1] == its[j] + 1 {
+            j += 1;
+        }
+        out.push(if i == j {
+            its[i].to_string()
+        } else {
+            format!("{}-{}", its[i], its[j])
+        });
+        i = j + 1;
+    }
+    out.join(", ")
 }
 
 fn show(v: &Option<Value>) -> String {
@@ -1694,11 +1779,8 @@ fn show_f(v: Option<f64>) -> String {
         .unwrap_or_else(|| "(absent)".into())
 }
 
-fn show_prog(p: &[ProgramRef]) -> String {
-    p.iter()
-        .map(|x| format!("{} {}", opt(&x.path), opt(&x.blake3)))
-        .collect::<Vec<_>>()
-        .join("; ")
+fn show_prog(x: &ProgramRef) -> String {
+    format!("{} {}", opt(&x.path), opt(&x.blake3))
 }
 
 impl PointDiff {
@@ -1728,14 +1810,31 @@ impl PointDiff {
         for d in &self.parameters {
             let _ = writeln!(s, "  {:<24} A {:<16} B {}", d.name, show(&d.a), show(&d.b));
         }
-        section(&mut s, "programs", self.programs.is_empty());
+        section(
+            &mut s,
+            "programs",
+            self.programs.is_empty() && self.program_changes.is_empty(),
+        );
         for d in &self.programs {
             let _ = writeln!(
                 s,
-                "  {}\n    A {}\n    B {}",
+                "  {} at iteration{} {}\n    A {}\n    B {}",
                 d.stage,
+                if d.iterations.len() == 1 { "" } else { "s" },
+                iteration_runs(&d.iterations),
                 show_prog(&d.a),
                 show_prog(&d.b)
+            );
+        }
+        for c in &self.program_changes {
+            let _ = writeln!(
+                s,
+                "  {} changed at iteration {}: stage {}\n    from {}\n    to   {}",
+                c.side,
+                c.iteration,
+                c.stage,
+                show_prog(&c.from),
+                show_prog(&c.to)
             );
         }
         section(&mut s, "stopping rules", self.stop.is_none());

@@ -47,8 +47,13 @@ struct Cli {
 
 #[derive(Debug, Clone, Copy, ValueEnum)]
 enum ExecutorArg {
+    /// Local child processes.
     Local,
+    /// Slurm batch jobs (sbatch, squeue, sacct, scancel).
     Slurm,
+    /// PBS Professional / OpenPBS batch jobs (qsub, qstat, qdel). Not yet run against a
+    /// real PBS server: tested only with recorded command output.
+    Pbs,
 }
 
 #[derive(Subcommand, Debug)]
@@ -65,10 +70,13 @@ enum Command {
         /// Workspace folder (default: <campaign>.rondo beside the file).
         #[arg(long)]
         workspace: Option<PathBuf>,
-        /// Where command stages run: as local child processes, or as Slurm batch jobs.
+        /// Where command stages run: as local child processes, as Slurm batch jobs, or as PBS
+        /// batch jobs. The PBS executor has not been run against a real PBS server (its tests
+        /// use recorded qsub/qstat output): try it on a test queue first.
         #[arg(long = "on", value_name = "PLACE", value_enum, default_value = "local")]
         executor: ExecutorArg,
-        /// Most attempts outstanding at once (default: number of CPUs for local, 20 for slurm).
+        /// Most attempts outstanding at once (default: number of CPUs for local, 20 for
+        /// slurm and pbs).
         #[arg(long = "max-running", value_name = "N")]
         jobs: Option<usize>,
         /// Give points that failed in an earlier run a fresh set of retries.
@@ -80,7 +88,7 @@ enum Command {
         /// Seconds between SIGTERM and SIGKILL when rondo ends a local attempt.
         #[arg(long, default_value_t = 10)]
         grace: u64,
-        /// Seconds between two scheduler polls (slurm; be kind to the controller).
+        /// Seconds between two scheduler polls (slurm, pbs; be kind to the controller).
         #[arg(long, default_value_t = 30)]
         poll_interval: u64,
         /// No progress output.
@@ -98,13 +106,21 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
-    /// Stop submitting, cancel outstanding attempts and record why.
+    /// Stop submitting, cancel outstanding attempts and record why. A running orchestrator
+    /// (here or on another node) is asked through a file in the workspace, which it reads
+    /// every half second; it then stops and exits 3.
     Cancel {
         /// The campaign file (its default workspace is used).
         file: Option<PathBuf>,
-        /// Workspace folder.
+        /// Workspace folder (default: the single workspace here, or the one below).
         #[arg(long)]
         workspace: Option<PathBuf>,
+        /// Why: recorded with the cancelled points and attempts and in the event log.
+        #[arg(long, default_value = "rondo cancel")]
+        reason: String,
+        /// Seconds to wait for a running orchestrator to stop (0: do not wait).
+        #[arg(long, default_value_t = 60)]
+        wait: u64,
     },
     /// Run the campaign's analyses (the equation-of-state fits) again on a finished workspace
     /// and record the result; this is the command recorded with every analysis result.
@@ -300,6 +316,7 @@ async fn dispatch(cmd: Command) -> Result<u8> {
     match cmd {
         Command::Check { file } => {
             let c = load(&file)?;
+            eprint!("{}", c.warnings_text());
             emit(&plan_text(&c));
             Ok(EXIT_OK)
         }
@@ -315,6 +332,9 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             quiet,
         } => {
             let c = load(&file)?;
+            if !quiet {
+                eprint!("{}", c.warnings_text());
+            }
             let workspace =
                 absolute(workspace.unwrap_or_else(|| engine::default_workspace(&file)))?;
             let executor = match executor {
@@ -325,12 +345,16 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                         ..Default::default()
                     }))
                 }
+                ExecutorArg::Pbs => ExecutorChoice::Pbs(Box::new(rondo_adapters::pbs::PbsConfig {
+                    poll_interval: Duration::from_secs(poll_interval.max(1)),
+                    ..Default::default()
+                })),
             };
             let jobs = jobs.unwrap_or(match executor {
                 ExecutorChoice::Local => std::thread::available_parallelism()
                     .map(|n| n.get())
                     .unwrap_or(2),
-                ExecutorChoice::Slurm(_) => 20,
+                ExecutorChoice::Slurm(_) | ExecutorChoice::Pbs(_) => 20,
             });
             if jobs == 0 {
                 bail!(BadInput("--max-running must be at least 1".into()));
@@ -365,6 +389,11 @@ async fn dispatch(cmd: Command) -> Result<u8> {
                 eprintln!("rondo: interrupted; `rondo run` again continues where this stopped");
                 return Ok(EXIT_INTERRUPTED);
             }
+            if let Some(reason) = &summary.cancelled_because {
+                eprintln!(
+                    "rondo: cancelled ({reason}); `rondo run` again continues the cancelled points"
+                );
+            }
             Ok(if summary.all_converged() {
                 EXIT_OK
             } else {
@@ -385,9 +414,14 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             }
             Ok(EXIT_OK)
         }
-        Command::Cancel { file, workspace } => {
+        Command::Cancel {
+            file,
+            workspace,
+            reason,
+            wait,
+        } => {
             let ws = find_workspace(file.as_deref(), workspace)?;
-            cancel(&ws).await
+            cancel(&ws, &reason, Duration::from_secs(wait)).await
         }
         Command::Analyze { file, workspace } => {
             let ws = find_workspace(file.as_deref(), workspace)?;
@@ -507,7 +541,13 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             energy,
         } => {
             let ws = find_workspace(None, workspace)?;
-            let pool = store::open_existing(&ws).await?;
+            // A report records its own provenance (argv, options, sources, outputs) in the
+            // workspace, so it needs write access; the reading commands do not.
+            let pool = store::open_existing_rw(
+                &ws,
+                "`rondo report` records the report's provenance in the workspace database",
+            )
+            .await?;
             let out = absolute(out.unwrap_or_else(|| ws.join("report")))?;
             let opts = crate::report::ReportOptions {
                 volume_axis,
@@ -648,8 +688,27 @@ fn absolute(p: PathBuf) -> Result<PathBuf> {
         .join(p))
 }
 
-/// The workspace named by `--workspace`, by a campaign file, or the single `*.rondo` folder
-/// of the current directory.
+/// Workspaces (`*.rondo` folders holding a database) directly in `dir`, sorted.
+fn workspaces_in(dir: &Path) -> Vec<PathBuf> {
+    let mut found: Vec<PathBuf> = std::fs::read_dir(dir)
+        .map(|entries| {
+            entries
+                .filter_map(|e| e.ok().map(|e| e.path()))
+                .filter(|p| {
+                    p.extension().is_some_and(|e| e == "rondo") && p.join(store::DB_FILE).is_file()
+                })
+                .collect()
+        })
+        .unwrap_or_default();
+    found.sort();
+    found
+}
+
+/// The workspace named by `--workspace`, by a campaign file (its default workspace beside
+/// it), or else found the way a user expects: the only workspace in the current folder; if
+/// there is none, the only one in its subfolders (the project root after `bash scripts/demo`
+/// finds `examples/model-sweep.rondo`), named on stderr. Several candidates are listed and
+/// the user is asked to choose.
 pub fn find_workspace(file: Option<&Path>, workspace: Option<PathBuf>) -> Result<PathBuf> {
     if let Some(ws) = workspace {
         return absolute(ws);
@@ -661,24 +720,46 @@ pub fn find_workspace(file: Option<&Path>, workspace: Option<PathBuf>) -> Result
         return absolute(engine::default_workspace(f));
     }
     let here = std::env::current_dir().context("cannot read the current directory")?;
-    let found: Vec<PathBuf> = std::fs::read_dir(&here)
+    let rel = |p: &Path| p.strip_prefix(&here).unwrap_or(p).display().to_string();
+    let choose = |found: &[PathBuf], where_: &str| -> anyhow::Error {
+        BadInput(format!(
+            "several workspaces {where_}: {}; choose one with --workspace DIR",
+            found.iter().map(|p| rel(p)).collect::<Vec<_>>().join(", ")
+        ))
+        .into()
+    };
+    let found = workspaces_in(&here);
+    match found.as_slice() {
+        [one] => return Ok(one.clone()),
+        [] => {}
+        _ => return Err(choose(&found, "here")),
+    }
+    let mut subdirs: Vec<PathBuf> = std::fs::read_dir(&here)
         .with_context(|| format!("{}: cannot list", here.display()))?
         .filter_map(|e| e.ok().map(|e| e.path()))
-        .filter(|p| p.is_dir() && p.extension().is_some_and(|e| e == "rondo"))
+        .filter(|p| {
+            p.is_dir()
+                && !p
+                    .file_name()
+                    .is_some_and(|n| n.to_string_lossy().starts_with('.'))
+        })
         .collect();
-    match found.as_slice() {
-        [one] => Ok(one.clone()),
+    subdirs.sort();
+    let below: Vec<PathBuf> = subdirs.iter().flat_map(|d| workspaces_in(d)).collect();
+    match below.as_slice() {
+        [one] => {
+            eprintln!(
+                "rondo: workspace {} (the only one below this folder; --workspace names another)",
+                rel(one)
+            );
+            Ok(one.clone())
+        }
         [] => bail!(BadInput(
-            "no workspace given and none (*.rondo) in the current directory; pass --workspace DIR or the campaign file".into()
+            "no workspace given, and none (*.rondo with a rondo.db) in the current folder or \
+             its subfolders; pass the campaign file, or --workspace DIR"
+                .into()
         )),
-        _ => bail!(BadInput(format!(
-            "several workspaces here ({}); pass --workspace DIR",
-            found
-                .iter()
-                .map(|p| p.display().to_string())
-                .collect::<Vec<_>>()
-                .join(", ")
-        ))),
+        _ => Err(choose(&below, "below this folder")),
     }
 }
 
@@ -700,15 +781,33 @@ pub fn plan_text(c: &Campaign) -> String {
     let _ = writeln!(s, "  cycle ({} stages, in order):", c.stages.len());
     for st in &c.stages {
         let what = match &st.kind {
-            StageKind::Command { program, shell, .. } => {
+            StageKind::Command { program, .. } => {
                 let path = c
                     .programs
                     .get(program)
                     .map(|p| p.path.display().to_string())
                     .unwrap_or_default();
+                format!("runs {program} ({path})")
+            }
+            StageKind::Shell { programs, .. } => {
+                let named = programs
+                    .iter()
+                    .map(|n| {
+                        let path = c
+                            .programs
+                            .get(n)
+                            .map(|p| p.path.display().to_string())
+                            .unwrap_or_default();
+                        format!("{n} ({path})")
+                    })
+                    .collect::<Vec<_>>();
                 format!(
-                    "runs {program} ({path}){}",
-                    if *shell { " via /bin/sh" } else { "" }
+                    "runs a /bin/sh script{}",
+                    if named.is_empty() {
+                        String::new()
+                    } else {
+                        format!(" using {}", named.join(", "))
+                    }
                 )
             }
             StageKind::Filter(w) => format!(
@@ -1035,8 +1134,8 @@ pub fn format_measurement(value: f64, error: Option<f64>) -> String {
 /// `rondo analyze`: compute the recorded campaign's analyses again from the workspace's
 /// records and record the result (the same artifact when nothing changed).
 async fn analyze(ws: &Path) -> Result<u8> {
-    let pool = store::open_existing(ws).await?;
     let _lock = store::lock(ws)?;
+    let pool = store::open_existing_rw(ws, "analyze records the analysis result").await?;
     let Some(camp) = store::campaign_row(&pool).await? else {
         bail!("{}: no campaign recorded", ws.display());
     };
@@ -1081,82 +1180,140 @@ async fn analyze(ws: &Path) -> Result<u8> {
     Ok(EXIT_OK)
 }
 
-/// `rondo cancel`: ask a running orchestrator to stop, or cancel what an earlier one left.
-async fn cancel(ws: &Path) -> Result<u8> {
-    let pool = store::open_existing(ws).await?;
-    let paths = Paths::of(ws);
-    match store::lock(ws) {
-        Err(holder) => {
-            crate::artifacts::write_new(&paths.cancel_request, b"cancel requested\n")
-                .with_context(|| format!("{}: cannot write", paths.cancel_request.display()))?;
-            store::event(&pool, "cancel-requested", None, None, None, "rondo cancel").await?;
-            eprintln!("rondo: asked the running orchestrator to cancel ({holder})");
-            Ok(EXIT_OK)
-        }
-        Ok(_lock) => {
-            let camp = store::campaign_row(&pool).await?;
-            let ws_id = camp.map(|c| c.workspace_id).unwrap_or_default();
-            let rows = sqlx::query(
-                "SELECT id, executor, handle_id, host FROM attempts WHERE state IN ('planned','submitted','running')",
-            )
-            .fetch_all(&pool)
-            .await?;
-            let (tx, _rx) = tokio::sync::mpsc::unbounded_channel();
-            let mut n = 0;
-            for r in rows {
-                let id: i64 = r.get("id");
-                let kind: String = r.get("executor");
-                let handle = rondo_adapters::executor::Handle {
-                    executor: kind.clone(),
-                    id: r.get::<Option<String>, _>("handle_id").unwrap_or_default(),
-                    host: r
-                        .get::<Option<String>, _>("host")
-                        .unwrap_or_else(store::hostname),
-                };
-                use rondo_adapters::executor::Executor;
-                let res = match kind.as_str() {
-                    "slurm" => {
-                        rondo_adapters::slurm::SlurmExecutor::new(
-                            Default::default(),
-                            ws_id.clone(),
-                            tx.clone(),
-                        )
-                        .cancel_recorded(&handle, "rondo cancel")
-                        .await
-                    }
-                    "local" => {
-                        rondo_adapters::local::LocalExecutor::new(1, ws_id.clone(), tx.clone())
-                            .cancel_recorded(&handle, "rondo cancel")
-                            .await
-                    }
-                    _ => Ok(()),
-                };
-                if let Err(e) = res {
-                    eprintln!("rondo: attempt {id}: {e}");
-                }
-                sqlx::query("UPDATE attempts SET state = 'cancelled', failure_kind = 'cancelled', failure_message = 'rondo cancel', ended_at = ? WHERE id = ?")
-                    .bind(store::now())
-                    .bind(id)
-                    .execute(&pool)
-                    .await?;
-                n += 1;
-            }
-            sqlx::query("UPDATE points SET state = 'cancelled', reason = 'rondo cancel' WHERE state IN ('planned','running')")
-                .execute(&pool)
-                .await?;
-            store::event(
-                &pool,
-                "cancel",
-                None,
-                None,
-                None,
-                &format!("rondo cancel; {n} outstanding attempt(s) cancelled"),
-            )
-            .await?;
-            eprintln!("rondo: no orchestrator was running; cancelled {n} outstanding attempt(s)");
-            Ok(EXIT_OK)
-        }
+/// `rondo cancel`: ask a running orchestrator to stop (through the workspace's cancel
+/// request, which it reads at every tick, wherever it runs), or, when none runs, cancel
+/// what an earlier one left outstanding. The reason is recorded either way.
+async fn cancel(ws: &Path, reason: &str, wait: Duration) -> Result<u8> {
+    if !ws.join(store::DB_FILE).is_file() {
+        bail!(BadInput(format!(
+            "{}: no rondo workspace here (no {}); give --workspace or the campaign file",
+            ws.display(),
+            store::DB_FILE
+        )));
     }
+    let paths = Paths::of(ws);
+    let running = match store::holder(ws) {
+        Some(h) => Some(h),
+        None => match store::lock(ws) {
+            Ok(lock) => return cancel_offline(ws, lock, reason).await,
+            // A run started just now, or the lock cannot be taken here.
+            Err(e) => Some(store::holder(ws).ok_or(e)?),
+        },
+    };
+    let holder = running.unwrap_or_default();
+    let request = engine::CancelRequest {
+        reason: reason.to_string(),
+        by: format!(
+            "{} on host {} (pid {})",
+            crate::prov::current_user(),
+            store::hostname(),
+            std::process::id()
+        ),
+        at: store::now(),
+    };
+    let text = serde_json::to_string(&request)? + "\n";
+    crate::artifacts::write_new(&paths.cancel_request, text.as_bytes()).with_context(|| {
+        format!(
+            "{}: cannot write the cancel request (only a user who may write the workspace can \
+             cancel its run)",
+            paths.cancel_request.display()
+        )
+    })?;
+    eprintln!("rondo: asked the running orchestrator ({holder}) to cancel: {reason}");
+    if wait.is_zero() {
+        return Ok(EXIT_OK);
+    }
+    let t0 = std::time::Instant::now();
+    while t0.elapsed() < wait {
+        if store::holder(ws).is_none() {
+            eprintln!("rondo: the orchestrator stopped");
+            return Ok(EXIT_OK);
+        }
+        tokio::time::sleep(Duration::from_millis(200)).await;
+    }
+    eprintln!(
+        "rondo: the orchestrator has not stopped within {} s; the request stands and it stops \
+         at its next check (`rondo status` shows when)",
+        wait.as_secs()
+    );
+    Ok(EXIT_OK)
+}
+
+/// Cancel with no orchestrator running: end what an earlier one left outstanding and mark
+/// the unfinished points cancelled.
+async fn cancel_offline(ws: &Path, _lock: store::WorkspaceLock, reason: &str) -> Result<u8> {
+    let pool = store::open_existing_rw(ws, "cancelling records the cancelled points").await?;
+    let camp = store::campaign_row(&pool).await?;
+    let ws_id = camp.map(|c| c.workspace_id).unwrap_or_default();
+    let rows = sqlx::query(
+        "SELECT id, executor, handle_id, host FROM attempts WHERE state IN ('planned','submitted','running')",
+    )
+    .fetch_all(&pool)
+    .await?;
+    let (tx, _rx) = tokio::sync::mpsc::unbounded_channel();
+    let mut n = 0;
+    for r in rows {
+        let id: i64 = r.get("id");
+        let kind: String = r.get("executor");
+        let handle = rondo_adapters::executor::Handle {
+            executor: kind.clone(),
+            id: r.get::<Option<String>, _>("handle_id").unwrap_or_default(),
+            host: r
+                .get::<Option<String>, _>("host")
+                .unwrap_or_else(store::hostname),
+        };
+        use rondo_adapters::executor::Executor;
+        let res = match kind.as_str() {
+            "slurm" => {
+                rondo_adapters::slurm::SlurmExecutor::new(
+                    Default::default(),
+                    ws_id.clone(),
+                    tx.clone(),
+                )
+                .cancel_recorded(&handle, reason)
+                .await
+            }
+            "pbs" => {
+                rondo_adapters::pbs::PbsExecutor::new(Default::default(), tx.clone())
+                    .cancel_recorded(&handle, reason)
+                    .await
+            }
+            "local" => {
+                rondo_adapters::local::LocalExecutor::new(1, ws_id.clone(), tx.clone())
+                    .cancel_recorded(&handle, reason)
+                    .await
+            }
+            _ => Ok(()),
+        };
+        if let Err(e) = res {
+            eprintln!("rondo: attempt {id}: {e}");
+        }
+        sqlx::query("UPDATE attempts SET state = 'cancelled', failure_kind = 'cancelled', failure_message = ?, ended_at = ? WHERE id = ?")
+            .bind(format!("cancelled: {reason}"))
+            .bind(store::now())
+            .bind(id)
+            .execute(&pool)
+            .await?;
+        n += 1;
+    }
+    sqlx::query(
+        "UPDATE points SET state = 'cancelled', reason = ? WHERE state IN ('planned','running')",
+    )
+    .bind(format!("cancelled: {reason}"))
+    .execute(&pool)
+    .await?;
+    store::event(
+        &pool,
+        "cancel",
+        None,
+        None,
+        None,
+        &format!("rondo cancel: {reason}; {n} outstanding attempt(s) cancelled"),
+    )
+    .await?;
+    pool.close().await;
+    eprintln!("rondo: no orchestrator was running; cancelled {n} outstanding attempt(s)");
+    Ok(EXIT_OK)
 }
 
 #[cfg(test)]

@@ -31,8 +31,9 @@ use rondo_adapters::executor::{
     Completion, Executor, Handle, LaunchRequest, Outcome, Reattached, Shutdown,
 };
 use rondo_adapters::local::LocalExecutor;
+use rondo_adapters::pbs::{PbsConfig, PbsExecutor};
 use rondo_adapters::slurm::{SlurmConfig, SlurmExecutor};
-use rondo_adapters::template::{shell_quote, Template};
+use rondo_adapters::template::Template;
 use sqlx::{Row, SqlitePool};
 use tokio::sync::mpsc;
 
@@ -55,6 +56,8 @@ pub enum ExecutorChoice {
     Local,
     /// Slurm batch jobs.
     Slurm(Box<SlurmConfig>),
+    /// PBS batch jobs (not yet run against a real PBS server).
+    Pbs(Box<PbsConfig>),
 }
 
 impl ExecutorChoice {
@@ -62,7 +65,39 @@ impl ExecutorChoice {
         match self {
             ExecutorChoice::Local => "local",
             ExecutorChoice::Slurm(_) => "slurm",
+            ExecutorChoice::Pbs(_) => "pbs",
         }
+    }
+}
+
+/// What `rondo cancel` writes into the workspace's cancel request, which a running
+/// orchestrator reads at every tick (so it reaches a run on another node too).
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct CancelRequest {
+    /// The reason given with `--reason`.
+    pub reason: String,
+    /// Who asked: user, host and pid of the `rondo cancel`.
+    pub by: String,
+    /// When.
+    pub at: String,
+}
+
+impl CancelRequest {
+    /// Read a cancel request; a file that does not parse (written by hand, or an older
+    /// rondo) still cancels, with its text as the reason.
+    pub fn read(path: &Path) -> Option<CancelRequest> {
+        let text = std::fs::read_to_string(path).ok()?;
+        Some(serde_json::from_str(&text).unwrap_or_else(|_| {
+            let written = std::fs::metadata(path)
+                .and_then(|m| m.modified())
+                .map(|t| store::time_text(t.into()))
+                .unwrap_or_else(|_| store::now());
+            CancelRequest {
+                reason: text.trim().chars().take(500).collect(),
+                by: "unknown".into(),
+                at: written,
+            }
+        }))
     }
 }
 
@@ -94,6 +129,8 @@ pub struct RunSummary {
     pub interrupted: bool,
     /// Stopped by `rondo cancel`.
     pub cancelled: bool,
+    /// The reason `rondo cancel` gave.
+    pub cancelled_because: Option<String>,
     /// Inside an allocation: the job id of the continuation submitted at the warning signal.
     pub continued_as: Option<String>,
 }
@@ -245,14 +282,15 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
     let workspace_id = match store::campaign_row(&pool).await? {
         Some(row) => {
             if row.spec_blake3 != hash {
-                bail!(
+                // Bad input (exit 2): the file, not the machine, is at fault.
+                bail!(crate::cli::BadInput(format!(
                     "{}: this workspace was made from a different campaign file (BLAKE3 {} at \
                      its first run, {} now); restore the file, or run the changed campaign in \
                      a new workspace with --workspace",
                     paths.root.display(),
-                    &row.spec_blake3[..12],
+                    row.spec_blake3.get(..12).unwrap_or(&row.spec_blake3),
                     &hash[..12]
-                );
+                )));
             }
             row.workspace_id
         }
@@ -378,6 +416,29 @@ struct PointRun {
     /// The first good iteration whose stopping rules were met (start of the final window);
     /// valid once `history` is read.
     first_met: Option<u32>,
+    /// Per stage: the program of its last succeeded attempt (read from the store at the
+    /// start of a run, then kept up to date), so a build that changed between iterations
+    /// stops the point instead of mixing into it.
+    built: Vec<Option<BuiltWith>>,
+}
+
+/// The program an attempt ran: path, BLAKE3 and version text, as recorded.
+#[derive(Debug, Clone, PartialEq, Eq)]
+struct BuiltWith {
+    iteration: u32,
+    path: String,
+    /// BLAKE3 of the program, empty when it could not be computed.
+    hash: String,
+    /// Why the hash could not be computed (recorded as `program_unknown`).
+    unknown: Option<String>,
+    version: Option<String>,
+}
+
+impl BuiltWith {
+    /// Whether the hash says what the file was.
+    fn known(&self) -> bool {
+        self.unknown.is_none() && !self.hash.is_empty()
+    }
 }
 
 impl PointRun {
@@ -391,6 +452,7 @@ impl PointRun {
             attempts: vec![0; stages],
             history: None,
             first_met: None,
+            built: vec![None; stages],
         }
     }
 }
@@ -507,6 +569,8 @@ struct InFlight {
     iteration: u32,
     attempt: u32,
     workdir: PathBuf,
+    /// The program it runs.
+    built: BuiltWith,
 }
 
 /// How an attempt ended, after output checks.
@@ -567,9 +631,13 @@ struct Engine<'a> {
 /// or `rondo cancel` asks to stop.
 pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> Result<RunSummary> {
     let paths = Paths::of(&opts.workspace);
+    let before_lock = store::now();
     let ws = prepare_workspace(campaign, &paths).await?;
-    // A cancel request left from before this run is void: running again means go on.
-    let _ = std::fs::remove_file(&paths.cancel_request);
+    // A cancel request left from before this run is void: running again means go on. One
+    // written since this run took the lock (`rondo cancel` found it holding it) stands.
+    if CancelRequest::read(&paths.cancel_request).is_some_and(|r| r.at < before_lock) {
+        let _ = std::fs::remove_file(&paths.cancel_request);
+    }
     std::fs::create_dir_all(&paths.scratch)
         .with_context(|| format!("{}: cannot create", paths.scratch.display()))?;
     let (tx, rx) = mpsc::unbounded_channel::<Completion>();
@@ -581,6 +649,11 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
             let mut cfg = (**cfg).clone();
             cfg.max_jobs = cfg.max_jobs.min(opts.jobs.max(1));
             Arc::new(SlurmExecutor::new(cfg, ws.workspace_id.clone(), tx))
+        }
+        ExecutorChoice::Pbs(cfg) => {
+            let mut cfg = (**cfg).clone();
+            cfg.max_jobs = cfg.max_jobs.min(opts.jobs.max(1));
+            Arc::new(PbsExecutor::new(cfg, tx))
         }
     };
     let rondo_exe = std::env::current_exe().unwrap_or_else(|_| PathBuf::from("rondo"));
@@ -689,7 +762,7 @@ impl Engine<'_> {
         let mut tick = tokio::time::interval(Duration::from_millis(500));
         tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
         let mut interrupted = false;
-        let mut cancelled = false;
+        let mut cancelled: Option<CancelRequest> = None;
         loop {
             self.schedule().await?;
             self.show();
@@ -714,8 +787,8 @@ impl Engine<'_> {
                 } => { interrupted = true; warned = true; break; }
                 _ = tick.tick() => {
                     self.record_launches().await?;
-                    if self.paths.cancel_request.exists() {
-                        cancelled = true;
+                    if let Some(r) = CancelRequest::read(&self.paths.cancel_request) {
+                        cancelled = Some(r);
                         break;
                     }
                 }
@@ -723,8 +796,8 @@ impl Engine<'_> {
         }
         self.flush().await?;
         let mut continued_as = None;
-        if interrupted || cancelled {
-            self.stop_everything(&mut rx, cancelled).await?;
+        if interrupted || cancelled.is_some() {
+            self.stop_everything(&mut rx, cancelled.as_ref()).await?;
             if warned {
                 continued_as = self.continue_allocation().await?;
             }
@@ -749,7 +822,8 @@ impl Engine<'_> {
         Ok(RunSummary {
             states,
             interrupted,
-            cancelled,
+            cancelled: cancelled.is_some(),
+            cancelled_because: cancelled.map(|r| r.reason),
             continued_as,
         })
     }
@@ -824,6 +898,37 @@ impl Engine<'_> {
         {
             tried.insert((point, stage), (max_attempt as u32, succeeded));
         }
+        // Per point and stage: the program of the last succeeded attempt (bare columns come
+        // from the row holding max(iteration)).
+        let mut built: HashMap<(String, String), BuiltWith> = HashMap::new();
+        for (point, stage, it, path, hash, version) in sqlx::query_as::<
+            _,
+            (
+                String,
+                String,
+                i64,
+                Option<String>,
+                Option<String>,
+                Option<String>,
+            ),
+        >(
+            "SELECT point, stage, max(iteration), program_path, program_blake3, program_version \
+             FROM attempts WHERE state = 'succeeded' GROUP BY point, stage",
+        )
+        .fetch_all(&self.pool)
+        .await?
+        {
+            built.insert(
+                (point, stage),
+                BuiltWith {
+                    iteration: it as u32,
+                    path: path.unwrap_or_default(),
+                    hash: hash.unwrap_or_default(),
+                    unknown: None,
+                    version,
+                },
+            );
+        }
         let nstages = self.campaign.stages.len();
         let mut new_iterations: Vec<(String, i64)> = Vec::new();
         let mut tx = self.pool.begin().await?;
@@ -844,6 +949,9 @@ impl Engine<'_> {
                 run.phase = PointPhase::Done;
                 self.points.push(run);
                 continue;
+            }
+            for (k, st) in self.campaign.stages.iter().enumerate() {
+                run.built[k] = built.remove(&(spec.id.clone(), st.name.clone()));
             }
             let mut fresh_iteration = true;
             match lasts.get(&spec.id) {
@@ -976,7 +1084,8 @@ impl Engine<'_> {
     /// Settle attempts an earlier orchestrator left planned, submitted or running.
     async fn reconcile(&mut self) -> Result<()> {
         let rows = sqlx::query(
-            "SELECT id, point, iteration, stage, attempt, executor, handle_id, host, workdir FROM attempts \
+            "SELECT id, point, iteration, stage, attempt, executor, handle_id, host, workdir, \
+             program_path, program_blake3, program_version FROM attempts \
              WHERE state IN ('planned', 'submitted', 'running') ORDER BY id",
         )
         .fetch_all(&self.pool)
@@ -1047,6 +1156,17 @@ impl Engine<'_> {
                 iteration,
                 attempt: row.get::<i64, _>("attempt") as u32,
                 workdir,
+                built: BuiltWith {
+                    iteration,
+                    path: row
+                        .get::<Option<String>, _>("program_path")
+                        .unwrap_or_default(),
+                    hash: row
+                        .get::<Option<String>, _>("program_blake3")
+                        .unwrap_or_default(),
+                    unknown: None,
+                    version: row.get("program_version"),
+                },
             };
             match answer {
                 Reattached::Found(h) => {
@@ -1164,6 +1284,160 @@ impl Engine<'_> {
         h
     }
 
+    /// The program a stage's next attempt runs: path, BLAKE3 and version text. Built-ins
+    /// run inside rondo; a command stage runs its program; a shell stage runs `/bin/sh`, and
+    /// its hash is the BLAKE3 of the list `NAME<tab>PATH<tab>BLAKE3<newline>` of the programs
+    /// its script names as `{{program:NAME}}` (sorted by name), each listed in the version
+    /// text; the shell itself and other tools the script calls are not hashed.
+    async fn program_identity(&mut self, stage: &Stage, iteration: u32) -> Result<BuiltWith> {
+        let built = |path: &Path, hash: Result<String, String>, version: Option<String>| {
+            let (hash, unknown) = match hash {
+                Ok(h) if h.starts_with("unreadable") => (String::new(), Some(h)),
+                Ok(h) => (h, None),
+                Err(why) => (String::new(), Some(why)),
+            };
+            BuiltWith {
+                iteration,
+                path: path.display().to_string(),
+                hash,
+                unknown,
+                version,
+            }
+        };
+        Ok(match &stage.kind {
+            StageKind::Filter(_) | StageKind::Mix(_) => {
+                let exe = self.rondo_exe.0.clone();
+                built(
+                    &exe,
+                    self.rondo_hash(),
+                    Some(format!("rondo {RONDO_VERSION}")),
+                )
+            }
+            StageKind::Command { program, .. } => {
+                let Some(resolved) = self.campaign.programs.get(program).cloned() else {
+                    bail!("internal: program `{program}` was not resolved");
+                };
+                let (hash, version) = self
+                    .programs
+                    .get(&resolved.path, resolved.version_flag.as_deref())
+                    .await;
+                built(&resolved.path, Ok(hash), version)
+            }
+            StageKind::Shell { programs, .. } => {
+                let mut list = String::new();
+                let mut described = Vec::new();
+                for name in programs {
+                    let Some(resolved) = self.campaign.programs.get(name).cloned() else {
+                        bail!("internal: program `{name}` was not resolved");
+                    };
+                    let (hash, version) = self
+                        .programs
+                        .get(&resolved.path, resolved.version_flag.as_deref())
+                        .await;
+                    let path = resolved.path.display().to_string();
+                    list.push_str(&format!("{name}\t{path}\t{hash}\n"));
+                    described.push(format!(
+                        "{name} = {path} (BLAKE3 {hash}{})",
+                        version
+                            .map(|v| format!("; version {v}"))
+                            .unwrap_or_default()
+                    ));
+                }
+                let text = if described.is_empty() {
+                    "shell script naming no program of `programs:`".to_string()
+                } else {
+                    format!("shell script; programs: {}", described.join("; "))
+                };
+                built(
+                    Path::new("/bin/sh"),
+                    Ok(blake3::hash(list.as_bytes()).to_hex().to_string()),
+                    Some(text),
+                )
+            }
+        })
+    }
+
+    /// The program of a stage changed since an earlier iteration of this point ran it: stop
+    /// the point (failed) before anything of the new build runs, saying what to do.
+    async fn stop_for_changed_program(
+        &mut self,
+        p: usize,
+        stage: &Stage,
+        before: &BuiltWith,
+        now: &BuiltWith,
+    ) -> Result<()> {
+        self.flush().await?;
+        let point_id = self.points[p].spec.id.clone();
+        let iteration = self.points[p].iteration;
+        let what = match &stage.kind {
+            StageKind::Shell { .. } => format!(
+                "the programs of shell stage `{}` changed between iterations: iteration {} ran \
+                 with {} (BLAKE3 {} over them), now {} (BLAKE3 {})",
+                stage.name,
+                before.iteration,
+                before.version.as_deref().unwrap_or("?"),
+                before.hash,
+                now.version.as_deref().unwrap_or("?"),
+                now.hash
+            ),
+            _ => format!(
+                "program {} of stage `{}` changed between iterations: BLAKE3 {} ran iteration {}{}, \
+                 the file now has BLAKE3 {}",
+                now.path,
+                stage.name,
+                before.hash,
+                before.iteration,
+                if before.path == now.path {
+                    String::new()
+                } else {
+                    format!(" (as {})", before.path)
+                },
+                now.hash
+            ),
+        };
+        let reason = format!(
+            "{what}; the point stops so that its iterations do not mix two builds. To go on, put \
+             back the build that ran and run again with --retry-failed; to use the new build, \
+             run the campaign in a new workspace (--workspace)"
+        );
+        self.points[p].phase = PointPhase::Done;
+        let mut tx = self.pool.begin().await?;
+        sqlx::query(
+            "UPDATE iterations SET state = 'failed', ended_at = ? WHERE point = ? AND iteration = ?",
+        )
+        .bind(store::now())
+        .bind(&point_id)
+        .bind(i64::from(iteration))
+        .execute(&mut *tx)
+        .await?;
+        sqlx::query("UPDATE points SET state = 'failed', reason = ? WHERE id = ?")
+            .bind(&reason)
+            .bind(&point_id)
+            .execute(&mut *tx)
+            .await?;
+        store::event(
+            &mut *tx,
+            "program-changed",
+            Some(&point_id),
+            Some(iteration),
+            None,
+            &reason,
+        )
+        .await?;
+        store::event(
+            &mut *tx,
+            "point-failed",
+            Some(&point_id),
+            Some(iteration),
+            None,
+            &reason,
+        )
+        .await?;
+        tx.commit().await?;
+        self.progress.line(format!("{point_id} failed: {reason}"));
+        Ok(())
+    }
+
     fn show(&mut self) {
         if !self.progress.live() {
             return;
@@ -1253,6 +1527,18 @@ impl Engine<'_> {
         let point = self.points[p].spec.clone();
         let iteration = self.points[p].iteration;
         let attempt = self.points[p].attempts[sidx] + 1;
+        let built = self.program_identity(&stage, iteration).await?;
+        if let Some(before) = self.points[p].built[sidx].clone() {
+            if before.iteration < iteration
+                && before.known()
+                && built.known()
+                && before.hash != built.hash
+            {
+                return self
+                    .stop_for_changed_program(p, &stage, &before, &built)
+                    .await;
+            }
+        }
         let workdir = scratch::attempt_dir(
             &self.paths.scratch,
             &point.id,
@@ -1348,122 +1634,87 @@ impl Engine<'_> {
                 .unwrap_or_else(|_| serde_json::Value::from(v.clone()));
             params.insert(k.clone(), value);
         }
-        let (argv, program_path, program_hash, program_version, uses_seed, executor_kind) =
-            match &stage.kind {
-                StageKind::Filter(with) => (
-                    builtins::filter_argv(with),
-                    self.rondo_exe.0.clone(),
-                    self.rondo_hash(),
-                    Some(format!("rondo {RONDO_VERSION}")),
-                    false,
-                    "builtin",
-                ),
-                StageKind::Mix(with) => (
-                    builtins::mix_argv(with),
-                    self.rondo_exe.0.clone(),
-                    self.rondo_hash(),
-                    Some(format!("rondo {RONDO_VERSION}")),
-                    false,
-                    "builtin",
-                ),
-                StageKind::Command {
-                    template,
-                    program,
-                    shell,
-                } => {
-                    let resolved = self.campaign.programs.get(program).cloned();
-                    let Some(resolved) = resolved else {
-                        bail!("internal: program `{program}` was not resolved");
-                    };
-                    let (hash, version) = self
-                        .programs
-                        .get(&resolved.path, resolved.version_flag.as_deref())
-                        .await;
-                    let lookup = |ns: Option<&str>, name: &str| -> Option<String> {
-                        match (ns, name) {
-                            (Some("param"), n) => point
-                                .values
-                                .iter()
-                                .find(|(k, _)| k == n)
-                                .map(|(_, v)| v.to_string())
-                                .or_else(|| {
-                                    self.campaign
-                                        .parameters
-                                        .iter()
-                                        .find(|(k, _)| k == n)
-                                        .map(|(_, v)| v.to_string())
-                                })
-                                .or_else(|| {
-                                    scheduled
-                                        .iter()
-                                        .find(|(k, _)| k == n)
-                                        .map(|(_, v)| v.clone())
-                                }),
-                            (Some("input"), n) => inputs
-                                .iter()
-                                .find(|(r, _, _)| r == n)
-                                .map(|(_, _, f)| f.display().to_string()),
-                            (Some("output"), n) => stage
-                                .outputs
-                                .iter()
-                                .find(|(r, _)| r == n)
-                                .map(|(_, f)| f.clone()),
-                            (Some("point"), "id") => Some(point.id.clone()),
-                            (Some("point"), "index") => Some(point.index.to_string()),
-                            (None, "iteration") => Some(iteration.to_string()),
-                            (None, "cpus") => Some(stage.resources.cpus().to_string()),
-                            (None, "tasks") => {
-                                Some(stage.resources.ntasks.unwrap_or(1).to_string())
-                            }
-                            (None, "seed") => Some(seed.to_string()),
-                            (None, "stage") => Some(stage.name.clone()),
-                            (None, "campaign") => Some(self.campaign.name.clone()),
-                            (None, "workdir") => Some(workdir.display().to_string()),
-                            _ => None,
-                        }
-                    };
-                    let rendered = if *shell {
-                        template.render_shell(lookup)
-                    } else {
-                        template.render(lookup)
-                    };
-                    let mut argv = match rendered {
-                        Ok(a) => a,
-                        Err(e) => bail!("stage `{}`: {e}", stage.name),
-                    };
-                    let path_text = resolved.path.display().to_string();
-                    if *shell {
-                        if let Some(script) = argv.get_mut(2) {
-                            if let Some(rest) = script.strip_prefix(program.as_str()) {
-                                *script = format!("{}{rest}", shell_quote(&path_text));
-                            }
-                        }
-                    } else if let Some(first) = argv.first_mut() {
-                        *first = path_text;
+        let (argv, uses_seed, executor_kind) = match &stage.kind {
+            StageKind::Filter(with) => (builtins::filter_argv(with), false, "builtin"),
+            StageKind::Mix(with) => (builtins::mix_argv(with), false, "builtin"),
+            StageKind::Command { template, .. } | StageKind::Shell { template, .. } => {
+                let shell = matches!(stage.kind, StageKind::Shell { .. });
+                let lookup = |ns: Option<&str>, name: &str| -> Option<String> {
+                    match (ns, name) {
+                        (Some("param"), n) => point
+                            .values
+                            .iter()
+                            .find(|(k, _)| k == n)
+                            .map(|(_, v)| v.to_string())
+                            .or_else(|| {
+                                self.campaign
+                                    .parameters
+                                    .iter()
+                                    .find(|(k, _)| k == n)
+                                    .map(|(_, v)| v.to_string())
+                            })
+                            .or_else(|| {
+                                scheduled
+                                    .iter()
+                                    .find(|(k, _)| k == n)
+                                    .map(|(_, v)| v.clone())
+                            }),
+                        (Some("input"), n) => inputs
+                            .iter()
+                            .find(|(r, _, _)| r == n)
+                            .map(|(_, _, f)| f.display().to_string()),
+                        (Some("output"), n) => stage
+                            .outputs
+                            .iter()
+                            .find(|(r, _)| r == n)
+                            .map(|(_, f)| f.clone()),
+                        (Some("program"), n) if shell => self
+                            .campaign
+                            .programs
+                            .get(n)
+                            .map(|r| r.path.display().to_string()),
+                        (Some("point"), "id") => Some(point.id.clone()),
+                        (Some("point"), "index") => Some(point.index.to_string()),
+                        (None, "iteration") => Some(iteration.to_string()),
+                        (None, "cpus") => Some(stage.resources.cpus().to_string()),
+                        (None, "tasks") => Some(stage.resources.ntasks.unwrap_or(1).to_string()),
+                        (None, "seed") => Some(seed.to_string()),
+                        (None, "stage") => Some(stage.name.clone()),
+                        (None, "campaign") => Some(self.campaign.name.clone()),
+                        (None, "workdir") => Some(workdir.display().to_string()),
+                        _ => None,
                     }
-                    if let Some(launcher) = &stage.resources.launcher {
-                        let t = Template::parse(launcher).map_err(|e| {
-                            anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name)
-                        })?;
-                        let mut pre = t.render(lookup).map_err(|e| {
-                            anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name)
-                        })?;
-                        pre.extend(argv);
-                        argv = pre;
+                };
+                let rendered = if shell {
+                    template.render_shell(lookup)
+                } else {
+                    template.render(lookup)
+                };
+                let mut argv = match rendered {
+                    Ok(a) => a,
+                    Err(e) => bail!("stage `{}`: {e}", stage.name),
+                };
+                if !shell {
+                    // The first element names the program: run its resolved path.
+                    if let Some(first) = argv.first_mut() {
+                        first.clone_from(&built.path);
                     }
-                    let uses_seed = template
-                        .placeholders()
-                        .any(|(ns, n, _)| ns.is_none() && n == "seed");
-                    (
-                        argv,
-                        resolved.path.clone(),
-                        Ok(hash),
-                        version,
-                        uses_seed,
-                        self.opts.executor.kind(),
-                    )
                 }
-            };
+                if let Some(launcher) = &stage.resources.launcher {
+                    let t = Template::parse(launcher)
+                        .map_err(|e| anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name))?;
+                    let mut pre = t
+                        .render(lookup)
+                        .map_err(|e| anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name))?;
+                    pre.extend(argv);
+                    argv = pre;
+                }
+                let uses_seed = template
+                    .placeholders()
+                    .any(|(ns, n, _)| ns.is_none() && n == "seed");
+                (argv, uses_seed, self.opts.executor.kind())
+            }
+        };
         // The planned row: written now (one store call) for built-ins and batch jobs, whose
         // later updates need it; for a local child it rides along with the store call that
         // records the attempt's end (see `PlannedRow`).
@@ -1479,10 +1730,10 @@ impl Engine<'_> {
             argv_json: serde_json::to_string(&argv)?,
             workdir: workdir.display().to_string(),
             executor: executor_kind,
-            program_path: program_path.display().to_string(),
-            program_blake3: program_hash.clone().ok(),
-            program_unknown: program_hash.clone().err(),
-            program_version: program_version.clone(),
+            program_path: built.path.clone(),
+            program_blake3: (!built.hash.is_empty()).then(|| built.hash.clone()),
+            program_unknown: built.unknown.clone(),
+            program_version: built.version.clone(),
             parameters_json: serde_json::Value::Object(params).to_string(),
             seed: uses_seed.then(|| seed.to_string()),
             created_at: store::now(),
@@ -1492,7 +1743,7 @@ impl Engine<'_> {
                 .map(|(role, hash, _)| (role.clone(), hash.clone()))
                 .collect(),
         };
-        if executor_kind == "local" && matches!(stage.kind, StageKind::Command { .. }) {
+        if executor_kind == "local" && !stage.kind.is_builtin() {
             self.planned.push(row);
         } else {
             // After everything held back (its iteration's row may be among it).
@@ -1507,6 +1758,7 @@ impl Engine<'_> {
             iteration,
             attempt,
             workdir: workdir.clone(),
+            built,
         };
         match &stage.kind {
             StageKind::Mix(_) | StageKind::Filter(_) => {
@@ -1562,7 +1814,9 @@ impl Engine<'_> {
                             ),
                         }
                     }
-                    StageKind::Command { .. } => Err("internal: not a built-in".to_string()),
+                    StageKind::Command { .. } | StageKind::Shell { .. } => {
+                        Err("internal: not a built-in".to_string())
+                    }
                 };
                 let ended = match result {
                     Ok(report) => {
@@ -1592,7 +1846,7 @@ impl Engine<'_> {
                 };
                 self.settle(id, Some(&fl), ended).await?;
             }
-            StageKind::Command { .. } => {
+            StageKind::Command { .. } | StageKind::Shell { .. } => {
                 let mut env = BTreeMap::new();
                 env.insert("RONDO_POINT".to_string(), point.id.clone());
                 env.insert("RONDO_ITERATION".to_string(), iteration.to_string());
@@ -1981,6 +2235,10 @@ impl Engine<'_> {
                 let pr = &mut self.points[fl.point];
                 pr.outstanding = None;
                 pr.next_stage = fl.stage + 1;
+                pr.built[fl.stage] = Some(BuiltWith {
+                    iteration: fl.iteration,
+                    ..fl.built.clone()
+                });
                 if let Some(v) = verdict {
                     self.apply_verdict(fl.point, v);
                 }
@@ -2157,6 +2415,13 @@ impl Engine<'_> {
             } else {
                 None
             }
+        } else if decision.at_cap && self.campaign.rules.is_empty() {
+            Some((
+                "capped",
+                format!(
+                    "ran all {n} iterations of max-iterations: the campaign has no stopping rule"
+                ),
+            ))
         } else if decision.at_cap {
             Some((
                 "capped",
@@ -2181,12 +2446,20 @@ impl Engine<'_> {
         let point_id = pr.spec.id.clone();
         let n = v.iteration;
         pr.first_met = v.first_met;
-        if let Some((state, _)) = &v.fate {
+        let rules = if v.summary.is_empty() {
+            String::new()
+        } else {
+            format!(" ({})", v.summary)
+        };
+        if let Some((state, reason)) = &v.fate {
             pr.phase = PointPhase::Done;
-            self.progress.line(format!(
-                "{point_id} {state} at iteration {n} ({})",
-                v.summary
-            ));
+            let why = if v.summary.is_empty() {
+                format!(": {reason}")
+            } else {
+                rules
+            };
+            self.progress
+                .line(format!("{point_id} {state} at iteration {n}{why}"));
         } else {
             pr.iteration = n + 1;
             pr.next_stage = 0;
@@ -2199,10 +2472,8 @@ impl Engine<'_> {
             } else {
                 ""
             };
-            self.progress.line(format!(
-                "{point_id} iteration {n} good ({}){note}",
-                v.summary
-            ));
+            self.progress
+                .line(format!("{point_id} iteration {n} good{rules}{note}"));
         }
     }
 
@@ -2278,16 +2549,21 @@ impl Engine<'_> {
     async fn stop_everything(
         &mut self,
         rx: &mut mpsc::UnboundedReceiver<Completion>,
-        cancelled: bool,
+        request: Option<&CancelRequest>,
     ) -> Result<()> {
-        let why = if cancelled {
-            "cancel requested (rondo cancel)"
-        } else {
-            "signal received"
+        let cancelled = request.is_some();
+        let why_text = match request {
+            Some(r) => format!("cancelled: {}", r.reason),
+            None => "signal received".to_string(),
         };
+        let why = why_text.as_str();
         self.record_launches().await?;
         self.progress
             .line(format!("stopping: {why}; ending outstanding attempts"));
+        let detail = match request {
+            Some(r) => format!("rondo cancel: {} (asked by {} at {})", r.reason, r.by, r.at),
+            None => why.to_string(),
+        };
         store::event(
             &self.pool,
             if cancelled {
@@ -2298,7 +2574,7 @@ impl Engine<'_> {
             None,
             None,
             None,
-            why,
+            &detail,
         )
         .await?;
         let batch = self.opts.executor.kind() != "local";

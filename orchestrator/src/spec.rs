@@ -216,19 +216,74 @@ pub struct MixSettings {
     pub weights: Option<BTreeMap<String, f64>>,
 }
 
+/// A stage's `run`: an argument list, or one script string for a shell stage.
+#[derive(Debug, Clone)]
+pub enum RunSpec {
+    /// `[program, args...]`: run without a shell, one argument per element.
+    List(Vec<Spanned<String>>),
+    /// `"script"`: run by `/bin/sh -c` (with `shell: true`).
+    Script(String),
+}
+
+impl<'de> Deserialize<'de> for RunSpec {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = RunSpec;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str(
+                    "an argument list [program, args...] or, with `shell: true`, one script string",
+                )
+            }
+            fn visit_str<E: serde::de::Error>(self, v: &str) -> Result<RunSpec, E> {
+                Ok(RunSpec::Script(v.to_string()))
+            }
+            fn visit_string<E: serde::de::Error>(self, v: String) -> Result<RunSpec, E> {
+                Ok(RunSpec::Script(v))
+            }
+            fn visit_seq<A: serde::de::SeqAccess<'de>>(
+                self,
+                mut a: A,
+            ) -> Result<RunSpec, A::Error> {
+                let mut out = Vec::new();
+                while let Some(x) = a.next_element::<Spanned<String>>()? {
+                    out.push(x);
+                }
+                Ok(RunSpec::List(out))
+            }
+        }
+        d.deserialize_any(V)
+    }
+}
+
+/// The JSON Schema form of [`RunSpec`].
+#[derive(JsonSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+enum RunSchema {
+    /// `[program, args...]`: the first element names a program of `programs:` (or is a
+    /// path); every element becomes one argument, never parsed by a shell.
+    List(Vec<String>),
+    /// With `shell: true`: one `/bin/sh -c` script; `{{program:NAME}}` stands for a
+    /// program of `programs:` and every substituted value is single-quoted.
+    Script(String),
+}
+
 /// One stage of the cycle.
 #[derive(Debug, Clone, Deserialize, JsonSchema)]
 #[serde(deny_unknown_fields, rename_all = "kebab-case")]
 pub struct StageSpec {
-    /// Command template: a program name from `programs` (or a path), then arguments.
+    /// Command template: an argument list whose first element is a program name from
+    /// `programs` (or a path), or, with `shell: true`, one script string.
     #[serde(default)]
-    #[schemars(with = "Option<Vec<String>>")]
-    pub run: Option<Vec<Spanned<String>>>,
+    #[schemars(with = "Option<RunSchema>")]
+    pub run: Option<Spanned<RunSpec>>,
     /// Built-in stage instead of `run`: `mix`.
     #[serde(default)]
     #[schemars(with = "Option<String>")]
     pub builtin: Option<Spanned<String>>,
-    /// Join `run` into one `/bin/sh -c` script (substituted values are shell-quoted).
+    /// Run `run`, one script string, with `/bin/sh -c` (substituted values are
+    /// single-quoted; programs are named `{{program:NAME}}`).
     #[serde(default)]
     pub shell: bool,
     /// Named inputs.
@@ -568,8 +623,14 @@ pub enum StageKind {
         template: Template,
         /// Program key (name in `programs`, or the literal first element).
         program: String,
-        /// Use /bin/sh -c.
-        shell: bool,
+    },
+    /// A `/bin/sh -c` script (`shell: true`).
+    Shell {
+        /// Parsed template of the script (one argument).
+        template: Template,
+        /// The programs of `programs:` the script names as `{{program:NAME}}`, sorted: what
+        /// the stage's recorded program hash covers.
+        programs: Vec<String>,
     },
     /// Built-in mixing.
     Mix(MixSettings),
@@ -580,7 +641,7 @@ pub enum StageKind {
 impl StageKind {
     /// Whether the stage runs inside rondo.
     pub fn is_builtin(&self) -> bool {
-        !matches!(self, StageKind::Command { .. })
+        !matches!(self, StageKind::Command { .. } | StageKind::Shell { .. })
     }
 }
 
@@ -663,6 +724,8 @@ pub struct Campaign {
     pub eos: Option<EosAnalysis>,
     /// Loop-driven parameters.
     pub schedules: Vec<Schedule>,
+    /// Things that are allowed but probably not meant (`rondo check` prints them).
+    pub warnings: Vec<Diagnostic>,
 }
 
 impl Campaign {
@@ -670,6 +733,33 @@ impl Campaign {
     pub fn stage(&self, name: &str) -> Option<&Stage> {
         self.stages.iter().find(|s| s.name == name)
     }
+
+    /// The warnings as `file:line:col: warning: what; hint: what to do` lines.
+    pub fn warnings_text(&self) -> String {
+        self.warnings
+            .iter()
+            .map(|d| {
+                format!(
+                    "{}:{}:{}: warning: {}; hint: {}\n",
+                    self.file.display(),
+                    d.line,
+                    d.column,
+                    d.message,
+                    d.hint
+                )
+            })
+            .collect()
+    }
+}
+
+/// Whether this process may execute `path` (`access(2)` with `X_OK`).
+pub fn is_executable(path: &Path) -> bool {
+    use std::os::unix::ffi::OsStrExt;
+    let Ok(c) = std::ffi::CString::new(path.as_os_str().as_bytes()) else {
+        return false;
+    };
+    // SAFETY: a valid NUL-terminated path; access only reads it.
+    path.is_file() && unsafe { libc::access(c.as_ptr(), libc::X_OK) == 0 }
 }
 
 /// Parse a Slurm-style duration: `[days-]hh:mm:ss`, `hh:mm:ss`, `mm:ss`, or minutes.
@@ -712,7 +802,8 @@ pub fn resolve_program(name: &str, base: &Path) -> Option<PathBuf> {
     if let Some(path) = std::env::var_os("PATH") {
         for dir in std::env::split_paths(&path) {
             let q = dir.join(name);
-            if q.is_file() {
+            // As the shell does: a file on PATH that cannot be executed is passed over.
+            if is_executable(&q) {
                 return Some(std::path::absolute(&q).unwrap_or(q));
             }
         }
@@ -824,6 +915,11 @@ impl Validator<'_> {
         let mut programs = BTreeMap::new();
         for (k, p) in &raw.programs.0 {
             match resolve_program(&p.path.value, &base) {
+                Some(path) if !is_executable(&path) => self.push(
+                    loc(&p.path),
+                    format!("program `{}` ({}) is not executable", p.path.value, path.display()),
+                    format!("make it executable (chmod +x {}) or name another program", path.display()),
+                ),
                 Some(path) => {
                     programs.insert(
                         k.value.clone(),
@@ -930,6 +1026,7 @@ impl Validator<'_> {
 
         // Stages.
         let stage_names: BTreeSet<&str> = raw.cycle.keys().collect();
+        let declared: BTreeSet<String> = raw.programs.keys().map(str::to_string).collect();
         let defaults_res = raw.defaults.resources.clone().unwrap_or_default();
         let stop_metrics: Vec<(String, String)> = raw
             .stop
@@ -1041,9 +1138,44 @@ impl Validator<'_> {
                 None => None,
             };
             let kind = match (&st.run, &st.builtin) {
-                (Some(run), None) => {
-                    self.command(&sname, st, run, &param_names, &mut programs, &base, &inputs)
-                }
+                (Some(run), None) => match (&run.value, st.shell) {
+                    (RunSpec::List(list), false) => self.command(
+                        &sname,
+                        st,
+                        list,
+                        &param_names,
+                        &mut programs,
+                        &declared,
+                        &base,
+                        &inputs,
+                    ),
+                    (RunSpec::Script(script), true) => self.shell_script(
+                        &sname,
+                        st,
+                        script,
+                        loc(run),
+                        &param_names,
+                        &programs,
+                        &declared,
+                        &inputs,
+                    ),
+                    (RunSpec::List(_), true) => {
+                        self.push(
+                            loc(run),
+                            format!("stage `{sname}`: `shell: true` takes one script string, not a list"),
+                            "write run: \"{{program:NAME}} --x {{param:x}} | tee log\" (every substituted value is single-quoted), or drop `shell: true` to run an argument list without a shell",
+                        );
+                        None
+                    }
+                    (RunSpec::Script(_), false) => {
+                        self.push(
+                            loc(run),
+                            format!("stage `{sname}`: `run` is one string, which only a shell stage takes"),
+                            "add `shell: true` to run it with /bin/sh -c, or write an argument list: run: [program, --x, \"{{param:x}}\"]",
+                        );
+                        None
+                    }
+                },
                 (None, Some(b)) => match b.value.as_str() {
                     "mix" => self.mix(&sname, st, at, &inputs),
                     "filter" => self.filter(&sname, st, at, &inputs),
@@ -1191,6 +1323,25 @@ impl Validator<'_> {
             });
         }
 
+        let mut warnings = Vec::new();
+        if raw.stop.when.is_empty() {
+            // `stop:` carries no location of its own: its line in the text.
+            let at = text
+                .lines()
+                .position(|l| l.starts_with("stop:"))
+                .map(|i| (i as u64 + 1, 1))
+                .unwrap_or((0, 0));
+            warnings.push(Diagnostic {
+                line: at.0,
+                column: at.1,
+                message: "no stopping rule: every point runs max-iterations iterations".into(),
+                hint: format!(
+                    "add rules under `stop.when` (e.g. - {{ metric: STAGE.METRIC, change-below: 1.0e-6, for: 2 }}) if the loop should stop when it converges; as it is, every point ends `capped` after {} iteration(s)",
+                    raw.stop.max_iterations
+                ),
+            });
+        }
+
         // Graph: order and same-iteration cycles.
         let ordered = match crate::graph::order(&stages) {
             Ok(o) => o,
@@ -1290,6 +1441,7 @@ impl Validator<'_> {
             final_window: raw.stop.final_window,
             eos,
             schedules,
+            warnings,
         })
     }
 
@@ -1365,6 +1517,7 @@ impl Validator<'_> {
         run: &[Spanned<String>],
         params: &BTreeSet<String>,
         programs: &mut BTreeMap<String, ResolvedProgram>,
+        declared: &BTreeSet<String>,
         base: &Path,
         inputs: &[(String, Source)],
     ) -> Option<StageKind> {
@@ -1399,8 +1552,18 @@ impl Validator<'_> {
                 "the program (first element of `run`) cannot be a placeholder",
                 "name a program from `programs:` or a path",
             );
+        } else if declared.contains(&program) {
+            // Declared under `programs:`: resolved there (or reported there, once).
         } else if !programs.contains_key(&program) {
             match resolve_program(&program, base) {
+                Some(path) if !is_executable(&path) => self.push(
+                    loc(first),
+                    format!("program `{program}` ({}) is not executable", path.display()),
+                    format!(
+                        "make it executable (chmod +x {}) or name another program",
+                        path.display()
+                    ),
+                ),
                 Some(path) => {
                     programs.insert(
                         program.clone(),
@@ -1417,57 +1580,177 @@ impl Validator<'_> {
                 ),
             }
         }
+        let ok = self.check_placeholders(
+            sname,
+            st,
+            &template,
+            &|arg| loc(&run[arg]),
+            params,
+            None,
+            inputs,
+        );
+        ok.then_some(StageKind::Command { template, program })
+    }
+
+    /// A shell stage: `run` is one script string for `/bin/sh -c`.
+    #[allow(clippy::too_many_arguments)]
+    fn shell_script(
+        &mut self,
+        sname: &str,
+        st: &StageSpec,
+        script: &str,
+        at: (u64, u64),
+        params: &BTreeSet<String>,
+        programs: &BTreeMap<String, ResolvedProgram>,
+        declared: &BTreeSet<String>,
+        inputs: &[(String, Source)],
+    ) -> Option<StageKind> {
+        if script.trim().is_empty() {
+            self.push(
+                at,
+                format!("stage `{sname}`: the script is empty"),
+                "write run: \"{{program:NAME}} --x {{param:x}}\"",
+            );
+            return None;
+        }
+        if st.settings.is_some() {
+            self.push(
+                at,
+                format!("stage `{sname}`: `settings` is for built-in stages"),
+                "remove `settings`",
+            );
+        }
+        let template = match Template::parse(&[script.to_string()]) {
+            Ok(t) => t,
+            Err(e) => {
+                self.push(
+                    at,
+                    format!("stage `{sname}`: character {}: {}", e.column, e.message),
+                    e.hint,
+                );
+                return None;
+            }
+        };
+        let mut ok = self.check_placeholders(
+            sname,
+            st,
+            &template,
+            &|_| at,
+            params,
+            Some(declared),
+            inputs,
+        );
+        for p in template.placeholders_in_shell_quotes() {
+            ok = false;
+            let ns = p.namespace.map(|n| format!("{n}:")).unwrap_or_default();
+            self.push(
+                at,
+                format!(
+                    "stage `{sname}`: placeholder `{{{{{ns}{}}}}}` (character {}) is inside quotes in the script; rondo single-quotes every value itself",
+                    p.name, p.column
+                ),
+                "write it bare: --x={{param:x}}, not \"--x={{param:x}}\"",
+            );
+        }
+        let used: BTreeSet<String> = template
+            .placeholders()
+            .filter(|(ns, _, _)| *ns == Some("program"))
+            .map(|(_, n, _)| n.to_string())
+            .collect();
+        // A declared program that could not be resolved was reported at its entry.
+        if used.iter().any(|n| !programs.contains_key(n)) {
+            ok = false;
+        }
+        ok.then(|| StageKind::Shell {
+            template,
+            programs: used.into_iter().collect(),
+        })
+    }
+
+    /// Report undefined placeholders of a stage's template; `shell_programs` is `Some(the
+    /// declared programs)` for a shell script, which may name them as `{{program:NAME}}`.
+    #[allow(clippy::too_many_arguments)]
+    fn check_placeholders(
+        &mut self,
+        sname: &str,
+        st: &StageSpec,
+        template: &Template,
+        at_of: &dyn Fn(usize) -> (u64, u64),
+        params: &BTreeSet<String>,
+        shell_programs: Option<&BTreeSet<String>>,
+        inputs: &[(String, Source)],
+    ) -> bool {
         let mut ok = true;
         for p in template.placeholder_refs() {
-            let at = loc(&run[p.arg]);
-            let at = (at.0, at.1);
+            let at = at_of(p.arg);
             let known = match p.namespace {
                 Some("param") => params.contains(p.name),
                 Some("input") => inputs.iter().any(|(k, _)| k == p.name),
                 Some("output") => st.outputs.get(p.name).is_some(),
                 Some("point") => p.name == "id" || p.name == "index",
+                Some("program") => shell_programs.is_some_and(|d| d.contains(p.name)),
                 None => BARE_NAMES.contains(&p.name),
                 Some(_) => false,
             };
-            if !known {
-                ok = false;
-                let ns = p.namespace.map(|n| format!("{n}:")).unwrap_or_default();
-                let hint = match p.namespace {
-                    Some("param") => format!(
-                        "parameters and sweep axes: {}",
-                        params.iter().cloned().collect::<Vec<_>>().join(", ")
-                    ),
-                    Some("input") => format!(
-                        "inputs of `{sname}`: {}",
-                        inputs
-                            .iter()
-                            .map(|(k, _)| k.as_str())
-                            .collect::<Vec<_>>()
-                            .join(", ")
-                    ),
-                    Some("output") => format!(
-                        "outputs of `{sname}`: {}",
-                        st.outputs.keys().collect::<Vec<_>>().join(", ")
-                    ),
-                    Some("point") => "use {{point:id}} or {{point:index}}".into(),
-                    None => format!("names without namespace: {}", BARE_NAMES.join(", ")),
-                    Some(_) => "namespaces: param, input, output, point".into(),
-                };
-                self.push(
-                    at,
-                    format!(
-                        "stage `{sname}`: undefined placeholder `{{{{{ns}{}}}}}`",
-                        p.name
-                    ),
-                    hint,
-                );
+            if known {
+                continue;
             }
+            ok = false;
+            if p.namespace == Some("program") {
+                match shell_programs {
+                    Some(d) => self.push(
+                        at,
+                        format!("stage `{sname}`: no program `{}` under `programs:`", p.name),
+                        format!(
+                            "declare it under `programs:`; declared: {}",
+                            d.iter().cloned().collect::<Vec<_>>().join(", ")
+                        ),
+                    ),
+                    None => self.push(
+                        at,
+                        format!(
+                            "stage `{sname}`: `{{{{program:{}}}}}` is for shell scripts",
+                            p.name
+                        ),
+                        "in an argument list the program is the first element of `run`",
+                    ),
+                }
+                continue;
+            }
+            let ns = p.namespace.map(|n| format!("{n}:")).unwrap_or_default();
+            let hint = match p.namespace {
+                Some("param") => format!(
+                    "parameters and sweep axes: {}",
+                    params.iter().cloned().collect::<Vec<_>>().join(", ")
+                ),
+                Some("input") => format!(
+                    "inputs of `{sname}`: {}",
+                    inputs
+                        .iter()
+                        .map(|(k, _)| k.as_str())
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                ),
+                Some("output") => format!(
+                    "outputs of `{sname}`: {}",
+                    st.outputs.keys().collect::<Vec<_>>().join(", ")
+                ),
+                Some("point") => "use {{point:id}} or {{point:index}}".into(),
+                None => format!("names without namespace: {}", BARE_NAMES.join(", ")),
+                Some(_) => {
+                    "namespaces: param, input, output, point (and program in shell scripts)".into()
+                }
+            };
+            self.push(
+                at,
+                format!(
+                    "stage `{sname}`: undefined placeholder `{{{{{ns}{}}}}}`",
+                    p.name
+                ),
+                hint,
+            );
         }
-        ok.then_some(StageKind::Command {
-            template,
-            program,
-            shell: st.shell,
-        })
+        ok
     }
 
     fn mix(

@@ -391,8 +391,18 @@ where
     Ok(())
 }
 
-/// Open an existing workspace's database (no migration of a missing file: a clear error).
-pub async fn open_existing(ws: &Path) -> Result<SqlitePool> {
+/// Whether this process may write `path` (`access(2)` with `W_OK`: false on a read-only
+/// mount even for root, and for a folder of another user without write permission).
+pub fn writable(path: &Path) -> bool {
+    use std::os::unix::ffi::OsStrExt;
+    let Ok(c) = std::ffi::CString::new(path.as_os_str().as_bytes()) else {
+        return false;
+    };
+    // SAFETY: a valid NUL-terminated path; access only reads it.
+    unsafe { libc::access(c.as_ptr(), libc::W_OK) == 0 }
+}
+
+fn check_db_file(ws: &Path) -> Result<std::path::PathBuf> {
     let db = ws.join(DB_FILE);
     if !db.is_file() {
         bail!(
@@ -400,9 +410,12 @@ pub async fn open_existing(ws: &Path) -> Result<SqlitePool> {
             ws.display()
         );
     }
-    let pool = open(&db).await?;
+    Ok(db)
+}
+
+async fn check_campaign(pool: &SqlitePool, db: &Path) -> Result<()> {
     let ok: Option<i64> = sqlx::query_scalar("SELECT count(*) FROM campaign")
-        .fetch_optional(&pool)
+        .fetch_optional(pool)
         .await
         .with_context(|| format!("{}: the workspace database is unreadable", db.display()))?;
     if ok.unwrap_or(0) != 1 {
@@ -411,6 +424,94 @@ pub async fn open_existing(ws: &Path) -> Result<SqlitePool> {
             db.display()
         );
     }
+    Ok(())
+}
+
+/// Open an existing workspace's database for reading only, as every command that only
+/// reads does (`status`, `trace`, `diff`, `export`): without the workspace lock, and without
+/// writing anything, so an archived workspace, another user's, or one on a read-only mount
+/// can be read.
+///
+/// SQLite reads a database in WAL mode through its `-shm` index, which a reader creates if
+/// it is missing; since SQLite 3.22 a read-only reader can also use an existing `-shm` it may
+/// not write (it then keeps the index in its own memory). So the file is opened `mode=ro`
+/// when the folder is writable or both `-wal` and `-shm` exist. When the folder is not
+/// writable and there is no `-wal` file (a workspace whose last run ended cleanly, which
+/// folds the log into the database and removes both files), the database is opened
+/// `immutable=1`: nothing can be in flight, and SQLite then needs no `-shm` at all. The one
+/// case left, a `-wal` without `-shm` in a folder that cannot be written, is refused with
+/// advice, because reading it as immutable would silently ignore the log's transactions.
+pub async fn open_existing(ws: &Path) -> Result<SqlitePool> {
+    let db = check_db_file(ws)?;
+    let wal = ws.join(format!("{DB_FILE}-wal"));
+    let shm = ws.join(format!("{DB_FILE}-shm"));
+    let folder_writable = writable(ws);
+    let immutable = if folder_writable || (wal.exists() && shm.exists()) {
+        false
+    } else if wal.metadata().map(|m| m.len()).unwrap_or(0) == 0 {
+        true
+    } else {
+        bail!(
+            "{}: the workspace cannot be written here and its database has a write-ahead log ({DB_FILE}-wal) without its index ({DB_FILE}-shm), which SQLite cannot read without writing; copy the workspace to a writable place (cp -a) and read the copy",
+            ws.display()
+        );
+    };
+    let opts = SqliteConnectOptions::new()
+        .filename(&db)
+        .read_only(true)
+        .immutable(immutable)
+        .foreign_keys(true)
+        .busy_timeout(Duration::from_secs(30));
+    let pool = SqlitePoolOptions::new()
+        .max_connections(1)
+        .connect_with(opts)
+        .await
+        .with_context(|| {
+            format!(
+                "{}: cannot open the workspace database for reading",
+                db.display()
+            )
+        })?;
+    // A workspace of an older rondo needs its migrations, which write: done here when the
+    // workspace may be written (as every command did before), refused with advice otherwise.
+    let latest = migrator().iter().map(|m| m.version).max().unwrap_or(0);
+    let applied: Option<i64> =
+        sqlx::query_scalar("SELECT max(version) FROM _sqlx_migrations WHERE success")
+            .fetch_optional(&pool)
+            .await
+            .ok()
+            .flatten();
+    if applied.unwrap_or(0) < latest {
+        pool.close().await;
+        if folder_writable && writable(&db) {
+            let pool = open(&db).await?;
+            check_campaign(&pool, &db).await?;
+            return Ok(pool);
+        }
+        bail!(
+            "{}: this workspace was recorded by an older rondo (schema {} of {latest}) and must be upgraded once, which needs write access: run `rondo status` on it as a user who may write it, or copy it (cp -a) and read the copy",
+            ws.display(),
+            applied.unwrap_or(0)
+        );
+    }
+    check_campaign(&pool, &db).await?;
+    Ok(pool)
+}
+
+/// Open an existing workspace's database for writing (migrating it if needed), for the
+/// commands that record something without running the campaign (`cancel` of a workspace
+/// no orchestrator runs, `report`). `what` says what is recorded, for the refusal when the
+/// workspace cannot be written.
+pub async fn open_existing_rw(ws: &Path, what: &str) -> Result<SqlitePool> {
+    let db = check_db_file(ws)?;
+    if !(writable(ws) && writable(&db)) {
+        bail!(
+            "{}: the workspace is read-only here (another user's, or a read-only mount); {what}, which needs write access: run it as the workspace's owner, or copy the workspace (cp -a WORKSPACE COPY) and use the copy",
+            ws.display()
+        );
+    }
+    let pool = open(&db).await?;
+    check_campaign(&pool, &db).await?;
     Ok(pool)
 }
 

@@ -280,11 +280,11 @@ async fn diff_across_campaigns_sees_parameters_programs_and_stop_rules() -> Resu
         .find(|p| p.stage == "band")
         .expect("band program differs");
     assert_eq!(
-        bandp.a[0].blake3.as_deref(),
+        bandp.a.blake3.as_deref(),
         Some(a.band_program_blake3.as_str())
     );
     assert_eq!(
-        bandp.b[0].blake3.as_deref(),
+        bandp.b.blake3.as_deref(),
         Some(b.band_program_blake3.as_str())
     );
     assert!(
