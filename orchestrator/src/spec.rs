@@ -1042,7 +1042,7 @@ impl Validator<'_> {
             };
             let kind = match (&st.run, &st.builtin) {
                 (Some(run), None) => {
-                    self.command(&sname, st, run, &param_names, &mut programs, &base, &inputs)
+                    self.command(&sname, at, st, run, &param_names, &mut programs, &base, &inputs)
                 }
                 (None, Some(b)) => match b.value.as_str() {
                     "mix" => self.mix(&sname, st, at, &inputs),
@@ -1361,6 +1361,7 @@ impl Validator<'_> {
     fn command(
         &mut self,
         sname: &str,
+        at: (u64, u64),
         st: &StageSpec,
         run: &[Spanned<String>],
         params: &BTreeSet<String>,
@@ -1369,8 +1370,9 @@ impl Validator<'_> {
         inputs: &[(String, Source)],
     ) -> Option<StageKind> {
         let Some(first) = run.first() else {
+            // an empty list carries no location: name the stage
             self.push(
-                (0, 0),
+                at,
                 format!("stage `{sname}`: `run` is empty"),
                 "write run: [program, args...]",
             );
