@@ -345,7 +345,8 @@ pub struct StopSpec {
     #[serde(default)]
     pub combine: Combine,
     /// Iteration cap: a point that reaches it without converging is `capped`.
-    pub max_iterations: u32,
+    #[schemars(with = "u32")]
+    pub max_iterations: Spanned<u32>,
     /// After the rules are met, run this many more iterations and report the metrics
     /// averaged over them, with binning error bars (0: stop at once).
     #[serde(default)]
@@ -1091,9 +1092,9 @@ impl Validator<'_> {
 
         // Stop rules.
         let mut rules = Vec::new();
-        if raw.stop.max_iterations == 0 {
+        if raw.stop.max_iterations.value == 0 {
             self.push(
-                (0, 0),
+                loc(&raw.stop.max_iterations),
                 "stop.max-iterations must be at least 1",
                 "set max-iterations: N",
             );
@@ -1285,7 +1286,7 @@ impl Validator<'_> {
             points,
             rules,
             combine: raw.stop.combine,
-            max_iterations: raw.stop.max_iterations,
+            max_iterations: raw.stop.max_iterations.value,
             seed: raw.seed.unwrap_or(0),
             final_window: raw.stop.final_window,
             eos,
