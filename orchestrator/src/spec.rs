@@ -416,7 +416,8 @@ pub struct CampaignFile {
     pub parameters: OrderedMap<Scalar>,
     /// Sweep; absent: one point.
     #[serde(default)]
-    pub sweep: Option<Sweep>,
+    #[schemars(with = "Option<Sweep>")]
+    pub sweep: Option<Spanned<Sweep>>,
     /// Initial files (relative to the campaign file).
     #[serde(default)]
     pub start: OrderedMap<String>,
@@ -1651,11 +1652,12 @@ impl Validator<'_> {
 
     fn points(&mut self, raw: &CampaignFile) -> Vec<PointSpec> {
         let mut combos: Vec<Vec<(String, Scalar)>> = vec![Vec::new()];
-        if let Some(sw) = &raw.sweep {
+        if let Some(spanned) = &raw.sweep {
+            let sw = &spanned.value;
             match (&sw.product, &sw.zip) {
                 (Some(_), Some(_)) | (None, None) => {
                     self.push(
-                        loc(&raw.campaign),
+                        loc(spanned),
                         "the sweep needs exactly one of `product` or `zip`",
                         "write sweep: { product: { axis: [values] } }",
                     );
