@@ -1043,9 +1043,16 @@ impl Validator<'_> {
                 None => None,
             };
             let kind = match (&st.run, &st.builtin) {
-                (Some(run), None) => {
-                    self.command(&sname, at, st, run, &param_names, &mut programs, &base, &inputs)
-                }
+                (Some(run), None) => self.command(
+                    &sname,
+                    at,
+                    st,
+                    run,
+                    &param_names,
+                    &mut programs,
+                    &base,
+                    &inputs,
+                ),
                 (None, Some(b)) => match b.value.as_str() {
                     "mix" => self.mix(&sname, st, at, &inputs),
                     "filter" => self.filter(&sname, st, at, &inputs),
