@@ -466,7 +466,8 @@ fn a_child_whose_row_a_crash_never_wrote_is_ended_before_the_rerun_starts() {
     )
     .unwrap_or_else(|e| panic!("{e}"));
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
-    assert!(matches!(o.status.code(), Some(0 | 3)), "{}", shown(&o));
+    // no stopping rule: the one iteration ends at the cap (exit 3, incomplete)
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
     let ws = d.path().join("c.rondo");
     let ws_id = workspace_id(&ws);
     let mut stray = Command::new("/bin/sleep")
@@ -477,7 +478,7 @@ fn a_child_whose_row_a_crash_never_wrote_is_ended_before_the_rerun_starts() {
         .spawn()
         .unwrap_or_else(|e| panic!("spawn: {e}"));
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--grace", "1"]);
-    assert!(matches!(o.status.code(), Some(0 | 3)), "{}", shown(&o));
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
     let t0 = Instant::now();
     let status = loop {
         if let Some(s) = stray.try_wait().unwrap_or_else(|e| panic!("wait: {e}")) {
@@ -1809,4 +1810,77 @@ fn run_on_pbs_is_selectable_and_its_help_says_it_was_never_run_on_a_real_server(
     assert_eq!(handles, ["4242.pbs01"]);
     let s = status_json(d.path(), &ws);
     assert_eq!(s["points"][0]["state"], "converged");
+}
+
+/// `combine: any`: a point stops as soon as one rule holds while the other does not (its
+/// metric climbs by 1 every iteration); the same campaign under the default `all` runs on
+/// to the cap. The recorded evaluation of the last iteration shows which rule held.
+#[test]
+fn combine_any_stops_a_point_when_one_rule_holds_and_all_does_not() {
+    let campaign = |combine: &str| {
+        format!(
+            r#"campaign: either
+cycle:
+  s:
+    run: [/bin/sh, -c, 'printf "{{\"flat\": 1.0, \"climb\": %s}}" "$RONDO_ITERATION" > metrics.json']
+    metrics: [flat, climb]
+stop:
+  when:
+    - {{ metric: s.flat, change-below: 1.0e-6 }}
+    - {{ metric: s.climb, change-below: 1.0e-6 }}
+{combine}  max-iterations: 5
+"#
+        )
+    };
+    let point = |dir: &Path| {
+        let s = status_json(dir, &dir.join("c.rondo"));
+        let points = s["points"].as_array().cloned().unwrap_or_default();
+        assert_eq!(points.len(), 1, "{s}");
+        points[0].clone()
+    };
+
+    // any: flat's change is 0 from iteration 2 on, so the point converges there
+    let d = tmp();
+    std::fs::write(d.path().join("c.yaml"), campaign("  combine: any\n"))
+        .unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let p = point(d.path());
+    assert_eq!(p["state"], "converged", "{p}");
+    assert_eq!(p["iteration"], 2, "{p}");
+    assert_eq!(p["metrics"]["s.climb"], 2.0, "{p}");
+    let stop = strings(
+        &d.path().join("c.rondo"),
+        "SELECT stop_json FROM iterations WHERE point = 'p001' AND iteration = 2",
+    );
+    assert_eq!(stop.len(), 1, "{stop:?}");
+    let v: serde_json::Value =
+        serde_json::from_str(&stop[0]).unwrap_or_else(|e| panic!("stop_json: {e}"));
+    let held: Vec<(String, bool)> = v["rules"]
+        .as_array()
+        .cloned()
+        .unwrap_or_default()
+        .iter()
+        .map(|r| {
+            (
+                r["metric"].as_str().unwrap_or_default().to_string(),
+                r["satisfied"] == true,
+            )
+        })
+        .collect();
+    assert_eq!(
+        held,
+        vec![("s.flat".to_string(), true), ("s.climb".to_string(), false)],
+        "{v}"
+    );
+    assert_eq!(v["rules_met"], true, "{v}");
+
+    // all (the default): climb never settles, so the point runs to the cap
+    let d = tmp();
+    std::fs::write(d.path().join("c.yaml"), campaign("")).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    let p = point(d.path());
+    assert_eq!(p["state"], "capped", "{p}");
+    assert_eq!(p["iteration"], 5, "{p}");
 }

@@ -383,13 +383,16 @@ async fn reattach_ends_an_orphan_of_a_dead_orchestrator() {
     let ws = workspace("reattach");
     let (handle, pid_file) = launch_and_die(&ws, 11, dir.path());
     let pids = pids_in(&pid_file).await;
+    assert_eq!(pids.len(), 3, "the shell and its two sleeps: {pids:?}");
     assert!(pids.iter().all(|p| alive(*p)));
     let mut orphans: Vec<i64> = find_orphans(&ws).into_iter().map(|(a, _)| a).collect();
     orphans.dedup();
     assert_eq!(orphans, vec![11]);
 
     let (ex, _rx) = executor(1, &ws);
-    assert!(ex.find_orphans().iter().all(|(a, _)| *a == 11));
+    let seen = ex.find_orphans();
+    assert!(!seen.is_empty(), "the executor sees the orphans");
+    assert!(seen.iter().all(|(a, _)| *a == 11), "{seen:?}");
     let state = ex.reattach(11, &handle, dir.path()).await.unwrap();
     assert_eq!(
         state,
@@ -464,6 +467,7 @@ async fn find_and_kill_orphans_left_between_spawn_and_record() {
     let (_h2, f2) = launch_and_die(&ws, 22, &b);
     let mut pids = pids_in(&f1).await;
     pids.extend(pids_in(&f2).await);
+    assert_eq!(pids.len(), 6, "two shells and their sleeps: {pids:?}");
 
     let orphans = find_orphans(&ws);
     let mut attempts: Vec<i64> = orphans.iter().map(|(a, _)| *a).collect();
@@ -486,6 +490,7 @@ async fn cancel_recorded_ends_a_recorded_group() {
     let ws = workspace("cancel-recorded");
     let (handle, pid_file) = launch_and_die(&ws, 31, dir.path());
     let pids = pids_in(&pid_file).await;
+    assert_eq!(pids.len(), 3, "the shell and its two sleeps: {pids:?}");
     let (ex, _rx) = executor(1, &ws);
     ex.cancel_recorded(&handle, "rondo cancel").await.unwrap();
     for pid in pids {

@@ -1,7 +1,7 @@
 //! Tests of the Slurm executor against the real one-node Slurm started by
-//! `scripts/dev-slurm start`. They skip loudly when `sbatch` is not on PATH (or, for the tests
-//! that set the node down or restart slurmctld, when not run as root), and fail instead when
-//! `RONDO_REQUIRE_SLURM=1` (as in `scripts/test`).
+//! `scripts/dev-slurm start`. They skip loudly (tests/common/skip.rs) when `sbatch` is not on
+//! PATH (or, for the tests that set the node down or restart slurmctld, when not run as root),
+//! and fail instead when `RONDO_REQUIRE_SLURM=1` (as in `scripts/test`) or `CI=true`.
 //!
 //! Tests that disturb the whole scheduler (node down, controller restart) take the lock below
 //! exclusively; the others share it, so they never see each other's disturbances. The long
@@ -27,9 +27,9 @@ use tokio::sync::RwLock;
 /// Shared by ordinary tests, held exclusively by those that disturb the scheduler.
 static SCHEDULER: RwLock<()> = RwLock::const_new(());
 
-fn required() -> bool {
-    std::env::var("RONDO_REQUIRE_SLURM").as_deref() == Ok("1")
-}
+/// Loud skips, shared with the other test crates.
+#[path = "../../tests/common/skip.rs"]
+mod skip;
 
 /// Straight to the process's stderr: libtest hides `eprintln!` output of passing tests.
 fn loud(message: &str) {
@@ -42,10 +42,11 @@ fn slurm_available() -> bool {
         .map(|p| std::env::split_paths(&p).any(|d| d.join("sbatch").is_file()))
         .unwrap_or(false);
     if !found {
-        if required() {
-            panic!("RONDO_REQUIRE_SLURM=1 but sbatch is not on PATH; run scripts/dev-slurm start");
-        }
-        loud("!!! SKIPPING Slurm test: sbatch not on PATH (run `scripts/dev-slurm start`) !!!");
+        skip::skip_or_fail(
+            "sbatch is not on PATH",
+            "start the one-node Slurm with `bash scripts/dev-slurm start` (as root)",
+            &["RONDO_REQUIRE_SLURM"],
+        );
     }
     found
 }
@@ -57,10 +58,11 @@ fn slurm_admin_available() -> bool {
     }
     let uid = cmd_out("id", &["-u"]);
     if uid.trim() != "0" {
-        if required() {
-            panic!("RONDO_REQUIRE_SLURM=1 but this test must run as root (it sets the node down or restarts slurmctld)");
-        }
-        loud("!!! SKIPPING Slurm admin test: not root (it sets the node down or restarts slurmctld) !!!");
+        skip::skip_or_fail(
+            "not root, and this test sets the node down or restarts slurmctld",
+            "run the Slurm tests as root",
+            &["RONDO_REQUIRE_SLURM"],
+        );
         return false;
     }
     true
@@ -195,10 +197,10 @@ impl Drop for ResumeNode {
             }
             std::thread::sleep(Duration::from_millis(100));
         }
-        eprintln!(
+        loud(&format!(
             "!!! node {} did not return to idle after resume !!!",
             self.0
-        );
+        ));
     }
 }
 
@@ -209,7 +211,7 @@ impl Drop for RestartController {
     fn drop(&mut self) {
         let st = Command::new("bash").arg(dev_slurm()).arg("start").status();
         if !matches!(st, Ok(s) if s.success()) {
-            eprintln!("!!! scripts/dev-slurm start failed after the controller test !!!");
+            loud("!!! scripts/dev-slurm start failed after the controller test !!!");
         }
     }
 }

@@ -400,7 +400,8 @@ pub struct StopSpec {
     #[serde(default)]
     pub combine: Combine,
     /// Iteration cap: a point that reaches it without converging is `capped`.
-    pub max_iterations: u32,
+    #[schemars(with = "u32")]
+    pub max_iterations: Spanned<u32>,
     /// After the rules are met, run this many more iterations and report the metrics
     /// averaged over them, with binning error bars (0: stop at once).
     #[serde(default)]
@@ -470,7 +471,8 @@ pub struct CampaignFile {
     pub parameters: OrderedMap<Scalar>,
     /// Sweep; absent: one point.
     #[serde(default)]
-    pub sweep: Option<Sweep>,
+    #[schemars(with = "Option<Sweep>")]
+    pub sweep: Option<Spanned<Sweep>>,
     /// Initial files (relative to the campaign file).
     #[serde(default)]
     pub start: OrderedMap<String>,
@@ -1141,6 +1143,7 @@ impl Validator<'_> {
                 (Some(run), None) => match (&run.value, st.shell) {
                     (RunSpec::List(list), false) => self.command(
                         &sname,
+                        at,
                         st,
                         list,
                         &param_names,
@@ -1223,9 +1226,9 @@ impl Validator<'_> {
 
         // Stop rules.
         let mut rules = Vec::new();
-        if raw.stop.max_iterations == 0 {
+        if raw.stop.max_iterations.value == 0 {
             self.push(
-                (0, 0),
+                loc(&raw.stop.max_iterations),
                 "stop.max-iterations must be at least 1",
                 "set max-iterations: N",
             );
@@ -1337,7 +1340,7 @@ impl Validator<'_> {
                 message: "no stopping rule: every point runs max-iterations iterations".into(),
                 hint: format!(
                     "add rules under `stop.when` (e.g. - {{ metric: STAGE.METRIC, change-below: 1.0e-6, for: 2 }}) if the loop should stop when it converges; as it is, every point ends `capped` after {} iteration(s)",
-                    raw.stop.max_iterations
+                    raw.stop.max_iterations.value
                 ),
             });
         }
@@ -1436,7 +1439,7 @@ impl Validator<'_> {
             points,
             rules,
             combine: raw.stop.combine,
-            max_iterations: raw.stop.max_iterations,
+            max_iterations: raw.stop.max_iterations.value,
             seed: raw.seed.unwrap_or(0),
             final_window: raw.stop.final_window,
             eos,
@@ -1513,6 +1516,7 @@ impl Validator<'_> {
     fn command(
         &mut self,
         sname: &str,
+        at: (u64, u64),
         st: &StageSpec,
         run: &[Spanned<String>],
         params: &BTreeSet<String>,
@@ -1522,8 +1526,9 @@ impl Validator<'_> {
         inputs: &[(String, Source)],
     ) -> Option<StageKind> {
         let Some(first) = run.first() else {
+            // an empty list carries no location: name the stage
             self.push(
-                (0, 0),
+                at,
                 format!("stage `{sname}`: `run` is empty"),
                 "write run: [program, args...]",
             );
@@ -1933,11 +1938,12 @@ impl Validator<'_> {
 
     fn points(&mut self, raw: &CampaignFile) -> Vec<PointSpec> {
         let mut combos: Vec<Vec<(String, Scalar)>> = vec![Vec::new()];
-        if let Some(sw) = &raw.sweep {
+        if let Some(spanned) = &raw.sweep {
+            let sw = &spanned.value;
             match (&sw.product, &sw.zip) {
                 (Some(_), Some(_)) | (None, None) => {
                     self.push(
-                        loc(&raw.campaign),
+                        loc(spanned),
                         "the sweep needs exactly one of `product` or `zip`",
                         "write sweep: { product: { axis: [values] } }",
                     );

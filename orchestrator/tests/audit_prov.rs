@@ -1,9 +1,10 @@
 //! PROV-JSON export of a recorded workspace, checked for its structure here and validated
 //! by the general-purpose `prov` library (PyPI) through tests/prov_check.py.
 //!
-//! The Python interpreter with `prov` is taken from RONDO_PROV_PYTHON, else `python3` if it
-//! can import `prov`, else /tmp/provvenv/bin/python. Without one the validation is skipped
-//! loudly, unless RONDO_REQUIRE_PROV=1 makes that a failure.
+//! The Python interpreter with `prov` is RONDO_PROV_PYTHON (which `scripts/test` sets to the
+//! environment it installs), else `python3` if it can import `prov`. Without one the
+//! validation is skipped loudly (tests/common/skip.rs), unless RONDO_REQUIRE_PROV or CI=true
+//! makes that a failure.
 
 mod fixtures;
 
@@ -29,20 +30,14 @@ fn prov_python() -> Result<Option<String>> {
         }
         bail!("RONDO_PROV_PYTHON={p} cannot import the `prov` package");
     }
-    for p in ["python3", "/tmp/provvenv/bin/python"] {
-        if has_prov(p) {
-            return Ok(Some(p.to_string()));
-        }
+    if has_prov("python3") {
+        return Ok(Some("python3".to_string()));
     }
-    if std::env::var("RONDO_REQUIRE_PROV").as_deref() == Ok("1") {
-        bail!(
-            "RONDO_REQUIRE_PROV=1 but no Python with the `prov` package was found: \
-             python3 -m venv /tmp/provvenv && /tmp/provvenv/bin/pip install -r tests/requirements-prov.txt"
-        );
-    }
-    eprintln!(
-        "SKIPPED: no Python with the `prov` package; the PROV-JSON export was not validated by the \
-         reference library (set RONDO_REQUIRE_PROV=1 to make this a failure)"
+    fixtures::skip::skip_or_fail(
+        "no Python with the `prov` package (RONDO_PROV_PYTHON is unset and python3 cannot import it); \
+         the PROV-JSON export was not validated by the reference library",
+        "run bash scripts/test, which installs tests/requirements-prov.txt and sets RONDO_PROV_PYTHON",
+        &["RONDO_REQUIRE_PROV"],
     );
     Ok(None)
 }

@@ -15,13 +15,26 @@ fn err_text(e: anyhow::Error) -> String {
     format!("{e:#}")
 }
 
-fn python() -> Option<String> {
-    let ok = Command::new("python3")
+fn python3_works() -> bool {
+    Command::new("python3")
         .arg("-c")
         .arg("import zlib")
         .output()
         .map(|o| o.status.success())
-        .unwrap_or(false);
+        .unwrap_or(false)
+}
+
+/// python3 for the PNG decoder; a loud skip without one, and a failure when CI or a
+/// component that needs python3 (the browser and PROV checks) is required.
+fn python() -> Option<String> {
+    let ok = python3_works();
+    if !ok {
+        fixtures::skip::skip_or_fail(
+            "python3 is not available to decode the PNGs",
+            "install python3 (the standard library is enough)",
+            &["RONDO_REQUIRE_BROWSER", "RONDO_REQUIRE_PROV"],
+        );
+    }
     ok.then(|| "python3".to_string())
 }
 
@@ -135,7 +148,6 @@ async fn report_folder_is_complete_and_fits_the_equation_of_state() -> Result<()
 #[tokio::test]
 async fn pngs_decode_and_are_not_blank() -> Result<()> {
     let Some(py) = python() else {
-        eprintln!("SKIPPED: python3 is not available to decode the PNGs");
         return Ok(());
     };
     let d = tempfile::tempdir()?;
@@ -161,6 +173,8 @@ async fn index_html_shows_every_figure_and_needs_nothing_outside() -> Result<()>
     let d = tempfile::tempdir()?;
     let (_fx, sum, _) = make_report(d.path()).await?;
     let html = std::fs::read_to_string(sum.out_dir.join("index.html"))?;
+    // 10 convergence figures + eos + probabilities
+    assert_eq!(sum.figures.len(), 12, "{:?}", sum.figures);
     for f in &sum.figures {
         assert!(
             html.contains(&format!("src=\"{}\"", f.png)),
@@ -175,11 +189,13 @@ async fn index_html_shows_every_figure_and_needs_nothing_outside() -> Result<()>
         !html.contains("http://") && !html.contains("https://"),
         "external resource"
     );
-    // every referenced file exists in the folder
-    for part in html
+    // every referenced file exists in the folder (each figure's three and observables.csv)
+    let referenced: Vec<&str> = html
         .split(['"'])
         .filter(|s| s.ends_with(".png") || s.ends_with(".svg") || s.ends_with(".csv"))
-    {
+        .collect();
+    assert!(referenced.len() > 3 * sum.figures.len(), "{referenced:?}");
+    for part in referenced {
         assert!(
             sum.out_dir.join(part).is_file(),
             "{part} referenced but missing"
@@ -272,6 +288,7 @@ async fn too_few_volumes_plot_points_and_say_why() -> Result<()> {
         .execute(&fx.pool)
         .await?;
     let sum = report::generate(&fx.pool, &fx.ws, &d.path().join("r"), &mut |_| {}).await?;
+    assert_eq!(sum.eos.len(), 2, "BM3 and Vinet at 600 K: {:?}", sum.eos);
     assert!(
         sum.eos.iter().all(|r| r.temperature == Some(600.0)),
         "only 600 K has 5 volumes"
@@ -310,15 +327,17 @@ fn chromium() -> Option<PathBuf> {
 #[tokio::test]
 async fn chromium_screenshot_of_the_report_is_not_blank() -> Result<()> {
     let Some(browser) = chromium() else {
-        if std::env::var("RONDO_REQUIRE_BROWSER").as_deref() == Ok("1") {
-            bail!("RONDO_REQUIRE_BROWSER=1 but /usr/bin/chromium is missing: apt-get install -y --no-install-recommends chromium");
-        }
-        eprintln!("SKIPPED: /usr/bin/chromium is not installed; the report page was not screenshotted (set RONDO_REQUIRE_BROWSER=1 to make this a failure)");
+        fixtures::skip::skip_or_fail(
+            "/usr/bin/chromium is not installed; the report page was not screenshotted",
+            "apt-get install -y --no-install-recommends chromium",
+            &["RONDO_REQUIRE_BROWSER"],
+        );
         return Ok(());
     };
-    let Some(py) = python() else {
+    if !python3_works() {
         bail!("python3 is needed to decode the screenshot");
-    };
+    }
+    let py = "python3";
     let d = tempfile::tempdir()?;
     let (_fx, sum, _) = make_report(d.path()).await?;
     let profile = d.path().join("chromium-profile");
@@ -348,7 +367,7 @@ async fn chromium_screenshot_of_the_report_is_not_blank() -> Result<()> {
         out.status,
         String::from_utf8_lossy(&out.stderr)
     );
-    let (w, h, nonwhite, dark, colours) = png_stats(&py, &shot)?;
+    let (w, h, nonwhite, dark, colours) = png_stats(py, &shot)?;
     assert_eq!((w, h), (1200, 900));
     // the page's table, headings and the first figures: far from a white page
     assert!(

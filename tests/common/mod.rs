@@ -2,6 +2,10 @@
 //! read-only looks into a workspace's SQLite store.
 #![allow(dead_code)]
 
+pub mod skip;
+#[allow(unused_imports)]
+pub use skip::skip_or_fail;
+
 use sqlx::Row;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -196,6 +200,9 @@ pub fn crash_seed(default: u64) -> u64 {
 /// Start `rondo run CAMPAIGN --max-running 2` in `dir` `kills` times, SIGKILL it after a seeded
 /// random wait drawn from `window_ms` each time, then run it to the end (exit `final_code`
 /// required: 0 when every point converges, 3 when some are capped).
+/// Every kill must have landed on a run that was still going (a run that had ended by itself
+/// was not interrupted), and the run after the last kill must still have had work, else the
+/// kills tested nothing; the window must then be shortened.
 /// Prints the seed and the instants so a failure can be replayed.
 pub fn kill_and_finish(
     dir: &Path,
@@ -206,7 +213,9 @@ pub fn kill_and_finish(
     final_code: i32,
 ) {
     use std::process::Stdio;
+    let ws = dir.join(Path::new(campaign).with_extension("rondo"));
     let mut rng = rondo_numerics::rng::SplitMix64::new(seed);
+    // (wait in ms, had the run ended by itself, succeeded attempts recorded after the kill)
     let mut done = Vec::new();
     for _ in 0..kills {
         let wait = std::time::Duration::from_millis(
@@ -221,14 +230,50 @@ pub fn kill_and_finish(
             .spawn()
             .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
         std::thread::sleep(wait);
-        let finished = child.try_wait().ok().flatten().is_some();
+        let finished = child.try_wait().ok().flatten();
         let _ = child.kill(); // SIGKILL
         let _ = child.wait();
-        done.push((wait.as_millis(), finished));
+        done.push((wait.as_millis(), finished, succeeded_attempts(&ws)));
     }
-    eprintln!("crash test seed {seed}: kills after (ms, had already finished) {done:?}");
+    eprintln!(
+        "crash test seed {seed}: kills after (ms, ended by itself, succeeded attempts) {done:?}"
+    );
+    for (i, (ms, finished, _)) in done.iter().enumerate() {
+        assert!(
+            finished.is_none(),
+            "kill {} after {ms} ms came when the run had already ended by itself ({finished:?}): \
+             it interrupted nothing (seed {seed}, {done:?}); shorten the window",
+            i + 1
+        );
+    }
+    let before = succeeded_attempts(&ws);
     let o = run_rondo(dir, &["run", campaign, "--max-running", "2", "-q"]);
     assert_eq!(o.status.code(), Some(final_code), "{}", shown(&o));
+    let after = succeeded_attempts(&ws);
+    assert!(
+        after > before,
+        "the run after the last kill had nothing left to do ({before} succeeded attempts before \
+         it, {after} after): the kills came after the work (seed {seed}, {done:?})"
+    );
+    eprintln!(
+        "the final run recorded {} more succeeded attempts",
+        after - before
+    );
+}
+
+/// Succeeded attempts recorded in `ws` (0 while no store exists yet).
+pub fn succeeded_attempts(ws: &Path) -> i64 {
+    if !ws.join("rondo.db").is_file() {
+        return 0;
+    }
+    query(ws, |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'succeeded'")
+                .fetch_one(pool)
+                .await
+                .unwrap_or_else(|e| panic!("count succeeded attempts: {e}"))
+        })
+    })
 }
 
 /// The resumed run recorded exactly the attempts, output hashes and metric bits of the

@@ -59,6 +59,7 @@ fn kernel_on_exact_free_level_reproduces_closed_form_gl() {
     assert!((want[0] + 3.017_160_845_482_888).abs() < 1e-13);
     assert!((want[1] - 2.289_585_439_240_369).abs() < 1e-13);
     assert!((want[2] + 0.834_892_565_619_182).abs() < 1e-13);
+    assert_eq!(est.legendre().len(), want.len(), "12 coefficients each");
     for (l, (got, w)) in est.legendre().iter().zip(&want).enumerate() {
         // Midpoint rule, h = 1e-4: error O(h²) well below 1e-7.
         assert!((got - w).abs() < 1e-7, "l={l}");
@@ -129,7 +130,8 @@ fn ed_cases() -> (usize, Vec<EdCase>) {
                     .collect(),
             }
         })
-        .collect();
+        .collect::<Vec<EdCase>>();
+    assert_eq!(cases.len(), 6, "the cases of reference/output/ed_bath.json");
     (n_bins, cases)
 }
 
@@ -184,13 +186,18 @@ fn z_scores(c: &EdCase, n_bins: usize, params: &CtqmcParams, seed: u64) -> Vec<(
     }
     // G(iω_n) from the kept G_l through T_nl (below the tail crossover).
     let cross = r.metrics["tail_from_n"].0 as usize;
-    for n in 0..3.min(cross) {
+    assert!(
+        cross >= 3,
+        "{}: tail from n = {cross}, G and Σ below it unchecked",
+        c.name
+    );
+    for n in 0..3 {
         let (g, e, w) = (r.g_iw[n], r.g_iw_err[n], c.giw[n]);
         push(format!("Re G(iω_{n})"), g.re, e.re, w.re);
         push(format!("Im G(iω_{n})"), g.im, e.im, w.im);
     }
     // Σ(iω_n) against Σ_ED = iω − ε − Δ − 1/G_ED (linearised errors).
-    for (n, d) in delta.iter().enumerate().take(3.min(cross)) {
+    for (n, d) in delta.iter().enumerate().take(3) {
         let iw = Complex64::new(0.0, fermionic_frequency(c.beta, n as i64));
         let want = iw - c.eps - d - c.giw[n].inv();
         let (s, e) = (r.sigma[n], r.sigma_err[n]);
@@ -294,6 +301,11 @@ fn uncorrelated_half_filling_probabilities_and_dyson() {
     let (kept, _) = r.metrics["legendre_kept"];
     assert!(kept >= 2.0);
     let cross = r.metrics["tail_from_n"].0 as usize;
+    assert!(
+        cross >= 1 && cross < r.sigma.len(),
+        "tail from n = {cross} of {}: one side below unchecked",
+        r.sigma.len()
+    );
     for (n, d) in delta.iter().enumerate().take(cross.min(20)) {
         let iw = Complex64::new(0.0, fermionic_frequency(c.beta, n as i64));
         let exact = (iw - c.eps - d).inv();
