@@ -478,6 +478,14 @@ pub fn filter_argv(with: &FilterSettings) -> Vec<String> {
     ]
 }
 
+/// The metrics the filter built-in reports (stopping rules may name them).
+pub const FILTER_METRICS: [&str; 4] = [
+    "legendre_kept",
+    "legendre_dropped",
+    "density_per_spin",
+    "tail_c1",
+];
+
 fn metric(name: &str, value: f64) -> Metric {
     Metric {
         name: name.into(),
@@ -632,10 +640,10 @@ pub fn filter(
     }
     Ok(MixReport {
         metrics: vec![
-            metric("legendre_kept", kept as f64),
-            metric("legendre_dropped", (nl - kept) as f64),
-            metric("density_per_spin", -legendre::gl_to_gtau(&gl, beta, beta)),
-            metric("tail_c1", tail[0]),
+            metric(FILTER_METRICS[0], kept as f64),
+            metric(FILTER_METRICS[1], (nl - kept) as f64),
+            metric(FILTER_METRICS[2], -legendre::gl_to_gtau(&gl, beta, beta)),
+            metric(FILTER_METRICS[3], tail[0]),
         ],
         event: None,
     })

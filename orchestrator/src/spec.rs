@@ -1265,11 +1265,17 @@ impl Validator<'_> {
                             format!("built-in stage `{s}` reports residual_norm, residual_norm_ROLE (several inputs), history and resets, not `{m}`"),
                             format!("use `{s}.residual_norm`"),
                         );
-                    } else if !is_mix && st.builtin.is_some() && m != "residual" {
+                    } else if !is_mix
+                        && st.builtin.is_some()
+                        && !crate::builtins::FILTER_METRICS.contains(&m)
+                    {
                         self.push(
                             at,
-                            format!("built-in stage `{s}` reports only `residual`"),
-                            "use `{s}.residual`",
+                            format!(
+                                "built-in stage `{s}` reports {}, not `{m}`",
+                                crate::builtins::FILTER_METRICS.join(", ")
+                            ),
+                            format!("use e.g. `{s}.density_per_spin`"),
                         );
                     } else if st.builtin.is_none()
                         && !st.metrics.is_empty()

@@ -345,8 +345,8 @@ stop:
             at: (15, 17),
         },
         Case {
-            site: "built-in stage `{s}` reports only `residual`",
-            says: "built-in stage `f` reports only `residual`",
+            site: "built-in stage `{s}` reports {}, not `{m}`",
+            says: "built-in stage `f` reports legendre_kept, legendre_dropped, density_per_spin, tail_c1, not `kept`",
             yaml: "campaign: t
 cycle:
   solve:
@@ -1030,6 +1030,102 @@ stop: { max-iterations: 1 }
 ",
             at: (3, 3),
         },
+        // ------------------------------------------------------------ programs and shell stages
+        Case {
+            site: "program `{}` ({}) is not executable",
+            says: "is not executable",
+            yaml: "campaign: t
+programs:
+  p: { path: ./x.json }
+cycle:
+  s: { run: [p] }
+stop: { max-iterations: 1 }
+",
+            at: (3, 14),
+        },
+        Case {
+            site: "program `{program}` ({}) is not executable",
+            says: "is not executable",
+            yaml: "campaign: t
+cycle:
+  s: { run: [./x.json] }
+stop: { max-iterations: 1 }
+",
+            at: (3, 14),
+        },
+        Case {
+            site: "stage `{sname}`: `shell: true` takes one script string, not a list",
+            says: "takes one script string",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/echo, hi], shell: true }
+stop: { max-iterations: 1 }
+",
+            at: (3, 13),
+        },
+        Case {
+            site: "stage `{sname}`: `run` is one string, which only a shell stage takes",
+            says: "only a shell stage takes",
+            yaml: "campaign: t
+cycle:
+  s: { run: \"/bin/echo hi\" }
+stop: { max-iterations: 1 }
+",
+            at: (3, 13),
+        },
+        Case {
+            site: "stage `{sname}`: `{{{{program:{}}}}}` is for shell scripts",
+            says: "is for shell scripts",
+            yaml: "campaign: t
+programs:
+  p: { path: /bin/echo }
+cycle:
+  s: { run: [p, \"{{program:p}}\"] }
+stop: { max-iterations: 1 }
+",
+            at: (5, 17),
+        },
+        Case {
+            site: "stage `{sname}`: character {}: {}",
+            says: "character",
+            yaml: "campaign: t
+cycle:
+  s: { run: \"/bin/echo {{param:\", shell: true }
+stop: { max-iterations: 1 }
+",
+            at: (3, 13),
+        },
+        Case {
+            site: "stage `{sname}`: no program `{}` under `programs:`",
+            says: "no program `nope` under `programs:`",
+            yaml: "campaign: t
+cycle:
+  s: { run: \"{{program:nope}} hi\", shell: true }
+stop: { max-iterations: 1 }
+",
+            at: (3, 13),
+        },
+        Case {
+            site: "stage `{sname}`: placeholder `{{{{{ns}{}}}}}` (character {}) is inside quotes in the script; rondo single-quotes every value itself",
+            says: "is inside quotes in the script",
+            yaml: "campaign: t
+parameters: { a: 1 }
+cycle:
+  s: { run: \"/bin/echo '{{param:a}}'\", shell: true }
+stop: { max-iterations: 1 }
+",
+            at: (4, 13),
+        },
+        Case {
+            site: "stage `{sname}`: the script is empty",
+            says: "the script is empty",
+            yaml: "campaign: t
+cycle:
+  s: { run: \"  \", shell: true }
+stop: { max-iterations: 1 }
+",
+            at: (3, 13),
+        },
     ]
 }
 
@@ -1175,4 +1271,48 @@ fn the_table_covers_every_diagnostic_of_the_campaign_checker() {
         in_source.len(),
         cases().len()
     );
+}
+
+/// The metrics the filter built-in really reports are accepted by stopping rules (they were
+/// refused in favour of a `residual` the filter never reported).
+#[test]
+fn a_stopping_rule_may_name_every_filter_metric() {
+    for m in [
+        "legendre_kept",
+        "legendre_dropped",
+        "density_per_spin",
+        "tail_c1",
+    ] {
+        let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+        let yaml = format!(
+            "campaign: t
+cycle:
+  solve:
+    run: [/bin/true]
+    outputs: {{ gtau: gtau.npy }}
+  f:
+    builtin: filter
+    inputs: {{ gtau: solve.gtau }}
+    outputs: {{ giw: giw.npy }}
+    settings: {{ legendre: 40, matsubara: 512 }}
+stop:
+  when:
+    - {{ metric: f.{m}, change-below: 0.1 }}
+  max-iterations: 2
+"
+        );
+        std::fs::write(d.path().join("c.yaml"), yaml).unwrap_or_else(|e| panic!("{e}"));
+        let o = Command::new(env!("CARGO_BIN_EXE_rondo"))
+            .args(["check", "c.yaml"])
+            .current_dir(d.path())
+            .output()
+            .unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(
+            o.status.code(),
+            Some(0),
+            "{m}: {}{}",
+            String::from_utf8_lossy(&o.stdout),
+            String::from_utf8_lossy(&o.stderr)
+        );
+    }
 }
