@@ -470,8 +470,8 @@ mod tests {
         Ok(())
     }
 
-    /// The filter's recorded argv parses back to the same call (unit-level check: no cheap
-    /// campaign produces a G(τ) for the end-to-end rerun).
+    /// The filter's recorded argv parses back to the same call (the end-to-end rerun is
+    /// `the_recorded_argv_of_a_builtin_attempt_reruns_it_bit_for_bit` in tests/e2e_core.rs).
     #[test]
     fn a_filter_stage_argv_round_trips() -> Result<(), String> {
         let kind = StageKind::Filter(FilterSettings {
