@@ -1146,7 +1146,7 @@ fn extract_writes_an_artifact_found_like_a_trace_target_and_never_clobbers() {
     assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(
-        err.contains("outputs: e.metrics, e.x, mix.state, mix.x"),
+        err.contains("outputs: e.metrics, e.x, mix.metrics, mix.state, mix.x"),
         "{err}"
     );
 }
@@ -1883,4 +1883,258 @@ stop:
     let p = point(d.path());
     assert_eq!(p["state"], "capped", "{p}");
     assert_eq!(p["iteration"], 5, "{p}");
+}
+
+// ---------------------------------------------------------------------------------------
+// Built-in stages: the recorded `rondo builtin mix|filter` argv reruns each attempt.
+// ---------------------------------------------------------------------------------------
+
+/// A campaign with both built-ins and one program: tests/fixtures/halfstep.sh maps x to
+/// (x + 1)/2 and reads back the mixed x; the mix stage mixes that JSON object with a
+/// constant real array (Anderson, a weight on the array); the filter runs on start files,
+/// G(τ) = −e^{−ετ}/(1 + e^{−βε}) of a free level ε = 0.3 at β = 10 (a fact of the trade)
+/// with error bars, Δ = 0, so it writes all four of its outputs.
+fn builtins_campaign(dir: &Path) -> PathBuf {
+    use rondo_numerics::npy;
+    let w = |name: &str, text: &str| {
+        std::fs::write(dir.join(name), text).unwrap_or_else(|e| panic!("{name}: {e}"))
+    };
+    std::fs::create_dir_all(dir.join("state")).unwrap_or_else(|e| panic!("{e}"));
+    w("x0.json", "{\"x\": 0.0, \"label\": \"start\"}\n");
+    w("levels.json", "{\"level\": 0.3}\n");
+    npy::write_real(dir.join("z0.npy"), &[2, 2], &[0.25, -1.5, 3.0, 1e-3])
+        .unwrap_or_else(|e| panic!("{e}"));
+    let (beta, eps, n) = (10.0f64, 0.3f64, 101usize);
+    let mut g = Vec::with_capacity(3 * n);
+    for i in 0..n {
+        let t = beta * i as f64 / (n - 1) as f64;
+        g.extend([t, -(-eps * t).exp() / (1.0 + (-beta * eps).exp()), 1e-5]);
+    }
+    npy::write_real(dir.join("gtau.npy"), &[n, 3], &g).unwrap_or_else(|e| panic!("{e}"));
+    let zero = vec![num_complex::Complex64::new(0.0, 0.0); 32];
+    npy::write_complex(dir.join("delta.npy"), &[32], &zero).unwrap_or_else(|e| panic!("{e}"));
+    let text = format!(
+        r#"campaign: builtins-rerun
+about: test campaign (not physics)
+programs:
+  step: {{ path: {prog} }}
+parameters:
+  state: {state}
+start:
+  x: x0.json
+  z: z0.npy
+  gtau: gtau.npy
+  delta: delta.npy
+  levels: levels.json
+cycle:
+  s:
+    run: [step, ok, "{{{{param:state}}}}", "{{{{input:x}}}}", "{{{{output:x}}}}", "1.0"]
+    inputs: {{ x: {{ previous: mix.x, initially: start.x }} }}
+    outputs: {{ x: x.json }}
+    metrics: [x]
+  mix:
+    builtin: mix
+    inputs: {{ x: s.x, z: start.z }}
+    outputs: {{ x: x.json, z: z.npy }}
+    settings: {{ method: anderson, alpha: 0.4, history: 3, weights: {{ z: 2.5 }} }}
+  filter:
+    builtin: filter
+    inputs: {{ gtau: start.gtau, delta: start.delta, levels: start.levels }}
+    outputs: {{ giw: giw.npy, sigma: sigma.npy, gl: gl.npy, gtau: gtau.npy }}
+    settings: {{ legendre: 20, matsubara: 32 }}
+stop:
+  when:
+    - {{ metric: s.x, change-below: 1.0e-6, for: 2 }}
+  max-iterations: 6
+"#,
+        prog = fixture("halfstep.sh").display(),
+        state = dir.join("state").display(),
+    );
+    let f = dir.join("c.yaml");
+    std::fs::write(&f, text).unwrap_or_else(|e| panic!("{e}"));
+    f
+}
+
+/// One succeeded built-in attempt as recorded.
+#[derive(Debug)]
+struct BuiltinRecord {
+    iteration: i64,
+    stage: String,
+    argv: Vec<String>,
+    program_blake3: Option<String>,
+    inputs: std::collections::BTreeMap<String, String>,
+    outputs: std::collections::BTreeMap<String, String>,
+    metrics: std::collections::BTreeMap<String, f64>,
+}
+
+fn builtin_records(ws: &Path) -> Vec<BuiltinRecord> {
+    query(ws, |pool| {
+        Box::pin(async move {
+            let rows = sqlx::query(
+                "SELECT id, iteration, stage, argv_json, program_blake3 FROM attempts \
+                 WHERE executor = 'builtin' AND state = 'succeeded' ORDER BY id",
+            )
+            .fetch_all(pool)
+            .await
+            .unwrap_or_else(|e| panic!("{e}"));
+            let mut out = Vec::new();
+            for r in rows {
+                let id: i64 = r.get(0);
+                let pairs = |table: &'static str| async move {
+                    sqlx::query(&format!(
+                        "SELECT role, artifact FROM {table} WHERE attempt_id = ?"
+                    ))
+                    .bind(id)
+                    .fetch_all(pool)
+                    .await
+                    .unwrap_or_else(|e| panic!("{e}"))
+                    .into_iter()
+                    .map(|r| (r.get::<String, _>(0), r.get::<String, _>(1)))
+                    .collect()
+                };
+                let metrics = sqlx::query("SELECT name, value FROM metrics WHERE attempt_id = ?")
+                    .bind(id)
+                    .fetch_all(pool)
+                    .await
+                    .unwrap_or_else(|e| panic!("{e}"))
+                    .into_iter()
+                    .map(|r| (r.get::<String, _>(0), r.get::<f64, _>(1)))
+                    .collect();
+                let argv: String = r.get(3);
+                out.push(BuiltinRecord {
+                    iteration: r.get(1),
+                    stage: r.get(2),
+                    argv: serde_json::from_str(&argv).unwrap_or_else(|e| panic!("{argv}: {e}")),
+                    program_blake3: r.get(4),
+                    inputs: pairs("attempt_inputs").await,
+                    outputs: pairs("attempt_outputs").await,
+                    metrics,
+                });
+            }
+            out
+        })
+    })
+}
+
+/// For every built-in attempt (mix at each iteration, with and without a mixer history, and
+/// filter): take its input artifacts out of the store with `rondo extract`, lay them out in
+/// an empty folder where the recorded argv names them, run the recorded argv there, and
+/// find every output, the mixer state and the metrics file bit-identical to the recorded
+/// artifacts, and the printed metrics equal to the recorded values.
+#[test]
+fn the_recorded_argv_of_a_builtin_attempt_reruns_it_bit_for_bit() {
+    let d = tmp();
+    builtins_campaign(d.path());
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let records = builtin_records(&ws);
+    let exe = rondo();
+    let exe_hash = blake3::hash(&std::fs::read(&exe).unwrap_or_default())
+        .to_hex()
+        .to_string();
+    let mixes: Vec<&BuiltinRecord> = records.iter().filter(|r| r.stage == "mix").collect();
+    let filters = records.iter().filter(|r| r.stage == "filter").count();
+    assert!(mixes.len() >= 3, "{records:#?}");
+    assert_eq!(filters, mixes.len(), "{records:#?}");
+    assert!(
+        mixes.iter().any(|r| r.inputs.contains_key("state")),
+        "a mix with a history: {mixes:#?}"
+    );
+    for (k, rec) in records.iter().enumerate() {
+        let what = format!(
+            "{} at iteration {}: {:?}",
+            rec.stage, rec.iteration, rec.argv
+        );
+        // The program is rondo's executable, by absolute path, with its hash.
+        assert_eq!(rec.argv[0], exe.display().to_string(), "{what}");
+        assert_eq!(rec.argv[1..3], ["builtin", rec.stage.as_str()], "{what}");
+        assert_eq!(
+            rec.program_blake3.as_deref(),
+            Some(exe_hash.as_str()),
+            "{what}"
+        );
+        let dir = d.path().join(format!("rerun{k}"));
+        std::fs::create_dir_all(dir.join("inputs")).unwrap_or_else(|e| panic!("{e}"));
+        // Which recorded artifact each file option names.
+        let mut wants_in: Vec<(String, String)> = Vec::new();
+        let mut wants_out: Vec<(String, String)> = Vec::new();
+        for a in &rec.argv[3..] {
+            let Some((flag, value)) = a.split_once('=') else {
+                continue;
+            };
+            let role_file = || {
+                value
+                    .split_once('=')
+                    .map(|(r, f)| (r.to_string(), f.to_string()))
+                    .unwrap_or_else(|| panic!("{a} is not ROLE=PATH: {what}"))
+            };
+            match flag {
+                "--input" => wants_in.push(role_file()),
+                "--state" => wants_in.push(("state".into(), value.into())),
+                "--output" => wants_out.push(role_file()),
+                "--state-out" => wants_out.push(("state".into(), value.into())),
+                "--metrics" => wants_out.push(("metrics".into(), value.into())),
+                _ => {}
+            }
+        }
+        // The argv names every recorded input and output, nothing else.
+        let named = |v: &[(String, String)]| v.iter().map(|p| p.0.clone()).collect::<Vec<_>>();
+        let mut roles_in = named(&wants_in);
+        roles_in.sort();
+        assert_eq!(
+            roles_in,
+            rec.inputs.keys().cloned().collect::<Vec<_>>(),
+            "{what}"
+        );
+        let mut roles_out = named(&wants_out);
+        roles_out.sort();
+        assert_eq!(
+            roles_out,
+            rec.outputs.keys().cloned().collect::<Vec<_>>(),
+            "{what}"
+        );
+        assert!(rec.outputs.contains_key("metrics"), "{what}");
+        for (role, file) in &wants_in {
+            assert!(file.starts_with("inputs/"), "{what}");
+            let o = run_rondo(
+                d.path(),
+                &[
+                    "extract",
+                    &rec.inputs[role],
+                    "-o",
+                    &dir.join(file).display().to_string(),
+                ],
+            );
+            assert!(o.status.success(), "{what}: {}", shown(&o));
+        }
+        let o = Command::new(&rec.argv[0])
+            .args(&rec.argv[1..])
+            .current_dir(&dir)
+            .output()
+            .unwrap_or_else(|e| panic!("cannot run {what}: {e}"));
+        assert_eq!(o.status.code(), Some(0), "{what}: {}", shown(&o));
+        for (role, file) in &wants_out {
+            let got = blake3::hash(&std::fs::read(dir.join(file)).unwrap_or_default())
+                .to_hex()
+                .to_string();
+            assert_eq!(got, rec.outputs[role], "{role} = {file} of {what}");
+        }
+        // The printed metrics are the recorded values, bit for bit.
+        let printed: std::collections::BTreeMap<String, f64> = String::from_utf8_lossy(&o.stdout)
+            .lines()
+            .filter_map(|l| l.split_once(' '))
+            .map(|(n, v)| {
+                let x: f64 = v.parse().unwrap_or_else(|e| panic!("{n} {v}: {e}"));
+                (format!("{}.{n}", rec.stage), x)
+            })
+            .collect();
+        let bits = |m: &std::collections::BTreeMap<String, f64>| {
+            m.iter()
+                .map(|(k, v)| (k.clone(), v.to_bits()))
+                .collect::<Vec<_>>()
+        };
+        assert!(!printed.is_empty(), "{what}: {}", shown(&o));
+        assert_eq!(bits(&printed), bits(&rec.metrics), "{what}");
+    }
 }

@@ -19,6 +19,9 @@ use serde::{Deserialize, Serialize};
 use crate::spec::{FilterSettings, MixMethod, MixSettings};
 use crate::validate::Metric;
 
+mod command;
+pub use command::{run_argv, BuiltinCommand, FilterArgs, MixArgs};
+
 /// File name of the mixer state in the attempt's scratch directory.
 pub const STATE_FILE: &str = "mixer-state.json";
 
@@ -107,26 +110,6 @@ pub fn config(with: &MixSettings) -> MixerConfig {
         w0: with.w0.unwrap_or(d.w0),
         restart_after_growth: with.restart_after_growth.unwrap_or(d.restart_after_growth),
     }
-}
-
-/// The argv recorded for a built-in mix attempt (it names the options that determine it).
-/// Weights appear only when set, so the one-array form keeps its argv.
-pub fn mix_argv(with: &MixSettings) -> Vec<String> {
-    let c = config(with);
-    let mut argv = vec![
-        "rondo".into(),
-        "builtin".into(),
-        "mix".into(),
-        format!("--method={}", c.method.name()),
-        format!("--alpha={:?}", c.alpha),
-        format!("--history={}", c.history),
-        format!("--w0={:?}", c.w0),
-        format!("--restart-after-growth={}", c.restart_after_growth),
-    ];
-    for (role, w) in with.weights.iter().flatten() {
-        argv.push(format!("--weight={role}:{w:?}"));
-    }
-    argv
 }
 
 /// One role's new file as read: its layout block, its values and, for JSON, the object.
@@ -236,10 +219,10 @@ fn read_state(p: &Path) -> Result<StateFile, String> {
 
 /// Pair each input role with its output file. The stage's outputs list exactly its input
 /// roles; the one-array form (`new`) has a single output of any role name.
-pub fn mix_pairs(
+pub fn mix_pairs<F: Clone>(
     input_roles: &[String],
-    outputs: &[(String, String)],
-) -> Result<Vec<(String, String)>, String> {
+    outputs: &[(String, F)],
+) -> Result<Vec<(String, F)>, String> {
     if input_roles.len() == 1 && input_roles[0] == LEGACY_ROLE && outputs.len() == 1 {
         return Ok(vec![(LEGACY_ROLE.to_string(), outputs[0].1.clone())]);
     }
@@ -250,8 +233,10 @@ pub fn mix_pairs(
         };
         pairs.push((r.clone(), f.clone()));
     }
-    if outputs.len() != pairs.len() {
-        return Err("the mix stage's outputs must be exactly its input roles".into());
+    if let Some((o, _)) = outputs.iter().find(|(o, _)| !input_roles.contains(o)) {
+        return Err(format!(
+            "the output `{o}` has no input `{o}` to mix; the mix stage's outputs must be exactly its input roles"
+        ));
     }
     Ok(pairs)
 }
@@ -465,17 +450,6 @@ fn check_layout(
         }
     }
     Ok(())
-}
-
-/// The argv recorded for a built-in filter attempt.
-pub fn filter_argv(with: &FilterSettings) -> Vec<String> {
-    vec![
-        "rondo".into(),
-        "builtin".into(),
-        "filter".into(),
-        format!("--legendre={}", with.legendre),
-        format!("--matsubara={}", with.matsubara),
-    ]
 }
 
 /// The metrics the filter built-in reports (stopping rules may name them).

@@ -131,6 +131,12 @@ enum Command {
         #[arg(long)]
         workspace: Option<PathBuf>,
     },
+    /// Run a built-in stage (mix, filter) on files named on the command line; this is the
+    /// command recorded with every built-in attempt (docs/provenance.md).
+    Builtin {
+        #[command(subcommand)]
+        call: crate::builtins::BuiltinCommand,
+    },
     /// Lineage of a file, an artifact hash prefix, POINT/ITERATION/stage.metric or
     /// POINT/ITERATION/stage.output: the record that made it in full (argv, program hash,
     /// parameters, inputs, outputs), then one line per attempt upstream.
@@ -427,6 +433,7 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             let ws = find_workspace(file.as_deref(), workspace)?;
             analyze(&ws).await
         }
+        Command::Builtin { call } => builtin(&call),
         Command::Trace {
             target,
             workspace,
@@ -1129,6 +1136,24 @@ pub fn format_measurement(value: f64, error: Option<f64>) -> String {
         }
         _ => plain(value),
     }
+}
+
+/// `rondo builtin mix|filter`: run the built-in on the files given, relative paths from the
+/// current folder; prints the metrics (`name value`, each number the shortest text of its
+/// double) and any event (a history reset) on stderr.
+fn builtin(call: &crate::builtins::BuiltinCommand) -> Result<u8> {
+    let report = call
+        .run(Path::new(""))
+        .map_err(|m| BadInput(format!("builtin {}: {m}", call.name())))?;
+    if let Some(e) = &report.event {
+        eprintln!("rondo: builtin {}: {e}", call.name());
+    }
+    let mut text = String::new();
+    for m in &report.metrics {
+        text.push_str(&format!("{} {:?}\n", m.name, m.value));
+    }
+    emit(&text);
+    Ok(EXIT_OK)
 }
 
 /// `rondo analyze`: compute the recorded campaign's analyses again from the workspace's

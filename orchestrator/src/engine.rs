@@ -1635,8 +1635,18 @@ impl Engine<'_> {
             params.insert(k.clone(), value);
         }
         let (argv, uses_seed, executor_kind) = match &stage.kind {
-            StageKind::Filter(with) => (builtins::filter_argv(with), false, "builtin"),
-            StageKind::Mix(with) => (builtins::mix_argv(with), false, "builtin"),
+            StageKind::Filter(_) | StageKind::Mix(_) => (
+                // The `rondo builtin` command that reruns it in this scratch layout.
+                builtins::BuiltinCommand::for_stage(
+                    &stage.kind,
+                    inputs.iter().map(|(r, _, f)| (r.as_str(), f.as_path())),
+                    &stage.outputs,
+                )
+                .map(|c| c.to_argv(&self.rondo_exe.0))
+                .ok_or_else(|| anyhow::anyhow!("internal: `{}` is no built-in", stage.name))?,
+                false,
+                "builtin",
+            ),
             StageKind::Command { template, .. } | StageKind::Shell { template, .. } => {
                 let shell = matches!(stage.kind, StageKind::Shell { .. });
                 let lookup = |ns: Option<&str>, name: &str| -> Option<String> {
@@ -1771,53 +1781,8 @@ impl Engine<'_> {
                 .bind(id)
                 .execute(&self.pool)
                 .await?;
-                let input_path = |role: &str| {
-                    inputs
-                        .iter()
-                        .find(|(r, _, _)| r == role)
-                        .map(|(_, _, f)| workdir.join(f))
-                };
-                let result = match &stage.kind {
-                    StageKind::Mix(with) => {
-                        let in_roles: Vec<String> =
-                            stage.inputs.iter().map(|(r, _)| r.clone()).collect();
-                        builtins::mix_pairs(&in_roles, &stage.outputs).and_then(|pairs| {
-                            let mut roles = Vec::with_capacity(pairs.len());
-                            for (role, file) in pairs {
-                                let Some(new) = input_path(&role) else {
-                                    return Err(format!("the input `{role}` has no artifact"));
-                                };
-                                roles.push((role, new, workdir.join(file)));
-                            }
-                            builtins::mix(
-                                with,
-                                &roles,
-                                input_path("state").as_deref(),
-                                &workdir.join(builtins::STATE_FILE),
-                            )
-                        })
-                    }
-                    StageKind::Filter(with) => {
-                        let outs: Vec<(String, PathBuf)> = stage
-                            .outputs
-                            .iter()
-                            .map(|(r, f)| (r.clone(), workdir.join(f)))
-                            .collect();
-                        match input_path("gtau") {
-                            None => Err("the input `gtau` has no artifact".to_string()),
-                            Some(g) => builtins::filter(
-                                with,
-                                &g,
-                                input_path("delta").as_deref(),
-                                input_path("levels").as_deref(),
-                                &outs,
-                            ),
-                        }
-                    }
-                    StageKind::Command { .. } | StageKind::Shell { .. } => {
-                        Err("internal: not a built-in".to_string())
-                    }
-                };
+                // Runs exactly the recorded argument list, in the scratch folder.
+                let result = builtins::run_argv(&argv, &workdir);
                 let ended = match result {
                     Ok(report) => {
                         let mut ended = self.check_outputs(
