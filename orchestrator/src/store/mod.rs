@@ -4,6 +4,10 @@
 //! `orchestrator/migrations/`, and the workspace lock (a lock file holding pid, host and
 //! boot id, taken with `flock`; broken only when its holder is provably gone).
 
+pub mod states;
+
+pub use states::{AttemptState, IterationState, PointState};
+
 use std::fs::{File, OpenOptions};
 use std::io::{Read, Seek, Write};
 use std::os::fd::AsRawFd;
@@ -27,28 +31,28 @@ pub fn migrator() -> Migrator {
             1,
             "initial".into(),
             MigrationType::Simple,
-            include_str!("../migrations/0001_initial.sql").into(),
+            include_str!("../../migrations/0001_initial.sql").into(),
             false,
         ),
         Migration::new(
             2,
             "report provenance".into(),
             MigrationType::Simple,
-            include_str!("../migrations/0002_report_provenance.sql").into(),
+            include_str!("../../migrations/0002_report_provenance.sql").into(),
             false,
         ),
         Migration::new(
             3,
             "point started trigger".into(),
             MigrationType::Simple,
-            include_str!("../migrations/0003_point_started_trigger.sql").into(),
+            include_str!("../../migrations/0003_point_started_trigger.sql").into(),
             false,
         ),
         Migration::new(
             4,
             "program hash unknown".into(),
             MigrationType::Simple,
-            include_str!("../migrations/0004_program_hash_unknown.sql").into(),
+            include_str!("../../migrations/0004_program_hash_unknown.sql").into(),
             false,
         ),
     ];
