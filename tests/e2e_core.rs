@@ -1155,12 +1155,15 @@ fn extract_writes_an_artifact_found_like_a_trace_target_and_never_clobbers() {
 // the middle of a campaign, read-only workspaces, cancel with a reason, finding the
 // workspace, exit codes, check diagnostics, the shell form, and `--on pbs`.
 
-/// A loud skip: under CI (or `RONDO_REQUIRE_ISOLATION`) a missing prerequisite fails.
-fn skip_or_fail(what: &str) {
-    let required = std::env::var("CI").is_ok_and(|v| v == "true")
-        || std::env::var_os("RONDO_REQUIRE_ISOLATION").is_some();
-    assert!(!required, "required but unavailable: {what}");
-    eprintln!("SKIPPED: {what}");
+/// A loud skip through the shared mechanism (tests/common/skip.rs): under CI or
+/// `RONDO_REQUIRE_ISOLATION` a missing prerequisite fails.
+#[track_caller]
+fn isolation_skip(what: &str) {
+    common::skip::skip_or_fail(
+        what,
+        "run as root on Linux with util-linux (setpriv, unshare)",
+        &["RONDO_REQUIRE_ISOLATION"],
+    );
 }
 
 fn is_root() -> bool {
@@ -1390,7 +1393,7 @@ fn reading_commands_work(dir: &Path, owner_ws: &Path, ws: &Path, wrap: &[&str], 
 #[test]
 fn another_user_reads_a_workspace_without_write_access() {
     if !is_root() || !Path::new("/usr/bin/setpriv").is_file() {
-        skip_or_fail("reading as another user needs root and setpriv (util-linux)");
+        isolation_skip("reading as another user needs root and setpriv (util-linux)");
         return;
     }
     let (d, ws) = readable_workspace();
@@ -1424,7 +1427,7 @@ fn another_user_reads_a_workspace_without_write_access() {
 #[test]
 fn a_workspace_on_a_read_only_mount_is_read() {
     if !is_root() || !Path::new("/usr/bin/unshare").is_file() {
-        skip_or_fail("a read-only bind mount needs root and unshare (util-linux)");
+        isolation_skip("a read-only bind mount needs root and unshare (util-linux)");
         return;
     }
     let (d, ws) = readable_workspace();
@@ -1445,7 +1448,7 @@ fn a_workspace_on_a_read_only_mount_is_read() {
         .output()
         .unwrap_or_else(|e| panic!("{e}"));
     if !probe.status.success() {
-        skip_or_fail(&format!(
+        isolation_skip(&format!(
             "cannot make a read-only bind mount here: {}",
             String::from_utf8_lossy(&probe.stderr)
         ));
