@@ -316,7 +316,8 @@ fn median_phases(p: &[Phases]) -> Phases {
     }
 }
 
-fn git(args: &[&str]) -> String {
+/// Output of a git command in this checkout; `None` when git fails.
+fn git(args: &[&str]) -> Option<String> {
     Command::new("git")
         .args(args)
         .current_dir(env!("CARGO_MANIFEST_DIR"))
@@ -324,7 +325,28 @@ fn git(args: &[&str]) -> String {
         .ok()
         .filter(|o| o.status.success())
         .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
-        .unwrap_or_else(|| "unknown".to_string())
+}
+
+/// The commit the binaries belong to and the state of the working tree, as the section
+/// states them: `RONDO_BENCH_COMMIT` when the binaries were built elsewhere from a clean
+/// export, otherwise this checkout's HEAD and whether its tracked files had changes.
+fn provenance() -> (String, String) {
+    if let Ok(c) = std::env::var("RONDO_BENCH_COMMIT") {
+        return (
+            c,
+            "binaries built from a clean export of that commit".into(),
+        );
+    }
+    let commit = git(&["rev-parse", "--short", "HEAD"]).unwrap_or_else(|| "unknown".into());
+    let tree = match git(&["status", "--porcelain", "--untracked-files=no"]) {
+        None => "working tree state unknown: git failed".to_string(),
+        Some(s) if s.is_empty() => "clean working tree".to_string(),
+        Some(s) => format!(
+            "the working tree had uncommitted changes to {} tracked file(s)",
+            s.lines().count()
+        ),
+    };
+    (commit, tree)
 }
 
 fn render(rows: &[Row], repeats: usize) -> Result<String> {
@@ -333,19 +355,7 @@ fn render(rows: &[Row], repeats: usize) -> Result<String> {
         .output()
         .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
         .unwrap_or_default();
-    // RONDO_BENCH_COMMIT: the commit the binaries were built from, when that is a clean
-    // export rather than this checkout.
-    let (commit, dirty) = match std::env::var("RONDO_BENCH_COMMIT") {
-        Ok(c) => (c, " (binaries built from a clean export of that commit)"),
-        Err(_) => (
-            git(&["rev-parse", "--short", "HEAD"]),
-            if git(&["status", "--porcelain", "--untracked-files=no"]).is_empty() {
-                ""
-            } else {
-                " (the working tree had uncommitted changes)"
-            },
-        ),
-    };
+    let (commit, tree) = provenance();
     let cpus = std::thread::available_parallelism()
         .map(|n| n.get())
         .unwrap_or(0);
@@ -353,7 +363,7 @@ fn render(rows: &[Row], repeats: usize) -> Result<String> {
     writeln!(s, "{BEGIN}")?;
     writeln!(
         s,
-        "Measured {date} at commit `{commit}`{dirty}; {cpus} CPUs, a shared and noisy"
+        "Measured {date} at commit `{commit}` ({tree}); {cpus} CPUs, a shared and noisy"
     )?;
     writeln!(
         s,

@@ -1,4 +1,5 @@
-//! Campaign reports: convergence, equation-of-state and configuration-probability figures
+//! Campaign reports: an overview of all points, convergence, equation-of-state and
+//! configuration-probability figures
 //! (SVG and PNG, text drawn with a shipped font so no system fonts are needed), a table of
 //! converged observables with error bars, an `index.html` that shows them, every figure's
 //! data as CSV, and the report's own provenance (the `reports`, `report_outputs` and
@@ -13,6 +14,7 @@ use std::sync::OnceLock;
 
 use anyhow::{anyhow, bail, Context, Result};
 use plotters::coord::Shift;
+use plotters::element::DashedPathElement;
 use plotters::prelude::*;
 use rondo_numerics::eos::{self, EosModel, MIN_VOLUMES};
 use serde::Serialize;
@@ -392,14 +394,174 @@ fn stop_metrics(spec_text: &str) -> Vec<String> {
 // ---------------------------------------------------------------------------------------
 // plots
 
+/// The report's series colours: the qualitative palette of M. Okabe and K. Ito, "Color
+/// Universal Design (CUD): how to make figures and presentations that are friendly to
+/// colorblind people" (2008), as published there: #0072B2 blue, #D55E00 vermillion, #009E73
+/// bluish green, #CC79A7 reddish purple, #E69F00 orange, #56B4E9 sky blue. Its yellow
+/// (#F0E442) is left out because thin lines in it vanish on white, and its black is the
+/// colour of the axes and text.
 const PALETTE: [RGBColor; 6] = [
-    RGBColor(31, 119, 180),
-    RGBColor(214, 39, 40),
-    RGBColor(44, 160, 44),
-    RGBColor(148, 103, 189),
-    RGBColor(255, 127, 14),
-    RGBColor(23, 190, 207),
+    RGBColor(0x00, 0x72, 0xB2),
+    RGBColor(0xD5, 0x5E, 0x00),
+    RGBColor(0x00, 0x9E, 0x73),
+    RGBColor(0xCC, 0x79, 0xA7),
+    RGBColor(0xE6, 0x9F, 0x00),
+    RGBColor(0x56, 0xB4, 0xE9),
 ];
+
+/// Line pattern of a series.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Dash {
+    Solid,
+    Dashed,
+    Dotted,
+}
+
+impl Dash {
+    /// (drawn, gap) lengths in pixels; `None` for a solid line.
+    fn pattern(self) -> Option<(u32, u32)> {
+        match self {
+            Dash::Solid => None,
+            Dash::Dashed => Some((9, 5)),
+            Dash::Dotted => Some((3, 4)),
+        }
+    }
+}
+
+/// Marker shape of a series. Only the disc is filled, so a hollow marker drawn on the same
+/// spot leaves the one below it visible.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Shape {
+    Disc,
+    Triangle,
+    Square,
+    Diamond,
+    Cross,
+    Ring,
+}
+
+/// How one series is drawn.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Look {
+    color: RGBColor,
+    dash: Dash,
+    shape: Option<Shape>,
+    /// line width in pixels
+    width: u32,
+}
+
+/// The look of the `i`-th series of a figure. Colour, line pattern and marker all change
+/// from one series to the next (30 series before a combination repeats), so the figure
+/// reads without colour and curves that coincide stay distinguishable: the solid line is the
+/// widest and is drawn first, so a dashed or dotted curve on top of it leaves it visible in
+/// the gaps, and the hollow markers leave the filled disc visible.
+fn look(i: usize) -> Look {
+    const DASHES: [Dash; 3] = [Dash::Solid, Dash::Dashed, Dash::Dotted];
+    const SHAPES: [Shape; 5] = [
+        Shape::Disc,
+        Shape::Triangle,
+        Shape::Square,
+        Shape::Diamond,
+        Shape::Cross,
+    ];
+    let dash = DASHES[i % DASHES.len()];
+    Look {
+        color: PALETTE[i % PALETTE.len()],
+        dash,
+        shape: Some(SHAPES[i % SHAPES.len()]),
+        width: if dash == Dash::Solid { 3 } else { 2 },
+    }
+}
+
+/// `c` moved the fraction `f` of the way to white.
+fn tint(c: RGBColor, f: f64) -> RGBColor {
+    let m = |x: u8| (f64::from(x) + (255.0 - f64::from(x)) * f).round() as u8;
+    RGBColor(m(c.0), m(c.1), m(c.2))
+}
+
+/// A single series' look: solid line, filled discs.
+fn plain(color: RGBColor) -> Look {
+    Look {
+        color,
+        dash: Dash::Solid,
+        shape: Some(Shape::Disc),
+        width: 2,
+    }
+}
+
+/// Length of a legend swatch's line in pixels.
+const SWATCH: i32 = 28;
+
+/// A pixel offset from an element's anchor.
+type Px = (i32, i32);
+
+/// The marker of a look as pixel offsets around its anchor: a filled polygon and an
+/// outline (every shape is both, so that markers of all shapes have one element type;
+/// hollow shapes fill with a transparent colour, which draws nothing).
+fn marker_parts(look: &Look) -> (Vec<Px>, ShapeStyle, Vec<Px>, ShapeStyle) {
+    let ngon = |r: f64, n: usize| -> Vec<Px> {
+        (0..=n)
+            .map(|k| {
+                let a = std::f64::consts::TAU * k as f64 / n as f64;
+                ((r * a.cos()).round() as i32, (r * a.sin()).round() as i32)
+            })
+            .collect()
+    };
+    let line = look.color.stroke_width(2);
+    let hollow = TRANSPARENT.filled();
+    let Some(shape) = look.shape else {
+        return (Vec::new(), hollow, Vec::new(), line);
+    };
+    let outline = match shape {
+        Shape::Disc => {
+            let p = ngon(4.5, 16);
+            return (
+                p.clone(),
+                look.color.filled(),
+                p,
+                look.color.stroke_width(1),
+            );
+        }
+        Shape::Ring => ngon(8.0, 24),
+        Shape::Triangle => vec![(0, -7), (6, 4), (-6, 4), (0, -7)],
+        Shape::Square => vec![(-5, -5), (5, -5), (5, 5), (-5, 5), (-5, -5)],
+        Shape::Diamond => vec![(0, -7), (7, 0), (0, 7), (-7, 0), (0, -7)],
+        Shape::Cross => vec![(-5, -5), (5, 5), (0, 0), (-5, 5), (5, -5)],
+    };
+    (outline.clone(), hollow, outline, line)
+}
+
+/// The marker of `$look` at `$at` (data coordinates) as one element.
+macro_rules! marker {
+    ($at:expr, $look:expr) => {{
+        let (fill, fill_style, outline, line_style) = marker_parts(&$look);
+        EmptyElement::at($at)
+            + Polygon::new(fill, fill_style)
+            + PathElement::new(outline, line_style)
+    }};
+}
+
+/// The legend swatch of `$look` at the legend anchor `$at`: a line of [`SWATCH`] pixels in
+/// the look's pattern (with `$line`) and the look's marker in its middle.
+macro_rules! swatch {
+    ($at:expr, $look:expr, $line:expr) => {{
+        let look: Look = $look;
+        let (fill, fill_style, outline, line_style) = marker_parts(&look);
+        let mid =
+            |v: Vec<Px>| -> Vec<Px> { v.into_iter().map(|(x, y)| (x + SWATCH / 2, y)).collect() };
+        // a solid line is a dash longer than the swatch
+        let (on, off) = look.dash.pattern().unwrap_or((1000, 1));
+        let path: Vec<Px> = if $line {
+            vec![(0, 0), (SWATCH, 0)]
+        } else {
+            vec![(0, 0)]
+        };
+        EmptyElement::at($at)
+            + DashedPathElement::new(path, on, off, look.color.stroke_width(look.width))
+            + Polygon::new(mid(fill), fill_style)
+            + PathElement::new(mid(outline), line_style)
+    }};
+}
 
 #[derive(Debug, Clone)]
 struct Series {
@@ -410,6 +572,17 @@ struct Series {
 
 /// A fitted curve: index of its data series, model, (volume, energy) samples.
 type Curve = (usize, EosModel, Vec<(f64, f64)>);
+
+/// The right panel of the overview: the main metric at each point's last good iteration
+/// against a sweep axis.
+#[derive(Debug, Clone)]
+struct Finals {
+    x_label: String,
+    /// one series per group of points (temperature)
+    groups: Vec<Series>,
+    /// (x, y) of the points that did not converge
+    unconverged: Vec<(f64, f64)>,
+}
 
 #[derive(Debug, Clone)]
 enum Plot {
@@ -431,7 +604,19 @@ enum Plot {
         x_label: String,
         y_label: String,
     },
+    /// every point: |change| of the main metric vs iteration (one series per point), and
+    /// the final values against a sweep axis
+    Overview {
+        title: String,
+        metric: String,
+        changes: Vec<Series>,
+        finals: Option<Finals>,
+    },
 }
+
+/// Most legend entries a panel of the overview shows; with more points the left panel has
+/// no legend (overview.csv names them).
+const OVERVIEW_LEGEND_MAX: usize = 12;
 
 fn pe<E: std::fmt::Debug>(e: E) -> anyhow::Error {
     anyhow!("drawing failed: {e:?}")
@@ -463,47 +648,93 @@ fn extent(s: &[Series]) -> impl Iterator<Item = f64> + '_ {
     })
 }
 
-fn draw_series<DB: DrawingBackend>(
-    chart: &mut ChartContext<
-        DB,
-        Cartesian2d<plotters::coord::types::RangedCoordf64, plotters::coord::types::RangedCoordf64>,
-    >,
+/// Positive values of a series (for a log axis), same label.
+fn positive(s: &Series) -> Series {
+    Series {
+        label: s.label.clone(),
+        points: s
+            .points
+            .iter()
+            .copied()
+            .filter(|p| p.1 > 0.0 && p.1.is_finite())
+            .collect(),
+    }
+}
+
+/// Log-axis range of positive values: a factor 3 beyond the extremes.
+fn log_range(vals: impl Iterator<Item = f64>) -> Option<(f64, f64)> {
+    let pos: Vec<f64> = vals.filter(|v| *v > 0.0 && v.is_finite()).collect();
+    if pos.is_empty() {
+        return None;
+    }
+    let lo = pos.iter().copied().fold(f64::INFINITY, f64::min) / 3.0;
+    let hi = pos.iter().copied().fold(0.0, f64::max) * 3.0;
+    Some((lo, hi))
+}
+
+/// Draw a series as a line in its pattern, error bars, and its markers on top; with
+/// `legend`, label it with a swatch of both.
+fn draw_series<'a, DB, CT>(
+    chart: &mut ChartContext<'a, DB, CT>,
     s: &Series,
-    color: RGBColor,
+    look: Look,
     legend: bool,
 ) -> Result<()>
 where
+    DB: DrawingBackend + 'a,
     DB::ErrorType: 'static,
+    CT: CoordTranslate<From = (f64, f64)>,
 {
-    let line = chart
-        .draw_series(LineSeries::new(
-            s.points.iter().map(|&(x, y, _)| (x, y)),
-            color.stroke_width(2),
-        ))
-        .map_err(pe)?;
+    let pts: Vec<(f64, f64)> = s.points.iter().map(|&(x, y, _)| (x, y)).collect();
+    let style = look.color.stroke_width(look.width);
+    let anno = match look.dash.pattern() {
+        None => chart
+            .draw_series(LineSeries::new(pts.clone(), style))
+            .map_err(pe)?,
+        Some((on, off)) => chart
+            .draw_series(DashedLineSeries::new(pts.clone(), on, off, style))
+            .map_err(pe)?,
+    };
     if legend {
-        line.label(s.label.clone()).legend(move |(x, y)| {
-            PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2))
-        });
+        anno.label(s.label.clone())
+            .legend(move |c| swatch!(c, look, true));
     }
-    chart
-        .draw_series(
-            s.points
-                .iter()
-                .map(|&(x, y, _)| Circle::new((x, y), 4, color.filled())),
-        )
-        .map_err(pe)?;
     for &(x, y, e) in &s.points {
         if let Some(e) = e.filter(|e| *e > 0.0) {
             chart
                 .draw_series(std::iter::once(PathElement::new(
                     vec![(x, y - e), (x, y + e)],
-                    color.stroke_width(1),
+                    look.color.stroke_width(1),
                 )))
                 .map_err(pe)?;
         }
     }
+    if look.shape.is_some() {
+        chart
+            .draw_series(pts.iter().map(|&p| marker!(p, look)))
+            .map_err(pe)?;
+    }
     Ok(())
+}
+
+fn draw_legend<'a, DB, CT>(
+    chart: &mut ChartContext<'a, DB, CT>,
+    at: SeriesLabelPosition,
+) -> Result<()>
+where
+    DB: DrawingBackend + 'a,
+    DB::ErrorType: 'static,
+    CT: CoordTranslate,
+{
+    chart
+        .configure_series_labels()
+        .position(at)
+        .legend_area_size(SWATCH + 6)
+        .background_style(WHITE.mix(0.85))
+        .border_style(BLACK)
+        .label_font(("sans-serif", 14))
+        .draw()
+        .map_err(pe)
 }
 
 fn draw<DB: DrawingBackend>(root: &DrawingArea<DB, Shift>, plot: &Plot) -> Result<()>
@@ -522,7 +753,7 @@ where
             .map_err(pe)?;
             let areas = body.split_evenly((rows.len().max(1), 2));
             for (r, (name, values, change)) in rows.iter().enumerate() {
-                let color = PALETTE[r % PALETTE.len()];
+                let lk = plain(PALETTE[r % PALETTE.len()]);
                 let n_it = values.points.iter().map(|p| p.0).fold(1.0_f64, f64::max);
                 let (y0, y1) = range(extent(std::slice::from_ref(values)), 0.1);
                 let prec = decimals(y1 - y0);
@@ -541,15 +772,9 @@ where
                     .y_label_formatter(&|y| format!("{y:.prec$}"))
                     .draw()
                     .map_err(pe)?;
-                draw_series(&mut c, values, color, false)?;
-                let pos: Vec<f64> = change
-                    .points
-                    .iter()
-                    .map(|p| p.1)
-                    .filter(|v| *v > 0.0 && v.is_finite())
-                    .collect();
+                draw_series(&mut c, values, lk, false)?;
                 let area = &areas[2 * r + 1];
-                if pos.is_empty() {
+                let Some((lo, hi)) = log_range(change.points.iter().map(|p| p.1)) else {
                     area.draw(&Text::new(
                         format!("|Δ {name}|: needs two iterations"),
                         (20, 40),
@@ -557,9 +782,7 @@ where
                     ))
                     .map_err(pe)?;
                     continue;
-                }
-                let lo = pos.iter().copied().fold(f64::INFINITY, f64::min) / 3.0;
-                let hi = pos.iter().copied().fold(0.0, f64::max) * 3.0;
+                };
                 let mut c = ChartBuilder::on(area)
                     .margin(10)
                     .x_label_area_size(36)
@@ -577,16 +800,7 @@ where
                     .y_label_formatter(&|y| format!("{y:.0e}"))
                     .draw()
                     .map_err(pe)?;
-                let pts: Vec<(f64, f64)> = change
-                    .points
-                    .iter()
-                    .filter(|p| p.1 > 0.0)
-                    .map(|p| (p.0, p.1))
-                    .collect();
-                c.draw_series(LineSeries::new(pts.clone(), color.stroke_width(2)))
-                    .map_err(pe)?;
-                c.draw_series(pts.iter().map(|&p| Circle::new(p, 4, color.filled())))
-                    .map_err(pe)?;
+                draw_series(&mut c, &positive(change), lk, false)?;
             }
         }
         Plot::Eos {
@@ -614,60 +828,60 @@ where
                 .y_label_formatter(&|y| format!("{y:.prec$}"))
                 .draw()
                 .map_err(pe)?;
+            // markers of temperature i: look(i)'s colour and shape; its fits in the same
+            // colour, Birch-Murnaghan solid and Vinet dashed
+            let marker_look = |i: usize| Look {
+                dash: Dash::Solid,
+                width: 2,
+                ..look(i)
+            };
             for (i, s) in data.iter().enumerate() {
-                let color = PALETTE[i % PALETTE.len()];
-                c.draw_series(
-                    s.points
-                        .iter()
-                        .map(|&(x, y, _)| Circle::new((x, y), 5, color.filled())),
-                )
-                .map_err(pe)?
-                .label(s.label.clone())
-                .legend(move |(x, y)| Circle::new((x + 9, y), 5, color.filled()));
+                let lk = marker_look(i);
+                c.draw_series(s.points.iter().map(|&(x, y, _)| marker!((x, y), lk)))
+                    .map_err(pe)?
+                    .label(s.label.clone())
+                    .legend(move |at| swatch!(at, lk, false));
                 for &(x, y, e) in &s.points {
                     if let Some(e) = e.filter(|e| *e > 0.0) {
                         c.draw_series(std::iter::once(PathElement::new(
                             vec![(x, y - e), (x, y + e)],
-                            color.stroke_width(1),
+                            lk.color.stroke_width(1),
                         )))
                         .map_err(pe)?;
                     }
                 }
             }
+            // the two fits usually lie on top of each other: Birch-Murnaghan as a wide
+            // light band, Vinet as dark dashes on it, both visible where they coincide
             for (i, model, pts) in curves {
                 let color = PALETTE[*i % PALETTE.len()];
-                let label = format!("{} {}", data[*i].label, model_name(*model));
-                match model {
-                    EosModel::BirchMurnaghan3 => {
-                        c.draw_series(LineSeries::new(pts.clone(), color.stroke_width(2)))
-                            .map_err(pe)?
-                            .label(label)
-                            .legend(move |(x, y)| {
-                                PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2))
-                            });
-                    }
-                    EosModel::Vinet => {
-                        c.draw_series(DashedLineSeries::new(
-                            pts.clone(),
-                            6,
-                            4,
-                            color.stroke_width(1),
-                        ))
-                        .map_err(pe)?
-                        .label(label)
-                        .legend(move |(x, y)| {
-                            PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(1))
-                        });
-                    }
-                }
+                let lk = match model {
+                    EosModel::BirchMurnaghan3 => Look {
+                        color: tint(color, 0.55),
+                        dash: Dash::Solid,
+                        shape: None,
+                        width: 5,
+                    },
+                    EosModel::Vinet => Look {
+                        color,
+                        dash: Dash::Dashed,
+                        shape: None,
+                        width: 2,
+                    },
+                };
+                let s = Series {
+                    label: format!("{} {}", data[*i].label, model_name(*model)),
+                    points: pts.iter().map(|&(x, y)| (x, y, None)).collect(),
+                };
+                draw_series(&mut c, &s, lk, true)?;
             }
-            c.configure_series_labels()
-                .position(SeriesLabelPosition::UpperMiddle)
-                .background_style(WHITE.mix(0.85))
-                .border_style(BLACK)
-                .label_font(("sans-serif", 14))
-                .draw()
-                .map_err(pe)?;
+            // the data markers again, on top of the curves
+            for (i, s) in data.iter().enumerate() {
+                let lk = marker_look(i);
+                c.draw_series(s.points.iter().map(|&(x, y, _)| marker!((x, y), lk)))
+                    .map_err(pe)?;
+            }
+            draw_legend(&mut c, SeriesLabelPosition::UpperMiddle)?;
         }
         Plot::Panels {
             panels,
@@ -686,7 +900,7 @@ where
                     .x_label_area_size(44)
                     .y_label_area_size(60)
                     .caption(title.clone(), ("sans-serif", 20))
-                    .build_cartesian_2d(x0..x1, y0.min(0.0).max(y0)..y1)
+                    .build_cartesian_2d(x0..x1, y0..y1)
                     .map_err(pe)?;
                 c.configure_mesh()
                     .x_desc(x_label.clone())
@@ -695,14 +909,114 @@ where
                     .draw()
                     .map_err(pe)?;
                 for (i, s) in series.iter().enumerate() {
-                    draw_series(&mut c, s, PALETTE[i % PALETTE.len()], true)?;
+                    draw_series(&mut c, s, look(i), true)?;
                 }
-                c.configure_series_labels()
-                    .background_style(WHITE.mix(0.85))
-                    .border_style(BLACK)
-                    .label_font(("sans-serif", 14))
+                // probabilities sum to one: the middle is where the curves are least often
+                draw_legend(&mut c, SeriesLabelPosition::MiddleRight)?;
+            }
+        }
+        Plot::Overview {
+            title,
+            metric,
+            changes,
+            finals,
+        } => {
+            let (top, body) = root.split_vertically(36);
+            top.draw(&Text::new(
+                title.clone(),
+                (12, 8),
+                ("sans-serif", 22).into_font(),
+            ))
+            .map_err(pe)?;
+            let areas = body.split_evenly((1, if finals.is_some() { 2 } else { 1 }));
+            let n_it = changes
+                .iter()
+                .flat_map(|s| s.points.iter().map(|p| p.0))
+                .fold(1.0_f64, f64::max);
+            match log_range(changes.iter().flat_map(|s| s.points.iter().map(|p| p.1))) {
+                None => {
+                    areas[0]
+                        .draw(&Text::new(
+                            format!("|Δ {metric}|: needs two iterations"),
+                            (20, 40),
+                            ("sans-serif", 16).into_font(),
+                        ))
+                        .map_err(pe)?;
+                }
+                Some((lo, hi)) => {
+                    let legend = changes.len() <= OVERVIEW_LEGEND_MAX;
+                    let caption = if legend {
+                        format!("|Δ {metric}| between iterations (log scale)")
+                    } else {
+                        format!(
+                            "|Δ {metric}| between iterations (log scale), {} points",
+                            changes.len()
+                        )
+                    };
+                    let mut c = ChartBuilder::on(&areas[0])
+                        .margin(12)
+                        .x_label_area_size(44)
+                        .y_label_area_size(80)
+                        .caption(caption, ("sans-serif", 16))
+                        .build_cartesian_2d(0.5..n_it + 0.5, (lo..hi).log_scale())
+                        .map_err(pe)?;
+                    c.configure_mesh()
+                        .light_line_style(WHITE)
+                        .y_labels(8)
+                        .x_desc("iteration")
+                        .y_desc("|change|")
+                        .x_labels((n_it as usize + 1).min(21))
+                        .x_label_formatter(&|x| format!("{x:.0}"))
+                        .y_label_formatter(&|y| format!("{y:.0e}"))
+                        .draw()
+                        .map_err(pe)?;
+                    for (i, s) in changes.iter().enumerate() {
+                        draw_series(&mut c, &positive(s), look(i), legend)?;
+                    }
+                    if legend {
+                        draw_legend(&mut c, SeriesLabelPosition::UpperRight)?;
+                    }
+                }
+            }
+            if let Some(f) = finals {
+                let (x0, x1) = range(
+                    f.groups.iter().flat_map(|s| s.points.iter().map(|p| p.0)),
+                    0.05,
+                );
+                let (y0, y1) = range(extent(&f.groups), 0.1);
+                let prec = decimals(y1 - y0);
+                let mut c = ChartBuilder::on(&areas[1])
+                    .margin(12)
+                    .x_label_area_size(44)
+                    .y_label_area_size(90)
+                    .caption(
+                        format!("{metric} at the last good iteration"),
+                        ("sans-serif", 16),
+                    )
+                    .build_cartesian_2d(x0..x1, y0..y1)
+                    .map_err(pe)?;
+                c.configure_mesh()
+                    .x_desc(f.x_label.clone())
+                    .y_desc(metric.clone())
+                    .y_label_formatter(&|y| format!("{y:.prec$}"))
                     .draw()
                     .map_err(pe)?;
+                for (i, s) in f.groups.iter().enumerate() {
+                    draw_series(&mut c, s, look(i), true)?;
+                }
+                if !f.unconverged.is_empty() {
+                    let ring = Look {
+                        color: BLACK,
+                        dash: Dash::Solid,
+                        shape: Some(Shape::Ring),
+                        width: 2,
+                    };
+                    c.draw_series(f.unconverged.iter().map(|&at| marker!(at, ring)))
+                        .map_err(pe)?
+                        .label("not converged")
+                        .legend(move |at| swatch!(at, ring, false));
+                }
+                draw_legend(&mut c, SeriesLabelPosition::UpperRight)?;
             }
         }
     }
@@ -983,6 +1297,156 @@ pub async fn generate_with(
     })
 }
 
+/// Points grouped by temperature: sort key → (temperature, points).
+type Groups<'a> = BTreeMap<String, (Option<f64>, Vec<&'a PointData>)>;
+
+fn t_label(t: Option<f64>) -> String {
+    match t {
+        Some(t) => format!("T = {t} K"),
+        None => "all points".to_string(),
+    }
+}
+
+/// The overview figure `overview.{svg,png,csv}`: the |change| of `main` between iterations
+/// for every point (left), and its value at each point's last good iteration against the
+/// volume axis (or the first numeric sweep axis), one series per temperature (right).
+/// Returns the figure and the attempts behind it, or `None` (with a note) when no point
+/// recorded `main`.
+fn overview(
+    dir: &Path,
+    points: &[PointData],
+    main: &str,
+    opts: &ReportOptions,
+    groups: &Groups<'_>,
+    out: &mut Output,
+    notes: &mut Vec<String>,
+) -> Result<Option<(FigureInfo, BTreeSet<i64>)>> {
+    let mut changes = Vec::new();
+    let mut csv = String::from("point,state,metric,iteration,value,error,abs_change\n");
+    let mut src = BTreeSet::new();
+    for p in points {
+        let Some(series) = p.metrics.get(main) else {
+            continue;
+        };
+        let label = if p.state == "converged" {
+            p.id.clone()
+        } else {
+            format!("{} ({})", p.id, p.state)
+        };
+        let mut change = Series {
+            label,
+            points: Vec::new(),
+        };
+        let mut prev: Option<f64> = None;
+        for (&it, s) in series {
+            src.insert(s.attempt);
+            let d = prev.map(|q| (s.value - q).abs());
+            if let Some(d) = d {
+                change.points.push((it as f64, d, None));
+            }
+            let _ = writeln!(
+                csv,
+                "{},{},{},{},{},{},{}",
+                csv_field(&p.id),
+                csv_field(&p.state),
+                csv_field(main),
+                it,
+                num(s.value),
+                opt_num(s.error),
+                opt_num(d)
+            );
+            prev = Some(s.value);
+        }
+        changes.push(change);
+    }
+    if changes.is_empty() {
+        notes.push(format!(
+            "no point recorded {main} in a good iteration; no overview figure"
+        ));
+        return Ok(None);
+    }
+    // right panel: the volume axis, else the first axis with numbers
+    let x_axis = if points.iter().any(|p| p.axis(&opts.volume_axis).is_some()) {
+        Some(opts.volume_axis.clone())
+    } else {
+        points
+            .iter()
+            .flat_map(|p| p.values.iter())
+            .find(|(_, v)| v.is_number())
+            .map(|(k, _)| k.clone())
+    };
+    let finals = x_axis.map(|x_axis| {
+        // grouped by temperature unless the temperature is the x axis
+        let by_t = x_axis != opts.temperature_axis;
+        let mut sets: Vec<(String, Vec<&PointData>)> = Vec::new();
+        if by_t {
+            for (t, pts) in groups.values() {
+                sets.push((t_label(*t), pts.clone()));
+            }
+        } else {
+            sets.push(("all points".into(), points.iter().collect()));
+        }
+        let mut series = Vec::new();
+        let mut unconverged = Vec::new();
+        for (label, pts) in sets {
+            let mut s = Series {
+                label,
+                points: Vec::new(),
+            };
+            for p in pts {
+                let (Some(x), Some(v)) = (p.axis(&x_axis), p.converged(main)) else {
+                    continue;
+                };
+                s.points.push((x, v.value, v.error));
+                if p.state != "converged" {
+                    unconverged.push((x, v.value));
+                }
+            }
+            s.points.sort_by(|a, b| a.0.total_cmp(&b.0));
+            if !s.points.is_empty() {
+                series.push(s);
+            }
+        }
+        Finals {
+            x_label: if x_axis == opts.volume_axis {
+                format!("{x_axis} (Å³)")
+            } else if x_axis == opts.temperature_axis {
+                format!("{x_axis} (K)")
+            } else {
+                x_axis
+            },
+            groups: series,
+            unconverged,
+        }
+    });
+    let finals = finals.filter(|f| !f.groups.is_empty());
+    let title = format!("Overview: {main} at all {} points", changes.len());
+    let size = if finals.is_some() {
+        (1500, 640)
+    } else {
+        (900, 640)
+    };
+    let plot = Plot::Overview {
+        title: title.clone(),
+        metric: main.to_string(),
+        changes,
+        finals,
+    };
+    render(dir, "overview", size, &plot)?;
+    fs::write(dir.join("overview.csv"), &csv).context("cannot write overview.csv")?;
+    for f in ["overview.svg", "overview.png", "overview.csv"] {
+        out.add(f, &src);
+    }
+    let fig = FigureInfo {
+        name: "overview".into(),
+        title,
+        svg: "overview.svg".into(),
+        png: "overview.png".into(),
+        csv: "overview.csv".into(),
+    };
+    Ok(Some((fig, src)))
+}
+
 type Built = (
     Vec<FigureInfo>,
     Vec<String>,
@@ -1006,7 +1470,7 @@ fn build(
     let mut figures = Vec::new();
     let mut notes = Vec::new();
     let mut all_sources = BTreeSet::new();
-    let n_fig = points.len() + 2;
+    let n_fig = points.len() + 3;
     let total = n_fig + 3;
     let mut done = 0;
     let mut step = |done: &mut usize, what: String| {
@@ -1100,16 +1564,23 @@ fn build(
     }
 
     // group converged points by temperature
-    let mut groups: BTreeMap<String, (Option<f64>, Vec<&PointData>)> = BTreeMap::new();
+    let mut groups: Groups<'_> = BTreeMap::new();
     for p in points {
         let t = p.axis(&opts.temperature_axis);
         let key = t.map(|t| format!("{:020.6}", t)).unwrap_or_default();
         groups.entry(key).or_insert((t, Vec::new())).1.push(p);
     }
-    let t_label = |t: Option<f64>| match t {
-        Some(t) => format!("T = {t} K"),
-        None => "all points".to_string(),
-    };
+
+    // overview: every point's main metric (the first convergence metric)
+    step(&mut done, "overview".into());
+    if let Some(main) = conv_metrics.first() {
+        overview(dir, points, main, opts, &groups, &mut out, &mut notes)?
+            .into_iter()
+            .for_each(|(f, src)| {
+                all_sources.extend(src);
+                figures.insert(0, f);
+            });
+    }
 
     // energy versus volume with the equation of state
     step(&mut done, "energy versus volume".into());
@@ -1487,6 +1958,45 @@ mod tests {
         assert!(lo < 2.0 && hi > 2.0);
         let (lo, hi) = range(std::iter::empty(), 0.1);
         assert_eq!((lo, hi), (0.0, 1.0));
+    }
+
+    #[test]
+    fn series_looks_differ_in_more_than_colour() {
+        // 30 series before a (colour, pattern, marker) combination repeats
+        let combos: BTreeSet<_> = (0..30)
+            .map(|i| {
+                let l = look(i);
+                (l.color.rgb(), l.dash as u8, l.shape.map(|s| s as u8))
+            })
+            .collect();
+        assert_eq!(combos.len(), 30);
+        assert_eq!(look(30), look(0));
+        // neighbours differ in pattern and marker, not only in colour
+        for i in 0..29 {
+            let (a, b) = (look(i), look(i + 1));
+            assert_ne!(a.dash, b.dash);
+            assert_ne!(a.shape, b.shape);
+        }
+        // the solid line is the widest, and only the disc is filled
+        assert!(look(0).width > look(1).width && look(0).width > look(2).width);
+        for i in 0..5 {
+            let (fill, fill_style, _, _) = marker_parts(&look(i));
+            let filled = !fill.is_empty() && fill_style.color.alpha() > 0.0;
+            assert_eq!(filled, look(i).shape == Some(Shape::Disc), "{i}");
+        }
+    }
+
+    #[test]
+    fn palette_is_okabe_ito_without_yellow_and_black() {
+        let hex: Vec<String> = PALETTE
+            .iter()
+            .map(|c| format!("#{:02X}{:02X}{:02X}", c.0, c.1, c.2))
+            .collect();
+        assert_eq!(
+            hex,
+            ["#0072B2", "#D55E00", "#009E73", "#CC79A7", "#E69F00", "#56B4E9"]
+        );
+        assert_eq!(tint(RGBColor(0, 100, 255), 0.5), RGBColor(128, 178, 255));
     }
 
     #[test]

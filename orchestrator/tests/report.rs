@@ -79,8 +79,8 @@ async fn report_folder_is_complete_and_fits_the_equation_of_state() -> Result<()
     let d = tempfile::tempdir()?;
     let (_fx, sum, steps) = make_report(d.path()).await?;
     let out = &sum.out_dir;
-    // 10 convergence figures + eos + probabilities
-    assert_eq!(sum.figures.len(), 12, "{:?}", sum.figures);
+    // the overview + 10 convergence figures + eos + probabilities
+    assert_eq!(sum.figures.len(), 13, "{:?}", sum.figures);
     for f in &sum.figures {
         for file in [&f.svg, &f.png, &f.csv] {
             let p = out.join(file);
@@ -152,7 +152,7 @@ async fn pngs_decode_and_are_not_blank() -> Result<()> {
     };
     let d = tempfile::tempdir()?;
     let (_fx, sum, _) = make_report(d.path()).await?;
-    for name in ["eos", "probabilities", "convergence-p001"] {
+    for name in ["eos", "probabilities", "convergence-p001", "overview"] {
         let f = sum.figures.iter().find(|f| f.name == name).context(name)?;
         let (w, h, nonwhite, dark, colours) = png_stats(&py, &sum.out_dir.join(&f.png))?;
         assert!(w >= 700 && h >= 300, "{name}: {w}x{h}");
@@ -464,5 +464,245 @@ async fn energies_with_errors_give_a_weighted_fit() -> Result<()> {
     assert!(csv
         .lines()
         .any(|l| l.starts_with("data,") && l.contains(",0.0002,")));
+    Ok(())
+}
+
+/// Pixels of each colour (hex RRGGBB) in a PNG, counted by tests/fixtures/png_colours.py.
+fn png_colour_counts(py: &str, png: &Path, colours: &[&str]) -> Result<Vec<u64>> {
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/png_colours.py");
+    let o = Command::new(py)
+        .arg(&script)
+        .arg(png)
+        .args(colours)
+        .output()?;
+    if !o.status.success() {
+        bail!(
+            "{}: {}",
+            png.display(),
+            String::from_utf8_lossy(&o.stderr).trim()
+        );
+    }
+    let s = String::from_utf8_lossy(&o.stdout).to_string();
+    let v = s
+        .split_whitespace()
+        .map(|x| x.parse::<u64>())
+        .collect::<std::result::Result<Vec<_>, _>>()?;
+    if v.len() != colours.len() {
+        bail!("png_colours printed `{s}`");
+    }
+    Ok(v)
+}
+
+/// The text elements of an SVG: (content, x, y, font size).
+fn svg_texts(svg: &str) -> Vec<(String, f64, f64, f64)> {
+    let attr = |el: &str, name: &str| -> Option<f64> {
+        el.split(&format!(" {name}=\""))
+            .nth(1)?
+            .split('"')
+            .next()?
+            .parse()
+            .ok()
+    };
+    let mut out = Vec::new();
+    for part in svg.split("<text").skip(1) {
+        let Some((tag, rest)) = part.split_once('>') else {
+            continue;
+        };
+        let Some((content, _)) = rest.split_once("</text>") else {
+            continue;
+        };
+        if let (Some(x), Some(y), Some(size)) =
+            (attr(tag, "x"), attr(tag, "y"), attr(tag, "font-size"))
+        {
+            out.push((content.trim().to_string(), x, y, size));
+        }
+    }
+    out
+}
+
+/// The drawn (non-empty) polylines of an SVG, as lists of points.
+fn polylines(svg: &str) -> Vec<Vec<(f64, f64)>> {
+    svg.split("<polyline")
+        .skip(1)
+        .filter_map(|el| {
+            let pts = el.split("points=\"").nth(1)?.split('"').next()?;
+            let v: Vec<(f64, f64)> = pts
+                .split_whitespace()
+                .filter_map(|p| {
+                    let (x, y) = p.split_once(',')?;
+                    Some((x.parse().ok()?, y.parse().ok()?))
+                })
+                .collect();
+            (!v.is_empty()).then_some(v)
+        })
+        .collect()
+}
+
+/// The legend swatch of the entry `label`: the polylines drawn in the 60 pixels left of
+/// the label's text, within its line height.
+fn swatch(svg: &str, label: &str) -> Result<Vec<Vec<(f64, f64)>>> {
+    let texts = svg_texts(svg);
+    let &(_, x, y, size) = texts
+        .iter()
+        .find(|t| t.0 == label)
+        .with_context(|| format!("no text `{label}` in the SVG"))?;
+    Ok(polylines(svg)
+        .into_iter()
+        .filter(|l| {
+            l.iter()
+                .all(|p| p.0 >= x - 60.0 && p.0 < x && p.1 >= y - 4.0 && p.1 <= y + size + 4.0)
+        })
+        .collect())
+}
+
+/// The horizontal two-point pieces of a swatch (its line), left to right.
+fn line_pieces(sw: &[Vec<(f64, f64)>]) -> Vec<(f64, f64, f64)> {
+    let mut v: Vec<(f64, f64, f64)> = sw
+        .iter()
+        .filter(|l| l.len() == 2 && l[0].1 == l[1].1)
+        .map(|l| (l[0].0.min(l[1].0), l[0].0.max(l[1].0), l[0].1))
+        .collect();
+    v.sort_by(|a, b| a.0.total_cmp(&b.0));
+    v
+}
+
+#[tokio::test]
+async fn overview_figure_shows_every_point_first() -> Result<()> {
+    let d = tempfile::tempdir()?;
+    let (_fx, sum, _) = make_report(d.path()).await?;
+    let first = sum.figures.first().context("figures")?;
+    assert_eq!(first.name, "overview", "{:?}", sum.figures);
+    assert_eq!(first.png, "overview.png");
+    let html = std::fs::read_to_string(sum.out_dir.join("index.html"))?;
+    let ov = html
+        .find("src=\"overview.png\"")
+        .context("overview not shown in index.html")?;
+    let conv = html
+        .find("src=\"convergence-p001.png\"")
+        .context("convergence-p001 in index.html")?;
+    assert!(ov < conv, "the overview comes before the per-point figures");
+    // its data: the first stop-rule metric (update.n_f) of all 10 points, 3 iterations each
+    let csv = std::fs::read_to_string(sum.out_dir.join("overview.csv"))?;
+    let mut lines = csv.lines();
+    assert_eq!(
+        lines.next(),
+        Some("point,state,metric,iteration,value,error,abs_change")
+    );
+    let rows: Vec<&str> = lines.collect();
+    assert_eq!(rows.len(), 30, "{csv}");
+    for i in 1..=10 {
+        let id = format!("p{i:03}");
+        let n = rows
+            .iter()
+            .filter(|l| l.starts_with(&format!("{id},converged,update.n_f,")))
+            .count();
+        assert_eq!(n, 3, "{id} in overview.csv");
+    }
+    // p003 (V = 27, T = 100 K) at iteration 3: the fixture's n_f and its change
+    let row = rows
+        .iter()
+        .find(|l| l.starts_with("p003,converged,update.n_f,3,"))
+        .context("p003 iteration 3")?;
+    let f: Vec<&str> = row.split(',').collect();
+    assert_eq!(f[4].parse::<f64>()?, fixtures::n_f(27.0, 100.0, 3));
+    let change = (fixtures::n_f(27.0, 100.0, 3) - fixtures::n_f(27.0, 100.0, 2)).abs();
+    assert_eq!(f[6].parse::<f64>()?, change);
+    // every point is named in the legend of the convergence panel, both temperatures in the
+    // panel of final values
+    let svg = std::fs::read_to_string(sum.out_dir.join("overview.svg"))?;
+    for i in 1..=10 {
+        assert!(
+            svg_texts(&svg).iter().any(|t| t.0 == format!("p{i:03}")),
+            "p{i:03} not in the legend"
+        );
+    }
+    for t in ["T = 100 K", "T = 600 K"] {
+        assert!(
+            svg_texts(&svg).iter().any(|x| x.0 == t),
+            "{t} not in the legend"
+        );
+    }
+    Ok(())
+}
+
+#[tokio::test]
+async fn legend_swatches_show_each_series_line_style() -> Result<()> {
+    let d = tempfile::tempdir()?;
+    let (_fx, sum, _) = make_report(d.path()).await?;
+    let svg = std::fs::read_to_string(sum.out_dir.join("eos.svg"))?;
+    for t in ["100", "600"] {
+        // Birch-Murnaghan: one unbroken line, no marker
+        let bm = swatch(&svg, &format!("T = {t} K Birch-Murnaghan 3"))?;
+        let pieces = line_pieces(&bm);
+        assert_eq!(pieces.len(), 1, "{t} K BM3 swatch: {bm:?}");
+        assert!(
+            pieces[0].1 - pieces[0].0 >= 20.0,
+            "{t} K BM3 swatch: {bm:?}"
+        );
+        assert_eq!(bm.len(), 1, "{t} K BM3 swatch has a marker: {bm:?}");
+        // Vinet: dashed, i.e. several pieces on one line with gaps between them
+        let vi = swatch(&svg, &format!("T = {t} K Vinet"))?;
+        let pieces = line_pieces(&vi);
+        assert!(
+            pieces.len() >= 2,
+            "{t} K Vinet swatch is not dashed: {vi:?}"
+        );
+        assert!(pieces.iter().all(|p| p.2 == pieces[0].2), "{vi:?}");
+        for w in pieces.windows(2) {
+            assert!(w[1].0 > w[0].1, "no gap between dashes: {vi:?}");
+        }
+        // the data entry: a marker, no line
+        let data = swatch(&svg, &format!("T = {t} K"))?;
+        assert!(
+            line_pieces(&data).is_empty(),
+            "the data swatch has a line: {data:?}"
+        );
+    }
+    // the two temperatures' data markers differ in shape, not only in colour
+    let outline = |label: &str| -> Result<Vec<(f64, f64)>> {
+        let sw = swatch(&svg, label)?;
+        let l = sw
+            .first()
+            .with_context(|| format!("{label}: no marker outline"))?;
+        Ok(l.iter().map(|p| (p.0 - l[0].0, p.1 - l[0].1)).collect())
+    };
+    assert_ne!(outline("T = 100 K")?, outline("T = 600 K")?);
+    Ok(())
+}
+
+#[tokio::test]
+async fn coincident_probability_curves_stay_visible() -> Result<()> {
+    let Some(py) = python() else {
+        eprintln!("SKIPPED: python3 is not available to decode the PNGs");
+        return Ok(());
+    };
+    let d = tempfile::tempdir()?;
+    let fx = fixtures::build(d.path()).await?;
+    // p0 and p2 both zero at every point (the strong-coupling case): equal curves
+    sqlx::query("UPDATE metrics SET value = 0 WHERE name IN ('solve.p0', 'solve.p2')")
+        .execute(&fx.pool)
+        .await?;
+    let sum = report::generate(&fx.pool, &fx.ws, &d.path().join("r"), &mut |_| {}).await?;
+    // the report's first and third colours (Okabe-Ito blue and bluish green: docs/report.md)
+    let png = sum.out_dir.join("probabilities.png");
+    let n = png_colour_counts(&py, &png, &["0072B2", "009E73", "D55E00"])?;
+    let (p0, p2, p1) = (n[0], n[1], n[2]);
+    eprintln!("probabilities.png: {p0} pixels of p0's colour, {p1} of p1's, {p2} of p2's");
+    // p2 is drawn on top of p0; p0 must still show (in the gaps of p2's dotted line and
+    // around p2's hollow markers), not just in its legend swatch (about 100 pixels a panel)
+    assert!(p1 > 1000, "p1 drawn: {p1} pixels");
+    assert!(p2 > 300, "p2 drawn: {p2} pixels");
+    assert!(
+        p0 as f64 > 0.5 * p2 as f64 && p0 > 600,
+        "p0 hidden under p2: {p0} pixels of its colour against {p2}"
+    );
+    // and the three series differ in line pattern and marker in the SVG
+    let svg = std::fs::read_to_string(sum.out_dir.join("probabilities.svg"))?;
+    let solid = line_pieces(&swatch(&svg, "solve.p0")?);
+    let dashed = line_pieces(&swatch(&svg, "solve.p1")?);
+    let dotted = line_pieces(&swatch(&svg, "solve.p2")?);
+    assert_eq!(solid.len(), 1, "{solid:?}");
+    assert!(dashed.len() >= 2, "{dashed:?}");
+    assert!(dotted.len() > dashed.len(), "{dotted:?} vs {dashed:?}");
     Ok(())
 }
