@@ -202,6 +202,148 @@ impl Validator<'_> {
 mod tests {
     use std::path::Path;
 
+    use super::super::stages::with_stage;
+    use super::super::testing::*;
+    use super::*;
+
+    /// Built-in stage `b` (written by the test) after a stage `solve` with outputs `sigma`,
+    /// `density`, `gtau`, `delta`, `levels`.
+    fn builtin(b: &str) -> crate::spec::raw::CampaignFile {
+        raw(&format!(
+            "campaign: t
+cycle:
+  solve:
+    run: [/bin/true]
+    outputs: {{ sigma: s.npy, density: d.json, gtau: g.npy, delta: h.npy, levels: l.json }}
+  b: {b}
+stop: {{ max-iterations: 1 }}
+"
+        ))
+    }
+
+    fn mix_of(b: &str) -> (Option<StageKind>, Vec<(u64, u64, String)>) {
+        with_stage(&builtin(b), "b", |v, _, s| v.mix(s))
+    }
+
+    fn filter_of(b: &str) -> (Option<StageKind>, Vec<(u64, u64, String)>) {
+        with_stage(&builtin(b), "b", |v, _, s| v.filter(s))
+    }
+
+    const MIX: &str = "builtin: mix, inputs: { sigma: solve.sigma, density: solve.density }";
+
+    #[test]
+    fn a_mix_of_two_roles_with_weights_is_kept_with_its_settings() {
+        let (k, d) = mix_of(&format!(
+            "{{ {MIX}, outputs: {{ sigma: s.npy, density: d.json }}, settings: {{ method: anderson, alpha: 0.4, history: 8, weights: {{ density: 10 }} }} }}"
+        ));
+        assert!(d.is_empty(), "{d:?}");
+        let Some(StageKind::Mix(with)) = k else {
+            panic!("{k:?}")
+        };
+        assert_eq!((with.alpha, with.history), (0.4, Some(8)));
+        // the one-array form: input `new`, one output of any name
+        let (k, d) = mix_of(
+            "{ builtin: mix, inputs: { new: solve.sigma }, outputs: { sigma: s.npy }, settings: { method: linear, alpha: 0.5 } }",
+        );
+        assert!(k.is_some() && d.is_empty(), "{d:?}");
+    }
+
+    #[test]
+    fn a_mix_without_settings_or_with_alpha_out_of_range_is_reported_at_the_stage() {
+        let (k, d) = mix_of(&format!(
+            "{{ {MIX}, outputs: {{ sigma: s.npy, density: d.json }} }}"
+        ));
+        assert!(k.is_none());
+        assert_eq!(
+            d,
+            vec![(
+                6,
+                3,
+                "built-in stage `b` needs `settings: { method: linear, alpha: 0.5 }`".to_string()
+            )]
+        );
+        let (_, d) = mix_of(&format!(
+            "{{ {MIX}, outputs: {{ sigma: s.npy, density: d.json, state: x.json }}, settings: {{ method: linear, alpha: 1.5 }} }}"
+        ));
+        assert_eq!(
+            d,
+            vec![
+                (6, 3, "stage `b`: alpha must be in (0, 1]".to_string()),
+                (
+                    6,
+                    120,
+                    "mix output `state` is not one of the stage's input roles (sigma, density)"
+                        .to_string()
+                ),
+                (6, 3, "the mixer's `state` output is implicit".to_string()),
+            ]
+        );
+    }
+
+    #[test]
+    fn a_mix_without_inputs_or_with_two_outputs_of_one_array_is_reported() {
+        let (_, d) = mix_of(
+            "{ builtin: mix, outputs: { sigma: s.npy }, settings: { method: linear, alpha: 0.5 } }",
+        );
+        assert_eq!(
+            d,
+            vec![(6, 3, "built-in stage `b` has no inputs to mix".to_string())]
+        );
+        let (_, d) = mix_of(
+            "{ builtin: mix, inputs: { new: solve.sigma }, outputs: { a: a.npy, b: b.npy }, settings: { method: linear, alpha: 0.5 } }",
+        );
+        assert_eq!(
+            d,
+            vec![(
+                6,
+                3,
+                "built-in stage `b` with the single input `new` has exactly one output (the mixed array)"
+                    .to_string()
+            )]
+        );
+    }
+
+    const FILTER: &str = "builtin: filter, settings: { legendre: 40, matsubara: 512 }";
+
+    #[test]
+    fn a_filter_of_a_gtau_to_giw_and_sigma_is_kept_with_its_settings() {
+        let (k, d) = filter_of(&format!(
+            "{{ {FILTER}, inputs: {{ gtau: solve.gtau, delta: solve.delta, levels: solve.levels }}, outputs: {{ giw: giw.npy, sigma: sigma.npy }} }}"
+        ));
+        assert!(d.is_empty(), "{d:?}");
+        assert!(matches!(k, Some(StageKind::Filter(w)) if (w.legendre, w.matsubara) == (40, 512)));
+    }
+
+    #[test]
+    fn a_filter_with_wrong_settings_inputs_or_outputs_is_reported_at_the_stage() {
+        let cases = [
+            (
+                "{ builtin: filter, inputs: { gtau: solve.gtau }, outputs: { giw: g.npy } }",
+                "built-in stage `b` needs `settings: { legendre: 40, matsubara: 512 }`",
+            ),
+            (
+                "{ builtin: filter, settings: { legendre: 0, matsubara: 512 }, inputs: { gtau: solve.gtau }, outputs: { giw: g.npy } }",
+                "stage `b`: legendre and matsubara must be at least 1",
+            ),
+            (
+                "{ builtin: filter, settings: { legendre: 4, matsubara: 8 }, inputs: { sigma: solve.sigma }, outputs: { giw: g.npy } }",
+                "built-in stage `b` takes inputs `gtau` (and `delta`, `levels` for Σ)",
+            ),
+            (
+                "{ builtin: filter, settings: { legendre: 4, matsubara: 8 }, inputs: { gtau: solve.gtau }, outputs: { density: g.npy } }",
+                "built-in stage `b` writes some of the outputs gtau, giw, sigma, gl",
+            ),
+            (
+                "{ builtin: filter, settings: { legendre: 4, matsubara: 8 }, inputs: { gtau: solve.gtau }, outputs: { sigma: s.npy } }",
+                "stage `b`: the output `sigma` needs the inputs `delta` and `levels`",
+            ),
+        ];
+        for (b, want) in cases {
+            let (_, d) = filter_of(b);
+            assert_eq!(d, vec![(6, 3, want.to_string())], "{b}");
+        }
+    }
+
     /// The demo campaign with one replacement, and the diagnostics of parsing it.
     fn demo_with(from: &str, to: &str) -> String {
         let file = Path::new(env!("CARGO_MANIFEST_DIR")).join("../examples/model-sweep.yaml");

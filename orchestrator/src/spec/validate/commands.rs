@@ -205,3 +205,176 @@ fn placeholder_hint(s: &StageAt, ns: Option<&str>, params: &BTreeSet<String>) ->
         Some(_) => "namespaces: param, input, output, point (and program in shell scripts)".into(),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use std::path::PathBuf;
+
+    use super::super::stages::with_stage;
+    use super::super::testing::*;
+    use super::*;
+
+    /// Stage `s` (written by the test) with one input `x`, one output `y` and the program
+    /// `engine` declared.
+    fn stage(s: &str) -> crate::spec::raw::CampaignFile {
+        raw(&format!(
+            "campaign: t
+programs: {{ engine: {{ path: /bin/sh }} }}
+parameters: {{ u: 6.0 }}
+start: {{ s0: x.json }}
+cycle:
+  {s}
+stop: {{ max-iterations: 1 }}
+"
+        ))
+    }
+
+    const IO: &str = "inputs: { x: start.s0 }, outputs: { y: y.json }";
+
+    fn command_of(s: &str) -> (Option<StageKind>, Vec<(u64, u64, String)>) {
+        let raw = stage(s);
+        with_stage(&raw, "s", |v, cx, st| {
+            let Some(Spanned {
+                value: crate::spec::raw::RunSpec::List(list),
+                ..
+            }) = &st.spec.run
+            else {
+                panic!("an argument list: {s}")
+            };
+            v.command(cx, st, list, &mut BTreeMap::new())
+        })
+    }
+
+    fn shell_of(s: &str) -> (Option<StageKind>, Vec<(u64, u64, String)>) {
+        let raw = stage(s);
+        let programs = BTreeMap::from([(
+            "engine".to_string(),
+            ResolvedProgram {
+                path: PathBuf::from("/bin/sh"),
+                version_flag: None,
+            },
+        )]);
+        with_stage(&raw, "s", |v, cx, st| {
+            let Some(run) = &st.spec.run else {
+                panic!("a run: {s}")
+            };
+            let crate::spec::raw::RunSpec::Script(script) = &run.value else {
+                panic!("a script: {s}")
+            };
+            v.shell_script(cx, st, script, loc(run), &programs)
+        })
+    }
+
+    #[test]
+    fn an_argument_list_with_known_placeholders_becomes_a_command() {
+        let (k, d) = command_of(&format!(
+            "s: {{ run: [engine, \"{{{{param:u}}}}\", \"{{{{input:x}}}}\", \"{{{{output:y}}}}\", \"{{{{point:id}}}}\", \"{{{{seed}}}}\"], {IO} }}"
+        ));
+        assert!(d.is_empty(), "{d:?}");
+        assert!(matches!(k, Some(StageKind::Command { program, .. }) if program == "engine"));
+    }
+
+    #[test]
+    fn an_empty_list_or_settings_on_a_command_are_reported() {
+        let (k, d) = command_of("s: { run: [] }");
+        assert!(k.is_none());
+        assert_eq!(d, vec![(6, 3, "stage `s`: `run` is empty".to_string())]);
+        let (k, d) = command_of("s: { run: [engine], settings: { legendre: 4, matsubara: 8 } }");
+        assert!(
+            k.is_some(),
+            "the settings are reported, the stage still checked"
+        );
+        assert_eq!(
+            d,
+            vec![(
+                6,
+                14,
+                "stage `s`: `settings` is for built-in stages".to_string()
+            )]
+        );
+    }
+
+    #[test]
+    fn undefined_placeholders_are_reported_at_their_argument_with_what_exists() {
+        let cases = [
+            (
+                "\"{{param:v}}\"",
+                "stage `s`: undefined placeholder `{{param:v}}`",
+            ),
+            (
+                "\"{{input:z}}\"",
+                "stage `s`: undefined placeholder `{{input:z}}`",
+            ),
+            (
+                "\"{{output:z}}\"",
+                "stage `s`: undefined placeholder `{{output:z}}`",
+            ),
+            (
+                "\"{{point:name}}\"",
+                "stage `s`: undefined placeholder `{{point:name}}`",
+            ),
+            (
+                "\"{{other:z}}\"",
+                "stage `s`: undefined placeholder `{{other:z}}`",
+            ),
+            (
+                "\"{{program:engine}}\"",
+                "stage `s`: `{{program:engine}}` is for shell scripts",
+            ),
+        ];
+        for (arg, want) in cases {
+            let (k, d) = command_of(&format!("s: {{ run: [engine, --a, {arg}], {IO} }}"));
+            assert!(k.is_none(), "{arg}");
+            assert_eq!(d, vec![(6, 27, want.to_string())], "{arg}");
+        }
+        let raw = stage(&format!(
+            "s: {{ run: [engine, \"{{{{param:v}}}}\"], {IO} }}"
+        ));
+        let ((), _) = with_stage(&raw, "s", |_, cx, st| {
+            assert_eq!(
+                placeholder_hint(st, Some("param"), cx.params),
+                "parameters and sweep axes: u"
+            );
+            assert_eq!(
+                placeholder_hint(st, Some("input"), cx.params),
+                "inputs of `s`: x"
+            );
+            assert_eq!(
+                placeholder_hint(st, Some("output"), cx.params),
+                "outputs of `s`: y"
+            );
+        });
+    }
+
+    #[test]
+    fn a_shell_script_records_the_programs_it_names() {
+        let (k, d) = shell_of(&format!(
+            "s: {{ run: \"{{{{program:engine}}}} -c true {{{{param:u}}}} > log\", shell: true, {IO} }}"
+        ));
+        assert!(d.is_empty(), "{d:?}");
+        assert!(
+            matches!(&k, Some(StageKind::Shell { programs, .. }) if programs == &["engine".to_string()]),
+            "{k:?}"
+        );
+    }
+
+    #[test]
+    fn an_empty_script_a_quoted_placeholder_or_an_undeclared_program_are_reported() {
+        let cases = [
+            ("\"  \"", "stage `s`: the script is empty"),
+            ("\"/bin/echo {{param:\"", "stage `s`: character 11: "),
+            (
+                "\"/bin/echo '{{param:u}}'\"",
+                "stage `s`: placeholder `{{param:u}}` (character 12) is inside quotes in the script; rondo single-quotes every value itself",
+            ),
+            ("\"{{program:nope}} hi\"", "stage `s`: no program `nope` under `programs:`"),
+        ];
+        for (script, want) in cases {
+            let (k, d) = shell_of(&format!("s: {{ run: {script}, shell: true }}"));
+            assert!(k.is_none(), "{script}");
+            assert_eq!(d.len(), 1, "{script}: {d:?}");
+            assert_eq!((d[0].0, d[0].1), (6, 13), "{script}");
+            assert!(d[0].2.starts_with(want), "{script}: {d:?}");
+        }
+    }
+}

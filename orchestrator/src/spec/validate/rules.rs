@@ -165,3 +165,125 @@ impl Validator<'_> {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::super::testing::*;
+    use super::*;
+    use crate::spec::raw::Compare;
+
+    /// A cycle of a program stage `p` (metrics `e`, `n`), a mix and a filter, with `stop`.
+    fn with_stop(stop: &str) -> (CampaignFile, String) {
+        let text = format!(
+            "campaign: t
+start: {{ s0: x.json }}
+cycle:
+  p: {{ run: [/bin/true], metrics: [e, n], outputs: {{ y: y.npy, g: g.npy }} }}
+  m: {{ builtin: mix, inputs: {{ y: p.y }}, outputs: {{ y: y.npy }} }}
+  f: {{ builtin: filter, inputs: {{ gtau: p.g }}, outputs: {{ giw: giw.npy }} }}
+stop: {stop}
+"
+        );
+        (raw(&text), text)
+    }
+
+    fn stop_of(stop: &str) -> (Stop, Vec<(u64, u64, String)>) {
+        let (raw, text) = with_stop(stop);
+        let mut v = validator();
+        let s = v.stop(&raw, &text);
+        (s, found(&v))
+    }
+
+    #[test]
+    fn rules_on_reported_metrics_are_kept_with_their_settings() {
+        let (s, d) = stop_of(
+            "{ max-iterations: 9, combine: any, final-window: 3, when: [
+    { metric: p.e, change-below: 1.0e-6, for: 2, compare: window },
+    { metric: m.residual_norm_y, relative-change-below: 0.01, diverge-above: 5 },
+    { metric: f.density_per_spin, within-errors: 2 } ] }",
+        );
+        assert!(d.is_empty(), "{d:?}");
+        assert_eq!(
+            (s.combine, s.max_iterations, s.final_window, s.rules.len()),
+            (Combine::Any, 9, 3, 3)
+        );
+        let r = &s.rules[0];
+        assert_eq!(
+            (r.metric.as_str(), r.for_, r.compare),
+            ("p.e", 2, Compare::Window)
+        );
+        assert!(matches!(r.test, RuleTest::Abs(x) if x == 1.0e-6));
+        assert!(matches!(s.rules[1].test, RuleTest::Rel(x) if x == 0.01));
+        assert_eq!(s.rules[1].diverge_above, Some(5.0));
+        assert!(matches!(s.rules[2].test, RuleTest::Errors(k) if k == 2.0));
+        assert!(s.warnings.is_empty());
+    }
+
+    #[test]
+    fn no_rule_is_a_warning_at_the_stop_line_and_a_zero_cap_an_error_at_its_value() {
+        let (s, d) = stop_of("{ max-iterations: 0 }");
+        assert_eq!(
+            d,
+            vec![(7, 25, "stop.max-iterations must be at least 1".to_string())]
+        );
+        let w: Vec<(u64, u64, &str)> = s
+            .warnings
+            .iter()
+            .map(|w| (w.line, w.column, w.message.as_str()))
+            .collect();
+        assert_eq!(
+            w,
+            [(
+                7,
+                1,
+                "no stopping rule: every point runs max-iterations iterations"
+            )]
+        );
+    }
+
+    #[test]
+    fn a_rule_on_a_metric_its_stage_does_not_report_is_reported_at_the_metric() {
+        let cases = [
+            ("nodot", "metric `nodot` must be written stage.metric"),
+            ("q.e", "stop rule names unknown stage `q`"),
+            ("p.x", "stage `p` does not list metric `x`"),
+            (
+                "m.energy",
+                "built-in stage `m` reports residual_norm, residual_norm_ROLE (several inputs), history and resets, not `energy`",
+            ),
+            (
+                "f.residual",
+                "built-in stage `f` reports legendre_kept, legendre_dropped, density_per_spin, tail_c1, not `residual`",
+            ),
+        ];
+        for (metric, want) in cases {
+            let (s, d) = stop_of(&format!(
+                "{{ max-iterations: 1, when: [{{ metric: {metric}, change-below: 0.1 }}] }}"
+            ));
+            assert_eq!(d, vec![(7, 45, want.to_string())], "{metric}");
+            // only a rule that cannot be split into stage and metric is dropped
+            assert_eq!(s.rules.len(), usize::from(metric != "nodot"), "{metric}");
+        }
+    }
+
+    #[test]
+    fn a_rule_needs_exactly_one_positive_test_and_a_positive_divergence_bound() {
+        let cases = [
+            (
+                "change-below: 0.1, within-errors: 2",
+                "a stop rule needs exactly one of change-below, relative-change-below, within-errors",
+            ),
+            ("", "a stop rule needs exactly one of change-below, relative-change-below, within-errors"),
+            ("change-below: -1", "tolerances must be positive numbers and `for` at least 1"),
+            ("change-below: 0.1, for: 0", "tolerances must be positive numbers and `for` at least 1"),
+            ("change-below: 0.1, diverge-above: 0", "diverge-above must be a positive number"),
+        ];
+        for (test, want) in cases {
+            let (s, d) = stop_of(&format!(
+                "{{ max-iterations: 1, when: [{{ metric: p.e, {test} }}] }}"
+            ));
+            assert_eq!(d, vec![(7, 45, want.to_string())], "{test}");
+            assert!(s.rules.is_empty(), "{test}");
+        }
+    }
+}

@@ -348,3 +348,223 @@ impl Validator<'_> {
         }
     }
 }
+
+/// Run `f` on stage `name` of `raw` as the stage loop would (its inputs checked first), with
+/// the parameters of `raw` as the only `{{param:}}` names; the diagnostics of both.
+#[cfg(test)]
+pub(super) fn with_stage<R>(
+    raw: &CampaignFile,
+    name: &str,
+    f: impl FnOnce(&mut Validator, &Cycle, &StageAt) -> R,
+) -> (R, Vec<(u64, u64, String)>) {
+    let params: BTreeSet<String> = raw.parameters.keys().map(str::to_string).collect();
+    let cx = Cycle {
+        raw,
+        base: Path::new("."),
+        params: &params,
+        declared: raw.programs.keys().map(str::to_string).collect(),
+    };
+    let Some((key, st)) = raw.cycle.0.iter().find(|(k, _)| k.value == name) else {
+        panic!("no stage `{name}`")
+    };
+    let mut v = super::testing::validator();
+    let inputs = v.inputs(raw, st);
+    let s = StageAt {
+        name,
+        at: loc(key),
+        spec: st,
+        inputs: &inputs,
+    };
+    let r = f(&mut v, &cx, &s);
+    (r, super::testing::found(&v))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::super::testing::*;
+    use super::*;
+
+    /// A cycle of three stages (`stages` replaces the third), one start file.
+    fn cycle(third: &str) -> CampaignFile {
+        raw(&format!(
+            "campaign: t
+start: {{ s0: x.json }}
+cycle:
+  a:
+    run: [/bin/true, \"{{{{input:x}}}}\"]
+    inputs: {{ x: {{ previous: c.y, initially: start.s0 }} }}
+    outputs: {{ x: x.json }}
+  b:
+    run: [/bin/true]
+    inputs: {{ x: a.x, s: start.s0 }}
+    outputs: {{ y: y.json }}
+  {third}
+stop: {{ max-iterations: 1, when: [{{ metric: b.m, change-below: 0.1 }}] }}
+"
+        ))
+    }
+
+    const C: &str = "c: { run: [/bin/true], inputs: { y: b.y }, outputs: { y: y.json } }";
+
+    fn stages_of(raw: &CampaignFile) -> (Vec<Stage>, Vec<(u64, u64, String)>) {
+        let mut v = validator();
+        let s = v.stages(raw, &BTreeSet::new(), &mut BTreeMap::new(), Path::new("."));
+        (s, found(&v))
+    }
+
+    #[test]
+    fn stages_resolve_their_inputs_and_take_the_metrics_of_stopping_rules() {
+        let (s, d) = stages_of(&cycle(C));
+        assert!(d.is_empty(), "{d:?}");
+        let names: Vec<&str> = s.iter().map(|s| s.name.as_str()).collect();
+        assert_eq!(names, ["a", "b", "c"]);
+        assert_eq!(
+            s[0].inputs,
+            [(
+                "x".to_string(),
+                Source::Previous {
+                    stage: "c".into(),
+                    role: "y".into(),
+                    initially: Some("s0".into())
+                }
+            )]
+        );
+        assert_eq!(
+            s[1].inputs,
+            [
+                (
+                    "x".to_string(),
+                    Source::Same {
+                        stage: "a".into(),
+                        role: "x".into()
+                    }
+                ),
+                ("s".to_string(), Source::Start("s0".into())),
+            ]
+        );
+        assert_eq!(s[1].required_metrics, BTreeSet::from(["m".to_string()]));
+        assert!(matches!(&s[2].kind, StageKind::Command { program, .. } if program == "/bin/true"));
+    }
+
+    #[test]
+    fn an_empty_cycle_is_reported_at_the_whole_file() {
+        let raw = raw("campaign: t\ncycle: {}\nstop: { max-iterations: 1 }\n");
+        let (s, d) = stages_of(&raw);
+        assert!(s.is_empty());
+        assert_eq!(d, vec![(0, 0, "the cycle has no stages".to_string())]);
+    }
+
+    #[test]
+    fn inputs_naming_nothing_are_reported_at_the_input() {
+        let cases = [
+            (
+                "x: nodot",
+                "input `nodot` must be written stage.output or start.name",
+            ),
+            ("x: start.none", "unknown start file `none`"),
+            ("x: zz.y", "input `zz.y` names unknown stage `zz`"),
+            ("x: b.nope", "stage `b` declares no output `nope`"),
+            (
+                "x: { previous: start.s0 }",
+                "`previous:` must name a stage output",
+            ),
+            (
+                "x: { previous: b.y, initially: b.y }",
+                "`initially: b.y` must name a start file",
+            ),
+            (
+                "x: { previous: b.y }",
+                "input `x` has no value at iteration 1",
+            ),
+        ];
+        for (input, want) in cases {
+            let c = format!(
+                "c: {{ run: [/bin/true], inputs: {{ {input} }}, outputs: {{ y: y.json }} }}"
+            );
+            let (s, d) = stages_of(&cycle(&c));
+            assert_eq!(d, vec![(12, 36, want.to_string())], "{input}");
+            // the stage stays (without the bad input) unless only iteration 1 lacks a value
+            let kept = s.iter().find(|s| s.name == "c").map(|s| s.inputs.len());
+            let want_inputs = usize::from(want.contains("iteration 1"));
+            assert_eq!(kept, Some(want_inputs), "{input}");
+        }
+    }
+
+    #[test]
+    fn output_file_names_with_a_folder_or_the_metrics_file_are_refused_at_the_role() {
+        for name in ["sub/y.json", "metrics.json", ".hidden", "\"\""] {
+            let c = format!("c: {{ run: [/bin/true], outputs: {{ y: y.json, z: {name} }} }}");
+            let (_, d) = stages_of(&cycle(&c));
+            let want = format!(
+                "output file name `{}` is not allowed",
+                name.trim_matches('"')
+            );
+            assert_eq!(d, vec![(12, 48, want)], "{name}");
+        }
+    }
+
+    #[test]
+    fn a_stage_runs_exactly_one_thing_of_the_right_form() {
+        let cases = [
+            (
+                "c: { run: [/bin/true], builtin: mix }",
+                (12, 3),
+                "stage `c` has both `run` and `builtin`",
+            ),
+            (
+                "c: { outputs: { y: y.json } }",
+                (12, 3),
+                "stage `c` has neither `run` nor `builtin`",
+            ),
+            ("c: { builtin: sort }", (12, 17), "unknown built-in `sort`"),
+            (
+                "c: { run: [/bin/true], shell: true }",
+                (12, 13),
+                "stage `c`: `shell: true` takes one script string, not a list",
+            ),
+            (
+                "c: { run: \"/bin/true\" }",
+                (12, 13),
+                "stage `c`: `run` is one string, which only a shell stage takes",
+            ),
+        ];
+        for (c, at, want) in cases {
+            let raw = cycle(c);
+            let (kind, d) = with_stage(&raw, "c", |v, cx, s| {
+                v.stage_kind(cx, s, &mut BTreeMap::new())
+            });
+            assert!(kind.is_none(), "{c}");
+            assert_eq!(d, vec![(at.0, at.1, want.to_string())], "{c}");
+        }
+    }
+
+    #[test]
+    fn a_cycle_within_one_iteration_is_reported_at_a_stage_on_it() {
+        let raw = cycle(
+            "c: { run: [/bin/true], inputs: { y: b.y, x: d.z }, outputs: { y: y.json } }
+  d: { run: [/bin/true], inputs: { y: c.y }, outputs: { z: z.json } }",
+        );
+        let (stages, d) = stages_of(&raw);
+        assert!(d.is_empty(), "{d:?}");
+        let mut v = validator();
+        assert!(v.order(&raw, &stages).is_empty());
+        assert_eq!(
+            found(&v),
+            vec![(
+                13,
+                3,
+                "stage `d` is part of a cycle within one iteration".to_string()
+            )]
+        );
+        // without the loop the order puts every same-iteration input first
+        let (stages, _) = stages_of(&cycle(C));
+        let mut v = validator();
+        let names: Vec<String> = v
+            .order(&cycle(C), &stages)
+            .into_iter()
+            .map(|s| s.name)
+            .collect();
+        assert_eq!(names, ["a", "b", "c"]);
+        assert!(v.diags.is_empty());
+    }
+}
