@@ -16,7 +16,7 @@ use rondo_numerics::mixing::{self, Method, MixerConfig, MixerState};
 use rondo_numerics::npy::{self, NpyArray};
 use serde::{Deserialize, Serialize};
 
-use crate::spec::{FilterSettings, MixMethod, MixSettings};
+use crate::spec::{FilterSettings, MixMethod, MixSettings, FILTER_METRICS, LEGACY_ROLE};
 use crate::validate::Metric;
 
 mod command;
@@ -24,10 +24,6 @@ pub use command::{run_argv, BuiltinCommand, FilterArgs, MixArgs};
 
 /// File name of the mixer state in the attempt's scratch directory.
 pub const STATE_FILE: &str = "mixer-state.json";
-
-/// The role of the single input of the older one-array form (`inputs: { new: ... }`), whose
-/// one output may have any role name.
-pub const LEGACY_ROLE: &str = "new";
 
 /// Layout version of [`StateFile`].
 const LAYOUT_VERSION: u32 = 2;
@@ -451,14 +447,6 @@ fn check_layout(
     }
     Ok(())
 }
-
-/// The metrics the filter built-in reports (stopping rules may name them).
-pub const FILTER_METRICS: [&str; 4] = [
-    "legendre_kept",
-    "legendre_dropped",
-    "density_per_spin",
-    "tail_c1",
-];
 
 fn metric(name: &str, value: f64) -> Metric {
     Metric {

@@ -8,7 +8,6 @@ pub mod builtins;
 pub mod cli;
 pub mod engine;
 pub mod fsinfo;
-pub mod graph;
 pub mod progress;
 pub mod prov;
 pub mod report;

@@ -1,8 +1,8 @@
 //! Every diagnostic of the campaign file, through the real `rondo check`: one table row per
-//! place in orchestrator/src/spec.rs that reports a problem, each with a campaign broken in
+//! place in orchestrator/src/spec/ that reports a problem, each with a campaign broken in
 //! exactly that way, a fragment of the message, and the `line:col` the report must name.
 //!
-//! The table is checked against the source: every `self.push(` of spec.rs must have a row
+//! The table is checked against the source: every `self.push(` under src/spec/ must have a row
 //! whose `site` is the message literal of that call (so a new diagnostic without a row fails
 //! here), and every row's site must still exist there.
 
@@ -12,7 +12,7 @@ use std::process::Command;
 
 /// One broken campaign.
 struct Case {
-    /// The message literal of the reporting call in spec.rs (`format!` text as written);
+    /// The message literal of the reporting call under src/spec/ (`format!` text as written);
     /// `SAPHYR` for the YAML/type errors of the parser, `READ` for an unreadable file.
     site: &'static str,
     /// A fragment the printed message must contain.
@@ -1216,7 +1216,7 @@ fn every_campaign_file_diagnostic_names_its_message_and_place() {
     );
 }
 
-/// The message literal (first string literal) of every `self.push(` call of spec.rs.
+/// The message literal (first string literal) of every `self.push(` call under src/spec/.
 fn push_sites(src: &str) -> Vec<String> {
     let mut out = Vec::new();
     let mut rest = src;
@@ -1242,10 +1242,39 @@ fn push_sites(src: &str) -> Vec<String> {
     out
 }
 
+/// Every `.rs` file under src/spec/ (the campaign-file module), read in path order and
+/// joined.
+fn spec_source() -> String {
+    fn walk(dir: &Path, files: &mut Vec<std::path::PathBuf>) {
+        let entries = std::fs::read_dir(dir).unwrap_or_else(|e| panic!("{}: {e}", dir.display()));
+        for entry in entries {
+            let p = entry
+                .unwrap_or_else(|e| panic!("{}: {e}", dir.display()))
+                .path();
+            if p.is_dir() {
+                walk(&p, files);
+            } else if p.extension().is_some_and(|x| x == "rs") {
+                files.push(p);
+            }
+        }
+    }
+    let mut files = Vec::new();
+    walk(
+        &Path::new(env!("CARGO_MANIFEST_DIR")).join("src/spec"),
+        &mut files,
+    );
+    files.sort();
+    assert!(!files.is_empty(), "no .rs file under src/spec/");
+    files
+        .iter()
+        .map(|p| std::fs::read_to_string(p).unwrap_or_else(|e| panic!("{}: {e}", p.display())))
+        .collect::<Vec<_>>()
+        .join("\n")
+}
+
 #[test]
 fn the_table_covers_every_diagnostic_of_the_campaign_checker() {
-    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("src/spec.rs");
-    let src = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let src = spec_source();
     let sites = push_sites(&src);
     // the count at the time of writing, as a floor: the scan must not miss calls
     assert!(sites.len() >= 62, "only {} push sites found", sites.len());
@@ -1254,7 +1283,7 @@ fn the_table_covers_every_diagnostic_of_the_campaign_checker() {
     let missing: Vec<&&str> = in_source.difference(&covered).collect();
     assert!(
         missing.is_empty(),
-        "diagnostics of spec.rs without a case in this table: {missing:#?}"
+        "diagnostics under src/spec/ without a case in this table: {missing:#?}"
     );
     let stale: Vec<&&str> = covered
         .difference(&in_source)
@@ -1263,10 +1292,10 @@ fn the_table_covers_every_diagnostic_of_the_campaign_checker() {
         .collect();
     assert!(
         stale.is_empty(),
-        "cases whose diagnostic is no longer in spec.rs: {stale:#?}"
+        "cases whose diagnostic is no longer under src/spec/: {stale:#?}"
     );
     eprintln!(
-        "{} push sites in spec.rs ({} distinct messages), {} cases",
+        "{} push sites under src/spec/ ({} distinct messages), {} cases",
         sites.len(),
         in_source.len(),
         cases().len()

@@ -4,7 +4,7 @@
 use petgraph::algo::toposort;
 use petgraph::graph::DiGraph;
 
-use crate::spec::{Source, Stage};
+use super::model::{Source, Stage};
 
 /// Kind of dependency between two stages.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]

@@ -1,0 +1,275 @@
+//! The validated campaign: what the engine, the CLI and the reports read once a campaign
+//! file has passed every check (`Campaign`, `Stage`, `StageKind`, `Source`, `Rule`, ...),
+//! the `Diagnostic`s a failed check reports, and what the built-in stages declare to the
+//! checker (the metrics they report, the roles they take).
+//!
+//! Every value here is checked: names resolve, paths exist, numbers are in range.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::fmt;
+use std::path::PathBuf;
+use std::time::Duration;
+
+use rondo_adapters::executor::Resources;
+use rondo_adapters::template::Template;
+
+use super::raw::{Combine, Compare, EosModelName, FilterSettings, MixSettings, Scalar};
+
+/// The role of the single input of the older one-array form of the built-in `mix`
+/// (`inputs: { new: ... }`), whose one output may have any role name.
+pub const LEGACY_ROLE: &str = "new";
+
+/// The metrics the filter built-in reports (stopping rules may name them).
+pub const FILTER_METRICS: [&str; 4] = [
+    "legendre_kept",
+    "legendre_dropped",
+    "density_per_spin",
+    "tail_c1",
+];
+
+/// A checked equation-of-state analysis.
+#[derive(Debug, Clone)]
+pub struct EosAnalysis {
+    /// `stage.metric` of the energy.
+    pub energy: String,
+    /// Volume axis.
+    pub volume: String,
+    /// Models.
+    pub models: Vec<EosModelName>,
+}
+
+/// A checked schedule.
+#[derive(Debug, Clone)]
+pub struct Schedule {
+    /// Parameter name.
+    pub name: String,
+    /// Start value.
+    pub start: f64,
+    /// Growth factor.
+    pub factor: f64,
+    /// Cap.
+    pub max: f64,
+    /// Integer-valued (start and max are integers).
+    pub integer: bool,
+    /// Watched metric.
+    pub metric: String,
+    /// Condition.
+    pub test: RuleTest,
+}
+
+/// One problem found in a campaign file.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Diagnostic {
+    /// 1-based line (0 if unknown).
+    pub line: u64,
+    /// 1-based column (0 if unknown).
+    pub column: u64,
+    /// What is wrong.
+    pub message: String,
+    /// What to do.
+    pub hint: String,
+}
+
+/// All problems of a campaign file.
+#[derive(Debug, Clone)]
+pub struct SpecErrors {
+    /// The file.
+    pub file: PathBuf,
+    /// Problems, in file order.
+    pub diagnostics: Vec<Diagnostic>,
+}
+
+impl fmt::Display for SpecErrors {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        for d in &self.diagnostics {
+            writeln!(
+                f,
+                "{}:{}:{}: {}; hint: {}",
+                self.file.display(),
+                d.line,
+                d.column,
+                d.message,
+                d.hint
+            )?;
+        }
+        Ok(())
+    }
+}
+
+impl std::error::Error for SpecErrors {}
+
+/// Where an input comes from, resolved.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Source {
+    /// Output `role` of stage `stage` in the same iteration.
+    Same { stage: String, role: String },
+    /// A start file.
+    Start(String),
+    /// Output of the previous iteration, with the start file used at iteration 1 (if any).
+    Previous {
+        stage: String,
+        role: String,
+        initially: Option<String>,
+    },
+}
+
+/// A checked stage.
+#[derive(Debug, Clone)]
+pub struct Stage {
+    /// Name.
+    pub name: String,
+    /// What runs.
+    pub kind: StageKind,
+    /// Inputs in file order: role → source.
+    pub inputs: Vec<(String, Source)>,
+    /// Outputs in file order: role → file name.
+    pub outputs: Vec<(String, String)>,
+    /// Metrics that must appear in metrics.json (listed plus those stop rules use).
+    pub required_metrics: BTreeSet<String>,
+    /// Merged resources.
+    pub resources: Resources,
+    /// Time limit.
+    pub time_limit: Option<Duration>,
+    /// Extra attempts after failure.
+    pub retries: u32,
+    /// Accept NaN/Inf.
+    pub allow_nonfinite: bool,
+}
+
+/// What a stage runs.
+#[derive(Debug, Clone)]
+pub enum StageKind {
+    /// A program through a command template.
+    Command {
+        /// Parsed template of the whole `run` list (first element: program name/path).
+        template: Template,
+        /// Program key (name in `programs`, or the literal first element).
+        program: String,
+    },
+    /// A `/bin/sh -c` script (`shell: true`).
+    Shell {
+        /// Parsed template of the script (one argument).
+        template: Template,
+        /// The programs of `programs:` the script names as `{{program:NAME}}`, sorted: what
+        /// the stage's recorded program hash covers.
+        programs: Vec<String>,
+    },
+    /// Built-in mixing.
+    Mix(MixSettings),
+    /// Built-in Legendre filter of a G(τ).
+    Filter(FilterSettings),
+}
+
+impl StageKind {
+    /// Whether the stage runs inside rondo.
+    pub fn is_builtin(&self) -> bool {
+        !matches!(self, StageKind::Command { .. } | StageKind::Shell { .. })
+    }
+}
+
+/// A program resolved to a file.
+#[derive(Debug, Clone)]
+pub struct ResolvedProgram {
+    /// Absolute path.
+    pub path: PathBuf,
+    /// Version flag.
+    pub version_flag: Option<String>,
+}
+
+/// A stopping rule, checked.
+#[derive(Debug, Clone)]
+pub struct Rule {
+    /// `stage.metric`.
+    pub metric: String,
+    /// The condition.
+    pub test: RuleTest,
+    /// Consecutive iterations.
+    pub for_: u32,
+    /// Successive changes or all pairs of the window.
+    pub compare: Compare,
+    /// Divergence threshold on the change.
+    pub diverge_above: Option<f64>,
+}
+
+/// A stopping condition.
+#[derive(Debug, Clone, Copy)]
+pub enum RuleTest {
+    /// Absolute change below.
+    Abs(f64),
+    /// Relative change below.
+    Rel(f64),
+    /// Within k combined standard errors.
+    Errors(f64),
+}
+
+/// One point of the sweep.
+#[derive(Debug, Clone)]
+pub struct PointSpec {
+    /// `p001`, ...
+    pub id: String,
+    /// 1-based index.
+    pub index: usize,
+    /// Axis → value, in axis order.
+    pub values: Vec<(String, Scalar)>,
+}
+
+/// A validated campaign.
+#[derive(Debug, Clone)]
+pub struct Campaign {
+    /// File it came from.
+    pub file: PathBuf,
+    /// Exact text.
+    pub text: String,
+    /// Name.
+    pub name: String,
+    /// Parameters.
+    pub parameters: Vec<(String, Scalar)>,
+    /// Programs by key (including literal paths used as `run[0]`).
+    pub programs: BTreeMap<String, ResolvedProgram>,
+    /// Start files: name → absolute path.
+    pub start: BTreeMap<String, PathBuf>,
+    /// Stages in topological order.
+    pub stages: Vec<Stage>,
+    /// Points.
+    pub points: Vec<PointSpec>,
+    /// Rules.
+    pub rules: Vec<Rule>,
+    /// Combination.
+    pub combine: Combine,
+    /// Cap.
+    pub max_iterations: u32,
+    /// Base seed.
+    pub seed: u64,
+    /// Iterations averaged after convergence.
+    pub final_window: u32,
+    /// Equation-of-state analysis.
+    pub eos: Option<EosAnalysis>,
+    /// Loop-driven parameters.
+    pub schedules: Vec<Schedule>,
+    /// Things that are allowed but probably not meant (`rondo check` prints them).
+    pub warnings: Vec<Diagnostic>,
+}
+
+impl Campaign {
+    /// Stage by name.
+    pub fn stage(&self, name: &str) -> Option<&Stage> {
+        self.stages.iter().find(|s| s.name == name)
+    }
+
+    /// The warnings as `file:line:col: warning: what; hint: what to do` lines.
+    pub fn warnings_text(&self) -> String {
+        self.warnings
+            .iter()
+            .map(|d| {
+                format!(
+                    "{}:{}:{}: warning: {}; hint: {}\n",
+                    self.file.display(),
+                    d.line,
+                    d.column,
+                    d.message,
+                    d.hint
+                )
+            })
+            .collect()
+    }
+}

@@ -1,0 +1,510 @@
+//! The campaign file as written: the serde types that YAML is read into, strictly (unknown
+//! keys are errors) and with the source location of every key a diagnostic may name.
+//!
+//! The JSON Schema of the file (`rondo schema`, `schemas/campaign.schema.json`) is derived
+//! from these types and their doc comments, so a doc comment here is user-facing text.
+//! Nothing here checks meaning; that is `validate`'s work. Types a checked campaign keeps as
+//! they are (the built-in settings, `Combine`, `Compare`, `EosModelName`, `Scalar`) live here
+//! too, because the schema derives from them.
+
+use std::collections::BTreeMap;
+use std::fmt;
+
+use rondo_adapters::executor::Resources;
+use schemars::JsonSchema;
+use serde::de::{MapAccess, Visitor};
+use serde::{Deserialize, Deserializer};
+use serde_saphyr::Spanned;
+
+/// A map that keeps the file's key order and each key's location.
+#[derive(Debug, Clone)]
+pub struct OrderedMap<V>(pub Vec<(Spanned<String>, V)>);
+
+impl<V> Default for OrderedMap<V> {
+    fn default() -> Self {
+        OrderedMap(Vec::new())
+    }
+}
+
+impl<V> OrderedMap<V> {
+    /// Value for a key.
+    pub fn get(&self, key: &str) -> Option<&V> {
+        self.0.iter().find(|(k, _)| k.value == key).map(|(_, v)| v)
+    }
+    /// Keys in file order.
+    pub fn keys(&self) -> impl Iterator<Item = &str> {
+        self.0.iter().map(|(k, _)| k.value.as_str())
+    }
+    /// Entries in file order.
+    pub fn iter(&self) -> impl Iterator<Item = (&str, &V)> {
+        self.0.iter().map(|(k, v)| (k.value.as_str(), v))
+    }
+    /// Number of entries.
+    pub fn len(&self) -> usize {
+        self.0.len()
+    }
+    /// Whether empty.
+    pub fn is_empty(&self) -> bool {
+        self.0.is_empty()
+    }
+}
+
+impl<'de, V: Deserialize<'de>> Deserialize<'de> for OrderedMap<V> {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V2<V>(std::marker::PhantomData<V>);
+        impl<'de, V: Deserialize<'de>> Visitor<'de> for V2<V> {
+            type Value = OrderedMap<V>;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("a mapping")
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut m: A) -> Result<Self::Value, A::Error> {
+                let mut out: Vec<(Spanned<String>, V)> = Vec::new();
+                while let Some(k) = m.next_key::<Spanned<String>>()? {
+                    if out.iter().any(|(o, _)| o.value == k.value) {
+                        return Err(serde::de::Error::custom(format!(
+                            "duplicate key `{}`",
+                            k.value
+                        )));
+                    }
+                    let v = m.next_value()?;
+                    out.push((k, v));
+                }
+                Ok(OrderedMap(out))
+            }
+        }
+        d.deserialize_map(V2(std::marker::PhantomData))
+    }
+}
+
+impl<V: JsonSchema> JsonSchema for OrderedMap<V> {
+    fn schema_name() -> std::borrow::Cow<'static, str> {
+        format!("Map_of_{}", V::schema_name()).into()
+    }
+    fn json_schema(g: &mut schemars::SchemaGenerator) -> schemars::Schema {
+        <BTreeMap<String, V>>::json_schema(g)
+    }
+    fn inline_schema() -> bool {
+        true
+    }
+}
+
+/// A parameter or sweep value.
+#[derive(Debug, Clone, PartialEq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(untagged)]
+pub enum Scalar {
+    /// true / false
+    Bool(bool),
+    /// An integer.
+    Int(i64),
+    /// A real number.
+    Real(f64),
+    /// Text.
+    Text(String),
+}
+
+impl fmt::Display for Scalar {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Scalar::Bool(b) => write!(f, "{b}"),
+            Scalar::Int(i) => write!(f, "{i}"),
+            Scalar::Real(x) => write!(f, "{x:?}"),
+            Scalar::Text(s) => f.write_str(s),
+        }
+    }
+}
+
+impl Scalar {
+    /// As JSON.
+    pub fn to_json(&self) -> serde_json::Value {
+        serde_json::to_value(self).unwrap_or(serde_json::Value::Null)
+    }
+}
+
+/// A program the stages run.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct Program {
+    /// Absolute, relative to the campaign file (contains `/`), or a name looked up on PATH
+    /// and then beside the rondo executable.
+    #[schemars(with = "String")]
+    pub path: Spanned<String>,
+    /// Flag that makes the program print its version (recorded with every attempt).
+    #[serde(default)]
+    pub version_flag: Option<String>,
+}
+
+/// The sweep: every combination (`product`) or values taken together (`zip`).
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct Sweep {
+    /// Every combination; the first axis varies slowest.
+    #[serde(default)]
+    pub product: Option<OrderedMap<Vec<Scalar>>>,
+    /// Equal-length lists taken together.
+    #[serde(default)]
+    pub zip: Option<OrderedMap<Vec<Scalar>>>,
+}
+
+/// Settings for every stage.
+#[derive(Debug, Clone, Default, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct Defaults {
+    /// Batch resources.
+    #[serde(default)]
+    pub resources: Option<Resources>,
+    /// Wall-time limit, `[days-]hh:mm:ss`, `mm:ss` or minutes.
+    #[serde(default)]
+    pub time_limit: Option<String>,
+    /// Extra attempts after a failure.
+    #[serde(default)]
+    pub retries: Option<u32>,
+}
+
+/// Where a stage input comes from.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(untagged)]
+pub enum InputSpec {
+    /// `stage.output` of the same iteration, or `start.name`.
+    Same(String),
+    /// The previous iteration's output.
+    Previous(PreviousInput),
+}
+
+/// `{ previous: stage.output, initially: start.name }`.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct PreviousInput {
+    /// `stage.output` of the previous iteration.
+    pub previous: String,
+    /// `start.name` used at iteration 1.
+    #[serde(default)]
+    pub initially: Option<String>,
+}
+
+/// Mixing method of the built-in `mix` stage.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum MixMethod {
+    /// x ← x + α (F(x) − x).
+    Linear,
+    /// Anderson (Pulay) mixing.
+    Anderson,
+    /// Modified Broyden mixing.
+    Broyden,
+}
+
+/// Settings of the built-in `mix` stage.
+#[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct MixSettings {
+    /// Method.
+    pub method: MixMethod,
+    /// Mixing parameter α in (0, 1].
+    pub alpha: f64,
+    /// History length (Anderson, Broyden).
+    #[serde(default)]
+    pub history: Option<usize>,
+    /// Broyden w0 weight.
+    #[serde(default)]
+    pub w0: Option<f64>,
+    /// Restart the history after this many residual increases in a row.
+    #[serde(default)]
+    pub restart_after_growth: Option<usize>,
+    /// Per-role weights (input role → positive number, default 1): the mixer works on the
+    /// vector whose block of each role is multiplied by its weight, so the residual norm and
+    /// the least-squares fits of Anderson and Broyden count that role's residual `weight`
+    /// times; linear mixing is unaffected.
+    #[serde(default)]
+    pub weights: Option<BTreeMap<String, f64>>,
+}
+
+/// A stage's `run`: an argument list, or one script string for a shell stage.
+#[derive(Debug, Clone)]
+pub enum RunSpec {
+    /// `[program, args...]`: run without a shell, one argument per element.
+    List(Vec<Spanned<String>>),
+    /// `"script"`: run by `/bin/sh -c` (with `shell: true`).
+    Script(String),
+}
+
+impl<'de> Deserialize<'de> for RunSpec {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> Visitor<'de> for V {
+            type Value = RunSpec;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str(
+                    "an argument list [program, args...] or, with `shell: true`, one script string",
+                )
+            }
+            fn visit_str<E: serde::de::Error>(self, v: &str) -> Result<RunSpec, E> {
+                Ok(RunSpec::Script(v.to_string()))
+            }
+            fn visit_string<E: serde::de::Error>(self, v: String) -> Result<RunSpec, E> {
+                Ok(RunSpec::Script(v))
+            }
+            fn visit_seq<A: serde::de::SeqAccess<'de>>(
+                self,
+                mut a: A,
+            ) -> Result<RunSpec, A::Error> {
+                let mut out = Vec::new();
+                while let Some(x) = a.next_element::<Spanned<String>>()? {
+                    out.push(x);
+                }
+                Ok(RunSpec::List(out))
+            }
+        }
+        d.deserialize_any(V)
+    }
+}
+
+/// The JSON Schema form of [`RunSpec`].
+#[derive(JsonSchema)]
+#[serde(untagged)]
+#[allow(dead_code)]
+enum RunSchema {
+    /// `[program, args...]`: the first element names a program of `programs:` (or is a
+    /// path); every element becomes one argument, never parsed by a shell.
+    List(Vec<String>),
+    /// With `shell: true`: one `/bin/sh -c` script; `{{program:NAME}}` stands for a
+    /// program of `programs:` and every substituted value is single-quoted.
+    Script(String),
+}
+
+/// One stage of the cycle.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct StageSpec {
+    /// Command template: an argument list whose first element is a program name from
+    /// `programs` (or a path), or, with `shell: true`, one script string.
+    #[serde(default)]
+    #[schemars(with = "Option<RunSchema>")]
+    pub run: Option<Spanned<RunSpec>>,
+    /// Built-in stage instead of `run`: `mix`.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub builtin: Option<Spanned<String>>,
+    /// Run `run`, one script string, with `/bin/sh -c` (substituted values are
+    /// single-quoted; programs are named `{{program:NAME}}`).
+    #[serde(default)]
+    pub shell: bool,
+    /// Named inputs.
+    #[serde(default)]
+    pub inputs: OrderedMap<InputSpec>,
+    /// Named outputs: role → file name the stage writes in its scratch directory.
+    #[serde(default)]
+    pub outputs: OrderedMap<String>,
+    /// Metrics the stage must report in `metrics.json`.
+    #[serde(default)]
+    pub metrics: Vec<String>,
+    /// Batch resources (over `defaults.resources`).
+    #[serde(default)]
+    pub resources: Option<Resources>,
+    /// Wall-time limit.
+    #[serde(default)]
+    pub time_limit: Option<String>,
+    /// Extra attempts after a failure.
+    #[serde(default)]
+    pub retries: Option<u32>,
+    /// Accept NaN/Inf in outputs and metrics.
+    #[serde(default)]
+    pub allow_nonfinite: bool,
+    /// Settings of a built-in stage.
+    #[serde(default)]
+    pub settings: Option<BuiltinSettings>,
+}
+
+/// Settings of a built-in stage: `mix` or `filter`.
+#[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(untagged)]
+pub enum BuiltinSettings {
+    /// Settings of `mix`.
+    Mix(MixSettings),
+    /// Settings of `filter`.
+    Filter(FilterSettings),
+}
+
+/// Settings of the built-in `filter` stage (Legendre noise filter of a G(τ)).
+#[derive(Debug, Clone, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct FilterSettings {
+    /// Legendre coefficients fitted (fewer are kept when the input has error bars and the
+    /// higher ones drown in noise).
+    pub legendre: usize,
+    /// Positive Matsubara frequencies of the G(iω_n) and Σ(iω_n) outputs.
+    pub matsubara: usize,
+}
+
+/// How stop rules combine.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case")]
+pub enum Combine {
+    /// Every rule must hold.
+    #[default]
+    All,
+    /// One rule suffices.
+    Any,
+}
+
+/// A stopping rule on one metric.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct RuleSpec {
+    /// `stage.metric`.
+    #[schemars(with = "String")]
+    pub metric: Spanned<String>,
+    /// |x_n − x_{n−1}| < tolerance.
+    #[serde(default)]
+    pub change_below: Option<f64>,
+    /// |x_n − x_{n−1}| < tolerance · |x_n|.
+    #[serde(default)]
+    pub relative_change_below: Option<f64>,
+    /// |x_n − x_{n−1}| ≤ k · sqrt(e_n² + e_{n−1}²) with the reported errors.
+    #[serde(default)]
+    pub within_errors: Option<f64>,
+    /// Number of consecutive iterations the condition must hold.
+    #[serde(default = "one", rename = "for")]
+    pub for_: u32,
+    /// `successive` (default): each of the last `for` changes x_j − x_{j−1} passes the test.
+    /// `window`: every pair of the last `for` + 1 values passes it, so a slow drift that
+    /// stays below the noise from one iteration to the next but accumulates over the window
+    /// is not taken for convergence.
+    #[serde(default)]
+    pub compare: Compare,
+    /// Fail the point as diverging when |x_n − x_{n−1}| exceeds this (from iteration 3 on).
+    #[serde(default)]
+    pub diverge_above: Option<f64>,
+}
+
+fn one() -> u32 {
+    1
+}
+
+/// Which values a stopping rule compares.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema)]
+#[serde(rename_all = "kebab-case")]
+pub enum Compare {
+    /// Each value with the one before it.
+    #[default]
+    Successive,
+    /// Every pair of values of the window of the last `for` + 1 iterations.
+    Window,
+}
+
+/// Stopping rules.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct StopSpec {
+    /// Rules on metrics.
+    #[serde(default)]
+    pub when: Vec<RuleSpec>,
+    /// `all` (default) or `any`.
+    #[serde(default)]
+    pub combine: Combine,
+    /// Iteration cap: a point that reaches it without converging is `capped`.
+    #[schemars(with = "u32")]
+    pub max_iterations: Spanned<u32>,
+    /// After the rules are met, run this many more iterations and report the metrics
+    /// averaged over them, with binning error bars (0: stop at once).
+    #[serde(default)]
+    pub final_window: u32,
+}
+
+/// Equation-of-state model names.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum EosModelName {
+    /// Third-order Birch–Murnaghan.
+    BirchMurnaghan,
+    /// Vinet.
+    Vinet,
+}
+
+/// The equation-of-state analysis of a campaign.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct EosSpec {
+    /// The energy per site, `stage.metric` (eV).
+    #[schemars(with = "String")]
+    pub energy: Spanned<String>,
+    /// The sweep axis holding the volume per site (Å³); default `volume`.
+    #[serde(default)]
+    pub volume: Option<String>,
+    /// Models to fit; default both.
+    #[serde(default)]
+    pub models: Option<Vec<EosModelName>>,
+}
+
+/// Campaign-level analyses, run when every point has stopped.
+#[derive(Debug, Clone, Default, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct AnalysisSpec {
+    /// Energy versus volume, fitted per group of the other sweep axes.
+    #[serde(default)]
+    pub eos: Option<EosSpec>,
+}
+
+/// The campaign file as written.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct CampaignFile {
+    /// Name: letters, digits, `-`, `_`.
+    #[schemars(with = "String")]
+    pub campaign: Spanned<String>,
+    /// Free text.
+    #[serde(default)]
+    pub about: Option<String>,
+    /// Programs the stages run.
+    #[serde(default)]
+    pub programs: OrderedMap<Program>,
+    /// Parameters: scalars.
+    #[serde(default)]
+    pub parameters: OrderedMap<Scalar>,
+    /// Sweep; absent: one point.
+    #[serde(default)]
+    #[schemars(with = "Option<Sweep>")]
+    pub sweep: Option<Spanned<Sweep>>,
+    /// Initial files (relative to the campaign file).
+    #[serde(default)]
+    pub start: OrderedMap<String>,
+    /// Defaults for every stage.
+    #[serde(default)]
+    pub defaults: Defaults,
+    /// Base seed for `{{seed}}`.
+    #[serde(default)]
+    pub seed: Option<u64>,
+    /// The stages of one iteration.
+    pub cycle: OrderedMap<StageSpec>,
+    /// Stopping rules.
+    pub stop: StopSpec,
+    /// Campaign-level analyses.
+    #[serde(default)]
+    pub analysis: AnalysisSpec,
+    /// Parameters that follow the loop: name → schedule (usable as `{{param:NAME}}`).
+    #[serde(default)]
+    pub schedules: OrderedMap<ScheduleSpec>,
+}
+
+/// A parameter driven by the loop: `start × factor^k`, capped at `max`, where k counts the
+/// earlier iterations of the point at which the change of `metric` was within
+/// `within-errors` combined standard errors (or below `change-below`). Typical use: double
+/// the Monte Carlo sweeps once the iteration-to-iteration change is lost in the noise.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct ScheduleSpec {
+    /// Value at iteration 1.
+    pub start: Scalar,
+    /// Factor applied each time the condition held.
+    pub factor: f64,
+    /// Largest value.
+    pub max: Scalar,
+    /// `stage.metric` watched.
+    #[schemars(with = "String")]
+    pub metric: Spanned<String>,
+    /// Condition: |Δ| ≤ k · combined standard error.
+    #[serde(default)]
+    pub within_errors: Option<f64>,
+    /// Condition: |Δ| below this.
+    #[serde(default)]
+    pub change_below: Option<f64>,
+}

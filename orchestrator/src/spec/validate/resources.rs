@@ -1,0 +1,158 @@
+//! `defaults:` and a stage's own `resources`, `time-limit` and `retries`: what a stage may
+//! use, the stage's value over the default.
+
+use std::time::Duration;
+
+use rondo_adapters::executor::Resources;
+
+use super::Validator;
+use crate::spec::raw::{CampaignFile, StageSpec};
+
+/// Parse a Slurm-style duration: `[days-]hh:mm:ss`, `hh:mm:ss`, `mm:ss`, or minutes.
+pub fn parse_duration(s: &str) -> Option<Duration> {
+    let (days, rest) = match s.split_once('-') {
+        Some((d, r)) => (d.trim().parse::<u64>().ok()?, r),
+        None => (0, s),
+    };
+    let parts: Vec<u64> = rest
+        .split(':')
+        .map(|p| p.trim().parse::<u64>())
+        .collect::<Result<_, _>>()
+        .ok()?;
+    let secs = match (days > 0, parts.as_slice()) {
+        (false, [m]) => m * 60,
+        (true, [h]) => h * 3600,
+        (_, [a, b]) if days > 0 => a * 3600 + b * 60,
+        (_, [m, sec]) => m * 60 + sec,
+        (_, [h, m, sec]) => h * 3600 + m * 60 + sec,
+        _ => return None,
+    };
+    Some(Duration::from_secs(days * 86400 + secs))
+}
+
+/// A stage's limits, its own settings over `defaults:`.
+pub(super) struct Limits {
+    /// Merged batch resources.
+    pub(super) resources: Resources,
+    /// Wall-time limit: the stage's, the default's, or the resources' `time`.
+    pub(super) time_limit: Option<Duration>,
+    /// Extra attempts after a failure.
+    pub(super) retries: u32,
+}
+
+impl Validator<'_> {
+    /// The limits of stage `sname` (`at`: its key); a time limit that is not a duration is
+    /// reported.
+    pub(super) fn limits(
+        &mut self,
+        raw: &CampaignFile,
+        sname: &str,
+        at: (u64, u64),
+        st: &StageSpec,
+    ) -> Limits {
+        let defaults_res = raw.defaults.resources.clone().unwrap_or_default();
+        let resources = st.resources.clone().unwrap_or_default().over(&defaults_res);
+        let tl_text = st
+            .time_limit
+            .clone()
+            .or_else(|| raw.defaults.time_limit.clone())
+            .or_else(|| resources.time.clone());
+        let time_limit = match &tl_text {
+            Some(t) => match parse_duration(t) {
+                Some(d) => Some(d),
+                None => {
+                    self.push(
+                        at,
+                        format!("stage `{sname}`: time limit `{t}` is not a duration"),
+                        "write [days-]hh:mm:ss, mm:ss or a number of minutes",
+                    );
+                    None
+                }
+            },
+            None => None,
+        };
+        Limits {
+            resources,
+            time_limit,
+            retries: st.retries.or(raw.defaults.retries).unwrap_or(0),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::super::testing::*;
+    use super::*;
+
+    #[test]
+    fn durations() {
+        assert_eq!(parse_duration("00:10:00"), Some(Duration::from_secs(600)));
+        assert_eq!(
+            parse_duration("1-02:00:00"),
+            Some(Duration::from_secs(93600))
+        );
+        assert_eq!(parse_duration("5"), Some(Duration::from_secs(300)));
+        assert_eq!(parse_duration("2:30"), Some(Duration::from_secs(150)));
+        assert_eq!(parse_duration("x"), None);
+    }
+
+    fn limits_of(text: &str) -> (Limits, Vec<(u64, u64, String)>) {
+        let raw = raw(text);
+        let mut v = validator();
+        let (k, st) = &raw.cycle.0[0];
+        let l = v.limits(
+            &raw,
+            &k.value,
+            (k.referenced.line(), k.referenced.column()),
+            st,
+        );
+        (l, found(&v))
+    }
+
+    #[test]
+    fn a_stage_setting_wins_over_the_default_and_the_default_over_nothing() {
+        let (l, d) = limits_of(
+            "campaign: t
+defaults: { time-limit: \"00:05:00\", retries: 2 }
+cycle:
+  s: { run: [/bin/true], time-limit: \"10\" }
+stop: { max-iterations: 1 }
+",
+        );
+        assert!(d.is_empty(), "{d:?}");
+        assert_eq!(
+            (l.time_limit, l.retries),
+            (Some(Duration::from_secs(600)), 2)
+        );
+        let (l, d) = limits_of(
+            "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+",
+        );
+        assert!(d.is_empty(), "{d:?}");
+        assert_eq!((l.time_limit, l.retries), (None, 0));
+    }
+
+    #[test]
+    fn a_time_limit_that_is_no_duration_is_reported_at_the_stage() {
+        let (l, d) = limits_of(
+            "campaign: t
+defaults: { time-limit: soon }
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+",
+        );
+        assert_eq!(l.time_limit, None);
+        assert_eq!(
+            d,
+            vec![(
+                4,
+                3,
+                "stage `s`: time limit `soon` is not a duration".to_string()
+            )]
+        );
+    }
+}

@@ -1,0 +1,570 @@
+//! `cycle:`: each stage's inputs (`stage.output`, `start.name`, or the previous iteration's
+//! output), its output file names, the metrics it must report, its limits and what it runs
+//! (an argument list or a shell script, see `commands`; a built-in, see `builtins`); then
+//! the order of the stages within one iteration, which must have no cycle.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::Path;
+
+use serde_saphyr::Spanned;
+
+use super::{loc, split_ref, Validator};
+use crate::spec::model::{ResolvedProgram, Source, Stage, StageKind};
+use crate::spec::raw::{CampaignFile, InputSpec, PreviousInput, RunSpec, StageSpec};
+
+/// What every stage of the cycle is checked against.
+pub(super) struct Cycle<'r> {
+    /// The file.
+    pub(super) raw: &'r CampaignFile,
+    /// The campaign file's folder.
+    pub(super) base: &'r Path,
+    /// Names a `{{param:NAME}}` may use: parameters, sweep axes, schedules.
+    pub(super) params: &'r BTreeSet<String>,
+    /// The names under `programs:`.
+    pub(super) declared: BTreeSet<String>,
+}
+
+/// The stage being checked, with its inputs as checked so far.
+pub(super) struct StageAt<'s> {
+    /// Its name.
+    pub(super) name: &'s str,
+    /// Its key's location.
+    pub(super) at: (u64, u64),
+    /// As written.
+    pub(super) spec: &'s StageSpec,
+    /// Its good inputs, role → source, in file order.
+    pub(super) inputs: &'s [(String, Source)],
+}
+
+impl Validator<'_> {
+    /// Every good stage of the cycle, in file order.
+    pub(super) fn stages(
+        &mut self,
+        raw: &CampaignFile,
+        params: &BTreeSet<String>,
+        programs: &mut BTreeMap<String, ResolvedProgram>,
+        base: &Path,
+    ) -> Vec<Stage> {
+        let cx = Cycle {
+            raw,
+            base,
+            params,
+            declared: raw.programs.keys().map(str::to_string).collect(),
+        };
+        let stop_metrics: Vec<(String, String)> = raw
+            .stop
+            .when
+            .iter()
+            .filter_map(|r| split_ref(&r.metric.value).map(|(a, b)| (a.into(), b.into())))
+            .collect();
+        let mut stages = Vec::new();
+        if raw.cycle.is_empty() {
+            self.push(
+                (0, 0),
+                "the cycle has no stages",
+                "add stages under `cycle:`",
+            );
+        }
+        for (key, st) in &raw.cycle.0 {
+            if let Some(s) = self.stage(&cx, key, st, &stop_metrics, programs) {
+                stages.push(s);
+            }
+        }
+        stages
+    }
+
+    /// One stage: inputs, outputs, metrics, limits and what it runs.
+    fn stage(
+        &mut self,
+        cx: &Cycle,
+        key: &Spanned<String>,
+        st: &StageSpec,
+        stop_metrics: &[(String, String)],
+        programs: &mut BTreeMap<String, ResolvedProgram>,
+    ) -> Option<Stage> {
+        let sname = key.value.clone();
+        let at = loc(key);
+        let inputs = self.inputs(cx.raw, st);
+        let outputs: Vec<(String, String)> = st
+            .outputs
+            .iter()
+            .map(|(k, v)| (k.to_string(), v.clone()))
+            .collect();
+        self.output_names(st);
+        let mut required: BTreeSet<String> = st.metrics.iter().cloned().collect();
+        for (s, m) in stop_metrics {
+            if *s == sname {
+                required.insert(m.clone());
+            }
+        }
+        let limits = self.limits(cx.raw, &sname, at, st);
+        let s = StageAt {
+            name: &sname,
+            at,
+            spec: st,
+            inputs: &inputs,
+        };
+        let kind = self.stage_kind(cx, &s, programs)?;
+        Some(Stage {
+            name: sname,
+            kind,
+            inputs,
+            outputs,
+            required_metrics: required,
+            resources: limits.resources,
+            time_limit: limits.time_limit,
+            retries: limits.retries,
+            allow_nonfinite: st.allow_nonfinite,
+        })
+    }
+
+    /// The good inputs of a stage, role → source, in file order.
+    fn inputs(&mut self, raw: &CampaignFile, st: &StageSpec) -> Vec<(String, Source)> {
+        let mut inputs = Vec::new();
+        for (ik, spec) in &st.inputs.0 {
+            let iat = loc(ik);
+            let src = match spec {
+                InputSpec::Same(r) => self.source_ref(raw, r, iat, false).map(|(s, o)| {
+                    if s == "start" {
+                        Source::Start(o)
+                    } else {
+                        Source::Same { stage: s, role: o }
+                    }
+                }),
+                InputSpec::Previous(p) => self.previous_input(raw, st, ik, p),
+            };
+            if let Some(src) = src {
+                inputs.push((ik.value.clone(), src));
+            }
+        }
+        inputs
+    }
+
+    /// `{ previous: stage.output, initially: start.name }`: only a built-in stage may go
+    /// without `initially`.
+    fn previous_input(
+        &mut self,
+        raw: &CampaignFile,
+        st: &StageSpec,
+        ik: &Spanned<String>,
+        p: &PreviousInput,
+    ) -> Option<Source> {
+        let iat = loc(ik);
+        let prev = self.source_ref(raw, &p.previous, iat, true);
+        let init = match &p.initially {
+            Some(i) => match self.source_ref(raw, i, iat, false) {
+                Some((s, o)) if s == "start" => Some(Some(o)),
+                Some(_) => {
+                    self.push(
+                        iat,
+                        format!("`initially: {i}` must name a start file"),
+                        "write `initially: start.NAME`",
+                    );
+                    None
+                }
+                None => None,
+            },
+            None => Some(None),
+        };
+        match (prev, init) {
+            (Some((stage, role)), Some(initially)) => {
+                if initially.is_none() && st.builtin.is_none() {
+                    self.push(
+                        iat,
+                        format!("input `{}` has no value at iteration 1", ik.value),
+                        "add `initially: start.NAME` (only built-in stages may go without)",
+                    );
+                }
+                Some(Source::Previous {
+                    stage,
+                    role,
+                    initially,
+                })
+            }
+            _ => None,
+        }
+    }
+
+    /// Check `stage.output` / `start.name`; `previous` allows any stage (even later ones).
+    fn source_ref(
+        &mut self,
+        raw: &CampaignFile,
+        r: &str,
+        at: (u64, u64),
+        previous: bool,
+    ) -> Option<(String, String)> {
+        let Some((s, o)) = split_ref(r) else {
+            self.push(
+                at,
+                format!("input `{r}` must be written stage.output or start.name"),
+                "e.g. solve.sigma",
+            );
+            return None;
+        };
+        if s == "start" {
+            if previous {
+                self.push(
+                    at,
+                    "`previous:` must name a stage output",
+                    "use `initially: start.NAME` for the start file",
+                );
+                return None;
+            }
+            if raw.start.get(o).is_none() {
+                self.push(
+                    at,
+                    format!("unknown start file `{o}`"),
+                    format!(
+                        "start files: {}",
+                        raw.start.keys().collect::<Vec<_>>().join(", ")
+                    ),
+                );
+                return None;
+            }
+            return Some((s.into(), o.into()));
+        }
+        let Some(st) = raw.cycle.get(s) else {
+            self.push(
+                at,
+                format!("input `{r}` names unknown stage `{s}`"),
+                format!(
+                    "stages: {}",
+                    raw.cycle.keys().collect::<Vec<_>>().join(", ")
+                ),
+            );
+            return None;
+        };
+        let implicit_state = st.builtin.is_some() && o == "state";
+        if st.outputs.get(o).is_none() && !implicit_state {
+            self.push(
+                at,
+                format!("stage `{s}` declares no output `{o}`"),
+                format!(
+                    "its outputs: {}",
+                    st.outputs.keys().collect::<Vec<_>>().join(", ")
+                ),
+            );
+            return None;
+        }
+        Some((s.into(), o.into()))
+    }
+
+    /// Output file names are plain names in the scratch directory.
+    fn output_names(&mut self, st: &StageSpec) {
+        for (ok, ov) in &st.outputs.0 {
+            if ov.is_empty() || ov.contains('/') || ov == "metrics.json" || ov.starts_with('.') {
+                self.push(
+                    loc(ok),
+                    format!("output file name `{ov}` is not allowed"),
+                    "use a plain file name (no '/', not metrics.json) written in the scratch directory",
+                );
+            }
+        }
+    }
+
+    /// What the stage runs: exactly one of `run` (a list, or a script with `shell: true`)
+    /// and `builtin`.
+    fn stage_kind(
+        &mut self,
+        cx: &Cycle,
+        s: &StageAt,
+        programs: &mut BTreeMap<String, ResolvedProgram>,
+    ) -> Option<StageKind> {
+        let (sname, st, at) = (s.name, s.spec, s.at);
+        match (&st.run, &st.builtin) {
+            (Some(run), None) => match (&run.value, st.shell) {
+                (RunSpec::List(list), false) => self.command(cx, s, list, programs),
+                (RunSpec::Script(script), true) => {
+                    self.shell_script(cx, s, script, loc(run), programs)
+                }
+                (RunSpec::List(_), true) => {
+                    self.push(
+                        loc(run),
+                        format!("stage `{sname}`: `shell: true` takes one script string, not a list"),
+                        "write run: \"{{program:NAME}} --x {{param:x}} | tee log\" (every substituted value is single-quoted), or drop `shell: true` to run an argument list without a shell",
+                    );
+                    None
+                }
+                (RunSpec::Script(_), false) => {
+                    self.push(
+                        loc(run),
+                        format!("stage `{sname}`: `run` is one string, which only a shell stage takes"),
+                        "add `shell: true` to run it with /bin/sh -c, or write an argument list: run: [program, --x, \"{{param:x}}\"]",
+                    );
+                    None
+                }
+            },
+            (None, Some(b)) => match b.value.as_str() {
+                "mix" => self.mix(s),
+                "filter" => self.filter(s),
+                _ => {
+                    self.push(
+                        loc(b),
+                        format!("unknown built-in `{}`", b.value),
+                        "built-ins: mix, filter",
+                    );
+                    None
+                }
+            },
+            (Some(_), Some(_)) => {
+                self.push(
+                    at,
+                    format!("stage `{sname}` has both `run` and `builtin`"),
+                    "keep one",
+                );
+                None
+            }
+            (None, None) => {
+                self.push(
+                    at,
+                    format!("stage `{sname}` has neither `run` nor `builtin`"),
+                    "add `run: [program, args...]`",
+                );
+                None
+            }
+        }
+    }
+
+    /// The stages in an order where every same-iteration input comes first; a stage on a
+    /// cycle within one iteration is reported (and no stages are returned).
+    pub(super) fn order(&mut self, raw: &CampaignFile, stages: &[Stage]) -> Vec<Stage> {
+        match crate::spec::graph::order(stages) {
+            Ok(o) => o,
+            Err(cycle_stage) => {
+                let at = raw
+                    .cycle
+                    .0
+                    .iter()
+                    .find(|(k, _)| k.value == cycle_stage)
+                    .map(|(k, _)| loc(k))
+                    .unwrap_or((0, 0));
+                self.push(
+                    at,
+                    format!("stage `{cycle_stage}` is part of a cycle within one iteration"),
+                    "break it with `{ previous: stage.output, initially: start.NAME }`",
+                );
+                Vec::new()
+            }
+        }
+    }
+}
+
+/// Run `f` on stage `name` of `raw` as the stage loop would (its inputs checked first), with
+/// the parameters of `raw` as the only `{{param:}}` names; the diagnostics of both.
+#[cfg(test)]
+pub(super) fn with_stage<R>(
+    raw: &CampaignFile,
+    name: &str,
+    f: impl FnOnce(&mut Validator, &Cycle, &StageAt) -> R,
+) -> (R, Vec<(u64, u64, String)>) {
+    let params: BTreeSet<String> = raw.parameters.keys().map(str::to_string).collect();
+    let cx = Cycle {
+        raw,
+        base: Path::new("."),
+        params: &params,
+        declared: raw.programs.keys().map(str::to_string).collect(),
+    };
+    let Some((key, st)) = raw.cycle.0.iter().find(|(k, _)| k.value == name) else {
+        panic!("no stage `{name}`")
+    };
+    let mut v = super::testing::validator();
+    let inputs = v.inputs(raw, st);
+    let s = StageAt {
+        name,
+        at: loc(key),
+        spec: st,
+        inputs: &inputs,
+    };
+    let r = f(&mut v, &cx, &s);
+    (r, super::testing::found(&v))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::super::testing::*;
+    use super::*;
+
+    /// A cycle of three stages (`stages` replaces the third), one start file.
+    fn cycle(third: &str) -> CampaignFile {
+        raw(&format!(
+            "campaign: t
+start: {{ s0: x.json }}
+cycle:
+  a:
+    run: [/bin/true, \"{{{{input:x}}}}\"]
+    inputs: {{ x: {{ previous: c.y, initially: start.s0 }} }}
+    outputs: {{ x: x.json }}
+  b:
+    run: [/bin/true]
+    inputs: {{ x: a.x, s: start.s0 }}
+    outputs: {{ y: y.json }}
+  {third}
+stop: {{ max-iterations: 1, when: [{{ metric: b.m, change-below: 0.1 }}] }}
+"
+        ))
+    }
+
+    const C: &str = "c: { run: [/bin/true], inputs: { y: b.y }, outputs: { y: y.json } }";
+
+    fn stages_of(raw: &CampaignFile) -> (Vec<Stage>, Vec<(u64, u64, String)>) {
+        let mut v = validator();
+        let s = v.stages(raw, &BTreeSet::new(), &mut BTreeMap::new(), Path::new("."));
+        (s, found(&v))
+    }
+
+    #[test]
+    fn stages_resolve_their_inputs_and_take_the_metrics_of_stopping_rules() {
+        let (s, d) = stages_of(&cycle(C));
+        assert!(d.is_empty(), "{d:?}");
+        let names: Vec<&str> = s.iter().map(|s| s.name.as_str()).collect();
+        assert_eq!(names, ["a", "b", "c"]);
+        assert_eq!(
+            s[0].inputs,
+            [(
+                "x".to_string(),
+                Source::Previous {
+                    stage: "c".into(),
+                    role: "y".into(),
+                    initially: Some("s0".into())
+                }
+            )]
+        );
+        assert_eq!(
+            s[1].inputs,
+            [
+                (
+                    "x".to_string(),
+                    Source::Same {
+                        stage: "a".into(),
+                        role: "x".into()
+                    }
+                ),
+                ("s".to_string(), Source::Start("s0".into())),
+            ]
+        );
+        assert_eq!(s[1].required_metrics, BTreeSet::from(["m".to_string()]));
+        assert!(matches!(&s[2].kind, StageKind::Command { program, .. } if program == "/bin/true"));
+    }
+
+    #[test]
+    fn an_empty_cycle_is_reported_at_the_whole_file() {
+        let raw = raw("campaign: t\ncycle: {}\nstop: { max-iterations: 1 }\n");
+        let (s, d) = stages_of(&raw);
+        assert!(s.is_empty());
+        assert_eq!(d, vec![(0, 0, "the cycle has no stages".to_string())]);
+    }
+
+    #[test]
+    fn inputs_naming_nothing_are_reported_at_the_input() {
+        let cases = [
+            (
+                "x: nodot",
+                "input `nodot` must be written stage.output or start.name",
+            ),
+            ("x: start.none", "unknown start file `none`"),
+            ("x: zz.y", "input `zz.y` names unknown stage `zz`"),
+            ("x: b.nope", "stage `b` declares no output `nope`"),
+            (
+                "x: { previous: start.s0 }",
+                "`previous:` must name a stage output",
+            ),
+            (
+                "x: { previous: b.y, initially: b.y }",
+                "`initially: b.y` must name a start file",
+            ),
+            (
+                "x: { previous: b.y }",
+                "input `x` has no value at iteration 1",
+            ),
+        ];
+        for (input, want) in cases {
+            let c = format!(
+                "c: {{ run: [/bin/true], inputs: {{ {input} }}, outputs: {{ y: y.json }} }}"
+            );
+            let (s, d) = stages_of(&cycle(&c));
+            assert_eq!(d, vec![(12, 36, want.to_string())], "{input}");
+            // the stage stays (without the bad input) unless only iteration 1 lacks a value
+            let kept = s.iter().find(|s| s.name == "c").map(|s| s.inputs.len());
+            let want_inputs = usize::from(want.contains("iteration 1"));
+            assert_eq!(kept, Some(want_inputs), "{input}");
+        }
+    }
+
+    #[test]
+    fn output_file_names_with_a_folder_or_the_metrics_file_are_refused_at_the_role() {
+        for name in ["sub/y.json", "metrics.json", ".hidden", "\"\""] {
+            let c = format!("c: {{ run: [/bin/true], outputs: {{ y: y.json, z: {name} }} }}");
+            let (_, d) = stages_of(&cycle(&c));
+            let want = format!(
+                "output file name `{}` is not allowed",
+                name.trim_matches('"')
+            );
+            assert_eq!(d, vec![(12, 48, want)], "{name}");
+        }
+    }
+
+    #[test]
+    fn a_stage_runs_exactly_one_thing_of_the_right_form() {
+        let cases = [
+            (
+                "c: { run: [/bin/true], builtin: mix }",
+                (12, 3),
+                "stage `c` has both `run` and `builtin`",
+            ),
+            (
+                "c: { outputs: { y: y.json } }",
+                (12, 3),
+                "stage `c` has neither `run` nor `builtin`",
+            ),
+            ("c: { builtin: sort }", (12, 17), "unknown built-in `sort`"),
+            (
+                "c: { run: [/bin/true], shell: true }",
+                (12, 13),
+                "stage `c`: `shell: true` takes one script string, not a list",
+            ),
+            (
+                "c: { run: \"/bin/true\" }",
+                (12, 13),
+                "stage `c`: `run` is one string, which only a shell stage takes",
+            ),
+        ];
+        for (c, at, want) in cases {
+            let raw = cycle(c);
+            let (kind, d) = with_stage(&raw, "c", |v, cx, s| {
+                v.stage_kind(cx, s, &mut BTreeMap::new())
+            });
+            assert!(kind.is_none(), "{c}");
+            assert_eq!(d, vec![(at.0, at.1, want.to_string())], "{c}");
+        }
+    }
+
+    #[test]
+    fn a_cycle_within_one_iteration_is_reported_at_a_stage_on_it() {
+        let raw = cycle(
+            "c: { run: [/bin/true], inputs: { y: b.y, x: d.z }, outputs: { y: y.json } }
+  d: { run: [/bin/true], inputs: { y: c.y }, outputs: { z: z.json } }",
+        );
+        let (stages, d) = stages_of(&raw);
+        assert!(d.is_empty(), "{d:?}");
+        let mut v = validator();
+        assert!(v.order(&raw, &stages).is_empty());
+        assert_eq!(
+            found(&v),
+            vec![(
+                13,
+                3,
+                "stage `d` is part of a cycle within one iteration".to_string()
+            )]
+        );
+        // without the loop the order puts every same-iteration input first
+        let (stages, _) = stages_of(&cycle(C));
+        let mut v = validator();
+        let names: Vec<String> = v
+            .order(&cycle(C), &stages)
+            .into_iter()
+            .map(|s| s.name)
+            .collect();
+        assert_eq!(names, ["a", "b", "c"]);
+        assert!(v.diags.is_empty());
+    }
+}
