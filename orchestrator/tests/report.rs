@@ -173,8 +173,8 @@ async fn index_html_shows_every_figure_and_needs_nothing_outside() -> Result<()>
     let d = tempfile::tempdir()?;
     let (_fx, sum, _) = make_report(d.path()).await?;
     let html = std::fs::read_to_string(sum.out_dir.join("index.html"))?;
-    // 10 convergence figures + eos + probabilities
-    assert_eq!(sum.figures.len(), 12, "{:?}", sum.figures);
+    // the overview + 10 convergence figures + eos + probabilities
+    assert_eq!(sum.figures.len(), 13, "{:?}", sum.figures);
     for f in &sum.figures {
         assert!(
             html.contains(&format!("src=\"{}\"", f.png)),
