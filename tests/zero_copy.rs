@@ -4,7 +4,9 @@
 //! left once the scratch folders are recycled; a log that is also an output keeps its
 //! content (recycling must not truncate the shared inode). Run as an unprivileged user the
 //! input is a hard link to the stored file (root gets a clone or a copy instead, since
-//! read-only permissions do not stop root).
+//! read-only permissions do not stop root). A stage that lists an input under
+//! `writable-inputs` gets its own copy and may rewrite it; one that does not, and tries,
+//! is refused by the file system and changes nothing in the store.
 
 mod common;
 
@@ -31,6 +33,11 @@ cycle:
     run: [sh, -c, 'printf "{\"size\": %s, \"links\": %s}\n" $(wc -c < "$1") $(stat -c %h "$1") > metrics.json', sh, "{{input:big}}"]
     inputs: { big: w.big }
     metrics: [size, links]
+  m:
+    run: [sh, -c, 'printf tail >> "$1"; printf "{\"grown\": %s}\n" $(wc -c < "$1") > metrics.json', sh, "{{input:big}}"]
+    inputs: { big: w.big }
+    writable-inputs: [big]
+    metrics: [grown]
 stop:
   when:
     - { metric: w.x, change-below: 0.5, for: 1 }
@@ -47,6 +54,9 @@ fn check(dir: &Path, expect_linked: bool) {
     for p in &points {
         assert_eq!(p["state"], "converged", "{p}");
         assert_eq!(p["metrics"]["r.size"].as_f64(), Some(8_388_608.0), "{p}");
+        // A writable input is the stage's own copy: it grew there, not in the store
+        // (every stored artifact's content is checked against its hash below).
+        assert_eq!(p["metrics"]["m.grown"].as_f64(), Some(8_388_612.0), "{p}");
         let links = p["metrics"]["r.links"].as_f64().unwrap_or(0.0);
         if expect_linked {
             // The store's name and the input's name (the output's scratch name may be
@@ -122,4 +132,67 @@ fn large_outputs_and_inputs_move_without_copies() {
         .unwrap_or_else(|e| panic!("setpriv rondo: {e}"));
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     check(n.path(), true);
+}
+
+/// Without `writable-inputs`, a program that rewrites its input in place is refused by the
+/// file system (the input is a read-only link to the stored file), its attempt fails, and
+/// the stored content is unchanged. Run unprivileged: root is never given a link.
+#[test]
+fn an_input_rewritten_in_place_without_asking_is_refused_and_the_store_is_untouched() {
+    // SAFETY: geteuid cannot fail.
+    let root = unsafe { libc::geteuid() } == 0;
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let text = r#"campaign: no-write
+about: test campaign (not physics)
+programs:
+  sh: { path: /bin/sh }
+cycle:
+  w:
+    run: [sh, -c, 'echo original > f.txt; echo "{\"x\": 1}" > metrics.json']
+    outputs: { f: f.txt }
+    metrics: [x]
+  m:
+    run: [sh, -c, 'echo changed > "$1"', sh, "{{input:f}}"]
+    inputs: { f: w.f }
+stop:
+  max-iterations: 1
+"#;
+    std::fs::write(d.path().join("c.yaml"), text).unwrap_or_else(|e| panic!("{e}"));
+    let mut cmd = if root {
+        let chown = Command::new("chown")
+            .args(["-R", "65534:65534"])
+            .arg(d.path())
+            .status()
+            .unwrap_or_else(|e| panic!("chown: {e}"));
+        assert!(chown.success());
+        let mut c = Command::new("setpriv");
+        c.args(["--reuid=65534", "--regid=65534", "--clear-groups"])
+            .arg(rondo());
+        c
+    } else {
+        Command::new(rondo())
+    };
+    let o = cmd
+        .args(["run", "c.yaml", "-q"])
+        .current_dir(d.path())
+        .env("PATH", path_with_binaries())
+        .env("HOME", d.path())
+        .output()
+        .unwrap_or_else(|e| panic!("rondo run: {e}"));
+    // exit 3: a point did not converge (it failed).
+    assert_eq!(o.status.code(), Some(3), "the point fails: {}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let failed = strings(
+        &ws,
+        "SELECT failure_message FROM attempts WHERE stage = 'm' AND state = 'failed'",
+    );
+    assert_eq!(failed.len(), 1, "stage m failed once: {failed:?}");
+    assert!(failed[0].contains("Permission denied"), "{failed:?}");
+    let stored = strings(&ws, "SELECT artifact FROM attempt_outputs WHERE role = 'f'");
+    assert_eq!(stored.len(), 1);
+    let h = &stored[0];
+    let bytes = std::fs::read(ws.join("store").join(&h[..2]).join(&h[2..]))
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(bytes, b"original\n", "the store is untouched");
+    assert_eq!(blake3::hash(&bytes).to_hex().as_str(), h);
 }

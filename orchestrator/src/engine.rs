@@ -1588,7 +1588,7 @@ impl Engine<'_> {
             })?;
             let dest = inputs_dir.join(format!("{role}{ext}"));
             self.artifacts
-                .place(&hash, &dest, false)
+                .place(&hash, &dest, stage.writable_inputs.contains(role))
                 .with_context(|| format!("cannot place artifact {hash} as {}", dest.display()))?;
             let rel = format!("inputs/{role}{ext}");
             inputs.push((role.clone(), hash, PathBuf::from(rel)));

@@ -1126,6 +1126,20 @@ stop: { max-iterations: 1 }
 ",
             at: (3, 13),
         },
+        Case {
+            site: "stage `{sname}`: `writable-inputs` names `{}`, which is not one of its inputs",
+            says: "`writable-inputs` names `y`",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  s:
+    run: [/bin/true, \"{{input:x}}\"]
+    inputs: { x: start.x }
+    writable-inputs: [y]
+stop: { max-iterations: 1 }
+",
+            at: (7, 23),
+        },
     ]
 }
 

@@ -134,6 +134,8 @@ pub struct Stage {
     pub retries: u32,
     /// Accept NaN/Inf.
     pub allow_nonfinite: bool,
+    /// Input roles placed as private writable copies (`writable-inputs`).
+    pub writable_inputs: BTreeSet<String>,
 }
 
 /// What a stage runs.

@@ -309,6 +309,12 @@ pub struct StageSpec {
     /// Accept NaN/Inf in outputs and metrics.
     #[serde(default)]
     pub allow_nonfinite: bool,
+    /// Input roles the program rewrites in place: each gets a private writable copy (a
+    /// copy-on-write clone where the file system can, else a copy). Every other input is a
+    /// read-only hard link to the stored file.
+    #[serde(default)]
+    #[schemars(with = "Vec<String>")]
+    pub writable_inputs: Vec<Spanned<String>>,
     /// Settings of a built-in stage.
     #[serde(default)]
     pub settings: Option<BuiltinSettings>,

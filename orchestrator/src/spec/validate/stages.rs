@@ -104,6 +104,21 @@ impl Validator<'_> {
             spec: st,
             inputs: &inputs,
         };
+        let mut writable_inputs = BTreeSet::new();
+        for w in &st.writable_inputs {
+            if st.inputs.get(&w.value).is_some() {
+                writable_inputs.insert(w.value.clone());
+            } else {
+                self.push(
+                    loc(w),
+                    format!(
+                        "stage `{sname}`: `writable-inputs` names `{}`, which is not one of its inputs",
+                        w.value
+                    ),
+                    "list input roles of this stage (the keys under `inputs:`)",
+                );
+            }
+        }
         let kind = self.stage_kind(cx, &s, programs)?;
         Some(Stage {
             name: sname,
@@ -115,6 +130,7 @@ impl Validator<'_> {
             time_limit: limits.time_limit,
             retries: limits.retries,
             allow_nonfinite: st.allow_nonfinite,
+            writable_inputs,
         })
     }
 
