@@ -379,7 +379,7 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             };
             let summary = engine::run(&c, &opts, Progress::for_stderr(quiet)).await?;
             let counts = summary
-                .states
+                .by_text()
                 .iter()
                 .map(|(s, n)| format!("{n} {s}"))
                 .collect::<Vec<_>>()
