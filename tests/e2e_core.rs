@@ -1528,6 +1528,99 @@ fn cancel_reaches_the_running_orchestrator_and_records_the_reason() {
     );
 }
 
+/// `rondo cancel` with no orchestrator running (it was SIGKILLed with two attempts running):
+/// the outstanding attempts are ended and recorded cancelled, the points cancelled, both with
+/// the reason.
+#[test]
+fn cancel_with_no_orchestrator_ends_what_a_killed_one_left_outstanding() {
+    let d = tmp();
+    write(
+        &d.path().join("c.yaml"),
+        "campaign: sleepy\nsweep:\n  product:\n    k: [1, 2]\ncycle:\n  nap:\n    run: [/bin/sleep, \"30\"]\nstop:\n  max-iterations: 3\n",
+    );
+    let mut first = Command::new(rondo())
+        .args(["run", "c.yaml", "--grace", "1"])
+        .current_dir(d.path())
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap_or_else(|e| panic!("spawn: {e}"));
+    let ws = d.path().join("c.rondo");
+    let t0 = Instant::now();
+    // both launches written to the store (the next tick after the start)
+    let running = |ws: &Path| -> i64 {
+        query(ws, |pool| {
+            Box::pin(async move {
+                sqlx::query_scalar(
+                    "SELECT count(*) FROM attempts WHERE state = 'running' AND handle_id IS NOT NULL",
+                )
+                .fetch_one(pool)
+                .await
+                .unwrap_or(0)
+            })
+        })
+    };
+    while !(ws.join("rondo.db").is_file() && running(&ws) == 2) {
+        if t0.elapsed() > Duration::from_secs(60) {
+            let _ = first.kill();
+            panic!("the run did not start two attempts");
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    first.kill().unwrap_or_else(|e| panic!("kill: {e}")); // SIGKILL: nothing is recorded
+    first.wait().unwrap_or_else(|e| panic!("wait: {e}"));
+    let ws_id = workspace_id(&ws);
+    assert_eq!(
+        processes_of_workspace(&ws_id).len(),
+        2,
+        "the children outlive the killed orchestrator"
+    );
+    let o = run_rondo(d.path(), &["cancel", "--reason", "wrong U"]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{}", shown(&o));
+    assert!(
+        err.contains("no orchestrator was running; cancelled 2 outstanding attempt(s)"),
+        "{err}"
+    );
+    let rows: Vec<(String, String, String)> = query(&ws, |pool| {
+        Box::pin(async move {
+            sqlx::query("SELECT state, failure_kind, failure_message FROM attempts ORDER BY id")
+                .fetch_all(pool)
+                .await
+                .unwrap_or_default()
+                .into_iter()
+                .map(|r| (r.get(0), r.get(1), r.get(2)))
+                .collect()
+        })
+    });
+    let want = (
+        "cancelled".to_string(),
+        "cancelled".to_string(),
+        "cancelled: wrong U".to_string(),
+    );
+    assert_eq!(rows, [want.clone(), want], "{rows:?}");
+    let s = status_json(d.path(), &ws);
+    for p in s["points"].as_array().cloned().unwrap_or_default() {
+        assert_eq!(p["state"], "cancelled", "{p}");
+        assert_eq!(p["reason"], "cancelled: wrong U", "{p}");
+    }
+    let events = strings(&ws, "SELECT detail FROM events WHERE kind = 'cancel'");
+    assert_eq!(
+        events,
+        ["rondo cancel: wrong U; 2 outstanding attempt(s) cancelled"],
+        "{events:?}"
+    );
+    let t0 = Instant::now();
+    while !processes_of_workspace(&ws_id).is_empty() {
+        assert!(
+            t0.elapsed() < Duration::from_secs(30),
+            "children left: {:?}",
+            processes_of_workspace(&ws_id)
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+}
+
 #[test]
 fn without_file_or_workspace_the_only_workspace_here_or_one_level_below_is_used() {
     let d = tmp();

@@ -16,7 +16,7 @@ use sqlx::{Row, SqlitePool};
 
 use crate::artifacts::ArtifactStore;
 use crate::spec::{EosAnalysis, EosModelName};
-use crate::store;
+use crate::store::{self, AttemptState, IterationState, PointState};
 
 /// Role (and file name) of the equation-of-state result among a generation's outputs.
 pub const EOS_ROLE: &str = "eos.json";
@@ -170,9 +170,10 @@ pub async fn convergence_marks(
     point: &str,
 ) -> Result<(Option<u32>, Option<u32>)> {
     let rows = sqlx::query(
-        "SELECT iteration, stop_json FROM iterations WHERE point = ? AND state = 'good' ORDER BY iteration",
+        "SELECT iteration, stop_json FROM iterations WHERE point = ? AND state = ? ORDER BY iteration",
     )
     .bind(point)
+    .bind(IterationState::Good)
     .fetch_all(pool)
     .await?;
     let mut first = None;
@@ -209,11 +210,13 @@ pub async fn final_value(
     };
     let rows = sqlx::query(
         "SELECT a.id, a.iteration, m.value, m.error FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
-         JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration AND i.state = 'good' \
-         WHERE a.point = ? AND a.state = 'succeeded' AND m.name = ? AND a.iteration BETWEEN ? AND ? \
+         JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration AND i.state = ? \
+         WHERE a.point = ? AND a.state = ? AND m.name = ? AND a.iteration BETWEEN ? AND ? \
          ORDER BY a.iteration",
     )
+    .bind(IterationState::Good)
     .bind(point)
+    .bind(AttemptState::Succeeded)
     .bind(metric)
     .bind(i64::from(from))
     .bind(i64::from(last))
@@ -276,7 +279,8 @@ pub async fn eos_groups(
     let mut sources = Vec::new();
     for r in rows {
         let id: String = r.get("id");
-        if r.get::<String, _>("state") != "converged" {
+        let state: PointState = r.try_get("state").with_context(|| format!("point {id}"))?;
+        if state != PointState::Converged {
             continue;
         }
         let values: serde_json::Map<String, serde_json::Value> =

@@ -16,6 +16,8 @@ use serde::Serialize;
 use serde_json::Value;
 use sqlx::{Row, SqlitePool};
 
+use crate::store::{AttemptState, IterationState, PointState};
+
 /// Smallest accepted hash prefix, in hex digits.
 pub const MIN_PREFIX: usize = 6;
 
@@ -461,9 +463,10 @@ async fn resolve_output(
         Some(i) => Some(i),
         None => {
             sqlx::query_scalar(
-                "SELECT MAX(iteration) FROM iterations WHERE point = ? AND state = 'good'",
+                "SELECT MAX(iteration) FROM iterations WHERE point = ? AND state = ?",
             )
             .bind(&point)
+            .bind(IterationState::Good)
             .fetch_one(pool)
             .await?
         }
@@ -473,10 +476,11 @@ async fn resolve_output(
     };
     let rows = sqlx::query(
         "SELECT a.stage, o.role, o.artifact FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id
-         WHERE a.point = ? AND a.iteration = ? AND a.state = 'succeeded' ORDER BY a.stage, o.role, a.id DESC",
+         WHERE a.point = ? AND a.iteration = ? AND a.state = ? ORDER BY a.stage, o.role, a.id DESC",
     )
     .bind(&point)
     .bind(iteration)
+    .bind(AttemptState::Succeeded)
     .fetch_all(pool)
     .await?;
     let mut names = Vec::new();
@@ -526,9 +530,10 @@ async fn resolve_metric(
         Some(i) => i,
         None => {
             let last: Option<i64> = sqlx::query_scalar(
-                "SELECT MAX(iteration) FROM iterations WHERE point = ? AND state = 'good'",
+                "SELECT MAX(iteration) FROM iterations WHERE point = ? AND state = ?",
             )
             .bind(&point)
+            .bind(IterationState::Good)
             .fetch_one(pool)
             .await?;
             last.with_context(|| format!("point {point} has no good iteration yet"))?
@@ -536,12 +541,13 @@ async fn resolve_metric(
     };
     let row = sqlx::query(
         "SELECT m.value, m.error, a.id FROM metrics m JOIN attempts a ON a.id = m.attempt_id
-         WHERE a.point = ? AND a.iteration = ? AND m.name = ? AND a.state = 'succeeded'
+         WHERE a.point = ? AND a.iteration = ? AND m.name = ? AND a.state = ?
          ORDER BY a.id DESC LIMIT 1",
     )
     .bind(&point)
     .bind(iteration)
     .bind(name)
+    .bind(AttemptState::Succeeded)
     .fetch_optional(pool)
     .await?;
     let Some(row) = row else {
@@ -653,7 +659,7 @@ pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
         iteration: Some(r.try_get("iteration")?),
         stage: r.try_get("stage")?,
         attempt: r.try_get("attempt")?,
-        state: r.try_get("state")?,
+        state: r.try_get::<AttemptState, _>("state")?.to_string(),
         argv: opt_json(&argv_json, "argv_json", id)?,
         workdir: Some(r.try_get("workdir")?),
         executor: r.try_get("executor")?,
@@ -717,12 +723,12 @@ async fn producers(pool: &SqlitePool, hash: &str, point: Option<&str>) -> Result
     .bind(hash)
     .fetch_all(pool)
     .await?;
-    let mut all: Vec<(i64, String, String)> = Vec::new();
+    let mut all: Vec<(i64, String, AttemptState)> = Vec::new();
     for r in rows {
         all.push((r.try_get(0)?, r.try_get(1)?, r.try_get(2)?));
     }
-    if all.iter().any(|a| a.2 == "succeeded") {
-        all.retain(|a| a.2 == "succeeded");
+    if all.iter().any(|a| a.2 == AttemptState::Succeeded) {
+        all.retain(|a| a.2 == AttemptState::Succeeded);
     }
     if let Some(p) = point {
         if all.iter().any(|a| a.1 == p) {
@@ -1471,7 +1477,7 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
         spec_blake3: c.try_get("spec_blake3")?,
         values: serde_json::from_str(&vj)
             .with_context(|| format!("point {point}: malformed values_json"))?,
-        state: pr.try_get(1)?,
+        state: pr.try_get::<PointState, _>(1)?.to_string(),
         point: point.clone(),
     };
     let mut d = PointData {
@@ -1494,8 +1500,8 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
         let id: i64 = r.try_get(0)?;
         let iteration: i64 = r.try_get(1)?;
         let stage: String = r.try_get(2)?;
-        let state: String = r.try_get(7)?;
-        if state != "succeeded" {
+        let state: AttemptState = r.try_get(7)?;
+        if state != AttemptState::Succeeded {
             continue;
         }
         d.programs.entry(stage.clone()).or_default().insert(
@@ -1525,9 +1531,10 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
     }
     let rows = sqlx::query(
         "SELECT a.iteration, m.name, m.value FROM metrics m JOIN attempts a ON a.id = m.attempt_id
-         WHERE a.point = ? AND a.state = 'succeeded' ORDER BY a.iteration, a.id",
+         WHERE a.point = ? AND a.state = ? ORDER BY a.iteration, a.id",
     )
     .bind(&point)
+    .bind(AttemptState::Succeeded)
     .fetch_all(pool)
     .await?;
     for r in rows {

@@ -987,7 +987,7 @@ mod tests {
             )
             .await?;
             assert_eq!(
-                summary.states.get("failed"),
+                summary.states.get(&crate::store::PointState::Failed),
                 Some(&1),
                 "{case}: {summary:?}"
             );

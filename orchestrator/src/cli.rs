@@ -13,7 +13,7 @@ use sqlx::Row;
 use crate::engine::{self, ExecutorChoice, Paths, RunOptions};
 use crate::progress::Progress;
 use crate::spec::{self, Campaign, Source, StageKind};
-use crate::store;
+use crate::store::{self, AttemptState, IterationState, PointState};
 
 /// Exit code: every point converged.
 pub const EXIT_OK: u8 = 0;
@@ -379,7 +379,7 @@ async fn dispatch(cmd: Command) -> Result<u8> {
             };
             let summary = engine::run(&c, &opts, Progress::for_stderr(quiet)).await?;
             let counts = summary
-                .states
+                .by_text()
                 .iter()
                 .map(|(s, n)| format!("{n} {s}"))
                 .collect::<Vec<_>>()
@@ -924,13 +924,16 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
     let mut counts = serde_json::Map::new();
     for r in rows {
         let id: String = r.get("id");
-        let state: String = r.get("state");
+        let state: PointState = r
+            .try_get("state")
+            .with_context(|| format!("{}: point {id}", ws.display()))?;
         let values: serde_json::Value =
             serde_json::from_str(&r.get::<String, _>("values_json")).unwrap_or_default();
         let good: Option<i64> = sqlx::query_scalar(
-            "SELECT max(iteration) FROM iterations WHERE point = ? AND state = 'good'",
+            "SELECT max(iteration) FROM iterations WHERE point = ? AND state = ?",
         )
         .bind(&id)
+        .bind(IterationState::Good)
         .fetch_one(&pool)
         .await?;
         let latest: Option<i64> =
@@ -943,10 +946,11 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
         if let Some(it) = good {
             for m in sqlx::query(
                 "SELECT m.name, m.value, m.error FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
-                 WHERE a.point = ? AND a.iteration = ? AND a.state = 'succeeded' ORDER BY m.name",
+                 WHERE a.point = ? AND a.iteration = ? AND a.state = ? ORDER BY m.name",
             )
             .bind(&id)
             .bind(it)
+            .bind(AttemptState::Succeeded)
             .fetch_all(&pool)
             .await?
             {
@@ -976,13 +980,13 @@ pub async fn status(ws: &Path) -> Result<serde_json::Value> {
             .bind(&id)
             .fetch_one(&pool)
             .await?;
-        let n = counts.entry(state.clone()).or_insert(serde_json::json!(0));
+        let n = counts.entry(state.as_str()).or_insert(serde_json::json!(0));
         *n = serde_json::json!(n.as_u64().unwrap_or(0) + 1);
         points.push(serde_json::json!({
             "id": id,
             "index": r.get::<i64, _>("idx"),
             "values": values,
-            "state": state,
+            "state": state.as_str(),
             "reason": r.get::<Option<String>, _>("reason"),
             "iteration": good.unwrap_or(0),
             "last_iteration": latest.unwrap_or(0),
@@ -1096,7 +1100,7 @@ fn status_text(s: &serde_json::Value) -> String {
             p["state"].as_str().unwrap_or(""),
             p["reason"]
                 .as_str()
-                .filter(|_| p["state"] != "converged")
+                .filter(|_| p["state"] != PointState::Converged.as_str())
                 .map(|r| format!(" ({r})"))
                 .unwrap_or_default()
         );
@@ -1172,10 +1176,11 @@ async fn analyze(ws: &Path) -> Result<u8> {
             camp.name
         )));
     };
-    let open: i64 =
-        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN ('planned', 'running')")
-            .fetch_one(&pool)
-            .await?;
+    let open: i64 = sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN (?, ?)")
+        .bind(PointState::Planned)
+        .bind(PointState::Running)
+        .fetch_one(&pool)
+        .await?;
     if open > 0 {
         bail!(BadInput(format!(
             "campaign {}: {open} point(s) have not stopped yet; `rondo run` the campaign to its end first",
@@ -1270,11 +1275,15 @@ async fn cancel_offline(ws: &Path, _lock: store::WorkspaceLock, reason: &str) ->
     let pool = store::open_existing_rw(ws, "cancelling records the cancelled points").await?;
     let camp = store::campaign_row(&pool).await?;
     let ws_id = camp.map(|c| c.workspace_id).unwrap_or_default();
-    let rows = sqlx::query(
-        "SELECT id, executor, handle_id, host FROM attempts WHERE state IN ('planned','submitted','running')",
-    )
-    .fetch_all(&pool)
-    .await?;
+    let sql = format!(
+        "SELECT id, executor, handle_id, host FROM attempts WHERE state IN {}",
+        store::rows(1, AttemptState::OUTSTANDING.len())
+    );
+    let mut query = sqlx::query(&sql);
+    for s in AttemptState::OUTSTANDING {
+        query = query.bind(s);
+    }
+    let rows = query.fetch_all(&pool).await?;
     let (tx, _rx) = tokio::sync::mpsc::unbounded_channel();
     let mut n = 0;
     for r in rows {
@@ -1313,7 +1322,9 @@ async fn cancel_offline(ws: &Path, _lock: store::WorkspaceLock, reason: &str) ->
         if let Err(e) = res {
             eprintln!("rondo: attempt {id}: {e}");
         }
-        sqlx::query("UPDATE attempts SET state = 'cancelled', failure_kind = 'cancelled', failure_message = ?, ended_at = ? WHERE id = ?")
+        sqlx::query("UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, ended_at = ? WHERE id = ?")
+            .bind(AttemptState::Cancelled)
+            .bind("cancelled") // the failure kind
             .bind(format!("cancelled: {reason}"))
             .bind(store::now())
             .bind(id)
@@ -1321,12 +1332,13 @@ async fn cancel_offline(ws: &Path, _lock: store::WorkspaceLock, reason: &str) ->
             .await?;
         n += 1;
     }
-    sqlx::query(
-        "UPDATE points SET state = 'cancelled', reason = ? WHERE state IN ('planned','running')",
-    )
-    .bind(format!("cancelled: {reason}"))
-    .execute(&pool)
-    .await?;
+    sqlx::query("UPDATE points SET state = ?, reason = ? WHERE state IN (?, ?)")
+        .bind(PointState::Cancelled)
+        .bind(format!("cancelled: {reason}"))
+        .bind(PointState::Planned)
+        .bind(PointState::Running)
+        .execute(&pool)
+        .await?;
     store::event(
         &pool,
         "cancel",

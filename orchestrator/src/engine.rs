@@ -43,7 +43,7 @@ use crate::progress::Progress;
 use crate::scratch;
 use crate::spec::{Campaign, PointSpec, Source, Stage, StageKind};
 use crate::stop::{self, Sample};
-use crate::store;
+use crate::store::{self, AttemptState, IterationState, PointState};
 use crate::validate::{self, Metric};
 
 /// The rondo version recorded with every attempt.
@@ -124,7 +124,7 @@ pub struct RunOptions {
 #[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct RunSummary {
     /// Points per final state.
-    pub states: BTreeMap<String, usize>,
+    pub states: BTreeMap<PointState, usize>,
     /// Stopped by a signal before every point stopped.
     pub interrupted: bool,
     /// Stopped by `rondo cancel`.
@@ -140,7 +140,16 @@ impl RunSummary {
     pub fn all_converged(&self) -> bool {
         !self.interrupted
             && !self.cancelled
-            && self.states.iter().all(|(s, n)| s == "converged" || *n == 0)
+            && self
+                .states
+                .iter()
+                .all(|(s, n)| *s == PointState::Converged || *n == 0)
+    }
+
+    /// The counts keyed and ordered by the states' texts (as the log and the `run-ended`
+    /// event show them).
+    pub fn by_text(&self) -> BTreeMap<&'static str, usize> {
+        self.states.iter().map(|(s, n)| (s.as_str(), *n)).collect()
     }
 }
 
@@ -330,7 +339,7 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
                     b.push_bind(&p.id)
                         .push_bind(p.index as i64)
                         .push_bind(values_json(p).to_string())
-                        .push("'planned'");
+                        .push_bind(PointState::Planned);
                 });
                 q.build().execute(&mut *tx).await?;
             }
@@ -463,7 +472,7 @@ struct Verdict {
     iteration: u32,
     decision: stop::Decision,
     /// The point stops: its new state and the reason.
-    fate: Option<(&'static str, String)>,
+    fate: Option<(PointState, String)>,
     /// One-line summary of the rules' changes for the log.
     summary: String,
     first_met: Option<u32>,
@@ -526,7 +535,7 @@ fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
         "INSERT INTO attempts(id, point, iteration, stage, attempt, state, argv_json, workdir, executor, \
          program_path, program_blake3, program_unknown, program_version, parameters_json, seed, rondo_version, \
          created_at, host) VALUES {}",
-        vec!["(?,?,?,?,?,'planned',?,?,?,?,?,?,?,?,?,?,?,?)"; rows.len()].join(",")
+        vec!["(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)"; rows.len()].join(",")
     ));
     let mut inputs: Vec<(i64, String, String)> = Vec::new();
     for r in rows {
@@ -537,6 +546,7 @@ fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
             .bind(i64::from(r.iteration))
             .bind(r.stage)
             .bind(i64::from(r.attempt))
+            .bind(AttemptState::Planned)
             .bind(r.argv_json)
             .bind(r.workdir)
             .bind(r.executor)
@@ -592,7 +602,7 @@ enum Ended {
         /// Lost or stopped by rondo: does not use up a retry.
         free: bool,
         /// Final state of the attempt row.
-        state: &'static str,
+        state: AttemptState,
     },
 }
 
@@ -727,7 +737,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         None,
         None,
         None,
-        &format!("{:?}", summary.states),
+        &format!("{:?}", summary.by_text()),
     )
     .await?;
     engine.progress.finish();
@@ -810,14 +820,14 @@ impl Engine<'_> {
             }
         }
         let mut states = BTreeMap::new();
-        for row in sqlx::query("SELECT state, count(*) AS n FROM points GROUP BY state")
-            .fetch_all(&self.pool)
-            .await?
+        for (state, n) in sqlx::query_as::<_, (PointState, i64)>(
+            "SELECT state, count(*) AS n FROM points GROUP BY state",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .context("reading the points' states")?
         {
-            states.insert(
-                row.get::<String, _>("state"),
-                row.get::<i64, _>("n") as usize,
-            );
+            states.insert(state, n as usize);
         }
         Ok(RunSummary {
             states,
@@ -871,30 +881,35 @@ impl Engine<'_> {
     async fn restore(&mut self) -> Result<()> {
         // Three reads for all points and one transaction, whatever the number of points: a
         // sweep of thousands of points resumes in a handful of statements.
-        let states: HashMap<String, String> =
-            sqlx::query_as::<_, (String, String)>("SELECT id, state FROM points")
+        let states: HashMap<String, PointState> =
+            sqlx::query_as::<_, (String, PointState)>("SELECT id, state FROM points")
                 .fetch_all(&self.pool)
-                .await?
+                .await
+                .context("reading the points' states")?
                 .into_iter()
                 .collect();
         // SQLite's bare-column rule: with max(), `state` comes from the row holding the max.
-        let lasts: HashMap<String, (i64, String)> = sqlx::query_as::<_, (String, i64, String)>(
-            "SELECT point, max(iteration), state FROM iterations GROUP BY point",
-        )
-        .fetch_all(&self.pool)
-        .await?
-        .into_iter()
-        .map(|(p, it, st)| (p, (it, st)))
-        .collect();
+        let lasts: HashMap<String, (i64, IterationState)> =
+            sqlx::query_as::<_, (String, i64, IterationState)>(
+                "SELECT point, max(iteration), state FROM iterations GROUP BY point",
+            )
+            .fetch_all(&self.pool)
+            .await
+            .context("reading the iterations' states")?
+            .into_iter()
+            .map(|(p, it, st)| (p, (it, st)))
+            .collect();
         // Per point and stage of its last iteration: attempts so far and whether one succeeded.
         let mut tried: HashMap<(String, String), (u32, bool)> = HashMap::new();
-        for (point, stage, max_attempt, succeeded) in sqlx::query_as::<_, (String, String, i64, bool)>(
-            "SELECT a.point, a.stage, max(a.attempt), max(a.state = 'succeeded') FROM attempts a \
+        for (point, stage, max_attempt, succeeded) in
+            sqlx::query_as::<_, (String, String, i64, bool)>(
+                "SELECT a.point, a.stage, max(a.attempt), max(a.state = ?) FROM attempts a \
              JOIN (SELECT point, max(iteration) AS it FROM iterations GROUP BY point) l \
              ON l.point = a.point AND a.iteration = l.it GROUP BY a.point, a.stage",
-        )
-        .fetch_all(&self.pool)
-        .await?
+            )
+            .bind(AttemptState::Succeeded)
+            .fetch_all(&self.pool)
+            .await?
         {
             tried.insert((point, stage), (max_attempt as u32, succeeded));
         }
@@ -913,8 +928,9 @@ impl Engine<'_> {
             ),
         >(
             "SELECT point, stage, max(iteration), program_path, program_blake3, program_version \
-             FROM attempts WHERE state = 'succeeded' GROUP BY point, stage",
+             FROM attempts WHERE state = ? GROUP BY point, stage",
         )
+        .bind(AttemptState::Succeeded)
         .fetch_all(&self.pool)
         .await?
         {
@@ -940,10 +956,10 @@ impl Engine<'_> {
                 );
             };
             let mut run = PointRun::new(spec, nstages);
-            let resumable = match state.as_str() {
-                "converged" | "capped" => false,
-                "failed" => self.opts.retry_failed,
-                _ => true,
+            let resumable = match *state {
+                PointState::Converged | PointState::Capped => false,
+                PointState::Failed => self.opts.retry_failed,
+                PointState::Planned | PointState::Running | PointState::Cancelled => true,
             };
             if !resumable {
                 run.phase = PointPhase::Done;
@@ -965,16 +981,17 @@ impl Engine<'_> {
                 }
                 Some((it, st)) => {
                     run.iteration = *it as u32;
-                    if st == "good" {
+                    if *st == IterationState::Good {
                         // The decision after a good iteration is committed with it; a good
                         // last iteration of a resumable point means the next one is due.
                         run.iteration = *it as u32 + 1;
                         new_iterations.push((spec.id.clone(), it + 1));
                     } else {
                         fresh_iteration = false;
-                        if st == "failed" || st == "cancelled" {
+                        if matches!(st, IterationState::Failed | IterationState::Cancelled) {
                             // Only reached with --retry-failed or after a cancel: run it again.
-                            sqlx::query("UPDATE iterations SET state = 'running', ended_at = NULL WHERE point = ? AND iteration = ?")
+                            sqlx::query("UPDATE iterations SET state = ?, ended_at = NULL WHERE point = ? AND iteration = ?")
+                                .bind(IterationState::Running)
                                 .bind(&spec.id)
                                 .bind(it)
                                 .execute(&mut *tx)
@@ -1000,8 +1017,9 @@ impl Engine<'_> {
                     })
                     .unwrap_or(nstages);
             }
-            if state != "planned" && state != "running" {
-                sqlx::query("UPDATE points SET state = 'running', reason = NULL WHERE id = ?")
+            if !matches!(state, PointState::Planned | PointState::Running) {
+                sqlx::query("UPDATE points SET state = ?, reason = NULL WHERE id = ?")
+                    .bind(PointState::Running)
                     .bind(&spec.id)
                     .execute(&mut *tx)
                     .await?;
@@ -1025,7 +1043,7 @@ impl Engine<'_> {
             q.push_values(chunk, |mut b, (point, it)| {
                 b.push_bind(point)
                     .push_bind(*it)
-                    .push("'running'")
+                    .push_bind(IterationState::Running)
                     .push_bind(now.clone());
             });
             q.build().execute(&mut *tx).await?;
@@ -1048,9 +1066,11 @@ impl Engine<'_> {
             "SELECT a.iteration AS it, m.name AS name, m.value AS value, m.error AS error \
              FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
              LEFT JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration \
-             WHERE a.point = ? AND a.state = 'succeeded' AND (i.state = 'good' OR a.iteration = ?)",
+             WHERE a.point = ? AND a.state = ? AND (i.state = ? OR a.iteration = ?)",
         )
         .bind(&point_id)
+        .bind(AttemptState::Succeeded)
+        .bind(IterationState::Good)
         .bind(i64::from(n))
         .fetch_all(&self.pool)
         .await?;
@@ -1069,10 +1089,11 @@ impl Engine<'_> {
                 );
         }
         let first_met: Option<i64> = sqlx::query_scalar(
-            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = 'good' \
+            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = ? \
              AND json_extract(stop_json, '$.rules_met') = 1",
         )
         .bind(&point_id)
+        .bind(IterationState::Good)
         .fetch_one(&self.pool)
         .await?;
         let pr = &mut self.points[p];
@@ -1083,13 +1104,17 @@ impl Engine<'_> {
 
     /// Settle attempts an earlier orchestrator left planned, submitted or running.
     async fn reconcile(&mut self) -> Result<()> {
-        let rows = sqlx::query(
+        let sql = format!(
             "SELECT id, point, iteration, stage, attempt, executor, handle_id, host, workdir, \
              program_path, program_blake3, program_version FROM attempts \
-             WHERE state IN ('planned', 'submitted', 'running') ORDER BY id",
-        )
-        .fetch_all(&self.pool)
-        .await?;
+             WHERE state IN {} ORDER BY id",
+            store::rows(1, AttemptState::OUTSTANDING.len())
+        );
+        let mut query = sqlx::query(&sql);
+        for s in AttemptState::OUTSTANDING {
+            query = query.bind(s);
+        }
+        let rows = query.fetch_all(&self.pool).await?;
         for row in rows {
             let id: i64 = row.get("id");
             let point_id: String = row.get("point");
@@ -1113,7 +1138,7 @@ impl Engine<'_> {
                 ended: Some(Utc::now()),
                 host: None,
                 free: true,
-                state: "lost",
+                state: AttemptState::Lost,
             };
             if executor == "builtin" {
                 self.settle(
@@ -1170,12 +1195,15 @@ impl Engine<'_> {
             };
             match answer {
                 Reattached::Found(h) => {
-                    sqlx::query("UPDATE attempts SET state = 'submitted', handle_id = ?, host = ? WHERE id = ?")
-                        .bind(&h.id)
-                        .bind(&h.host)
-                        .bind(id)
-                        .execute(&self.pool)
-                        .await?;
+                    sqlx::query(
+                        "UPDATE attempts SET state = ?, handle_id = ?, host = ? WHERE id = ?",
+                    )
+                    .bind(AttemptState::Submitted)
+                    .bind(&h.id)
+                    .bind(&h.host)
+                    .bind(id)
+                    .execute(&self.pool)
+                    .await?;
                     store::event(
                         &self.pool,
                         "attempt-adopted",
@@ -1403,14 +1431,16 @@ impl Engine<'_> {
         self.points[p].phase = PointPhase::Done;
         let mut tx = self.pool.begin().await?;
         sqlx::query(
-            "UPDATE iterations SET state = 'failed', ended_at = ? WHERE point = ? AND iteration = ?",
+            "UPDATE iterations SET state = ?, ended_at = ? WHERE point = ? AND iteration = ?",
         )
+        .bind(IterationState::Failed)
         .bind(store::now())
         .bind(&point_id)
         .bind(i64::from(iteration))
         .execute(&mut *tx)
         .await?;
-        sqlx::query("UPDATE points SET state = 'failed', reason = ? WHERE id = ?")
+        sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
+            .bind(PointState::Failed)
             .bind(&reason)
             .bind(&point_id)
             .execute(&mut *tx)
@@ -1478,11 +1508,12 @@ impl Engine<'_> {
             async move {
                 let h: Option<String> = sqlx::query_scalar(
                     "SELECT o.artifact FROM attempts a JOIN attempt_outputs o ON o.attempt_id = a.id \
-                     WHERE a.point = ? AND a.iteration = ? AND a.stage = ? AND a.state = 'succeeded' AND o.role = ?",
+                     WHERE a.point = ? AND a.iteration = ? AND a.stage = ? AND a.state = ? AND o.role = ?",
                 )
                 .bind(point)
                 .bind(i64::from(it))
                 .bind(&stage)
+                .bind(AttemptState::Succeeded)
                 .bind(&role)
                 .fetch_optional(&self.pool)
                 .await?;
@@ -1773,14 +1804,13 @@ impl Engine<'_> {
         match &stage.kind {
             StageKind::Mix(_) | StageKind::Filter(_) => {
                 let started = Utc::now();
-                sqlx::query(
-                    "UPDATE attempts SET state = 'running', started_at = ?, host = ? WHERE id = ?",
-                )
-                .bind(store::time_text(started))
-                .bind(&self.host)
-                .bind(id)
-                .execute(&self.pool)
-                .await?;
+                sqlx::query("UPDATE attempts SET state = ?, started_at = ?, host = ? WHERE id = ?")
+                    .bind(AttemptState::Running)
+                    .bind(store::time_text(started))
+                    .bind(&self.host)
+                    .bind(id)
+                    .execute(&self.pool)
+                    .await?;
                 // Runs exactly the recorded argument list, in the scratch folder.
                 let result = builtins::run_argv(&argv, &workdir);
                 let ended = match result {
@@ -1806,7 +1836,7 @@ impl Engine<'_> {
                         ended: Some(Utc::now()),
                         host: Some(self.host.clone()),
                         free: false,
-                        state: "failed",
+                        state: AttemptState::Failed,
                     },
                 };
                 self.settle(id, Some(&fl), ended).await?;
@@ -1842,16 +1872,16 @@ impl Engine<'_> {
                         );
                     }
                     Ok(handle) => {
-                        let state = "submitted";
                         sqlx::query(
                             "UPDATE attempts SET state = ?, handle_id = ?, host = ?, started_at = coalesce(started_at, ?) \
-                             WHERE id = ? AND state = 'planned'",
+                             WHERE id = ? AND state = ?",
                         )
-                        .bind(state)
+                        .bind(AttemptState::Submitted)
                         .bind(&handle.id)
                         .bind(&handle.host)
                         .bind(store::now())
                         .bind(id)
+                        .bind(AttemptState::Planned)
                         .execute(&self.pool)
                         .await?;
                     }
@@ -1864,7 +1894,7 @@ impl Engine<'_> {
                             ended: Some(Utc::now()),
                             host: None,
                             free: false,
-                            state: "failed",
+                            state: AttemptState::Failed,
                         };
                         self.settle(id, Some(&fl), ended).await?;
                     }
@@ -1932,7 +1962,7 @@ impl Engine<'_> {
             ended,
             host: host.clone(),
             free: false,
-            state: "failed",
+            state: AttemptState::Failed,
         };
         for (role, file) in &stage.outputs {
             if let Err(inv) =
@@ -1974,7 +2004,7 @@ impl Engine<'_> {
                       message: String,
                       exit_status: Option<i32>,
                       free: bool,
-                      state: &'static str| Ended::Failed {
+                      state: AttemptState| Ended::Failed {
             kind: kind.to_string(),
             message,
             exit_status,
@@ -1998,14 +2028,14 @@ impl Engine<'_> {
                 format!("exited with status {code}{}", stderr_tail(&fl.workdir)),
                 Some(*code),
                 false,
-                "failed",
+                AttemptState::Failed,
             ),
             Outcome::Signaled { signal } => failed(
                 "signal",
                 format!("killed by signal {signal}{}", stderr_tail(&fl.workdir)),
                 None,
                 false,
-                "failed",
+                AttemptState::Failed,
             ),
             Outcome::TimedOut => failed(
                 "timeout",
@@ -2018,40 +2048,46 @@ impl Engine<'_> {
                 ),
                 None,
                 false,
-                "failed",
+                AttemptState::Failed,
             ),
             Outcome::Cancelled { by } if by == "rondo" => failed(
                 "cancelled",
                 "stopped by rondo".into(),
                 None,
                 true,
-                "cancelled",
+                AttemptState::Cancelled,
             ),
             Outcome::Cancelled { by } => failed(
                 "cancelled",
                 format!("cancelled by {by}"),
                 None,
                 false,
-                "failed",
+                AttemptState::Failed,
             ),
             Outcome::NodeFailure => failed(
                 "node-failure",
                 "its node failed".into(),
                 None,
                 false,
-                "failed",
+                AttemptState::Failed,
             ),
             Outcome::Preempted => failed(
                 "preempted",
                 "preempted by the scheduler".into(),
                 None,
                 false,
-                "failed",
+                AttemptState::Failed,
             ),
-            Outcome::LaunchFailed { message } => {
-                failed("launch-failed", message.clone(), None, false, "failed")
+            Outcome::LaunchFailed { message } => failed(
+                "launch-failed",
+                message.clone(),
+                None,
+                false,
+                AttemptState::Failed,
+            ),
+            Outcome::Lost { reason } => {
+                failed("lost", reason.clone(), None, true, AttemptState::Lost)
             }
-            Outcome::Lost { reason } => failed("lost", reason.clone(), None, true, "lost"),
         };
         self.settle(c.attempt_id, Some(&fl), ended).await
     }
@@ -2158,10 +2194,11 @@ impl Engine<'_> {
                 }
                 script
                     .stmt(
-                        "UPDATE attempts SET state = 'succeeded', exit_status = 0, ended_at = ?, \
+                        "UPDATE attempts SET state = ?, exit_status = 0, ended_at = ?, \
                          started_at = coalesce(?, started_at), host = coalesce(?, host), \
                          handle_id = coalesce(?, handle_id) WHERE id = ?",
                     )
+                    .bind(AttemptState::Succeeded)
                     .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
                     .bind(launch_started)
                     .bind(launch_host)
@@ -2266,11 +2303,12 @@ impl Engine<'_> {
                     first_line(&message)
                 ));
                 let failures: i64 = sqlx::query_scalar(
-                    "SELECT count(*) FROM attempts WHERE point = ? AND iteration = ? AND stage = ? AND state = 'failed'",
+                    "SELECT count(*) FROM attempts WHERE point = ? AND iteration = ? AND stage = ? AND state = ?",
                 )
                 .bind(&point_id)
                 .bind(i64::from(fl.iteration))
                 .bind(&stage.name)
+                .bind(AttemptState::Failed)
                 .fetch_one(&self.pool)
                 .await?;
                 let pr = &mut self.points[fl.point];
@@ -2284,13 +2322,15 @@ impl Engine<'_> {
                     );
                     pr.phase = PointPhase::Done;
                     let mut tx = self.pool.begin().await?;
-                    sqlx::query("UPDATE iterations SET state = 'failed', ended_at = ? WHERE point = ? AND iteration = ?")
+                    sqlx::query("UPDATE iterations SET state = ?, ended_at = ? WHERE point = ? AND iteration = ?")
+                        .bind(IterationState::Failed)
                         .bind(store::now())
                         .bind(&point_id)
                         .bind(i64::from(fl.iteration))
                         .execute(&mut *tx)
                         .await?;
-                    sqlx::query("UPDATE points SET state = 'failed', reason = ? WHERE id = ?")
+                    sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
+                        .bind(PointState::Failed)
                         .bind(&reason)
                         .bind(&point_id)
                         .execute(&mut *tx)
@@ -2358,11 +2398,11 @@ impl Engine<'_> {
         let first_met = pr.first_met.or(decision.rules_met.then_some(n));
         let window = self.campaign.final_window;
         let fate = if let Some(why) = &decision.diverged {
-            Some(("failed", format!("diverging: {why}")))
+            Some((PointState::Failed, format!("diverging: {why}")))
         } else if let Some(f) = first_met {
             if n >= f + window {
                 Some((
-                    "converged",
+                    PointState::Converged,
                     if window > 0 {
                         format!(
                             "stopping rules met at iteration {f}; averaged over iterations {}..{n}",
@@ -2374,7 +2414,7 @@ impl Engine<'_> {
                 ))
             } else if decision.at_cap {
                 Some((
-                    "converged",
+                    PointState::Converged,
                     format!("stopping rules met at iteration {f}; final window cut short by max-iterations at {n}"),
                 ))
             } else {
@@ -2382,14 +2422,14 @@ impl Engine<'_> {
             }
         } else if decision.at_cap && self.campaign.rules.is_empty() {
             Some((
-                "capped",
+                PointState::Capped,
                 format!(
                     "ran all {n} iterations of max-iterations: the campaign has no stopping rule"
                 ),
             ))
         } else if decision.at_cap {
             Some((
-                "capped",
+                PointState::Capped,
                 format!("reached max-iterations ({n}) without meeting the stopping rules"),
             ))
         } else {
@@ -2451,13 +2491,15 @@ impl Engine<'_> {
         for (id, l) in self.unrecorded.drain() {
             script
                 .stmt(
-                    "UPDATE attempts SET state = 'running', handle_id = ?, host = ?, \
-                     started_at = coalesce(started_at, ?) WHERE id = ? AND state = 'planned'",
+                    "UPDATE attempts SET state = ?, handle_id = ?, host = ?, \
+                     started_at = coalesce(started_at, ?) WHERE id = ? AND state = ?",
                 )
+                .bind(AttemptState::Running)
                 .bind(l.handle_id)
                 .bind(l.host)
                 .bind(l.started_at)
-                .bind(id);
+                .bind(id)
+                .bind(AttemptState::Planned);
         }
         script.commit(&self.pool).await
     }
@@ -2580,7 +2622,7 @@ impl Engine<'_> {
                         ended: c.ended_at,
                         host: c.host,
                         free: true,
-                        state: "cancelled",
+                        state: AttemptState::Cancelled,
                     };
                     self.settle(id, Some(&fl), ended).await?;
                 }
@@ -2591,7 +2633,8 @@ impl Engine<'_> {
             let mut tx = self.pool.begin().await?;
             for p in &self.points {
                 if p.phase == PointPhase::Active {
-                    sqlx::query("UPDATE points SET state = 'cancelled', reason = ? WHERE id = ?")
+                    sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
+                        .bind(PointState::Cancelled)
                         .bind(why)
                         .bind(&p.spec.id)
                         .execute(&mut *tx)
@@ -2628,7 +2671,8 @@ fn launch_fields(
 fn record_verdict(script: &mut store::Script, point_id: &str, v: &Verdict) -> Result<()> {
     let n = v.iteration;
     script
-        .stmt("UPDATE iterations SET state = 'good', ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
+        .stmt("UPDATE iterations SET state = ?, ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
+        .bind(IterationState::Good)
         .bind(store::now())
         .bind(serde_json::to_string(&v.decision)?)
         .bind(point_id.to_string())
@@ -2636,7 +2680,7 @@ fn record_verdict(script: &mut store::Script, point_id: &str, v: &Verdict) -> Re
     if let Some((state, reason)) = &v.fate {
         script
             .stmt("UPDATE points SET state = ?, reason = ? WHERE id = ?")
-            .bind(state.to_string())
+            .bind(*state)
             .bind(reason.clone())
             .bind(point_id.to_string());
         store::event_stmt(
@@ -2649,9 +2693,10 @@ fn record_verdict(script: &mut store::Script, point_id: &str, v: &Verdict) -> Re
         );
     } else {
         script
-            .stmt("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,'running',?)")
+            .stmt("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,?,?)")
             .bind(point_id.to_string())
             .bind(i64::from(n + 1))
+            .bind(IterationState::Running)
             .bind(store::now());
     }
     Ok(())

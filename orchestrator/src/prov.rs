@@ -11,6 +11,7 @@ use serde_json::{json, Map, Value};
 use sqlx::{Row, SqlitePool};
 
 use crate::audit::{self, AttemptRecord, Target};
+use crate::store::AttemptState;
 
 /// rondo's namespace: a UUID URN (RFC 9562, the IANA-registered `uuid` namespace) minted
 /// once for rondo from the kernel's random source. Nobody else can mint the same UUID, so
@@ -102,7 +103,8 @@ pub async fn export_target(
         }
         None => {
             let ids: Vec<i64> =
-                sqlx::query_scalar("SELECT id FROM attempts WHERE state <> 'planned' ORDER BY id")
+                sqlx::query_scalar("SELECT id FROM attempts WHERE state <> ? ORDER BY id")
+                    .bind(AttemptState::Planned)
                     .fetch_all(pool)
                     .await?;
             let mut recs = Vec::new();
