@@ -55,7 +55,15 @@ fn the_rollback_journal_for_shared_file_systems_keeps_crash_equivalence() {
 
     let wb = b.path().join("model-sweep.rondo");
     let seed = crash_seed(20_261_203);
-    kill_and_finish(b.path(), "model-sweep.yaml", seed, 4, 300..4_300, 0);
+    kill_and_finish(
+        b.path(),
+        "model-sweep.yaml",
+        seed,
+        4,
+        reference.len(),
+        (0.05, 0.85),
+        0,
+    );
     assert_eq!(
         format_versions(&wb.join("rondo.db")),
         (1, 1),

@@ -30,7 +30,15 @@ fn killed_runs_end_with_the_numbers_of_an_uninterrupted_run() {
     // Interrupted: SIGKILL at seeded random instants, then run to the end.
     let ws = b.path().join("model-sweep.rondo");
     let seed = crash_seed(20_261_202);
-    kill_and_finish(b.path(), "model-sweep.yaml", seed, 5, 300..5_300, 0);
+    kill_and_finish(
+        b.path(),
+        "model-sweep.yaml",
+        seed,
+        5,
+        reference.len(),
+        (0.05, 0.85),
+        0,
+    );
     assert_same_record(&reference, &record(&ws), seed);
     let s = status_json(b.path(), &ws);
     let points = s["points"].as_array().cloned().unwrap_or_default();
@@ -340,7 +348,7 @@ stop:
     );
     let seed = crash_seed(20_261_204);
     let ws = b.path().join("q.rondo");
-    kill_and_finish(b.path(), "q.yaml", seed, 4, 100..1_600, 3);
+    kill_and_finish(b.path(), "q.yaml", seed, 4, reference.len(), (0.05, 0.6), 3);
     assert_same_record(&reference, &record(&ws), seed);
     assert_no_double_success_nor_children(&ws, seed);
 }

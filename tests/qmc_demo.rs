@@ -28,7 +28,15 @@ fn qmc_demo_converges_within_its_errors_and_resumes_bit_identically() {
 
     let ws_b = b.path().join("model-sweep-qmc.rondo");
     let seed = crash_seed(20_261_203);
-    kill_and_finish(b.path(), CAMPAIGN, seed, 4, 500..6_000, 0);
+    kill_and_finish(
+        b.path(),
+        CAMPAIGN,
+        seed,
+        4,
+        reference.len(),
+        (0.05, 0.85),
+        0,
+    );
     assert_same_record(&reference, &record(&ws_b), seed);
     assert_resume_was_clean(&ws_b, seed);
     let s = status_json(b.path(), &ws_b);

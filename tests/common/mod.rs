@@ -197,30 +197,36 @@ pub fn crash_seed(default: u64) -> u64 {
         .unwrap_or(default)
 }
 
-/// Start `rondo run CAMPAIGN --max-running 2` in `dir` `kills` times, SIGKILL it after a seeded
-/// random wait drawn from `window_ms` each time, then run it to the end (exit `final_code`
-/// required: 0 when every point converges, 3 when some are capped).
-/// Every kill must have landed on a run that was still going (a run that had ended by itself
-/// was not interrupted), and the run after the last kill must still have had work, else the
-/// kills tested nothing; the window must then be shortened.
-/// Prints the seed and the instants so a failure can be replayed.
+/// Start `rondo run CAMPAIGN --max-running 2` in `dir` `kills` times and SIGKILL it each
+/// time at a seeded point of its progress, then run it to the end (exit `final_code`
+/// required: 0 when every point converges, 3 when some are capped). `total` is the number
+/// of succeeded attempts of the uninterrupted run; the kills come when the store holds a
+/// seeded fraction of them (between `from` and `to`, increasing, each after at least one
+/// new success), plus a seeded 0–60 ms, so every kill lands while work is left whatever
+/// the machine's speed. Prints the seed and what each kill hit, to replay a failure.
 pub fn kill_and_finish(
     dir: &Path,
     campaign: &str,
     seed: u64,
     kills: usize,
-    window_ms: std::ops::Range<u64>,
+    total: usize,
+    (from, to): (f64, f64),
     final_code: i32,
 ) {
     use std::process::Stdio;
+    use std::time::{Duration, Instant};
+    assert!(kills > 0 && total > 1 && 0.0 < from && from < to && to < 1.0);
     let ws = dir.join(Path::new(campaign).with_extension("rondo"));
     let mut rng = rondo_numerics::rng::SplitMix64::new(seed);
-    // (wait in ms, had the run ended by itself, succeeded attempts recorded after the kill)
+    let mut targets: Vec<i64> = (0..kills)
+        .map(|_| ((from + (to - from) * rng.uniform()) * total as f64).round() as i64)
+        .collect();
+    targets.sort_unstable();
+    // (target, succeeded when killed, extra ms, had the run ended by itself)
     let mut done = Vec::new();
-    for _ in 0..kills {
-        let wait = std::time::Duration::from_millis(
-            window_ms.start + rng.below(window_ms.end - window_ms.start),
-        );
+    for target in targets {
+        let target = target.max(succeeded_attempts(&ws) + 1);
+        let extra = Duration::from_millis(rng.below(60));
         let mut child = Command::new(rondo())
             .args(["run", campaign, "--max-running", "2", "-q"])
             .current_dir(dir)
@@ -229,20 +235,38 @@ pub fn kill_and_finish(
             .stderr(Stdio::null())
             .spawn()
             .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
-        std::thread::sleep(wait);
-        let finished = child.try_wait().ok().flatten();
+        let deadline = Instant::now() + Duration::from_secs(600);
+        let mut ended = None;
+        loop {
+            if let Some(st) = child.try_wait().ok().flatten() {
+                ended = Some(st);
+                break;
+            }
+            if succeeded_attempts_ro(&ws) >= target {
+                break;
+            }
+            assert!(
+                Instant::now() < deadline,
+                "no progress to {target} succeeded attempts in 10 min (seed {seed})"
+            );
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        std::thread::sleep(extra);
+        if ended.is_none() {
+            ended = child.try_wait().ok().flatten();
+        }
         let _ = child.kill(); // SIGKILL
         let _ = child.wait();
-        done.push((wait.as_millis(), finished, succeeded_attempts(&ws)));
+        done.push((target, succeeded_attempts(&ws), extra.as_millis(), ended));
     }
     eprintln!(
-        "crash test seed {seed}: kills after (ms, ended by itself, succeeded attempts) {done:?}"
+        "crash test seed {seed}: kills at (target, succeeded, +ms, ended by itself) {done:?}"
     );
-    for (i, (ms, finished, _)) in done.iter().enumerate() {
+    for (i, (target, _, _, ended)) in done.iter().enumerate() {
         assert!(
-            finished.is_none(),
-            "kill {} after {ms} ms came when the run had already ended by itself ({finished:?}): \
-             it interrupted nothing (seed {seed}, {done:?}); shorten the window",
+            ended.is_none(),
+            "kill {} (at {target} of {total} successes) came when the run had already ended by \
+             itself ({ended:?}): it interrupted nothing (seed {seed}, {done:?})",
             i + 1
         );
     }
@@ -259,6 +283,34 @@ pub fn kill_and_finish(
         "the final run recorded {} more succeeded attempts",
         after - before
     );
+}
+
+/// Succeeded attempts in `ws`, read through a read-only connection (safe while a run
+/// writes; 0 while no store exists yet or it cannot be read at this instant).
+pub fn succeeded_attempts_ro(ws: &Path) -> i64 {
+    let db = ws.join("rondo.db");
+    if !db.is_file() {
+        return 0;
+    }
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap_or_else(|e| panic!("runtime: {e}"));
+    rt.block_on(async {
+        let opts = sqlx::sqlite::SqliteConnectOptions::new()
+            .filename(&db)
+            .read_only(true)
+            .busy_timeout(std::time::Duration::from_secs(5));
+        let Ok(pool) = sqlx::SqlitePool::connect_with(opts).await else {
+            return 0;
+        };
+        let n = sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'succeeded'")
+            .fetch_one(&pool)
+            .await
+            .unwrap_or(0);
+        pool.close().await;
+        n
+    })
 }
 
 /// Succeeded attempts recorded in `ws` (0 while no store exists yet).
