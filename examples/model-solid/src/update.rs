@@ -10,9 +10,7 @@
 
 use anyhow::{bail, Result};
 use num_complex::Complex64;
-use rondo_numerics::matsubara::{
-    density_from_giw, fermi, fermionic_grid, high_frequency_constant, Tail,
-};
+use rondo_numerics::matsubara::{density_from_giw, fermi, fermionic_grid, fit_tail, Tail};
 use std::collections::BTreeMap;
 
 use crate::io::{Density, HkMesh};
@@ -31,9 +29,12 @@ pub struct Occupations {
     pub e_int: f64,
 }
 
-/// The self-energy split into its Hartree constant and the rest.
-fn sigma_inf(beta: f64, sigma: &[Complex64]) -> f64 {
-    high_frequency_constant(beta, sigma)
+/// The Hartree constant Σ_∞ and the 1/(iω) coefficient of the self-energy, from the shared
+/// least-squares fit of its high-frequency tail (`rondo_numerics::matsubara::fit_tail`).
+fn sigma_tail(beta: f64, sigma: &[Complex64]) -> (f64, f64) {
+    fit_tail(beta, sigma)
+        .map(|f| (f.c0, f.tail.c1))
+        .unwrap_or((0.0, 0.0))
 }
 
 /// Occupations and energies at chemical potential μ.
@@ -45,7 +46,7 @@ pub fn occupations(
     energies: bool,
 ) -> Occupations {
     let grid = fermionic_grid(beta, sigma.len());
-    let s_inf = sigma_inf(beta, sigma);
+    let (s_inf, s1) = sigma_tail(beta, sigma);
     let mut occ = Occupations::default();
     let mut gff_loc = vec![Complex64::new(0.0, 0.0); if energies { sigma.len() } else { 0 }];
     for (w, h) in mesh.weights.iter().zip(&mesh.h) {
@@ -86,16 +87,12 @@ pub fn occupations(
     }
     if energies {
         // E_int = (1/β)Σ_n Σ G_ff = Σ_∞ n_f/2 + (1/β)Σ_n (Σ−Σ_∞) G_ff; the second term has a
-        // real 1/(iω)² tail with coefficient s1 = −ω Im Σ at high frequency.
+        // real 1/(iω)² tail with coefficient s1, the 1/(iω) moment of Σ.
         let prod: Vec<Complex64> = sigma
             .iter()
             .zip(&gff_loc)
             .map(|(s, g)| (s - s_inf) * g)
             .collect();
-        let s1 = match (grid.last(), sigma.last()) {
-            (Some(w), Some(s)) => -w * s.im,
-            _ => 0.0,
-        };
         let rest = density_from_giw(beta, &prod, Tail::two(0.0, s1));
         occ.e_int = s_inf * occ.n_f / 2.0 + rest;
     }
