@@ -129,6 +129,56 @@ pub fn density_from_giw(beta: f64, giw: &[Complex64], tail: Tail) -> f64 {
     tail.c1 * TAIL1_SUM + tail.c2 * tail2_sum(beta) + tail.c4 * tail4_sum(beta) + 2.0 * s / beta
 }
 
+/// Σ_{n≥N} (2n+1)^{−p} for p ≥ 2: below N = 16 the terms up to n = 15 are summed and the
+/// rest is the value at N = 16; from N = 16 on by the Euler–Maclaurin formula
+/// (Abramowitz & Stegun 23.1.30, equation number from memory) for f(x) = (2x+1)^{−p} from
+/// x = N, with u = 2N+1:
+/// ∫ f = u^{1−p}/(2(p−1)), f(N)/2 = u^{−p}/2, and −B_{2k}/(2k)! f^{(2k−1)}(N) for k = 1…4,
+/// f^{(m)}(N) = (−2)^m p(p+1)…(p+m−1) u^{−p−m}; the first neglected term (B10) is below
+/// 1e-11 of the sum from N = 16 on.
+fn odd_power_remainder(p: i32, n: usize) -> f64 {
+    if n < 16 {
+        let head: f64 = (n..16).rev().map(|k| ((2 * k + 1) as f64).powi(-p)).sum();
+        return odd_power_remainder(p, 16) + head;
+    }
+    let u = (2 * n + 1) as f64;
+    let pf = f64::from(p);
+    // B2, B4, B6, B8 divided by (2k)!.
+    const B_OVER_FACT: [f64; 4] = [
+        1.0 / 6.0 / 2.0,
+        -1.0 / 30.0 / 24.0,
+        1.0 / 42.0 / 720.0,
+        -1.0 / 30.0 / 40320.0,
+    ];
+    let mut sum = u.powf(1.0 - pf) / (2.0 * (pf - 1.0)) + 0.5 * u.powi(-p);
+    for (k, b) in B_OVER_FACT.iter().enumerate() {
+        let m = 2 * k as i32 + 1; // order of the derivative
+        let rising: f64 = (0..m).map(|j| pf + f64::from(j)).product();
+        let deriv = (-2.0f64).powi(m) * rising * u.powi(-p - m);
+        sum -= b * deriv;
+    }
+    sum
+}
+
+/// The equal-time value (2/β) Σ_{n≥0} Re F(iω_n) of a function that decays at least as
+/// 1/(iω)² (no 1/(iω) term, so the sum converges absolutely; e.g. G − G_ref for a reference
+/// with the same first moment), from F on the first N frequencies and its tail beyond them:
+/// (2/β) Σ_{n<N} Re F(iω_n) + (2/β) Σ_{n≥N} Re[c2/(iω_n)² + c4/(iω_n)⁴], with the remainders
+/// of Σ (2n+1)^{−2} and Σ (2n+1)^{−4} in closed form. Nothing is subtracted inside the grid,
+/// so a large c4 costs no precision (unlike the closed-form sums of the whole tail in
+/// [`density_from_giw`], whose c4 β³/48 cancels against the data), and the truncation error
+/// is that of the first neglected moment, O(N⁻⁵). `tail.c1` must be zero and is ignored;
+/// c3 has no real part on the axis.
+pub fn sum_with_tail_beyond(beta: f64, data: &[Complex64], tail: Tail) -> f64 {
+    let n = data.len();
+    let head: f64 = data.iter().rev().map(|z| z.re).sum();
+    let s = beta / std::f64::consts::PI;
+    // Re 1/(iω)² = −1/ω², Re 1/(iω)⁴ = 1/ω⁴, ω_n = (π/β)(2n+1).
+    let beyond = -tail.c2 * s * s * odd_power_remainder(2, n)
+        + tail.c4 * s.powi(4) * odd_power_remainder(4, n);
+    2.0 / beta * (head + beyond)
+}
+
 /// Equal-time value from G and a reference function whose equal-time value `n_ref` is
 /// known exactly (e.g. a free propagator with the same first moments):
 /// n = n_ref + (2/β) Σ_{n≥0} Re[G(iω_n) − G_ref(iω_n)].
@@ -434,6 +484,72 @@ mod tests {
             } else {
                 assert!((f.c0 - 0.4).abs() < 2e-4, "N = {n}: {}", f.c0);
             }
+        }
+    }
+
+    #[test]
+    fn remainders_of_the_odd_power_sums() {
+        // Σ_{n≥N} (2n+1)^{−p} summed directly (to M = 2·10⁶ terms, the rest by the integral
+        // 1/(2(p−1)(2M)^{p−1})) against the closed forms.
+        for n in [0usize, 1, 10, 15, 16, 17, 63, 200, 4096] {
+            for p in [2, 4] {
+                let m = 2_000_000usize;
+                let direct: f64 = (n..m)
+                    .rev()
+                    .map(|k| ((2 * k + 1) as f64).powi(-p))
+                    .sum::<f64>()
+                    + 1.0 / ((p - 1) as f64 * 2.0 * ((2 * m) as f64).powi(p - 1));
+                let r = odd_power_remainder(p, n);
+                assert!(
+                    (r - direct).abs() < 1e-10 * direct,
+                    "p = {p}, N = {n}: {r} vs {direct}"
+                );
+            }
+        }
+        // The full sums: π²/8 and π⁴/96 (from ζ(2) = π²/6 and ζ(4) = π⁴/90).
+        let pi = std::f64::consts::PI;
+        assert!((odd_power_remainder(2, 0) - pi * pi / 8.0).abs() < 1e-14);
+        assert!((odd_power_remainder(4, 0) - pi.powi(4) / 96.0).abs() < 1e-14);
+    }
+
+    #[test]
+    fn sum_with_tail_beyond_converges_fast_and_keeps_its_digits() {
+        // F = G(ε) − G(0) for free levels (reference/output/free_level.txt convention):
+        // F = ε/(iω)² + ε²/(iω)³ + ε³/(iω)⁴ + …, equal-time value f(ε) − 1/2.
+        let beta = 38.0;
+        let eps = 2.0;
+        let exact = fermi(beta, eps) - 0.5;
+        for n_iw in [64, 256, 1024] {
+            let f: Vec<Complex64> = free_giw(beta, n_iw, eps)
+                .iter()
+                .zip(free_giw(beta, n_iw, 0.0))
+                .map(|(a, b)| a - b)
+                .collect();
+            let two = sum_with_tail_beyond(beta, &f, Tail::two(0.0, eps));
+            let four = sum_with_tail_beyond(
+                beta,
+                &f,
+                Tail {
+                    c1: 0.0,
+                    c2: eps,
+                    c3: eps * eps,
+                    c4: eps.powi(3),
+                },
+            );
+            // Truncation: first neglected moment times (2/β)Σ_{n≥N} ω⁻⁴ (resp. ω⁻⁶).
+            let s = beta / std::f64::consts::PI;
+            let t4 = 2.0 / beta * eps.powi(3) * s.powi(4) * odd_power_remainder(4, n_iw);
+            assert!(
+                (two - exact).abs() < 1.1 * t4,
+                "N = {n_iw}: {two} vs {exact}"
+            );
+            assert!((two - exact).abs() > 0.5 * t4);
+            // The next moment ε⁵ enters with (2/β)Σ_{n≥N} ω⁻⁶ < (ε/ω_N)² t4.
+            let w_n = fermionic_frequency(beta, n_iw as i64);
+            assert!(
+                (four - exact).abs() < (eps / w_n).powi(2) * t4,
+                "N = {n_iw}: {four}"
+            );
         }
     }
 }
