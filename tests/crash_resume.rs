@@ -78,6 +78,7 @@ fn check_demo_results_and_trace(dir: &Path) {
             );
         }
     }
+    pinned_equation_of_state(&groups);
     // Trace the final mixed density of p003 (volume 27, 300 K) from a copy outside the
     // workspace: the mix stage ends the iteration, so every stage of it is upstream.
     let (hash, iteration): (String, i64) = query(&ws, |pool| {
@@ -351,4 +352,110 @@ stop:
     kill_and_finish(b.path(), "q.yaml", seed, 4, reference.len(), (0.05, 0.6), 3);
     assert_same_record(&reference, &record(&ws), seed);
     assert_no_double_success_nor_children(&ws, seed);
+}
+
+// ---- Pinned headline results of the Hubbard-I demo ---------------------------------------
+
+/// V0 (Å³) and B0 (GPa) of the demo's fits per temperature and model, as `rondo status
+/// examples/model-sweep.yaml --json` reported them after `bash scripts/demo` at commit 81f4482
+/// (energies in docs/model-solid.md).
+const PINNED_EOS: [(i64, &str, f64, f64); 4] = [
+    (300, "birch-murnaghan", 28.032_203, 18.562_703),
+    (300, "vinet", 28.032_321, 18.535_904),
+    (1200, "birch-murnaghan", 27.885_867, 19.347_816),
+    (1200, "vinet", 27.885_782, 19.323_659),
+];
+
+/// The stop rule's energy tolerance in examples/model-sweep.yaml (`update.energy`,
+/// `change-below: 1.0e-7`, for 2 iterations).
+const ENERGY_TOLERANCE: f64 = 1.0e-7;
+
+/// The demo is deterministic, so its V0 and B0 can only move by a legitimate change of the
+/// loop (mixing, start, stage numerics at the level of the stopping tolerance). The
+/// tolerance of each pin follows from two sources, computed here from the run's own data:
+///
+/// 1. the stopping tolerance: the loop stops once the energy changed by less than
+///    t = 1e-7 eV twice in a row; with successive changes shrinking by a factor ρ ≤ 1/2
+///    (measured in the demo: ρ ≈ 0.06–0.2, last changes ≤ 9e-9 eV) the remaining distance to
+///    the fixed point is at most t ρ/(1 − ρ) ≤ t. Each of the five energies is therefore
+///    uncertain by ±t; refitting with every one of the 2⁵ sign patterns gives the largest
+///    shift of V0 and B0 (about 4e-5 Å³ and 5e-4 GPa). The pinned run and this run can each
+///    be off by that much, in opposite directions: 2 × the shift.
+/// 2. the fit's own covariance: the standard error of V0 and B0 that the analysis reports
+///    (√diag of the covariance scaled by χ²/(N − 4); about 1e-3 Å³ and 0.01 GPa), once.
+///
+/// |value − pin| < 2 · shift(±t) + standard error.
+fn pinned_equation_of_state(groups: &[serde_json::Value]) {
+    use rondo_numerics::eos::{fit, EosModel};
+    let mut checked = 0;
+    for g in groups {
+        let t = g["group"]["temperature"].as_i64().unwrap_or(-1);
+        let points = g["points"].as_array().cloned().unwrap_or_default();
+        assert_eq!(points.len(), 5, "five volumes per temperature: {g}");
+        let vols: Vec<f64> = points
+            .iter()
+            .map(|p| p["volume"].as_f64().unwrap_or(f64::NAN))
+            .collect();
+        let ens: Vec<f64> = points
+            .iter()
+            .map(|p| p["energy"].as_f64().unwrap_or(f64::NAN))
+            .collect();
+        for (model, kind) in [
+            ("birch-murnaghan", EosModel::BirchMurnaghan3),
+            ("vinet", EosModel::Vinet),
+        ] {
+            let f = &g["fits"][model];
+            let v0 = f["v0"].as_f64().unwrap_or(f64::NAN);
+            let b0 = f["b0_gpa"].as_f64().unwrap_or(f64::NAN);
+            let (se_v0, se_b0) = (
+                f["stderr"]["v0"].as_f64().unwrap_or(f64::NAN),
+                f["stderr"]["b0_gpa"].as_f64().unwrap_or(f64::NAN),
+            );
+            let base = fit(kind, &vols, &ens, None)
+                .unwrap_or_else(|e| panic!("{t} K {model}: refit of the status energies: {e}"));
+            assert!(
+                (base.v0 - v0).abs() < 1e-9 && (base.b0_gpa - b0).abs() < 1e-7,
+                "{t} K {model}: the refit reproduces the analysis ({} {} vs {v0} {b0})",
+                base.v0,
+                base.b0_gpa
+            );
+            let (mut dv, mut db) = (0.0f64, 0.0f64);
+            for signs in 0..(1u32 << vols.len()) {
+                let e: Vec<f64> = ens
+                    .iter()
+                    .enumerate()
+                    .map(|(i, e)| {
+                        let s = if (signs >> i) & 1 == 1 { 1.0 } else { -1.0 };
+                        e + s * ENERGY_TOLERANCE
+                    })
+                    .collect();
+                let p = fit(kind, &vols, &e, None)
+                    .unwrap_or_else(|e| panic!("{t} K {model}: perturbed refit: {e}"));
+                dv = dv.max((p.v0 - base.v0).abs());
+                db = db.max((p.b0_gpa - base.b0_gpa).abs());
+            }
+            let (tol_v0, tol_b0) = (2.0 * dv + se_v0, 2.0 * db + se_b0);
+            assert!(
+                tol_v0.is_finite() && tol_v0 < 0.01 && tol_b0.is_finite() && tol_b0 < 0.1,
+                "{t} K {model}: implausible error analysis: V0 ± {tol_v0}, B0 ± {tol_b0}"
+            );
+            let (_, _, pin_v0, pin_b0) = PINNED_EOS
+                .iter()
+                .find(|p| p.0 == t && p.1 == model)
+                .copied()
+                .unwrap_or_else(|| panic!("no pinned fit for {t} K {model}"));
+            assert!(
+                (v0 - pin_v0).abs() < tol_v0,
+                "{t} K {model}: V0 = {v0} Å³, pinned {pin_v0} ± {tol_v0} \
+                 (stopping tolerance: ±{dv}, fit standard error {se_v0})"
+            );
+            assert!(
+                (b0 - pin_b0).abs() < tol_b0,
+                "{t} K {model}: B0 = {b0} GPa, pinned {pin_b0} ± {tol_b0} \
+                 (stopping tolerance: ±{db}, fit standard error {se_b0})"
+            );
+            checked += 1;
+        }
+    }
+    assert_eq!(checked, PINNED_EOS.len(), "every pinned fit was checked");
 }

@@ -11,8 +11,10 @@
 //! with L_σ the occupied time of flavour σ, O the time both are occupied and
 //! F_σ,ba = F(s_a − e_b), F(τ) = −Δ(τ). For a causal Δ the weights are positive (the segment
 //! picture of one orbital has no sign problem); the sign is recomputed at every full check
-//! and negative signs are counted in the metric `negative_sign_checks`. A constant part of
-//! Δ(iω) at high frequency is moved into the level ε.
+//! and negative signs are counted in the metric `negative_sign_checks`. The constant part of
+//! Δ(iω) at high frequency, c0 of the tail fit shared with the Hubbard-I solver
+//! (`rondo_numerics::matsubara::fit_tail`), is moved into the level ε (metrics `level` and
+//! `delta_static`); the moments c1…c3 of the same fit carry the tail of Δ(τ).
 //!
 //! Moves (each of the six picked with probability 1/6 for a random flavour), with the proposal
 //! probabilities in the acceptance ratios (k segments before the move):
@@ -55,7 +57,7 @@ use nalgebra::DMatrix;
 use num_complex::Complex64;
 use rondo_numerics::binning::binning_analysis;
 use rondo_numerics::legendre::LegendreAccumulator;
-use rondo_numerics::matsubara::high_frequency_constant;
+use rondo_numerics::matsubara::fit_tail;
 use rondo_numerics::rng::SplitMix64;
 use segments::{Flavour, Place};
 use std::collections::BTreeMap;
@@ -573,13 +575,16 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
             input.u
         );
     }
-    // The static part of Δ shifts the level; the rest goes to Δ(τ).
-    let c0 = if input.delta.len() >= 4 {
-        high_frequency_constant(beta, input.delta)
-    } else {
-        0.0
-    };
-    let f = HybFunction::from_matsubara(beta, input.delta, c0, params.n_tau_grid)?;
+    // The static part of Δ shifts the level; the rest goes to Δ(τ). The tail fit is the one
+    // the Hubbard-I solver uses (crate::solve::delta_static), so both see the same level.
+    if input.delta.is_empty() {
+        bail!("the hybridization function Δ(iω_n) is empty");
+    }
+    let tail = fit_tail(beta, input.delta).ok_or_else(|| {
+        anyhow::anyhow!("the high-frequency tail of Δ(iω_n) could not be fitted (singular fit)")
+    })?;
+    let c0 = tail.c0;
+    let f = HybFunction::from_matsubara(beta, input.delta, &tail, params.n_tau_grid)?;
     let eps = input.level + c0;
     let mut smp = Sampler::new(beta, eps, input.u, &f, input.seed);
     let mut est = GreenEstimator::new(beta, params.n_legendre, params.n_tau_bins);
@@ -695,6 +700,7 @@ pub fn solve(input: &SolverInput<'_>, params: &CtqmcParams) -> Result<CtqmcResul
     metrics.insert("order_up", with(sc(SC_KUP)));
     metrics.insert("order_dn", with(sc(SC_KDN)));
     metrics.insert("level", (eps, None));
+    metrics.insert("delta_static", (c0, None));
     metrics.insert(
         "sigma_inf",
         (input.u * n_avg, Some(input.u * 0.5 * n_tot.error)),

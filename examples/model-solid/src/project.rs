@@ -9,7 +9,7 @@
 
 use anyhow::{bail, Result};
 use num_complex::Complex64;
-use rondo_numerics::matsubara::{density_from_giw, fermionic_grid, Tail};
+use rondo_numerics::matsubara::{density_from_giw, fermionic_grid, high_frequency_constant, Tail};
 use std::collections::BTreeMap;
 
 use crate::io::HkMesh;
@@ -150,7 +150,7 @@ pub fn project(
         .zip(&gloc)
         .map(|((&wn, s), g)| Complex64::new(mu - eps_f, wn) - s - g.inv())
         .collect();
-    let sigma_inf = sigma.last().map(|s| s.re).unwrap_or(0.0);
+    let sigma_inf = high_frequency_constant(beta, sigma);
     let n_f = 2.0 * density_from_giw(beta, &gloc, Tail::two(1.0, eps_f - mu + sigma_inf));
     let mut metrics = BTreeMap::new();
     metrics.insert("eps_f", eps_f);

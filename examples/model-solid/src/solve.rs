@@ -6,10 +6,15 @@
 //! part of Δ, and Σ(iω) = iω − e − G_at(iω)⁻¹. For one spin-degenerate orbital the atomic
 //! states are |0⟩ (energy 0), |↑⟩,|↓⟩ (e) and |↑↓⟩ (2e+U), and
 //! G_at(iω) = (1−n_σ)/(iω−e) + n_σ/(iω−e−U) with n_σ = P(1)/2 + P(2).
+//!
+//! The static part Δ_0 = lim Re Δ(iω) is taken from the fit of the high-frequency tail
+//! shared with the Monte Carlo solver ([`delta_static`], `rondo_numerics::matsubara::fit_tail`),
+//! so both solvers use the same level for the same input and it does not depend on the number
+//! of frequencies; both report it as the metrics `level` and `delta_static`.
 
 use anyhow::{bail, Result};
 use num_complex::Complex64;
-use rondo_numerics::matsubara::fermionic_grid;
+use rondo_numerics::matsubara::{fermionic_grid, fit_tail};
 use std::collections::BTreeMap;
 
 /// The impurity solvers this build knows.
@@ -131,12 +136,18 @@ pub fn atom(level: f64, u: f64, beta: f64) -> Atom {
     }
 }
 
+/// The static part Δ_0 = lim_{ω→∞} Re Δ(iω) of the hybridization function, from the
+/// least-squares fit of its high-frequency tail (`rondo_numerics::matsubara::fit_tail`);
+/// 0 for an empty Δ. Every solver moves it into the impurity level: e = ε_loc − μ + Δ_0.
+/// (With the exact projection of `project` Δ_0 vanishes analytically; the fit keeps the
+/// level right for inputs that carry a constant.)
+pub fn delta_static(beta: f64, delta: &[Complex64]) -> f64 {
+    fit_tail(beta, delta).map(|f| f.c0).unwrap_or(0.0)
+}
+
 /// The Hubbard-I solver.
 pub fn hubbard_i(input: &SolverInput<'_>) -> SolverOutput {
-    // Static part of Δ: its high-frequency constant, estimated at the last frequency
-    // (zero analytically with the exact projection; kept so the level stays correct for
-    // projections that leave a constant).
-    let delta_static = input.delta.last().map(|d| d.re).unwrap_or(0.0);
+    let delta_static = delta_static(input.beta, input.delta);
     let e = input.level + delta_static;
     let at = atom(e, input.u, input.beta);
     let grid = fermionic_grid(input.beta, input.delta.len());
@@ -148,7 +159,8 @@ pub fn hubbard_i(input: &SolverInput<'_>) -> SolverOutput {
         sigma.push(iw - e - ga.inv());
         g.push(ga);
     }
-    let sigma_inf = sigma.last().map(|s| s.re).unwrap_or(0.0);
+    // Σ(iω) = U n_σ + U² n_σ(1 − n_σ)/(iω − e − U(1 − n_σ)): its constant is U n_σ exactly.
+    let sigma_inf = input.u * at.n_sigma;
     let metrics = [
         ("n_f", 2.0 * at.n_sigma),
         ("docc", at.docc),
@@ -157,6 +169,7 @@ pub fn hubbard_i(input: &SolverInput<'_>) -> SolverOutput {
         ("p2", at.p[2]),
         ("energy_atomic", at.energy),
         ("level", e),
+        ("delta_static", delta_static),
         ("sigma_inf", sigma_inf),
     ]
     .into_iter()
@@ -273,5 +286,157 @@ mod tests {
         };
         assert!(run_solver(SolverKind::HubbardI, &inp).is_err());
         assert!("ctqmc-x".parse::<SolverKind>().is_err());
+    }
+
+    // --- The static part of Δ and the number of Matsubara frequencies -------------------
+    //
+    // Two hybridization functions without a static part (reference/hubbard_i_bath.py and
+    // reference/output/hubbard_i_bath.txt): (A) three discrete bath levels,
+    // Δ(iω) = Σ_b V_b²/(iω − ε_b); (B) the semicircular (Bethe-lattice) hybridization of
+    // half-width D = 1 centred at ε0 = 0.3, Δ(iω) = t² G_sc(iω − ε0), t = D/2,
+    // G_sc(z) = (2/D²)(z − √(z−D)√(z+D)) (branch-safe on ℂ \ [−D, D]). Impurity: β = 10,
+    // level e = 0.1, U = 2 (a mixed-valent orbital, n_f ≈ 0.42, whose occupation reacts to
+    // the level: the last-frequency static part moved it by 1.5e-3 relative at 64
+    // frequencies, see the reference output).
+    const HI_BETA: f64 = 10.0;
+    const HI_LEVEL: f64 = 0.1;
+    const HI_U: f64 = 2.0;
+    const BATH_A: [(f64, f64); 3] = [(-0.6, 0.2), (0.8, 0.5), (1.5, 0.4)];
+
+    fn bath_a(n_w: usize, c0: f64) -> Vec<Complex64> {
+        fermionic_grid(HI_BETA, n_w)
+            .iter()
+            .map(|w| {
+                let iw = Complex64::new(0.0, *w);
+                Complex64::new(c0, 0.0)
+                    + BATH_A
+                        .iter()
+                        .map(|(e, v)| v * v / (iw - e))
+                        .sum::<Complex64>()
+            })
+            .collect()
+    }
+
+    fn bath_b(n_w: usize) -> Vec<Complex64> {
+        let (d, eps0) = (1.0, 0.3);
+        let t2 = 0.25 * d * d;
+        fermionic_grid(HI_BETA, n_w)
+            .iter()
+            .map(|w| {
+                let z = Complex64::new(-eps0, *w);
+                t2 * (2.0 / (d * d)) * (z - (z - d).sqrt() * (z + d).sqrt())
+            })
+            .collect()
+    }
+
+    fn hubbard_i_on(delta: &[Complex64], level: f64) -> SolverOutput {
+        run_solver(
+            SolverKind::HubbardI,
+            &SolverInput {
+                delta,
+                level,
+                u: HI_U,
+                beta: HI_BETA,
+                seed: 0,
+                sweeps: None,
+            },
+        )
+        .unwrap()
+    }
+
+    fn rel(a: f64, b: f64) -> f64 {
+        (a - b).abs() / b.abs()
+    }
+
+    #[test]
+    fn hubbard_i_does_not_depend_on_the_number_of_frequencies() {
+        for (name, small, large) in [
+            ("A", bath_a(64, 0.0), bath_a(1024, 0.0)),
+            ("B", bath_b(64), bath_b(1024)),
+        ] {
+            let (a, b) = (
+                hubbard_i_on(&small, HI_LEVEL),
+                hubbard_i_on(&large, HI_LEVEL),
+            );
+            for k in ["n_f", "level", "docc", "sigma_inf"] {
+                let (x, y) = (a.metrics[k].0, b.metrics[k].0);
+                assert!(rel(x, y) < 1e-5, "bath {name}: {k} {x} (64) vs {y} (1024)");
+            }
+            // Σ on the 64 frequencies the two grids share.
+            for (n, (x, y)) in a.sigma.iter().zip(&b.sigma).enumerate() {
+                assert!(
+                    (x - y).norm() < 1e-5 * y.norm(),
+                    "bath {name}: Σ(iω_{n}) {x} (64) vs {y} (1024)"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn hubbard_i_is_the_exact_atomic_self_energy_of_the_bare_level() {
+        // Both baths have no static part, so Hubbard-I must return the atomic self-energy of
+        // the bare level e (Hubbard 1963; 1/G_at solved from the two-pole G_at above):
+        //   Σ_at(iω) = U n + U² n(1 − n)/(iω − e − U(1 − n)),
+        //   n = P(1)/2 + P(2),  P ∝ (1, 2e^{−βe}, e^{−β(2e+U)}).
+        let z =
+            1.0 + 2.0 * (-HI_BETA * HI_LEVEL).exp() + (-HI_BETA * (2.0 * HI_LEVEL + HI_U)).exp();
+        let n = (-HI_BETA * HI_LEVEL).exp() / z + (-HI_BETA * (2.0 * HI_LEVEL + HI_U)).exp() / z;
+        // mpmath values of n and Σ_at (reference/output/hubbard_i_bath.txt).
+        assert!((n - 0.211_941_557_743_731_14).abs() < 1e-15);
+        let reference = [
+            (
+                0,
+                Complex64::new(0.038_817_356_481_870_85, -0.072_173_949_849_133_86),
+            ),
+            (
+                1,
+                Complex64::new(0.121_041_796_283_310_15, -0.170_287_180_877_346_95),
+            ),
+            (
+                5,
+                Complex64::new(0.347_972_933_534_939_8, -0.156_508_629_782_386_59),
+            ),
+            (
+                63,
+                Complex64::new(0.423_180_907_322_218_7, -0.016_715_338_188_388_5),
+            ),
+        ];
+        for delta in [bath_a(64, 0.0), bath_b(64), bath_a(1024, 0.0), bath_b(1024)] {
+            let out = hubbard_i_on(&delta, HI_LEVEL);
+            // The fitted static part is zero to the fit's truncation error (≲ 1e-11 here).
+            assert!(
+                out.metrics["delta_static"].0.abs() < 1e-10,
+                "{:?}",
+                out.metrics
+            );
+            assert!(rel(out.metrics["n_f"].0, 2.0 * n) < 1e-9);
+            for (k, w) in fermionic_grid(HI_BETA, delta.len()).iter().enumerate() {
+                let iw = Complex64::new(0.0, *w);
+                let exact =
+                    HI_U * n + HI_U * HI_U * n * (1.0 - n) / (iw - HI_LEVEL - HI_U * (1.0 - n));
+                assert!(
+                    (out.sigma[k] - exact).norm() < 1e-9 * exact.norm(),
+                    "Σ(iω_{k})"
+                );
+            }
+            for (k, s) in reference {
+                assert!(
+                    (out.sigma[k] - s).norm() < 1e-9 * s.norm(),
+                    "Σ(iω_{k}) vs mpmath"
+                );
+            }
+        }
+    }
+
+    #[test]
+    fn a_static_part_of_delta_moves_the_level_exactly() {
+        // Δ + c0: the same atom with the level e + c0, from 64 frequencies as from 1024.
+        for c0 in [0.25, -0.4] {
+            let shifted = hubbard_i_on(&bath_a(64, c0), HI_LEVEL);
+            let bare = hubbard_i_on(&bath_a(1024, 0.0), HI_LEVEL + c0);
+            assert!((shifted.metrics["delta_static"].0 - c0).abs() < 1e-10);
+            assert!((shifted.metrics["level"].0 - (HI_LEVEL + c0)).abs() < 1e-10);
+            assert!(rel(shifted.metrics["n_f"].0, bare.metrics["n_f"].0) < 1e-9);
+        }
     }
 }

@@ -3,16 +3,17 @@
 //!
 //! Equal-time sums use a reference propagator G_ref(k) = [iω + μ − H(k) − Σ_∞ P_f]⁻¹ with the
 //! Hartree constant Σ_∞ of the self-energy: its sums are Fermi functions of its eigenvalues
-//! (exact), and Re Tr[A (G − G_ref)] decays as ω⁻⁴, so 512 frequencies suffice.
+//! (exact), and Re Tr[A (G − G_ref)] decays as ω⁻⁴; that ω⁻⁴ tail (and the one of the
+//! interaction energy) is fitted (`rondo_numerics::matsubara::fit_tail`, the fit the solvers
+//! use for Δ) and summed in closed form, so the sums converge as N⁻⁵ in the number of
+//! frequencies.
 //! The interaction energy comes from the Galitskii–Migdal formula (V. M. Galitskii and
 //! A. B. Migdal, Sov. Phys. JETP 7, 96 (1958)): E_int = (1/β) Σ_n Σ(iω_n) G_ff(iω_n) e^{iω_n 0⁺}
 //! per site for two spins with ½ each.
 
 use anyhow::{bail, Result};
 use num_complex::Complex64;
-use rondo_numerics::matsubara::{
-    density_from_giw, fermi, fermionic_grid, high_frequency_constant, Tail,
-};
+use rondo_numerics::matsubara::{fermi, fermionic_grid, fit_tail, sum_with_tail_beyond, Tail};
 use std::collections::BTreeMap;
 
 use crate::io::{Density, HkMesh};
@@ -31,9 +32,12 @@ pub struct Occupations {
     pub e_int: f64,
 }
 
-/// The self-energy split into its Hartree constant and the rest.
-fn sigma_inf(beta: f64, sigma: &[Complex64]) -> f64 {
-    high_frequency_constant(beta, sigma)
+/// The Hartree constant Σ_∞ and the 1/(iω) coefficient of the self-energy, from the shared
+/// least-squares fit of its high-frequency tail (`rondo_numerics::matsubara::fit_tail`).
+fn sigma_tail(beta: f64, sigma: &[Complex64]) -> (f64, f64) {
+    fit_tail(beta, sigma)
+        .map(|f| (f.c0, f.tail.c1))
+        .unwrap_or((0.0, 0.0))
 }
 
 /// Occupations and energies at chemical potential μ.
@@ -45,9 +49,12 @@ pub fn occupations(
     energies: bool,
 ) -> Occupations {
     let grid = fermionic_grid(beta, sigma.len());
-    let s_inf = sigma_inf(beta, sigma);
+    let (s_inf, s1) = sigma_tail(beta, sigma);
     let mut occ = Occupations::default();
-    let mut gff_loc = vec![Complex64::new(0.0, 0.0); if energies { sigma.len() } else { 0 }];
+    let zeros = || vec![Complex64::new(0.0, 0.0); sigma.len()];
+    let mut gff_loc = if energies { zeros() } else { Vec::new() };
+    let (mut dc, mut df) = (zeros(), zeros());
+    let mut dh = if energies { zeros() } else { Vec::new() };
     for (w, h) in mesh.weights.iter().zip(&mesh.h) {
         let href = Sym2 {
             a: h.a,
@@ -66,37 +73,59 @@ pub fn occupations(
             ref_f += uf * uf * f[n];
             ref_h += (h.a * uc * uc + 2.0 * h.b * uc * uf + h.d * uf * uf) * f[n];
         }
-        let (mut dc, mut df, mut dh) = (0.0, 0.0, 0.0);
-        for (i, (&wn, s)) in grid.iter().zip(sigma).enumerate().rev() {
+        for (i, (&wn, s)) in grid.iter().zip(sigma).enumerate() {
             let z = Complex64::new(mu, wn);
             let g = lattice_g(z, h, *s);
             let g0 = lattice_g(z, h, Complex64::new(s_inf, 0.0));
             let d: Vec<Complex64> = g.iter().zip(&g0).map(|(a, b)| a - b).collect();
-            dc += d[0].re;
-            df += d[3].re;
+            dc[i] += d[0] * w;
+            df[i] += d[3] * w;
             if energies {
-                dh += (d[0] * h.a + (d[1] + d[2]) * h.b + d[3] * h.d).re;
+                dh[i] += (d[0] * h.a + (d[1] + d[2]) * h.b + d[3] * h.d) * w;
                 gff_loc[i] += g[3] * w;
             }
         }
-        let two_over_beta = 2.0 / beta;
-        occ.n_c += 2.0 * w * (ref_c + two_over_beta * dc);
-        occ.n_f += 2.0 * w * (ref_f + two_over_beta * df);
-        occ.e_one_body += 2.0 * w * (ref_h + two_over_beta * dh);
+        occ.n_c += 2.0 * w * ref_c;
+        occ.n_f += 2.0 * w * ref_f;
+        occ.e_one_body += 2.0 * w * ref_h;
+    }
+    // The k-summed differences D = Σ_k w_k (G − G_ref): G and G_ref share their 1/(iω) and
+    // 1/(iω)² moments, so D = c3/(iω)³ + c4/(iω)⁴ + …; c4 comes from the shared tail fit and
+    // its sum beyond the grid is added in closed form, which leaves an O(N⁻⁵) truncation
+    // error instead of the O(N⁻³) of the bare sum (c3 has no real part).
+    let sum = |d: &[Complex64]| {
+        let fit = fit_tail(beta, d).unwrap_or_default();
+        let tail = Tail {
+            c1: 0.0,
+            c2: 0.0,
+            c3: 0.0,
+            c4: fit.tail.c4,
+        };
+        2.0 * sum_with_tail_beyond(beta, d, tail)
+    };
+    occ.n_c += sum(&dc);
+    occ.n_f += sum(&df);
+    if energies {
+        occ.e_one_body += sum(&dh);
     }
     if energies {
-        // E_int = (1/β)Σ_n Σ G_ff = Σ_∞ n_f/2 + (1/β)Σ_n (Σ−Σ_∞) G_ff; the second term has a
-        // real 1/(iω)² tail with coefficient s1 = −ω Im Σ at high frequency.
+        // E_int = (1/β)Σ_n Σ G_ff = Σ_∞ n_f/2 + (1/β)Σ_n (Σ−Σ_∞) G_ff. The product decays as
+        // s1/(iω)² (s1 the 1/(iω) moment of Σ); its 1/(iω)³ and 1/(iω)⁴ moments come from the
+        // shared tail fit, so the truncated sum errs by O(N⁻⁵) instead of O(N⁻³) (with the
+        // 1/(iω)² term alone: about 5e-5 eV at 300 K and 512 frequencies in the demo).
         let prod: Vec<Complex64> = sigma
             .iter()
             .zip(&gff_loc)
             .map(|(s, g)| (s - s_inf) * g)
             .collect();
-        let s1 = match (grid.last(), sigma.last()) {
-            (Some(w), Some(s)) => -w * s.im,
-            _ => 0.0,
+        let fit = fit_tail(beta, &prod).unwrap_or_default();
+        let tail = Tail {
+            c1: 0.0,
+            c2: s1,
+            c3: 0.0,
+            c4: fit.tail.c4,
         };
-        let rest = density_from_giw(beta, &prod, Tail::two(0.0, s1));
+        let rest = sum_with_tail_beyond(beta, &prod, tail);
         occ.e_int = s_inf * occ.n_f / 2.0 + rest;
     }
     occ
@@ -392,5 +421,44 @@ mod tests {
             o.e_one_body + o.e_int
         );
         assert!((o.e_int - 3.0 * at.docc).abs() < 1e-8);
+    }
+
+    #[test]
+    fn sums_converge_in_the_number_of_frequencies() {
+        // The demo model at 28 Å³ and 300 K with a Hubbard-I self-energy (U = 6, level
+        // −0.96 eV, μ = −0.25 eV): occupations and energies from the demo's 512 frequencies
+        // against 8192. With the fitted ω⁻⁴ tails summed beyond the grid the differences are
+        // 4e-8 (n_f, E_1body) and 1.3e-7 eV (E_int); with the bare sums and the 1/(iω)²
+        // tail alone they were 2.0e-5, 2.3e-5 and 4.6e-5 (O(N⁻³)).
+        let d = Density {
+            n_f: 1.0,
+            n_c: 0.8,
+            mu: 0.0,
+            energy: None,
+        };
+        let mesh = band(&DEMO, 28.0, 8, &d, false).mesh;
+        let beta = 1.0 / (rondo_numerics::units::BOLTZMANN_EV_PER_K * 300.0);
+        let occ = |n_w: usize| {
+            let delta = zero_sigma(n_w);
+            let hi = hubbard_i(&SolverInput {
+                delta: &delta,
+                level: -0.96,
+                u: 6.0,
+                beta,
+                seed: 0,
+                sweeps: None,
+            });
+            occupations(&mesh, &hi.sigma, beta, -0.25, true)
+        };
+        let (a, b) = (occ(512), occ(8192));
+        assert!((a.n_f - b.n_f).abs() < 2e-7, "n_f {} vs {}", a.n_f, b.n_f);
+        assert!((a.n_c - b.n_c).abs() < 2e-7, "n_c {} vs {}", a.n_c, b.n_c);
+        assert!((a.e_one_body - b.e_one_body).abs() < 2e-7);
+        assert!(
+            (a.e_int - b.e_int).abs() < 5e-7,
+            "{} vs {}",
+            a.e_int,
+            b.e_int
+        );
     }
 }

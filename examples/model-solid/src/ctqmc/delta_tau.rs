@@ -5,34 +5,13 @@
 //! frequency and transformed in closed form (0 < τ < β):
 //! 1/(iω) → −1/2, 1/(iω)² → (2τ − β)/4, 1/(iω)³ → (βτ − τ²)/4
 //! (the expansion of the free-level G(τ) = −e^{−ετ}/(1 + e^{−βε}) in powers of ε).
-//! The moments come from the data at the two highest frequencies.
+//! The constant c0 and the moments c1…c3 come from the least-squares fit of the tail over the
+//! upper half of the grid (`rondo_numerics::matsubara::fit_tail`), the fit that also gives
+//! the solvers' static part of Δ.
 
 use anyhow::{bail, Result};
 use num_complex::Complex64;
-use rondo_numerics::matsubara::fermionic_frequency;
-
-/// The high-frequency moments of Δ(iω) − c0 fitted at the last and the middle frequency:
-/// Im Δ = −c1/ω + c3/ω³ and Re Δ − c0 = −c2/ω² (+ O(ω⁻⁴)).
-pub(crate) fn delta_moments(beta: f64, delta: &[Complex64], c0: f64) -> [f64; 3] {
-    let n = delta.len();
-    if n == 0 {
-        return [0.0; 3];
-    }
-    let ib = n - 1;
-    let wb = fermionic_frequency(beta, ib as i64);
-    if n < 4 {
-        return [-wb * delta[ib].im, -wb * wb * (delta[ib].re - c0), 0.0];
-    }
-    let ia = n / 2;
-    let wa = fermionic_frequency(beta, ia as i64);
-    // Solve for c1, c3 from ω Im Δ = −c1 + c3/ω² at two frequencies.
-    let (ya, yb) = (wa * delta[ia].im, wb * delta[ib].im);
-    let (xa, xb) = (1.0 / (wa * wa), 1.0 / (wb * wb));
-    let c3 = (ya - yb) / (xa - xb);
-    let c1 = c3 * xb - yb;
-    let c2 = -wb * wb * (delta[ib].re - c0);
-    [c1, c2, c3]
-}
+use rondo_numerics::matsubara::{fermionic_frequency, TailFit};
 
 /// F(τ) = −Δ(τ) on a uniform grid of [0, β], linearly interpolated, continued
 /// antiperiodically to (−β, 0).
@@ -44,9 +23,15 @@ pub struct HybFunction {
 }
 
 impl HybFunction {
-    /// From Δ(iω_n), n = 0..N−1, with its constant part c0 already removed from the level
-    /// and subtracted here; `n_tau` grid intervals.
-    pub fn from_matsubara(beta: f64, delta: &[Complex64], c0: f64, n_tau: usize) -> Result<Self> {
+    /// From Δ(iω_n), n = 0..N−1, and the fit of its tail: the constant c0 (moved into the
+    /// level by the caller) is subtracted here, c1…c3 are transformed in closed form;
+    /// `n_tau` grid intervals.
+    pub fn from_matsubara(
+        beta: f64,
+        delta: &[Complex64],
+        tail: &TailFit,
+        n_tau: usize,
+    ) -> Result<Self> {
         if delta.is_empty() {
             bail!("the hybridization function Δ(iω_n) is empty");
         }
@@ -59,7 +44,7 @@ impl HybFunction {
         {
             bail!("the hybridization function Δ(iω_n) contains NaN or infinite values");
         }
-        let [c1, c2, c3] = delta_moments(beta, delta, c0);
+        let (c0, c1, c2, c3) = (tail.c0, tail.tail.c1, tail.tail.c2, tail.tail.c3);
         // Residual after the tail on each frequency.
         let resid: Vec<Complex64> = delta
             .iter()
@@ -135,7 +120,9 @@ mod tests {
                 bath.iter().map(|(e, v)| v * v / (iw - e)).sum()
             })
             .collect();
-        let f = HybFunction::from_matsubara(beta, &delta, 0.0, 1000).unwrap();
+        let tail = rondo_numerics::matsubara::fit_tail(beta, &delta).unwrap();
+        assert!(tail.c0.abs() < 1e-13, "no static part: {}", tail.c0);
+        let f = HybFunction::from_matsubara(beta, &delta, &tail, 1000).unwrap();
         for i in 0..=1000 {
             let tau = i as f64 * beta / 1000.0;
             let exact: f64 = bath

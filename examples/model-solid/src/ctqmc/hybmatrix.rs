@@ -293,7 +293,8 @@ mod tests {
                 0.25 / (iw + 0.3) + 0.5 / (iw - 0.7)
             })
             .collect();
-        let f = HybFunction::from_matsubara(beta, &delta, 0.0, 2000).unwrap();
+        let tail = rondo_numerics::matsubara::fit_tail(beta, &delta).unwrap();
+        let f = HybFunction::from_matsubara(beta, &delta, &tail, 2000).unwrap();
         let det = |m: &HybMatrix| {
             let n = m.ends.len();
             DMatrix::from_fn(n, n, |b, a| f.eval(m.starts[a] - m.ends[b])).determinant()
