@@ -211,8 +211,8 @@ const PINNED_WINDOW_AVERAGES: [(f64, &str, f64, f64, f64); 20] = [
 /// the same stationary mean of the loop, independent (different seeds), so their difference
 /// has the standard error σ = √(σ_demo² + σ_long²). σ_demo is the window error that `rondo
 /// status` reports, but at least sigma6: the demo averages only 6 iterations, too few for a
-/// binning analysis, and consecutive iterations are correlated (lag-1 autocorrelation of
-/// solve.n_f ≈ 0.4 in the long run), so the reported error can be too small by up to ~1.6.
+/// binning analysis, and consecutive iterations are correlated, so the reported error can be
+/// too small (for solve.n_f sigma6 is 2.2–3.3e-4 against reported errors of 1.5–2.4e-4).
 /// |demo − long| < 4σ. Checked under five other seeds (`bash reference/qmc_pin_seeds.sh`,
 /// reference/output/qmc_pin_seeds.txt): the 100 values have std(z) = 1.02 and max |z| = 3.6
 /// with this σ; with the reported window errors alone std(z) = 1.36 and two exceed 4
