@@ -21,6 +21,8 @@ use std::time::Instant;
 
 use anyhow::{bail, Context, Result};
 
+mod common;
+
 const BEGIN: &str = "<!-- large-files:begin (written by `cargo bench -p rondo --bench large_files -- --write-docs`) -->";
 const END: &str = "<!-- large-files:end -->";
 
@@ -129,17 +131,6 @@ fn median(v: &[f64]) -> f64 {
     s[s.len() / 2]
 }
 
-fn git(args: &[&str]) -> String {
-    Command::new("git")
-        .args(args)
-        .current_dir(env!("CARGO_MANIFEST_DIR"))
-        .output()
-        .ok()
-        .filter(|o| o.status.success())
-        .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
-        .unwrap_or_else(|| "unknown".to_string())
-}
-
 fn main() -> Result<()> {
     let write_docs = std::env::args().any(|a| a == "--write-docs");
     let mib: u64 = env_or("RONDO_BENCH_SIZE_MIB", "2048")
@@ -168,17 +159,7 @@ fn main() -> Result<()> {
     }
     let bytes = (mib << 20) as f64;
     let (s, r, u) = (median(&sh), median(&ro), median(&used));
-    let date = Command::new("date")
-        .args(["-u", "+%Y-%m-%d %H:%M UTC"])
-        .output()
-        .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
-        .unwrap_or_default();
-    let commit = git(&["rev-parse", "--short", "HEAD"]);
-    let dirty = if git(&["status", "--porcelain", "--untracked-files=no"]).is_empty() {
-        ""
-    } else {
-        " (the working tree had uncommitted changes)"
-    };
+    let (date, commit, dirty) = common::measured_at();
     let fmt = |v: &[f64]| {
         v.iter()
             .map(|x| format!("{x:.2}"))
@@ -219,26 +200,7 @@ fn main() -> Result<()> {
     writeln!(out, "{END}")?;
     println!("{out}");
     if write_docs {
-        let docs = match std::env::var_os("RONDO_BENCH_DOCS") {
-            Some(p) => PathBuf::from(p),
-            None => Path::new(env!("CARGO_MANIFEST_DIR")).join("../docs/performance.md"),
-        };
-        let text = std::fs::read_to_string(&docs)
-            .with_context(|| format!("{}: cannot read", docs.display()))?;
-        let new = match (text.find(BEGIN), text.find(END)) {
-            (Some(a), Some(b)) if b > a => {
-                format!("{}{}{}", &text[..a], out.trim_end(), &text[b + END.len()..])
-            }
-            _ => format!(
-                "{}\n## Large files\n\n{}\n",
-                text.trim_end(),
-                out.trim_end()
-            ),
-        };
-        let tmp = docs.with_extension("md.tmp");
-        std::fs::write(&tmp, new)?;
-        std::fs::rename(&tmp, &docs)?;
-        eprintln!("wrote {}", docs.display());
+        common::write_section(BEGIN, END, "Large files", &out)?;
     }
     Ok(())
 }

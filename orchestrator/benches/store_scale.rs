@@ -23,6 +23,8 @@ use std::time::{Duration, Instant};
 
 use anyhow::{bail, Context, Result};
 
+mod common;
+
 const BEGIN: &str = "<!-- store-scale:begin (written by `cargo bench -p rondo --bench store_scale -- --write-docs`) -->";
 const END: &str = "<!-- store-scale:end -->";
 
@@ -217,17 +219,6 @@ fn fill_history(db: &Path, iterations: usize) -> Result<()> {
     })
 }
 
-fn git(args: &[&str]) -> String {
-    Command::new("git")
-        .args(args)
-        .current_dir(env!("CARGO_MANIFEST_DIR"))
-        .output()
-        .ok()
-        .filter(|o| o.status.success())
-        .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
-        .unwrap_or_else(|| "unknown".to_string())
-}
-
 fn main() -> Result<()> {
     let write_docs = std::env::args().any(|a| a == "--write-docs");
     let points = env_num("RONDO_BENCH_POINTS", 100)?;
@@ -300,17 +291,7 @@ fn main() -> Result<()> {
         &[0, 3],
     )?;
 
-    let date = Command::new("date")
-        .args(["-u", "+%Y-%m-%d %H:%M UTC"])
-        .output()
-        .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
-        .unwrap_or_default();
-    let commit = git(&["rev-parse", "--short", "HEAD"]);
-    let dirty = if git(&["status", "--porcelain", "--untracked-files=no"]).is_empty() {
-        ""
-    } else {
-        " (the working tree had uncommitted changes)"
-    };
+    let (date, commit, dirty) = common::measured_at();
     let mut s = String::new();
     writeln!(s, "{BEGIN}")?;
     writeln!(
@@ -342,26 +323,7 @@ fn main() -> Result<()> {
     writeln!(s, "{END}")?;
     println!("{s}");
     if write_docs {
-        let docs = match std::env::var_os("RONDO_BENCH_DOCS") {
-            Some(p) => PathBuf::from(p),
-            None => Path::new(env!("CARGO_MANIFEST_DIR")).join("../docs/performance.md"),
-        };
-        let text = std::fs::read_to_string(&docs)
-            .with_context(|| format!("{}: cannot read", docs.display()))?;
-        let new = match (text.find(BEGIN), text.find(END)) {
-            (Some(a), Some(b)) if b > a => {
-                format!("{}{}{}", &text[..a], s.trim_end(), &text[b + END.len()..])
-            }
-            _ => format!(
-                "{}\n## Store at scale\n\n{}\n",
-                text.trim_end(),
-                s.trim_end()
-            ),
-        };
-        let tmp = docs.with_extension("md.tmp");
-        std::fs::write(&tmp, new)?;
-        std::fs::rename(&tmp, &docs)?;
-        eprintln!("wrote {}", docs.display());
+        common::write_section(BEGIN, END, "Store at scale", &s)?;
     }
     Ok(())
 }

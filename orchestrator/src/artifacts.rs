@@ -82,10 +82,7 @@ impl ArtifactStore {
         }
         let dir = dest.parent().unwrap_or(&self.root);
         fs::create_dir_all(dir)?;
-        let tmp = dir.join(format!(".tmp-{}-{}", std::process::id(), &hash[..16]));
-        fs::copy(src, &tmp)?;
-        File::open(&tmp)?.sync_all()?;
-        fs::rename(&tmp, &dest)?;
+        copy_durably(src, &dest, &hash, None)?;
         Ok((hash, size))
     }
 
@@ -108,13 +105,7 @@ impl ArtifactStore {
         match fs::hard_link(src, &dest) {
             Ok(()) => {}
             Err(e) if e.kind() == io::ErrorKind::AlreadyExists => {}
-            Err(_) => {
-                let tmp = dir.join(format!(".tmp-{}-{}", std::process::id(), &hash[..16]));
-                fs::copy(src, &tmp)?;
-                File::open(&tmp)?.sync_all()?;
-                fs::set_permissions(&tmp, fs::Permissions::from_mode(0o444))?;
-                fs::rename(&tmp, &dest)?;
-            }
+            Err(_) => copy_durably(src, &dest, &hash, Some(0o444))?,
         }
         sync_dir(dir)?;
         Ok((hash, size))
@@ -166,6 +157,19 @@ impl ArtifactStore {
         }
         Ok((hash, bytes.len() as u64))
     }
+}
+
+/// Copy `src` to `dest` through a temporary name beside it (synced, given `mode` if any,
+/// then renamed), so a crash leaves either no file or a complete one.
+fn copy_durably(src: &Path, dest: &Path, hash: &str, mode: Option<u32>) -> io::Result<()> {
+    let dir = dest.parent().unwrap_or(Path::new("."));
+    let tmp = dir.join(format!(".tmp-{}-{}", std::process::id(), &hash[..16]));
+    fs::copy(src, &tmp)?;
+    File::open(&tmp)?.sync_all()?;
+    if let Some(m) = mode {
+        fs::set_permissions(&tmp, fs::Permissions::from_mode(m))?;
+    }
+    fs::rename(&tmp, dest)
 }
 
 /// fsync a folder, so that a rename into it is durable.

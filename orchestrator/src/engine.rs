@@ -1395,7 +1395,6 @@ impl Engine<'_> {
         now: &BuiltWith,
     ) -> Result<()> {
         self.flush().await?;
-        let point_id = self.points[p].spec.id.clone();
         let iteration = self.points[p].iteration;
         let what = match &stage.kind {
             StageKind::Shell { .. } => format!(
@@ -1428,7 +1427,23 @@ impl Engine<'_> {
              back the build that ran and run again with --retry-failed; to use the new build, \
              run the campaign in a new workspace (--workspace)"
         );
+        self.fail_point(p, iteration, None, &reason, Some("program-changed"))
+            .await
+    }
+
+    /// Stop point `p` as failed at `iteration`, in one transaction: the iteration and the
+    /// point are marked failed with `reason`, and a `point-failed` event (after `event`, if
+    /// given, with the same text) names the attempt that ended it, if any.
+    async fn fail_point(
+        &mut self,
+        p: usize,
+        iteration: u32,
+        attempt: Option<i64>,
+        reason: &str,
+        event: Option<&str>,
+    ) -> Result<()> {
         self.points[p].phase = PointPhase::Done;
+        let point_id = self.points[p].spec.id.clone();
         let mut tx = self.pool.begin().await?;
         sqlx::query(
             "UPDATE iterations SET state = ?, ended_at = ? WHERE point = ? AND iteration = ?",
@@ -1441,28 +1456,18 @@ impl Engine<'_> {
         .await?;
         sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
             .bind(PointState::Failed)
-            .bind(&reason)
+            .bind(reason)
             .bind(&point_id)
             .execute(&mut *tx)
             .await?;
-        store::event(
-            &mut *tx,
-            "program-changed",
-            Some(&point_id),
-            Some(iteration),
-            None,
-            &reason,
-        )
-        .await?;
-        store::event(
-            &mut *tx,
-            "point-failed",
-            Some(&point_id),
-            Some(iteration),
-            None,
-            &reason,
-        )
-        .await?;
+        for kind in event.into_iter().chain(["point-failed"]) {
+            let at = if kind == "point-failed" {
+                attempt
+            } else {
+                None
+            };
+            store::event(&mut *tx, kind, Some(&point_id), Some(iteration), at, reason).await?;
+        }
         tx.commit().await?;
         self.progress.line(format!("{point_id} failed: {reason}"));
         Ok(())
@@ -2320,32 +2325,8 @@ impl Engine<'_> {
                         fl.iteration,
                         first_line(&message)
                     );
-                    pr.phase = PointPhase::Done;
-                    let mut tx = self.pool.begin().await?;
-                    sqlx::query("UPDATE iterations SET state = ?, ended_at = ? WHERE point = ? AND iteration = ?")
-                        .bind(IterationState::Failed)
-                        .bind(store::now())
-                        .bind(&point_id)
-                        .bind(i64::from(fl.iteration))
-                        .execute(&mut *tx)
+                    self.fail_point(fl.point, fl.iteration, Some(id), &reason, None)
                         .await?;
-                    sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
-                        .bind(PointState::Failed)
-                        .bind(&reason)
-                        .bind(&point_id)
-                        .execute(&mut *tx)
-                        .await?;
-                    store::event(
-                        &mut *tx,
-                        "point-failed",
-                        Some(&point_id),
-                        Some(fl.iteration),
-                        Some(id),
-                        &reason,
-                    )
-                    .await?;
-                    tx.commit().await?;
-                    self.progress.line(format!("{point_id} failed: {reason}"));
                 } else {
                     self.ready.push_back(fl.point);
                 }
