@@ -1,0 +1,310 @@
+//! The iteration's decisions: metric histories, the stopping rules' verdict, the loop-driven
+//! parameters (schedules), and stopping a point as failed.
+
+use super::*;
+
+/// Write a verdict: the iteration is good (with the rules' evaluation), and either the point
+/// stops or its next iteration begins.
+pub(super) fn record_verdict(
+    script: &mut store::Script,
+    point_id: &str,
+    v: &Verdict,
+) -> Result<()> {
+    let n = v.iteration;
+    script
+        .stmt("UPDATE iterations SET state = ?, ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
+        .bind(IterationState::Good)
+        .bind(store::now())
+        .bind(serde_json::to_string(&v.decision)?)
+        .bind(point_id.to_string())
+        .bind(i64::from(n));
+    if let Some((state, reason)) = &v.fate {
+        script
+            .stmt("UPDATE points SET state = ?, reason = ? WHERE id = ?")
+            .bind(*state)
+            .bind(reason.clone())
+            .bind(point_id.to_string());
+        store::event_stmt(
+            script,
+            &format!("point-{state}"),
+            Some(point_id),
+            Some(n),
+            None,
+            reason,
+        );
+    } else {
+        script
+            .stmt("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,?,?)")
+            .bind(point_id.to_string())
+            .bind(i64::from(n + 1))
+            .bind(IterationState::Running)
+            .bind(store::now());
+    }
+    Ok(())
+}
+
+impl Engine<'_> {
+    /// Read a point's metric history from the store unless it is already in memory: the
+    /// metrics of its good iterations and of the current one, and the start of its final
+    /// window. A resumed run reads exactly what an uninterrupted one kept in memory.
+    pub(super) async fn ensure_history(&mut self, p: usize) -> Result<()> {
+        if self.points[p].history.is_some() {
+            return Ok(());
+        }
+        self.flush().await?;
+        let point_id = self.points[p].spec.id.clone();
+        let n = self.points[p].iteration;
+        let rows = sqlx::query(
+            "SELECT a.iteration AS it, m.name AS name, m.value AS value, m.error AS error \
+             FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
+             LEFT JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration \
+             WHERE a.point = ? AND a.state = ? AND (i.state = ? OR a.iteration = ?)",
+        )
+        .bind(&point_id)
+        .bind(AttemptState::Succeeded)
+        .bind(IterationState::Good)
+        .bind(i64::from(n))
+        .fetch_all(&self.pool)
+        .await?;
+        let mut history = History::new();
+        history.entry(n).or_default();
+        for r in rows {
+            history
+                .entry(r.get::<i64, _>("it") as u32)
+                .or_default()
+                .insert(
+                    r.get("name"),
+                    Sample {
+                        value: r.get("value"),
+                        error: r.get("error"),
+                    },
+                );
+        }
+        let first_met: Option<i64> = sqlx::query_scalar(
+            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = ? \
+             AND json_extract(stop_json, '$.rules_met') = 1",
+        )
+        .bind(&point_id)
+        .bind(IterationState::Good)
+        .fetch_one(&self.pool)
+        .await?;
+        let pr = &mut self.points[p];
+        pr.history = Some(history);
+        pr.first_met = first_met.map(|i| i as u32);
+        Ok(())
+    }
+
+    /// Stop point `p` as failed at `iteration`, in one transaction: the iteration and the
+    /// point are marked failed with `reason`, and a `point-failed` event (after `event`, if
+    /// given, with the same text) names the attempt that ended it, if any.
+    pub(super) async fn fail_point(
+        &mut self,
+        p: usize,
+        iteration: u32,
+        attempt: Option<i64>,
+        reason: &str,
+        event: Option<&str>,
+    ) -> Result<()> {
+        self.points[p].phase = PointPhase::Done;
+        let point_id = self.points[p].spec.id.clone();
+        let mut tx = self.pool.begin().await?;
+        sqlx::query(
+            "UPDATE iterations SET state = ?, ended_at = ? WHERE point = ? AND iteration = ?",
+        )
+        .bind(IterationState::Failed)
+        .bind(store::now())
+        .bind(&point_id)
+        .bind(i64::from(iteration))
+        .execute(&mut *tx)
+        .await?;
+        sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
+            .bind(PointState::Failed)
+            .bind(reason)
+            .bind(&point_id)
+            .execute(&mut *tx)
+            .await?;
+        for kind in event.into_iter().chain(["point-failed"]) {
+            let at = if kind == "point-failed" {
+                attempt
+            } else {
+                None
+            };
+            store::event(&mut *tx, kind, Some(&point_id), Some(iteration), at, reason).await?;
+        }
+        tx.commit().await?;
+        self.progress.line(format!("{point_id} failed: {reason}"));
+        Ok(())
+    }
+
+    /// Values of the loop-driven parameters for a point's iteration, from the metrics of its
+    /// earlier good iterations (so a resumed run computes the same values).
+    pub(super) async fn schedule_values(
+        &mut self,
+        p: usize,
+        iteration: u32,
+    ) -> Result<Vec<(String, String)>> {
+        let mut out = Vec::new();
+        if self.campaign.schedules.is_empty() {
+            return Ok(out);
+        }
+        self.ensure_history(p).await?;
+        let history = self.points[p].history.as_ref();
+        for sc in &self.campaign.schedules {
+            // Every iteration before the current one in the history is a good one.
+            let samples: Vec<Sample> = history
+                .into_iter()
+                .flat_map(|h| h.range(..iteration))
+                .filter_map(|(_, m)| m.get(&sc.metric).copied())
+                .collect();
+            let held = samples
+                .windows(2)
+                .filter(|w| stop::holds(sc.test, w[0], w[1]).0)
+                .count();
+            let mut v = sc.start;
+            for _ in 0..held {
+                v *= sc.factor;
+                if v >= sc.max {
+                    break;
+                }
+            }
+            let v = v.min(sc.max);
+            out.push((
+                sc.name.clone(),
+                if sc.integer {
+                    format!("{}", v.round() as i64)
+                } else {
+                    format!("{v:?}")
+                },
+            ));
+        }
+        Ok(out)
+    }
+
+    /// All stages of the point's iteration succeeded (found so on resume): apply the
+    /// stopping rules. Normally the verdict is recorded with the last stage's success.
+    pub(super) async fn finish_iteration(&mut self, p: usize) -> Result<()> {
+        self.ensure_history(p).await?;
+        let v = self.judge(p)?;
+        let point_id = self.points[p].spec.id.clone();
+        let mut script = store::Script::new();
+        record_verdict(&mut script, &point_id, &v)?;
+        script.commit(&self.pool).await?;
+        self.apply_verdict(p, v);
+        Ok(())
+    }
+
+    /// The stopping rules on the point's history (which holds its current iteration).
+    pub(super) fn judge(&mut self, p: usize) -> Result<Verdict> {
+        let pr = &mut self.points[p];
+        let n = pr.iteration;
+        let Some(history) = pr.history.as_mut() else {
+            bail!("internal: metric history of {} not read", pr.spec.id);
+        };
+        history.entry(n).or_default();
+        let decision = stop::decide(
+            &self.campaign.rules,
+            self.campaign.combine,
+            self.campaign.max_iterations,
+            history,
+        );
+        let summary = decision
+            .rules
+            .iter()
+            .map(|r| {
+                format!(
+                    "{} Δ={}",
+                    r.metric,
+                    r.change
+                        .map(|c| format!("{c:.3e}"))
+                        .unwrap_or_else(|| "–".into())
+                )
+            })
+            .collect::<Vec<_>>()
+            .join(", ");
+        let first_met = pr.first_met.or(decision.rules_met.then_some(n));
+        let window = self.campaign.final_window;
+        let fate = if let Some(why) = &decision.diverged {
+            Some((PointState::Failed, format!("diverging: {why}")))
+        } else if let Some(f) = first_met {
+            if n >= f + window {
+                Some((
+                    PointState::Converged,
+                    if window > 0 {
+                        format!(
+                            "stopping rules met at iteration {f}; averaged over iterations {}..{n}",
+                            f + 1
+                        )
+                    } else {
+                        format!("stopping rules met at iteration {n}")
+                    },
+                ))
+            } else if decision.at_cap {
+                Some((
+                    PointState::Converged,
+                    format!("stopping rules met at iteration {f}; final window cut short by max-iterations at {n}"),
+                ))
+            } else {
+                None
+            }
+        } else if decision.at_cap && self.campaign.rules.is_empty() {
+            Some((
+                PointState::Capped,
+                format!(
+                    "ran all {n} iterations of max-iterations: the campaign has no stopping rule"
+                ),
+            ))
+        } else if decision.at_cap {
+            Some((
+                PointState::Capped,
+                format!("reached max-iterations ({n}) without meeting the stopping rules"),
+            ))
+        } else {
+            None
+        };
+        Ok(Verdict {
+            iteration: n,
+            decision,
+            fate,
+            summary,
+            first_met,
+        })
+    }
+
+    /// After the verdict is committed: move the point on in memory and log it.
+    pub(super) fn apply_verdict(&mut self, p: usize, v: Verdict) {
+        let nstages = self.campaign.stages.len();
+        let pr = &mut self.points[p];
+        let point_id = pr.spec.id.clone();
+        let n = v.iteration;
+        pr.first_met = v.first_met;
+        let rules = if v.summary.is_empty() {
+            String::new()
+        } else {
+            format!(" ({})", v.summary)
+        };
+        if let Some((state, reason)) = &v.fate {
+            pr.phase = PointPhase::Done;
+            let why = if v.summary.is_empty() {
+                format!(": {reason}")
+            } else {
+                rules
+            };
+            self.progress
+                .line(format!("{point_id} {state} at iteration {n}{why}"));
+        } else {
+            pr.iteration = n + 1;
+            pr.next_stage = 0;
+            pr.attempts = vec![0; nstages];
+            if let Some(h) = pr.history.as_mut() {
+                h.entry(n + 1).or_default();
+            }
+            let note = if v.first_met.is_some() {
+                " [final window]"
+            } else {
+                ""
+            };
+            self.progress
+                .line(format!("{point_id} iteration {n} good{rules}{note}"));
+        }
+    }
+}

@@ -1,0 +1,144 @@
+//! Creating a workspace's records at the first run (campaign row, points, start files) and
+//! checking at every later run that the workspace belongs to the campaign file.
+
+use super::*;
+
+/// A random-enough workspace id: BLAKE3 of time, pid and path.
+pub(super) fn new_workspace_id(root: &Path) -> String {
+    let seed = format!(
+        "{}-{}-{}",
+        Utc::now().timestamp_nanos_opt().unwrap_or(0),
+        std::process::id(),
+        root.display()
+    );
+    blake3::hash(seed.as_bytes()).to_hex()[..16].to_string()
+}
+
+/// Create the workspace records of a campaign (first run) or check that an existing
+/// workspace belongs to this campaign file. Start files are hashed before anything is
+/// written, so a missing start file leaves no workspace behind.
+pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<PreparedWorkspace> {
+    for (name, file) in &campaign.start {
+        if !file.is_file() {
+            bail!(
+                "{}: start file `{name}` ({}) does not exist; fix `start:` or create the file",
+                campaign.file.display(),
+                file.display()
+            );
+        }
+    }
+    std::fs::create_dir_all(&paths.root)
+        .with_context(|| format!("{}: cannot create the workspace", paths.root.display()))?;
+    let lock = store::lock(&paths.root)?;
+    let pool = store::open(&paths.db).await?;
+    let artifacts = ArtifactStore::open(&paths.store).with_context(|| {
+        format!(
+            "{}: cannot create the artifact store",
+            paths.store.display()
+        )
+    })?;
+    let hash = spec_hash(&campaign.text);
+    let workspace_id = match store::campaign_row(&pool).await? {
+        Some(row) => {
+            if row.spec_blake3 != hash {
+                // Bad input (exit 2): the file, not the machine, is at fault.
+                bail!(crate::cli::BadInput(format!(
+                    "{}: this workspace was made from a different campaign file (BLAKE3 {} at \
+                     its first run, {} now); restore the file, or run the changed campaign in \
+                     a new workspace with --workspace",
+                    paths.root.display(),
+                    row.spec_blake3.get(..12).unwrap_or(&row.spec_blake3),
+                    &hash[..12]
+                )));
+            }
+            row.workspace_id
+        }
+        None => {
+            let workspace_id = new_workspace_id(&paths.root);
+            let mut starts = Vec::new();
+            for (name, file) in &campaign.start {
+                let (h, size) = artifacts
+                    .put_file(file)
+                    .with_context(|| format!("{}: cannot store the start file", file.display()))?;
+                let fname = file
+                    .file_name()
+                    .map(|f| f.to_string_lossy().into_owned())
+                    .unwrap_or_else(|| name.clone());
+                starts.push((name.clone(), h, size, fname));
+            }
+            let mut tx = pool.begin().await?;
+            sqlx::query(
+                "INSERT INTO campaign(id, name, spec_path, spec_text, spec_blake3, created_at, \
+                 rondo_version, workspace_id) VALUES (1,?,?,?,?,?,?,?)",
+            )
+            .bind(&campaign.name)
+            .bind(campaign.file.display().to_string())
+            .bind(&campaign.text)
+            .bind(&hash)
+            .bind(store::now())
+            .bind(RONDO_VERSION)
+            .bind(&workspace_id)
+            .execute(&mut *tx)
+            .await?;
+            // Multi-row inserts: a sweep of thousands of points is a few statements.
+            for chunk in campaign.points.chunks(300) {
+                let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
+                    "INSERT INTO points(id, idx, values_json, state) ",
+                );
+                q.push_values(chunk, |mut b, p| {
+                    b.push_bind(&p.id)
+                        .push_bind(p.index as i64)
+                        .push_bind(values_json(p).to_string())
+                        .push_bind(PointState::Planned);
+                });
+                q.build().execute(&mut *tx).await?;
+            }
+            for (name, h, size, fname) in &starts {
+                store::artifact(&mut *tx, h, *size, fname).await?;
+                sqlx::query("INSERT INTO start_files(name, artifact) VALUES (?,?)")
+                    .bind(name)
+                    .bind(h)
+                    .execute(&mut *tx)
+                    .await?;
+            }
+            store::event(
+                &mut *tx,
+                "campaign-created",
+                None,
+                None,
+                None,
+                &campaign.name,
+            )
+            .await?;
+            tx.commit().await?;
+            workspace_id
+        }
+    };
+    Ok(PreparedWorkspace {
+        pool,
+        artifacts,
+        workspace_id,
+        _lock: lock,
+    })
+}
+
+/// An open, locked workspace.
+pub struct PreparedWorkspace {
+    /// The database.
+    pub pool: SqlitePool,
+    /// The artifact store.
+    pub artifacts: ArtifactStore,
+    /// The id children are tagged with.
+    pub workspace_id: String,
+    _lock: store::WorkspaceLock,
+}
+
+/// Sweep values of a point as a JSON object.
+pub fn values_json(p: &PointSpec) -> serde_json::Value {
+    serde_json::Value::Object(
+        p.values
+            .iter()
+            .map(|(k, v)| (k.clone(), v.to_json()))
+            .collect(),
+    )
+}
