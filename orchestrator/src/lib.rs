@@ -1,6 +1,9 @@
 //! rondo: runs charge self-consistent DFT+DMFT campaigns unattended, resumes them after any
 //! crash, and records the provenance of every number they produce.
 
+/// The rondo version recorded with every attempt.
+pub const RONDO_VERSION: &str = env!("CARGO_PKG_VERSION");
+
 pub mod analysis;
 pub mod artifacts;
 pub mod audit;

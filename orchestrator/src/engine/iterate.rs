@@ -3,29 +3,19 @@
 
 use super::*;
 
-/// Write a verdict: the iteration is good (with the rules' evaluation), and either the point
-/// stops or its next iteration begins.
+/// Write a verdict: the iteration is good (with the rules' evaluation, `stop_json`), and
+/// either the point stops or its next iteration begins.
 pub(super) fn record_verdict(
     script: &mut store::Script,
     point_id: &str,
     v: &Verdict,
-) -> Result<()> {
+    stop_json: String,
+) {
     let n = v.iteration;
-    script
-        .stmt("UPDATE iterations SET state = ?, ended_at = ?, stop_json = ? WHERE point = ? AND iteration = ?")
-        .bind(IterationState::Good)
-        .bind(store::now())
-        .bind(serde_json::to_string(&v.decision)?)
-        .bind(point_id.to_string())
-        .bind(i64::from(n));
+    script.iteration_good(point_id, n, stop_json);
     if let Some((state, reason)) = &v.fate {
-        script
-            .stmt("UPDATE points SET state = ?, reason = ? WHERE id = ?")
-            .bind(*state)
-            .bind(reason.clone())
-            .bind(point_id.to_string());
-        store::event_stmt(
-            script,
+        script.point_state(point_id, *state, Some(reason));
+        script.event(
             &format!("point-{state}"),
             Some(point_id),
             Some(n),
@@ -33,14 +23,8 @@ pub(super) fn record_verdict(
             reason,
         );
     } else {
-        script
-            .stmt("INSERT INTO iterations(point, iteration, state, started_at) VALUES (?,?,?,?)")
-            .bind(point_id.to_string())
-            .bind(i64::from(n + 1))
-            .bind(IterationState::Running)
-            .bind(store::now());
+        script.iterations_begun(&[(point_id.to_string(), n + 1)]);
     }
-    Ok(())
 }
 
 impl Engine<'_> {
@@ -51,46 +35,22 @@ impl Engine<'_> {
         if self.points[p].history.is_some() {
             return Ok(());
         }
-        self.flush().await?;
         let point_id = self.points[p].spec.id.clone();
         let n = self.points[p].iteration;
-        let rows = sqlx::query(
-            "SELECT a.iteration AS it, m.name AS name, m.value AS value, m.error AS error \
-             FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
-             LEFT JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration \
-             WHERE a.point = ? AND a.state = ? AND (i.state = ? OR a.iteration = ?)",
-        )
-        .bind(&point_id)
-        .bind(AttemptState::Succeeded)
-        .bind(IterationState::Good)
-        .bind(i64::from(n))
-        .fetch_all(&self.pool)
-        .await?;
+        let store = self.ledger.flush().await?;
+        let rows = store.metric_history(&point_id, n).await?;
+        let first_met = store.first_rules_met(&point_id).await?;
         let mut history = History::new();
         history.entry(n).or_default();
-        for r in rows {
+        for (it, name, value, error) in rows {
             history
-                .entry(r.get::<i64, _>("it") as u32)
+                .entry(it)
                 .or_default()
-                .insert(
-                    r.get("name"),
-                    Sample {
-                        value: r.get("value"),
-                        error: r.get("error"),
-                    },
-                );
+                .insert(name, Sample { value, error });
         }
-        let first_met: Option<i64> = sqlx::query_scalar(
-            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = ? \
-             AND json_extract(stop_json, '$.rules_met') = 1",
-        )
-        .bind(&point_id)
-        .bind(IterationState::Good)
-        .fetch_one(&self.pool)
-        .await?;
         let pr = &mut self.points[p];
         pr.history = Some(history);
-        pr.first_met = first_met.map(|i| i as u32);
+        pr.first_met = first_met;
         Ok(())
     }
 
@@ -107,31 +67,20 @@ impl Engine<'_> {
     ) -> Result<()> {
         self.points[p].phase = PointPhase::Done;
         let point_id = self.points[p].spec.id.clone();
-        let mut tx = self.pool.begin().await?;
-        sqlx::query(
-            "UPDATE iterations SET state = ?, ended_at = ? WHERE point = ? AND iteration = ?",
-        )
-        .bind(IterationState::Failed)
-        .bind(store::now())
-        .bind(&point_id)
-        .bind(i64::from(iteration))
-        .execute(&mut *tx)
-        .await?;
-        sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
-            .bind(PointState::Failed)
-            .bind(reason)
-            .bind(&point_id)
-            .execute(&mut *tx)
+        self.ledger
+            .write(|s| {
+                s.iteration_ended(&point_id, iteration, IterationState::Failed);
+                s.point_state(&point_id, PointState::Failed, Some(reason));
+                for kind in event.into_iter().chain(["point-failed"]) {
+                    let at = if kind == "point-failed" {
+                        attempt
+                    } else {
+                        None
+                    };
+                    s.event(kind, Some(&point_id), Some(iteration), at, reason);
+                }
+            })
             .await?;
-        for kind in event.into_iter().chain(["point-failed"]) {
-            let at = if kind == "point-failed" {
-                attempt
-            } else {
-                None
-            };
-            store::event(&mut *tx, kind, Some(&point_id), Some(iteration), at, reason).await?;
-        }
-        tx.commit().await?;
         self.progress.line(format!("{point_id} failed: {reason}"));
         Ok(())
     }
@@ -186,9 +135,10 @@ impl Engine<'_> {
         self.ensure_history(p).await?;
         let v = self.judge(p)?;
         let point_id = self.points[p].spec.id.clone();
-        let mut script = store::Script::new();
-        record_verdict(&mut script, &point_id, &v)?;
-        script.commit(&self.pool).await?;
+        let stop_json = serde_json::to_string(&v.decision)?;
+        self.ledger
+            .write(|s| record_verdict(s, &point_id, &v, stop_json))
+            .await?;
         self.apply_verdict(p, v);
         Ok(())
     }

@@ -22,7 +22,7 @@ impl Engine<'_> {
             }
             let stage = &self.campaign.stages[self.points[p].next_stage];
             let is_builtin = stage.kind.is_builtin();
-            if !is_builtin && self.inflight.len() >= slots {
+            if !is_builtin && self.inflight.len() - self.storing >= slots {
                 // Every slot is taken: the rest wait for the next completion as they are
                 // (scanning them all on every event would cost O(points) per attempt).
                 waiting.push_back(p);
@@ -39,63 +39,8 @@ impl Engine<'_> {
         Ok(())
     }
 
-    /// Resolve the artifact feeding one input of a stage.
-    pub(super) async fn input_hash(
-        &self,
-        point: &str,
-        iteration: u32,
-        src: &Source,
-    ) -> Result<Option<String>> {
-        let output_of = |stage: &str, role: &str, it: u32| {
-            let stage = stage.to_string();
-            let role = role.to_string();
-            async move {
-                let h: Option<String> = sqlx::query_scalar(
-                    "SELECT o.artifact FROM attempts a JOIN attempt_outputs o ON o.attempt_id = a.id \
-                     WHERE a.point = ? AND a.iteration = ? AND a.stage = ? AND a.state = ? AND o.role = ?",
-                )
-                .bind(point)
-                .bind(i64::from(it))
-                .bind(&stage)
-                .bind(AttemptState::Succeeded)
-                .bind(&role)
-                .fetch_optional(&self.pool)
-                .await?;
-                anyhow::Ok(h)
-            }
-        };
-        let start = |name: &str| {
-            let name = name.to_string();
-            async move {
-                let h: Option<String> =
-                    sqlx::query_scalar("SELECT artifact FROM start_files WHERE name = ?")
-                        .bind(&name)
-                        .fetch_optional(&self.pool)
-                        .await?;
-                anyhow::Ok(h)
-            }
-        };
-        match src {
-            Source::Same { stage, role } => output_of(stage, role, iteration).await,
-            Source::Start(name) => start(name).await,
-            Source::Previous {
-                stage,
-                role,
-                initially,
-            } => {
-                if iteration > 1 {
-                    output_of(stage, role, iteration - 1).await
-                } else {
-                    match initially {
-                        Some(name) => start(name).await,
-                        None => Ok(None),
-                    }
-                }
-            }
-        }
-    }
-
-    /// Plan, record and launch (or run, for built-ins) the next attempt of a point.
+    /// Plan, record and launch (or hand to the blocking pool, for built-ins) the next
+    /// attempt of a point.
     pub(super) async fn start_attempt(&mut self, p: usize) -> Result<()> {
         let sidx = self.points[p].next_stage;
         let stage = self.campaign.stages[sidx].clone();
@@ -114,79 +59,10 @@ impl Engine<'_> {
                     .await;
             }
         }
-        let workdir = scratch::attempt_dir(
-            &self.paths.scratch,
-            &point.id,
-            iteration,
-            &stage.name,
-            attempt,
-        );
-        if workdir.exists() {
-            std::fs::remove_dir_all(&workdir)
-                .with_context(|| format!("{}: cannot clear the scratch dir", workdir.display()))?;
-        }
-        self.scratch.create(&workdir)?;
-        let inputs_dir = workdir.join("inputs");
-        if (!stage.inputs.is_empty() || matches!(stage.kind, StageKind::Mix(_)))
-            && !inputs_dir.is_dir()
-        {
-            std::fs::create_dir(&inputs_dir)
-                .with_context(|| format!("{}: cannot create", inputs_dir.display()))?;
-        }
-        // Inputs: resolve and place (from the store, so held-back records go in first).
-        if !stage.inputs.is_empty() || matches!(stage.kind, StageKind::Mix(_)) {
-            self.flush().await?;
-        }
-        let mut inputs: Vec<(String, String, PathBuf)> = Vec::new();
-        for (role, src) in &stage.inputs {
-            let Some(hash) = self.input_hash(&point.id, iteration, src).await? else {
-                if stage.kind.is_builtin() || iteration == 1 {
-                    continue;
-                }
-                bail!(
-                    "internal: input `{role}` of stage `{}` at {} iteration {iteration} has no artifact",
-                    stage.name,
-                    point.id
-                );
-            };
-            let ext: String = sqlx::query_scalar::<_, String>(
-                "SELECT original_name FROM artifacts WHERE hash = ?",
-            )
-            .bind(&hash)
-            .fetch_one(&self.pool)
-            .await
-            .map(|n| {
-                Path::new(&n)
-                    .extension()
-                    .map(|e| format!(".{}", e.to_string_lossy()))
-                    .unwrap_or_default()
-            })?;
-            let dest = inputs_dir.join(format!("{role}{ext}"));
-            self.artifacts
-                .place(&hash, &dest, stage.writable_inputs.contains(role))
-                .with_context(|| format!("cannot place artifact {hash} as {}", dest.display()))?;
-            let rel = format!("inputs/{role}{ext}");
-            inputs.push((role.clone(), hash, PathBuf::from(rel)));
-        }
-        // The mixer's own history: the state of the previous iteration's attempt.
-        if matches!(stage.kind, StageKind::Mix(_)) && iteration > 1 {
-            let src = Source::Previous {
-                stage: stage.name.clone(),
-                role: "state".into(),
-                initially: None,
-            };
-            if let Some(h) = self.input_hash(&point.id, iteration, &src).await? {
-                let dest = inputs_dir.join("state.json");
-                self.artifacts.place(&h, &dest, false).with_context(|| {
-                    format!("cannot place the mixer state as {}", dest.display())
-                })?;
-                inputs.push((
-                    "state".into(),
-                    h.clone(),
-                    PathBuf::from("inputs/state.json"),
-                ));
-            }
-        }
+        let workdir = self.fresh_workdir(&point.id, iteration, &stage, attempt)?;
+        let inputs = self
+            .place_inputs(&point.id, iteration, &stage, &workdir)
+            .await?;
         let seed = rondo_numerics::rng::derive_seed(
             self.campaign.seed,
             &[
@@ -196,117 +72,24 @@ impl Engine<'_> {
                 &stage.name,
             ],
         );
-        let mut params = self.parameters.clone();
-        for (k, v) in &point.values {
-            params.insert(k.clone(), v.to_json());
-        }
         let scheduled = self.schedule_values(p, iteration).await?;
-        for (k, v) in &scheduled {
-            let value = v
-                .parse::<i64>()
-                .map(serde_json::Value::from)
-                .or_else(|_| v.parse::<f64>().map(serde_json::Value::from))
-                .unwrap_or_else(|_| serde_json::Value::from(v.clone()));
-            params.insert(k.clone(), value);
-        }
-        let (argv, uses_seed, executor_kind) = match &stage.kind {
-            StageKind::Filter(_) | StageKind::Mix(_) => (
-                // The `rondo builtin` command that reruns it in this scratch layout.
-                builtins::BuiltinCommand::for_stage(
-                    &stage.kind,
-                    inputs.iter().map(|(r, _, f)| (r.as_str(), f.as_path())),
-                    &stage.outputs,
-                )
-                .map(|c| c.to_argv(&self.rondo_exe.0))
-                .ok_or_else(|| anyhow::anyhow!("internal: `{}` is no built-in", stage.name))?,
-                false,
-                "builtin",
-            ),
-            StageKind::Command { template, .. } | StageKind::Shell { template, .. } => {
-                let shell = matches!(stage.kind, StageKind::Shell { .. });
-                let lookup = |ns: Option<&str>, name: &str| -> Option<String> {
-                    match (ns, name) {
-                        (Some("param"), n) => point
-                            .values
-                            .iter()
-                            .find(|(k, _)| k == n)
-                            .map(|(_, v)| v.to_string())
-                            .or_else(|| {
-                                self.campaign
-                                    .parameters
-                                    .iter()
-                                    .find(|(k, _)| k == n)
-                                    .map(|(_, v)| v.to_string())
-                            })
-                            .or_else(|| {
-                                scheduled
-                                    .iter()
-                                    .find(|(k, _)| k == n)
-                                    .map(|(_, v)| v.clone())
-                            }),
-                        (Some("input"), n) => inputs
-                            .iter()
-                            .find(|(r, _, _)| r == n)
-                            .map(|(_, _, f)| f.display().to_string()),
-                        (Some("output"), n) => stage
-                            .outputs
-                            .iter()
-                            .find(|(r, _)| r == n)
-                            .map(|(_, f)| f.clone()),
-                        (Some("program"), n) if shell => self
-                            .campaign
-                            .programs
-                            .get(n)
-                            .map(|r| r.path.display().to_string()),
-                        (Some("point"), "id") => Some(point.id.clone()),
-                        (Some("point"), "index") => Some(point.index.to_string()),
-                        (None, "iteration") => Some(iteration.to_string()),
-                        (None, "cpus") => Some(stage.resources.cpus().to_string()),
-                        (None, "tasks") => Some(stage.resources.ntasks.unwrap_or(1).to_string()),
-                        (None, "seed") => Some(seed.to_string()),
-                        (None, "stage") => Some(stage.name.clone()),
-                        (None, "campaign") => Some(self.campaign.name.clone()),
-                        (None, "workdir") => Some(workdir.display().to_string()),
-                        _ => None,
-                    }
-                };
-                let rendered = if shell {
-                    template.render_shell(lookup)
-                } else {
-                    template.render(lookup)
-                };
-                let mut argv = match rendered {
-                    Ok(a) => a,
-                    Err(e) => bail!("stage `{}`: {e}", stage.name),
-                };
-                if !shell {
-                    // The first element names the program: run its resolved path.
-                    if let Some(first) = argv.first_mut() {
-                        first.clone_from(&built.path);
-                    }
-                }
-                if let Some(launcher) = &stage.resources.launcher {
-                    let t = Template::parse(launcher)
-                        .map_err(|e| anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name))?;
-                    let mut pre = t
-                        .render(lookup)
-                        .map_err(|e| anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name))?;
-                    pre.extend(argv);
-                    argv = pre;
-                }
-                let uses_seed = template
-                    .placeholders()
-                    .any(|(ns, n, _)| ns.is_none() && n == "seed");
-                (argv, uses_seed, self.opts.executor.kind())
-            }
+        let ctx = ArgvContext {
+            stage: &stage,
+            point: &point,
+            iteration,
+            inputs: &inputs,
+            scheduled: &scheduled,
+            seed,
+            workdir: &workdir,
         };
+        let (argv, uses_seed, executor_kind) = self.attempt_argv(&ctx, &built)?;
         // The planned row: written now (one store call) for built-ins and batch jobs, whose
         // later updates need it; for a local child it rides along with the store call that
-        // records the attempt's end (see `PlannedRow`).
+        // records the attempt's end (see `NewAttempt`).
         let local_host = matches!(executor_kind, "local" | "builtin").then(|| self.host.clone());
         let id = self.next_id;
         self.next_id += 1;
-        let row = PlannedRow {
+        let row = NewAttempt {
             id,
             point: point.id.clone(),
             iteration,
@@ -319,7 +102,7 @@ impl Engine<'_> {
             program_blake3: (!built.hash.is_empty()).then(|| built.hash.clone()),
             program_unknown: built.unknown.clone(),
             program_version: built.version.clone(),
-            parameters_json: serde_json::Value::Object(params).to_string(),
+            parameters_json: self.attempt_parameters(&point, &scheduled).to_string(),
             seed: uses_seed.then(|| seed.to_string()),
             created_at: store::now(),
             host: local_host,
@@ -328,14 +111,6 @@ impl Engine<'_> {
                 .map(|(role, hash, _)| (role.clone(), hash.clone()))
                 .collect(),
         };
-        if executor_kind == "local" && !stage.kind.is_builtin() {
-            self.planned.push(row);
-        } else {
-            // After everything held back (its iteration's row may be among it).
-            let (mut script, _) = self.held_back();
-            push_planned(&mut script, vec![row]);
-            script.commit(&self.pool).await?;
-        }
         self.points[p].attempts[sidx] = attempt;
         let fl = InFlight {
             point: p,
@@ -345,106 +120,396 @@ impl Engine<'_> {
             workdir: workdir.clone(),
             built,
         };
-        match &stage.kind {
-            StageKind::Mix(_) | StageKind::Filter(_) => {
-                let started = Utc::now();
-                sqlx::query("UPDATE attempts SET state = ?, started_at = ?, host = ? WHERE id = ?")
-                    .bind(AttemptState::Running)
-                    .bind(store::time_text(started))
-                    .bind(&self.host)
-                    .bind(id)
-                    .execute(&self.pool)
-                    .await?;
-                // Runs exactly the recorded argument list, in the scratch folder.
-                let result = builtins::run_argv(&argv, &workdir);
-                let ended = match result {
-                    Ok(report) => {
-                        let mut ended = self.check_outputs(
-                            &stage,
-                            &workdir,
-                            Some(report.metrics),
-                            Some(started),
-                            Some(Utc::now()),
-                            Some(self.host.clone()),
-                        );
-                        if let Ended::Ok { event, .. } = &mut ended {
-                            *event = report.event;
-                        }
-                        ended
+        self.points[p].outstanding = Some(id);
+        self.inflight.insert(id, fl.clone());
+        if stage.kind.is_builtin() {
+            self.run_builtin(row, fl, &stage, argv).await
+        } else {
+            self.launch_command(row, fl, &stage, argv).await
+        }
+    }
+
+    /// An empty scratch folder for an attempt (with `inputs/` when it has inputs).
+    fn fresh_workdir(
+        &mut self,
+        point: &str,
+        iteration: u32,
+        stage: &Stage,
+        attempt: u32,
+    ) -> Result<PathBuf> {
+        let workdir =
+            scratch::attempt_dir(&self.paths.scratch, point, iteration, &stage.name, attempt);
+        if workdir.exists() {
+            std::fs::remove_dir_all(&workdir)
+                .with_context(|| format!("{}: cannot clear the scratch dir", workdir.display()))?;
+        }
+        self.scratch.create(&workdir)?;
+        let inputs_dir = workdir.join("inputs");
+        if (!stage.inputs.is_empty() || matches!(stage.kind, StageKind::Mix(_)))
+            && !inputs_dir.is_dir()
+        {
+            std::fs::create_dir(&inputs_dir)
+                .with_context(|| format!("{}: cannot create", inputs_dir.display()))?;
+        }
+        Ok(workdir)
+    }
+
+    /// Resolve every input of the attempt to an artifact and place it under `inputs/`
+    /// (linked or cloned read-only, a private copy for `writable-inputs`; on the blocking
+    /// pool). Returns (role, hash, path relative to the scratch folder) per input placed.
+    async fn place_inputs(
+        &mut self,
+        point: &str,
+        iteration: u32,
+        stage: &Stage,
+        workdir: &Path,
+    ) -> Result<Vec<(String, String, PathBuf)>> {
+        let mut inputs: Vec<(String, String, PathBuf)> = Vec::new();
+        let mix = matches!(stage.kind, StageKind::Mix(_));
+        if stage.inputs.is_empty() && !mix {
+            return Ok(inputs);
+        }
+        let store = self.ledger.flush().await?;
+        let mut places: Vec<(String, PathBuf, bool)> = Vec::new();
+        for (role, src) in &stage.inputs {
+            let Some(hash) = input_hash(&store, point, iteration, src).await? else {
+                if stage.kind.is_builtin() || iteration == 1 {
+                    continue;
+                }
+                bail!(
+                    "internal: input `{role}` of stage `{}` at {point} iteration {iteration} has \
+                     no artifact",
+                    stage.name
+                );
+            };
+            let name = store.artifact_name(&hash).await?;
+            let ext = Path::new(&name)
+                .extension()
+                .map(|e| format!(".{}", e.to_string_lossy()))
+                .unwrap_or_default();
+            let rel = PathBuf::from(format!("inputs/{role}{ext}"));
+            places.push((
+                hash.clone(),
+                workdir.join(&rel),
+                stage.writable_inputs.contains(role),
+            ));
+            inputs.push((role.clone(), hash, rel));
+        }
+        // The mixer's own history: the state of the previous iteration's attempt.
+        if mix && iteration > 1 {
+            let src = Source::Previous {
+                stage: stage.name.clone(),
+                role: "state".into(),
+                initially: None,
+            };
+            if let Some(h) = input_hash(&store, point, iteration, &src).await? {
+                let rel = PathBuf::from("inputs/state.json");
+                places.push((h.clone(), workdir.join(&rel), false));
+                inputs.push(("state".into(), h, rel));
+            }
+        }
+        let artifacts = self.artifacts.clone();
+        tokio::task::spawn_blocking(move || -> Result<()> {
+            for (hash, dest, private) in places {
+                artifacts.place(&hash, &dest, private).with_context(|| {
+                    format!("cannot place artifact {hash} as {}", dest.display())
+                })?;
+            }
+            Ok(())
+        })
+        .await
+        .context("internal: the input placement task panicked")??;
+        Ok(inputs)
+    }
+
+    /// The parameters an attempt records: the campaign's, the point's sweep values, and the
+    /// loop-driven ones of this iteration.
+    fn attempt_parameters(
+        &self,
+        point: &PointSpec,
+        scheduled: &[(String, String)],
+    ) -> serde_json::Value {
+        let mut params = self.parameters.clone();
+        for (k, v) in &point.values {
+            params.insert(k.clone(), v.to_json());
+        }
+        for (k, v) in scheduled {
+            let value = v
+                .parse::<i64>()
+                .map(serde_json::Value::from)
+                .or_else(|_| v.parse::<f64>().map(serde_json::Value::from))
+                .unwrap_or_else(|_| serde_json::Value::from(v.clone()));
+            params.insert(k.clone(), value);
+        }
+        serde_json::Value::Object(params)
+    }
+
+    /// The argument list an attempt runs, whether it uses `{{seed}}`, and the executor kind
+    /// its row records.
+    fn attempt_argv(
+        &self,
+        ctx: &ArgvContext<'_>,
+        built: &BuiltWith,
+    ) -> Result<(Vec<String>, bool, &'static str)> {
+        let stage = ctx.stage;
+        let (template, shell) = match &stage.kind {
+            StageKind::Filter(_) | StageKind::Mix(_) => {
+                // The `rondo builtin` command that reruns it in this scratch layout.
+                let argv = builtins::BuiltinCommand::for_stage(
+                    &stage.kind,
+                    ctx.inputs.iter().map(|(r, _, f)| (r.as_str(), f.as_path())),
+                    &stage.outputs,
+                )
+                .map(|c| c.to_argv(&self.rondo_exe.0))
+                .ok_or_else(|| anyhow::anyhow!("internal: `{}` is no built-in", stage.name))?;
+                return Ok((argv, false, "builtin"));
+            }
+            StageKind::Command { template, .. } => (template, false),
+            StageKind::Shell { template, .. } => (template, true),
+        };
+        let lookup = |ns: Option<&str>, name: &str| self.placeholder(ctx, shell, ns, name);
+        let rendered = if shell {
+            template.render_shell(lookup)
+        } else {
+            template.render(lookup)
+        };
+        let mut argv = match rendered {
+            Ok(a) => a,
+            Err(e) => bail!("stage `{}`: {e}", stage.name),
+        };
+        if !shell {
+            // The first element names the program: run its resolved path.
+            if let Some(first) = argv.first_mut() {
+                first.clone_from(&built.path);
+            }
+        }
+        if let Some(launcher) = &stage.resources.launcher {
+            let t = Template::parse(launcher)
+                .map_err(|e| anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name))?;
+            let mut pre = t
+                .render(lookup)
+                .map_err(|e| anyhow::anyhow!("stage `{}`: launcher: {e}", stage.name))?;
+            pre.extend(argv);
+            argv = pre;
+        }
+        let uses_seed = template
+            .placeholders()
+            .any(|(ns, n, _)| ns.is_none() && n == "seed");
+        Ok((argv, uses_seed, self.opts.executor.kind()))
+    }
+
+    /// The value of one `{{namespace:name}}` placeholder of a command template.
+    fn placeholder(
+        &self,
+        ctx: &ArgvContext<'_>,
+        shell: bool,
+        ns: Option<&str>,
+        name: &str,
+    ) -> Option<String> {
+        let find = |list: &[(String, String)], n: &str| {
+            list.iter().find(|(k, _)| k == n).map(|(_, v)| v.clone())
+        };
+        match (ns, name) {
+            (Some("param"), n) => ctx
+                .point
+                .values
+                .iter()
+                .find(|(k, _)| k == n)
+                .map(|(_, v)| v.to_string())
+                .or_else(|| {
+                    self.campaign
+                        .parameters
+                        .iter()
+                        .find(|(k, _)| k == n)
+                        .map(|(_, v)| v.to_string())
+                })
+                .or_else(|| find(ctx.scheduled, n)),
+            (Some("input"), n) => ctx
+                .inputs
+                .iter()
+                .find(|(r, _, _)| r == n)
+                .map(|(_, _, f)| f.display().to_string()),
+            (Some("output"), n) => find(&ctx.stage.outputs, n),
+            (Some("program"), n) if shell => self
+                .campaign
+                .programs
+                .get(n)
+                .map(|r| r.path.display().to_string()),
+            (Some("point"), "id") => Some(ctx.point.id.clone()),
+            (Some("point"), "index") => Some(ctx.point.index.to_string()),
+            (None, "iteration") => Some(ctx.iteration.to_string()),
+            (None, "cpus") => Some(ctx.stage.resources.cpus().to_string()),
+            (None, "tasks") => Some(ctx.stage.resources.ntasks.unwrap_or(1).to_string()),
+            (None, "seed") => Some(ctx.seed.to_string()),
+            (None, "stage") => Some(ctx.stage.name.clone()),
+            (None, "campaign") => Some(self.campaign.name.clone()),
+            (None, "workdir") => Some(ctx.workdir.display().to_string()),
+            _ => None,
+        }
+    }
+
+    /// A built-in attempt: its row is written first (it runs in this process), then it runs
+    /// exactly the recorded argument list in the scratch folder on the blocking pool, which
+    /// also checks and stores its outputs; the result comes back to the loop.
+    async fn run_builtin(
+        &mut self,
+        row: NewAttempt,
+        fl: InFlight,
+        stage: &Stage,
+        argv: Vec<String>,
+    ) -> Result<()> {
+        let id = row.id;
+        let started = Utc::now();
+        let host = self.host.clone();
+        self.ledger
+            .write(|s| {
+                s.new_attempts(vec![row]);
+                s.builtin_started(id, store::time_text(started), host.clone());
+            })
+            .await?;
+        let job = OutputJob {
+            id,
+            stage: stage.clone(),
+            workdir: fl.workdir.clone(),
+            artifacts: self.artifacts.clone(),
+            keep_scratch: self.opts.keep_scratch,
+        };
+        let tx = self.checked_tx.clone();
+        self.storing += 1;
+        tokio::task::spawn_blocking(move || {
+            let ended = match builtins::run_argv(&argv, &job.workdir) {
+                Ok(report) => {
+                    let mut ended = check_outputs(
+                        &job.stage,
+                        &job.workdir,
+                        Some(report.metrics),
+                        Some(started),
+                        Some(Utc::now()),
+                        Some(host.clone()),
+                    );
+                    if let Ended::Ok { event, .. } = &mut ended {
+                        *event = report.event;
                     }
-                    Err(message) => Ended::Failed {
-                        kind: "builtin-failed".into(),
-                        message,
-                        exit_status: None,
-                        started: Some(started),
-                        ended: Some(Utc::now()),
-                        host: Some(self.host.clone()),
-                        free: false,
-                        state: AttemptState::Failed,
+                    ended
+                }
+                Err(message) => Ended::Failed {
+                    kind: "builtin-failed".into(),
+                    message,
+                    exit_status: None,
+                    started: Some(started),
+                    ended: Some(Utc::now()),
+                    host: Some(host),
+                    free: false,
+                    state: AttemptState::Failed,
+                },
+            };
+            let _ = tx.send(job.store(ended));
+        });
+        Ok(())
+    }
+
+    /// A command or shell stage: hand it to the executor.
+    async fn launch_command(
+        &mut self,
+        row: NewAttempt,
+        fl: InFlight,
+        stage: &Stage,
+        argv: Vec<String>,
+    ) -> Result<()> {
+        let id = row.id;
+        let local = self.opts.executor.kind() == "local";
+        if local {
+            self.ledger.plan_later(row);
+        } else {
+            self.ledger.write(|s| s.new_attempts(vec![row])).await?;
+        }
+        let point = &self.points[fl.point].spec;
+        let mut env = BTreeMap::new();
+        env.insert("RONDO_POINT".to_string(), point.id.clone());
+        env.insert("RONDO_ITERATION".to_string(), fl.iteration.to_string());
+        env.insert("RONDO_STAGE".to_string(), stage.name.clone());
+        let req = LaunchRequest {
+            attempt_id: id,
+            job_name: format!(
+                "{}.{}.i{}.{}",
+                self.campaign.name, point.id, fl.iteration, stage.name
+            ),
+            argv,
+            workdir: fl.workdir.clone(),
+            env,
+            time_limit: stage.time_limit,
+            resources: stage.resources.clone(),
+        };
+        match self.executor.launch(req).await {
+            Ok(handle) if local => {
+                self.unrecorded.insert(
+                    id,
+                    UnrecordedLaunch {
+                        handle_id: handle.id,
+                        host: handle.host,
+                        started_at: store::now(),
                     },
+                );
+            }
+            Ok(handle) => {
+                self.ledger
+                    .write(|s| s.attempt_submitted(id, handle.id, handle.host, store::now()))
+                    .await?;
+            }
+            Err(e) => {
+                let ended = Ended::Failed {
+                    kind: "launch-failed".into(),
+                    message: e.to_string(),
+                    exit_status: None,
+                    started: None,
+                    ended: Some(Utc::now()),
+                    host: None,
+                    free: false,
+                    state: AttemptState::Failed,
                 };
                 self.settle(id, Some(&fl), ended).await?;
             }
-            StageKind::Command { .. } | StageKind::Shell { .. } => {
-                let mut env = BTreeMap::new();
-                env.insert("RONDO_POINT".to_string(), point.id.clone());
-                env.insert("RONDO_ITERATION".to_string(), iteration.to_string());
-                env.insert("RONDO_STAGE".to_string(), stage.name.clone());
-                let req = LaunchRequest {
-                    attempt_id: id,
-                    job_name: format!(
-                        "{}.{}.i{}.{}",
-                        self.campaign.name, point.id, iteration, stage.name
-                    ),
-                    argv,
-                    workdir: workdir.clone(),
-                    env,
-                    time_limit: stage.time_limit,
-                    resources: stage.resources.clone(),
-                };
-                self.points[p].outstanding = Some(id);
-                self.inflight.insert(id, fl.clone());
-                match self.executor.launch(req).await {
-                    Ok(handle) if self.opts.executor.kind() == "local" => {
-                        self.unrecorded.insert(
-                            id,
-                            UnrecordedLaunch {
-                                handle_id: handle.id,
-                                host: handle.host,
-                                started_at: store::now(),
-                            },
-                        );
-                    }
-                    Ok(handle) => {
-                        sqlx::query(
-                            "UPDATE attempts SET state = ?, handle_id = ?, host = ?, started_at = coalesce(started_at, ?) \
-                             WHERE id = ? AND state = ?",
-                        )
-                        .bind(AttemptState::Submitted)
-                        .bind(&handle.id)
-                        .bind(&handle.host)
-                        .bind(store::now())
-                        .bind(id)
-                        .bind(AttemptState::Planned)
-                        .execute(&self.pool)
-                        .await?;
-                    }
-                    Err(e) => {
-                        let ended = Ended::Failed {
-                            kind: "launch-failed".into(),
-                            message: e.to_string(),
-                            exit_status: None,
-                            started: None,
-                            ended: Some(Utc::now()),
-                            host: None,
-                            free: false,
-                            state: AttemptState::Failed,
-                        };
-                        self.settle(id, Some(&fl), ended).await?;
-                    }
+        }
+        Ok(())
+    }
+}
+
+/// What rendering an attempt's argv needs to know.
+struct ArgvContext<'a> {
+    stage: &'a Stage,
+    point: &'a PointSpec,
+    iteration: u32,
+    inputs: &'a [(String, String, PathBuf)],
+    scheduled: &'a [(String, String)],
+    seed: u64,
+    workdir: &'a Path,
+}
+
+/// Resolve the artifact feeding one input of a stage.
+async fn input_hash(
+    store: &store::Flushed<'_>,
+    point: &str,
+    iteration: u32,
+    src: &Source,
+) -> Result<Option<String>> {
+    match src {
+        Source::Same { stage, role } => store.output_artifact(point, iteration, stage, role).await,
+        Source::Start(name) => store.start_artifact(name).await,
+        Source::Previous {
+            stage,
+            role,
+            initially,
+        } => {
+            if iteration > 1 {
+                store
+                    .output_artifact(point, iteration - 1, stage, role)
+                    .await
+            } else {
+                match initially {
+                    Some(name) => store.start_artifact(name).await,
+                    None => Ok(None),
                 }
             }
         }
-        Ok(())
     }
 }

@@ -34,7 +34,7 @@ use rondo_adapters::local::LocalExecutor;
 use rondo_adapters::pbs::{PbsConfig, PbsExecutor};
 use rondo_adapters::slurm::{SlurmConfig, SlurmExecutor};
 use rondo_adapters::template::Template;
-use sqlx::{Row, SqlitePool};
+use sqlx::SqlitePool;
 use tokio::sync::mpsc;
 
 use crate::artifacts::{hash_file, ArtifactStore};
@@ -56,10 +56,11 @@ mod workspace;
 
 use iterate::record_verdict;
 use programs::ProgramCache;
+use settle::{check_outputs, Checked, OutputJob};
+use store::attempts::{LaunchFields, NewAttempt, StoredOutput};
 pub use workspace::{prepare_workspace, values_json, PreparedWorkspace};
 
-/// The rondo version recorded with every attempt.
-pub const RONDO_VERSION: &str = env!("CARGO_PKG_VERSION");
+pub use crate::RONDO_VERSION;
 
 /// Which executor runs the command stages.
 #[derive(Debug, Clone)]
@@ -306,34 +307,6 @@ struct UnrecordedLaunch {
     started_at: String,
 }
 
-/// The planned row of a local attempt, not yet written. A local child is started before its
-/// row reaches the store; the row goes into the store call that records the attempt's end
-/// (or the next tick, or a stop), so a short attempt costs one store call instead of two.
-/// A crash in between leaves a child with no row: the next run ends it by its environment
-/// tag before starting anything (`end_untracked_children`), and the attempt number and id
-/// are simply used again.
-#[derive(Debug, Clone)]
-struct PlannedRow {
-    id: i64,
-    point: String,
-    iteration: u32,
-    stage: String,
-    attempt: u32,
-    argv_json: String,
-    workdir: String,
-    executor: &'static str,
-    program_path: String,
-    program_blake3: Option<String>,
-    /// Why the program's hash is unknown (`program_blake3` is then NULL).
-    program_unknown: Option<String>,
-    program_version: Option<String>,
-    parameters_json: String,
-    seed: Option<String>,
-    created_at: String,
-    host: Option<String>,
-    inputs: Vec<(String, String)>,
-}
-
 /// Successes of attempts that ran shorter than this are committed together (at the next
 /// half-second tick, after [`BATCH_MAX`] of them, or before the engine next reads the
 /// store); longer ones at once. A crash loses at most half a second of short work, which
@@ -342,51 +315,6 @@ const SHORT_ATTEMPT: Duration = Duration::from_secs(1);
 
 /// Most successes held in one group commit.
 const BATCH_MAX: usize = 256;
-
-/// Append the INSERTs of planned attempt rows (and their inputs) to a store script.
-fn push_planned(script: &mut store::Script, rows: Vec<PlannedRow>) {
-    if rows.is_empty() {
-        return;
-    }
-    script.stmt(&format!(
-        "INSERT INTO attempts(id, point, iteration, stage, attempt, state, argv_json, workdir, executor, \
-         program_path, program_blake3, program_unknown, program_version, parameters_json, seed, rondo_version, \
-         created_at, host) VALUES {}",
-        vec!["(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)"; rows.len()].join(",")
-    ));
-    let mut inputs: Vec<(i64, String, String)> = Vec::new();
-    for r in rows {
-        inputs.extend(r.inputs.into_iter().map(|(role, h)| (r.id, role, h)));
-        script
-            .bind(r.id)
-            .bind(r.point)
-            .bind(i64::from(r.iteration))
-            .bind(r.stage)
-            .bind(i64::from(r.attempt))
-            .bind(AttemptState::Planned)
-            .bind(r.argv_json)
-            .bind(r.workdir)
-            .bind(r.executor)
-            .bind(r.program_path)
-            .bind(r.program_blake3)
-            .bind(r.program_unknown)
-            .bind(r.program_version)
-            .bind(r.parameters_json)
-            .bind(r.seed)
-            .bind(RONDO_VERSION)
-            .bind(r.created_at)
-            .bind(r.host);
-    }
-    if !inputs.is_empty() {
-        script.stmt(&format!(
-            "INSERT INTO attempt_inputs(attempt_id, role, artifact) VALUES {}",
-            store::rows(inputs.len(), 3)
-        ));
-        for (id, role, h) in inputs {
-            script.bind(id).bind(role).bind(h);
-        }
-    }
-}
 
 /// An attempt in flight.
 #[derive(Debug, Clone)]
@@ -404,6 +332,8 @@ struct InFlight {
 enum Ended {
     Ok {
         metrics: Vec<Metric>,
+        /// The outputs, stored as artifacts (empty until stored).
+        outs: Vec<StoredOutput>,
         started: Option<DateTime<Utc>>,
         ended: Option<DateTime<Utc>>,
         host: Option<String>,
@@ -427,7 +357,8 @@ struct Engine<'a> {
     campaign: &'a Campaign,
     opts: &'a RunOptions,
     paths: Paths,
-    pool: SqlitePool,
+    /// The store: every write and read goes through it (reads only after a flush).
+    ledger: store::Ledger,
     artifacts: ArtifactStore,
     executor: Arc<dyn Executor>,
     host: String,
@@ -441,17 +372,16 @@ struct Engine<'a> {
     progress: Progress,
     parameters: serde_json::Map<String, serde_json::Value>,
     unrecorded: HashMap<i64, UnrecordedLaunch>,
-    /// Planned rows of started local attempts, not yet written (see [`PlannedRow`]).
-    planned: Vec<PlannedRow>,
-    /// Records of short successes not yet committed (group commit, see [`SHORT_ATTEMPT`]),
-    /// and how many.
-    batch: store::Script,
-    batched: usize,
     /// The id the next attempt gets (ids are chosen here: the workspace lock makes this
     /// orchestrator the only writer of attempts).
     next_id: i64,
     workspace_id: String,
     scratch: scratch::Pool,
+    /// Where the blocking pool hands back attempts whose outputs it checked and stored.
+    checked_tx: mpsc::UnboundedSender<Checked>,
+    /// Attempts on the blocking pool (output checks and storing, built-ins): in flight, but
+    /// holding no executor slot.
+    storing: usize,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -489,11 +419,12 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         parameters.insert(k.clone(), v.to_json());
     }
     let paths_scratch = paths.scratch.clone();
+    let (checked_tx, checked_rx) = mpsc::unbounded_channel::<Checked>();
     let mut engine = Engine {
         campaign,
         opts,
         paths,
-        pool: ws.pool.clone(),
+        ledger: store::Ledger::new(ws.pool.clone()),
         artifacts: ws.artifacts.clone(),
         executor,
         host: store::hostname(),
@@ -505,29 +436,28 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         progress,
         parameters,
         unrecorded: HashMap::new(),
-        planned: Vec::new(),
-        batch: store::Script::new(),
-        batched: 0,
         next_id: 0,
         workspace_id: ws.workspace_id.clone(),
         scratch: scratch::Pool::open(&paths_scratch)?,
+        checked_tx,
+        storing: 0,
     };
-    store::event(
-        &engine.pool,
-        "run-started",
-        None,
-        None,
-        None,
-        &format!(
-            "pid {} on {}; executor {}; jobs {}",
-            std::process::id(),
-            engine.host,
-            opts.executor.kind(),
-            opts.jobs
-        ),
-    )
-    .await?;
-    let result = engine.main(rx).await;
+    engine
+        .event(
+            "run-started",
+            None,
+            None,
+            None,
+            &format!(
+                "pid {} on {}; executor {}; jobs {}",
+                std::process::id(),
+                engine.host,
+                opts.executor.kind(),
+                opts.jobs
+            ),
+        )
+        .await?;
+    let result = engine.main(rx, checked_rx).await;
     let summary = match result {
         Ok(s) => s,
         Err(e) => {
@@ -535,43 +465,38 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
                 .executor
                 .shutdown(Shutdown::Terminate { grace: opts.grace })
                 .await;
-            let _ = store::event(
-                &engine.pool,
-                "run-error",
-                None,
-                None,
-                None,
-                &format!("{e:#}"),
-            )
-            .await;
+            let _ = engine
+                .event("run-error", None, None, None, &format!("{e:#}"))
+                .await;
             engine.progress.finish();
             return Err(e);
         }
     };
-    store::event(
-        &engine.pool,
-        "run-ended",
-        None,
-        None,
-        None,
-        &format!("{:?}", summary.by_text()),
-    )
-    .await?;
+    engine
+        .event(
+            "run-ended",
+            None,
+            None,
+            None,
+            &format!("{:?}", summary.by_text()),
+        )
+        .await?;
     engine.progress.finish();
-    engine.pool.close().await;
+    engine.ledger.close().await;
     drop(ws);
     Ok(summary)
 }
 
 impl Engine<'_> {
-    async fn main(&mut self, mut rx: mpsc::UnboundedReceiver<Completion>) -> Result<RunSummary> {
+    async fn main(
+        &mut self,
+        mut rx: mpsc::UnboundedReceiver<Completion>,
+        mut checked: mpsc::UnboundedReceiver<Checked>,
+    ) -> Result<RunSummary> {
         self.restore().await?;
         self.reconcile().await?;
         self.end_untracked_children().await?;
-        self.next_id =
-            sqlx::query_scalar::<_, i64>("SELECT coalesce(max(id), 0) + 1 FROM attempts")
-                .fetch_one(&self.pool)
-                .await?;
+        self.next_id = self.ledger.flush().await?.next_attempt_id().await?;
         let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
             .context("cannot install the SIGINT handler")?;
         let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
@@ -604,6 +529,10 @@ impl Engine<'_> {
                     Some(c) => self.on_completion(c).await?,
                     None => bail!("the executor's completion channel closed"),
                 },
+                c = checked.recv() => match c {
+                    Some(c) => self.on_checked(c).await?,
+                    None => bail!("internal: the output channel closed"),
+                },
                 _ = sigint.recv() => { interrupted = true; break; }
                 _ = sigterm.recv() => { interrupted = true; break; }
                 _ = async {
@@ -621,31 +550,31 @@ impl Engine<'_> {
                 }
             }
         }
-        self.flush().await?;
+        self.ledger.flush().await?;
         let mut continued_as = None;
         if interrupted || cancelled.is_some() {
-            self.stop_everything(&mut rx, cancelled.as_ref()).await?;
+            self.stop_everything(&mut rx, &mut checked, cancelled.as_ref())
+                .await?;
             if warned {
                 continued_as = self.continue_allocation().await?;
             }
         } else if let Some(eos) = &self.campaign.eos {
+            let store = self.ledger.flush().await?;
             let doc =
-                crate::analysis::record_eos(&self.pool, &self.paths.root, &self.artifacts, eos)
+                crate::analysis::record_eos(store.pool(), &self.paths.root, &self.artifacts, eos)
                     .await?;
             for line in crate::analysis::eos_lines(&doc) {
                 self.progress.line(line);
             }
         }
-        let mut states = BTreeMap::new();
-        for (state, n) in sqlx::query_as::<_, (PointState, i64)>(
-            "SELECT state, count(*) AS n FROM points GROUP BY state",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .context("reading the points' states")?
-        {
-            states.insert(state, n as usize);
-        }
+        let states: BTreeMap<PointState, usize> = self
+            .ledger
+            .flush()
+            .await?
+            .point_state_counts()
+            .await?
+            .into_iter()
+            .collect();
         Ok(RunSummary {
             states,
             interrupted,
@@ -653,6 +582,20 @@ impl Engine<'_> {
             cancelled_because: cancelled.map(|r| r.reason),
             continued_as,
         })
+    }
+
+    /// Append an event to the log (after everything held back).
+    async fn event(
+        &mut self,
+        kind: &str,
+        point: Option<&str>,
+        iteration: Option<u32>,
+        attempt: Option<i64>,
+        detail: &str,
+    ) -> Result<()> {
+        self.ledger
+            .write(|s| s.event(kind, point, iteration, attempt, detail))
+            .await
     }
 
     fn show(&mut self) {

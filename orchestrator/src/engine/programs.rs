@@ -163,7 +163,6 @@ impl Engine<'_> {
         before: &BuiltWith,
         now: &BuiltWith,
     ) -> Result<()> {
-        self.flush().await?;
         let iteration = self.points[p].iteration;
         let what = match &stage.kind {
             StageKind::Shell { .. } => format!(

@@ -9,16 +9,16 @@ pub(super) fn launch_fields(
     started: Option<DateTime<Utc>>,
     host: Option<String>,
     launch: Option<UnrecordedLaunch>,
-) -> (Option<String>, Option<String>, Option<String>) {
+) -> LaunchFields {
     let (l_started, l_host, l_handle) = match launch {
         Some(l) => (Some(l.started_at), Some(l.host), Some(l.handle_id)),
         None => (None, None, None),
     };
-    (
-        started.map(store::time_text).or(l_started),
-        host.or(l_host),
-        l_handle,
-    )
+    LaunchFields {
+        started: started.map(store::time_text).or(l_started),
+        host: host.or(l_host),
+        handle: l_handle,
+    }
 }
 
 pub(super) fn first_line(s: &str) -> &str {
@@ -42,53 +42,6 @@ pub(super) fn stderr_tail(workdir: &Path) -> String {
 }
 
 impl Engine<'_> {
-    /// Output checks after a clean exit (or a built-in's end).
-    pub(super) fn check_outputs(
-        &self,
-        stage: &Stage,
-        workdir: &Path,
-        builtin_metrics: Option<Vec<Metric>>,
-        started: Option<DateTime<Utc>>,
-        ended: Option<DateTime<Utc>>,
-        host: Option<String>,
-    ) -> Ended {
-        let fail = |inv: validate::Invalid| Ended::Failed {
-            kind: inv.kind.to_string(),
-            message: inv.message,
-            exit_status: Some(0),
-            started,
-            ended,
-            host: host.clone(),
-            free: false,
-            state: AttemptState::Failed,
-        };
-        for (role, file) in &stage.outputs {
-            if let Err(inv) =
-                validate::check_output(&workdir.join(file), role, stage.allow_nonfinite)
-            {
-                return fail(inv);
-            }
-        }
-        let metrics = match builtin_metrics {
-            Some(m) => m,
-            None => match validate::read_metrics(
-                workdir,
-                &stage.required_metrics,
-                stage.allow_nonfinite,
-            ) {
-                Ok(m) => m,
-                Err(inv) => return fail(inv),
-            },
-        };
-        Ended::Ok {
-            metrics,
-            started,
-            ended,
-            host,
-            event: None,
-        }
-    }
-
     pub(super) async fn on_completion(&mut self, c: Completion) -> Result<()> {
         let Some(fl) = self.inflight.get(&c.attempt_id).cloned() else {
             tracing::warn!(
@@ -113,14 +66,24 @@ impl Engine<'_> {
             state,
         };
         let ended = match &c.outcome {
-            Outcome::Exited { code: 0 } => self.check_outputs(
-                &stage,
-                &fl.workdir,
-                None,
-                c.started_at,
-                c.ended_at,
-                c.host.clone(),
-            ),
+            Outcome::Exited { code: 0 } => {
+                // Checked and stored on the blocking pool; the result comes back to the loop.
+                let job = OutputJob {
+                    id: c.attempt_id,
+                    stage: stage.clone(),
+                    workdir: fl.workdir.clone(),
+                    artifacts: self.artifacts.clone(),
+                    keep_scratch: self.opts.keep_scratch,
+                };
+                let tx = self.checked_tx.clone();
+                let (started, ended, host) = (c.started_at, c.ended_at, c.host.clone());
+                self.storing += 1;
+                tokio::task::spawn_blocking(move || {
+                    let ended = check_outputs(&job.stage, &job.workdir, None, started, ended, host);
+                    let _ = tx.send(job.store(ended));
+                });
+                return Ok(());
+            }
             Outcome::Exited { code } => failed(
                 "exit-status",
                 format!("exited with status {code}{}", stderr_tail(&fl.workdir)),
@@ -190,6 +153,20 @@ impl Engine<'_> {
         self.settle(c.attempt_id, Some(&fl), ended).await
     }
 
+    /// An attempt's outputs were checked and stored on the blocking pool (or refused).
+    pub(super) async fn on_checked(&mut self, c: Checked) -> Result<()> {
+        self.storing = self.storing.saturating_sub(1);
+        let ended = c.result?;
+        let Some(fl) = self.inflight.get(&c.id).cloned() else {
+            tracing::warn!(
+                attempt = c.id,
+                "checked outputs of an attempt not in flight"
+            );
+            return Ok(());
+        };
+        self.settle(c.id, Some(&fl), ended).await
+    }
+
     /// Record the end of an attempt and move its point on.
     pub(super) async fn settle(
         &mut self,
@@ -198,158 +175,27 @@ impl Engine<'_> {
         ended: Ended,
     ) -> Result<()> {
         self.inflight.remove(&id);
-        let stage = fl.map(|f| self.campaign.stages[f.stage].clone());
         match ended {
             Ended::Ok {
                 metrics,
+                outs,
                 started,
                 ended,
                 host,
                 event,
             } => {
-                let (Some(fl), Some(stage)) = (fl, stage) else {
+                let Some(fl) = fl else {
                     bail!("internal: success without a stage");
                 };
-                // Artifacts into the store first, then one transaction.
-                let mut outs: Vec<(String, String, u64, String)> = Vec::new();
-                let mut files: Vec<(String, String)> = stage.outputs.clone();
-                if matches!(stage.kind, StageKind::Mix(_)) {
-                    files.push(("state".into(), builtins::STATE_FILE.into()));
-                }
-                if fl.workdir.join(validate::METRICS_FILE).is_file() {
-                    files.push(("metrics".into(), validate::METRICS_FILE.into()));
-                }
-                for (role, file) in &files {
-                    let path = fl.workdir.join(file);
-                    // Linked into the store (no copy; read-only from now on) unless the
-                    // user keeps the scratch folders to work in them.
-                    let stored = if self.opts.keep_scratch {
-                        self.artifacts.put_file(&path)
-                    } else {
-                        self.artifacts.put_file_linked(&path)
-                    };
-                    let (h, size) = stored
-                        .with_context(|| format!("{}: cannot store the output", path.display()))?;
-                    outs.push((role.clone(), h, size, file.clone()));
-                }
-                let point_id = self.points[fl.point].spec.id.clone();
-                let (launch_started, launch_host, launch_handle) =
-                    launch_fields(started, host, self.unrecorded.remove(&id));
-                // The iteration's last stage: its verdict goes into the same transaction.
-                let last = fl.stage + 1 == self.campaign.stages.len();
-                if last {
-                    self.ensure_history(fl.point).await?;
-                }
-                if let Some(h) = self.points[fl.point].history.as_mut() {
-                    let at = h.entry(fl.iteration).or_default();
-                    for m in &metrics {
-                        at.insert(
-                            format!("{}.{}", stage.name, m.name),
-                            Sample {
-                                value: m.value,
-                                error: m.error,
-                            },
-                        );
-                    }
-                }
-                let verdict = if last {
-                    Some(self.judge(fl.point)?)
-                } else {
-                    None
+                let done = Success {
+                    metrics,
+                    outs,
+                    started,
+                    ended,
+                    host,
+                    event,
                 };
-                // Everything of this success (and the iteration's verdict) in one script, after
-                // the planned rows not yet written (this attempt's among them, if it was short).
-                let (mut script, held) = self.held_back();
-                if !outs.is_empty() {
-                    let now = store::now();
-                    script.stmt(&format!(
-                        "INSERT INTO artifacts(hash, size, original_name, created_at) VALUES {} \
-                         ON CONFLICT(hash) DO NOTHING",
-                        store::rows(outs.len(), 4)
-                    ));
-                    for (_, h, size, file) in &outs {
-                        script
-                            .bind(h.clone())
-                            .bind(i64::try_from(*size).unwrap_or(i64::MAX))
-                            .bind(file.clone())
-                            .bind(now.clone());
-                    }
-                    script.stmt(&format!(
-                        "INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES {}",
-                        store::rows(outs.len(), 3)
-                    ));
-                    for (role, h, _, _) in &outs {
-                        script.bind(id).bind(role.clone()).bind(h.clone());
-                    }
-                }
-                for chunk in metrics.chunks(200) {
-                    script.stmt(&format!(
-                        "INSERT INTO metrics(attempt_id, name, value, error) VALUES {}",
-                        store::rows(chunk.len(), 4)
-                    ));
-                    for m in chunk {
-                        script
-                            .bind(id)
-                            .bind(format!("{}.{}", stage.name, m.name))
-                            .bind(m.value)
-                            .bind(m.error);
-                    }
-                }
-                script
-                    .stmt(
-                        "UPDATE attempts SET state = ?, exit_status = 0, ended_at = ?, \
-                         started_at = coalesce(?, started_at), host = coalesce(?, host), \
-                         handle_id = coalesce(?, handle_id) WHERE id = ?",
-                    )
-                    .bind(AttemptState::Succeeded)
-                    .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
-                    .bind(launch_started)
-                    .bind(launch_host)
-                    .bind(launch_handle)
-                    .bind(id);
-                if let Some(v) = &verdict {
-                    record_verdict(&mut script, &point_id, v)?;
-                }
-                if let Some(ev) = &event {
-                    store::event_stmt(
-                        &mut script,
-                        "mixer",
-                        Some(&point_id),
-                        Some(fl.iteration),
-                        Some(id),
-                        ev,
-                    );
-                }
-                let short = match (started, ended) {
-                    (Some(a), Some(b)) => (b - a).to_std().is_ok_and(|d| d < SHORT_ATTEMPT),
-                    _ => false,
-                };
-                if short && held + 1 < BATCH_MAX {
-                    self.batch = script;
-                    self.batched = held + 1;
-                } else {
-                    script.commit(&self.pool).await?;
-                }
-                if let Some(ev) = event {
-                    self.progress
-                        .line(format!("{point_id} iteration {}: {ev}", fl.iteration));
-                }
-                if !self.opts.keep_scratch {
-                    self.scratch.recycle(&fl.workdir);
-                }
-                let pr = &mut self.points[fl.point];
-                pr.outstanding = None;
-                pr.next_stage = fl.stage + 1;
-                pr.built[fl.stage] = Some(BuiltWith {
-                    iteration: fl.iteration,
-                    ..fl.built.clone()
-                });
-                if let Some(v) = verdict {
-                    self.apply_verdict(fl.point, v);
-                }
-                if self.points[fl.point].phase == PointPhase::Active {
-                    self.ready.push_back(fl.point);
-                }
+                self.settle_success(id, fl, done).await
             }
             Ended::Failed {
                 kind,
@@ -361,112 +207,305 @@ impl Engine<'_> {
                 free,
                 state,
             } => {
-                self.flush().await?;
-                let (launch_started, launch_host, launch_handle) =
-                    launch_fields(started, host, self.unrecorded.remove(&id));
-                sqlx::query(
-                    "UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, exit_status = ?, \
-                     ended_at = ?, started_at = coalesce(?, started_at), host = coalesce(?, host), \
-                     handle_id = coalesce(?, handle_id) WHERE id = ?",
-                )
-                .bind(state)
-                .bind(&kind)
-                .bind(&message)
-                .bind(exit_status)
-                .bind(store::time_text(ended.unwrap_or_else(Utc::now)))
-                .bind(launch_started)
-                .bind(launch_host)
-                .bind(launch_handle)
-                .bind(id)
-                .execute(&self.pool)
-                .await?;
-                let Some(fl) = fl else { return Ok(()) };
-                let Some(stage) = stage else { return Ok(()) };
-                let point_id = self.points[fl.point].spec.id.clone();
-                store::event(
-                    &self.pool,
-                    &format!("attempt-{state}"),
-                    Some(&point_id),
-                    Some(fl.iteration),
-                    Some(id),
-                    &format!("{kind}: {message}"),
-                )
-                .await?;
-                if free {
-                    let pr = &mut self.points[fl.point];
-                    pr.outstanding = None;
-                    self.ready.push_back(fl.point);
-                    return Ok(());
-                }
-                self.progress.line(format!(
-                    "{point_id} iteration {} stage {} attempt {} failed ({kind}): {}",
-                    fl.iteration,
-                    stage.name,
-                    fl.attempt,
-                    first_line(&message)
-                ));
-                let failures: i64 = sqlx::query_scalar(
-                    "SELECT count(*) FROM attempts WHERE point = ? AND iteration = ? AND stage = ? AND state = ?",
-                )
-                .bind(&point_id)
-                .bind(i64::from(fl.iteration))
-                .bind(&stage.name)
-                .bind(AttemptState::Failed)
-                .fetch_one(&self.pool)
-                .await?;
-                let pr = &mut self.points[fl.point];
-                pr.outstanding = None;
-                if failures > i64::from(stage.retries) {
-                    let reason = format!(
-                        "stage `{}` failed at iteration {} after {failures} attempt(s); last: {kind}: {}",
-                        stage.name,
-                        fl.iteration,
-                        first_line(&message)
-                    );
-                    self.fail_point(fl.point, fl.iteration, Some(id), &reason, None)
-                        .await?;
-                } else {
-                    self.ready.push_back(fl.point);
-                }
+                let failure = store::attempts::Failure {
+                    state,
+                    kind: &kind,
+                    message: &message,
+                    exit_status,
+                    ended: store::time_text(ended.unwrap_or_else(Utc::now)),
+                };
+                let launch = launch_fields(started, host, self.unrecorded.remove(&id));
+                self.settle_failure(id, fl, &failure, launch, free).await
             }
+        }
+    }
+
+    /// A success: its outputs (stored already), metrics and, for the iteration's last stage,
+    /// the verdict, in one script; held back for a group commit when the attempt was short.
+    async fn settle_success(&mut self, id: i64, fl: &InFlight, done: Success) -> Result<()> {
+        let stage = self.campaign.stages[fl.stage].clone();
+        let point_id = self.points[fl.point].spec.id.clone();
+        let launch = launch_fields(done.started, done.host, self.unrecorded.remove(&id));
+        // The iteration's last stage: its verdict goes into the same transaction.
+        let last = fl.stage + 1 == self.campaign.stages.len();
+        if last {
+            self.ensure_history(fl.point).await?;
+        }
+        let metrics: Vec<(String, f64, Option<f64>)> = done
+            .metrics
+            .iter()
+            .map(|m| (format!("{}.{}", stage.name, m.name), m.value, m.error))
+            .collect();
+        if let Some(h) = self.points[fl.point].history.as_mut() {
+            let at = h.entry(fl.iteration).or_default();
+            for (name, value, error) in &metrics {
+                at.insert(
+                    name.clone(),
+                    Sample {
+                        value: *value,
+                        error: *error,
+                    },
+                );
+            }
+        }
+        let verdict = if last {
+            Some(self.judge(fl.point)?)
+        } else {
+            None
+        };
+        // Everything of this success (and the iteration's verdict) in one script, after
+        // the records held back (this attempt's planned row among them, if it was short).
+        let (mut script, held) = self.ledger.begin();
+        script.attempt_outputs(id, &done.outs, &store::now());
+        script.attempt_metrics(id, &metrics);
+        script.attempt_succeeded(
+            id,
+            store::time_text(done.ended.unwrap_or_else(Utc::now)),
+            launch,
+        );
+        if let Some(v) = &verdict {
+            record_verdict(
+                &mut script,
+                &point_id,
+                v,
+                serde_json::to_string(&v.decision)?,
+            );
+        }
+        if let Some(ev) = &done.event {
+            script.event("mixer", Some(&point_id), Some(fl.iteration), Some(id), ev);
+        }
+        let short = match (done.started, done.ended) {
+            (Some(a), Some(b)) => (b - a).to_std().is_ok_and(|d| d < SHORT_ATTEMPT),
+            _ => false,
+        };
+        if short && held + 1 < BATCH_MAX {
+            self.ledger.hold(script, held + 1);
+        } else {
+            self.ledger.commit(script).await?;
+        }
+        if let Some(ev) = done.event {
+            self.progress
+                .line(format!("{point_id} iteration {}: {ev}", fl.iteration));
+        }
+        if !self.opts.keep_scratch {
+            self.scratch.recycle(&fl.workdir);
+        }
+        let pr = &mut self.points[fl.point];
+        pr.outstanding = None;
+        pr.next_stage = fl.stage + 1;
+        pr.built[fl.stage] = Some(BuiltWith {
+            iteration: fl.iteration,
+            ..fl.built.clone()
+        });
+        if let Some(v) = verdict {
+            self.apply_verdict(fl.point, v);
+        }
+        if self.points[fl.point].phase == PointPhase::Active {
+            self.ready.push_back(fl.point);
         }
         Ok(())
     }
 
-    /// Write the launches of local attempts still running (see [`UnrecordedLaunch`]).
-    pub(super) async fn record_launches(&mut self) -> Result<()> {
-        if self.unrecorded.is_empty() && self.planned.is_empty() && self.batch.is_empty() {
+    /// A failure (or a loss, or a cancel): recorded at once with its event; a real failure
+    /// uses up one of the stage's retries, and the last one fails the point.
+    async fn settle_failure(
+        &mut self,
+        id: i64,
+        fl: Option<&InFlight>,
+        f: &store::attempts::Failure<'_>,
+        launch: LaunchFields,
+        free: bool,
+    ) -> Result<()> {
+        let what = format!("{}: {}", f.kind, f.message);
+        let point = fl.map(|fl| (fl, self.points[fl.point].spec.id.clone()));
+        self.ledger
+            .write(|s| {
+                s.attempt_ended_badly(id, f, launch);
+                if let Some((fl, point_id)) = &point {
+                    s.event(
+                        &format!("attempt-{}", f.state),
+                        Some(point_id),
+                        Some(fl.iteration),
+                        Some(id),
+                        &what,
+                    );
+                }
+            })
+            .await?;
+        let Some((fl, point_id)) = point else {
+            return Ok(());
+        };
+        let stage = &self.campaign.stages[fl.stage];
+        self.points[fl.point].outstanding = None;
+        if free {
+            self.ready.push_back(fl.point);
             return Ok(());
         }
-        let (mut script, _) = self.held_back();
-        for (id, l) in self.unrecorded.drain() {
-            script
-                .stmt(
-                    "UPDATE attempts SET state = ?, handle_id = ?, host = ?, \
-                     started_at = coalesce(started_at, ?) WHERE id = ? AND state = ?",
-                )
-                .bind(AttemptState::Running)
-                .bind(l.handle_id)
-                .bind(l.host)
-                .bind(l.started_at)
-                .bind(id)
-                .bind(AttemptState::Planned);
+        self.progress.line(format!(
+            "{point_id} iteration {} stage {} attempt {} failed ({}): {}",
+            fl.iteration,
+            stage.name,
+            fl.attempt,
+            f.kind,
+            first_line(f.message)
+        ));
+        let failures = self
+            .ledger
+            .flush()
+            .await?
+            .failed_attempts(&point_id, fl.iteration, &stage.name)
+            .await?;
+        if failures > i64::from(stage.retries) {
+            let reason = format!(
+                "stage `{}` failed at iteration {} after {failures} attempt(s); last: {}: {}",
+                stage.name,
+                fl.iteration,
+                f.kind,
+                first_line(f.message)
+            );
+            self.fail_point(fl.point, fl.iteration, Some(id), &reason, None)
+                .await?;
+        } else {
+            self.ready.push_back(fl.point);
         }
-        script.commit(&self.pool).await
+        Ok(())
     }
 
-    /// Commit what is held back: grouped successes and planned rows not yet written. Called
-    /// before the engine reads the store, so it always reads what it has decided.
-    pub(super) async fn flush(&mut self) -> Result<()> {
-        let (script, _) = self.held_back();
-        script.commit(&self.pool).await
+    /// Write the launches of local attempts still running (see [`UnrecordedLaunch`]), with
+    /// everything held back.
+    pub(super) async fn record_launches(&mut self) -> Result<()> {
+        if self.unrecorded.is_empty() && self.ledger.is_idle() {
+            return Ok(());
+        }
+        let launches: Vec<(i64, UnrecordedLaunch)> = self.unrecorded.drain().collect();
+        self.ledger
+            .write(|s| {
+                for (id, l) in launches {
+                    s.attempt_running(id, l.handle_id, l.host, l.started_at);
+                }
+            })
+            .await
+    }
+}
+
+/// A success as settle records it.
+struct Success {
+    metrics: Vec<Metric>,
+    outs: Vec<StoredOutput>,
+    started: Option<DateTime<Utc>>,
+    ended: Option<DateTime<Utc>>,
+    host: Option<String>,
+    event: Option<String>,
+}
+
+/// An attempt's outputs to check and store, off the engine's thread.
+pub(super) struct OutputJob {
+    pub(super) id: i64,
+    pub(super) stage: Stage,
+    pub(super) workdir: PathBuf,
+    pub(super) artifacts: ArtifactStore,
+    pub(super) keep_scratch: bool,
+}
+
+/// What the blocking pool hands back to the loop.
+pub(super) struct Checked {
+    id: i64,
+    /// The attempt's end (with its outputs stored, if it succeeded), or why storing failed
+    /// (which ends the run: the store cannot take files).
+    result: Result<Ended>,
+}
+
+impl OutputJob {
+    /// Store the outputs of a checked success (linked in, no copy, read-only from then on,
+    /// unless the user keeps the scratch folders to work in them).
+    pub(super) fn store(self, ended: Ended) -> Checked {
+        let result = match ended {
+            Ended::Ok {
+                metrics,
+                started,
+                ended,
+                host,
+                event,
+                ..
+            } => self.store_files().map(|outs| Ended::Ok {
+                metrics,
+                outs,
+                started,
+                ended,
+                host,
+                event,
+            }),
+            failed => Ok(failed),
+        };
+        Checked {
+            id: self.id,
+            result,
+        }
     }
 
-    /// Take what is held back as the start of a new script: the grouped successes (and how
-    /// many), then the planned rows not yet written. The caller commits it or holds it again.
-    pub(super) fn held_back(&mut self) -> (store::Script, usize) {
-        let mut script = std::mem::take(&mut self.batch);
-        push_planned(&mut script, std::mem::take(&mut self.planned));
-        (script, std::mem::take(&mut self.batched))
+    fn store_files(&self) -> Result<Vec<StoredOutput>> {
+        let mut files: Vec<(String, String)> = self.stage.outputs.clone();
+        if matches!(self.stage.kind, StageKind::Mix(_)) {
+            files.push(("state".into(), builtins::STATE_FILE.into()));
+        }
+        if self.workdir.join(validate::METRICS_FILE).is_file() {
+            files.push(("metrics".into(), validate::METRICS_FILE.into()));
+        }
+        let mut outs = Vec::with_capacity(files.len());
+        for (role, file) in files {
+            let path = self.workdir.join(&file);
+            let stored = if self.keep_scratch {
+                self.artifacts.put_file(&path)
+            } else {
+                self.artifacts.put_file_linked(&path)
+            };
+            let (h, size) =
+                stored.with_context(|| format!("{}: cannot store the output", path.display()))?;
+            outs.push((role, h, size, file));
+        }
+        Ok(outs)
+    }
+}
+
+/// Output checks after a clean exit (or a built-in's end).
+pub(super) fn check_outputs(
+    stage: &Stage,
+    workdir: &Path,
+    builtin_metrics: Option<Vec<Metric>>,
+    started: Option<DateTime<Utc>>,
+    ended: Option<DateTime<Utc>>,
+    host: Option<String>,
+) -> Ended {
+    let fail = |inv: validate::Invalid| Ended::Failed {
+        kind: inv.kind.to_string(),
+        message: inv.message,
+        exit_status: Some(0),
+        started,
+        ended,
+        host: host.clone(),
+        free: false,
+        state: AttemptState::Failed,
+    };
+    for (role, file) in &stage.outputs {
+        if let Err(inv) = validate::check_output(&workdir.join(file), role, stage.allow_nonfinite) {
+            return fail(inv);
+        }
+    }
+    let metrics = match builtin_metrics {
+        Some(m) => m,
+        None => {
+            match validate::read_metrics(workdir, &stage.required_metrics, stage.allow_nonfinite) {
+                Ok(m) => m,
+                Err(inv) => return fail(inv),
+            }
+        }
+    };
+    Ended::Ok {
+        metrics,
+        outs: Vec::new(),
+        started,
+        ended,
+        host,
+        event: None,
     }
 }

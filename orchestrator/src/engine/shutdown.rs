@@ -30,15 +30,8 @@ impl Engine<'_> {
             "allocation job {} ends; continuation {next} submitted as job {id}",
             env.job_id.as_deref().unwrap_or("?")
         );
-        store::event(
-            &self.pool,
-            "allocation-continued",
-            None,
-            None,
-            None,
-            &detail,
-        )
-        .await?;
+        self.event("allocation-continued", None, None, None, &detail)
+            .await?;
         self.progress.line(detail);
         Ok(Some(id))
     }
@@ -48,6 +41,7 @@ impl Engine<'_> {
     pub(super) async fn stop_everything(
         &mut self,
         rx: &mut mpsc::UnboundedReceiver<Completion>,
+        checked: &mut mpsc::UnboundedReceiver<Checked>,
         request: Option<&CancelRequest>,
     ) -> Result<()> {
         let cancelled = request.is_some();
@@ -63,8 +57,7 @@ impl Engine<'_> {
             Some(r) => format!("rondo cancel: {} (asked by {} at {})", r.reason, r.by, r.at),
             None => why.to_string(),
         };
-        store::event(
-            &self.pool,
+        self.event(
             if cancelled {
                 "cancel"
             } else {
@@ -96,6 +89,14 @@ impl Engine<'_> {
             .shutdown(mode)
             .await
             .map_err(|e| anyhow::anyhow!("shutting down the executor: {e}"))?;
+        // Attempts whose outputs are being checked and stored ended by themselves: record
+        // them as they ended (bounded local work, so no deadline).
+        while self.storing > 0 {
+            match checked.recv().await {
+                Some(c) => self.on_checked(c).await?,
+                None => break,
+            }
+        }
         // Completions of the ended attempts (local: Cancelled by rondo).
         let deadline =
             tokio::time::Instant::now() + Duration::from_secs(if batch { 2 } else { 30 });
@@ -122,18 +123,19 @@ impl Engine<'_> {
             }
         }
         if cancelled {
-            let mut tx = self.pool.begin().await?;
-            for p in &self.points {
-                if p.phase == PointPhase::Active {
-                    sqlx::query("UPDATE points SET state = ?, reason = ? WHERE id = ?")
-                        .bind(PointState::Cancelled)
-                        .bind(why)
-                        .bind(&p.spec.id)
-                        .execute(&mut *tx)
-                        .await?;
-                }
-            }
-            tx.commit().await?;
+            let active: Vec<String> = self
+                .points
+                .iter()
+                .filter(|p| p.phase == PointPhase::Active)
+                .map(|p| p.spec.id.clone())
+                .collect();
+            self.ledger
+                .write(|s| {
+                    for id in &active {
+                        s.point_state(id, PointState::Cancelled, Some(why));
+                    }
+                })
+                .await?;
             let _ = std::fs::remove_file(&self.paths.cancel_request);
         }
         Ok(())

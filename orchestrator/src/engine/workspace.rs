@@ -66,51 +66,23 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
                     .unwrap_or_else(|| name.clone());
                 starts.push((name.clone(), h, size, fname));
             }
-            let mut tx = pool.begin().await?;
-            sqlx::query(
-                "INSERT INTO campaign(id, name, spec_path, spec_text, spec_blake3, created_at, \
-                 rondo_version, workspace_id) VALUES (1,?,?,?,?,?,?,?)",
-            )
-            .bind(&campaign.name)
-            .bind(campaign.file.display().to_string())
-            .bind(&campaign.text)
-            .bind(&hash)
-            .bind(store::now())
-            .bind(RONDO_VERSION)
-            .bind(&workspace_id)
-            .execute(&mut *tx)
-            .await?;
-            // Multi-row inserts: a sweep of thousands of points is a few statements.
-            for chunk in campaign.points.chunks(300) {
-                let mut q = sqlx::QueryBuilder::<sqlx::Sqlite>::new(
-                    "INSERT INTO points(id, idx, values_json, state) ",
-                );
-                q.push_values(chunk, |mut b, p| {
-                    b.push_bind(&p.id)
-                        .push_bind(p.index as i64)
-                        .push_bind(values_json(p).to_string())
-                        .push_bind(PointState::Planned);
-                });
-                q.build().execute(&mut *tx).await?;
-            }
-            for (name, h, size, fname) in &starts {
-                store::artifact(&mut *tx, h, *size, fname).await?;
-                sqlx::query("INSERT INTO start_files(name, artifact) VALUES (?,?)")
-                    .bind(name)
-                    .bind(h)
-                    .execute(&mut *tx)
-                    .await?;
-            }
-            store::event(
-                &mut *tx,
-                "campaign-created",
-                None,
-                None,
-                None,
-                &campaign.name,
+            store::campaign::create(
+                &pool,
+                store::campaign::NewCampaign {
+                    name: &campaign.name,
+                    spec_path: campaign.file.display().to_string(),
+                    spec_text: &campaign.text,
+                    spec_blake3: &hash,
+                    workspace_id: &workspace_id,
+                    points: campaign
+                        .points
+                        .iter()
+                        .map(|p| (p.id.clone(), p.index as i64, values_json(p).to_string()))
+                        .collect(),
+                    starts,
+                },
             )
             .await?;
-            tx.commit().await?;
             workspace_id
         }
     };

@@ -4,8 +4,13 @@
 //! `orchestrator/migrations/`, and the workspace lock (a lock file holding pid, host and
 //! boot id, taken with `flock`; broken only when its holder is provably gone).
 
+pub mod attempts;
+pub mod campaign;
+pub mod iterations;
+pub mod ledger;
 pub mod states;
 
+pub use ledger::{Flushed, Ledger};
 pub use states::{AttemptState, IterationState, PointState};
 
 use std::fs::{File, OpenOptions};

@@ -433,7 +433,8 @@ mod tests {
             scanned.push(rel);
         }
         for must in [
-            "engine.rs",
+            "engine/settle.rs",
+            "store/attempts.rs",
             "cli.rs",
             "audit.rs",
             "store/mod.rs",
