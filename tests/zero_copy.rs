@@ -196,3 +196,66 @@ stop:
     assert_eq!(bytes, b"original\n", "the store is untouched");
     assert_eq!(blake3::hash(&bytes).to_hex().as_str(), h);
 }
+
+/// Storing a large output does not stall the engine: while point `a`'s 4 GiB output (a
+/// sparse file, so the test costs no disk) is hashed and linked into the store on the
+/// blocking pool, point `b`'s short stages keep being settled and launched. Measured in the
+/// store: attempts of `b` planned between the end of `a`'s big attempt and the plan of
+/// `a`'s next stage (which waits for the big output to be recorded). With the hashing on
+/// the engine's own thread there were none.
+#[test]
+fn other_points_go_on_while_a_large_output_is_stored() {
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let text = r#"campaign: big-and-small
+about: test campaign (not physics)
+programs:
+  sh: { path: /bin/sh }
+sweep:
+  product:
+    size: [4294967296, 0]
+cycle:
+  w:
+    run: [sh, -c, 'if [ {{iteration}} = 1 ]; then truncate -s "$1" big.bin; else : > big.bin; fi', sh, "{{param:size}}"]
+    outputs: { big: big.bin }
+  t:
+    run: [sh, -c, 'n={{iteration}}; [ $n -gt 30 ] && n=30; echo "{\"n\": $n}" > metrics.json']
+    metrics: [n]
+stop:
+  when:
+    - { metric: t.n, change-below: 0.5, for: 1 }
+  max-iterations: 40
+"#;
+    std::fs::write(d.path().join("c.yaml"), text).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    let times = strings(
+        &ws,
+        "SELECT a.ended_at || ' ' || n.created_at FROM attempts a JOIN attempts n \
+         ON n.point = a.point AND n.iteration = 1 AND n.stage = 't' \
+         JOIN points p ON p.id = a.point \
+         WHERE a.stage = 'w' AND a.iteration = 1 AND p.idx = 1",
+    );
+    let (big_ended, next_planned) = times
+        .first()
+        .and_then(|t| t.split_once(' '))
+        .map(|(a, b)| (a.to_string(), b.to_string()))
+        .unwrap_or_else(|| panic!("no big attempt: {times:?}"));
+    let others = strings(
+        &ws,
+        "SELECT a.created_at FROM attempts a JOIN points p ON p.id = a.point WHERE p.idx = 2",
+    );
+    let during = others
+        .iter()
+        .filter(|t| **t > big_ended && **t < next_planned)
+        .count();
+    eprintln!(
+        "big output: child ended {big_ended}, next stage planned {next_planned}; \
+         {during} attempts of the other point planned in between"
+    );
+    assert!(
+        during >= 3,
+        "the other point stalled while the big output was stored: {during} attempts planned \
+         between {big_ended} and {next_planned}"
+    );
+}

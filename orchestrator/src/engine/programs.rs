@@ -30,9 +30,12 @@ impl ProgramCache {
                 return (h.clone(), v.clone());
             }
         }
-        let hash = match hash_file(path) {
-            Ok((h, _)) => h,
-            Err(e) => format!("unreadable: {e}"),
+        // A program can be a large file: hashed on the blocking pool.
+        let owned = path.to_path_buf();
+        let hash = match tokio::task::spawn_blocking(move || hash_file(&owned)).await {
+            Ok(Ok((h, _))) => h,
+            Ok(Err(e)) => format!("unreadable: {e}"),
+            Err(e) => format!("unreadable: the hashing task failed: {e}"),
         };
         let version = match version_flag {
             Some(flag) => Some(version_text(path, flag).await),
@@ -65,14 +68,18 @@ pub(super) async fn version_text(path: &Path, flag: &str) -> String {
 
 impl Engine<'_> {
     /// The BLAKE3 of rondo's executable, or why it cannot be computed; computed once.
-    pub(super) fn rondo_hash(&mut self) -> Result<String, String> {
+    pub(super) async fn rondo_hash(&mut self) -> Result<String, String> {
         if let Some(h) = &self.rondo_exe.1 {
             return h.clone();
         }
-        let path = &self.rondo_exe.0;
-        let h = hash_file(path)
-            .map(|(h, _)| h)
-            .map_err(|e| format!("cannot read {}: {e}", path.display()));
+        let path = self.rondo_exe.0.clone();
+        let h = tokio::task::spawn_blocking(move || {
+            hash_file(&path)
+                .map(|(h, _)| h)
+                .map_err(|e| format!("cannot read {}: {e}", path.display()))
+        })
+        .await
+        .unwrap_or_else(|e| Err(format!("the hashing task failed: {e}")));
         self.rondo_exe.1 = Some(h.clone());
         h
     }
@@ -106,7 +113,7 @@ impl Engine<'_> {
                 let exe = self.rondo_exe.0.clone();
                 built(
                     &exe,
-                    self.rondo_hash(),
+                    self.rondo_hash().await,
                     Some(format!("rondo {RONDO_VERSION}")),
                 )
             }
