@@ -18,12 +18,18 @@ struct Recorded {
 impl Engine<'_> {
     /// Rebuild each point's place from the store.
     pub(super) async fn restore(&mut self) -> Result<()> {
+        let stage_names: Vec<String> = self
+            .campaign
+            .stages
+            .iter()
+            .map(|s| s.name.clone())
+            .collect();
         let store = self.ledger.flush().await?;
         let mut rec = Recorded {
             states: store.point_states().await?,
             lasts: store.last_iterations().await?,
             tried: store.last_iteration_attempts().await?,
-            built: store.last_programs().await?,
+            built: store.last_programs(&stage_names).await?,
         };
         let mut new_iterations: Vec<(String, u32)> = Vec::new();
         let mut script = store::Script::new();

@@ -241,6 +241,32 @@ pub struct Outstanding {
     pub program_version: Option<String>,
 }
 
+/// Attempts of each point's last iteration (see [`Flushed::last_iteration_attempts`]).
+pub(crate) const LAST_ITERATION_ATTEMPTS: &str =
+    "SELECT a.point, a.stage, max(a.attempt), max(a.state = ?) FROM points p \
+     CROSS JOIN attempts a ON a.point = p.id \
+     AND a.iteration = (SELECT max(iteration) FROM iterations WHERE point = p.id) \
+     GROUP BY a.point, a.stage";
+
+/// The last succeeded attempt of one stage at every point (see [`Flushed::last_programs`]).
+pub(crate) const LAST_PROGRAMS: &str =
+    "SELECT p.id, a.iteration, a.program_path, a.program_blake3, a.program_version \
+     FROM points p CROSS JOIN attempts a ON a.id = (SELECT x.id FROM attempts x \
+     WHERE x.point = p.id AND x.stage = ? AND x.state = ? ORDER BY x.iteration DESC LIMIT 1)";
+
+/// The id the next attempt gets (the rowid's maximum: one look-up).
+pub(crate) const NEXT_ATTEMPT_ID: &str = "SELECT coalesce(max(id), 0) + 1 FROM attempts";
+
+/// Attempts left outstanding (through the index on the state).
+pub(crate) fn outstanding_sql() -> String {
+    format!(
+        "SELECT id, point, iteration, stage, attempt, executor, handle_id, host, workdir, \
+         program_path, program_blake3, program_version FROM attempts \
+         WHERE state IN {} ORDER BY id",
+        rows(1, AttemptState::OUTSTANDING.len())
+    )
+}
+
 /// The program of a stage's last succeeded attempt at a point.
 #[derive(Debug, Clone)]
 pub struct LastProgram {
@@ -253,21 +279,14 @@ pub struct LastProgram {
 impl Flushed<'_> {
     /// The id the next attempt gets.
     pub async fn next_attempt_id(&self) -> Result<i64> {
-        Ok(
-            sqlx::query_scalar::<_, i64>("SELECT coalesce(max(id), 0) + 1 FROM attempts")
-                .fetch_one(self.pool)
-                .await?,
-        )
+        Ok(sqlx::query_scalar::<_, i64>(NEXT_ATTEMPT_ID)
+            .fetch_one(self.pool)
+            .await?)
     }
 
     /// Attempts left planned, submitted or running, oldest first.
     pub async fn outstanding_attempts(&self) -> Result<Vec<Outstanding>> {
-        let sql = format!(
-            "SELECT id, point, iteration, stage, attempt, executor, handle_id, host, workdir, \
-             program_path, program_blake3, program_version FROM attempts \
-             WHERE state IN {} ORDER BY id",
-            rows(1, AttemptState::OUTSTANDING.len())
-        );
+        let sql = outstanding_sql();
         let mut query = sqlx::query(&sql);
         for s in AttemptState::OUTSTANDING {
             query = query.bind(s);
@@ -293,53 +312,45 @@ impl Flushed<'_> {
     }
 
     /// Per (point, stage) of each point's last iteration: the highest attempt number and
-    /// whether one succeeded.
+    /// whether one succeeded (index look-ups per point, whatever the length of the history).
     pub async fn last_iteration_attempts(&self) -> Result<HashMap<(String, String), (u32, bool)>> {
         let mut tried = HashMap::new();
         for (point, stage, max_attempt, succeeded) in
-            sqlx::query_as::<_, (String, String, i64, bool)>(
-                "SELECT a.point, a.stage, max(a.attempt), max(a.state = ?) FROM attempts a \
-                 JOIN (SELECT point, max(iteration) AS it FROM iterations GROUP BY point) l \
-                 ON l.point = a.point AND a.iteration = l.it GROUP BY a.point, a.stage",
-            )
-            .bind(AttemptState::Succeeded)
-            .fetch_all(self.pool)
-            .await?
+            sqlx::query_as::<_, (String, String, i64, bool)>(LAST_ITERATION_ATTEMPTS)
+                .bind(AttemptState::Succeeded)
+                .fetch_all(self.pool)
+                .await?
         {
             tried.insert((point, stage), (max_attempt as u32, succeeded));
         }
         Ok(tried)
     }
 
-    /// Per (point, stage): the program of the last succeeded attempt (SQLite's bare-column
-    /// rule: the columns come from the row holding max(iteration)).
-    pub async fn last_programs(&self) -> Result<HashMap<(String, String), LastProgram>> {
-        type Row = (
-            String,
-            String,
-            i64,
-            Option<String>,
-            Option<String>,
-            Option<String>,
-        );
+    /// Per (point, stage) for the given stages: the program of the last succeeded attempt
+    /// (one index look-up per point and stage, reading back from the last iteration).
+    pub async fn last_programs(
+        &self,
+        stages: &[String],
+    ) -> Result<HashMap<(String, String), LastProgram>> {
+        type Row = (String, i64, Option<String>, Option<String>, Option<String>);
         let mut built = HashMap::new();
-        for (point, stage, it, path, hash, version) in sqlx::query_as::<_, Row>(
-            "SELECT point, stage, max(iteration), program_path, program_blake3, program_version \
-             FROM attempts WHERE state = ? GROUP BY point, stage",
-        )
-        .bind(AttemptState::Succeeded)
-        .fetch_all(self.pool)
-        .await?
-        {
-            built.insert(
-                (point, stage),
-                LastProgram {
-                    iteration: it as u32,
-                    path,
-                    hash,
-                    version,
-                },
-            );
+        for stage in stages {
+            for (point, it, path, hash, version) in sqlx::query_as::<_, Row>(LAST_PROGRAMS)
+                .bind(stage)
+                .bind(AttemptState::Succeeded)
+                .fetch_all(self.pool)
+                .await?
+            {
+                built.insert(
+                    (point, stage.clone()),
+                    LastProgram {
+                        iteration: it as u32,
+                        path,
+                        hash,
+                        version,
+                    },
+                );
+            }
         }
         Ok(built)
     }

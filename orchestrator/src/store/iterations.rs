@@ -84,6 +84,12 @@ impl Script {
     }
 }
 
+/// Each point's last iteration (see [`Flushed::last_iterations`]). `CROSS JOIN` keeps `points`
+/// the outer loop (SQLite does not reorder it), so the plan never depends on statistics.
+pub(crate) const LAST_ITERATIONS: &str = "SELECT i.point, i.iteration, i.state FROM points p \
+     CROSS JOIN iterations i ON i.point = p.id \
+     AND i.iteration = (SELECT max(iteration) FROM iterations WHERE point = p.id)";
+
 /// A metric sample of a point's history: (iteration, full name, value, error).
 pub type HistoryRow = (u32, String, f64, Option<f64>);
 
@@ -113,18 +119,18 @@ impl Flushed<'_> {
         .collect())
     }
 
-    /// Each point's last iteration and its state.
+    /// Each point's last iteration and its state: one index look-up per point, whatever
+    /// the length of the histories.
     pub async fn last_iterations(&self) -> Result<HashMap<String, (u32, IterationState)>> {
-        // SQLite's bare-column rule: with max(), `state` comes from the row holding the max.
-        Ok(sqlx::query_as::<_, (String, i64, IterationState)>(
-            "SELECT point, max(iteration), state FROM iterations GROUP BY point",
+        Ok(
+            sqlx::query_as::<_, (String, i64, IterationState)>(LAST_ITERATIONS)
+                .fetch_all(self.pool)
+                .await
+                .context("reading the iterations' states")?
+                .into_iter()
+                .map(|(p, it, st)| (p, (it as u32, st)))
+                .collect(),
         )
-        .fetch_all(self.pool)
-        .await
-        .context("reading the iterations' states")?
-        .into_iter()
-        .map(|(p, it, st)| (p, (it as u32, st)))
-        .collect())
     }
 
     /// The metrics of a point's good iterations and of iteration `current`.

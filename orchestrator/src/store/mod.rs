@@ -8,6 +8,8 @@ pub mod attempts;
 pub mod campaign;
 pub mod iterations;
 pub mod ledger;
+#[cfg(test)]
+mod plans;
 pub mod states;
 
 pub use ledger::{Flushed, Ledger};
