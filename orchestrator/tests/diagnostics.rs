@@ -1140,6 +1140,22 @@ stop: { max-iterations: 1 }
 ",
             at: (7, 23),
         },
+        Case {
+            site: "stage `{sname}`: `placement` applies to command and shell stages; a built-in always runs inside rondo",
+            says: "`placement` applies to command and shell stages",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  m:
+    builtin: mix
+    inputs: { x: start.x }
+    outputs: { x: x.json }
+    settings: { method: linear, alpha: 0.5 }
+    placement: host
+stop: { max-iterations: 1 }
+",
+            at: (9, 16),
+        },
     ]
 }
 

@@ -7,7 +7,18 @@ use super::*;
 impl Engine<'_> {
     /// Start work for ready points while slots are free.
     pub(super) async fn schedule(&mut self) -> Result<()> {
-        let slots = self.executor.slots().max(1);
+        // Slots of the executor and of the host executor (none without one), and how many
+        // children each runs (attempts whose outputs are being stored hold no slot).
+        let capacity = [
+            self.executor.slots().max(1),
+            self.on_host.as_ref().map_or(0, |e| e.slots().max(1)),
+        ];
+        let mut busy = [0usize; 2];
+        for (id, f) in &self.inflight {
+            if !self.storing.contains(id) {
+                busy[usize::from(f.on_host)] += 1;
+            }
+        }
         let mut waiting = VecDeque::new();
         while let Some(p) = self.ready.pop_front() {
             if self.points[p].phase != PointPhase::Active || self.points[p].outstanding.is_some() {
@@ -21,13 +32,20 @@ impl Engine<'_> {
                 continue;
             }
             let stage = &self.campaign.stages[self.points[p].next_stage];
-            let is_builtin = stage.kind.is_builtin();
-            if !is_builtin && self.inflight.len() - self.storing >= slots {
-                // Every slot is taken: the rest wait for the next completion as they are
-                // (scanning them all on every event would cost O(points) per attempt).
-                waiting.push_back(p);
-                waiting.extend(self.ready.drain(..));
-                break;
+            if !stage.kind.is_builtin() {
+                let on_host = self.runs_on_host(stage);
+                if busy[usize::from(on_host)] >= capacity[usize::from(on_host)] {
+                    waiting.push_back(p);
+                    if busy[0] >= capacity[0] && busy[1] >= capacity[1] {
+                        // Every slot is taken: the rest wait for the next completion as they
+                        // are (scanning them all on every event would cost O(points) per
+                        // attempt).
+                        waiting.extend(self.ready.drain(..));
+                        break;
+                    }
+                    continue;
+                }
+                busy[usize::from(on_host)] += 1;
             }
             self.start_attempt(p).await?;
             if self.points[p].outstanding.is_none() && self.points[p].phase == PointPhase::Active {
@@ -119,6 +137,7 @@ impl Engine<'_> {
             attempt,
             workdir: workdir.clone(),
             built,
+            on_host: self.runs_on_host(&stage),
         };
         self.points[p].outstanding = Some(id);
         self.inflight.insert(id, fl.clone());
@@ -295,7 +314,12 @@ impl Engine<'_> {
         let uses_seed = template
             .placeholders()
             .any(|(ns, n, _)| ns.is_none() && n == "seed");
-        Ok((argv, uses_seed, self.opts.executor.kind()))
+        let kind = if self.runs_on_host(stage) {
+            "local"
+        } else {
+            self.opts.executor.kind()
+        };
+        Ok((argv, uses_seed, kind))
     }
 
     /// The value of one `{{namespace:name}}` placeholder of a command template.
@@ -375,7 +399,7 @@ impl Engine<'_> {
             keep_scratch: self.opts.keep_scratch,
         };
         let tx = self.checked_tx.clone();
-        self.storing += 1;
+        self.storing.insert(id);
         tokio::task::spawn_blocking(move || {
             let ended = match builtins::run_argv(&argv, &job.workdir) {
                 Ok(report) => {
@@ -417,7 +441,7 @@ impl Engine<'_> {
         argv: Vec<String>,
     ) -> Result<()> {
         let id = row.id;
-        let local = self.opts.executor.kind() == "local";
+        let local = fl.on_host || self.opts.executor.kind() == "local";
         if local {
             self.ledger.plan_later(row);
         } else {
@@ -440,7 +464,7 @@ impl Engine<'_> {
             time_limit: stage.time_limit,
             resources: stage.resources.clone(),
         };
-        match self.executor.launch(req).await {
+        match self.executor_for(fl.on_host).launch(req).await {
             Ok(handle) if local => {
                 self.unrecorded.insert(
                     id,

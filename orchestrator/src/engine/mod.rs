@@ -41,7 +41,7 @@ use crate::artifacts::{hash_file, ArtifactStore};
 use crate::builtins;
 use crate::progress::Progress;
 use crate::scratch;
-use crate::spec::{Campaign, PointSpec, Source, Stage, StageKind};
+use crate::spec::{Campaign, Placement, PointSpec, Source, Stage, StageKind};
 use crate::stop::{self, Sample};
 use crate::store::{self, AttemptState, IterationState, PointState};
 use crate::validate::{self, Metric};
@@ -326,6 +326,8 @@ struct InFlight {
     workdir: PathBuf,
     /// The program it runs.
     built: BuiltWith,
+    /// Runs as a local child where rondo runs (`placement: host` under a batch executor).
+    on_host: bool,
 }
 
 /// How an attempt ended, after output checks.
@@ -361,6 +363,8 @@ struct Engine<'a> {
     ledger: store::Ledger,
     artifacts: ArtifactStore,
     executor: Arc<dyn Executor>,
+    /// Under a batch executor: the local executor of the stages with `placement: host`.
+    on_host: Option<Arc<dyn Executor>>,
     host: String,
     points: Vec<PointRun>,
     ready: VecDeque<usize>,
@@ -381,7 +385,7 @@ struct Engine<'a> {
     checked_tx: mpsc::UnboundedSender<Checked>,
     /// Attempts on the blocking pool (output checks and storing, built-ins): in flight, but
     /// holding no executor slot.
-    storing: usize,
+    storing: std::collections::HashSet<i64>,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -400,19 +404,21 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
     let (tx, rx) = mpsc::unbounded_channel::<Completion>();
     let executor: Arc<dyn Executor> = match &opts.executor {
         ExecutorChoice::Local => Arc::new(
-            LocalExecutor::new(opts.jobs, ws.workspace_id.clone(), tx).with_grace(opts.grace),
+            LocalExecutor::new(opts.jobs, ws.workspace_id.clone(), tx.clone())
+                .with_grace(opts.grace),
         ),
         ExecutorChoice::Slurm(cfg) => {
             let mut cfg = (**cfg).clone();
             cfg.max_jobs = cfg.max_jobs.min(opts.jobs.max(1));
-            Arc::new(SlurmExecutor::new(cfg, ws.workspace_id.clone(), tx))
+            Arc::new(SlurmExecutor::new(cfg, ws.workspace_id.clone(), tx.clone()))
         }
         ExecutorChoice::Pbs(cfg) => {
             let mut cfg = (**cfg).clone();
             cfg.max_jobs = cfg.max_jobs.min(opts.jobs.max(1));
-            Arc::new(PbsExecutor::new(cfg, tx))
+            Arc::new(PbsExecutor::new(cfg, tx.clone()))
         }
     };
+    let on_host = host_executor(campaign, opts, &ws.workspace_id, &tx);
     let rondo_exe = std::env::current_exe().unwrap_or_else(|_| PathBuf::from("rondo"));
     let mut parameters = serde_json::Map::new();
     for (k, v) in &campaign.parameters {
@@ -427,6 +433,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         ledger: store::Ledger::new(ws.pool.clone()),
         artifacts: ws.artifacts.clone(),
         executor,
+        on_host,
         host: store::hostname(),
         points: Vec::new(),
         ready: VecDeque::new(),
@@ -440,7 +447,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         workspace_id: ws.workspace_id.clone(),
         scratch: scratch::Pool::open(&paths_scratch)?,
         checked_tx,
-        storing: 0,
+        storing: Default::default(),
     };
     engine
         .event(
@@ -487,7 +494,45 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
     Ok(summary)
 }
 
+/// Under a batch executor, the local executor for stages with `placement: host`: at most
+/// half the cores of this machine (at least one) and at most `--jobs` at once, since that
+/// machine may be a login node that others share.
+fn host_executor(
+    campaign: &Campaign,
+    opts: &RunOptions,
+    workspace_id: &str,
+    tx: &mpsc::UnboundedSender<Completion>,
+) -> Option<Arc<dyn Executor>> {
+    let batch = !matches!(opts.executor, ExecutorChoice::Local);
+    let wanted = campaign
+        .stages
+        .iter()
+        .any(|s| !s.kind.is_builtin() && s.placement == Placement::Host);
+    if !(batch && wanted) {
+        return None;
+    }
+    let cores = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let slots = (cores / 2).clamp(1, opts.jobs.max(1));
+    Some(Arc::new(
+        LocalExecutor::new(slots, workspace_id.to_string(), tx.clone()).with_grace(opts.grace),
+    ))
+}
+
 impl Engine<'_> {
+    /// Whether a stage's attempts run where rondo runs although the campaign runs on a batch
+    /// system.
+    fn runs_on_host(&self, stage: &Stage) -> bool {
+        self.on_host.is_some() && !stage.kind.is_builtin() && stage.placement == Placement::Host
+    }
+
+    /// The executor of an attempt.
+    fn executor_for(&self, on_host: bool) -> Arc<dyn Executor> {
+        match (&self.on_host, on_host) {
+            (Some(local), true) => local.clone(),
+            _ => self.executor.clone(),
+        }
+    }
+
     async fn main(
         &mut self,
         mut rx: mpsc::UnboundedReceiver<Completion>,

@@ -164,7 +164,8 @@ impl Engine<'_> {
             let why = "the orchestrator stopped during a built-in stage";
             return self.settle(id, None, lost(why.into())).await;
         }
-        if row.executor != self.opts.executor.kind() {
+        let on_host = row.executor == "local" && self.opts.executor.kind() != "local";
+        if row.executor != self.opts.executor.kind() && !(on_host && self.on_host.is_some()) {
             bail!(
                 "attempt {id} ({} iteration {} stage {}) was left outstanding on the `{ex}` \
                  executor; continue with --on {ex} so it can be reconciled",
@@ -181,7 +182,7 @@ impl Engine<'_> {
         };
         let workdir = PathBuf::from(&row.workdir);
         let answer = self
-            .executor
+            .executor_for(on_host)
             .reattach(id, &handle, &workdir)
             .await
             .with_context(|| format!("cannot reconcile attempt {id}"))?;
@@ -208,6 +209,7 @@ impl Engine<'_> {
                 unknown: None,
                 version: row.program_version.clone(),
             },
+            on_host,
         };
         let (point, it) = (row.point.as_str(), Some(row.iteration));
         match answer {
@@ -257,7 +259,7 @@ impl Engine<'_> {
     /// attempt accounts for (started, then the orchestrator died before the row was
     /// written): end them before anything starts. Recorded attempts were reconciled already.
     pub(super) async fn end_untracked_children(&mut self) -> Result<()> {
-        if self.opts.executor.kind() != "local" {
+        if self.opts.executor.kind() != "local" && self.on_host.is_none() {
             return Ok(());
         }
         let orphans: Vec<(i64, i32)> = rondo_adapters::local::find_orphans(&self.workspace_id)

@@ -77,7 +77,7 @@ impl Engine<'_> {
                 };
                 let tx = self.checked_tx.clone();
                 let (started, ended, host) = (c.started_at, c.ended_at, c.host.clone());
-                self.storing += 1;
+                self.storing.insert(c.attempt_id);
                 tokio::task::spawn_blocking(move || {
                     let ended = check_outputs(&job.stage, &job.workdir, None, started, ended, host);
                     let _ = tx.send(job.store(ended));
@@ -155,7 +155,7 @@ impl Engine<'_> {
 
     /// An attempt's outputs were checked and stored on the blocking pool (or refused).
     pub(super) async fn on_checked(&mut self, c: Checked) -> Result<()> {
-        self.storing = self.storing.saturating_sub(1);
+        self.storing.remove(&c.id);
         let ended = c.result?;
         let Some(fl) = self.inflight.get(&c.id).cloned() else {
             tracing::warn!(

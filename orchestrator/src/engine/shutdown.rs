@@ -71,7 +71,12 @@ impl Engine<'_> {
         .await?;
         let batch = self.opts.executor.kind() != "local";
         if cancelled && batch {
-            let ids: Vec<i64> = self.inflight.keys().copied().collect();
+            let ids: Vec<i64> = self
+                .inflight
+                .iter()
+                .filter(|(_, f)| !f.on_host)
+                .map(|(id, _)| *id)
+                .collect();
             for id in ids {
                 if let Err(e) = self.executor.cancel(id, why).await {
                     tracing::warn!(attempt = id, %e, "cancel failed");
@@ -89,18 +94,31 @@ impl Engine<'_> {
             .shutdown(mode)
             .await
             .map_err(|e| anyhow::anyhow!("shutting down the executor: {e}"))?;
+        if let Some(local) = &self.on_host {
+            // Children on this host never outlive a stop of rondo.
+            local
+                .shutdown(Shutdown::Terminate {
+                    grace: self.opts.grace,
+                })
+                .await
+                .map_err(|e| anyhow::anyhow!("shutting down the host executor: {e}"))?;
+        }
         // Attempts whose outputs are being checked and stored ended by themselves: record
         // them as they ended (bounded local work, so no deadline).
-        while self.storing > 0 {
+        while !self.storing.is_empty() {
             match checked.recv().await {
                 Some(c) => self.on_checked(c).await?,
                 None => break,
             }
         }
         // Completions of the ended attempts (local: Cancelled by rondo).
+        // Which ends are awaited: every one of local children; of batch jobs only when they
+        // were cancelled (detached jobs run on).
+        let awaited = |f: &InFlight| !batch || cancelled || f.on_host;
+        let any_local = !batch || self.inflight.values().any(|f| f.on_host);
         let deadline =
-            tokio::time::Instant::now() + Duration::from_secs(if batch { 2 } else { 30 });
-        while !self.inflight.is_empty() && (!batch || cancelled) {
+            tokio::time::Instant::now() + Duration::from_secs(if any_local { 30 } else { 2 });
+        while self.inflight.values().any(awaited) {
             match tokio::time::timeout_at(deadline, rx.recv()).await {
                 Ok(Some(c)) => {
                     let id = c.attempt_id;

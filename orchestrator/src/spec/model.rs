@@ -13,6 +13,7 @@ use std::time::Duration;
 use rondo_adapters::executor::Resources;
 use rondo_adapters::template::Template;
 
+pub use super::raw::Placement;
 use super::raw::{Combine, Compare, EosModelName, FilterSettings, MixSettings, Scalar};
 
 /// The role of the single input of the older one-array form of the built-in `mix`
@@ -136,6 +137,8 @@ pub struct Stage {
     pub allow_nonfinite: bool,
     /// Input roles placed as private writable copies (`writable-inputs`).
     pub writable_inputs: BTreeSet<String>,
+    /// Where it runs under a batch executor (`placement`).
+    pub placement: Placement,
 }
 
 /// What a stage runs.

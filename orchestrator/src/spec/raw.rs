@@ -315,9 +315,26 @@ pub struct StageSpec {
     #[serde(default)]
     #[schemars(with = "Vec<String>")]
     pub writable_inputs: Vec<Spanned<String>>,
+    /// Where a command or shell stage runs when the campaign runs on a batch system:
+    /// `batch` (default: as a batch job of its own) or `host` (where rondo runs: the login
+    /// node, or inside the allocation under `rondo submit`). Built-ins always run in rondo.
+    #[serde(default)]
+    #[schemars(with = "Option<Placement>")]
+    pub placement: Option<Spanned<Placement>>,
     /// Settings of a built-in stage.
     #[serde(default)]
     pub settings: Option<BuiltinSettings>,
+}
+
+/// Where a stage runs under a batch executor.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Placement {
+    /// A batch job of its own (the default: nothing runs on a login node unasked).
+    #[default]
+    Batch,
+    /// Where rondo runs, as a local child process.
+    Host,
 }
 
 /// Settings of a built-in stage: `mix` or `filter`.

@@ -9,7 +9,7 @@ use std::path::Path;
 use serde_saphyr::Spanned;
 
 use super::{loc, split_ref, Validator};
-use crate::spec::model::{ResolvedProgram, Source, Stage, StageKind};
+use crate::spec::model::{Placement, ResolvedProgram, Source, Stage, StageKind};
 use crate::spec::raw::{CampaignFile, InputSpec, PreviousInput, RunSpec, StageSpec};
 
 /// What every stage of the cycle is checked against.
@@ -120,6 +120,7 @@ impl Validator<'_> {
             }
         }
         let kind = self.stage_kind(cx, &s, programs)?;
+        let placement = self.placement(&sname, st, &kind);
         Some(Stage {
             name: sname,
             kind,
@@ -131,7 +132,23 @@ impl Validator<'_> {
             retries: limits.retries,
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
+            placement,
         })
+    }
+
+    /// `placement:` of a stage: only command and shell stages have one.
+    fn placement(&mut self, sname: &str, st: &StageSpec, kind: &StageKind) -> Placement {
+        let Some(p) = &st.placement else {
+            return Placement::default();
+        };
+        if kind.is_builtin() {
+            self.push(
+                loc(p),
+                format!("stage `{sname}`: `placement` applies to command and shell stages; a built-in always runs inside rondo"),
+                "remove `placement:` from this stage",
+            );
+        }
+        p.value
     }
 
     /// The good inputs of a stage, role → source, in file order.
