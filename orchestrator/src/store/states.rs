@@ -434,9 +434,10 @@ mod tests {
         }
         for must in [
             "engine.rs",
-            "cli.rs",
+            "cli/mod.rs",
             "audit.rs",
             "store/mod.rs",
+            "store/overview.rs",
             "builtins/command.rs",
         ] {
             assert!(
