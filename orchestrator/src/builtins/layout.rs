@@ -71,8 +71,6 @@ struct LegacyStateFile {
     mixer: MixerState,
 }
 
-/// What a mixing step reports.
-
 /// One role's new file as read: its layout block, its values and, for JSON, the object.
 pub(super) struct Loaded {
     pub(super) kind: BlockKind,
@@ -181,8 +179,6 @@ pub(super) fn read_state(p: &Path) -> Result<StateFile, String> {
     }
     Ok(s)
 }
-
-/// Pair each input role with its output file. The stage's outputs list exactly its input
 
 /// The layout of this iteration's inputs must be the one the history was built on.
 pub(super) fn check_layout(
