@@ -40,8 +40,9 @@ impl StageFiles {
     }
 }
 
-/// An in-process stage: its settings are its own, the files are given per run.
-pub trait Builtin {
+/// An in-process stage: its settings are its own, the files are given per run. `Send` and
+/// `Sync`, so a boxed built-in moves onto a blocking thread.
+pub trait Builtin: Send + Sync {
     /// The stage's name on the command line (`mix`, `filter`).
     fn name(&self) -> &'static str;
 
@@ -66,5 +67,46 @@ fn metric(name: &str, value: f64) -> Metric {
         name: name.into(),
         value,
         error: None,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::spec::{MixMethod, MixSettings};
+
+    /// A built-in runs through the trait on a blocking thread: the first mixing step passes
+    /// a JSON object through unchanged, writes the state it starts from and reports no
+    /// residual.
+    #[tokio::test]
+    async fn a_boxed_builtin_runs_on_a_blocking_thread() -> Result<(), Box<dyn std::error::Error>> {
+        let d = tempfile::tempdir()?;
+        let p = |n: &str| d.path().join(n);
+        std::fs::write(p("x.json"), "{\"x\": 0.25, \"label\": \"a\"}")?;
+        let stage: Box<dyn Builtin> = Box::new(Mix {
+            settings: MixSettings {
+                method: MixMethod::Linear,
+                alpha: 0.5,
+                history: None,
+                w0: None,
+                restart_after_growth: None,
+                weights: None,
+            },
+            state: None,
+            state_out: p("state.json"),
+        });
+        let files = StageFiles {
+            inputs: vec![("x".into(), p("x.json"))],
+            outputs: vec![("x".into(), p("out.json"))],
+        };
+        let report = tokio::task::spawn_blocking(move || stage.run(&files)).await??;
+        let out: serde_json::Value = serde_json::from_slice(&std::fs::read(p("out.json"))?)?;
+        assert_eq!(out, serde_json::json!({"x": 0.25, "label": "a"}));
+        let state: serde_json::Value = serde_json::from_slice(&std::fs::read(p("state.json"))?)?;
+        assert_eq!(state["layout"][0]["role"], "x");
+        // The first step has no residual: only the history (empty) and the reset count.
+        let names: Vec<&str> = report.metrics.iter().map(|m| m.name.as_str()).collect();
+        assert_eq!(names, ["history", "resets"]);
+        Ok(())
     }
 }
