@@ -6,22 +6,18 @@
 //! file names, `inputs/state.json` → `mixer-state.json`, `metrics.json`), and runs the
 //! attempt by parsing that very argument list, relative to the scratch folder. So the record
 //! is what ran, and running it again in a folder laid out the same way writes the same bytes.
-//! The numerics are those of [`super::mix`] and [`super::filter`]; this module only maps an
-//! argument list onto them and writes the metrics file.
+//! The built-ins are [`super::Mix`] and [`super::Filter`] (each a [`super::Builtin`]); this
+//! module only maps an argument list onto them and writes the metrics file. Like the
+//! built-ins it knows no store and no scheduler.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 use clap::{Args, Parser, Subcommand};
 
-use super::MixReport;
+use super::{Builtin, Filter, Mix, MixReport, StageFiles};
 use crate::spec::{FilterSettings, MixMethod, MixSettings, StageKind};
 use crate::validate::{Metric, METRICS_FILE};
-
-/// Input roles the filter reads.
-const FILTER_INPUTS: [&str; 3] = ["gtau", "delta", "levels"];
-/// Output roles the filter writes.
-const FILTER_OUTPUTS: [&str; 4] = ["gtau", "giw", "sigma", "gl"];
 
 /// A built-in stage run on files (`rondo builtin ...`).
 #[derive(Subcommand, Debug, Clone, PartialEq)]
@@ -283,8 +279,23 @@ impl BuiltinCommand {
     /// the outputs (and the metrics file when asked). Errors name the file and what is
     /// wrong.
     pub fn run(&self, base: &Path) -> Result<MixReport, String> {
+        let (stage, files, metrics) = self.stage(base)?;
+        let report = stage.run(&files)?;
+        if let Some(m) = metrics {
+            write_metrics(&m, &report.metrics)?;
+        }
+        Ok(report)
+    }
+
+    /// The built-in this command runs, its files and the metrics file (if any), every
+    /// relative path taken from `base`, after the checks of the arguments themselves (a
+    /// role given twice, a weight for no input, sizes of at least 1).
+    fn stage(&self, base: &Path) -> Result<Stage, String> {
         let at = |p: &Path| base.join(p);
-        let (report, metrics) = match self {
+        let resolved = |files: &[(String, PathBuf)]| -> Vec<(String, PathBuf)> {
+            files.iter().map(|(r, p)| (r.clone(), at(p))).collect()
+        };
+        match self {
             BuiltinCommand::Mix(a) => {
                 unique("input", a.inputs.iter().map(|(r, _)| r.clone()))?;
                 unique("output", a.outputs.iter().map(|(r, _)| r.clone()))?;
@@ -296,25 +307,24 @@ impl BuiltinCommand {
                 {
                     return Err(format!("weight for `{r}`, which is not an input role"));
                 }
-                let roles: Vec<String> = a.inputs.iter().map(|(r, _)| r.clone()).collect();
-                let pairs = super::mix_pairs(&roles, &a.outputs)?;
-                let files: Vec<(String, PathBuf, PathBuf)> = pairs
-                    .into_iter()
-                    .zip(&a.inputs)
-                    .map(|((role, out), (_, new))| (role, at(new), at(&out)))
-                    .collect();
-                let with = MixSettings {
-                    method: a.method,
-                    alpha: a.alpha,
-                    history: a.history,
-                    w0: a.w0,
-                    restart_after_growth: a.restart_after_growth,
-                    weights: (!a.weights.is_empty())
-                        .then(|| a.weights.iter().cloned().collect::<BTreeMap<_, _>>()),
+                let mix = Mix {
+                    settings: MixSettings {
+                        method: a.method,
+                        alpha: a.alpha,
+                        history: a.history,
+                        w0: a.w0,
+                        restart_after_growth: a.restart_after_growth,
+                        weights: (!a.weights.is_empty())
+                            .then(|| a.weights.iter().cloned().collect::<BTreeMap<_, _>>()),
+                    },
+                    state: a.state.as_deref().map(at),
+                    state_out: at(&a.state_out),
                 };
-                let state = a.state.as_deref().map(at);
-                let report = super::mix(&with, &files, state.as_deref(), &at(&a.state_out))?;
-                (report, &a.metrics)
+                let files = StageFiles {
+                    inputs: resolved(&a.inputs),
+                    outputs: resolved(&a.outputs),
+                };
+                Ok((Box::new(mix), files, a.metrics.as_deref().map(at)))
             }
             BuiltinCommand::Filter(a) => {
                 if a.legendre == 0 || a.matsubara == 0 {
@@ -322,51 +332,24 @@ impl BuiltinCommand {
                 }
                 unique("input", a.inputs.iter().map(|(r, _)| r.clone()))?;
                 unique("output", a.outputs.iter().map(|(r, _)| r.clone()))?;
-                if let Some((r, _)) = a
-                    .inputs
-                    .iter()
-                    .find(|(r, _)| !FILTER_INPUTS.contains(&r.as_str()))
-                {
-                    return Err(format!(
-                        "the filter has no input `{r}` (it reads gtau, delta, levels)"
-                    ));
-                }
-                if let Some((r, _)) = a
-                    .outputs
-                    .iter()
-                    .find(|(r, _)| !FILTER_OUTPUTS.contains(&r.as_str()))
-                {
-                    return Err(format!(
-                        "the filter has no output `{r}` (it writes gtau, giw, sigma, gl)"
-                    ));
-                }
-                let input =
-                    |role: &str| a.inputs.iter().find(|(r, _)| r == role).map(|(_, p)| at(p));
-                let Some(gtau) = input("gtau") else {
-                    return Err("the input `gtau` has no file (give --input gtau=PATH)".into());
+                let filter = Filter {
+                    settings: FilterSettings {
+                        legendre: a.legendre,
+                        matsubara: a.matsubara,
+                    },
                 };
-                let outs: Vec<(String, PathBuf)> =
-                    a.outputs.iter().map(|(r, p)| (r.clone(), at(p))).collect();
-                let with = FilterSettings {
-                    legendre: a.legendre,
-                    matsubara: a.matsubara,
+                let files = StageFiles {
+                    inputs: resolved(&a.inputs),
+                    outputs: resolved(&a.outputs),
                 };
-                let report = super::filter(
-                    &with,
-                    &gtau,
-                    input("delta").as_deref(),
-                    input("levels").as_deref(),
-                    &outs,
-                )?;
-                (report, &a.metrics)
+                Ok((Box::new(filter), files, a.metrics.as_deref().map(at)))
             }
-        };
-        if let Some(m) = metrics {
-            write_metrics(&at(m), &report.metrics)?;
         }
-        Ok(report)
     }
 }
+
+/// A built-in ready to run: the stage, its files, and where its metrics file goes.
+type Stage = (Box<dyn Builtin>, StageFiles, Option<PathBuf>);
 
 /// Run a recorded argument list in the folder `base` (the engine's way of running a
 /// built-in attempt: exactly what it recorded).

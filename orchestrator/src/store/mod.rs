@@ -8,6 +8,7 @@ pub mod attempts;
 pub mod campaign;
 pub mod iterations;
 pub mod ledger;
+pub mod overview;
 #[cfg(test)]
 mod plans;
 pub mod states;

@@ -435,9 +435,10 @@ mod tests {
         for must in [
             "engine/settle.rs",
             "store/attempts.rs",
-            "cli.rs",
+            "cli/mod.rs",
             "audit.rs",
             "store/mod.rs",
+            "store/overview.rs",
             "builtins/command.rs",
         ] {
             assert!(
