@@ -4,6 +4,7 @@
 //! `orchestrator/migrations/`, and the workspace lock (a lock file holding pid, host and
 //! boot id, taken with `flock`; broken only when its holder is provably gone).
 
+pub mod reads;
 pub mod states;
 
 pub use states::{AttemptState, IterationState, PointState};
