@@ -109,8 +109,6 @@ pub struct StartFile {
     pub hash: String,
 }
 
-/// A metric named by `POINT/ITERATION/stage.metric`.
-
 /// Campaign row of a workspace.
 pub async fn campaign(pool: &SqlitePool) -> Result<CampaignRef> {
     let row = crate::store::campaign_row(pool)

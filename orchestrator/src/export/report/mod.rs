@@ -6,7 +6,7 @@
 //! `report_sources` tables): every file of the folder is stored as an artifact and linked to
 //! the attempts whose metrics it shows, so that a report CSV traces back to its inputs.
 //!
-//! The parts: [`data`] (the points and metrics a report reads), `style` (series looks),
+//! The parts: `data` (the points and metrics a report reads), `style` (series looks),
 //! `plot` and `draw` (the figures), `figures` and `eos` (each figure's data, CSV and files),
 //! `html` (tables and `index.html`), `folder` (the report folder being built), `record`
 //! (storing the files and recording the generation). Reads through [`crate::query`] and
