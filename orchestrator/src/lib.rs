@@ -4,16 +4,14 @@
 /// The rondo version recorded with every attempt.
 pub const RONDO_VERSION: &str = env!("CARGO_PKG_VERSION");
 
-pub mod analysis;
 pub mod artifacts;
-pub mod audit;
 pub mod builtins;
 pub mod cli;
 pub mod engine;
+pub mod export;
 pub mod fsinfo;
 pub mod progress;
-pub mod prov;
-pub mod report;
+pub mod query;
 pub mod scratch;
 pub mod spec;
 pub mod stop;

@@ -4,7 +4,7 @@
 mod fixtures;
 
 use anyhow::Result;
-use rondo::audit::{self, Target};
+use rondo::query::{self as audit, Target};
 
 fn err_text(e: anyhow::Error) -> String {
     format!("{e:#}")

@@ -12,7 +12,8 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use anyhow::{bail, Context, Result};
-use rondo::{audit, prov, report};
+use rondo::export::{prov, report};
+use rondo::query as audit;
 use serde_json::Value;
 
 fn has_prov(py: &str) -> bool {

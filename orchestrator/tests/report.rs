@@ -8,8 +8,8 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use anyhow::{bail, Context, Result};
-use rondo::audit;
-use rondo::report::{self, Progress};
+use rondo::export::report::{self, Progress};
+use rondo::query as audit;
 
 fn err_text(e: anyhow::Error) -> String {
     format!("{e:#}")

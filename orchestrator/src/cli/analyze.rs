@@ -2,7 +2,7 @@
 //! records and record the result (the same artifact when nothing changed).
 //!
 //! Owns the refusals (no `analysis:` section, points still open) and what is printed; the
-//! analysis is [`crate::analysis`]'s, the count of open points [`crate::store::overview`]'s.
+//! analysis is [`crate::query::analysis`]'s, the count of open points [`crate::store::overview`]'s.
 
 use std::path::Path;
 
@@ -25,7 +25,7 @@ async fn analyze(ws: &Path) -> Result<u8> {
     let Some(camp) = store::campaign_row(&pool).await? else {
         bail!("{}: no campaign recorded", ws.display());
     };
-    let Some(eos) = crate::analysis::recorded_eos(&camp.spec_text)
+    let Some(eos) = crate::query::analysis::recorded_eos(&camp.spec_text)
         .with_context(|| format!("{}: campaign {}", ws.display(), camp.name))?
     else {
         bail!(BadInput(format!(
@@ -42,13 +42,13 @@ async fn analyze(ws: &Path) -> Result<u8> {
     }
     let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
         .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
-    let doc = crate::analysis::record_eos(&pool, ws, &artifacts, &eos).await?;
-    let hash = crate::analysis::latest_eos_hash(&pool)
+    let doc = crate::query::analysis::record_eos(&pool, ws, &artifacts, &eos).await?;
+    let hash = crate::query::analysis::latest_eos_hash(&pool)
         .await?
         .unwrap_or_default();
     pool.close().await;
     let mut text = String::new();
-    for line in crate::analysis::eos_lines(&doc) {
+    for line in crate::query::analysis::eos_lines(&doc) {
         text.push_str(&line);
         text.push('\n');
     }
@@ -56,7 +56,7 @@ async fn analyze(ws: &Path) -> Result<u8> {
     eprintln!(
         "rondo: wrote {} (artifact {})",
         ws.join("analysis")
-            .join(crate::analysis::EOS_ROLE)
+            .join(crate::query::analysis::EOS_ROLE)
             .display(),
         hash.get(..12).unwrap_or(&hash)
     );

@@ -68,7 +68,7 @@ fn request_cancel(ws: &Path, holder: &str, reason: &str) -> Result<()> {
         reason: reason.to_string(),
         by: format!(
             "{} on host {} (pid {})",
-            crate::prov::current_user(),
+            crate::export::prov::current_user(),
             store::hostname(),
             std::process::id()
         ),

@@ -1,14 +1,14 @@
 //! `rondo diff`: compare two points (of one workspace or of two), as text or `--json`.
 //!
 //! Owns which workspaces are opened and the error class of a point that does not resolve
-//! (bad input); the comparison is [`crate::audit`]'s. No SQL.
+//! (bad input); the comparison is [`crate::query`]'s. No SQL.
 
 use anyhow::Result;
 
 use super::output::{emit, emit_json};
 use super::workspace::{absolute, find_workspace};
 use super::{BadInput, DiffArgs, EXIT_OK};
-use crate::audit;
+use crate::query as audit;
 use crate::store;
 
 /// `rondo diff A B`.

@@ -2,13 +2,13 @@
 //! of the whole campaign.
 //!
 //! Owns where the document goes and what is said about it; the document is
-//! [`crate::prov`]'s. No SQL.
+//! [`crate::export::prov`]'s. No SQL.
 
 use anyhow::{Context, Result};
 
 use super::workspace::find_workspace;
 use super::{trace, ExportArgs, EXIT_OK};
-use crate::prov;
+use crate::export::prov;
 use crate::store;
 
 /// `rondo export`.

@@ -2,13 +2,13 @@
 //! user's choice, its hash verified.
 //!
 //! Owns the message and the error class of a refusal (bad input); the writing is
-//! [`crate::audit`]'s. No SQL.
+//! [`crate::query`]'s. No SQL.
 
 use anyhow::Result;
 
 use super::workspace::{absolute, find_workspace};
 use super::{BadInput, ExtractArgs, EXIT_OK};
-use crate::audit;
+use crate::export::extract as audit;
 use crate::store;
 
 /// `rondo extract TARGET --output PATH`.

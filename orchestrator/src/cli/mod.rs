@@ -197,7 +197,7 @@ struct TraceArgs {
     /// How many iterations back to show, counting the target's own: a number, or `all`
     /// (default 2; with --json, all).
     #[arg(long, value_name = "N|all")]
-    depth: Option<crate::audit::Depth>,
+    depth: Option<crate::query::Depth>,
     /// Every attempt in full, not one line each.
     #[arg(long)]
     long: bool,

@@ -26,33 +26,8 @@ pub fn emit_json<T: Serialize + ?Sized>(doc: &T) -> Result<()> {
     Ok(())
 }
 
-/// A value for people: with an error bar, the value to the error's second significant digit
-/// and the error to two digits (`0.92603 ± 0.00025`); without, six decimals, in scientific
-/// notation when it is very small or very large.
-pub fn format_measurement(value: f64, error: Option<f64>) -> String {
-    fn plain(v: f64) -> String {
-        if v == 0.0 {
-            "0".into()
-        } else if (1e-3..1e6).contains(&v.abs()) {
-            format!("{v:.6}")
-        } else if v.is_finite() {
-            format!("{v:.3e}")
-        } else {
-            format!("{v}")
-        }
-    }
-    match error {
-        Some(e) if e.is_finite() && e > 0.0 && value.is_finite() => {
-            let decimals = (1 - e.log10().floor() as i32).max(0) as usize;
-            if decimals > 10 || value.abs() >= 1e6 {
-                format!("{value:.5e} ± {e:.1e}")
-            } else {
-                format!("{value:.decimals$} ± {e:.decimals$}")
-            }
-        }
-        _ => plain(value),
-    }
-}
+/// A value for people (`0.92603 ± 0.00025`): the read side's formatter.
+pub use crate::query::format_measurement;
 
 #[cfg(test)]
 mod tests {

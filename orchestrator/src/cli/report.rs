@@ -2,13 +2,13 @@
 //! terminal.
 //!
 //! Owns the options from the flags and what is said about the result; the report is
-//! [`crate::report`]'s. No SQL.
+//! [`crate::export::report`]'s. No SQL.
 
 use anyhow::Result;
 
 use super::workspace::{absolute, find_workspace};
 use super::{ReportArgs, EXIT_OK};
-use crate::report::{self, ReportOptions};
+use crate::export::report::{self, ReportOptions};
 use crate::store;
 
 /// `rondo report`.

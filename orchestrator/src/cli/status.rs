@@ -3,7 +3,7 @@
 //! `--json` document of docs/json-output.md.
 //!
 //! Owns the status document's shape and its text. The rows come from
-//! [`crate::store::overview`] and the final values from [`crate::analysis`]; no SQL here.
+//! [`crate::store::overview`] and the final values from [`crate::query::analysis`]; no SQL here.
 
 use std::fmt::Write;
 use std::path::Path;
@@ -45,7 +45,7 @@ pub async fn status(ws: &Path) -> Result<Value> {
     let running = store::holder(ws);
     let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
         .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
-    let eos = crate::analysis::latest_eos(&pool, &artifacts).await?;
+    let eos = crate::query::analysis::latest_eos(&pool, &artifacts).await?;
     pool.close().await;
     Ok(json!({
         "campaign": camp.name,
@@ -101,11 +101,11 @@ async fn averages(
     metrics: &Map<String, Value>,
 ) -> Result<Map<String, Value>> {
     let mut averages = Map::new();
-    let (first, last) = crate::analysis::convergence_marks(pool, id).await?;
+    let (first, last) = crate::query::analysis::convergence_marks(pool, id).await?;
     if let (Some(f), Some(l)) = (first, last) {
         if f < l {
             for name in metrics.keys() {
-                if let Some(v) = crate::analysis::final_value(pool, id, name).await? {
+                if let Some(v) = crate::query::analysis::final_value(pool, id, name).await? {
                     averages.insert(
                         name.clone(),
                         json!({
@@ -147,7 +147,7 @@ fn status_text(s: &Value) -> String {
     for p in s["points"].as_array().unwrap_or(&empty) {
         point_lines(&mut out, p);
     }
-    for line in crate::analysis::eos_lines(&s["eos"]) {
+    for line in crate::query::analysis::eos_lines(&s["eos"]) {
         let _ = writeln!(out, "  {line}");
     }
     out

@@ -3,7 +3,7 @@
 //! (with a hashing progress bar) that `rondo export` shares.
 //!
 //! Owns the flags' meaning (depth, long, json) and the error class of a target that does
-//! not resolve (bad input); the lineage itself is [`crate::audit`]'s. No SQL.
+//! not resolve (bad input); the lineage itself is [`crate::query`]'s. No SQL.
 
 use std::path::Path;
 
@@ -13,7 +13,7 @@ use sqlx::SqlitePool;
 use super::output::{emit, emit_json};
 use super::workspace::find_workspace;
 use super::{BadInput, TraceArgs, EXIT_OK};
-use crate::audit::{self, Target};
+use crate::query::{self as audit, Target};
 use crate::store;
 
 /// `rondo trace TARGET`.

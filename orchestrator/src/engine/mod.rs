@@ -605,10 +605,14 @@ impl Engine<'_> {
             }
         } else if let Some(eos) = &self.campaign.eos {
             let store = self.ledger.flush().await?;
-            let doc =
-                crate::analysis::record_eos(store.pool(), &self.paths.root, &self.artifacts, eos)
-                    .await?;
-            for line in crate::analysis::eos_lines(&doc) {
+            let doc = crate::query::analysis::record_eos(
+                store.pool(),
+                &self.paths.root,
+                &self.artifacts,
+                eos,
+            )
+            .await?;
+            for line in crate::query::analysis::eos_lines(&doc) {
                 self.progress.line(line);
             }
         }

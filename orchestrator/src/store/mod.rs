@@ -11,6 +11,7 @@ pub mod ledger;
 pub mod overview;
 #[cfg(test)]
 mod plans;
+pub mod reads;
 pub mod states;
 
 pub use ledger::{Flushed, Ledger};

@@ -4,6 +4,10 @@
 //! artifact (`analysis/eos.json`) and recorded like a report generation, with the attempts
 //! behind every energy as sources, so `rondo trace analysis/eos.json` reaches the programs.
 //! The command recorded with the result, `rondo analyze --workspace W`, computes it again.
+//!
+//! [`record_eos`] is the one function here that writes: the engine calls it at the end of a
+//! campaign (and `rondo analyze` on demand) to record the result with its provenance; its
+//! SQL is in [`crate::store::reads::reports`]. This module knows no engine and no scheduler.
 
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -12,11 +16,12 @@ use anyhow::{Context, Result};
 use rondo_numerics::binning;
 use rondo_numerics::eos::{self, EosModel};
 use serde::Serialize;
-use sqlx::{Row, SqlitePool};
+use sqlx::SqlitePool;
 
 use crate::artifacts::ArtifactStore;
 use crate::spec::{EosAnalysis, EosModelName};
-use crate::store::{self, AttemptState, IterationState, PointState};
+use crate::store::reads::{metrics, points, reports};
+use crate::store::{self, PointState};
 
 /// Role (and file name) of the equation-of-state result among a generation's outputs.
 pub const EOS_ROLE: &str = "eos.json";
@@ -169,20 +174,12 @@ pub async fn convergence_marks(
     pool: &SqlitePool,
     point: &str,
 ) -> Result<(Option<u32>, Option<u32>)> {
-    let rows = sqlx::query(
-        "SELECT iteration, stop_json FROM iterations WHERE point = ? AND state = ? ORDER BY iteration",
-    )
-    .bind(point)
-    .bind(IterationState::Good)
-    .fetch_all(pool)
-    .await?;
     let mut first = None;
     let mut last = None;
-    for r in rows {
-        let it = r.get::<i64, _>("iteration") as u32;
+    for (it, j) in points::good_iterations(pool, point).await? {
+        let it = it as u32;
         last = Some(it);
         if first.is_none() {
-            let j: Option<String> = r.get("stop_json");
             let met = j
                 .and_then(|t| serde_json::from_str::<serde_json::Value>(&t).ok())
                 .is_some_and(|v| v["rules_met"].as_bool().unwrap_or(false));
@@ -208,33 +205,14 @@ pub async fn final_value(
         Some(f) if f < last => f + 1,
         _ => last,
     };
-    let rows = sqlx::query(
-        "SELECT a.id, a.iteration, m.value, m.error FROM metrics m JOIN attempts a ON a.id = m.attempt_id \
-         JOIN iterations i ON i.point = a.point AND i.iteration = a.iteration AND i.state = ? \
-         WHERE a.point = ? AND a.state = ? AND m.name = ? AND a.iteration BETWEEN ? AND ? \
-         ORDER BY a.iteration",
-    )
-    .bind(IterationState::Good)
-    .bind(point)
-    .bind(AttemptState::Succeeded)
-    .bind(metric)
-    .bind(i64::from(from))
-    .bind(i64::from(last))
-    .fetch_all(pool)
-    .await?;
+    let rows = metrics::good_between(pool, point, metric, i64::from(from), i64::from(last)).await?;
     if rows.is_empty() {
         return Ok(None);
     }
-    let values: Vec<f64> = rows.iter().map(|r| r.get::<f64, _>("value")).collect();
-    let errors: Vec<Option<f64>> = rows
-        .iter()
-        .map(|r| r.get::<Option<f64>, _>("error"))
-        .collect();
-    let iterations = rows
-        .iter()
-        .map(|r| r.get::<i64, _>("iteration") as u32)
-        .collect();
-    let attempts = rows.iter().map(|r| r.get::<i64, _>("id")).collect();
+    let values: Vec<f64> = rows.iter().map(|r| r.value).collect();
+    let errors: Vec<Option<f64>> = rows.iter().map(|r| r.error).collect();
+    let iterations = rows.iter().map(|r| r.iteration as u32).collect();
+    let attempts = rows.iter().map(|r| r.attempt).collect();
     if values.len() == 1 {
         return Ok(Some(FinalValue {
             value: values[0],
@@ -272,19 +250,15 @@ pub async fn eos_groups(
     pool: &SqlitePool,
     spec: &EosAnalysis,
 ) -> Result<(Vec<EosGroup>, Vec<i64>)> {
-    let rows = sqlx::query("SELECT id, values_json, state FROM points ORDER BY idx")
-        .fetch_all(pool)
-        .await?;
     let mut groups: Vec<EosGroup> = Vec::new();
     let mut sources = Vec::new();
-    for r in rows {
-        let id: String = r.get("id");
-        let state: PointState = r.try_get("state").with_context(|| format!("point {id}"))?;
-        if state != PointState::Converged {
+    for r in points::all(pool).await? {
+        let id = r.id;
+        if r.state != PointState::Converged {
             continue;
         }
         let values: serde_json::Map<String, serde_json::Value> =
-            serde_json::from_str(&r.get::<String, _>("values_json")).unwrap_or_default();
+            serde_json::from_str(&r.values_json).unwrap_or_default();
         let Some(v) = values.get(&spec.volume).and_then(|v| v.as_f64()) else {
             continue;
         };
@@ -382,41 +356,31 @@ pub async fn record_eos(
         .put_bytes(text.as_bytes())
         .context("cannot store the equation-of-state result")?;
     let exe = OwnProgram::current();
+    let argv_json = serde_json::to_string(&eos_argv(&exe.path, ws))?;
+    let options_json =
+        serde_json::json!({"energy": spec.energy, "volume": spec.volume, "models": spec.models})
+            .to_string();
+    let (out_dir, program_path) = (dir.display().to_string(), exe.path.display().to_string());
+    let (blake3, unknown) = (exe.hash(), exe.unknown());
+    let (host, ended) = (store::hostname(), store::now());
     let mut tx = pool.begin().await?;
     store::artifact(&mut *tx, &hash, size, EOS_ROLE).await?;
-    let id: i64 = sqlx::query_scalar(
-        "INSERT INTO reports(argv_json, out_dir, options_json, program_path, program_blake3, \
-         program_unknown, host, started_at, ended_at, rondo_version) VALUES (?,?,?,?,?,?,?,?,?,?) \
-         RETURNING id",
-    )
-    .bind(serde_json::to_string(&eos_argv(&exe.path, ws))?)
-    .bind(dir.display().to_string())
-    .bind(
-        serde_json::json!({"energy": spec.energy, "volume": spec.volume, "models": spec.models})
-            .to_string(),
-    )
-    .bind(exe.path.display().to_string())
-    .bind(exe.hash())
-    .bind(exe.unknown())
-    .bind(store::hostname())
-    .bind(&started)
-    .bind(store::now())
-    .bind(crate::engine::RONDO_VERSION)
-    .fetch_one(&mut *tx)
-    .await?;
-    sqlx::query("INSERT INTO report_outputs(report_id, role, artifact) VALUES (?, ?, ?)")
-        .bind(id)
-        .bind(EOS_ROLE)
-        .bind(&hash)
-        .execute(&mut *tx)
-        .await?;
+    let generation = reports::NewGeneration {
+        argv_json: &argv_json,
+        out_dir: &out_dir,
+        options_json: &options_json,
+        program_path: &program_path,
+        program_blake3: blake3.as_deref(),
+        program_unknown: unknown.as_deref(),
+        host: &host,
+        started_at: &started,
+        ended_at: &ended,
+        rondo_version: env!("CARGO_PKG_VERSION"),
+    };
+    let id = reports::insert_generation(&mut tx, &generation).await?;
+    reports::insert_output(&mut tx, id, EOS_ROLE, &hash).await?;
     for a in &sources {
-        sqlx::query("INSERT INTO report_sources(report_id, role, attempt_id) VALUES (?, ?, ?)")
-            .bind(id)
-            .bind(EOS_ROLE)
-            .bind(a)
-            .execute(&mut *tx)
-            .await?;
+        reports::insert_source(&mut tx, id, EOS_ROLE, *a).await?;
     }
     store::event(
         &mut *tx,
@@ -433,12 +397,7 @@ pub async fn record_eos(
 
 /// The hash of the latest recorded equation-of-state result, if any.
 pub async fn latest_eos_hash(pool: &SqlitePool) -> Result<Option<String>> {
-    Ok(sqlx::query_scalar(
-        "SELECT o.artifact FROM report_outputs o WHERE o.role = ? ORDER BY o.report_id DESC LIMIT 1",
-    )
-    .bind(EOS_ROLE)
-    .fetch_optional(pool)
-    .await?)
+    reports::latest_output(pool, EOS_ROLE).await
 }
 
 /// The latest recorded equation-of-state result, if any.

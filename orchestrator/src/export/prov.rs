@@ -3,15 +3,18 @@
 //! artifacts are entities, attempts and report generations are activities, the programs
 //! (by BLAKE3) and the user are agents; the campaign file is the plan the user's
 //! association follows.
+//!
+//! Reads through [`crate::query`] and [`crate::store::reads`]; knows no engine and no
+//! scheduler.
 
 use std::collections::{BTreeMap, BTreeSet};
 
 use anyhow::{Context, Result};
 use serde_json::{json, Map, Value};
-use sqlx::{Row, SqlitePool};
+use sqlx::SqlitePool;
 
-use crate::audit::{self, AttemptRecord, Target};
-use crate::store::AttemptState;
+use crate::query::{self, AttemptRecord, StartFile, Target};
+use crate::store::reads::{artifacts, attempts};
 
 /// rondo's namespace: a UUID URN (RFC 9562, the IANA-registered `uuid` namespace) minted
 /// once for rondo from the kernel's random source. Nobody else can mint the same UUID, so
@@ -86,120 +89,85 @@ pub async fn export_as(pool: &SqlitePool, target: Option<&str>, user: &str) -> R
 }
 
 /// Export the lineage of any resolved target (an artifact or a metric; see
-/// [`audit::resolve`]), or of the whole campaign with `None`, naming `user`.
-pub async fn export_target(
+/// The records and start files an export covers: the lineage of `target`, or every
+/// attempt past planning, every generation and every start file.
+async fn records_of(
     pool: &SqlitePool,
     target: Option<&Target>,
-    user: &str,
-) -> Result<Value> {
-    let campaign = audit::campaign(pool).await?;
-    let workspace_id: String = sqlx::query_scalar("SELECT workspace_id FROM campaign WHERE id = 1")
-        .fetch_one(pool)
-        .await?;
-    let (records, start): (Vec<AttemptRecord>, Vec<audit::StartFile>) = match target {
-        Some(t) => {
-            let l = audit::lineage_of(pool, t).await?;
-            (l.attempts, l.sources)
-        }
-        None => {
-            let ids: Vec<i64> =
-                sqlx::query_scalar("SELECT id FROM attempts WHERE state <> ? ORDER BY id")
-                    .bind(AttemptState::Planned)
-                    .fetch_all(pool)
-                    .await?;
-            let mut recs = Vec::new();
-            for id in ids {
-                recs.push(audit::load_attempt(pool, id).await?);
-            }
-            for id in crate::report::report_ids(pool).await? {
-                recs.push(crate::report::load_report(pool, id, None).await?);
-            }
-            let rows = sqlx::query("SELECT name, artifact FROM start_files ORDER BY name")
-                .fetch_all(pool)
-                .await?;
-            let mut sf = Vec::new();
-            for r in rows {
-                sf.push(audit::StartFile {
-                    name: r.try_get(0)?,
-                    hash: r.try_get(1)?,
-                });
-            }
-            (recs, sf)
-        }
-    };
+) -> Result<(Vec<AttemptRecord>, Vec<StartFile>)> {
+    if let Some(t) = target {
+        let l = query::lineage_of(pool, t).await?;
+        return Ok((l.attempts, l.sources));
+    }
+    let mut recs = Vec::new();
+    for id in attempts::started_ids(pool).await? {
+        recs.push(query::load_attempt(pool, id).await?);
+    }
+    for id in query::report_ids(pool).await? {
+        recs.push(query::load_report(pool, id, None).await?);
+    }
+    let sf = artifacts::start_files(pool)
+        .await?
+        .into_iter()
+        .map(|(name, hash)| StartFile { name, hash })
+        .collect();
+    Ok((recs, sf))
+}
+
+/// The artifacts an export names: the target, every artifact for a whole campaign, and
+/// everything the records used or made.
+async fn hashes_of(
+    pool: &SqlitePool,
+    target: Option<&Target>,
+    records: &[AttemptRecord],
+    start: &[StartFile],
+) -> Result<BTreeSet<String>> {
     let mut hashes: BTreeSet<String> = BTreeSet::new();
     if let Some(Target::Artifact { hash }) = target {
         hashes.insert(hash.clone());
     }
     if target.is_none() {
-        let all: Vec<String> = sqlx::query_scalar("SELECT hash FROM artifacts")
-            .fetch_all(pool)
-            .await?;
-        hashes.extend(all);
+        hashes.extend(artifacts::all_hashes(pool).await?);
     }
-    for r in &records {
+    for r in records {
         hashes.extend(r.inputs.values().cloned());
         hashes.extend(r.outputs.values().cloned());
     }
     hashes.extend(start.iter().map(|s| s.hash.clone()));
+    Ok(hashes)
+}
 
-    let mut doc = Doc {
-        entity: Map::new(),
-        activity: Map::new(),
-        agent: Map::new(),
-        relations: BTreeMap::new(),
-        counter: 0,
-    };
-    let start_names: BTreeMap<&str, &str> = start
-        .iter()
-        .map(|s| (s.hash.as_str(), s.name.as_str()))
-        .collect();
-    for h in &hashes {
-        let row =
-            sqlx::query("SELECT size, original_name, created_at FROM artifacts WHERE hash = ?")
-                .bind(h)
-                .fetch_optional(pool)
-                .await?
-                .with_context(|| format!("artifact {h} is used but not recorded"))?;
-        let size: i64 = row.try_get(0)?;
-        let name: String = row.try_get(1)?;
-        let mut e = json!({
-            "prov:type": qname("rondo:Artifact"),
-            "prov:label": name,
-            "rondo:size": size,
-            "rondo:blake3": h,
-            "rondo:storedAt": row.try_get::<String, _>(2)?,
-        });
-        if let Some(sn) = start_names.get(h.as_str()) {
-            e["rondo:startFile"] = json!(sn);
+impl Doc {
+    /// One entity per artifact, start files marked with their `start:` name.
+    async fn add_artifacts(
+        &mut self,
+        pool: &SqlitePool,
+        hashes: &BTreeSet<String>,
+        start: &[StartFile],
+    ) -> Result<()> {
+        let start_names: BTreeMap<&str, &str> = start
+            .iter()
+            .map(|s| (s.hash.as_str(), s.name.as_str()))
+            .collect();
+        for h in hashes {
+            let row = artifacts::artifact(pool, h).await?;
+            let mut e = json!({
+                "prov:type": qname("rondo:Artifact"),
+                "prov:label": row.original_name,
+                "rondo:size": row.size,
+                "rondo:blake3": h,
+                "rondo:storedAt": row.created_at,
+            });
+            if let Some(sn) = start_names.get(h.as_str()) {
+                e["rondo:startFile"] = json!(sn);
+            }
+            self.entity.insert(format!("art:{h}"), e);
         }
-        doc.entity.insert(format!("art:{h}"), e);
+        Ok(())
     }
-    let plan = "rondo:campaign-file".to_string();
-    doc.entity.insert(
-        plan.clone(),
-        json!({
-            "prov:type": qname("prov:Plan"),
-            "prov:label": campaign.spec_path,
-            "rondo:campaign": campaign.name,
-            "rondo:blake3": campaign.spec_blake3,
-        }),
-    );
-    let user_id = format!("user:{}", local(user));
-    doc.agent.insert(
-        user_id.clone(),
-        json!({"prov:type": qname("prov:Person"), "prov:label": user}),
-    );
-    doc.rel(
-        "wasAttributedTo",
-        json!({"prov:entity": plan, "prov:agent": user_id}),
-    );
-    for r in &records {
-        let act = if r.kind == "report" {
-            format!("run:report-{}", r.id)
-        } else {
-            format!("run:attempt-{}", r.id)
-        };
+
+    /// The activity of one attempt or generation.
+    fn add_activity(&mut self, r: &AttemptRecord, act: &str) -> Result<()> {
         let mut a = json!({
             "prov:type": qname(if r.kind == "report" { "rondo:Report" } else { "rondo:Attempt" }),
             "prov:label": match (&r.point, r.iteration) {
@@ -248,12 +216,17 @@ pub async fn export_target(
                 o.insert(format!("rondo:metricError.{}", local(n)), json!(e));
             }
         }
-        doc.activity.insert(act.clone(), a);
-        // the program: by hash; builtin stages and reports are run by rondo itself
-        let agent = match &r.program.blake3 {
+        self.activity.insert(act.to_string(), a);
+        Ok(())
+    }
+
+    /// The agent that ran a record: its program by hash; builtin stages and reports are
+    /// run by rondo itself. Returns the agent's id.
+    fn program_agent(&mut self, r: &AttemptRecord) -> String {
+        match &r.program.blake3 {
             Some(h) if r.kind != "report" => {
                 let id = format!("prog:{h}");
-                if !doc.agent.contains_key(&id) {
+                if !self.agent.contains_key(&id) {
                     let mut ag = json!({
                         "prov:type": qname("prov:SoftwareAgent"),
                         "prov:label": r.program.path.clone().unwrap_or_default(),
@@ -262,13 +235,13 @@ pub async fn export_target(
                     if let Some(v) = &r.program.version {
                         ag["rondo:version"] = json!(v.trim());
                     }
-                    doc.agent.insert(id.clone(), ag);
+                    self.agent.insert(id.clone(), ag);
                 }
                 id
             }
             _ => {
                 let id = format!("rondo:rondo-{}", local(&r.rondo_version));
-                doc.agent.entry(id.clone()).or_insert_with(|| {
+                self.agent.entry(id.clone()).or_insert_with(|| {
                     json!({
                         "prov:type": qname("prov:SoftwareAgent"),
                         "prov:label": format!("rondo {}", r.rondo_version),
@@ -276,34 +249,40 @@ pub async fn export_target(
                 });
                 id
             }
-        };
-        doc.rel(
+        }
+    }
+
+    /// The relations of one record's activity `act`: its associations (program, and the
+    /// user following the plan), what it used and generated, derivations, and the
+    /// attempts a generation read.
+    fn add_relations(&mut self, r: &AttemptRecord, act: &str, agent: &str, user: &str, plan: &str) {
+        self.rel(
             "wasAssociatedWith",
             json!({"prov:activity": act, "prov:agent": agent}),
         );
-        doc.rel(
+        self.rel(
             "wasAssociatedWith",
-            json!({"prov:activity": act, "prov:agent": user_id, "prov:plan": plan}),
+            json!({"prov:activity": act, "prov:agent": user, "prov:plan": plan}),
         );
         for (role, h) in &r.inputs {
-            doc.rel(
+            self.rel(
                 "used",
                 json!({"prov:activity": act, "prov:entity": format!("art:{h}"), "prov:role": role}),
             );
         }
         for (role, h) in &r.outputs {
             let ent = format!("art:{h}");
-            doc.rel(
+            self.rel(
                 "wasGeneratedBy",
                 json!({"prov:entity": ent, "prov:activity": act, "prov:role": role,
                        "prov:time": r.ended_at}),
             );
-            doc.rel(
+            self.rel(
                 "wasAttributedTo",
                 json!({"prov:entity": ent, "prov:agent": agent}),
             );
             for ih in r.inputs.values() {
-                doc.rel(
+                self.rel(
                     "wasDerivedFrom",
                     json!({"prov:generatedEntity": ent, "prov:usedEntity": format!("art:{ih}"),
                            "prov:activity": act}),
@@ -311,40 +290,98 @@ pub async fn export_target(
             }
         }
         for src in &r.sources {
-            doc.rel(
+            self.rel(
                 "wasInformedBy",
                 json!({"prov:informed": act,
                        "prov:informant": format!("run:attempt-{src}")}),
             );
         }
     }
-    // drop null times (an unfinished activity has no end)
-    for rels in doc.relations.values_mut() {
-        for v in rels.values_mut() {
-            if let Some(o) = v.as_object_mut() {
-                o.retain(|_, x| !x.is_null());
+
+    /// The finished PROV-JSON document (null times dropped: an unfinished activity has no
+    /// end), with the prefixes of workspace `workspace_id`.
+    fn into_json(mut self, workspace_id: &str) -> Value {
+        for rels in self.relations.values_mut() {
+            for v in rels.values_mut() {
+                if let Some(o) = v.as_object_mut() {
+                    o.retain(|_, x| !x.is_null());
+                }
             }
         }
+        let mut out = Map::new();
+        out.insert(
+            "prefix".into(),
+            json!({
+                "rondo": NS_RONDO,
+                "art": NS_ARTIFACT,
+                "prog": NS_PROGRAM,
+                "user": NS_USER,
+                "run": format!("{NS_WORKSPACE}{}:", local(workspace_id)),
+                "xsd": "http://www.w3.org/2001/XMLSchema#",
+            }),
+        );
+        out.insert("entity".into(), Value::Object(self.entity));
+        out.insert("activity".into(), Value::Object(self.activity));
+        out.insert("agent".into(), Value::Object(self.agent));
+        for (k, v) in self.relations {
+            out.insert(k.into(), Value::Object(v));
+        }
+        Value::Object(out)
     }
-    let mut out = Map::new();
-    out.insert(
-        "prefix".into(),
+}
+
+/// Export the lineage of any resolved target (an artifact or a metric; see
+/// [`query::resolve`]), or of the whole campaign with `None`, naming `user`.
+pub async fn export_target(
+    pool: &SqlitePool,
+    target: Option<&Target>,
+    user: &str,
+) -> Result<Value> {
+    let campaign = query::campaign(pool).await?;
+    let workspace_id = crate::store::campaign_row(pool)
+        .await?
+        .map(|c| c.workspace_id)
+        .context("this workspace has no campaign recorded")?;
+    let (records, start) = records_of(pool, target).await?;
+    let hashes = hashes_of(pool, target, &records, &start).await?;
+    let mut doc = Doc {
+        entity: Map::new(),
+        activity: Map::new(),
+        agent: Map::new(),
+        relations: BTreeMap::new(),
+        counter: 0,
+    };
+    doc.add_artifacts(pool, &hashes, &start).await?;
+    let plan = "rondo:campaign-file".to_string();
+    doc.entity.insert(
+        plan.clone(),
         json!({
-            "rondo": NS_RONDO,
-            "art": NS_ARTIFACT,
-            "prog": NS_PROGRAM,
-            "user": NS_USER,
-            "run": format!("{NS_WORKSPACE}{}:", local(&workspace_id)),
-            "xsd": "http://www.w3.org/2001/XMLSchema#",
+            "prov:type": qname("prov:Plan"),
+            "prov:label": campaign.spec_path,
+            "rondo:campaign": campaign.name,
+            "rondo:blake3": campaign.spec_blake3,
         }),
     );
-    out.insert("entity".into(), Value::Object(doc.entity));
-    out.insert("activity".into(), Value::Object(doc.activity));
-    out.insert("agent".into(), Value::Object(doc.agent));
-    for (k, v) in doc.relations {
-        out.insert(k.into(), Value::Object(v));
+    let user_id = format!("user:{}", local(user));
+    doc.agent.insert(
+        user_id.clone(),
+        json!({"prov:type": qname("prov:Person"), "prov:label": user}),
+    );
+    doc.rel(
+        "wasAttributedTo",
+        json!({"prov:entity": plan, "prov:agent": user_id}),
+    );
+    for r in &records {
+        let act = if r.kind == "report" {
+            format!("run:report-{}", r.id)
+        } else {
+            format!("run:attempt-{}", r.id)
+        };
+        doc.add_activity(r, &act)?;
+        let agent = doc.program_agent(r);
+        doc.add_relations(r, &act, &agent, &user_id, &plan);
     }
-    Ok(Value::Object(out))
+    Ok(doc.into_json(&workspace_id))
 }
 
 /// Counts of a PROV-JSON document's entities, activities and agents.

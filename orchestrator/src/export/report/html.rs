@@ -1,0 +1,158 @@
+//! The report's tables and page: the converged observables (`observables.csv` and its HTML
+//! table) and `index.html` with the notes, the tables and every figure.
+
+use std::collections::BTreeSet;
+use std::fmt::Write as _;
+
+use anyhow::Result;
+
+use super::data::PointData;
+use super::folder::{axis_text, csv_field, fmt_pm, html_escape, num, opt_num, Folder};
+use super::plot::model_name;
+
+/// The sweep axes of all points, in order of first appearance.
+fn axes_of(points: &[PointData]) -> Vec<String> {
+    let mut a: Vec<String> = Vec::new();
+    for p in points {
+        for k in p.values.keys() {
+            if !a.contains(k) {
+                a.push(k.clone());
+            }
+        }
+    }
+    a
+}
+
+/// `observables.csv` (one row per point and metric at the last good iteration) and the
+/// HTML table of the same (one row per point); returns the table.
+pub fn observables(f: &mut Folder<'_>, points: &[PointData]) -> Result<String> {
+    let axes = axes_of(points);
+    let metric_names: BTreeSet<&String> = points.iter().flat_map(|p| p.metrics.keys()).collect();
+    let mut csv = String::from("point,");
+    for a in &axes {
+        csv.push_str(&csv_field(a));
+        csv.push(',');
+    }
+    csv.push_str("state,iteration,metric,value,error\n");
+    let mut table = String::from("<div class=\"wide\">\n<table>\n<thead><tr><th>point</th>");
+    for a in &axes {
+        let _ = write!(table, "<th>{}</th>", html_escape(a));
+    }
+    table.push_str("<th>state</th><th>iteration</th>");
+    for m in &metric_names {
+        let _ = write!(table, "<th>{}</th>", html_escape(m));
+    }
+    table.push_str("</tr></thead>\n<tbody>\n");
+    let mut src = BTreeSet::new();
+    for p in points {
+        let axis = |a: &String| p.values.get(a).map(axis_text).unwrap_or_default();
+        let _ = write!(table, "<tr><td>{}</td>", html_escape(&p.id));
+        for a in &axes {
+            let _ = write!(table, "<td>{}</td>", axis(a));
+        }
+        let _ = write!(
+            table,
+            "<td class=\"{0}\">{0}</td><td>{1}</td>",
+            html_escape(p.state.as_str()),
+            p.last_good
+                .map(|i| i.to_string())
+                .unwrap_or_else(|| "-".into())
+        );
+        for m in &metric_names {
+            let Some(s) = p.converged(m) else {
+                table.push_str("<td>-</td>");
+                continue;
+            };
+            src.insert(s.attempt);
+            let _ = write!(table, "<td>{}</td>", fmt_pm(s.value, s.error));
+            let _ = write!(csv, "{},", csv_field(&p.id));
+            for a in &axes {
+                let _ = write!(csv, "{},", csv_field(&axis(a)));
+            }
+            let _ = writeln!(
+                csv,
+                "{},{},{},{},{}",
+                p.state,
+                p.last_good.unwrap_or(0),
+                csv_field(m),
+                num(s.value),
+                opt_num(s.error)
+            );
+        }
+        table.push_str("</tr>\n");
+    }
+    table.push_str("</tbody>\n</table>\n</div>\n");
+    f.write("observables.csv", &csv)?;
+    f.publish(&["observables.csv".to_string()], &src);
+    Ok(table)
+}
+
+/// The head of `index.html`, with its style sheet, up to the campaign's heading.
+fn head(campaign: &str) -> String {
+    format!(
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
+         <title>rondo report: {c}</title>\n<style>\n\
+         body {{ font-family: sans-serif; margin: 2em; color: #222; background: #fff; }}\n\
+         figure {{ margin: 1.5em 0; }} img {{ max-width: 100%; border: 1px solid #ccc; }}\n\
+         table {{ border-collapse: collapse; font-size: 0.9em; }}\n\
+         th, td {{ border: 1px solid #bbb; padding: 0.25em 0.6em; text-align: right; white-space: nowrap; }}\n\
+         th {{ background: #eef; }} td.failed, td.capped {{ color: #b00; }}\n\
+         .notes li {{ color: #a50; }} .wide {{ overflow-x: auto; }}\n</style>\n</head>\n<body>\n\
+         <h1>Campaign {c}</h1>\n",
+        c = html_escape(campaign)
+    )
+}
+
+/// The equation-of-state section of `index.html` (empty without fits).
+fn eos_section(f: &Folder<'_>) -> String {
+    let mut html = String::new();
+    if f.eos_rows.is_empty() {
+        return html;
+    }
+    html.push_str("<h2>Equation-of-state fits</h2>\n<p>Data: <a href=\"eos-fits.csv\">eos-fits.csv</a>.</p>\n<table>\n<thead><tr><th>temperature</th><th>model</th><th>E0 (eV)</th><th>V0 (Å³)</th><th>B0 (GPa)</th><th>B0′</th></tr></thead>\n<tbody>\n");
+    for r in &f.eos_rows {
+        let fit = &r.fit;
+        let _ = writeln!(
+            html,
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            r.temperature.map(|t| format!("{t} K")).unwrap_or_default(),
+            model_name(fit.model),
+            fmt_pm(fit.e0, Some(fit.stderr[0])),
+            fmt_pm(fit.v0, Some(fit.stderr[1])),
+            fmt_pm(fit.b0_gpa, Some(fit.b0_gpa_stderr)),
+            fmt_pm(fit.b0_prime, Some(fit.stderr[3]))
+        );
+    }
+    html.push_str("</tbody>\n</table>\n");
+    html
+}
+
+/// Write `index.html`: notes, the observables `table`, the fits, every figure.
+pub fn index(f: &Folder<'_>, campaign: &str, table: &str) -> Result<()> {
+    let mut html = head(campaign);
+    if !f.notes.is_empty() {
+        html.push_str("<h2>Notes</h2>\n<ul class=\"notes\">\n");
+        for n in &f.notes {
+            let _ = writeln!(html, "<li>{}</li>", html_escape(n));
+        }
+        html.push_str("</ul>\n");
+    }
+    html.push_str("<h2>Converged observables</h2>\n<p>Values at each point's last good iteration; ± is the standard error the stage reported. Data: <a href=\"observables.csv\">observables.csv</a>.</p>\n");
+    html.push_str(table);
+    html.push_str(&eos_section(f));
+    html.push_str("<h2>Figures</h2>\n");
+    for fig in &f.figures {
+        let _ = writeln!(
+            html,
+            "<figure id=\"{n}\">\n<img src=\"{png}\" alt=\"{t}\">\n<figcaption>{t} — \
+             <a href=\"{svg}\">SVG</a>, <a href=\"{png}\">PNG</a>, data <a href=\"{csv}\">{csv}</a></figcaption>\n</figure>",
+            n = html_escape(&fig.name),
+            png = html_escape(&fig.png),
+            svg = html_escape(&fig.svg),
+            csv = html_escape(&fig.csv),
+            t = html_escape(&fig.title)
+        );
+    }
+    html.push_str("</body>\n</html>\n");
+    f.write("index.html", &html)
+}

@@ -1,0 +1,88 @@
+//! Reads of the `artifacts` and `start_files` tables.
+
+use anyhow::{Context, Result};
+use sqlx::{Row, SqlitePool};
+
+/// Whether an artifact with this hash is recorded.
+pub async fn is_recorded(pool: &SqlitePool, hash: &str) -> Result<bool> {
+    let known: Option<String> = sqlx::query_scalar("SELECT hash FROM artifacts WHERE hash = ?")
+        .bind(hash)
+        .fetch_optional(pool)
+        .await?;
+    Ok(known.is_some())
+}
+
+/// Hashes starting with `prefix` (lower-case hex), in order, at most `limit`.
+pub async fn with_prefix(pool: &SqlitePool, prefix: &str, limit: i64) -> Result<Vec<String>> {
+    Ok(sqlx::query_scalar(
+        "SELECT hash FROM artifacts WHERE hash LIKE ? || '%' ORDER BY hash LIMIT ?",
+    )
+    .bind(prefix)
+    .bind(limit)
+    .fetch_all(pool)
+    .await?)
+}
+
+/// The name an artifact was first recorded under.
+pub async fn original_name(pool: &SqlitePool, hash: &str) -> Result<String> {
+    Ok(
+        sqlx::query_scalar("SELECT original_name FROM artifacts WHERE hash = ?")
+            .bind(hash)
+            .fetch_one(pool)
+            .await?,
+    )
+}
+
+/// One `artifacts` row.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ArtifactRow {
+    /// Size in bytes.
+    pub size: i64,
+    /// Name it was first recorded under.
+    pub original_name: String,
+    /// When it was first recorded.
+    pub created_at: String,
+}
+
+/// The row of an artifact; an error naming the hash when it is not recorded.
+pub async fn artifact(pool: &SqlitePool, hash: &str) -> Result<ArtifactRow> {
+    let row = sqlx::query("SELECT size, original_name, created_at FROM artifacts WHERE hash = ?")
+        .bind(hash)
+        .fetch_optional(pool)
+        .await?
+        .with_context(|| format!("artifact {hash} is used but not recorded"))?;
+    Ok(ArtifactRow {
+        size: row.try_get(0)?,
+        original_name: row.try_get(1)?,
+        created_at: row.try_get(2)?,
+    })
+}
+
+/// Every recorded hash.
+pub async fn all_hashes(pool: &SqlitePool) -> Result<Vec<String>> {
+    Ok(sqlx::query_scalar("SELECT hash FROM artifacts")
+        .fetch_all(pool)
+        .await?)
+}
+
+/// The `start:` names an artifact was given as a campaign start file, in order.
+pub async fn start_file_names(pool: &SqlitePool, hash: &str) -> Result<Vec<String>> {
+    Ok(
+        sqlx::query_scalar("SELECT name FROM start_files WHERE artifact = ? ORDER BY name")
+            .bind(hash)
+            .fetch_all(pool)
+            .await?,
+    )
+}
+
+/// Every start file as (name, artifact hash), by name.
+pub async fn start_files(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
+    let rows = sqlx::query("SELECT name, artifact FROM start_files ORDER BY name")
+        .fetch_all(pool)
+        .await?;
+    let mut out = Vec::new();
+    for r in rows {
+        out.push((r.try_get(0)?, r.try_get(1)?));
+    }
+    Ok(out)
+}

@@ -1,0 +1,107 @@
+//! Reads of the `points` and `iterations` tables.
+
+use anyhow::{Context, Result};
+use sqlx::{Row, SqlitePool};
+
+use crate::store::{IterationState, PointState};
+
+/// Point ids, in sweep order.
+pub async fn ids(pool: &SqlitePool) -> Result<Vec<String>> {
+    Ok(sqlx::query_scalar("SELECT id FROM points ORDER BY idx")
+        .fetch_all(pool)
+        .await?)
+}
+
+/// One `points` row, its sweep values still as JSON text.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct PointRow {
+    /// Point id.
+    pub id: String,
+    /// `values_json`.
+    pub values_json: String,
+    /// State.
+    pub state: PointState,
+}
+
+/// Every point, in sweep order.
+pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
+    let rows = sqlx::query("SELECT id, values_json, state FROM points ORDER BY idx")
+        .fetch_all(pool)
+        .await
+        .context("cannot read the points")?;
+    let mut out = Vec::new();
+    for r in rows {
+        let id: String = r.try_get(0)?;
+        let state = r
+            .try_get::<PointState, _>(2)
+            .with_context(|| format!("point {id}"))?;
+        out.push(PointRow {
+            values_json: r.try_get(1)?,
+            state,
+            id,
+        });
+    }
+    Ok(out)
+}
+
+/// Every point as (id, values_json), in sweep order (the state not decoded).
+pub async fn values(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
+    let rows = sqlx::query("SELECT id, values_json FROM points ORDER BY idx")
+        .fetch_all(pool)
+        .await?;
+    let mut out = Vec::new();
+    for r in rows {
+        out.push((r.try_get(0)?, r.try_get(1)?));
+    }
+    Ok(out)
+}
+
+/// One point's (values_json, state).
+pub async fn point(pool: &SqlitePool, id: &str) -> Result<(String, PointState)> {
+    let r = sqlx::query("SELECT values_json, state FROM points WHERE id = ?")
+        .bind(id)
+        .fetch_one(pool)
+        .await?;
+    Ok((r.try_get(0)?, r.try_get(1)?))
+}
+
+/// A point's last good iteration, if it has one.
+pub async fn last_good_iteration(pool: &SqlitePool, point: &str) -> Result<Option<i64>> {
+    Ok(
+        sqlx::query_scalar("SELECT MAX(iteration) FROM iterations WHERE point = ? AND state = ?")
+            .bind(point)
+            .bind(IterationState::Good)
+            .fetch_one(pool)
+            .await?,
+    )
+}
+
+/// Every point's last good iteration, as (point, iteration).
+pub async fn last_good_iterations(pool: &SqlitePool) -> Result<Vec<(String, Option<i64>)>> {
+    let rows =
+        sqlx::query("SELECT point, MAX(iteration) FROM iterations WHERE state = ? GROUP BY point")
+            .bind(IterationState::Good)
+            .fetch_all(pool)
+            .await?;
+    let mut out = Vec::new();
+    for r in rows {
+        out.push((r.try_get(0)?, r.try_get(1)?));
+    }
+    Ok(out)
+}
+
+/// A point's good iterations with their `stop_json`, in order.
+pub async fn good_iterations(pool: &SqlitePool, point: &str) -> Result<Vec<(i64, Option<String>)>> {
+    let rows = sqlx::query(
+        "SELECT iteration, stop_json FROM iterations WHERE point = ? AND state = ? ORDER BY iteration",
+    )
+    .bind(point)
+    .bind(IterationState::Good)
+    .fetch_all(pool)
+    .await?;
+    let mut out = Vec::new();
+    for r in rows {
+        out.push((r.try_get("iteration")?, r.try_get("stop_json")?));
+    }
+    Ok(out)
+}
