@@ -174,21 +174,8 @@ pub async fn convergence_marks(
     pool: &SqlitePool,
     point: &str,
 ) -> Result<(Option<u32>, Option<u32>)> {
-    let mut first = None;
-    let mut last = None;
-    for (it, j) in points::good_iterations(pool, point).await? {
-        let it = it as u32;
-        last = Some(it);
-        if first.is_none() {
-            let met = j
-                .and_then(|t| serde_json::from_str::<serde_json::Value>(&t).ok())
-                .is_some_and(|v| v["rules_met"].as_bool().unwrap_or(false));
-            if met {
-                first = Some(it);
-            }
-        }
-    }
-    Ok((first, last))
+    let (first, last) = points::convergence_marks(pool, point).await?;
+    Ok((first.map(|i| i as u32), last.map(|i| i as u32)))
 }
 
 /// Final value of `metric` (`stage.metric`) for a point: the mean over the iterations after

@@ -162,14 +162,10 @@ impl Flushed<'_> {
 
     /// The first good iteration of a point whose stopping rules were met.
     pub async fn first_rules_met(&self, point: &str) -> Result<Option<u32>> {
-        let first: Option<i64> = sqlx::query_scalar(
-            "SELECT min(iteration) FROM iterations WHERE point = ? AND state = ? \
-             AND json_extract(stop_json, '$.rules_met') = 1",
-        )
-        .bind(point)
-        .bind(IterationState::Good)
-        .fetch_one(self.pool)
-        .await?;
+        let first: Option<i64> = sqlx::query_scalar(super::reads::points::FIRST_RULES_MET)
+            .bind(point)
+            .fetch_one(self.pool)
+            .await?;
         Ok(first.map(|i| i as u32))
     }
 

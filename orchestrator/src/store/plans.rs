@@ -16,6 +16,11 @@ fn hot_queries() -> Vec<(&'static str, String)> {
         ("last programs", attempts::LAST_PROGRAMS.to_string()),
         ("next attempt id", attempts::NEXT_ATTEMPT_ID.to_string()),
         ("outstanding attempts", attempts::outstanding_sql()),
+        (
+            "first rules met",
+            reads::points::FIRST_RULES_MET.to_string(),
+        ),
+        ("last good iteration", reads::points::LAST_GOOD.to_string()),
     ]
 }
 

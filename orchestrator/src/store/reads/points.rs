@@ -91,17 +91,28 @@ pub async fn last_good_iterations(pool: &SqlitePool) -> Result<Vec<(String, Opti
 }
 
 /// A point's good iterations with their `stop_json`, in order.
-pub async fn good_iterations(pool: &SqlitePool, point: &str) -> Result<Vec<(i64, Option<String>)>> {
-    let rows = sqlx::query(
-        "SELECT iteration, stop_json FROM iterations WHERE point = ? AND state = ? ORDER BY iteration",
-    )
-    .bind(point)
-    .bind(IterationState::Good)
-    .fetch_all(pool)
-    .await?;
-    let mut out = Vec::new();
-    for r in rows {
-        out.push((r.try_get("iteration")?, r.try_get("stop_json")?));
-    }
-    Ok(out)
+/// A point's first iteration whose stopping rules were met (through the partial index
+/// `iterations_rules_met`: one look-up, whatever the length of the history).
+pub(crate) const FIRST_RULES_MET: &str = "SELECT min(iteration) FROM iterations \
+     WHERE point = ? AND json_extract(stop_json, '$.rules_met') = 1";
+
+/// A point's last good iteration (reading back from its last one).
+pub(crate) const LAST_GOOD: &str =
+    "SELECT iteration FROM iterations WHERE point = ? AND state = ? ORDER BY iteration DESC LIMIT 1";
+
+/// A point's first good iteration with its stopping rules met, and its last good iteration.
+pub async fn convergence_marks(
+    pool: &SqlitePool,
+    point: &str,
+) -> Result<(Option<i64>, Option<i64>)> {
+    let first: Option<i64> = sqlx::query_scalar(FIRST_RULES_MET)
+        .bind(point)
+        .fetch_one(pool)
+        .await?;
+    let last: Option<i64> = sqlx::query_scalar(LAST_GOOD)
+        .bind(point)
+        .bind(IterationState::Good)
+        .fetch_optional(pool)
+        .await?;
+    Ok((first, last))
 }
