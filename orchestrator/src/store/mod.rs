@@ -64,6 +64,13 @@ pub fn migrator() -> Migrator {
             include_str!("../../migrations/0004_program_hash_unknown.sql").into(),
             false,
         ),
+        Migration::new(
+            5,
+            "rules met index".into(),
+            MigrationType::Simple,
+            include_str!("../../migrations/0005_rules_met_index.sql").into(),
+            false,
+        ),
     ];
     Migrator {
         migrations: m.into(),
