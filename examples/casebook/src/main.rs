@@ -179,7 +179,7 @@ fn run(cli: Cli) -> Result<()> {
         ),
         Command::Band { case } => {
             let c = Case::open(&case)?;
-            steps::band(&c, &steps::band_setup(&c)?)
+            steps::band(&c, &steps::band_setup(&c)?, false)
         }
         Command::Project { case } => steps::project(&Case::open(&case)?),
         Command::Solve { case, seed, sweeps } => steps::solve(&Case::open(&case)?, seed, sweeps),

@@ -274,9 +274,10 @@ pub fn band_setup(case: &Case) -> Result<BandSetup> {
 }
 
 /// `casebook band`: H(k) for the current density; rewrites hamiltonian, eigen, levels.
-pub fn band(case: &Case, setup: &BandSetup) -> Result<()> {
+/// A repeated one-shot band stays in its iteration; every resident hand-off starts a new one.
+pub fn band(case: &Case, setup: &BandSetup, resident: bool) -> Result<()> {
     let status = case::require_after(case, "band", &["init", "update", "band"])?;
-    let iteration = if status.last == "band" {
+    let iteration = if status.last == "band" && !resident {
         status.iteration
     } else {
         status.iteration + 1
