@@ -149,12 +149,13 @@ pub fn init_case(dir: &Path, name: &str, s: &Setup, extra: &[&str]) -> PathBuf {
     dir.join(name)
 }
 
-/// Every value of the log lines `:: LABEL = value unit` (in order), with the unit.
+/// Every number of the log lines `:: LABEL = value unit` (in order), with the unit; lines
+/// that carry a word instead (unit `-`) are left out.
 pub fn log_values(log: &str, label: &str) -> Vec<(f64, String)> {
     log.lines()
         .filter_map(|l| l.strip_prefix(":: "))
         .filter_map(|l| l.split_once('='))
-        .filter(|(k, _)| k.trim() == label)
+        .filter(|(k, v)| k.trim() == label && !v.trim_end().ends_with(" -"))
         .map(|(_, v)| {
             let toks: Vec<&str> = v.split_whitespace().collect();
             let x: f64 = toks
