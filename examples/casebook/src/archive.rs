@@ -86,7 +86,10 @@ impl Archive {
             .map_err(h5err(&self.shown, &what))?;
         let data: Vec<f64> = ds.read_raw().map_err(h5err(&self.shown, &what))?;
         if data.iter().any(|x| !x.is_finite()) {
-            bail!("{}: /impurity/{name} holds NaN or infinite values", self.shown);
+            bail!(
+                "{}: /impurity/{name} holds NaN or infinite values",
+                self.shown
+            );
         }
         Ok((ds.shape(), data))
     }
@@ -136,7 +139,10 @@ impl Archive {
             .and_then(|a| a.read_scalar())
             .map_err(h5err(&self.shown, &what))?;
         if !v.is_finite() {
-            bail!("{}: the attribute {name} of /impurity is not finite", self.shown);
+            bail!(
+                "{}: the attribute {name} of /impurity is not finite",
+                self.shown
+            );
         }
         Ok(v)
     }

@@ -183,9 +183,7 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Project { case } => steps::project(&Case::open(&case)?),
         Command::Solve { case, seed, sweeps } => steps::solve(&Case::open(&case)?, seed, sweeps),
-        Command::Update { case, restart_mib } => {
-            steps::update(&Case::open(&case)?, restart_mib)
-        }
+        Command::Update { case, restart_mib } => steps::update(&Case::open(&case)?, restart_mib),
         Command::Restore { case } => steps::restore(&Case::open(&case)?),
         Command::Serve { case, poll_ms } => {
             serve::serve(&Case::open(&case)?, Duration::from_millis(poll_ms))

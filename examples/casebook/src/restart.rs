@@ -75,7 +75,10 @@ pub fn read(path: &Path) -> Result<(u64, Vec<f64>)> {
             .map(u64::from_le_bytes)
     };
     if bytes.get(..8) != Some(MAGIC.as_slice()) {
-        bail!("{}: not a casebook restart file (bad magic)", path.display());
+        bail!(
+            "{}: not a casebook restart file (bad magic)",
+            path.display()
+        );
     }
     let (Some(iteration), Some(total), Some(n)) = (word(0), word(1), word(2)) else {
         bail!("{}: restart header is truncated", path.display());
@@ -90,7 +93,6 @@ pub fn read(path: &Path) -> Result<(u64, Vec<f64>)> {
     let state: Option<Vec<f64>> = (0..n as usize)
         .map(|i| word(3 + i).map(f64::from_bits))
         .collect();
-    let state =
-        state.with_context(|| format!("{}: restart state is truncated", path.display()))?;
+    let state = state.with_context(|| format!("{}: restart state is truncated", path.display()))?;
     Ok((iteration, state))
 }

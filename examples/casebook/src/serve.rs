@@ -24,8 +24,8 @@ pub const INPUT: &str = "density";
 fn publish(dir: &Path, name: &str, bytes: &[u8]) -> Result<()> {
     let tmp = dir.join(format!(".{name}.tmp"));
     let dest = dir.join(name);
-    let mut f = std::fs::File::create(&tmp)
-        .with_context(|| format!("{}: cannot create", tmp.display()))?;
+    let mut f =
+        std::fs::File::create(&tmp).with_context(|| format!("{}: cannot create", tmp.display()))?;
     f.write_all(bytes)
         .and_then(|_| f.sync_all())
         .with_context(|| format!("{}: cannot write", tmp.display()))?;
@@ -112,8 +112,7 @@ fn handle(case: &Case, setup: &BandSetup, dir: &Path) -> Result<Vec<(String, u64
 pub fn serve(case: &Case, poll: Duration) -> Result<()> {
     let setup = steps::band_setup(case)?;
     let root = case.handoff();
-    std::fs::create_dir_all(&root)
-        .with_context(|| format!("{}: cannot create", root.display()))?;
+    std::fs::create_dir_all(&root).with_context(|| format!("{}: cannot create", root.display()))?;
     let ready = root.join("ready");
     if let Some(pid) = ready_pid(&ready) {
         if pid_alive(pid) && pid != std::process::id() as i32 {
@@ -135,14 +134,22 @@ pub fn serve(case: &Case, poll: Duration) -> Result<()> {
         std::process::id()
     );
     publish(&root, "ready", ready_text.as_bytes())?;
-    journal(&case.file("journal"), "serve", &format!("ready, last hand-off {last}"))?;
+    journal(
+        &case.file("journal"),
+        "serve",
+        &format!("ready, last hand-off {last}"),
+    )?;
     let stop = root.join("stop");
     loop {
         if stop.exists() {
             let _ = std::fs::remove_file(&ready);
             let _ = std::fs::remove_file(&stop);
             sync_dir(&root)?;
-            return journal(&case.file("journal"), "serve", &format!("stopped after {last}"));
+            return journal(
+                &case.file("journal"),
+                "serve",
+                &format!("stopped after {last}"),
+            );
         }
         for (n, go, done) in scan(&root)? {
             if !go || done {
@@ -161,7 +168,11 @@ pub fn serve(case: &Case, poll: Duration) -> Result<()> {
             };
             publish(&dir, "done", text.as_bytes())?;
             let status = text.lines().nth(2).unwrap_or_default().to_string();
-            journal(&case.file("journal"), "serve", &format!("hand-off {n} {status}"))?;
+            journal(
+                &case.file("journal"),
+                "serve",
+                &format!("hand-off {n} {status}"),
+            )?;
         }
         std::thread::sleep(poll);
     }

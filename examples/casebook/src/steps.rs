@@ -137,13 +137,22 @@ pub fn init(dir: &Path, a: &InitArgs) -> Result<()> {
         .parse::<SolverKind>()
         .map_err(|e| anyhow::anyhow!("--solver: {e}"))?;
     if !(a.volume.is_finite() && a.volume > 0.0) {
-        bail!("--volume must be a finite positive number of Å³, got {}", a.volume);
+        bail!(
+            "--volume must be a finite positive number of Å³, got {}",
+            a.volume
+        );
     }
     if !(a.electrons.is_finite() && a.electrons > 0.0 && a.electrons < 4.0) {
-        bail!("--electrons must lie in (0, 4) per site, got {}", a.electrons);
+        bail!(
+            "--electrons must lie in (0, 4) per site, got {}",
+            a.electrons
+        );
     }
     if !(a.u.is_finite() && a.u >= 0.0) {
-        bail!("--u must be a finite non-negative number of eV, got {}", a.u);
+        bail!(
+            "--u must be a finite non-negative number of eV, got {}",
+            a.u
+        );
     }
     msio::beta_from_temperature(a.temperature).context("--temperature")?;
     if a.restart_mib > restart::MAX_MIB {
@@ -174,7 +183,14 @@ pub fn init(dir: &Path, a: &InitArgs) -> Result<()> {
         mesh.len()
     );
     for p in &mesh {
-        let _ = writeln!(k, "k = {} {} {} {}", p.m[0], p.m[1], p.m[2], exact(p.weight));
+        let _ = writeln!(
+            k,
+            "k = {} {} {} {}",
+            p.m[0],
+            p.m[1],
+            p.m[2],
+            exact(p.weight)
+        );
     }
     write_text(&case.file("kpoints"), &k)?;
     write_text(
@@ -195,7 +211,10 @@ pub fn init(dir: &Path, a: &InitArgs) -> Result<()> {
         &restart_state(&density, &sigma),
     )?;
     for step in ["band", "project", "solve", "update"] {
-        write_text(&case.file(&format!("{step}.out")), &format!("{step}: not run yet\n"))?;
+        write_text(
+            &case.file(&format!("{step}.out")),
+            &format!("{step}: not run yet\n"),
+        )?;
     }
     write_text(&case.file("levels"), "# written by band\n")?;
     write_text(&case.file("eigen"), "# written by band\n")?;
@@ -310,7 +329,13 @@ pub fn band(case: &Case, setup: &BandSetup, resident: bool) -> Result<()> {
     }
     write_text(&case.file("eigen"), &text)?;
     let m = &res.metrics;
-    let keys = ["hopping", "hybridization", "eps_f", "bandwidth", "band_energy"];
+    let keys = [
+        "hopping",
+        "hybridization",
+        "eps_f",
+        "bandwidth",
+        "band_energy",
+    ];
     let entries: Vec<(&str, String)> = keys.iter().map(|k| (*k, exact(m[k]))).collect();
     write_kv(
         &case.file("levels"),
@@ -445,9 +470,18 @@ pub fn solve(case: &Case, seed: Option<u64>, sweeps: Option<u64>) -> Result<()> 
     ar.write_complex("g", &res.g)?;
     let n_f = res.metrics.get("n_f").map(|m| m.0).unwrap_or(f64::NAN);
     let half = |k: &str| res.metrics.get(k).map(|m| m.0).unwrap_or(0.5 * n_f);
-    ar.write_real("density_matrix", &[2, 2], &[half("n_up"), 0.0, 0.0, half("n_dn")])?;
+    ar.write_real(
+        "density_matrix",
+        &[2, 2],
+        &[half("n_up"), 0.0, 0.0, half("n_dn")],
+    )?;
     if let Some(it) = &res.imaginary_time {
-        let gl: Vec<f64> = it.gl.iter().zip(&it.gl_err).flat_map(|(v, e)| [*v, *e]).collect();
+        let gl: Vec<f64> = it
+            .gl
+            .iter()
+            .zip(&it.gl_err)
+            .flat_map(|(v, e)| [*v, *e])
+            .collect();
         ar.write_real("gl", &[it.gl.len(), 2], &gl)?;
         let gt: Vec<f64> = (0..it.tau.len())
             .flat_map(|i| [it.tau[i], it.g_tau[i], it.g_tau_err[i]])
@@ -458,9 +492,16 @@ pub fn solve(case: &Case, seed: Option<u64>, sweeps: Option<u64>) -> Result<()> 
     ar.set_attr("u", ctl.u)?;
     ar.flush()?;
     let mut b = Block::new("solve", status.iteration);
-    let mut text = format!("# impurity metrics of iteration {}: name value [error]\n", status.iteration);
+    let mut text = format!(
+        "# impurity metrics of iteration {}: name value [error]\n",
+        status.iteration
+    );
     for (k, (v, e)) in &res.metrics {
-        let unit = if ENERGY_METRICS.contains(k) { Unit::Ry } else { Unit::One };
+        let unit = if ENERGY_METRICS.contains(k) {
+            Unit::Ry
+        } else {
+            Unit::One
+        };
         let label = format!("impurity {k}");
         match e {
             Some(e) => b.val_err(&label, *v, *e, unit),
@@ -477,7 +518,10 @@ pub fn solve(case: &Case, seed: Option<u64>, sweeps: Option<u64>) -> Result<()> 
     write_text(&case.file("atomic"), &text)?;
     write_text(
         &case.file("solve.out"),
-        &format!("solve ({:?}), iteration {}\n{text}", ctl.solver, status.iteration),
+        &format!(
+            "solve ({:?}), iteration {}\n{text}",
+            ctl.solver, status.iteration
+        ),
     )?;
     case::write_status(
         case,
@@ -506,7 +550,11 @@ pub fn update(case: &Case, restart_mib: Option<u64>) -> Result<()> {
         );
     }
     // A repeated update starts again from the density the first one started from.
-    let prev_file = if status.last == "update" { "density.prev" } else { "density" };
+    let prev_file = if status.last == "update" {
+        "density.prev"
+    } else {
+        "density"
+    };
     let prev = case::read_density(&case.file(prev_file))?;
     let res = update::update(&DEMO, &mesh, &sigma, ctl.beta, ctl.electrons, volume, &prev)
         .with_context(|| format!("{}: density update failed", case.dir.display()))?;
@@ -579,7 +627,11 @@ pub fn restore(case: &Case) -> Result<()> {
     let path = case.file("restart");
     let (iteration, state) = restart::read(&path)?;
     if state.len() < 4 || state.len() % 2 != 0 {
-        bail!("{}: restart state has {} values, expected 4 + 2 n_w", path.display(), state.len());
+        bail!(
+            "{}: restart state has {} values, expected 4 + 2 n_w",
+            path.display(),
+            state.len()
+        );
     }
     let density = Density {
         n_f: state[0],
@@ -606,5 +658,9 @@ pub fn restore(case: &Case) -> Result<()> {
             last: if iteration == 0 { "init" } else { "update" }.into(),
         },
     )?;
-    journal(&case.file("journal"), "restore", &format!("iteration {iteration}"))
+    journal(
+        &case.file("journal"),
+        "restore",
+        &format!("iteration {iteration}"),
+    )
 }

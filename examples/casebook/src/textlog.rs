@@ -69,11 +69,7 @@ impl Block {
     pub fn val_err(&mut self, label: &str, value: f64, error: f64, unit: Unit) -> &mut Self {
         let v = format!("{:e}", unit.convert(value));
         let e = format!("{:e}", unit.convert(error));
-        let _ = writeln!(
-            self.text,
-            ":: {label:<28}= {v:>25} +- {e} {}",
-            unit.label()
-        );
+        let _ = writeln!(self.text, ":: {label:<28}= {v:>25} +- {e} {}", unit.label());
         self
     }
 
@@ -128,18 +124,36 @@ mod tests {
     fn numbers_read_back_exactly() {
         let mut b = Block::new("update", 3);
         let e = -1.730_086_564_123_456_7_f64;
-        b.val("total energy", e, Unit::Ry).val("f charge", 0.1 + 0.2, Unit::One);
+        b.val("total energy", e, Unit::Ry)
+            .val("f charge", 0.1 + 0.2, Unit::One);
         let text = &b.text;
         let line = text
             .lines()
             .find(|l| l.starts_with(":: total energy"))
             .unwrap_or_default();
-        let tok = line.split('=').nth(1).unwrap_or_default().split_whitespace();
-        let ry: f64 = tok.clone().next().unwrap_or_default().parse().unwrap_or(0.0);
+        let tok = line
+            .split('=')
+            .nth(1)
+            .unwrap_or_default()
+            .split_whitespace();
+        let ry: f64 = tok
+            .clone()
+            .next()
+            .unwrap_or_default()
+            .parse()
+            .unwrap_or(0.0);
         assert_eq!(ry, e / RYDBERG_EV);
         assert_eq!(tok.last(), Some("Ry"));
-        let line = text.lines().find(|l| l.contains("f charge")).unwrap_or_default();
-        let n: f64 = line.split_whitespace().nth(4).unwrap_or_default().parse().unwrap_or(0.0);
+        let line = text
+            .lines()
+            .find(|l| l.contains("f charge"))
+            .unwrap_or_default();
+        let n: f64 = line
+            .split_whitespace()
+            .nth(4)
+            .unwrap_or_default()
+            .parse()
+            .unwrap_or(0.0);
         assert_eq!(n.to_bits(), (0.1_f64 + 0.2).to_bits());
     }
 }

@@ -33,9 +33,25 @@ fn model_solid_iteration(dir: &Path, s: &Setup) {
         "--temperature", s.temperature, "--emin", "-10", "--emax", "10",
         "--out-delta", "delta.npy", "--out-levels", "levels.json", "--out-gloc", "gloc.npy",
         "--metrics", "project.json"]);
-    let mut solve = vec!["solve", "--delta", "delta.npy", "--levels", "levels.json",
-        "--u", s.u, "--solver", s.solver, "--seed", s.seed, "--out-sigma", "sigma.npy",
-        "--out-g", "g.npy", "--metrics", "solve.json"];
+    let mut solve = vec![
+        "solve",
+        "--delta",
+        "delta.npy",
+        "--levels",
+        "levels.json",
+        "--u",
+        s.u,
+        "--solver",
+        s.solver,
+        "--seed",
+        s.seed,
+        "--out-sigma",
+        "sigma.npy",
+        "--out-g",
+        "g.npy",
+        "--metrics",
+        "solve.json",
+    ];
     if let Some(sw) = s.sweeps {
         solve.extend(["--sweeps", sw]);
     }
@@ -62,7 +78,10 @@ fn assert_logged_energy(case: &Path, label: &str, ev: f64) {
     assert_same(&format!("log `{label}` (Ry)"), ry, ev / RYDBERG_EV);
     let back = ry * RYDBERG_EV;
     let ulps = (back.to_bits() as i64 - ev.to_bits() as i64).abs();
-    assert!(ulps <= 2, "log `{label}`: {back:e} eV back from Ry is {ulps} ulp from {ev:e}");
+    assert!(
+        ulps <= 2,
+        "log `{label}`: {back:e} eV back from Ry is {ulps} ulp from {ev:e}"
+    );
 }
 
 fn compare(s: &Setup) {
@@ -81,30 +100,72 @@ fn compare(s: &Setup) {
         read(&ms_dir.join("hk.npy")),
         "H(k) differs"
     );
-    for k in ["hopping", "hybridization", "eps_f", "bandwidth", "band_energy"] {
-        assert_same(k, kv(&file(&case, "levels"), k), json(&ms_dir.join("band.json"), k));
+    for k in [
+        "hopping",
+        "hybridization",
+        "eps_f",
+        "bandwidth",
+        "band_energy",
+    ] {
+        assert_same(
+            k,
+            kv(&file(&case, "levels"), k),
+            json(&ms_dir.join("band.json"), k),
+        );
     }
     // project: Δ, G_loc, ε_f, μ, β
-    assert_bits_eq("delta", &h5_complex(&case, "delta"), &npy_complex(&ms_dir.join("delta.npy")));
-    assert_bits_eq("gloc", &h5_complex(&case, "gloc"), &npy_complex(&ms_dir.join("gloc.npy")));
+    assert_bits_eq(
+        "delta",
+        &h5_complex(&case, "delta"),
+        &npy_complex(&ms_dir.join("delta.npy")),
+    );
+    assert_bits_eq(
+        "gloc",
+        &h5_complex(&case, "gloc"),
+        &npy_complex(&ms_dir.join("gloc.npy")),
+    );
     let levels = h5_real(&case, "levels");
     let lj = ms_dir.join("levels.json");
     assert_same("eps_f", levels[0], json(&lj, "eps_f"));
     assert_same("mu (levels)", levels[1], json(&lj, "mu"));
     assert_same("beta", h5_attr(&case, "beta"), json(&lj, "beta"));
     // solve: Σ, G, n_f
-    assert_bits_eq("sigma", &h5_complex(&case, "sigma"), &npy_complex(&ms_dir.join("sigma.npy")));
-    assert_bits_eq("g", &h5_complex(&case, "g"), &npy_complex(&ms_dir.join("g.npy")));
+    assert_bits_eq(
+        "sigma",
+        &h5_complex(&case, "sigma"),
+        &npy_complex(&ms_dir.join("sigma.npy")),
+    );
+    assert_bits_eq(
+        "g",
+        &h5_complex(&case, "g"),
+        &npy_complex(&ms_dir.join("g.npy")),
+    );
     let n_f_imp = json(&ms_dir.join("solve.json"), "n_f");
     assert_same("n_f attribute", h5_attr(&case, "n_f"), n_f_imp);
-    assert_same("log impurity n_f", log_last(&case, "impurity n_f").0, n_f_imp);
+    assert_same(
+        "log impurity n_f",
+        log_last(&case, "impurity n_f").0,
+        n_f_imp,
+    );
     // update: the density file and the log
     let dj = ms_dir.join("density.json");
     for k in ["n_f", "n_c", "mu", "energy"] {
-        assert_same(&format!("density {k}"), kv(&file(&case, "density"), k), json(&dj, k));
+        assert_same(
+            &format!("density {k}"),
+            kv(&file(&case, "density"), k),
+            json(&dj, k),
+        );
     }
-    assert_same("log f charge", log_last(&case, "f charge").0, json(&dj, "n_f"));
-    assert_same("log c charge", log_last(&case, "c charge").0, json(&dj, "n_c"));
+    assert_same(
+        "log f charge",
+        log_last(&case, "f charge").0,
+        json(&dj, "n_f"),
+    );
+    assert_same(
+        "log c charge",
+        log_last(&case, "c charge").0,
+        json(&dj, "n_c"),
+    );
     assert_logged_energy(&case, "total energy", json(&dj, "energy"));
     assert_logged_energy(&case, "chemical potential", json(&dj, "mu"));
     let uj = ms_dir.join("update.json");

@@ -90,7 +90,10 @@ fn wait_done_and_check(dir: &Path) -> (String, Vec<(String, u64)>) {
     if let Ok(rd) = std::fs::read_dir(dir.join("out")) {
         for e in rd.flatten() {
             let n = e.file_name().to_string_lossy().into_owned();
-            assert!(!n.ends_with(".tmp"), "temporary {n} left when done appeared");
+            assert!(
+                !n.ends_with(".tmp"),
+                "temporary {n} left when done appeared"
+            );
         }
     }
     (status, outputs)
@@ -103,9 +106,18 @@ fn stop(server: &mut Server, case: &Path) {
         status = server.0.try_wait().ok().flatten();
         status.is_some()
     });
-    assert!(status.is_some_and(|s| s.success()), "serve exited with {status:?}");
-    assert!(!case.join("handoff").join("ready").exists(), "ready left behind");
-    assert!(!case.join("handoff").join("stop").exists(), "stop left behind");
+    assert!(
+        status.is_some_and(|s| s.success()),
+        "serve exited with {status:?}"
+    );
+    assert!(
+        !case.join("handoff").join("ready").exists(),
+        "ready left behind"
+    );
+    assert!(
+        !case.join("handoff").join("stop").exists(),
+        "stop left behind"
+    );
 }
 
 #[test]
@@ -128,7 +140,10 @@ fn three_hand_offs_give_the_one_shot_band_results_then_stop() {
             let suffix = name.trim_start_matches("out/");
             let got = std::fs::read(hd.join(name)).unwrap_or_else(|e| panic!("{e}"));
             let want = std::fs::read(file(&oneshot, suffix)).unwrap_or_else(|e| panic!("{e}"));
-            assert!(got == want, "hand-off {n}: {suffix} differs from the one-shot band");
+            assert!(
+                got == want,
+                "hand-off {n}: {suffix} differs from the one-shot band"
+            );
         }
         for step in ["project", "solve", "update"] {
             ok(&casebook(), dir, &[step, "oneshot"]);
@@ -146,7 +161,10 @@ fn three_hand_offs_give_the_one_shot_band_results_then_stop() {
     // a second server on the same case is refused while the first runs
     let out = run(&casebook(), dir, &["serve", "served"]);
     let err = String::from_utf8_lossy(&out.stderr);
-    assert!(!out.status.success() && err.contains("already served"), "{err}");
+    assert!(
+        !out.status.success() && err.contains("already served"),
+        "{err}"
+    );
     stop(&mut server, &served);
 }
 
@@ -155,7 +173,10 @@ fn done_markers_never_precede_complete_outputs_and_numbers_must_increase() {
     let tmp = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
     let dir = tmp.path();
     // a large mesh (1771 points) makes the outputs big enough to be caught half written
-    let big = Setup { kmesh: "40", ..DEMO };
+    let big = Setup {
+        kmesh: "40",
+        ..DEMO
+    };
     let case = init_case(dir, "big", &big, &[]);
     let density = std::fs::read(file(&case, "density")).unwrap_or_else(|e| panic!("{e}"));
     let mut server = start_server(dir, "big");
@@ -176,7 +197,10 @@ fn done_markers_never_precede_complete_outputs_and_numbers_must_increase() {
     assert_eq!(status, "error");
     assert!(outputs.is_empty());
     let text = std::fs::read_to_string(hd.join("done")).unwrap_or_default();
-    assert!(text.contains("message ") && text.contains("in/density"), "{text}");
+    assert!(
+        text.contains("message ") && text.contains("in/density"),
+        "{text}"
+    );
     // the server goes on after an error
     let hd = hand_off(&case, 10, &density);
     assert_eq!(wait_done_and_check(&hd).0, "ok");

@@ -25,16 +25,30 @@ pub fn model_solid() -> PathBuf {
         .get_or_init(|| {
             let bin = casebook().with_file_name("model-solid");
             let profile_dir = bin.parent().map(Path::to_path_buf).unwrap_or_default();
-            let target = profile_dir.parent().map(Path::to_path_buf).unwrap_or_default();
+            let target = profile_dir
+                .parent()
+                .map(Path::to_path_buf)
+                .unwrap_or_default();
             let profile = profile_dir
                 .file_name()
                 .and_then(|n| n.to_str())
                 .unwrap_or("debug")
                 .to_string();
-            let profile = if profile == "debug" { "dev".into() } else { profile };
+            let profile = if profile == "debug" {
+                "dev".into()
+            } else {
+                profile
+            };
             let manifest = repo().join("Cargo.toml");
             let out = Command::new(env!("CARGO"))
-                .args(["build", "-p", "model-solid", "--bin", "model-solid", "--profile"])
+                .args([
+                    "build",
+                    "-p",
+                    "model-solid",
+                    "--bin",
+                    "model-solid",
+                    "--profile",
+                ])
                 .arg(&profile)
                 .arg("--manifest-path")
                 .arg(&manifest)
@@ -169,7 +183,10 @@ pub fn log_values(log: &str, label: &str) -> Vec<(f64, String)> {
 
 /// The last value of a log label, converted to eV when its unit is Ry.
 pub fn log_last(case: &Path, label: &str) -> (f64, String) {
-    let name = case.file_name().and_then(|n| n.to_str()).unwrap_or_default();
+    let name = case
+        .file_name()
+        .and_then(|n| n.to_str())
+        .unwrap_or_default();
     let text = std::fs::read_to_string(case.join(format!("{name}.log")))
         .unwrap_or_else(|e| panic!("read the log: {e}"));
     log_values(&text, label)
@@ -179,14 +196,16 @@ pub fn log_last(case: &Path, label: &str) -> (f64, String) {
 
 /// A case file by suffix.
 pub fn file(case: &Path, suffix: &str) -> PathBuf {
-    let name = case.file_name().and_then(|n| n.to_str()).unwrap_or_default();
+    let name = case
+        .file_name()
+        .and_then(|n| n.to_str())
+        .unwrap_or_default();
     case.join(format!("{name}.{suffix}"))
 }
 
 /// A value of a `key = value` file.
 pub fn kv(path: &Path, key: &str) -> f64 {
-    let text =
-        std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let text = std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
     text.lines()
         .filter(|l| !l.starts_with('#'))
         .filter_map(|l| l.split_once('='))
@@ -197,8 +216,7 @@ pub fn kv(path: &Path, key: &str) -> f64 {
 
 /// A number of a model-solid JSON file (metrics, density.json, levels.json).
 pub fn json(path: &Path, key: &str) -> f64 {
-    let text =
-        std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let text = std::fs::read_to_string(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
     let v: serde_json::Value =
         serde_json::from_str(&text).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
     v[key]
@@ -209,8 +227,8 @@ pub fn json(path: &Path, key: &str) -> f64 {
 
 /// A complex128 .npy array.
 pub fn npy_complex(path: &Path) -> Vec<Complex64> {
-    let a = rondo_numerics::npy::read_any(path)
-        .unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let a =
+        rondo_numerics::npy::read_any(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
     a.as_complex()
         .unwrap_or_else(|| panic!("{}: not complex", path.display()))
         .to_vec()
