@@ -74,6 +74,9 @@ enum Command {
         /// Size of the restart file in MiB (0: header and state only).
         #[arg(long, default_value_t = 1, value_name = "N")]
         restart_mib: u64,
+        /// Start an existing case folder again (its files are replaced; handoff/ is kept).
+        #[arg(long)]
+        force: bool,
     },
     /// H(k) for the current density; rewrites hamiltonian.npy, eigen, levels.
     Band {
@@ -159,6 +162,7 @@ fn run(cli: Cli) -> Result<()> {
             emin,
             emax,
             restart_mib,
+            force,
         } => steps::init(
             &case,
             &steps::InitArgs {
@@ -175,6 +179,7 @@ fn run(cli: Cli) -> Result<()> {
                 emin,
                 emax,
                 restart_mib,
+                force,
             },
         ),
         Command::Band { case } => {

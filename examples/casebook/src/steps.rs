@@ -48,6 +48,8 @@ pub struct InitArgs {
     pub emax: Option<f64>,
     /// Restart file size in MiB.
     pub restart_mib: u64,
+    /// Replace an existing case of the same folder.
+    pub force: bool,
 }
 
 /// The control file's settings.
@@ -157,6 +159,13 @@ pub fn init(dir: &Path, a: &InitArgs) -> Result<()> {
     msio::beta_from_temperature(a.temperature).context("--temperature")?;
     if a.restart_mib > restart::MAX_MIB {
         bail!("--restart-mib: at most {} MiB", restart::MAX_MIB);
+    }
+    if case.file("control").exists() && !a.force {
+        bail!(
+            "{}: already a case folder (it has {}); pass --force to start it again",
+            dir.display(),
+            case.file("control").display()
+        );
     }
     let density = msio::read_density(&a.density)?;
     let sigma = msio::read_matsubara(&a.sigma, "the start self-energy")?;

@@ -145,6 +145,23 @@ fn sub_steps_run_in_order_and_say_what_to_run() {
         before,
         "a refused step wrote the archive"
     );
+    // init does not overwrite a case unless told to
+    let st = start().join("density.json");
+    let sg = start().join("sigma.npy");
+    #[rustfmt::skip]
+    let again = ["init", "order", "--density", st.to_str().unwrap_or_default(), "--sigma",
+        sg.to_str().unwrap_or_default(), "--volume", "27", "--kmesh", "4", "--temperature",
+        "300", "--electrons", "1.8", "--u", "6"];
+    let out = run(&casebook(), tmp.path(), &again);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success() && err.contains("--force"), "{err}");
+    assert_eq!(kv(&file(&case, "lattice"), "volume"), 28.0);
+    ok(
+        &casebook(),
+        tmp.path(),
+        &[&again[..], &["--force"]].concat(),
+    );
+    assert_eq!(kv(&file(&case, "lattice"), "volume"), 27.0);
     let out = run(&casebook(), tmp.path(), &["band", "missing"]);
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(
