@@ -61,6 +61,18 @@ async fn hot_queries_search_indexes_and_scan_no_history() -> anyhow::Result<()> 
             plan.iter().any(|d| d.trim().starts_with("SEARCH ")),
             "{name}: no index search in the plan: {plan:#?}"
         );
+        // A search by point alone would still read the point's whole history: these must
+        // use the index made for them.
+        let wanted = match name {
+            "first rules met" => Some("iterations_rules_met"),
+            _ => None,
+        };
+        if let Some(index) = wanted {
+            assert!(
+                plan.iter().any(|d| d.contains(index)),
+                "{name}: not through {index}: {plan:#?}"
+            );
+        }
     }
     Ok(())
 }
