@@ -17,10 +17,9 @@ pub const EXIT_INCOMPLETE: u8 = 3;
 /// Exit code: stopped by SIGINT/SIGTERM; `rondo run` again continues.
 pub const EXIT_INTERRUPTED: u8 = 4;
 
-/// An error caused by the user's input (exit code 2).
-#[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct BadInput(pub String);
+/// An error caused by the user's input (exit code 2); defined with the campaign model so
+/// that the engine can raise it without knowing the command line.
+pub use crate::spec::BadInput;
 
 /// The exit code of a command line clap refused (or answered, for `--help`, `--version`).
 pub fn of_parse_error(e: &clap::Error) -> u8 {

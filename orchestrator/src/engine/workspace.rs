@@ -42,7 +42,7 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
         Some(row) => {
             if row.spec_blake3 != hash {
                 // Bad input (exit 2): the file, not the machine, is at fault.
-                bail!(crate::cli::BadInput(format!(
+                bail!(crate::spec::BadInput(format!(
                     "{}: this workspace was made from a different campaign file (BLAKE3 {} at \
                      its first run, {} now); restore the file, or run the changed campaign in \
                      a new workspace with --workspace",

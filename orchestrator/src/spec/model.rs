@@ -278,3 +278,9 @@ impl Campaign {
             .collect()
     }
 }
+
+/// An error caused by the user's input, not by the machine: the command line exits with
+/// code 2 for it.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct BadInput(pub String);
