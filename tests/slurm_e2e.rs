@@ -312,9 +312,24 @@ fn wait_for<T>(what: &str, limit: Duration, mut f: impl FnMut() -> Option<T>) ->
 /// The demo, reduced: 2 volumes × 1 temperature, a 8×8×8 k mesh and looser tolerances
 /// (converges in about 10 iterations). With `engine`, the engine program is replaced.
 fn campaign_in(dir: &Path, engine: Option<&Path>) {
+    campaign_placed(dir, engine, false);
+}
+
+/// The reduced demo; `host_stages`: keep its `placement: host` stages where rondo runs.
+fn campaign_placed(dir: &Path, engine: Option<&Path>, host_stages: bool) {
     let ex = repo().join("examples");
     let mut s = std::fs::read_to_string(ex.join("model-sweep.yaml"))
         .unwrap_or_else(|e| panic!("read the demo: {e}"));
+    if !host_stages {
+        // These tests exercise the batch path: every command stage a job of its own (the demo
+        // keeps its light stages on the host; `placement_keeps_light_stages_on_the_host…` runs
+        // it as it is).
+        assert!(
+            s.contains("placement: host"),
+            "the demo no longer places stages"
+        );
+        s = s.replace("placement: host", "placement: batch");
+    }
     let mut edit = |from: &str, to: &str| {
         assert!(s.contains(from), "the demo no longer contains {from:?}");
         s = s.replacen(from, to, 1);
@@ -1094,4 +1109,98 @@ fn killed_between_sbatch_and_recording_the_job_id_adopts_the_job() {
         assert_eq!(n, 1, "jobs Slurm ran for {}", job_name(&victim));
     }
     assert_same_numbers(reference, &record(&ws), "job id lost at the kill");
+}
+
+/// The demo as it is, through Slurm at the default poll interval (30 s): its light stages
+/// (`placement: host`: project and update) run where rondo runs, band and solve are batch
+/// jobs whose ends are noticed from their exit markers (checked every second), and `squeue`
+/// is asked at most once per poll interval, counted through a logging `squeue` ahead on
+/// PATH. The numbers equal the local run's; both wall times are printed (timings belong in
+/// docs/performance.md, not in assertions).
+#[test]
+fn placement_keeps_light_stages_on_the_host_and_squeue_runs_once_per_interval() {
+    let _serial = serial();
+    if !slurm_or_skip() {
+        return;
+    }
+    let reference = local_reference();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    campaign_placed(dir, None, true);
+    let real = String::from_utf8_lossy(
+        &Command::new("sh")
+            .args(["-c", "command -v squeue"])
+            .output()
+            .unwrap_or_else(|e| panic!("{e}"))
+            .stdout,
+    )
+    .trim()
+    .to_string();
+    assert!(!real.is_empty(), "squeue is not on PATH");
+    let shim = dir.join("shim");
+    std::fs::create_dir_all(&shim).unwrap_or_else(|e| panic!("{e}"));
+    let log = dir.join("squeue-calls.log");
+    let script = format!(
+        "#!/bin/sh\ndate +%s.%N >> '{}'\nexec '{real}' \"$@\"\n",
+        log.display()
+    );
+    std::fs::write(shim.join("squeue"), script).unwrap_or_else(|e| panic!("{e}"));
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(shim.join("squeue"), std::fs::Permissions::from_mode(0o755))
+        .unwrap_or_else(|e| panic!("{e}"));
+    let path = format!("{}:{}", shim.display(), path_with_binaries());
+
+    // The same campaign locally, for the wall-time comparison.
+    let l = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    campaign_placed(l.path(), None, true);
+    let t = Instant::now();
+    let o = Command::new(rondo())
+        .args(["run", FILE, "-q"])
+        .current_dir(l.path())
+        .env("PATH", &path)
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    let local = t.elapsed();
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+
+    let t = Instant::now();
+    let o = Command::new(rondo())
+        .args(["run", FILE, "--on", "slurm", "-q"])
+        .current_dir(dir)
+        .env("PATH", &path)
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    let wall = t.elapsed();
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    all_converged(dir);
+    let ws = dir.join(WS);
+    assert_same_numbers(reference, &record(&ws), "slurm run with host stages");
+    let all = attempts(&ws, "");
+    for a in &all {
+        let want = match a.stage.as_str() {
+            "project" | "update" => "local",
+            "band" | "solve" => "slurm",
+            _ => "builtin",
+        };
+        assert_eq!(a.executor, want, "{a:?}");
+    }
+    let calls = std::fs::read_to_string(&log)
+        .unwrap_or_default()
+        .lines()
+        .count();
+    // At most one status query per 30 s poll interval of the run, plus one.
+    let allowed = (wall.as_secs_f64() / 30.0).ceil() as usize + 1;
+    eprintln!(
+        "placed demo: local {:.1} s, slurm {:.1} s ({:.1}×), {} batch jobs, {calls} squeue calls \
+         (allowed {allowed})",
+        local.as_secs_f64(),
+        wall.as_secs_f64(),
+        wall.as_secs_f64() / local.as_secs_f64(),
+        all.iter().filter(|a| a.executor == "slurm").count()
+    );
+    assert!(
+        calls <= allowed,
+        "{calls} squeue calls in {:.1} s at a 30 s poll interval",
+        wall.as_secs_f64()
+    );
 }
