@@ -288,7 +288,13 @@ impl Script {
         }
         let text = format!("BEGIN IMMEDIATE;\n{}COMMIT;", self.sql);
         let mut conn = pool.acquire().await?;
-        let result = sqlx::query_with(&text, self.args).execute(&mut *conn).await;
+        // Not kept in the connection's statement cache: scripts are rarely the same twice (the
+        // held-back records vary), and a cached script of hundreds of rows holds megabytes of
+        // prepared statements (the cache keeps up to 100 of them).
+        let result = sqlx::query_with(&text, self.args)
+            .persistent(false)
+            .execute(&mut *conn)
+            .await;
         if let Err(e) = result {
             // The script stops at the failing statement with the transaction open.
             let _ = sqlx::query("ROLLBACK").execute(&mut *conn).await;
