@@ -1,0 +1,105 @@
+//! Inputs the fuzzer (fuzz/, `bash scripts/fuzz`) or the writing of its checks found to break
+//! the campaign check, each kept as a test of the fixed behaviour: no panic, and a problem in
+//! the file reported at its place with a hint. Every fuzz input kept under fuzz/regressions/
+//! is replayed here through the campaign parser as well.
+
+use std::path::Path;
+use std::time::Duration;
+
+use rondo::spec::{parse, parse_duration, SpecErrors};
+
+/// A campaign with one stage whose `time-limit` is `limit`.
+fn with_time_limit(limit: &str) -> String {
+    format!(
+        "campaign: t
+cycle:
+  s: {{ run: [/bin/true], time-limit: \"{limit}\" }}
+stop: {{ max-iterations: 1 }}
+"
+    )
+}
+
+/// The diagnostics of a campaign that must fail, as `(line, column, message)`.
+fn problems(text: &str) -> Vec<(u64, u64, String)> {
+    match parse(Path::new("c.yaml"), text) {
+        Ok(_) => panic!("accepted:\n{text}"),
+        Err(SpecErrors { diagnostics, .. }) => diagnostics
+            .into_iter()
+            .map(|d| {
+                assert!(!d.hint.is_empty(), "no hint: {d:?}");
+                (d.line, d.column, d.message)
+            })
+            .collect(),
+    }
+}
+
+#[test]
+fn a_time_limit_too_long_to_count_in_seconds_is_refused_at_its_stage_not_a_panic() {
+    // Each field fits in 64 bits, the total in seconds does not (this overflowed).
+    for limit in [
+        "9999999999999999:00:00",
+        "213503982334602-00:00:00",
+        "307445734561825861",
+        "1-18446744073709551615:00",
+    ] {
+        assert_eq!(parse_duration(limit), None, "{limit}");
+        let found = problems(&with_time_limit(limit));
+        assert_eq!(
+            found,
+            vec![(
+                3,
+                3,
+                format!("stage `s`: time limit `{limit}` is not a duration")
+            )],
+            "{limit}"
+        );
+    }
+    // The largest limit that fits is still one.
+    assert_eq!(
+        parse_duration("5124095576030431:00:15"),
+        Some(Duration::from_secs(u64::MAX))
+    );
+}
+
+#[test]
+fn a_time_limit_reads_as_the_slurm_executor_reads_it() {
+    // A `days-` prefix of 0 still makes the next field hours, as for sbatch (this read
+    // `0-5` as five minutes and `0-1:30` as ninety seconds).
+    assert_eq!(parse_duration("0-5"), Some(Duration::from_secs(5 * 3600)));
+    assert_eq!(parse_duration("0-1:30"), Some(Duration::from_secs(5400)));
+    // Text that sbatch refuses is refused by the check too, at the stage.
+    for limit in ["+5", "5 : 30", "1 -02:00:00"] {
+        assert_eq!(parse_duration(limit), None, "{limit}");
+        assert_eq!(problems(&with_time_limit(limit)).len(), 1, "{limit}");
+    }
+    assert_eq!(parse_duration(" 00:05:00 "), Some(Duration::from_secs(300)));
+}
+
+/// Every kept fuzz input that is a campaign (first byte `c`) parses or fails without a panic,
+/// and each of its problems is placed in the file.
+#[test]
+fn kept_fuzz_inputs_never_panic_and_place_every_problem() {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("../fuzz/regressions");
+    let Ok(entries) = std::fs::read_dir(&dir) else {
+        return;
+    };
+    let mut n = 0;
+    for e in entries.flatten() {
+        let data = std::fs::read(e.path()).unwrap_or_else(|err| panic!("{err}"));
+        let Some((b'c', rest)) = data.split_first() else {
+            continue;
+        };
+        let text = String::from_utf8_lossy(rest);
+        if let Err(errs) = parse(Path::new("c.yaml"), &text) {
+            for d in &errs.diagnostics {
+                assert!(
+                    (d.line >= 1 && d.column >= 1) || d.message == "the cycle has no stages",
+                    "{}: no place for {d:?}",
+                    e.path().display()
+                );
+            }
+        }
+        n += 1;
+    }
+    assert!(n > 0 || !dir.exists(), "no campaign among {}", dir.display());
+}
