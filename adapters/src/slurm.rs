@@ -151,8 +151,7 @@ pub fn lengthen_limit(limit: Duration, factor: f64) -> Duration {
         1.0
     };
     // Saturating: a limit near the largest `Duration` stays there instead of overflowing.
-    let longer =
-        Duration::try_from_secs_f64(limit.as_secs_f64() * factor).unwrap_or(Duration::MAX);
+    let longer = Duration::try_from_secs_f64(limit.as_secs_f64() * factor).unwrap_or(Duration::MAX);
     let at_least = longer.max(limit.saturating_add(Duration::from_secs(60)));
     Duration::from_secs(at_least.as_secs().div_ceil(60).saturating_mul(60))
 }

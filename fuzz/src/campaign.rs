@@ -70,7 +70,11 @@ fn yaml_lines(text: &str) -> Vec<&str> {
     while i < b.len() {
         if b[i] == b'\n' || b[i] == b'\r' {
             lines.push(&text[start..i]);
-            i += if b[i] == b'\r' && b.get(i + 1) == Some(&b'\n') { 2 } else { 1 };
+            i += if b[i] == b'\r' && b.get(i + 1) == Some(&b'\n') {
+                2
+            } else {
+                1
+            };
             start = i;
         } else {
             i += 1;
@@ -90,7 +94,10 @@ fn check_errors(e: &SpecErrors, file: &Path, text: &str) {
     let lines = yaml_lines(text).len() as u64 + 1;
     let printed = e.to_string();
     for d in &e.diagnostics {
-        assert!(!d.message.is_empty(), "a diagnostic without a message: {d:?}");
+        assert!(
+            !d.message.is_empty(),
+            "a diagnostic without a message: {d:?}"
+        );
         assert!(!d.hint.is_empty(), "a diagnostic without a hint: {d:?}");
         if (d.line, d.column) == (0, 0) {
             assert!(
@@ -147,11 +154,7 @@ fn check_campaign(c: &Campaign, text: &str) {
                     Err(e) => panic!("stage `{}`: {e}", st.name),
                 }
                 // The run list as written, through the template properties too.
-                let args: Vec<String> = template
-                    .to_string()
-                    .split(' ')
-                    .map(String::from)
-                    .collect();
+                let args: Vec<String> = template.to_string().split(' ').map(String::from).collect();
                 if args.iter().all(|a| !a.is_empty()) {
                     template::check_args(&args, &values);
                 }

@@ -37,7 +37,10 @@ pub fn check(text: &str) {
     let formatted = format_slurm_time(d);
     if let Ok(f) = parse_slurm_time(&formatted) {
         assert!(
-            f >= d && f < d.max(Duration::from_secs(60)).saturating_add(Duration::from_secs(60)),
+            f >= d
+                && f < d
+                    .max(Duration::from_secs(60))
+                    .saturating_add(Duration::from_secs(60)),
             "`{text}` ({d:?}) is formatted as `{formatted}` ({f:?})"
         );
     }

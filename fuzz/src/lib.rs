@@ -37,3 +37,42 @@ pub fn run(data: &[u8]) {
         _ => duration::check(&text),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use std::path::Path;
+
+    /// Every seed and kept input holds every property (what the fuzzer starts from).
+    #[test]
+    fn seeds_and_kept_inputs_hold() {
+        let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+        let mut n = 0;
+        for dir in ["seeds", "regressions"] {
+            for e in std::fs::read_dir(root.join(dir))
+                .into_iter()
+                .flatten()
+                .flatten()
+            {
+                let data = std::fs::read(e.path()).unwrap_or_else(|err| panic!("{err}"));
+                super::run(&data);
+                n += 1;
+            }
+        }
+        assert!(n >= 100, "{n} inputs");
+    }
+
+    /// The hand-made campaigns pass the check, so the fuzzer starts from campaigns that
+    /// reach the template and warning properties.
+    #[test]
+    fn hand_made_campaign_seeds_pass_the_check() {
+        let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("seeds");
+        for name in ["c-hand-full", "c-hand-filter", "c-example-model-sweep"] {
+            let data = std::fs::read(root.join(name)).unwrap_or_else(|e| panic!("{e}"));
+            let text = String::from_utf8_lossy(&data[1..]);
+            let file = super::campaign::base().join("c.yaml");
+            if let Err(e) = rondo::spec::parse(&file, &text) {
+                panic!("{name}:\n{e}");
+            }
+        }
+    }
+}

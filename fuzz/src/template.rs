@@ -203,7 +203,10 @@ pub fn check_args(args: &[String], values: &[String]) {
                 .collect()
         })
         .collect();
-    assert_eq!(argv, want, "argv rendering differs from the template: {args:?}");
+    assert_eq!(
+        argv, want,
+        "argv rendering differs from the template: {args:?}"
+    );
     let shell = match t.render_shell(lookup) {
         Ok(s) => s,
         Err(e) => panic!("shell render failed where argv render passed: {e}"),

@@ -75,6 +75,41 @@ fn a_time_limit_reads_as_the_slurm_executor_reads_it() {
     assert_eq!(parse_duration(" 00:05:00 "), Some(Duration::from_secs(300)));
 }
 
+/// The place of the no-rule warning of a campaign that must pass.
+fn no_rule_warning_at(text: &str) -> (u64, u64) {
+    let c = parse(Path::new("c.yaml"), text).unwrap_or_else(|e| panic!("{e}\n{text:?}"));
+    let w = c
+        .warnings
+        .iter()
+        .find(|w| w.message.starts_with("no stopping rule"))
+        .unwrap_or_else(|| panic!("no warning: {:?}", c.warnings));
+    (w.line, w.column)
+}
+
+#[test]
+fn the_no_rule_warning_names_the_stop_line_as_yaml_counts_lines() {
+    // A lone CR ends a line for YAML (and so for every other location the check reports);
+    // the warning counted only LF and fell to 0:0 here.
+    let lone_cr = "campaign: t\rcycle:\r  s: { run: [/bin/true] }\rstop: { max-iterations: 1 }\r";
+    assert_eq!(no_rule_warning_at(lone_cr), (4, 1));
+    let crlf = lone_cr.replace('\r', "\r\n");
+    assert_eq!(no_rule_warning_at(&crlf), (4, 1));
+    // With CRs before it, the warning and a parser error agree on the line of `stop:`.
+    let mixed = "campaign: t\ncycle:\r\r  s: { run: [/bin/true] }\nstop: { max-iterations: 1 }\n";
+    assert_eq!(no_rule_warning_at(mixed), (5, 1));
+    let broken = mixed.replace("max-iterations: 1", "max-iterations: x");
+    assert_eq!(problems(&broken)[0].0, 5);
+}
+
+#[test]
+fn the_no_rule_warning_of_a_flow_style_file_is_placed_at_max_iterations() {
+    // No line starts with `stop:`: the warning was at 0:0, it is now at the value of
+    // `max-iterations`, which every `stop:` has.
+    let text = "{campaign: t, cycle: {s: {run: [/bin/true]}}, stop: {max-iterations: 1}}\n";
+    let column = text.find("1}}").map(|i| i as u64 + 1);
+    assert_eq!(Some(no_rule_warning_at(text)), column.map(|c| (1, c)));
+}
+
 /// Every kept fuzz input that is a campaign (first byte `c`) parses or fails without a panic,
 /// and each of its problems is placed in the file.
 #[test]
@@ -101,5 +136,9 @@ fn kept_fuzz_inputs_never_panic_and_place_every_problem() {
         }
         n += 1;
     }
-    assert!(n > 0 || !dir.exists(), "no campaign among {}", dir.display());
+    assert!(
+        n > 0 || !dir.exists(),
+        "no campaign among {}",
+        dir.display()
+    );
 }
