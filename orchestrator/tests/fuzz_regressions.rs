@@ -110,6 +110,38 @@ fn the_no_rule_warning_of_a_flow_style_file_is_placed_at_max_iterations() {
     assert_eq!(Some(no_rule_warning_at(text)), column.map(|c| (1, c)));
 }
 
+/// A campaign whose sweep is the product of `axes` axes of `values` values each.
+fn with_product(axes: usize, values: usize) -> String {
+    let list: Vec<String> = (1..=values).map(|v| v.to_string()).collect();
+    let lines: String = (0..axes)
+        .map(|i| format!("    a{i}: [{}]\n", list.join(", ")))
+        .collect();
+    format!(
+        "campaign: t\nsweep:\n  product:\n{lines}cycle:\n  s: {{ run: [/bin/true] }}\nstop: {{ max-iterations: 1 }}\n"
+    )
+}
+
+#[test]
+fn a_sweep_of_too_many_points_is_refused_before_it_is_built() {
+    // Eight axes of ten values: 10^8 points, which ran out of memory in the check. Now one
+    // diagnostic at the sweep, at once.
+    assert_eq!(
+        problems(&with_product(8, 10)),
+        vec![(
+            3,
+            3,
+            "the sweep's product makes 100000000 points; at most 100000 are allowed".to_string()
+        )]
+    );
+    // Forty axes of three overflow the count itself.
+    let found = problems(&with_product(41, 3));
+    assert_eq!(found.len(), 1, "{found:?}");
+    assert!(found[0].2.contains("makes more than"), "{found:?}");
+    // 100,000 points exactly are still a campaign.
+    let c = parse(Path::new("c.yaml"), &with_product(5, 10)).unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(c.points.len(), 100_000);
+}
+
 /// Every kept fuzz input that is a campaign (first byte `c`) parses or fails without a panic,
 /// and each of its problems is placed in the file.
 #[test]
