@@ -87,7 +87,7 @@ pub fn parse_slurm_time(text: &str) -> Result<Duration, String> {
         }
         s.parse::<u64>().map_err(|_| bad())
     };
-    let secs = if let Some((d, rest)) = t.split_once('-') {
+    let parts = if let Some((d, rest)) = t.split_once('-') {
         let days = num(d)?;
         let parts: Vec<&str> = rest.split(':').collect();
         let (h, m, s) = match parts.as_slice() {
@@ -96,17 +96,25 @@ pub fn parse_slurm_time(text: &str) -> Result<Duration, String> {
             [h, m, s] => (num(h)?, num(m)?, num(s)?),
             _ => return Err(bad()),
         };
-        days * 86_400 + h * 3600 + m * 60 + s
+        (days, h, m, s)
     } else {
         let parts: Vec<&str> = t.split(':').collect();
         match parts.as_slice() {
-            [m] => num(m)? * 60,
-            [m, s] => num(m)? * 60 + num(s)?,
-            [h, m, s] => num(h)? * 3600 + num(m)? * 60 + num(s)?,
+            [m] => (0, 0, num(m)?, 0),
+            [m, s] => (0, 0, num(m)?, num(s)?),
+            [h, m, s] => (0, num(h)?, num(m)?, num(s)?),
             _ => return Err(bad()),
         }
     };
-    Ok(Duration::from_secs(secs))
+    let (days, h, m, s) = parts;
+    // Checked: a limit past u64 seconds is refused, not wrapped around.
+    let total = days
+        .checked_mul(86_400)
+        .and_then(|d| d.checked_add(h.checked_mul(3600)?))
+        .and_then(|t| t.checked_add(m.checked_mul(60)?))
+        .and_then(|t| t.checked_add(s))
+        .ok_or_else(|| format!("time {text:?} is too long to count in seconds"))?;
+    Ok(Duration::from_secs(total))
 }
 
 /// Format a duration as a Slurm time, rounded up to whole minutes (Slurm's resolution):
@@ -142,9 +150,10 @@ pub fn lengthen_limit(limit: Duration, factor: f64) -> Duration {
     } else {
         1.0
     };
-    let longer = Duration::from_secs_f64(limit.as_secs_f64() * factor);
-    let at_least = longer.max(limit + Duration::from_secs(60));
-    Duration::from_secs(at_least.as_secs().div_ceil(60) * 60)
+    // Saturating: a limit near the largest `Duration` stays there instead of overflowing.
+    let longer = Duration::try_from_secs_f64(limit.as_secs_f64() * factor).unwrap_or(Duration::MAX);
+    let at_least = longer.max(limit.saturating_add(Duration::from_secs(60)));
+    Duration::from_secs(at_least.as_secs().div_ceil(60).saturating_mul(60))
 }
 
 /// The `#SBATCH` lines for these resources and this job name.

@@ -990,6 +990,26 @@ stop: { max-iterations: 1 }
             at: (3, 3),
         },
         Case {
+            site: "the sweep's product makes {n} points; at most {MAX_POINTS} are allowed",
+            says: "the sweep's product makes 100000000 points; at most 100000 are allowed",
+            yaml: "campaign: t
+sweep:
+  product:
+    a: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+    b: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+    c: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+    d: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+    e: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+    f: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+    g: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+    h: [1, 2, 3, 4, 5, 6, 7, 8, 9, 10]
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+",
+            at: (3, 3),
+        },
+        Case {
             site: "sweep axis `{}` is empty",
             says: "sweep axis `a` is empty",
             yaml: "campaign: t

@@ -42,6 +42,27 @@ fn loc<T>(s: &Spanned<T>) -> (u64, u64) {
     (s.referenced.line(), s.referenced.column())
 }
 
+/// The lines of `text` as YAML numbers them (YAML 1.2, 5.4 "Line Break Characters"): a
+/// line ends at CR LF, at LF, or at a CR alone, so that a line found here has the number the
+/// parser's locations give it.
+fn yaml_lines(text: &str) -> impl Iterator<Item = &str> {
+    let mut rest = Some(text).filter(|t| !t.is_empty());
+    std::iter::from_fn(move || {
+        let t = rest?;
+        match t.find(['\r', '\n']) {
+            Some(i) => {
+                let skip = if t[i..].starts_with("\r\n") { 2 } else { 1 };
+                rest = Some(&t[i + skip..]).filter(|r| !r.is_empty());
+                Some(&t[..i])
+            }
+            None => {
+                rest = None;
+                Some(t)
+            }
+        }
+    })
+}
+
 /// `a.b` → `(a, b)`, both non-empty.
 fn split_ref(s: &str) -> Option<(&str, &str)> {
     let (a, b) = s.split_once('.')?;
@@ -199,6 +220,13 @@ stop: { max-iterations: 1 }
             let want = format!("campaign name `{}` is not allowed", name.trim_matches('"'));
             assert_eq!(found(&v), vec![(1, 11, want)]);
         }
+    }
+
+    #[test]
+    fn yaml_lines_end_at_cr_lf_lf_or_a_lone_cr() {
+        let lines: Vec<&str> = yaml_lines("a\r\nb\rc\n\nd\n").collect();
+        assert_eq!(lines, ["a", "b", "c", "", "d"]);
+        assert_eq!(yaml_lines("").count(), 0);
     }
 
     #[test]

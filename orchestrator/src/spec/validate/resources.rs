@@ -4,30 +4,18 @@
 use std::time::Duration;
 
 use rondo_adapters::executor::Resources;
+use rondo_adapters::slurm::parse_slurm_time;
 
 use super::Validator;
 use crate::spec::raw::{CampaignFile, StageSpec};
 
-/// Parse a Slurm-style duration: `[days-]hh:mm:ss`, `hh:mm:ss`, `mm:ss`, or minutes.
+/// Parse a Slurm-style duration: `[days-]hh:mm:ss`, `hh:mm:ss`, `mm:ss`, minutes,
+/// `days-hh` or `days-hh:mm`. The grammar is the Slurm executor's own
+/// ([`parse_slurm_time`]), so that a limit this check passes is one `sbatch` is given as
+/// written (`0-5` is five hours in both); `None` also for a limit too long to count in
+/// seconds.
 pub fn parse_duration(s: &str) -> Option<Duration> {
-    let (days, rest) = match s.split_once('-') {
-        Some((d, r)) => (d.trim().parse::<u64>().ok()?, r),
-        None => (0, s),
-    };
-    let parts: Vec<u64> = rest
-        .split(':')
-        .map(|p| p.trim().parse::<u64>())
-        .collect::<Result<_, _>>()
-        .ok()?;
-    let secs = match (days > 0, parts.as_slice()) {
-        (false, [m]) => m * 60,
-        (true, [h]) => h * 3600,
-        (_, [a, b]) if days > 0 => a * 3600 + b * 60,
-        (_, [m, sec]) => m * 60 + sec,
-        (_, [h, m, sec]) => h * 3600 + m * 60 + sec,
-        _ => return None,
-    };
-    Some(Duration::from_secs(days * 86400 + secs))
+    parse_slurm_time(s).ok()
 }
 
 /// A stage's limits, its own settings over `defaults:`.

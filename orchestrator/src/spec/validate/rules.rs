@@ -2,7 +2,7 @@
 //! reports, with exactly one positive test), how the rules combine, and the final window;
 //! a campaign without rules gets a warning.
 
-use super::{loc, split_ref, Validator};
+use super::{loc, split_ref, yaml_lines, Validator};
 use crate::spec::model::{Diagnostic, Rule, RuleTest, FILTER_METRICS};
 use crate::spec::raw::{CampaignFile, Combine, RuleSpec, StageSpec};
 
@@ -38,12 +38,13 @@ impl Validator<'_> {
         }
         let mut warnings = Vec::new();
         if raw.stop.when.is_empty() {
-            // `stop:` carries no location of its own: its line in the text.
-            let at = text
-                .lines()
+            // `stop:` carries no location of its own: its line in the text, counted as YAML
+            // counts lines (a lone CR breaks one too); written in flow style (no line starts
+            // with `stop:`), the place of `max-iterations`, which every `stop:` has.
+            let at = yaml_lines(text)
                 .position(|l| l.starts_with("stop:"))
                 .map(|i| (i as u64 + 1, 1))
-                .unwrap_or((0, 0));
+                .unwrap_or_else(|| loc(&raw.stop.max_iterations));
             warnings.push(Diagnostic {
                 line: at.0,
                 column: at.1,

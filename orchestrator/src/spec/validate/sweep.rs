@@ -7,6 +7,12 @@ use super::{loc, Validator};
 use crate::spec::model::PointSpec;
 use crate::spec::raw::{CampaignFile, OrderedMap, Scalar, Sweep};
 
+/// The most points a sweep may make: every point is a directory, store rows and hours of
+/// compute, and the points are built here, in memory, before anything runs (a few lines of
+/// `product` can name 10^8 combinations). Ten times the largest run measured
+/// (docs/performance.md, "Store at scale").
+pub(super) const MAX_POINTS: u64 = 100_000;
+
 /// The values of one point: axis → value, in axis order.
 type Combo = Vec<(String, Scalar)>;
 
@@ -46,7 +52,28 @@ impl Validator<'_> {
                         "write sweep: { product: { axis: [values] } }",
                     );
                 }
-                (Some(p), None) => combos = self.product(p),
+                (Some(p), None) => {
+                    // Counted before it is built (saturating: forty axes overflow u64).
+                    let n =
+                        p.0.iter()
+                            .fold(1u64, |n, (_, v)| n.saturating_mul(v.len() as u64));
+                    if n > MAX_POINTS {
+                        let n = if n == u64::MAX {
+                            "more than 18446744073709551614".to_string()
+                        } else {
+                            n.to_string()
+                        };
+                        self.push(
+                            loc(spanned),
+                            format!(
+                                "the sweep's product makes {n} points; at most {MAX_POINTS} are allowed"
+                            ),
+                            "sweep fewer values, or split the scan into several campaigns",
+                        );
+                    } else {
+                        combos = self.product(p);
+                    }
+                }
                 (None, Some(z)) => combos = self.zip(z),
             }
             self.axes_are_not_parameters(raw, sw);
