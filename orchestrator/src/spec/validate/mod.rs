@@ -11,6 +11,7 @@
 mod analysis;
 mod builtins;
 mod commands;
+mod hooks;
 mod programs;
 mod resources;
 mod rules;
@@ -80,6 +81,8 @@ impl<'a> Validator<'a> {
         let stop = self.stop(&raw, text);
         let stages = self.order(&raw, &stages);
         let eos = self.eos(&raw, &points);
+        let hooks = self.hooks(&raw, &base);
+        let budget_core_hours = self.budget(&raw);
         if !self.diags.is_empty() {
             self.diags.sort_by_key(|d| (d.line, d.column));
             return Err(SpecErrors {
@@ -104,6 +107,8 @@ impl<'a> Validator<'a> {
             eos,
             schedules,
             warnings: stop.warnings,
+            hooks,
+            budget_core_hours,
         })
     }
 
