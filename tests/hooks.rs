@@ -55,7 +55,10 @@ stop:
 fn script(dir: &Path, name: &str, body: &str) -> PathBuf {
     let p = dir.join(name);
     std::fs::write(&p, format!("#!/bin/sh\n{body}")).unwrap_or_else(|e| panic!("{e}"));
-    let _ = std::process::Command::new("chmod").arg("+x").arg(&p).status();
+    let _ = std::process::Command::new("chmod")
+        .arg("+x")
+        .arg(&p)
+        .status();
     p
 }
 
@@ -110,12 +113,20 @@ fn every_event_reaches_its_hook_as_json_on_stdin() {
     let failed = read_json(&got.join("point-failed-p002.json"));
     assert_eq!(failed["event"], "point-failed");
     assert_eq!(failed["campaign"], "hooked");
-    assert!(failed["workspace"].as_str().is_some_and(|w| w.ends_with("c.rondo")), "{failed}");
+    assert!(
+        failed["workspace"]
+            .as_str()
+            .is_some_and(|w| w.ends_with("c.rondo")),
+        "{failed}"
+    );
     assert_eq!(failed["point"]["id"], "p002");
     assert_eq!(failed["point"]["values"]["a"], 2.0);
     assert_eq!(failed["iteration"], 1);
     assert_eq!(failed["reason"], status["points"][1]["reason"], "{failed}");
-    assert!(failed["time"].as_str().is_some_and(|t| t.ends_with('Z')), "{failed}");
+    assert!(
+        failed["time"].as_str().is_some_and(|t| t.ends_with('Z')),
+        "{failed}"
+    );
 
     for (i, id) in [(0, "p001"), (2, "p003")] {
         let c = read_json(&got.join(format!("point-converged-{id}.json")));
@@ -136,12 +147,26 @@ fn every_event_reaches_its_hook_as_json_on_stdin() {
     }
 
     let done = read_json(&got.join("campaign-done-.json"));
-    assert_eq!(done["counts"], serde_json::json!({"converged": 2, "failed": 1}));
+    assert_eq!(
+        done["counts"],
+        serde_json::json!({"converged": 2, "failed": 1})
+    );
     let low = read_json(&got.join("disk-low-.json"));
     assert_eq!(low["event"], "disk-low");
-    assert!(low["free_bytes"].as_u64().is_some() && low["total_bytes"].as_u64().is_some(), "{low}");
-    assert_eq!(std::fs::read_dir(&got).map(|r| r.count()).unwrap_or(0), 5, "one call per event");
-    assert!(hook_failures(&ws).is_empty(), "{:?} ({ws_text})", hook_failures(&ws));
+    assert!(
+        low["free_bytes"].as_u64().is_some() && low["total_bytes"].as_u64().is_some(),
+        "{low}"
+    );
+    assert_eq!(
+        std::fs::read_dir(&got).map(|r| r.count()).unwrap_or(0),
+        5,
+        "one call per event"
+    );
+    assert!(
+        hook_failures(&ws).is_empty(),
+        "{:?} ({ws_text})",
+        hook_failures(&ws)
+    );
 }
 
 #[test]
@@ -154,9 +179,17 @@ fn failing_hanging_and_missing_hooks_are_logged_and_change_nothing() {
     let reference = status_json(plain.path(), &plain.path().join("c.rondo"));
 
     let d = tmp();
-    script(d.path(), "fail.sh", "cat > /dev/null\necho 'no mail server' >&2\nexit 1\n");
+    script(
+        d.path(),
+        "fail.sh",
+        "cat > /dev/null\necho 'no mail server' >&2\nexit 1\n",
+    );
     let pid_file = d.path().join("sleeper.pid");
-    script(d.path(), "sleep.sh", &format!("echo $$ > {}\nsleep 30\n", pid_file.display()));
+    script(
+        d.path(),
+        "sleep.sh",
+        &format!("echo $$ > {}\nsleep 30\n", pid_file.display()),
+    );
     campaign(
         d.path(),
         "ok",
@@ -164,15 +197,26 @@ fn failing_hanging_and_missing_hooks_are_logged_and_change_nothing() {
          disk-low: [./no-such-hook]\n  disk-free-below: 100%\n  time-limit: \"0:01\"\n",
     );
     let o = run_rondo(d.path(), &["run", "c.yaml"]);
-    assert_eq!(o.status.code(), Some(0), "hooks never stop a campaign: {}", shown(&o));
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "hooks never stop a campaign: {}",
+        shown(&o)
+    );
     let ws = d.path().join("c.rondo");
     let s = status_json(d.path(), &ws);
-    for (a, b) in s["points"].as_array().into_iter().flatten().zip(
-        reference["points"].as_array().into_iter().flatten(),
-    ) {
+    for (a, b) in s["points"]
+        .as_array()
+        .into_iter()
+        .flatten()
+        .zip(reference["points"].as_array().into_iter().flatten())
+    {
         assert_eq!(a["state"], b["state"]);
         assert_eq!(a["iteration"], b["iteration"]);
-        assert_eq!(a["metrics"], b["metrics"], "the same numbers with and without hooks");
+        assert_eq!(
+            a["metrics"], b["metrics"],
+            "the same numbers with and without hooks"
+        );
     }
 
     let failures = hook_failures(&ws);
@@ -184,7 +228,10 @@ fn failing_hanging_and_missing_hooks_are_logged_and_change_nothing() {
     for (point, d) in &conv {
         assert!(point.is_some());
         let r = d["reason"].as_str().unwrap_or("");
-        assert!(r.contains("exit status: 1") && r.contains("no mail server"), "{r}");
+        assert!(
+            r.contains("exit status: 1") && r.contains("no mail server"),
+            "{r}"
+        );
     }
     let done = of("campaign-done");
     assert_eq!(done.len(), 1, "{failures:?}");
@@ -193,7 +240,10 @@ fn failing_hanging_and_missing_hooks_are_logged_and_change_nothing() {
     let missing = of("disk-low");
     assert_eq!(missing.len(), 1, "{failures:?}");
     let r = missing[0].1["reason"].as_str().unwrap_or("");
-    assert!(r.contains("cannot start") && r.contains("no-such-hook"), "{r}");
+    assert!(
+        r.contains("cannot start") && r.contains("no-such-hook"),
+        "{r}"
+    );
 
     // The hung hook was killed, not left behind.
     let pid = std::fs::read_to_string(&pid_file).unwrap_or_default();

@@ -101,7 +101,8 @@ fn parse_csv(text: &str) -> Vec<Vec<String>> {
 fn csv_maps(text: &str) -> Vec<BTreeMap<String, String>> {
     let mut rows = parse_csv(text).into_iter();
     let header = rows.next().unwrap_or_default();
-    rows.map(|r| header.iter().cloned().zip(r).collect()).collect()
+    rows.map(|r| header.iter().cloned().zip(r).collect())
+        .collect()
 }
 
 fn table(dir: &Path, args: &[&str]) -> String {
@@ -162,7 +163,10 @@ fn the_metrics_table_has_one_row_per_recorded_metric_with_the_stored_numbers() {
         "a",
         "label",
     ] {
-        assert!(header.iter().any(|h| h == col), "column {col} in {header:?}");
+        assert!(
+            header.iter().any(|h| h == col),
+            "column {col} in {header:?}"
+        );
     }
     let mut seen = std::collections::BTreeSet::new();
     for r in &rows {
@@ -171,14 +175,19 @@ fn the_metrics_table_has_one_row_per_recorded_metric_with_the_stored_numbers() {
         assert_eq!(num(&r["value"]).to_bits(), v.to_bits(), "{r:?}");
         assert_eq!(
             e.map(f64::to_bits),
-            Some(r["error"].as_str()).filter(|s| !s.is_empty()).map(|s| num(s).to_bits()),
+            Some(r["error"].as_str())
+                .filter(|s| !s.is_empty())
+                .map(|s| num(s).to_bits()),
             "{r:?}"
         );
         assert_eq!(r["stage"], "s");
         assert_eq!(r["attempt_state"], "succeeded");
         assert_eq!(r["iteration_state"], "good");
         assert!(r["started_at"] <= r["ended_at"], "{r:?}");
-        assert!(["left", "with,comma"].contains(&r["label"].as_str()), "{r:?}");
+        assert!(
+            ["left", "with,comma"].contains(&r["label"].as_str()),
+            "{r:?}"
+        );
         assert!(["1.0", "3.0"].contains(&r["a"].as_str()), "{r:?}");
         seen.insert(key);
     }
@@ -195,7 +204,10 @@ fn the_metrics_table_has_one_row_per_recorded_metric_with_the_stored_numbers() {
         .collect();
     assert_eq!(lines.len(), stored.len());
     for (l, r) in lines.iter().zip(&rows) {
-        assert_eq!(l["value"].as_f64().map(f64::to_bits), Some(num(&r["value"]).to_bits()));
+        assert_eq!(
+            l["value"].as_f64().map(f64::to_bits),
+            Some(num(&r["value"]).to_bits())
+        );
         assert_eq!(l["label"].as_str(), Some(r["label"].as_str()));
         assert_eq!(l["a"].as_f64(), Some(num(&r["a"])));
         assert_eq!(l["attempt_id"].as_i64(), Some(num(&r["attempt_id"]) as i64));
@@ -204,7 +216,14 @@ fn the_metrics_table_has_one_row_per_recorded_metric_with_the_stored_numbers() {
     // --out writes the same table to a file.
     let o = run_rondo(
         d.path(),
-        &["table", "metrics", "--workspace", "c.rondo", "--out", "m.csv"],
+        &[
+            "table",
+            "metrics",
+            "--workspace",
+            "c.rondo",
+            "--out",
+            "m.csv",
+        ],
     );
     assert!(o.status.success(), "{}", shown(&o));
     assert_eq!(
@@ -252,8 +271,14 @@ fn the_final_values_equal_status_and_python_reads_the_same_numbers() {
             .flatten()
             .filter_map(|i| i.as_i64())
             .collect();
-        assert_eq!(its.first().map(|i| i.to_string()).as_deref(), Some(r["first_iteration"].as_str()));
-        assert_eq!(its.last().map(|i| i.to_string()).as_deref(), Some(r["last_iteration"].as_str()));
+        assert_eq!(
+            its.first().map(|i| i.to_string()).as_deref(),
+            Some(r["first_iteration"].as_str())
+        );
+        assert_eq!(
+            its.last().map(|i| i.to_string()).as_deref(),
+            Some(r["last_iteration"].as_str())
+        );
         assert_eq!(p["values"]["label"].as_str(), Some(r["label"].as_str()));
         assert_eq!(r["point_state"], "converged");
     }
@@ -276,17 +301,30 @@ fn the_final_values_equal_status_and_python_reads_the_same_numbers() {
     };
     if let Some(mut stdin) = child.stdin.take() {
         use std::io::Write;
-        stdin.write_all(csv.as_bytes()).unwrap_or_else(|e| panic!("{e}"));
+        stdin
+            .write_all(csv.as_bytes())
+            .unwrap_or_else(|e| panic!("{e}"));
     }
     let out = child.wait_with_output().unwrap_or_else(|e| panic!("{e}"));
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let read: Vec<(String, String, String, String)> =
         serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("{e}"));
     assert_eq!(read.len(), rows.len());
     for ((point, metric, hex, label), r) in read.iter().zip(&rows) {
-        assert_eq!((point, metric, label), (&r["point"], &r["metric"], &r["label"]));
+        assert_eq!(
+            (point, metric, label),
+            (&r["point"], &r["metric"], &r["label"])
+        );
         let x = num(&r["value"]);
-        assert_eq!(hex, &hex_of(x), "python reads {point} {metric} as {hex}, not {x:?}");
+        assert_eq!(
+            hex,
+            &hex_of(x),
+            "python reads {point} {metric} as {hex}, not {x:?}"
+        );
     }
 }
 
@@ -296,7 +334,10 @@ fn hex_of(x: f64) -> String {
     let sign = if bits >> 63 == 1 { "-" } else { "" };
     let exp = ((bits >> 52) & 0x7ff) as i64 - 1023;
     let mantissa = bits & ((1u64 << 52) - 1);
-    format!("{sign}0x1.{mantissa:013x}p{}{exp}", if exp >= 0 { "+" } else { "" })
+    format!(
+        "{sign}0x1.{mantissa:013x}p{}{exp}",
+        if exp >= 0 { "+" } else { "" }
+    )
 }
 
 /// Wall times of the ended attempts of stage `s`, in seconds, as the store holds them.
@@ -311,10 +352,11 @@ fn stored_walls(ws: &Path) -> (Vec<f64>, i64) {
             .fetch_all(pool)
             .await
             .unwrap_or_default();
-            let good: i64 = sqlx::query_scalar("SELECT count(*) FROM iterations WHERE state = 'good'")
-                .fetch_one(pool)
-                .await
-                .unwrap_or(-1);
+            let good: i64 =
+                sqlx::query_scalar("SELECT count(*) FROM iterations WHERE state = 'good'")
+                    .fetch_one(pool)
+                    .await
+                    .unwrap_or(-1);
             (walls, good)
         })
     })
@@ -387,26 +429,50 @@ fn the_plan_after_a_partial_run_rests_on_the_recorded_durations() {
     assert_eq!(st["cpus"], 6, "ntasks 2 × cpus-per-task 3");
     assert_eq!(st["recorded_attempts"].as_u64(), Some(n as u64));
     let w = &st["wall_seconds"];
-    assert!(close(w["median"].as_f64().unwrap_or(-1.0), median), "{w} vs {median}");
+    assert!(
+        close(w["median"].as_f64().unwrap_or(-1.0), median),
+        "{w} vs {median}"
+    );
     assert!(close(w["min"].as_f64().unwrap_or(-1.0), walls[0]), "{w}");
-    assert!(close(w["max"].as_f64().unwrap_or(-1.0), walls[n - 1]), "{w}");
+    assert!(
+        close(w["max"].as_f64().unwrap_or(-1.0), walls[n - 1]),
+        "{w}"
+    );
     // No point converged yet in 5 attempts of 4 points: the upper bound stands for both.
     assert_eq!(plan["converged_points"], 0);
     let upper = 4.0 * 20.0 - good as f64;
     assert_eq!(plan["iterations"]["upper"].as_f64(), Some(upper));
     assert_eq!(plan["iterations"]["typical"].as_f64(), Some(upper));
     let attempts = st["attempts"]["upper"].as_f64().unwrap_or(-1.0);
-    assert!(close(attempts, upper), "one attempt per iteration: {attempts}");
+    assert!(
+        close(attempts, upper),
+        "one attempt per iteration: {attempts}"
+    );
     let ch = &st["core_hours"];
-    assert!(close(ch["typical"].as_f64().unwrap_or(-1.0), upper * median * 6.0 / 3600.0), "{ch}");
-    assert!(close(ch["upper"].as_f64().unwrap_or(-1.0), upper * walls[n - 1] * 6.0 / 3600.0), "{ch}");
+    assert!(
+        close(
+            ch["typical"].as_f64().unwrap_or(-1.0),
+            upper * median * 6.0 / 3600.0
+        ),
+        "{ch}"
+    );
+    assert!(
+        close(
+            ch["upper"].as_f64().unwrap_or(-1.0),
+            upper * walls[n - 1] * 6.0 / 3600.0
+        ),
+        "{ch}"
+    );
     assert_eq!(plan["over_budget"], true);
     assert!(stderr.contains("exceeds the budget of"), "{stderr}");
 
     // The text says what it rests on.
     let o = run_rondo(d.path(), &["plan", "c.yaml"]);
     let text = String::from_utf8_lossy(&o.stdout);
-    assert!(text.contains(&format!("over {n} recorded attempt(s)")), "{text}");
+    assert!(
+        text.contains(&format!("over {n} recorded attempt(s)")),
+        "{text}"
+    );
     assert!(text.contains("no converged point recorded"), "{text}");
 
     // Finish the run; a new workspace planned with these durations uses the median
@@ -418,7 +484,10 @@ fn the_plan_after_a_partial_run_rests_on_the_recorded_durations() {
     assert_eq!(done["total_core_hours"]["upper"].as_f64(), Some(0.0));
     let fresh = d.path().join("fresh.rondo").display().to_string();
     let from = ws.display().to_string();
-    let (other, _) = plan_json(d.path(), &["--workspace", &fresh, "--durations-from", &from]);
+    let (other, _) = plan_json(
+        d.path(),
+        &["--workspace", &fresh, "--durations-from", &from],
+    );
     assert_eq!(other["converged_points"], 4);
     let med = other["median_to_converge"].as_f64().unwrap_or(-1.0);
     let its: Vec<i64> = status_json(d.path(), &ws)["points"]
@@ -429,7 +498,16 @@ fn the_plan_after_a_partial_run_rests_on_the_recorded_durations() {
         .collect();
     let mut sorted = its.clone();
     sorted.sort();
-    assert!(close(med, 0.5 * (sorted[1] + sorted[2]) as f64), "{med} vs {its:?}");
-    assert!(close(other["iterations"]["typical"].as_f64().unwrap_or(-1.0), 4.0 * med.ceil()));
-    assert_eq!(other["stages"][0]["recorded_attempts"].as_u64(), Some(stored_walls(&ws).0.len() as u64));
+    assert!(
+        close(med, 0.5 * (sorted[1] + sorted[2]) as f64),
+        "{med} vs {its:?}"
+    );
+    assert!(close(
+        other["iterations"]["typical"].as_f64().unwrap_or(-1.0),
+        4.0 * med.ceil()
+    ));
+    assert_eq!(
+        other["stages"][0]["recorded_attempts"].as_u64(),
+        Some(stored_walls(&ws).0.len() as u64)
+    );
 }

@@ -77,7 +77,13 @@ impl Hooks {
 
     /// A point stopped in `state` at `iteration` because of `reason`: its hook (if any) runs
     /// at the next tick, once the stop is committed.
-    pub fn point_stopped(&mut self, point: &PointSpec, state: PointState, iteration: u32, reason: &str) {
+    pub fn point_stopped(
+        &mut self,
+        point: &PointSpec,
+        state: PointState,
+        iteration: u32,
+        reason: &str,
+    ) {
         let event = match state {
             PointState::Failed => "point-failed",
             PointState::Converged => "point-converged",
@@ -193,7 +199,10 @@ impl Hooks {
         let mut m = Map::new();
         m.insert("event".into(), json!(event));
         m.insert("campaign".into(), json!(self.campaign));
-        m.insert("workspace".into(), json!(self.workspace.display().to_string()));
+        m.insert(
+            "workspace".into(),
+            json!(self.workspace.display().to_string()),
+        );
         m.insert("time".into(), json!(store::now()));
         m
     }

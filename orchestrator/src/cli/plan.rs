@@ -77,11 +77,12 @@ fn budget_warning(p: &Plan) -> Option<String> {
     })
 }
 
+/// Core-hours for people: whole above 100, else to about three significant digits.
 fn hours(h: f64) -> String {
     if h >= 100.0 {
         format!("{h:.0}")
     } else {
-        format!("{h:.3}")
+        crate::query::format_measurement(h, None)
     }
 }
 

@@ -483,7 +483,10 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         }
     };
     let done = (!summary.interrupted && !summary.cancelled).then(|| summary.by_text());
-    engine.hooks.finish(&mut engine.ledger, done.as_ref()).await?;
+    engine
+        .hooks
+        .finish(&mut engine.ledger, done.as_ref())
+        .await?;
     engine
         .event(
             "run-ended",

@@ -18,7 +18,6 @@ use sqlx::SqlitePool;
 use crate::query::analysis;
 use crate::store::reads::{metrics, points, tables};
 
-
 /// How a table is written.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Format {
@@ -152,13 +151,15 @@ impl<W: Write> Writer<'_, W> {
                 writeln!(self.out, "{}", line.join(","))
             }
             Format::Jsonl => {
-                let mut obj = serde_json::Map::new();
+                // Keys in column order (a JSON map of serde_json would sort them).
+                let mut fields = Vec::with_capacity(cells.len());
                 for (c, v) in self.columns.iter().zip(cells) {
-                    obj.insert(c.clone(), json_cell(v));
+                    let key = serde_json::to_string(c).map_err(std::io::Error::other)?;
+                    let value =
+                        serde_json::to_string(&json_cell(v)).map_err(std::io::Error::other)?;
+                    fields.push(format!("{key}:{value}"));
                 }
-                let text = serde_json::to_string(&Value::Object(obj))
-                    .map_err(std::io::Error::other)?;
-                writeln!(self.out, "{text}")
+                writeln!(self.out, "{{{}}}", fields.join(","))
             }
         }
     }
@@ -331,7 +332,14 @@ mod tests {
 
     #[test]
     fn numbers_read_back_to_the_same_double() {
-        for x in [0.1, 1.0 / 3.0, -11.959089291369073, 1e-300, 6.02214076e23, 0.0] {
+        for x in [
+            0.1,
+            1.0 / 3.0,
+            -11.959089291369073,
+            1e-300,
+            6.02214076e23,
+            0.0,
+        ] {
             let t = number_text(x);
             assert_eq!(t.parse::<f64>().map(f64::to_bits), Ok(x.to_bits()), "{t}");
         }

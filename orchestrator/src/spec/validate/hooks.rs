@@ -91,10 +91,7 @@ impl Validator<'_> {
         let mut argv: Vec<String> = cmd.value.iter().map(|a| a.value.clone()).collect();
         if first.value.contains('/') && !Path::new(&first.value).is_absolute() {
             let p = base.join(&first.value);
-            argv[0] = std::path::absolute(&p)
-                .unwrap_or(p)
-                .display()
-                .to_string();
+            argv[0] = std::path::absolute(&p).unwrap_or(p).display().to_string();
         }
         Some(argv)
     }
