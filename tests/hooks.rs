@@ -260,3 +260,53 @@ fn failing_hanging_and_missing_hooks_are_logged_and_change_nothing() {
     });
     assert!(gone, "hook process {pid} still runs");
 }
+
+#[test]
+fn a_capped_point_reaches_the_point_capped_hook_and_a_rerun_calls_nothing_again() {
+    let d = tmp();
+    let got = d.path().join("got");
+    std::fs::create_dir_all(&got).unwrap_or_else(|e| panic!("{e}"));
+    script(
+        d.path(),
+        "record.sh",
+        "cat > \"$1/$RONDO_HOOK_EVENT-$RONDO_HOOK_POINT.json\"\n",
+    );
+    let f = campaign(
+        d.path(),
+        "ok",
+        &format!(
+            "hooks:\n  point-capped: [./record.sh, {}]\n  point-converged: [./record.sh, {}]\n",
+            got.display(),
+            got.display()
+        ),
+    );
+    let text = std::fs::read_to_string(&f)
+        .unwrap_or_default()
+        .replace("max-iterations: 30", "max-iterations: 2");
+    std::fs::write(&f, text).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml"]);
+    assert_eq!(o.status.code(), Some(3), "capped points: {}", shown(&o));
+    for id in ["p001", "p002", "p003"] {
+        let c = read_json(&got.join(format!("point-capped-{id}.json")));
+        assert_eq!(c["event"], "point-capped");
+        assert_eq!(c["iteration"], 2);
+        assert!(
+            c["reason"]
+                .as_str()
+                .is_some_and(|r| r.contains("max-iterations")),
+            "{c}"
+        );
+        assert!(
+            c.get("final").is_none(),
+            "final values only for converged points"
+        );
+    }
+    assert_eq!(std::fs::read_dir(&got).map(|r| r.count()).unwrap_or(0), 3);
+    // Running again finds every point stopped: no event, no hook.
+    for e in std::fs::read_dir(&got).into_iter().flatten().flatten() {
+        let _ = std::fs::remove_file(e.path());
+    }
+    let o = run_rondo(d.path(), &["run", "c.yaml"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    assert_eq!(std::fs::read_dir(&got).map(|r| r.count()).unwrap_or(0), 0);
+}

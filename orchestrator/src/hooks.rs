@@ -178,7 +178,7 @@ impl Hooks {
             return;
         };
         let low = self.spec.disk_free_below.is_low(free, total);
-        if low && !self.disk_low {
+        if crossed(&mut self.disk_low, low) {
             let mut doc = self.base("disk-low");
             doc.insert("free_bytes".into(), json!(free));
             doc.insert("total_bytes".into(), json!(total));
@@ -191,7 +191,6 @@ impl Hooks {
             );
             self.start("disk-low", None, doc);
         }
-        self.disk_low = low;
     }
 
     /// What every event document holds.
@@ -223,6 +222,14 @@ impl Hooks {
         };
         self.running.spawn(call.run());
     }
+}
+
+/// Whether the free space just fell below the threshold (`low` now, not at the last look);
+/// remembers `low` in `was_low`, so the event fires once per crossing.
+fn crossed(was_low: &mut bool, low: bool) -> bool {
+    let fire = low && !*was_low;
+    *was_low = low;
+    fire
 }
 
 /// The final values of every metric of a point's last good iteration.
@@ -390,6 +397,16 @@ mod tests {
     fn the_free_space_of_the_current_folder_is_known() {
         let (free, total) = free_space(Path::new(".")).unwrap_or((u64::MAX, 0));
         assert!(free <= total, "{free} of {total}");
+    }
+
+    #[test]
+    fn disk_low_fires_once_per_crossing() {
+        let mut was = false;
+        let fired: Vec<bool> = [true, true, false, false, true, true]
+            .into_iter()
+            .map(|low| crossed(&mut was, low))
+            .collect();
+        assert_eq!(fired, [true, false, false, false, true, false]);
     }
 
     #[test]

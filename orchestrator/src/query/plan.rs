@@ -15,7 +15,7 @@ use anyhow::Result;
 use serde::Serialize;
 use sqlx::SqlitePool;
 
-use crate::spec::Campaign;
+use crate::spec::{Campaign, Stage};
 use crate::store::reads::tables;
 use crate::store::PointState;
 
@@ -79,6 +79,40 @@ pub struct Plan {
     pub budget_core_hours: Option<f64>,
     /// Whether the upper bound exceeds the budget (`None`: no budget, or unknown total).
     pub over_budget: Option<bool>,
+}
+
+/// One stage's estimate from its recorded wall times (`secs`), how many of those attempts
+/// succeeded (`ok`), and the iterations to go.
+fn stage_plan(st: &Stage, (mut secs, ok): (Vec<f64>, usize), iterations: Range) -> StagePlan {
+    let cpus = if st.kind.is_builtin() {
+        1
+    } else {
+        st.resources.cpus().max(1)
+    };
+    let n = secs.len();
+    let per_success = if ok > 0 { n as f64 / ok as f64 } else { 1.0 };
+    let attempts = Range {
+        typical: iterations.typical * per_success,
+        upper: iterations.upper * per_success,
+    };
+    let walls = median(&mut secs).map(|median| Walls {
+        median,
+        min: secs.first().copied().unwrap_or(median),
+        max: secs.last().copied().unwrap_or(median),
+    });
+    let core_hours = walls.map(|w| Range {
+        typical: attempts.typical * w.median * f64::from(cpus) / 3600.0,
+        upper: attempts.upper * w.max * f64::from(cpus) / 3600.0,
+    });
+    StagePlan {
+        stage: st.name.clone(),
+        cpus,
+        recorded_attempts: n,
+        attempts_per_success: per_success,
+        wall_seconds: walls,
+        attempts,
+        core_hours,
+    }
 }
 
 /// The median of `v` (sorted in place), `None` when empty.
@@ -153,43 +187,16 @@ pub async fn estimate(
         upper: 0.0,
     });
     for st in &campaign.stages {
-        let cpus = if st.kind.is_builtin() {
-            1
-        } else {
-            st.resources.cpus().max(1)
-        };
-        let (mut secs, ok) = by_stage.remove(st.name.as_str()).unwrap_or_default();
-        let n = secs.len();
-        let per_success = if ok > 0 { n as f64 / ok as f64 } else { 1.0 };
-        let attempts = Range {
-            typical: iterations.typical * per_success,
-            upper: iterations.upper * per_success,
-        };
-        let walls = median(&mut secs).map(|median| Walls {
-            median,
-            min: secs.first().copied().unwrap_or(median),
-            max: secs.last().copied().unwrap_or(median),
-        });
-        let core_hours = walls.map(|w| Range {
-            typical: attempts.typical * w.median * f64::from(cpus) / 3600.0,
-            upper: attempts.upper * w.max * f64::from(cpus) / 3600.0,
-        });
-        total = match (total, core_hours) {
+        let recorded = by_stage.remove(st.name.as_str()).unwrap_or_default();
+        let sp = stage_plan(st, recorded, iterations);
+        total = match (total, sp.core_hours) {
             (Some(t), Some(c)) => Some(Range {
                 typical: t.typical + c.typical,
                 upper: t.upper + c.upper,
             }),
             _ => None,
         };
-        stages.push(StagePlan {
-            stage: st.name.clone(),
-            cpus,
-            recorded_attempts: n,
-            attempts_per_success: per_success,
-            wall_seconds: walls,
-            attempts,
-            core_hours,
-        });
+        stages.push(sp);
     }
     let over_budget = match (campaign.budget_core_hours, total) {
         (Some(b), Some(t)) => Some(t.upper > b),
