@@ -327,6 +327,8 @@ impl Call {
             let mut err = Vec::new();
             if let Some(r) = stderr.as_mut() {
                 let _ = r.take(STDERR_KEPT as u64 * 4).read_to_end(&mut err).await;
+                // The rest is read and dropped, so a talkative hook never blocks on a full pipe.
+                let _ = tokio::io::copy(r, &mut tokio::io::sink()).await;
             }
             (child.wait().await, err)
         };

@@ -8,22 +8,23 @@ use std::path::Path;
 use serde_saphyr::Spanned;
 
 use super::{loc, parse_duration, Validator};
-use crate::spec::model::{DiskFree, Hooks};
+use crate::spec::model::{DiskFree, Hooks, HOOK_EVENTS};
 use crate::spec::raw::{CampaignFile, HookCommand, Scalar};
 
 impl Validator<'_> {
     /// `hooks:` → the hooks model (relative program paths made absolute from `base`).
     pub(super) fn hooks(&mut self, raw: &CampaignFile, base: &Path) -> Hooks {
         let h = &raw.hooks;
-        let named: [(&str, &HookCommand); 5] = [
-            ("point-failed", &h.point_failed),
-            ("point-converged", &h.point_converged),
-            ("point-capped", &h.point_capped),
-            ("campaign-done", &h.campaign_done),
-            ("disk-low", &h.disk_low),
+        // In the order of HOOK_EVENTS.
+        let fields: [&HookCommand; 5] = [
+            &h.point_failed,
+            &h.point_converged,
+            &h.point_capped,
+            &h.campaign_done,
+            &h.disk_low,
         ];
         let mut commands = BTreeMap::new();
-        for (name, cmd) in named {
+        for (name, cmd) in HOOK_EVENTS.into_iter().zip(fields) {
             let Some(cmd) = cmd else { continue };
             if let Some(argv) = self.hook_command(name, cmd, base) {
                 commands.insert(name.to_string(), argv);

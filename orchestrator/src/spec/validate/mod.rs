@@ -3,9 +3,10 @@
 //!
 //! [`Validator::run`] calls one function per section of the file, in file order (campaign
 //! name, programs, start files, sweep, schedules, stages, stopping rules, stage order,
-//! analysis); each section lives in its own file here, reports through [`Validator::push`]
-//! and returns its part of the model. Diagnostics are sorted by location at the end (a
-//! stable sort, so problems at one place keep the order in which they were found).
+//! analysis, hooks, budget); each section lives in its own file here, reports through
+//! [`Validator::push`] and returns its part of the model. Diagnostics are sorted by location
+//! at the end (a stable sort, so problems at one place keep the order in which they were
+//! found).
 //! No file I/O beyond looking for the programs and start files the campaign names.
 
 mod analysis;
