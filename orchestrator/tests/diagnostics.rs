@@ -1176,6 +1176,61 @@ stop: { max-iterations: 1 }
 ",
             at: (9, 16),
         },
+        Case {
+            site: "hooks: time limit `{}` is not a duration",
+            says: "hooks: time limit `soon` is not a duration",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+hooks: { time-limit: soon }
+",
+            at: (5, 22),
+        },
+        Case {
+            site: "hooks: `disk-free-below: {}` is neither a percentage nor a size",
+            says: "`disk-free-below: lots` is neither a percentage nor a size",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+hooks: { disk-free-below: lots }
+",
+            at: (5, 27),
+        },
+        Case {
+            site: "hook `{name}`: the command is empty",
+            says: "hook `point-failed`: the command is empty",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+hooks: { point-failed: [] }
+",
+            at: (5, 24),
+        },
+        Case {
+            site: "hook `{name}`: `{}` has a placeholder; hooks take none",
+            says: "hook `point-failed`: `{{point}}` has a placeholder",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+hooks: { point-failed: [./n.sh, \"{{point}}\"] }
+",
+            at: (5, 33),
+        },
+        Case {
+            site: "budget `{}` is not a positive number of core-hours",
+            says: "budget `200 node-hours` is not a positive number of core-hours",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+budget: { core-hours: 200 node-hours }
+",
+            at: (5, 23),
+        },
     ]
 }
 

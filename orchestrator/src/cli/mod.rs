@@ -1,7 +1,7 @@
 //! The `rondo` command line: the argument definitions (clap), the entry point, and a
 //! dispatch table that hands each subcommand to its own module (`check`, `run`, `status`,
 //! `cancel`, `analyze`, `builtin`, `trace`, `extract`, `diff`, `export`, `report`,
-//! `submit`). Output helpers are in `output`, the exit codes (0 every point converged; 3
+//! `submit`, `table`, `plan`). Output helpers are in `output`, the exit codes (0 every point converged; 3
 //! finished but some point failed, was capped or cancelled; 4 interrupted by a signal; 2 bad
 //! input; 1 other errors) in `exit`, finding the workspace in `workspace`.
 //!
@@ -24,10 +24,12 @@ mod exit;
 mod export;
 mod extract;
 mod output;
+mod plan;
 mod report;
 mod run;
 mod status;
 mod submit;
+mod table;
 mod trace;
 mod workspace;
 
@@ -102,8 +104,72 @@ enum Command {
     /// Write (and submit, unless --print-only) a batch script that runs this campaign inside
     /// Slurm allocations, each job continuing the last at Slurm's warning before the limit.
     Submit(SubmitArgs),
+    /// A tidy table for notebooks, as CSV or JSON Lines: every metric of every attempt
+    /// (`metrics`), or each point's final values with their errors (`finals`); columns in
+    /// docs/tables.md.
+    Table(TableArgs),
+    /// Estimate the remaining attempts and core-hours per stage from recorded durations
+    /// (this workspace's, or another's with --durations-from), against the campaign's budget.
+    Plan(PlanArgs),
     /// Print the JSON Schema of the campaign file.
     Schema,
+}
+
+/// Which table `rondo table` writes.
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum TableKind {
+    /// One row per point, iteration, stage, attempt and metric.
+    Metrics,
+    /// One row per point and metric: the final value, its error and how it was computed.
+    Finals,
+}
+
+/// The format of `rondo table`.
+#[derive(Debug, Clone, Copy, ValueEnum)]
+enum TableFormatArg {
+    /// Comma-separated values with a header line.
+    Csv,
+    /// One JSON object per line.
+    Jsonl,
+}
+
+// The flags of `rondo table` (its help text is the variant's).
+#[derive(Args, Debug)]
+struct TableArgs {
+    /// Which table.
+    #[arg(value_enum)]
+    table: TableKind,
+    /// The campaign file (its default workspace is used).
+    file: Option<PathBuf>,
+    /// Workspace folder.
+    #[arg(long)]
+    workspace: Option<PathBuf>,
+    /// Output format.
+    #[arg(long, value_enum, default_value = "csv")]
+    format: TableFormatArg,
+    /// Write to this file instead of stdout.
+    #[arg(long, value_name = "FILE")]
+    out: Option<PathBuf>,
+    /// Metrics read from the store per query (the table is written as it is read).
+    #[arg(long, value_name = "N", default_value_t = 4096, value_parser = clap::value_parser!(u32).range(1..))]
+    page: u32,
+}
+
+// The flags of `rondo plan` (its help text is the variant's).
+#[derive(Args, Debug)]
+struct PlanArgs {
+    /// The campaign file.
+    file: PathBuf,
+    /// Workspace folder (default: <campaign>.rondo beside the file; need not exist yet).
+    #[arg(long)]
+    workspace: Option<PathBuf>,
+    /// Take the recorded durations from this workspace instead (e.g. an earlier, similar
+    /// campaign).
+    #[arg(long, value_name = "WS")]
+    durations_from: Option<PathBuf>,
+    /// Machine-readable output.
+    #[arg(long)]
+    json: bool,
 }
 
 // The flags of `rondo check` (its help text is the variant's).
@@ -373,6 +439,8 @@ async fn dispatch(cmd: Command) -> Result<u8> {
         Command::Export(a) => export::run(a).await,
         Command::Report(a) => report::run(a).await,
         Command::Submit(a) => submit::run(a).await,
+        Command::Table(a) => table::run(a).await,
+        Command::Plan(a) => plan::run(a).await,
         Command::Schema => check::schema(),
     }
 }

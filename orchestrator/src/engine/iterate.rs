@@ -81,6 +81,8 @@ impl Engine<'_> {
                 }
             })
             .await?;
+        self.hooks
+            .point_stopped(&self.points[p].spec, PointState::Failed, iteration, reason);
         self.progress.line(format!("{point_id} failed: {reason}"));
         Ok(())
     }
@@ -234,6 +236,7 @@ impl Engine<'_> {
         };
         if let Some((state, reason)) = &v.fate {
             pr.phase = PointPhase::Done;
+            self.hooks.point_stopped(&pr.spec, *state, n, reason);
             let why = if v.summary.is_empty() {
                 format!(": {reason}")
             } else {

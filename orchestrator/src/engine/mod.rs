@@ -386,6 +386,8 @@ struct Engine<'a> {
     /// Attempts on the blocking pool (output checks and storing, built-ins): in flight, but
     /// holding no executor slot.
     storing: std::collections::HashSet<i64>,
+    /// The campaign's hooks (run beside the loop, never waited for in it).
+    hooks: crate::hooks::Hooks,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -448,6 +450,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         scratch: scratch::Pool::open(&paths_scratch)?,
         checked_tx,
         storing: Default::default(),
+        hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
     };
     engine
         .event(
@@ -479,6 +482,11 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
             return Err(e);
         }
     };
+    let done = (!summary.interrupted && !summary.cancelled).then(|| summary.by_text());
+    engine
+        .hooks
+        .finish(&mut engine.ledger, done.as_ref())
+        .await?;
     engine
         .event(
             "run-ended",
@@ -588,6 +596,7 @@ impl Engine<'_> {
                 } => { interrupted = true; warned = true; break; }
                 _ = tick.tick() => {
                     self.record_launches().await?;
+                    self.hooks.tick(&mut self.ledger).await?;
                     if let Some(r) = CancelRequest::read(&self.paths.cancel_request) {
                         cancelled = Some(r);
                         break;

@@ -8,3 +8,4 @@
 pub mod extract;
 pub mod prov;
 pub mod report;
+pub mod tables;

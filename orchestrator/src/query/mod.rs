@@ -15,6 +15,7 @@ pub mod diff_text;
 pub mod format;
 pub mod generations;
 pub mod lineage;
+pub mod plan;
 pub mod records;
 pub mod target;
 pub mod trace_text;

@@ -19,8 +19,9 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, Diagnostic, EosAnalysis, Placement, PointSpec, ResolvedProgram, Rule,
-    RuleTest, Schedule, Source, SpecErrors, Stage, StageKind, FILTER_METRICS, LEGACY_ROLE,
+    BadInput, Campaign, Diagnostic, DiskFree, EosAnalysis, Hooks, Placement, PointSpec,
+    ResolvedProgram, Rule, RuleTest, Schedule, Source, SpecErrors, Stage, StageKind,
+    FILTER_METRICS, HOOK_EVENTS, LEGACY_ROLE,
 };
 pub use raw::{
     AnalysisSpec, BuiltinSettings, CampaignFile, Combine, Compare, Defaults, EosModelName, EosSpec,

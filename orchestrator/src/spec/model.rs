@@ -253,6 +253,63 @@ pub struct Campaign {
     pub schedules: Vec<Schedule>,
     /// Things that are allowed but probably not meant (`rondo check` prints them).
     pub warnings: Vec<Diagnostic>,
+    /// Programs run on events.
+    pub hooks: Hooks,
+    /// The campaign's budget in core-hours, if it states one.
+    pub budget_core_hours: Option<f64>,
+}
+
+/// The events a hook may be named for, as the campaign file and the event JSON spell them.
+pub const HOOK_EVENTS: [&str; 5] = [
+    "point-failed",
+    "point-converged",
+    "point-capped",
+    "campaign-done",
+    "disk-low",
+];
+
+/// Free space under which `disk-low` fires.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum DiskFree {
+    /// Below this percentage of the file system's size.
+    Percent(f64),
+    /// Below this many bytes.
+    Bytes(u64),
+    /// Below 10 GiB or below 5 %, whichever comes first (the default).
+    Default,
+}
+
+impl DiskFree {
+    /// Whether `free` bytes of a file system of `total` bytes are below the threshold.
+    pub fn is_low(self, free: u64, total: u64) -> bool {
+        let below_percent = |p: f64| total > 0 && (free as f64) < p / 100.0 * total as f64;
+        match self {
+            DiskFree::Percent(p) => below_percent(p),
+            DiskFree::Bytes(b) => free < b,
+            DiskFree::Default => free < 10 << 30 || below_percent(5.0),
+        }
+    }
+}
+
+/// The hooks of a campaign.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Hooks {
+    /// Event (one of [`HOOK_EVENTS`]) → argument list (program first).
+    pub commands: BTreeMap<String, Vec<String>>,
+    /// Longest a hook may run.
+    pub time_limit: Duration,
+    /// When `disk-low` fires.
+    pub disk_free_below: DiskFree,
+}
+
+impl Default for Hooks {
+    fn default() -> Hooks {
+        Hooks {
+            commands: BTreeMap::new(),
+            time_limit: Duration::from_secs(30),
+            disk_free_below: DiskFree::Default,
+        }
+    }
 }
 
 impl Campaign {

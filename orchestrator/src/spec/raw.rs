@@ -506,6 +506,64 @@ pub struct CampaignFile {
     /// Parameters that follow the loop: name → schedule (usable as `{{param:NAME}}`).
     #[serde(default)]
     pub schedules: OrderedMap<ScheduleSpec>,
+    /// Programs run when something happens (a point fails or converges, the campaign is
+    /// done, the disk runs low); each gets a JSON description of the event on stdin.
+    #[serde(default)]
+    pub hooks: HooksSpec,
+    /// What the campaign may cost; `rondo plan` warns when its estimate could exceed it.
+    #[serde(default)]
+    pub budget: Option<BudgetSpec>,
+}
+
+/// A hook's command: `[program, args...]`, run without a shell and without placeholders
+/// (the event is on stdin as JSON and in `RONDO_HOOK_*` environment variables).
+pub type HookCommand = Option<Spanned<Vec<Spanned<String>>>>;
+
+/// Programs run on events. A hook that fails, hangs past `time-limit` or is missing is
+/// logged (event `hook-failed`) and never stops the campaign.
+#[derive(Debug, Clone, Default, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct HooksSpec {
+    /// Run when a point fails (retries used up, diverging, program changed).
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<String>>")]
+    pub point_failed: HookCommand,
+    /// Run when a point converges; the event carries its final values.
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<String>>")]
+    pub point_converged: HookCommand,
+    /// Run when a point reaches max-iterations without converging.
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<String>>")]
+    pub point_capped: HookCommand,
+    /// Run when a run ends with every point stopped.
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<String>>")]
+    pub campaign_done: HookCommand,
+    /// Run once each time the workspace's file system falls below `disk-free-below`
+    /// (checked every 30 seconds while a run goes on).
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<String>>")]
+    pub disk_low: HookCommand,
+    /// Longest a hook may run, `[days-]hh:mm:ss`, `mm:ss` or minutes (default `0:30`).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub time_limit: Option<Spanned<String>>,
+    /// Free space under which `disk-low` fires: a percentage of the file system (`5%`) or a
+    /// size (`10GiB`, `500MB`). Default: below 10 GiB or below 5 %, whichever comes first.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub disk_free_below: Option<Spanned<String>>,
+}
+
+/// A budget for the whole campaign.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct BudgetSpec {
+    /// Core-hours (wall time × CPUs of every attempt): a number, or text ending in
+    /// `core-hours` (`5000 core-hours`).
+    #[schemars(with = "Scalar")]
+    pub core_hours: Spanned<Scalar>,
 }
 
 /// A parameter driven by the loop: `start × factor^k`, capped at `max`, where k counts the

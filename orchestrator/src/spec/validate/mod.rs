@@ -3,14 +3,16 @@
 //!
 //! [`Validator::run`] calls one function per section of the file, in file order (campaign
 //! name, programs, start files, sweep, schedules, stages, stopping rules, stage order,
-//! analysis); each section lives in its own file here, reports through [`Validator::push`]
-//! and returns its part of the model. Diagnostics are sorted by location at the end (a
-//! stable sort, so problems at one place keep the order in which they were found).
+//! analysis, hooks, budget); each section lives in its own file here, reports through
+//! [`Validator::push`] and returns its part of the model. Diagnostics are sorted by location
+//! at the end (a stable sort, so problems at one place keep the order in which they were
+//! found).
 //! No file I/O beyond looking for the programs and start files the campaign names.
 
 mod analysis;
 mod builtins;
 mod commands;
+mod hooks;
 mod programs;
 mod resources;
 mod rules;
@@ -101,6 +103,8 @@ impl<'a> Validator<'a> {
         let stop = self.stop(&raw, text);
         let stages = self.order(&raw, &stages);
         let eos = self.eos(&raw, &points);
+        let hooks = self.hooks(&raw, &base);
+        let budget_core_hours = self.budget(&raw);
         if !self.diags.is_empty() {
             self.diags.sort_by_key(|d| (d.line, d.column));
             return Err(SpecErrors {
@@ -125,6 +129,8 @@ impl<'a> Validator<'a> {
             eos,
             schedules,
             warnings: stop.warnings,
+            hooks,
+            budget_core_hours,
         })
     }
 

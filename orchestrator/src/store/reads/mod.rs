@@ -16,3 +16,4 @@ pub mod attempts;
 pub mod metrics;
 pub mod points;
 pub mod reports;
+pub mod tables;

@@ -1,0 +1,228 @@
+//! The estimate of what is left of a campaign (`rondo plan`): remaining iterations, attempts
+//! and core-hours per stage, from the durations recorded in a workspace (this campaign's or
+//! another's), and the comparison with the campaign's budget.
+//!
+//! Honest by construction: every number says what it rests on (how many recorded attempts
+//! per stage, how many converged points), a stage with nothing recorded is `unknown` (and so
+//! is every total it enters), and the iterations to go come as a typical estimate (the
+//! recorded median iterations-to-converge of converged points) and an upper bound (the
+//! iterations left to max-iterations). Reads only through [`crate::store::reads::tables`];
+//! no SQL, no engine.
+
+use std::collections::BTreeMap;
+
+use anyhow::Result;
+use serde::Serialize;
+use sqlx::SqlitePool;
+
+use crate::spec::{Campaign, Stage};
+use crate::store::reads::tables;
+use crate::store::PointState;
+
+/// Typical and upper values of one quantity.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct Range {
+    /// From the median iterations-to-converge and the median wall time.
+    pub typical: f64,
+    /// From the iterations left to max-iterations and the longest recorded wall time.
+    pub upper: f64,
+}
+
+/// Recorded wall times of one stage, in seconds.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct Walls {
+    /// Median.
+    pub median: f64,
+    /// Shortest.
+    pub min: f64,
+    /// Longest.
+    pub max: f64,
+}
+
+/// The estimate for one stage.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct StagePlan {
+    /// Stage name.
+    pub stage: String,
+    /// CPUs of one attempt (`ntasks × cpus-per-task`; 1 for built-ins and unset resources).
+    pub cpus: u32,
+    /// Ended attempts (succeeded or failed) the durations come from.
+    pub recorded_attempts: usize,
+    /// Recorded attempts per succeeded one (1 when none succeeded yet).
+    pub attempts_per_success: f64,
+    /// Their wall times, `None` when nothing is recorded.
+    pub wall_seconds: Option<Walls>,
+    /// Attempts still to run.
+    pub attempts: Range,
+    /// Core-hours still to spend, `None` (unknown) when nothing is recorded.
+    pub core_hours: Option<Range>,
+}
+
+/// The estimate for a campaign.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Plan {
+    /// Points that have not stopped (failed points stay failed on a rerun).
+    pub points_to_go: usize,
+    /// Points of the campaign.
+    pub points: usize,
+    /// Iterations to go, summed over the points to go.
+    pub iterations: Range,
+    /// Median iterations to converge of the converged points of the durations' workspace.
+    pub median_to_converge: Option<f64>,
+    /// How many converged points that median comes from.
+    pub converged_points: usize,
+    /// Per stage, in cycle order.
+    pub stages: Vec<StagePlan>,
+    /// Sum over the stages; `None` when any stage is unknown.
+    pub total_core_hours: Option<Range>,
+    /// The campaign's budget.
+    pub budget_core_hours: Option<f64>,
+    /// Whether the upper bound exceeds the budget (`None`: no budget, or unknown total).
+    pub over_budget: Option<bool>,
+}
+
+/// One stage's estimate from its recorded wall times (`secs`), how many of those attempts
+/// succeeded (`ok`), and the iterations to go.
+fn stage_plan(st: &Stage, (mut secs, ok): (Vec<f64>, usize), iterations: Range) -> StagePlan {
+    let cpus = if st.kind.is_builtin() {
+        1
+    } else {
+        st.resources.cpus().max(1)
+    };
+    let n = secs.len();
+    let per_success = if ok > 0 { n as f64 / ok as f64 } else { 1.0 };
+    let attempts = Range {
+        typical: iterations.typical * per_success,
+        upper: iterations.upper * per_success,
+    };
+    let walls = median(&mut secs).map(|median| Walls {
+        median,
+        min: secs.first().copied().unwrap_or(median),
+        max: secs.last().copied().unwrap_or(median),
+    });
+    let core_hours = walls.map(|w| Range {
+        typical: attempts.typical * w.median * f64::from(cpus) / 3600.0,
+        upper: attempts.upper * w.max * f64::from(cpus) / 3600.0,
+    });
+    StagePlan {
+        stage: st.name.clone(),
+        cpus,
+        recorded_attempts: n,
+        attempts_per_success: per_success,
+        wall_seconds: walls,
+        attempts,
+        core_hours,
+    }
+}
+
+/// The median of `v` (sorted in place), `None` when empty.
+fn median(v: &mut [f64]) -> Option<f64> {
+    if v.is_empty() {
+        return None;
+    }
+    v.sort_by(f64::total_cmp);
+    let m = v.len() / 2;
+    Some(if v.len() % 2 == 1 {
+        v[m]
+    } else {
+        0.5 * (v[m - 1] + v[m])
+    })
+}
+
+/// Estimate what is left of `campaign` in the workspace behind `progress` (`None`: not
+/// started, every point to go) from the durations recorded behind `durations`.
+pub async fn estimate(
+    campaign: &Campaign,
+    progress: Option<&SqlitePool>,
+    durations: Option<&SqlitePool>,
+) -> Result<Plan> {
+    // Iterations-to-converge of the converged points of the durations' workspace.
+    let mut converged: Vec<f64> = Vec::new();
+    if let Some(pool) = durations {
+        for (_, state, good, _) in tables::point_progress(pool).await? {
+            if state == PointState::Converged {
+                converged.push(good as f64);
+            }
+        }
+    }
+    let converged_points = converged.len();
+    let median_to_converge = median(&mut converged);
+    // Good iterations done per point still to go.
+    let done: Vec<i64> = match progress {
+        Some(pool) => tables::point_progress(pool)
+            .await?
+            .into_iter()
+            .filter(|(_, s, _, _)| !s.stopped() || *s == PointState::Cancelled)
+            .map(|(_, _, good, _)| good)
+            .collect(),
+        None => vec![0; campaign.points.len()],
+    };
+    let cap = f64::from(campaign.max_iterations);
+    let mut iterations = Range {
+        typical: 0.0,
+        upper: 0.0,
+    };
+    for good in &done {
+        let upper = (cap - *good as f64).max(0.0);
+        let typical = match median_to_converge {
+            Some(m) => (m.ceil() - *good as f64).max(1.0).min(upper),
+            None => upper,
+        };
+        iterations.typical += typical;
+        iterations.upper += upper;
+    }
+    let mut by_stage: BTreeMap<&str, (Vec<f64>, usize)> = BTreeMap::new();
+    let recorded = match durations {
+        Some(pool) => tables::durations(pool).await?,
+        None => Vec::new(),
+    };
+    for d in &recorded {
+        let e = by_stage.entry(d.stage.as_str()).or_default();
+        e.0.push(d.seconds);
+        e.1 += usize::from(d.succeeded);
+    }
+    let mut stages = Vec::new();
+    let mut total = Some(Range {
+        typical: 0.0,
+        upper: 0.0,
+    });
+    for st in &campaign.stages {
+        let recorded = by_stage.remove(st.name.as_str()).unwrap_or_default();
+        let sp = stage_plan(st, recorded, iterations);
+        total = match (total, sp.core_hours) {
+            (Some(t), Some(c)) => Some(Range {
+                typical: t.typical + c.typical,
+                upper: t.upper + c.upper,
+            }),
+            _ => None,
+        };
+        stages.push(sp);
+    }
+    let over_budget = match (campaign.budget_core_hours, total) {
+        (Some(b), Some(t)) => Some(t.upper > b),
+        _ => None,
+    };
+    Ok(Plan {
+        points_to_go: done.len(),
+        points: campaign.points.len(),
+        iterations,
+        median_to_converge,
+        converged_points,
+        stages,
+        total_core_hours: total,
+        budget_core_hours: campaign.budget_core_hours,
+        over_budget,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::median;
+
+    #[test]
+    fn the_median_of_an_even_count_is_the_mean_of_the_middle_two() {
+        assert_eq!(median(&mut [3.0, 1.0, 2.0]), Some(2.0));
+        assert_eq!(median(&mut [4.0, 1.0, 3.0, 2.0]), Some(2.5));
+        assert_eq!(median(&mut []), None);
+    }
+}
