@@ -12,6 +12,7 @@ pub mod export;
 pub mod fsinfo;
 pub mod progress;
 pub mod query;
+pub mod retention;
 pub mod scratch;
 pub mod spec;
 pub mod stop;

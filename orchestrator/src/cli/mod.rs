@@ -24,6 +24,7 @@ mod exit;
 mod export;
 mod extract;
 mod output;
+mod prune;
 mod report;
 mod run;
 mod status;
@@ -102,8 +103,42 @@ enum Command {
     /// Write (and submit, unless --print-only) a batch script that runs this campaign inside
     /// Slurm allocations, each job continuing the last at Slurm's warning before the limit.
     Submit(SubmitArgs),
+    /// Apply the retention policies (the campaign's `keep:`, or --keep) to the workspace:
+    /// remove stored content no policy keeps; the records and hashes stay.
+    Prune(PruneArgs),
+    /// Where the disk goes: bytes per stage and output role, kept and removed by retention.
+    Du(DuArgs),
     /// Print the JSON Schema of the campaign file.
     Schema,
+}
+
+// The flags of `rondo prune` (its help text is the variant's).
+#[derive(Args, Debug)]
+struct PruneArgs {
+    /// The campaign file or workspace folder (default: the single *.rondo folder here).
+    file: Option<PathBuf>,
+    /// Workspace folder.
+    #[arg(long)]
+    workspace: Option<PathBuf>,
+    /// A policy for one output role, over the campaign's: STAGE.ROLE=last:N,every:K.
+    #[arg(long, value_name = "STAGE.ROLE=POLICY")]
+    keep: Vec<String>,
+    /// Print what was removed as JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+// The flags of `rondo du` (its help text is the variant's).
+#[derive(Args, Debug)]
+struct DuArgs {
+    /// The campaign file or workspace folder (default: the single *.rondo folder here).
+    file: Option<PathBuf>,
+    /// Workspace folder.
+    #[arg(long)]
+    workspace: Option<PathBuf>,
+    /// JSON output.
+    #[arg(long)]
+    json: bool,
 }
 
 // The flags of `rondo check` (its help text is the variant's).
@@ -373,6 +408,8 @@ async fn dispatch(cmd: Command) -> Result<u8> {
         Command::Export(a) => export::run(a).await,
         Command::Report(a) => report::run(a).await,
         Command::Submit(a) => submit::run(a).await,
+        Command::Prune(a) => prune::prune(a).await,
+        Command::Du(a) => prune::du(a).await,
         Command::Schema => check::schema(),
     }
 }

@@ -19,7 +19,7 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, Diagnostic, EosAnalysis, Placement, PointSpec, ResolvedProgram, Rule,
+    BadInput, Campaign, Diagnostic, EosAnalysis, Keep, Placement, PointSpec, ResolvedProgram, Rule,
     RuleTest, Schedule, Source, SpecErrors, Stage, StageKind, FILTER_METRICS, LEGACY_ROLE,
 };
 pub use raw::{
