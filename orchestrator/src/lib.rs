@@ -13,6 +13,7 @@ pub mod fsinfo;
 pub mod hooks;
 pub mod progress;
 pub mod query;
+pub mod retention;
 pub mod scratch;
 pub mod spec;
 pub mod stop;

@@ -1231,6 +1231,45 @@ budget: { core-hours: 200 node-hours }
 ",
             at: (5, 23),
         },
+        Case {
+            site: "stage `{sname}`: `keep` names `{}`, which is not one of its outputs",
+            says: "`keep` names `wfc`, which is not one of its outputs",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    outputs: { restart: r.bin }
+    keep: { wfc: { last: 2 } }
+stop: { max-iterations: 1 }
+",
+            at: (6, 13),
+        },
+        Case {
+            site: "stage `{sname}`: `keep.{}` keeps nothing it names",
+            says: "`keep.restart` keeps nothing it names",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    outputs: { restart: r.bin }
+    keep: { restart: {} }
+stop: { max-iterations: 1 }
+",
+            at: (6, 22),
+        },
+        Case {
+            site: "stage `{sname}`: `keep.{}` counts must be at least 1",
+            says: "`keep.restart` counts must be at least 1",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    outputs: { restart: r.bin }
+    keep: { restart: { last: 0 } }
+stop: { max-iterations: 1 }
+",
+            at: (6, 22),
+        },
     ]
 }
 

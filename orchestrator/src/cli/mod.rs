@@ -25,6 +25,7 @@ mod export;
 mod extract;
 mod output;
 mod plan;
+mod prune;
 mod report;
 mod run;
 mod status;
@@ -111,8 +112,42 @@ enum Command {
     /// Estimate the remaining attempts and core-hours per stage from recorded durations
     /// (this workspace's, or another's with --durations-from), against the campaign's budget.
     Plan(PlanArgs),
+    /// Apply the retention policies (the campaign's `keep:`, or --keep) to the workspace:
+    /// remove stored content no policy keeps; the records and hashes stay.
+    Prune(PruneArgs),
+    /// Where the disk goes: bytes per stage and output role, kept and removed by retention.
+    Du(DuArgs),
     /// Print the JSON Schema of the campaign file.
     Schema,
+}
+
+// The flags of `rondo prune` (its help text is the variant's).
+#[derive(Args, Debug)]
+struct PruneArgs {
+    /// The campaign file or workspace folder (default: the single *.rondo folder here).
+    file: Option<PathBuf>,
+    /// Workspace folder.
+    #[arg(long)]
+    workspace: Option<PathBuf>,
+    /// A policy for one output role, over the campaign's: STAGE.ROLE=last:N,every:K.
+    #[arg(long, value_name = "STAGE.ROLE=POLICY")]
+    keep: Vec<String>,
+    /// Print what was removed as JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+// The flags of `rondo du` (its help text is the variant's).
+#[derive(Args, Debug)]
+struct DuArgs {
+    /// The campaign file or workspace folder (default: the single *.rondo folder here).
+    file: Option<PathBuf>,
+    /// Workspace folder.
+    #[arg(long)]
+    workspace: Option<PathBuf>,
+    /// JSON output.
+    #[arg(long)]
+    json: bool,
 }
 
 /// Which table `rondo table` writes.
@@ -441,6 +476,8 @@ async fn dispatch(cmd: Command) -> Result<u8> {
         Command::Submit(a) => submit::run(a).await,
         Command::Table(a) => table::run(a).await,
         Command::Plan(a) => plan::run(a).await,
+        Command::Prune(a) => prune::prune(a).await,
+        Command::Du(a) => prune::du(a).await,
         Command::Schema => check::schema(),
     }
 }

@@ -142,6 +142,27 @@ impl Engine<'_> {
             .write(|s| record_verdict(s, &point_id, &v, stop_json))
             .await?;
         self.apply_verdict(p, v);
+        self.retain(p).await
+    }
+
+    /// After a good iteration: let go of stored content the retention policies no longer
+    /// keep (nothing without `keep:`; a few index look-ups per policy otherwise).
+    pub(super) async fn retain(&mut self, p: usize) -> Result<()> {
+        if self.policies.is_empty() {
+            return Ok(());
+        }
+        let point = self.points[p].spec.id.clone();
+        let store = self.ledger.flush().await?;
+        let done = crate::retention::after_iteration(
+            store.pool(),
+            &self.artifacts,
+            &self.policies,
+            &point,
+        )
+        .await?;
+        if done.files > 0 {
+            tracing::debug!(point, files = done.files, bytes = done.bytes, "retention");
+        }
         Ok(())
     }
 

@@ -383,6 +383,8 @@ struct Engine<'a> {
     scratch: scratch::Pool,
     /// Where the blocking pool hands back attempts whose outputs it checked and stored.
     checked_tx: mpsc::UnboundedSender<Checked>,
+    /// The campaign's retention policies (`keep:`), applied after each good iteration.
+    policies: crate::retention::Policies,
     /// Attempts on the blocking pool (output checks and storing, built-ins): in flight, but
     /// holding no executor slot.
     storing: std::collections::HashSet<i64>,
@@ -449,6 +451,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         workspace_id: ws.workspace_id.clone(),
         scratch: scratch::Pool::open(&paths_scratch)?,
         checked_tx,
+        policies: crate::retention::Policies::of(campaign),
         storing: Default::default(),
         hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
     };

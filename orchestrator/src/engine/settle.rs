@@ -299,6 +299,7 @@ impl Engine<'_> {
         });
         if let Some(v) = verdict {
             self.apply_verdict(fl.point, v);
+            self.retain(fl.point).await?;
         }
         if self.points[fl.point].phase == PointPhase::Active {
             self.ready.push_back(fl.point);

@@ -31,6 +31,10 @@ pub struct Lineage {
     pub attempts: Vec<AttemptRecord>,
     /// Campaign start files reached.
     pub sources: Vec<StartFile>,
+    /// Artifacts of the lineage whose content a retention policy removed from the store (the
+    /// records stay): hash, policy, when.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub removed: Vec<RemovedContent>,
     /// Attempts left out by a depth limit ([`Lineage::limit`]); only then present.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub omitted_attempts: Option<usize>,
@@ -43,6 +47,17 @@ pub struct Lineage {
     /// generation the attempts whose metrics it read.
     #[serde(skip)]
     pub anchors: Vec<i64>,
+}
+
+/// Content a retention policy removed.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct RemovedContent {
+    /// The artifact's hash.
+    pub hash: String,
+    /// The policy that let it go (`last:2`, `every:10`, ...).
+    pub policy: String,
+    /// When.
+    pub at: String,
 }
 
 /// How far `rondo trace` looks upstream, in iterations.
@@ -205,7 +220,26 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
             }
         };
     walk.run(pool).await?;
+    let mut hashes: std::collections::BTreeSet<&str> = std::collections::BTreeSet::new();
+    if matches!(target, Target::Artifact { .. }) {
+        hashes.insert(&target_str);
+    }
+    for a in &walk.attempts {
+        hashes.extend(a.inputs.values().map(String::as_str));
+        hashes.extend(a.outputs.values().map(String::as_str));
+    }
+    let mut removed = Vec::new();
+    for h in hashes {
+        if let Some((policy, at)) = crate::store::retention::removal(pool, h).await? {
+            removed.push(RemovedContent {
+                hash: h.to_string(),
+                policy,
+                at,
+            });
+        }
+    }
     Ok(Lineage {
+        removed,
         target: target_str,
         metric,
         final_value,

@@ -50,6 +50,24 @@ impl Lineage {
         let fmt = format_measurement;
         let mut s = String::new();
         let _ = writeln!(s, "target   {}", self.target);
+        if let Some(r) = self.removed.iter().find(|r| r.hash == self.target) {
+            let _ = writeln!(
+                s,
+                "content  removed by retention (policy {}, at {}); the records stay",
+                r.policy, r.at
+            );
+        }
+        let upstream = self
+            .removed
+            .iter()
+            .filter(|r| r.hash != self.target)
+            .count();
+        if upstream > 0 {
+            let _ = writeln!(
+                s,
+                "note     the content of {upstream} upstream artifact(s) was removed by retention"
+            );
+        }
         if let Some(m) = &self.metric {
             let _ = writeln!(
                 s,

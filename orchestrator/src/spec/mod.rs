@@ -19,7 +19,7 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, Diagnostic, DiskFree, EosAnalysis, Hooks, Placement, PointSpec,
+    BadInput, Campaign, Diagnostic, DiskFree, EosAnalysis, Hooks, Keep, Placement, PointSpec,
     ResolvedProgram, Rule, RuleTest, Schedule, Source, SpecErrors, Stage, StageKind,
     FILTER_METRICS, HOOK_EVENTS, LEGACY_ROLE,
 };

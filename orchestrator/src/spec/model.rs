@@ -139,6 +139,31 @@ pub struct Stage {
     pub writable_inputs: BTreeSet<String>,
     /// Where it runs under a batch executor (`placement`).
     pub placement: Placement,
+    /// Retention policies per output role (`keep`); roles not listed keep everything.
+    pub keep: Vec<(String, Keep)>,
+}
+
+/// Which iterations of an output role keep their content (see [`crate::retention`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Keep {
+    /// The last N good iterations.
+    pub last: Option<u32>,
+    /// Every K-th iteration.
+    pub every: Option<u32>,
+}
+
+impl fmt::Display for Keep {
+    /// The policy as the store records it: `last:2`, `every:10`, `last:2,every:10`.
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let mut parts = Vec::new();
+        if let Some(n) = self.last {
+            parts.push(format!("last:{n}"));
+        }
+        if let Some(k) = self.every {
+            parts.push(format!("every:{k}"));
+        }
+        write!(f, "{}", parts.join(","))
+    }
 }
 
 /// What a stage runs.

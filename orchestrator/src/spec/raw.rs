@@ -315,6 +315,11 @@ pub struct StageSpec {
     #[serde(default)]
     #[schemars(with = "Vec<String>")]
     pub writable_inputs: Vec<Spanned<String>>,
+    /// Which iterations' content of an output role stays in the store (retention), per
+    /// role: `{ last: N }`, `{ every: K }` or both. Roles not named keep every iteration.
+    #[serde(default)]
+    #[schemars(with = "BTreeMap<String, KeepSpec>")]
+    pub keep: OrderedMap<Spanned<KeepSpec>>,
     /// Where a command or shell stage runs when the campaign runs on a batch system:
     /// `batch` (default: as a batch job of its own) or `host` (where rondo runs: the login
     /// node, or inside the allocation under `rondo submit`). Built-ins always run in rondo.
@@ -324,6 +329,21 @@ pub struct StageSpec {
     /// Settings of a built-in stage.
     #[serde(default)]
     pub settings: Option<BuiltinSettings>,
+}
+
+/// A retention policy of one output role: the content of the last `last` good iterations,
+/// and of every `every`-th, stays; the rest is removed from the store once it can no longer
+/// be needed (the hash and the record stay). The latest good iteration and a converged
+/// point's final window always stay.
+#[derive(Debug, Clone, Copy, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct KeepSpec {
+    /// Keep the last N good iterations (N ≥ 1).
+    #[serde(default)]
+    pub last: Option<u32>,
+    /// Keep every K-th iteration (K ≥ 1), counted from iteration 1.
+    #[serde(default)]
+    pub every: Option<u32>,
 }
 
 /// Where a stage runs under a batch executor.

@@ -12,6 +12,7 @@ pub mod overview;
 #[cfg(test)]
 mod plans;
 pub mod reads;
+pub mod retention;
 pub mod states;
 
 pub use ledger::{Flushed, Ledger};
@@ -69,6 +70,13 @@ pub fn migrator() -> Migrator {
             "rules met index".into(),
             MigrationType::Simple,
             include_str!("../../migrations/0005_rules_met_index.sql").into(),
+            false,
+        ),
+        Migration::new(
+            8,
+            "retention".into(),
+            MigrationType::Simple,
+            include_str!("../../migrations/0008_retention.sql").into(),
             false,
         ),
     ];

@@ -9,7 +9,7 @@ use std::path::Path;
 use serde_saphyr::Spanned;
 
 use super::{loc, split_ref, Validator};
-use crate::spec::model::{Placement, ResolvedProgram, Source, Stage, StageKind};
+use crate::spec::model::{Keep, Placement, ResolvedProgram, Source, Stage, StageKind};
 use crate::spec::raw::{CampaignFile, InputSpec, PreviousInput, RunSpec, StageSpec};
 
 /// What every stage of the cycle is checked against.
@@ -121,6 +121,7 @@ impl Validator<'_> {
         }
         let kind = self.stage_kind(cx, &s, programs)?;
         let placement = self.placement(&sname, st, &kind);
+        let keep = self.keep(&sname, st);
         Some(Stage {
             name: sname,
             kind,
@@ -133,7 +134,57 @@ impl Validator<'_> {
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
             placement,
+            keep,
         })
+    }
+
+    /// `keep:` of a stage: retention policies of its output roles.
+    fn keep(&mut self, sname: &str, st: &StageSpec) -> Vec<(String, Keep)> {
+        let mut out = Vec::new();
+        for (role, policy) in &st.keep.0 {
+            if st.outputs.get(&role.value).is_none() {
+                self.push(
+                    loc(role),
+                    format!(
+                        "stage `{sname}`: `keep` names `{}`, which is not one of its outputs",
+                        role.value
+                    ),
+                    "name output roles of this stage (the keys under `outputs:`)",
+                );
+                continue;
+            }
+            let p = policy.value;
+            if p.last.is_none() && p.every.is_none() {
+                self.push(
+                    loc(policy),
+                    format!(
+                        "stage `{sname}`: `keep.{}` keeps nothing it names",
+                        role.value
+                    ),
+                    "give `last: N` (the last N iterations), `every: K` (every K-th), or both",
+                );
+                continue;
+            }
+            if p.last == Some(0) || p.every == Some(0) {
+                self.push(
+                    loc(policy),
+                    format!(
+                        "stage `{sname}`: `keep.{}` counts must be at least 1",
+                        role.value
+                    ),
+                    "use `last: 1` to keep only the latest iteration",
+                );
+                continue;
+            }
+            out.push((
+                role.value.clone(),
+                Keep {
+                    last: p.last,
+                    every: p.every,
+                },
+            ));
+        }
+        out
     }
 
     /// `placement:` of a stage: only command and shell stages have one.
