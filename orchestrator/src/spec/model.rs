@@ -139,7 +139,21 @@ pub struct Stage {
     pub writable_inputs: BTreeSet<String>,
     /// Where it runs under a batch executor (`placement`).
     pub placement: Placement,
+    /// The working folder kept from one iteration to the next (`case-folder`).
+    pub case_folder: Option<CaseFolder>,
 }
+
+/// A stage's kept working folder.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct CaseFolder {
+    /// Its name in the scratch directory.
+    pub path: String,
+    /// The start folder laid out at iteration 1 (`start:` name), else an empty folder.
+    pub initially: Option<String>,
+}
+
+/// The output role under which a stage's case folder is recorded after each success.
+pub const CASE_FOLDER_ROLE: &str = "folder";
 
 /// What a stage runs.
 #[derive(Debug, Clone)]

@@ -71,6 +71,13 @@ pub fn migrator() -> Migrator {
             include_str!("../../migrations/0005_rules_met_index.sql").into(),
             false,
         ),
+        Migration::new(
+            6,
+            "folders".into(),
+            MigrationType::Simple,
+            include_str!("../../migrations/0006_folders.sql").into(),
+            false,
+        ),
     ];
     Migrator {
         migrations: m.into(),

@@ -121,6 +121,7 @@ impl Validator<'_> {
         }
         let kind = self.stage_kind(cx, &s, programs)?;
         let placement = self.placement(&sname, st, &kind);
+        let case_folder = self.case_folder(cx.raw, &sname, st, &kind);
         Some(Stage {
             name: sname,
             kind,
@@ -133,6 +134,7 @@ impl Validator<'_> {
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
             placement,
+            case_folder,
         })
     }
 
@@ -285,11 +287,18 @@ impl Validator<'_> {
     /// Output file names are plain names in the scratch directory.
     fn output_names(&mut self, st: &StageSpec) {
         for (ok, ov) in &st.outputs.0 {
-            if ov.is_empty() || ov.contains('/') || ov == "metrics.json" || ov.starts_with('.') {
+            // `name/`: a folder output; a name with `*` or `?`: a glob, its matches one folder.
+            let plain = ov.strip_suffix('/').unwrap_or(ov);
+            if plain.is_empty()
+                || plain.contains('/')
+                || plain == "metrics.json"
+                || plain.starts_with('.')
+            {
                 self.push(
                     loc(ok),
                     format!("output file name `{ov}` is not allowed"),
-                    "use a plain file name (no '/', not metrics.json) written in the scratch directory",
+                    "use a plain file name (no '/', not metrics.json) written in the scratch directory, \
+                     `name/` for a folder, or a glob such as `*.dat`",
                 );
             }
         }
