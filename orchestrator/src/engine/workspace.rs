@@ -19,7 +19,7 @@ pub(super) fn new_workspace_id(root: &Path) -> String {
 /// written, so a missing start file leaves no workspace behind.
 pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<PreparedWorkspace> {
     for (name, file) in &campaign.start {
-        if !file.is_file() {
+        if !file.is_file() && !file.is_dir() {
             bail!(
                 "{}: start file `{name}` ({}) does not exist; fix `start:` or create the file",
                 campaign.file.display(),

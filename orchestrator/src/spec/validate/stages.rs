@@ -270,7 +270,9 @@ impl Validator<'_> {
             return None;
         };
         let implicit_state = st.builtin.is_some() && o == "state";
-        if st.outputs.get(o).is_none() && !implicit_state {
+        let case_folder =
+            st.case_folder.is_some() && o == crate::spec::model::CASE_FOLDER_ROLE;
+        if st.outputs.get(o).is_none() && !implicit_state && !case_folder {
             self.push(
                 at,
                 format!("stage `{s}` declares no output `{o}`"),
