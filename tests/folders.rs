@@ -21,14 +21,20 @@ fn campaign(dir: &Path, mode: &str) -> PathBuf {
     let seed = dir.join("seed-case");
     std::fs::create_dir_all(seed.join("tables")).unwrap_or_else(|e| panic!("{e}"));
     std::fs::create_dir_all(dir.join("counters")).unwrap_or_else(|e| panic!("{e}"));
-    std::fs::write(seed.join("state.txt"), format!("{:<32}\n", "0")).unwrap_or_else(|e| panic!("{e}"));
+    std::fs::write(seed.join("state.txt"), format!("{:<32}\n", "0"))
+        .unwrap_or_else(|e| panic!("{e}"));
     std::fs::write(seed.join("history.txt"), "").unwrap_or_else(|e| panic!("{e}"));
     for i in 0..17 {
-        std::fs::write(seed.join("tables").join(format!("t{i:02}.txt")), format!("table {i}\n"))
-            .unwrap_or_else(|e| panic!("{e}"));
+        std::fs::write(
+            seed.join("tables").join(format!("t{i:02}.txt")),
+            format!("table {i}\n"),
+        )
+        .unwrap_or_else(|e| panic!("{e}"));
     }
     let mut rng = rondo_numerics::rng::SplitMix64::new(11);
-    let big: Vec<u8> = (0..BIG / 8).flat_map(|_| rng.next_u64().to_le_bytes()).collect();
+    let big: Vec<u8> = (0..BIG / 8)
+        .flat_map(|_| rng.next_u64().to_le_bytes())
+        .collect();
     std::fs::write(seed.join("big.bin"), big).unwrap_or_else(|e| panic!("{e}"));
     let text = format!(
         r#"campaign: folders
@@ -105,7 +111,11 @@ fn a_crash_mid_rewrite_and_kills_of_rondo_end_bit_identical_to_a_clean_run() {
         .filter(|m| m.contains(" big.bin "))
         .map(|m| m.rsplit(' ').next().unwrap_or_default().to_string())
         .collect();
-    assert_eq!(big.len(), 1, "the unchanged large file is one artifact: {big:?}");
+    assert_eq!(
+        big.len(),
+        1,
+        "the unchanged large file is one artifact: {big:?}"
+    );
     let last = strings(
         &ws_a,
         "SELECT o.artifact FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
@@ -132,9 +142,18 @@ fn a_crash_mid_rewrite_and_kills_of_rondo_end_bit_identical_to_a_clean_run() {
     let p3 = &s["points"][2];
     let iterations = p3["iteration"].as_u64().unwrap_or(0) as usize;
     assert_eq!(history.lines().count(), iterations, "{history}");
-    assert_eq!(p3["metrics"]["step.lines"].as_f64(), Some(iterations as f64), "{p3}");
+    assert_eq!(
+        p3["metrics"]["step.lines"].as_f64(),
+        Some(iterations as f64),
+        "{p3}"
+    );
     let x = p3["metrics"]["step.x"].as_f64().unwrap_or(f64::NAN);
-    assert!((x - 4.0 * (1.0 - 0.5f64.powi(iterations as i32))).abs() < 1e-12, "{p3}");
+    assert!(
+        (x - 4.0 * (1.0 - 0.5f64.powi(iterations as i32))).abs() < 1e-12,
+        "{p3}"
+    );
+
+    trace_and_prov(a.path(), &last[0], &big);
 
     // A crash after a partial in-place rewrite at iteration 2: the retry starts from the
     // clean snapshot, so the record is the reference's.
@@ -149,9 +168,16 @@ fn a_crash_mid_rewrite_and_kills_of_rondo_end_bit_identical_to_a_clean_run() {
          ORDER BY point",
     );
     assert_eq!(crashed.len(), 3, "one crash per point: {crashed:?}");
-    assert!(crashed.iter().all(|m| m.contains("partial rewrite")), "{crashed:?}");
+    assert!(
+        crashed.iter().all(|m| m.contains("partial rewrite")),
+        "{crashed:?}"
+    );
     assert_same_record(&reference, &record(&ws_b), 0);
-    assert_eq!(members(&ws_a), members(&ws_b), "every file inside every folder");
+    assert_eq!(
+        members(&ws_a),
+        members(&ws_b),
+        "every file inside every folder"
+    );
 
     // The same with seeded SIGKILLs of rondo: a resume also starts from the clean snapshot.
     let c = tmp();
@@ -160,8 +186,85 @@ fn a_crash_mid_rewrite_and_kills_of_rondo_end_bit_identical_to_a_clean_run() {
     let seed = crash_seed(20_261_204);
     kill_and_finish(c.path(), "c.yaml", seed, 4, reference.len(), (0.1, 0.8), 0);
     assert_same_record(&reference, &record(&ws_c), seed);
-    assert_eq!(members(&ws_a), members(&ws_c), "every file inside every folder (seed {seed})");
+    assert_eq!(
+        members(&ws_a),
+        members(&ws_c),
+        "every file inside every folder (seed {seed})"
+    );
     assert_resume_was_clean(&ws_c, seed);
+}
+
+/// `rondo trace` of a file inside a folder output (by reference and as a file on disk), of
+/// the folder, and the PROV-JSON export of a folder with its members.
+fn trace_and_prov(dir: &Path, folder: &str, big: &BTreeSet<String>) {
+    let o = run_rondo(
+        dir,
+        &["trace", "p003/last/step.folder/history.txt", "--json"],
+    );
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let t: serde_json::Value =
+        serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("{e}: {}", shown(&o)));
+    assert!(
+        t.to_string().contains(folder),
+        "the trace starts at the folder: {t}"
+    );
+    let o = run_rondo(dir, &["trace", "p003/last/step.folder/nope.txt"]);
+    assert_ne!(o.status.code(), Some(0), "{}", shown(&o));
+    assert!(
+        shown(&o).contains("has no file `nope.txt`"),
+        "{}",
+        shown(&o)
+    );
+    // The large file on disk (as extracted from the store): traced through the first
+    // folder that held it.
+    let h = big.iter().next().cloned().unwrap_or_default();
+    let on_disk = dir.join("big-copy.bin");
+    std::fs::copy(
+        dir.join("c.rondo/store").join(&h[..2]).join(&h[2..]),
+        &on_disk,
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(dir, &["trace", "big-copy.bin"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+
+    let prov = dir.join("prov.json");
+    let o = run_rondo(
+        dir,
+        &[
+            "export",
+            "--prov",
+            &prov.display().to_string(),
+            "p003/last/step.folder",
+        ],
+    );
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let doc: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&prov).unwrap_or_else(|e| panic!("{e}")))
+            .unwrap_or_else(|e| panic!("{e}"));
+    let id = format!("art:{folder}");
+    assert_eq!(
+        doc["entity"][&id]["prov:type"]["$"], "prov:Collection",
+        "{}",
+        doc["entity"][&id]
+    );
+    let members: Vec<&serde_json::Value> = doc["hadMember"]
+        .as_object()
+        .map(|m| {
+            m.values()
+                .filter(|r| r["prov:collection"] == id.as_str())
+                .collect()
+        })
+        .unwrap_or_default();
+    assert_eq!(
+        members.len(),
+        20,
+        "one prov:hadMember per file: {}",
+        doc["hadMember"]
+    );
+    for m in members {
+        let e = m["prov:entity"].as_str().unwrap_or_default();
+        assert!(doc["entity"].get(e).is_some(), "member entity {e}");
+    }
 }
 
 #[test]
@@ -187,11 +290,16 @@ stop: { max-iterations: 1 }
         "SELECT stage || ': ' || failure_kind || ': ' || failure_message FROM attempts \
          WHERE state = 'failed' ORDER BY id",
     );
-    assert_eq!(msgs.len(), 1, "the point fails at its first stage: {msgs:?}");
+    assert_eq!(
+        msgs.len(),
+        1,
+        "the point fails at its first stage: {msgs:?}"
+    );
     assert!(
-        msgs[0].starts_with("tables: refused-output: output `tables`: the output glob `*.dat` \
-                             matched no file in ")
-            && msgs[0].contains("scratch"),
+        msgs[0].starts_with(
+            "tables: refused-output: output `tables`: the output glob `*.dat` \
+                             matched no file in "
+        ) && msgs[0].contains("scratch"),
         "{msgs:?}"
     );
 
@@ -226,5 +334,8 @@ fn a_misspelled_case_folder_key_is_reported_at_its_place() {
     let o = run_rondo(d.path(), &["check", "c.yaml"]);
     assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
     let err = String::from_utf8_lossy(&o.stderr);
-    assert!(err.contains("c.yaml:5:20") && err.contains("unknown field `pth`"), "{err}");
+    assert!(
+        err.contains("c.yaml:5:20") && err.contains("unknown field `pth`"),
+        "{err}"
+    );
 }

@@ -117,12 +117,14 @@ impl Manifest {
 
     /// The file entries: (path, BLAKE3, size, mode).
     pub fn files(&self) -> impl Iterator<Item = (&str, &str, u64, &str)> {
-        self.entries.iter().filter_map(|e| match (&e.blake3, e.size, &e.mode) {
-            (Some(h), Some(n), Some(m)) if e.kind == EntryKind::File => {
-                Some((e.path.as_str(), h.as_str(), n, m.as_str()))
-            }
-            _ => None,
-        })
+        self.entries
+            .iter()
+            .filter_map(|e| match (&e.blake3, e.size, &e.mode) {
+                (Some(h), Some(n), Some(m)) if e.kind == EntryKind::File => {
+                    Some((e.path.as_str(), h.as_str(), n, m.as_str()))
+                }
+                _ => None,
+            })
     }
 }
 
@@ -155,6 +157,19 @@ pub fn glob_matches(pattern: &str, name: &str) -> bool {
     p[i..].iter().all(|c| *c == '*')
 }
 
+/// The name (manifest BLAKE3) the folder `dir` would have as a folder artifact, computed
+/// without storing anything.
+pub fn folder_hash(dir: &Path) -> Result<String, FolderError> {
+    let mut entries = Vec::new();
+    walk(dir, dir, &mut |p: &Path| super::hash_file(p), &mut entries)?;
+    entries.sort_by(|a, b| a.path.as_bytes().cmp(b.path.as_bytes()));
+    let m = Manifest {
+        format: MANIFEST_FORMAT.into(),
+        entries,
+    };
+    Ok(blake3::hash(m.to_text().as_bytes()).to_hex().to_string())
+}
+
 impl ArtifactStore {
     /// Store the folder `dir` (every file by content; `linked`: hard-linked in as outputs are,
     /// else copied) and its manifest. Refuses what a folder artifact cannot hold.
@@ -166,7 +181,14 @@ impl ArtifactStore {
             )));
         }
         let mut entries = Vec::new();
-        self.walk(dir, dir, linked, &mut entries)?;
+        let mut put = |p: &Path| {
+            if linked {
+                self.put_file_linked(p)
+            } else {
+                self.put_file(p)
+            }
+        };
+        walk(dir, dir, &mut put, &mut entries)?;
         self.put_manifest(entries)
     }
 
@@ -187,7 +209,14 @@ impl ArtifactStore {
             if !meta.file_type().is_file() {
                 continue;
             }
-            entries.push(self.put_member(&path, name, &meta, linked)?);
+            let mut put = |p: &Path| {
+                if linked {
+                    self.put_file_linked(p)
+                } else {
+                    self.put_file(p)
+                }
+            };
+            entries.push(member(&path, name, &meta, &mut put)?);
         }
         if entries.is_empty() {
             return Err(FolderError::Refused(format!(
@@ -262,73 +291,71 @@ impl ArtifactStore {
             manifest,
         })
     }
+}
 
-    /// Every entry under `at` (a folder inside `root`), depth first.
-    fn walk(
-        &self,
-        root: &Path,
-        at: &Path,
-        linked: bool,
-        out: &mut Vec<Entry>,
-    ) -> Result<(), FolderError> {
-        for name in sorted_names(at)? {
-            let path = at.join(&name);
-            let rel = relative(root, &path)?;
-            let meta = fs::symlink_metadata(&path)?;
-            let ft = meta.file_type();
-            if ft.is_dir() {
-                out.push(bare(rel, EntryKind::Dir));
-                self.walk(root, &path, linked, out)?;
-            } else if ft.is_file() {
-                out.push(self.put_member(&path, rel, &meta, linked)?);
-            } else if ft.is_symlink() {
-                let target = fs::read_link(&path)?;
-                check_link(root, &rel, &target)?;
-                let mut e = bare(rel, EntryKind::Link);
-                e.target = Some(target.to_string_lossy().into_owned());
-                out.push(e);
-            } else {
-                let what = if ft.is_fifo() {
-                    "a FIFO"
-                } else if ft.is_socket() {
-                    "a socket"
-                } else {
-                    "a device"
-                };
-                return Err(FolderError::Refused(format!(
-                    "{}: {what} in the folder {}; a folder artifact holds only files, folders \
-                     and symlinks that stay inside it: remove it before the stage ends",
-                    path.display(),
-                    root.display()
-                )));
-            }
-        }
-        Ok(())
-    }
+/// Stores (or only hashes) one file: (hash, size).
+type PutFile<'a> = dyn FnMut(&Path) -> io::Result<(String, u64)> + 'a;
 
-    fn put_member(
-        &self,
-        path: &Path,
-        rel: String,
-        meta: &fs::Metadata,
-        linked: bool,
-    ) -> Result<Entry, FolderError> {
-        // The mode before storing (storing makes the file read-only).
-        let exec = meta.permissions().mode() & 0o100 != 0;
-        let (hash, size) = if linked {
-            self.put_file_linked(path)?
+/// Every entry under `at` (a folder inside `root`), depth first, each file through `put`.
+fn walk(
+    root: &Path,
+    at: &Path,
+    put: &mut PutFile<'_>,
+    out: &mut Vec<Entry>,
+) -> Result<(), FolderError> {
+    for name in sorted_names(at)? {
+        let path = at.join(&name);
+        let rel = relative(root, &path)?;
+        let meta = fs::symlink_metadata(&path)?;
+        let ft = meta.file_type();
+        if ft.is_dir() {
+            out.push(bare(rel, EntryKind::Dir));
+            walk(root, &path, put, out)?;
+        } else if ft.is_file() {
+            out.push(member(&path, rel, &meta, put)?);
+        } else if ft.is_symlink() {
+            let target = fs::read_link(&path)?;
+            check_link(root, &rel, &target)?;
+            let mut e = bare(rel, EntryKind::Link);
+            e.target = Some(target.to_string_lossy().into_owned());
+            out.push(e);
         } else {
-            self.put_file(path)?
-        };
-        Ok(Entry {
-            path: rel,
-            kind: EntryKind::File,
-            mode: Some(if exec { "755" } else { "644" }.into()),
-            size: Some(size),
-            blake3: Some(hash),
-            target: None,
-        })
+            let what = if ft.is_fifo() {
+                "a FIFO"
+            } else if ft.is_socket() {
+                "a socket"
+            } else {
+                "a device"
+            };
+            return Err(FolderError::Refused(format!(
+                "{}: {what} in the folder {}; a folder artifact holds only files, folders \
+                 and symlinks that stay inside it: remove it before the stage ends",
+                path.display(),
+                root.display()
+            )));
+        }
     }
+    Ok(())
+}
+
+/// The entry of one file, stored (or hashed) through `put`.
+fn member(
+    path: &Path,
+    rel: String,
+    meta: &fs::Metadata,
+    put: &mut PutFile<'_>,
+) -> Result<Entry, FolderError> {
+    // The mode before storing (storing makes the file read-only).
+    let exec = meta.permissions().mode() & 0o100 != 0;
+    let (hash, size) = put(path)?;
+    Ok(Entry {
+        path: rel,
+        kind: EntryKind::File,
+        mode: Some(if exec { "755" } else { "644" }.into()),
+        size: Some(size),
+        blake3: Some(hash),
+        target: None,
+    })
 }
 
 fn bare(path: String, kind: EntryKind) -> Entry {
@@ -370,9 +397,9 @@ fn sorted_names(dir: &Path) -> Result<Vec<String>, FolderError> {
 }
 
 fn relative(root: &Path, path: &Path) -> Result<String, FolderError> {
-    let rel = path
-        .strip_prefix(root)
-        .map_err(|_| FolderError::Refused(format!("{} is outside {}", path.display(), root.display())))?;
+    let rel = path.strip_prefix(root).map_err(|_| {
+        FolderError::Refused(format!("{} is outside {}", path.display(), root.display()))
+    })?;
     Ok(rel
         .components()
         .map(|c| c.as_os_str().to_string_lossy().into_owned())
@@ -395,7 +422,11 @@ fn check_link(root: &Path, rel: &str, target: &Path) -> Result<(), FolderError> 
     }
     let mut depth: Vec<PathBuf> = Path::new(rel)
         .parent()
-        .map(|p| p.components().map(|c| PathBuf::from(c.as_os_str())).collect())
+        .map(|p| {
+            p.components()
+                .map(|c| PathBuf::from(c.as_os_str()))
+                .collect()
+        })
         .unwrap_or_default();
     for c in target.components() {
         match c {
@@ -441,8 +472,16 @@ mod tests {
         fs::set_permissions(case.join("sub/a.bin"), fs::Permissions::from_mode(0o755))?;
         std::os::unix::fs::symlink("../b.txt", case.join("sub/to-b"))?;
         let first = s.put_folder(&case, false)?;
-        let paths: Vec<&str> = first.manifest.entries.iter().map(|e| e.path.as_str()).collect();
-        assert_eq!(paths, ["b.txt", "sub", "sub/a.bin", "sub/empty", "sub/to-b"]);
+        let paths: Vec<&str> = first
+            .manifest
+            .entries
+            .iter()
+            .map(|e| e.path.as_str())
+            .collect();
+        assert_eq!(
+            paths,
+            ["b.txt", "sub", "sub/a.bin", "sub/empty", "sub/to-b"]
+        );
         assert_eq!(first.manifest.entries[2].mode.as_deref(), Some("755"));
         // The same content is the same folder; the text is canonical.
         assert_eq!(s.put_folder(&case, false)?.hash, first.hash);
@@ -454,9 +493,20 @@ mod tests {
         assert_eq!(fs::read_to_string(out.join("sub/to-b"))?, "bee");
         assert!(out.join("sub/empty").is_dir());
         fs::write(out.join("b.txt"), "rewritten")?;
-        assert_eq!(fs::read_to_string(s.path_of(&first.manifest.entries[0].blake3.clone().unwrap_or_default()))?, "bee");
-        assert_eq!(s.put_folder(&out, false)?.manifest.entries[2], first.manifest.entries[2]);
-        assert_eq!(s.manifest(&first.manifest.entries[0].blake3.clone().unwrap_or_default())?, None);
+        assert_eq!(
+            fs::read_to_string(
+                s.path_of(&first.manifest.entries[0].blake3.clone().unwrap_or_default())
+            )?,
+            "bee"
+        );
+        assert_eq!(
+            s.put_folder(&out, false)?.manifest.entries[2],
+            first.manifest.entries[2]
+        );
+        assert_eq!(
+            s.manifest(&first.manifest.entries[0].blake3.clone().unwrap_or_default())?,
+            None
+        );
         Ok(())
     }
 
@@ -467,20 +517,39 @@ mod tests {
         let case = d.path().join("case");
         fs::create_dir_all(case.join("sub"))?;
         std::os::unix::fs::symlink("../../secret", case.join("sub/out"))?;
-        let e = s.put_folder(&case, false).err().map(|e| e.to_string()).unwrap_or_default();
-        assert!(e.contains("symlink `sub/out` points outside the folder"), "{e}");
+        let e = s
+            .put_folder(&case, false)
+            .err()
+            .map(|e| e.to_string())
+            .unwrap_or_default();
+        assert!(
+            e.contains("symlink `sub/out` points outside the folder"),
+            "{e}"
+        );
         fs::remove_file(case.join("sub/out"))?;
         std::os::unix::fs::symlink("/etc/hostname", case.join("abs"))?;
-        let e = s.put_folder(&case, false).err().map(|e| e.to_string()).unwrap_or_default();
+        let e = s
+            .put_folder(&case, false)
+            .err()
+            .map(|e| e.to_string())
+            .unwrap_or_default();
         assert!(e.contains("to an absolute path"), "{e}");
         fs::remove_file(case.join("abs"))?;
         let fifo = std::ffi::CString::new(case.join("pipe").as_os_str().as_encoded_bytes())
             .map_err(|e| io::Error::new(io::ErrorKind::InvalidInput, e))?;
         // SAFETY: a valid NUL-terminated path; mkfifo touches no memory of ours.
         assert_eq!(unsafe { libc::mkfifo(fifo.as_ptr(), 0o644) }, 0);
-        let e = s.put_folder(&case, false).err().map(|e| e.to_string()).unwrap_or_default();
+        let e = s
+            .put_folder(&case, false)
+            .err()
+            .map(|e| e.to_string())
+            .unwrap_or_default();
         assert!(e.contains("a FIFO in the folder"), "{e}");
-        let e = s.put_glob(&case, "*.dat", false).err().map(|e| e.to_string()).unwrap_or_default();
+        let e = s
+            .put_glob(&case, "*.dat", false)
+            .err()
+            .map(|e| e.to_string())
+            .unwrap_or_default();
         assert!(e.contains("`*.dat` matched no file in"), "{e}");
         Ok(())
     }

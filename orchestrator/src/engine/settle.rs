@@ -471,7 +471,10 @@ impl OutputJob {
             files.push(("state".into(), builtins::STATE_FILE.into()));
         }
         if let Some(cf) = &self.stage.case_folder {
-            files.push((crate::spec::CASE_FOLDER_ROLE.into(), format!("{}/", cf.path)));
+            files.push((
+                crate::spec::CASE_FOLDER_ROLE.into(),
+                format!("{}/", cf.path),
+            ));
         }
         if self.workdir.join(validate::METRICS_FILE).is_file() {
             files.push(("metrics".into(), validate::METRICS_FILE.into()));

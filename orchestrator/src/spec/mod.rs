@@ -19,8 +19,9 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, CaseFolder, Diagnostic, EosAnalysis, Placement, PointSpec, ResolvedProgram, Rule,
-    RuleTest, Schedule, Source, SpecErrors, Stage, StageKind, CASE_FOLDER_ROLE, FILTER_METRICS, LEGACY_ROLE,
+    BadInput, Campaign, CaseFolder, Diagnostic, EosAnalysis, Placement, PointSpec, ResolvedProgram,
+    Rule, RuleTest, Schedule, Source, SpecErrors, Stage, StageKind, CASE_FOLDER_ROLE,
+    FILTER_METRICS, LEGACY_ROLE,
 };
 pub use raw::{
     AnalysisSpec, BuiltinSettings, CampaignFile, Combine, Compare, Defaults, EosModelName, EosSpec,

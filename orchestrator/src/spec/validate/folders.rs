@@ -25,7 +25,12 @@ impl Validator<'_> {
             return None;
         }
         let mut ok = true;
-        if let Some((k, _)) = st.outputs.0.iter().find(|(k, _)| k.value == CASE_FOLDER_ROLE) {
+        if let Some((k, _)) = st
+            .outputs
+            .0
+            .iter()
+            .find(|(k, _)| k.value == CASE_FOLDER_ROLE)
+        {
             self.push(
                 loc(k),
                 format!(
@@ -38,7 +43,11 @@ impl Validator<'_> {
         let path = match &spec.value.path {
             Some(p) => {
                 let v = p.value.as_str();
-                let clash = st.outputs.0.iter().any(|(_, o)| o.trim_end_matches('/') == v);
+                let clash = st
+                    .outputs
+                    .0
+                    .iter()
+                    .any(|(_, o)| o.trim_end_matches('/') == v);
                 if v.is_empty()
                     || v.contains('/')
                     || v.starts_with('.')
@@ -98,7 +107,8 @@ stop: { max-iterations: 1 }
         let raw = raw(text);
         let st = &raw.cycle.0[0].1;
         let kind = crate::spec::model::StageKind::Command {
-            template: rondo_adapters::template::Template::parse("x").unwrap_or_else(|e| panic!("{e}")),
+            template: rondo_adapters::template::Template::parse("x")
+                .unwrap_or_else(|e| panic!("{e}")),
             program: "x".into(),
         };
         let cf = v.case_folder(&raw, "s", st, &kind);

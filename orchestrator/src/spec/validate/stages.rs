@@ -270,8 +270,7 @@ impl Validator<'_> {
             return None;
         };
         let implicit_state = st.builtin.is_some() && o == "state";
-        let case_folder =
-            st.case_folder.is_some() && o == crate::spec::model::CASE_FOLDER_ROLE;
+        let case_folder = st.case_folder.is_some() && o == crate::spec::model::CASE_FOLDER_ROLE;
         if st.outputs.get(o).is_none() && !implicit_state && !case_folder {
             self.push(
                 at,
