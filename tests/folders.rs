@@ -339,3 +339,131 @@ fn a_misspelled_case_folder_key_is_reported_at_its_place() {
         "{err}"
     );
 }
+
+/// The cost of a kept case folder of 20 files, one of them large (docs/performance.md,
+/// "Case folders"): `cargo test -p rondo --test folders -- --ignored --nocapture
+/// case_folder_costs`. Prints a Markdown table; asserts only what storing must guarantee.
+#[test]
+#[ignore = "a measurement: run it by name with --ignored --nocapture"]
+fn case_folder_costs() {
+    use rondo::artifacts::ArtifactStore;
+    use std::time::Instant;
+    let large: usize = std::env::var("RONDO_CASE_LARGE_MIB")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(512)
+        << 20;
+    let d = tmp();
+    let store = ArtifactStore::open(&d.path().join("store")).unwrap_or_else(|e| panic!("{e}"));
+    let du = |p: &Path| -> u64 {
+        let mut n = 0;
+        let mut stack = vec![p.to_path_buf()];
+        while let Some(q) = stack.pop() {
+            for e in std::fs::read_dir(&q)
+                .unwrap_or_else(|e| panic!("{e}"))
+                .flatten()
+            {
+                let m = e.metadata().unwrap_or_else(|e| panic!("{e}"));
+                if m.is_dir() {
+                    stack.push(e.path());
+                } else {
+                    n += m.len();
+                }
+            }
+        }
+        n
+    };
+    let case = d.path().join("case0");
+    std::fs::create_dir_all(&case).unwrap_or_else(|e| panic!("{e}"));
+    for i in 0..19 {
+        std::fs::write(
+            case.join(format!("f{i:02}.txt")),
+            vec![b'a' + i as u8; 4096],
+        )
+        .unwrap_or_else(|e| panic!("{e}"));
+    }
+    let mut rng = rondo_numerics::rng::SplitMix64::new(3);
+    let big: Vec<u8> = (0..large / 8)
+        .flat_map(|_| rng.next_u64().to_le_bytes())
+        .collect();
+    std::fs::write(case.join("big.bin"), &big).unwrap_or_else(|e| panic!("{e}"));
+    drop(big);
+    let t = Instant::now();
+    let first = store
+        .put_folder(&case, true)
+        .unwrap_or_else(|e| panic!("{e}"));
+    let store_first = t.elapsed().as_secs_f64();
+    let stored_first = du(&d.path().join("store"));
+    let mut rows = Vec::new();
+    for run in 0..3 {
+        let private = d.path().join(format!("private{run}"));
+        let t = Instant::now();
+        let how = store
+            .place_folder(&first.hash, &private, true)
+            .unwrap_or_else(|e| panic!("{e}"));
+        let lay_private = t.elapsed().as_secs_f64();
+        let shared = d.path().join(format!("shared{run}"));
+        let t = Instant::now();
+        let how_shared = store
+            .place_folder(&first.hash, &shared, false)
+            .unwrap_or_else(|e| panic!("{e}"));
+        let lay_shared = t.elapsed().as_secs_f64();
+        // The stage rewrites one small file; the snapshot after it is stored.
+        std::fs::write(private.join("f00.txt"), format!("run {run}\n"))
+            .unwrap_or_else(|e| panic!("{e}"));
+        let before = du(&d.path().join("store"));
+        let t = Instant::now();
+        let next = store
+            .put_folder(&private, true)
+            .unwrap_or_else(|e| panic!("{e}"));
+        let store_next = t.elapsed().as_secs_f64();
+        let added = du(&d.path().join("store")) - before;
+        assert_ne!(next.hash, first.hash);
+        assert!(
+            added < 64 << 10,
+            "only the changed file and the manifest are new: {added} B"
+        );
+        rows.push((lay_private, how, lay_shared, how_shared, store_next, added));
+        std::fs::remove_dir_all(&private).unwrap_or_else(|e| panic!("{e}"));
+        std::fs::remove_dir_all(&shared).unwrap_or_else(|e| panic!("{e}"));
+    }
+    // SAFETY: geteuid cannot fail.
+    let root = unsafe { libc::geteuid() } == 0;
+    println!(
+        "20 files (19 × 4 KiB, one of {} MiB), store in {}, euid {}:\n",
+        large >> 20,
+        d.path().display(),
+        if root { "0 (root)" } else { "not root" }
+    );
+    println!("| step | run 1 | run 2 | run 3 |\n| --- | --: | --: | --: |");
+    println!("| first snapshot stored (hash + link in), s | {store_first:.3} | | |");
+    let line = |name: &str,
+                f: &dyn Fn(
+        &(
+            f64,
+            rondo::artifacts::Placement,
+            f64,
+            rondo::artifacts::Placement,
+            f64,
+            u64,
+        ),
+    ) -> String| {
+        println!(
+            "| {name} | {} |",
+            rows.iter().map(f).collect::<Vec<_>>().join(" | ")
+        );
+    };
+    line("case folder laid out (private, writable), s", &|r| {
+        format!("{:.3} ({:?})", r.0, r.1)
+    });
+    line("same folder as a read-only input, s", &|r| {
+        format!("{:.3} ({:?})", r.2, r.3)
+    });
+    line("next snapshot stored (one file changed), s", &|r| {
+        format!("{:.3}", r.4)
+    });
+    line("store bytes added by the next snapshot", &|r| {
+        format!("{}", r.5)
+    });
+    println!("\nstore after the first snapshot: {stored_first} bytes");
+}

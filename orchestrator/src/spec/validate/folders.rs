@@ -107,7 +107,7 @@ stop: { max-iterations: 1 }
         let raw = raw(text);
         let st = &raw.cycle.0[0].1;
         let kind = crate::spec::model::StageKind::Command {
-            template: rondo_adapters::template::Template::parse("x")
+            template: rondo_adapters::template::Template::parse(&["x".to_string()])
                 .unwrap_or_else(|e| panic!("{e}")),
             program: "x".into(),
         };
