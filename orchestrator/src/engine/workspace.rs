@@ -64,8 +64,15 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
                 // A start folder is stored as a folder artifact (its files copied in).
                 let (h, size) = if file.is_dir() {
                     fname.push('/');
-                    let f = artifacts.put_folder(file, false).map_err(|e| {
-                        anyhow::anyhow!("{}: cannot store the start folder: {e}", file.display())
+                    let f = artifacts.put_folder(file, false).map_err(|e| match e {
+                        // What the folder holds is the input's fault (exit 2).
+                        crate::artifacts::FolderError::Refused(m) => anyhow::Error::new(
+                            crate::spec::BadInput(format!("start folder `{name}`: {m}")),
+                        ),
+                        crate::artifacts::FolderError::Io(e) => anyhow::anyhow!(
+                            "{}: cannot store the start folder: {e}",
+                            file.display()
+                        ),
                     })?;
                     (f.hash, f.size)
                 } else {
