@@ -340,6 +340,16 @@ fn a_misspelled_case_folder_key_is_reported_at_its_place() {
     );
 }
 
+/// One measured run: (private layout s, how, shared layout s, how, next store s, bytes added).
+type Row = (
+    f64,
+    rondo::artifacts::Placement,
+    f64,
+    rondo::artifacts::Placement,
+    f64,
+    u64,
+);
+
 /// The cost of a kept case folder of 20 files, one of them large (docs/performance.md,
 /// "Case folders"): `cargo test -p rondo --test folders -- --ignored --nocapture
 /// case_folder_costs`. Prints a Markdown table; asserts only what storing must guarantee.
@@ -437,17 +447,7 @@ fn case_folder_costs() {
     );
     println!("| step | run 1 | run 2 | run 3 |\n| --- | --: | --: | --: |");
     println!("| first snapshot stored (hash + link in), s | {store_first:.3} | | |");
-    let line = |name: &str,
-                f: &dyn Fn(
-        &(
-            f64,
-            rondo::artifacts::Placement,
-            f64,
-            rondo::artifacts::Placement,
-            f64,
-            u64,
-        ),
-    ) -> String| {
+    let line = |name: &str, f: &dyn Fn(&Row) -> String| {
         println!(
             "| {name} | {} |",
             rows.iter().map(f).collect::<Vec<_>>().join(" | ")
