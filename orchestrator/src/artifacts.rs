@@ -7,12 +7,16 @@
 //! and is copied then fsynced only across file systems; an input is placed by hard link (or a
 //! copy-on-write clone) of the read-only stored file, and copied only when neither works or
 //! when the stage asked for a private, writable copy. Files of 32 MiB and more are hashed
-//! with BLAKE3's multi-threaded mode over a memory map.
+//! with BLAKE3's multi-threaded mode over a memory map. Folders are stored as manifests
+//! ([`folder`]).
 
 use std::fs::{self, File};
 use std::io::{self, Read, Write};
 use std::os::unix::fs::PermissionsExt;
 use std::path::{Path, PathBuf};
+
+pub mod folder;
+pub use folder::{FolderError, Manifest, StoredFolder};
 
 /// From this size on, files are hashed over a memory map on all cores.
 pub const PARALLEL_HASH_FROM: u64 = 32 << 20;

@@ -1270,6 +1270,61 @@ stop: { max-iterations: 1 }
 ",
             at: (6, 22),
         },
+        // ------------------------------------------------------------ case folders
+        Case {
+            site: "built-in stage `{sname}` cannot keep a case folder",
+            says: "built-in stage `m` cannot keep a case folder",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  m:
+    builtin: mix
+    inputs: { x: start.x }
+    outputs: { x: x.json }
+    settings: { method: linear, alpha: 0.5 }
+    case-folder: { path: case }
+stop: { max-iterations: 1 }
+",
+            at: (9, 18),
+        },
+        Case {
+            site: "stage `{sname}`: the output role `{CASE_FOLDER_ROLE}` is its case folder's",
+            says: "stage `s`: the output role `folder` is its case folder's",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    outputs: { folder: f.txt }
+    case-folder: {}
+stop: { max-iterations: 1 }
+",
+            at: (5, 16),
+        },
+        Case {
+            site: "stage `{sname}`: case folder name `{v}` is not allowed",
+            says: "stage `s`: case folder name `inputs` is not allowed",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    case-folder: { path: inputs }
+stop: { max-iterations: 1 }
+",
+            at: (5, 26),
+        },
+        Case {
+            site: "stage `{sname}`: `initially: {}` names no start entry",
+            says: "stage `s`: `initially: start.nope` names no start entry",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  s:
+    run: [/bin/true]
+    case-folder: { initially: start.nope }
+stop: { max-iterations: 1 }
+",
+            at: (6, 31),
+        },
     ]
 }
 

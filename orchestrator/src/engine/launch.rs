@@ -185,11 +185,12 @@ impl Engine<'_> {
     ) -> Result<Vec<(String, String, PathBuf)>> {
         let mut inputs: Vec<(String, String, PathBuf)> = Vec::new();
         let mix = matches!(stage.kind, StageKind::Mix(_));
-        if stage.inputs.is_empty() && !mix {
+        if stage.inputs.is_empty() && !mix && stage.case_folder.is_none() {
             return Ok(inputs);
         }
         let store = self.ledger.flush().await?;
-        let mut places: Vec<(String, PathBuf, bool)> = Vec::new();
+        // (hash, where, private, a folder)
+        let mut places: Vec<(String, PathBuf, bool, bool)> = Vec::new();
         for (role, src) in &stage.inputs {
             let Some(hash) = input_hash(&store, point, iteration, src).await? else {
                 if stage.kind.is_builtin() || iteration == 1 {
@@ -202,8 +203,11 @@ impl Engine<'_> {
                 );
             };
             let name = store.artifact_name(&hash).await?;
+            // A folder artifact is stored under a name ending with '/'.
+            let folder = name.ends_with('/');
             let ext = Path::new(&name)
                 .extension()
+                .filter(|_| !folder)
                 .map(|e| format!(".{}", e.to_string_lossy()))
                 .unwrap_or_default();
             let rel = PathBuf::from(format!("inputs/{role}{ext}"));
@@ -211,6 +215,7 @@ impl Engine<'_> {
                 hash.clone(),
                 workdir.join(&rel),
                 stage.writable_inputs.contains(role),
+                folder,
             ));
             inputs.push((role.clone(), hash, rel));
         }
@@ -223,14 +228,48 @@ impl Engine<'_> {
             };
             if let Some(h) = input_hash(&store, point, iteration, &src).await? {
                 let rel = PathBuf::from("inputs/state.json");
-                places.push((h.clone(), workdir.join(&rel), false));
+                places.push((h.clone(), workdir.join(&rel), false, false));
                 inputs.push(("state".into(), h, rel));
+            }
+        }
+        // The kept working folder: the snapshot of this stage's last good iteration (the
+        // one before: a point only goes on after a good iteration), never what a failed or
+        // killed attempt left (each attempt has a fresh scratch folder); at iteration 1 the
+        // start folder or nothing. Every file a private writable copy (clone where it can).
+        if let Some(cf) = &stage.case_folder {
+            let src = Source::Previous {
+                stage: stage.name.clone(),
+                role: crate::spec::CASE_FOLDER_ROLE.into(),
+                initially: cf.initially.clone(),
+            };
+            let rel = PathBuf::from(&cf.path);
+            match input_hash(&store, point, iteration, &src).await? {
+                Some(h) => {
+                    places.push((h.clone(), workdir.join(&rel), true, true));
+                    inputs.push((crate::spec::CASE_FOLDER_ROLE.into(), h, rel));
+                }
+                None if iteration == 1 => {
+                    let dir = workdir.join(&rel);
+                    std::fs::create_dir_all(&dir)
+                        .with_context(|| format!("{}: cannot create", dir.display()))?;
+                }
+                None => bail!(
+                    "internal: the case folder of stage `{}` at {point} iteration {} has no \
+                     snapshot",
+                    stage.name,
+                    iteration - 1
+                ),
             }
         }
         let artifacts = self.artifacts.clone();
         tokio::task::spawn_blocking(move || -> Result<()> {
-            for (hash, dest, private) in places {
-                artifacts.place(&hash, &dest, private).with_context(|| {
+            for (hash, dest, private, folder) in places {
+                let placed = if folder {
+                    artifacts.place_folder(&hash, &dest, private)
+                } else {
+                    artifacts.place(&hash, &dest, private)
+                };
+                placed.with_context(|| {
                     format!("cannot place artifact {hash} as {}", dest.display())
                 })?;
             }

@@ -57,7 +57,7 @@ mod workspace;
 use iterate::record_verdict;
 use programs::ProgramCache;
 use settle::{check_outputs, Checked, OutputJob};
-use store::attempts::{LaunchFields, NewAttempt, StoredOutput};
+use store::attempts::{FolderMembers, LaunchFields, NewAttempt, StoredOutput};
 pub use workspace::{prepare_workspace, values_json, PreparedWorkspace};
 
 pub use crate::RONDO_VERSION;
@@ -336,6 +336,8 @@ enum Ended {
         metrics: Vec<Metric>,
         /// The outputs, stored as artifacts (empty until stored).
         outs: Vec<StoredOutput>,
+        /// The members of the folder outputs among them (empty until stored).
+        folders: Vec<FolderMembers>,
         started: Option<DateTime<Utc>>,
         ended: Option<DateTime<Utc>>,
         host: Option<String>,

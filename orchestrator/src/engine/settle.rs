@@ -179,6 +179,7 @@ impl Engine<'_> {
             Ended::Ok {
                 metrics,
                 outs,
+                folders,
                 started,
                 ended,
                 host,
@@ -190,6 +191,7 @@ impl Engine<'_> {
                 let done = Success {
                     metrics,
                     outs,
+                    folders,
                     started,
                     ended,
                     host,
@@ -257,6 +259,7 @@ impl Engine<'_> {
         // the records held back (this attempt's planned row among them, if it was short).
         let (mut script, held) = self.ledger.begin();
         script.attempt_outputs(id, &done.outs, &store::now());
+        script.folder_members(&done.folders);
         script.attempt_metrics(id, &metrics);
         script.attempt_succeeded(
             id,
@@ -393,6 +396,7 @@ impl Engine<'_> {
 struct Success {
     metrics: Vec<Metric>,
     outs: Vec<StoredOutput>,
+    folders: Vec<FolderMembers>,
     started: Option<DateTime<Utc>>,
     ended: Option<DateTime<Utc>>,
     host: Option<String>,
@@ -428,14 +432,30 @@ impl OutputJob {
                 host,
                 event,
                 ..
-            } => self.store_files().map(|outs| Ended::Ok {
-                metrics,
-                outs,
-                started,
-                ended,
-                host,
-                event,
-            }),
+            } => match self.store_files() {
+                Ok(Stored::All(outs, folders)) => Ok(Ended::Ok {
+                    metrics,
+                    outs,
+                    folders,
+                    started,
+                    ended,
+                    host,
+                    event,
+                }),
+                // A folder the store does not take (a link out of it, a FIFO, a glob with
+                // no match): the attempt failed, the run goes on.
+                Ok(Stored::Refused(message)) => Ok(Ended::Failed {
+                    kind: "refused-output".into(),
+                    message,
+                    exit_status: Some(0),
+                    started,
+                    ended,
+                    host,
+                    free: false,
+                    state: AttemptState::Failed,
+                }),
+                Err(e) => Err(e),
+            },
             failed => Ok(failed),
         };
         Checked {
@@ -444,16 +464,55 @@ impl OutputJob {
         }
     }
 
-    fn store_files(&self) -> Result<Vec<StoredOutput>> {
+    /// Store every output: files linked in, folders (`name/`), globs and the case folder as
+    /// folder artifacts (each member by content, then the manifest).
+    fn store_files(&self) -> Result<Stored> {
         let mut files: Vec<(String, String)> = self.stage.outputs.clone();
         if matches!(self.stage.kind, StageKind::Mix(_)) {
             files.push(("state".into(), builtins::STATE_FILE.into()));
         }
+        if let Some(cf) = &self.stage.case_folder {
+            files.push((
+                crate::spec::CASE_FOLDER_ROLE.into(),
+                format!("{}/", cf.path),
+            ));
+        }
         if self.workdir.join(validate::METRICS_FILE).is_file() {
             files.push(("metrics".into(), validate::METRICS_FILE.into()));
         }
+        let linked = !self.keep_scratch;
         let mut outs = Vec::with_capacity(files.len());
+        let mut folders = Vec::new();
         for (role, file) in files {
+            let folder = if let Some(name) = file.strip_suffix('/') {
+                Some(self.artifacts.put_folder(&self.workdir.join(name), linked))
+            } else if crate::artifacts::folder::is_glob(&file) {
+                Some(self.artifacts.put_glob(&self.workdir, &file, linked))
+            } else {
+                None
+            };
+            if let Some(stored) = folder {
+                let f = match stored {
+                    Ok(f) => f,
+                    Err(crate::artifacts::FolderError::Refused(m)) => {
+                        return Ok(Stored::Refused(format!("output `{role}`: {m}")));
+                    }
+                    Err(crate::artifacts::FolderError::Io(e)) => {
+                        return Err(anyhow::Error::new(e).context(format!(
+                            "{}: cannot store the folder output `{role}`",
+                            self.workdir.join(&file).display()
+                        )));
+                    }
+                };
+                let name = if file.ends_with('/') {
+                    file.clone()
+                } else {
+                    format!("{role}/")
+                };
+                folders.push((f.hash.clone(), members(&f.manifest)));
+                outs.push((role, f.hash, f.size, name));
+                continue;
+            }
             let path = self.workdir.join(&file);
             let stored = if self.keep_scratch {
                 self.artifacts.put_file(&path)
@@ -464,8 +523,23 @@ impl OutputJob {
                 stored.with_context(|| format!("{}: cannot store the output", path.display()))?;
             outs.push((role, h, size, file));
         }
-        Ok(outs)
+        Ok(Stored::All(outs, folders))
     }
+}
+
+/// What storing an attempt's outputs came to.
+enum Stored {
+    /// Every output stored, with the members of its folders.
+    All(Vec<StoredOutput>, Vec<FolderMembers>),
+    /// A folder output the store refuses (why, naming the output).
+    Refused(String),
+}
+
+/// A manifest's files as the store records them: (path, hash, size, mode).
+fn members(m: &crate::artifacts::Manifest) -> Vec<(String, String, u64, String)> {
+    m.files()
+        .map(|(p, h, n, mode)| (p.to_string(), h.to_string(), n, mode.to_string()))
+        .collect()
 }
 
 /// Output checks after a clean exit (or a built-in's end).
@@ -488,6 +562,21 @@ pub(super) fn check_outputs(
         state: AttemptState::Failed,
     };
     for (role, file) in &stage.outputs {
+        if crate::artifacts::folder::is_glob(file) {
+            continue; // checked when stored: a glob must match at least one file
+        }
+        if let Some(name) = file.strip_suffix('/') {
+            if !workdir.join(name).is_dir() {
+                return fail(validate::Invalid {
+                    kind: "missing-output",
+                    message: format!(
+                        "output `{role}`: the folder {} was not written",
+                        workdir.join(name).display()
+                    ),
+                });
+            }
+            continue;
+        }
         if let Err(inv) = validate::check_output(&workdir.join(file), role, stage.allow_nonfinite) {
             return fail(inv);
         }
@@ -504,6 +593,7 @@ pub(super) fn check_outputs(
     Ended::Ok {
         metrics,
         outs: Vec::new(),
+        folders: Vec::new(),
         started,
         ended,
         host,

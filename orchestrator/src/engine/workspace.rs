@@ -19,7 +19,7 @@ pub(super) fn new_workspace_id(root: &Path) -> String {
 /// written, so a missing start file leaves no workspace behind.
 pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<PreparedWorkspace> {
     for (name, file) in &campaign.start {
-        if !file.is_file() {
+        if !file.is_file() && !file.is_dir() {
             bail!(
                 "{}: start file `{name}` ({}) does not exist; fix `start:` or create the file",
                 campaign.file.display(),
@@ -57,13 +57,29 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
             let workspace_id = new_workspace_id(&paths.root);
             let mut starts = Vec::new();
             for (name, file) in &campaign.start {
-                let (h, size) = artifacts
-                    .put_file(file)
-                    .with_context(|| format!("{}: cannot store the start file", file.display()))?;
-                let fname = file
+                let mut fname = file
                     .file_name()
                     .map(|f| f.to_string_lossy().into_owned())
                     .unwrap_or_else(|| name.clone());
+                // A start folder is stored as a folder artifact (its files copied in).
+                let (h, size) = if file.is_dir() {
+                    fname.push('/');
+                    let f = artifacts.put_folder(file, false).map_err(|e| match e {
+                        // What the folder holds is the input's fault (exit 2).
+                        crate::artifacts::FolderError::Refused(m) => anyhow::Error::new(
+                            crate::spec::BadInput(format!("start folder `{name}`: {m}")),
+                        ),
+                        crate::artifacts::FolderError::Io(e) => anyhow::anyhow!(
+                            "{}: cannot store the start folder: {e}",
+                            file.display()
+                        ),
+                    })?;
+                    (f.hash, f.size)
+                } else {
+                    artifacts.put_file(file).with_context(|| {
+                        format!("{}: cannot store the start file", file.display())
+                    })?
+                };
                 starts.push((name.clone(), h, size, fname));
             }
             store::campaign::create(

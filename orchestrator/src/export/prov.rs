@@ -161,7 +161,36 @@ impl Doc {
             if let Some(sn) = start_names.get(h.as_str()) {
                 e["rondo:startFile"] = json!(sn);
             }
+            let folder = row.original_name.ends_with('/');
+            if folder {
+                // A folder artifact: a PROV collection of its member files.
+                e["prov:type"] = qname("prov:Collection");
+                e["rondo:folder"] = json!(true);
+            }
             self.entity.insert(format!("art:{h}"), e);
+            if folder {
+                self.add_members(pool, h).await?;
+            }
+        }
+        Ok(())
+    }
+
+    /// The member files of a folder artifact as entities, each `prov:hadMember` of it.
+    async fn add_members(&mut self, pool: &SqlitePool, folder: &str) -> Result<()> {
+        for (path, hash, size) in artifacts::folder_members(pool, folder).await? {
+            let id = format!("art:{hash}");
+            self.entity.entry(id.clone()).or_insert_with(|| {
+                json!({
+                    "prov:type": qname("rondo:Artifact"),
+                    "prov:label": path,
+                    "rondo:size": size,
+                    "rondo:blake3": hash,
+                })
+            });
+            self.rel(
+                "hadMember",
+                json!({"prov:collection": format!("art:{folder}"), "prov:entity": id}),
+            );
         }
         Ok(())
     }

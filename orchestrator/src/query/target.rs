@@ -166,6 +166,11 @@ pub async fn resolve(
     if path.is_file() {
         let hash = hash_file_with_progress(path, progress)?;
         if !artifacts::is_recorded(pool, &hash).await? {
+            // A file inside a folder artifact: traced through the first folder that held
+            // this content (its producer made it; later snapshots only carried it along).
+            if let Some((folder, _)) = artifacts::first_folder_holding(pool, &hash).await? {
+                return Ok(Target::Artifact { hash: folder });
+            }
             bail!(
                 "file {} was never produced or used by this campaign (BLAKE3 {}); \
                  check that it belongs to this workspace and was not edited",
@@ -174,6 +179,12 @@ pub async fn resolve(
             );
         }
         return Ok(Target::Artifact { hash });
+    }
+    if path.is_dir() {
+        return resolve_folder(pool, path).await;
+    }
+    if let Some((head, inner)) = split_member_ref(target) {
+        return resolve_member(pool, head, inner).await;
     }
     if let Some((point, which, name)) = parse_metric_ref(target) {
         // A metric of that name first; else an output role of the stage.
@@ -226,6 +237,66 @@ pub async fn resolve(
         "cannot understand target `{target}`: give an existing file, an artifact hash \
          (at least {MIN_PREFIX} hex digits) or POINT/ITERATION/stage.metric (e.g. p001/3/update.energy)"
     )
+}
+
+/// `POINT/ITERATION/stage.role/relative/path` → (`POINT/ITERATION/stage.role`, the path).
+fn split_member_ref(s: &str) -> Option<(&str, &str)> {
+    let mut cut = s.match_indices('/').map(|(i, _)| i);
+    let (_, second, third) = (cut.next()?, cut.next()?, cut.next()?);
+    let (head, inner) = (&s[..third], &s[third + 1..]);
+    (head[second + 1..].contains('.') && !inner.is_empty()).then_some((head, inner))
+}
+
+/// A folder on disk (a scratch or extracted folder): its manifest is computed without
+/// storing anything and looked up among the recorded folder artifacts.
+async fn resolve_folder(pool: &SqlitePool, dir: &Path) -> Result<Target> {
+    let d = dir.to_path_buf();
+    let hash = tokio::task::spawn_blocking(move || crate::artifacts::folder::folder_hash(&d))
+        .await
+        .context("internal: the folder hashing task panicked")?
+        .map_err(|e| anyhow::anyhow!("{}: {e}", dir.display()))?;
+    if !artifacts::is_recorded(pool, &hash).await? {
+        bail!(
+            "folder {} is no folder artifact of this campaign (manifest BLAKE3 {hash}); a \
+             folder matches only when every file, name and mode is as recorded",
+            dir.display()
+        );
+    }
+    Ok(Target::Artifact { hash })
+}
+
+/// A file inside a folder output, `POINT/ITERATION/stage.role/relative/path`: traced
+/// through its folder (the file's content is one of the folder's members).
+async fn resolve_member(pool: &SqlitePool, head: &str, inner: &str) -> Result<Target> {
+    let Some((point, which, name)) = parse_metric_ref(head) else {
+        bail!("cannot understand `{head}`: give POINT/ITERATION/stage.role/relative/path");
+    };
+    let iteration = match which {
+        Which::Iteration(i) => i,
+        Which::Final => None,
+    };
+    let folder = match resolve_output(pool, &point, iteration, &name).await? {
+        Ok(h) => h,
+        Err(outputs) => bail!(
+            "`{name}` is no output of {point} at that iteration (outputs: {})",
+            list_short(&outputs)
+        ),
+    };
+    if artifacts::folder_member(pool, &folder, inner)
+        .await?
+        .is_none()
+    {
+        let members = artifacts::folder_members(pool, &folder).await?;
+        if members.is_empty() {
+            bail!("`{head}` is a file, not a folder: trace it without `/{inner}`");
+        }
+        let paths: Vec<String> = members.into_iter().map(|m| m.0).collect();
+        bail!(
+            "the folder `{head}` has no file `{inner}` (files: {})",
+            list_short(&paths)
+        );
+    }
+    Ok(Target::Artifact { hash: folder })
 }
 
 fn list_short(items: &[String]) -> String {

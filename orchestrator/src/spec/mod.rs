@@ -19,9 +19,9 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, Diagnostic, DiskFree, EosAnalysis, Hooks, Keep, Placement, PointSpec,
-    ResolvedProgram, Rule, RuleTest, Schedule, Source, SpecErrors, Stage, StageKind,
-    FILTER_METRICS, HOOK_EVENTS, LEGACY_ROLE,
+    BadInput, Campaign, CaseFolder, Diagnostic, DiskFree, EosAnalysis, Hooks, Keep, Placement,
+    PointSpec, ResolvedProgram, Rule, RuleTest, Schedule, Source, SpecErrors, Stage, StageKind,
+    CASE_FOLDER_ROLE, FILTER_METRICS, HOOK_EVENTS, LEGACY_ROLE,
 };
 pub use raw::{
     AnalysisSpec, BuiltinSettings, CampaignFile, Combine, Compare, Defaults, EosModelName, EosSpec,

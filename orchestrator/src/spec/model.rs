@@ -141,6 +141,8 @@ pub struct Stage {
     pub placement: Placement,
     /// Retention policies per output role (`keep`); roles not listed keep everything.
     pub keep: Vec<(String, Keep)>,
+    /// The working folder kept from one iteration to the next (`case-folder`).
+    pub case_folder: Option<CaseFolder>,
 }
 
 /// Which iterations of an output role keep their content (see [`crate::retention`]).
@@ -165,6 +167,18 @@ impl fmt::Display for Keep {
         write!(f, "{}", parts.join(","))
     }
 }
+
+/// A stage's kept working folder.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct CaseFolder {
+    /// Its name in the scratch directory.
+    pub path: String,
+    /// The start folder laid out at iteration 1 (`start:` name), else an empty folder.
+    pub initially: Option<String>,
+}
+
+/// The output role under which a stage's case folder is recorded after each success.
+pub const CASE_FOLDER_ROLE: &str = "folder";
 
 /// What a stage runs.
 #[derive(Debug, Clone)]

@@ -329,6 +329,26 @@ pub struct StageSpec {
     /// Settings of a built-in stage.
     #[serde(default)]
     pub settings: Option<BuiltinSettings>,
+    /// A working folder the stage keeps from one iteration to the next: laid out before
+    /// every attempt from the stage's last good snapshot (iteration 1: `initially`, or
+    /// empty), recorded after each success as the folder output `folder`.
+    #[serde(default)]
+    #[schemars(with = "Option<CaseFolderSpec>")]
+    pub case_folder: Option<Spanned<CaseFolderSpec>>,
+}
+
+/// `case-folder:` of a command or shell stage.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct CaseFolderSpec {
+    /// The folder's name inside the scratch directory (default `case`).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub path: Option<Spanned<String>>,
+    /// `start.NAME` of a start folder laid out at iteration 1 (default: an empty folder).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub initially: Option<Spanned<String>>,
 }
 
 /// A retention policy of one output role: the content of the last `last` good iterations,

@@ -51,6 +51,9 @@ pub struct LaunchFields {
 /// An output stored as an artifact: (role, hash, size, file name).
 pub type StoredOutput = (String, String, u64, String);
 
+/// A stored folder's members: (folder hash, [(relative path, content hash, size, mode)]).
+pub type FolderMembers = (String, Vec<(String, String, u64, String)>);
+
 /// How a failed attempt ended, as its row records it.
 #[derive(Debug, Clone)]
 pub struct Failure<'a> {
@@ -174,6 +177,28 @@ impl Script {
         ));
         for (role, h, _, _) in outs {
             self.bind(id).bind(role.clone()).bind(h.clone());
+        }
+    }
+
+    /// The member files of folder artifacts (recorded by `attempt_outputs` in the same
+    /// script): per folder, (relative path, content hash, size, mode). The same folder again
+    /// adds nothing.
+    pub fn folder_members(&mut self, folders: &[FolderMembers]) {
+        for (folder, members) in folders {
+            for chunk in members.chunks(1000) {
+                self.stmt(&format!(
+                    "INSERT INTO folder_members(folder, path, artifact, size, mode) VALUES {} \
+                     ON CONFLICT(folder, path) DO NOTHING",
+                    rows(chunk.len(), 5)
+                ));
+                for (path, hash, size, mode) in chunk {
+                    self.bind(folder.clone())
+                        .bind(path.clone())
+                        .bind(hash.clone())
+                        .bind(i64::try_from(*size).unwrap_or(i64::MAX))
+                        .bind(mode.clone());
+                }
+            }
         }
     }
 

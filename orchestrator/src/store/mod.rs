@@ -73,6 +73,13 @@ pub fn migrator() -> Migrator {
             false,
         ),
         Migration::new(
+            6,
+            "folders".into(),
+            MigrationType::Simple,
+            include_str!("../../migrations/0006_folders.sql").into(),
+            false,
+        ),
+        Migration::new(
             8,
             "retention".into(),
             MigrationType::Simple,

@@ -12,6 +12,7 @@
 mod analysis;
 mod builtins;
 mod commands;
+mod folders;
 mod hooks;
 mod programs;
 mod resources;

@@ -122,6 +122,7 @@ impl Validator<'_> {
         let kind = self.stage_kind(cx, &s, programs)?;
         let placement = self.placement(&sname, st, &kind);
         let keep = self.keep(&sname, st);
+        let case_folder = self.case_folder(cx.raw, &sname, st, &kind);
         Some(Stage {
             name: sname,
             kind,
@@ -135,6 +136,7 @@ impl Validator<'_> {
             writable_inputs,
             placement,
             keep,
+            case_folder,
         })
     }
 
@@ -319,7 +321,8 @@ impl Validator<'_> {
             return None;
         };
         let implicit_state = st.builtin.is_some() && o == "state";
-        if st.outputs.get(o).is_none() && !implicit_state {
+        let case_folder = st.case_folder.is_some() && o == crate::spec::model::CASE_FOLDER_ROLE;
+        if st.outputs.get(o).is_none() && !implicit_state && !case_folder {
             self.push(
                 at,
                 format!("stage `{s}` declares no output `{o}`"),
@@ -336,11 +339,18 @@ impl Validator<'_> {
     /// Output file names are plain names in the scratch directory.
     fn output_names(&mut self, st: &StageSpec) {
         for (ok, ov) in &st.outputs.0 {
-            if ov.is_empty() || ov.contains('/') || ov == "metrics.json" || ov.starts_with('.') {
+            // `name/`: a folder output; a name with `*` or `?`: a glob, its matches one folder.
+            let plain = ov.strip_suffix('/').unwrap_or(ov);
+            if plain.is_empty()
+                || plain.contains('/')
+                || plain == "metrics.json"
+                || plain.starts_with('.')
+            {
                 self.push(
                     loc(ok),
                     format!("output file name `{ov}` is not allowed"),
-                    "use a plain file name (no '/', not metrics.json) written in the scratch directory",
+                    "use a plain file name (no '/', not metrics.json) written in the scratch directory, \
+                     `name/` for a folder, or a glob such as `*.dat`",
                 );
             }
         }

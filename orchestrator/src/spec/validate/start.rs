@@ -16,7 +16,7 @@ impl Validator<'_> {
         let mut start = BTreeMap::new();
         for (k, v) in &raw.start.0 {
             let p = base.join(v);
-            if p.is_file() {
+            if p.is_file() || p.is_dir() {
                 start.insert(k.value.clone(), std::path::absolute(&p).unwrap_or(p));
             } else {
                 self.push(

@@ -86,3 +86,42 @@ pub async fn start_files(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
     }
     Ok(out)
 }
+
+/// The member files of a folder artifact: (relative path, content hash, size), by path
+/// (empty for a plain file).
+pub async fn folder_members(pool: &SqlitePool, folder: &str) -> Result<Vec<(String, String, i64)>> {
+    let rows = sqlx::query(
+        "SELECT path, artifact, size FROM folder_members WHERE folder = ? ORDER BY path",
+    )
+    .bind(folder)
+    .fetch_all(pool)
+    .await?;
+    rows.into_iter()
+        .map(|r| Ok((r.try_get(0)?, r.try_get(1)?, r.try_get(2)?)))
+        .collect()
+}
+
+/// The content hash of the file at `path` inside the folder artifact `folder`, if any.
+pub async fn folder_member(pool: &SqlitePool, folder: &str, path: &str) -> Result<Option<String>> {
+    Ok(
+        sqlx::query_scalar("SELECT artifact FROM folder_members WHERE folder = ? AND path = ?")
+            .bind(folder)
+            .bind(path)
+            .fetch_optional(pool)
+            .await?,
+    )
+}
+
+/// The first recorded folder holding a file with this content, with its path there.
+pub async fn first_folder_holding(
+    pool: &SqlitePool,
+    member: &str,
+) -> Result<Option<(String, String)>> {
+    let row = sqlx::query(
+        "SELECT folder, path FROM folder_members WHERE artifact = ? ORDER BY rowid LIMIT 1",
+    )
+    .bind(member)
+    .fetch_optional(pool)
+    .await?;
+    row.map(|r| Ok((r.try_get(0)?, r.try_get(1)?))).transpose()
+}
