@@ -27,10 +27,11 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
             );
         }
     }
+    refuse_lost_database(paths)?;
     std::fs::create_dir_all(&paths.root)
         .with_context(|| format!("{}: cannot create the workspace", paths.root.display()))?;
     let lock = store::lock(&paths.root)?;
-    let pool = store::open(&paths.db).await?;
+    let pool = store::open_for_run(&paths.db).await?;
     let artifacts = ArtifactStore::open(&paths.store).with_context(|| {
         format!(
             "{}: cannot create the artifact store",
@@ -92,6 +93,30 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
         workspace_id,
         _lock: lock,
     })
+}
+
+/// A workspace whose artifact store holds files but whose `rondo.db` is gone has lost its
+/// records: starting afresh there would record a second campaign over the first one's
+/// artifacts, so it is refused before anything is written.
+fn refuse_lost_database(paths: &Paths) -> Result<()> {
+    if paths.db.exists() {
+        return Ok(());
+    }
+    let stored = std::fs::read_dir(&paths.store)
+        .map(|mut d| d.next().is_some())
+        .unwrap_or(false);
+    if stored {
+        bail!(
+            "{}: the workspace database {} is missing but its artifact store ({}) is not \
+             empty: the records of this workspace are lost (the store cannot be indexed back). \
+             Restore rondo.db from a backup, or run the campaign in a new workspace \
+             (--workspace NEW); rondo wrote nothing here",
+            paths.root.display(),
+            paths.db.display(),
+            paths.store.display()
+        );
+    }
+    Ok(())
 }
 
 /// An open, locked workspace.

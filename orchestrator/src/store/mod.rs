@@ -71,6 +71,13 @@ pub fn migrator() -> Migrator {
             include_str!("../../migrations/0005_rules_met_index.sql").into(),
             false,
         ),
+        Migration::new(
+            7,
+            "attempt env".into(),
+            MigrationType::Simple,
+            include_str!("../../migrations/0007_attempt_env.sql").into(),
+            false,
+        ),
     ];
     Migrator {
         migrations: m.into(),
@@ -80,6 +87,18 @@ pub fn migrator() -> Migrator {
 
 /// Open (creating) the database file and apply migrations.
 pub async fn open(db: &Path) -> Result<SqlitePool> {
+    open_with(db, false).await
+}
+
+/// Open (creating) the database file of a run: as [`open`], but an existing file is first
+/// read through by SQLite's `PRAGMA quick_check` (every page, without the index
+/// cross-checks of `integrity_check`: linear in the file's size), and a damaged one is
+/// refused before anything (a migration included) writes to it.
+pub async fn open_for_run(db: &Path) -> Result<SqlitePool> {
+    open_with(db, true).await
+}
+
+async fn open_with(db: &Path, check: bool) -> Result<SqlitePool> {
     let url = format!("sqlite://{}", db.display());
     let (journal, why) = journal_mode(db)?;
     tracing::debug!(db = %db.display(), ?journal, why, "journal mode");
@@ -99,6 +118,9 @@ pub async fn open(db: &Path) -> Result<SqlitePool> {
         .connect_with(opts)
         .await
         .with_context(|| format!("{}: cannot open the workspace database", db.display()))?;
+    if check {
+        refuse_damaged(&pool, db).await?;
+    }
     migrator()
         .run(&pool)
         .await
@@ -420,6 +442,28 @@ pub fn writable(path: &Path) -> bool {
     };
     // SAFETY: a valid NUL-terminated path; access only reads it.
     unsafe { libc::access(c.as_ptr(), libc::W_OK) == 0 }
+}
+
+/// `PRAGMA quick_check` of an open database: an error naming the file and what SQLite
+/// found when it is damaged.
+async fn refuse_damaged(pool: &SqlitePool, db: &Path) -> Result<()> {
+    let found: Result<Vec<String>, sqlx::Error> = sqlx::query_scalar("PRAGMA quick_check")
+        .fetch_all(pool)
+        .await;
+    let problems = match found {
+        Ok(rows) if rows.len() == 1 && rows[0] == "ok" => return Ok(()),
+        Ok(rows) => rows.join("; "),
+        Err(e) => e.to_string(),
+    };
+    pool.close().await;
+    bail!(
+        "{}: the workspace database is damaged (SQLite quick_check: {}); rondo writes nothing \
+         to it: restore rondo.db from a backup, or read what is left with `sqlite3 {} .recover` \
+         into a copy, or run the campaign again in a new workspace (--workspace)",
+        db.display(),
+        problems.chars().take(300).collect::<String>(),
+        db.display()
+    )
 }
 
 fn check_db_file(ws: &Path) -> Result<std::path::PathBuf> {
