@@ -148,28 +148,24 @@ fn strings_ro(ws: &Path, sql: &'static str) -> Vec<String> {
         let Ok(pool) = sqlx::SqlitePool::connect_with(opts).await else {
             return Vec::new();
         };
-        let rows = sqlx::query_scalar(sql).fetch_all(&pool).await.unwrap_or_default();
+        let rows = sqlx::query_scalar(sql)
+            .fetch_all(&pool)
+            .await
+            .unwrap_or_default();
         pool.close().await;
         rows
     })
 }
 
-/// Run the base campaign (through `wrap`, e.g. faketime, when not empty) with the `hold`
+/// Run the base campaign (with the extra environment `env`, e.g. a fake clock) with the `hold`
 /// file present, so that every point runs two iterations and then sleeps in its third;
 /// wait for a sleeping child and send `signal` to rondo (only to rondo: its children have
 /// their own process groups). Returns rondo's exit code and the workspace id; `hold` stays.
-fn interrupt_while_running(dir: &Path, signal: i32, wrap: &[&str]) -> (Option<i32>, String) {
+fn interrupt_while_running(dir: &Path, signal: i32, env: &[(&str, &str)]) -> (Option<i32>, String) {
     let ws = ws_of(dir);
     write(&dir.join("hold"), "");
-    let mut cmd = match wrap.split_first() {
-        Some((first, rest)) => {
-            let mut c = Command::new(first);
-            c.args(rest).arg(rondo());
-            c
-        }
-        None => Command::new(rondo()),
-    };
-    let mut child = cmd
+    let mut child = Command::new(rondo())
+        .envs(env.iter().copied())
         .args(["run", "c.yaml", "-q"])
         .current_dir(dir)
         .env("PATH", path_with_binaries())
@@ -236,7 +232,12 @@ fn signal_row(signal: i32, name: &str) {
     );
     std::fs::remove_file(d.path().join("hold")).unwrap_or_else(|e| panic!("{e}"));
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
-    assert_eq!(code(&o), Some(0), "{name}: the next run continues: {}", shown(&o));
+    assert_eq!(
+        code(&o),
+        Some(0),
+        "{name}: the next run continues: {}",
+        shown(&o)
+    );
     assert_same_record(&reference, &record(&ws), 0);
     assert_no_double_success_nor_children(&ws, 0);
 }
@@ -308,7 +309,11 @@ fn outputs_that_are_links_fifos_or_devices_are_refused_without_blocking() {
         ("symlink", "ln -s /etc/hostname x.txt", "a symbolic link"),
         ("fifo", "mkfifo x.txt", "a FIFO"),
         ("device", "mknod x.txt c 1 3", "a device file"),
-        ("metrics-fifo", "echo 1 > x.txt; mkfifo metrics.json", "a FIFO"),
+        (
+            "metrics-fifo",
+            "echo 1 > x.txt; mkfifo metrics.json",
+            "a FIFO",
+        ),
     ] {
         if what == "device" && !is_root() {
             eprintln!("device row: mknod needs root; the other rows ran");
@@ -358,9 +363,19 @@ fn a_stage_flooding_stdout_keeps_a_capped_log_and_is_judged_by_its_outputs() {
     let text = text.replace("max-iterations: 20", "max-iterations: 1");
     write(&d.path().join("c.yaml"), &text);
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--keep-scratch"]);
-    assert_eq!(code(&o), Some(3), "capped after one iteration: {}", shown(&o));
+    assert_eq!(
+        code(&o),
+        Some(3),
+        "capped after one iteration: {}",
+        shown(&o)
+    );
     let ws = ws_of(d.path());
-    assert_eq!(succeeded_attempts(&ws), 2, "judged by outputs: {}", shown(&o));
+    assert_eq!(
+        succeeded_attempts(&ws),
+        2,
+        "judged by outputs: {}",
+        shown(&o)
+    );
     for p in ["p001", "p002"] {
         let log = ws.join(format!("scratch/{p}.i0001.s.a1/stdout.txt"));
         let m = std::fs::metadata(&log).unwrap_or_else(|e| panic!("{}: {e}", log.display()));
@@ -543,7 +558,10 @@ fn a_read_only_workspace_is_refused_clearly_and_nothing_is_written() {
         .output()
         .unwrap_or_else(|e| panic!("{e}"));
     if stderr(&o).contains("mount:") {
-        skip_isolation(&format!("cannot make a read-only bind mount here: {}", stderr(&o)));
+        skip_isolation(&format!(
+            "cannot make a read-only bind mount here: {}",
+            stderr(&o)
+        ));
         return;
     }
     assert_eq!(code(&o), Some(1), "{}", shown(&o));
@@ -584,8 +602,10 @@ fn a_workspace_moved_between_runs_continues_at_its_new_path() {
 
 #[test]
 fn a_clock_that_jumps_backwards_between_runs_changes_no_number_nor_order() {
-    let faketime = "/usr/bin/faketime";
-    if !Path::new(faketime).is_file() {
+    // libfaketime (Debian's `faketime`) preloaded into rondo and its children: the wall
+    // clock moved, the monotonic clock (timers, grace periods) left alone.
+    let lib = "/usr/lib/x86_64-linux-gnu/faketime/libfaketimeMT.so.1";
+    if !Path::new(lib).is_file() {
         skip_or_fail(
             "the clock row needs libfaketime",
             "apt-get install faketime",
@@ -596,16 +616,20 @@ fn a_clock_that_jumps_backwards_between_runs_changes_no_number_nor_order() {
     let reference = reference();
     let d = campaign_dir("");
     let ws = ws_of(d.path());
-    // The first run five years ahead (the wall clock only: timers run on the real
-    // monotonic clock), stopped by SIGTERM while work is left.
-    let ahead = [faketime, "-m", "--exclude-monotonic", "-f", "+5y"];
-    let (status, _) = interrupt_while_running(d.path(), libc::SIGTERM, &ahead);
+    let clock = |offset: &'static str| {
+        [
+            ("LD_PRELOAD", lib),
+            ("FAKETIME", offset),
+            ("FAKETIME_DONT_FAKE_MONOTONIC", "1"),
+        ]
+    };
+    // The first run five years ahead, stopped by SIGTERM while work is left.
+    let (status, _) = interrupt_while_running(d.path(), libc::SIGTERM, &clock("+5y"));
     assert_eq!(status, Some(4));
     std::fs::remove_file(d.path().join("hold")).unwrap_or_else(|e| panic!("{e}"));
     // The second one a year back: the clock jumped six years backwards between them.
-    let o = Command::new(faketime)
-        .args(["-m", "--exclude-monotonic", "-f", "-1y"])
-        .arg(rondo())
+    let o = Command::new(rondo())
+        .envs(clock("-1y"))
         .args(["run", "c.yaml", "-q"])
         .current_dir(d.path())
         .env("PATH", path_with_binaries())
@@ -614,7 +638,10 @@ fn a_clock_that_jumps_backwards_between_runs_changes_no_number_nor_order() {
     assert_eq!(code(&o), Some(0), "{}", shown(&o));
     assert_same_record(&reference, &record(&ws), 0);
     assert_no_double_success_nor_children(&ws, 0);
-    let years = strings(&ws, "SELECT DISTINCT substr(created_at, 1, 4) FROM attempts ORDER BY 1");
+    let years = strings(
+        &ws,
+        "SELECT DISTINCT substr(created_at, 1, 4) FROM attempts ORDER BY 1",
+    );
     assert_eq!(years.len(), 2, "both clocks are in the records: {years:?}");
     let first_run_last = strings(
         &ws,
@@ -638,7 +665,10 @@ fn a_clock_that_jumps_backwards_between_runs_changes_no_number_nor_order() {
         let (p, it) = row.split_once(' ').unwrap_or_default();
         let it: i64 = it.parse().unwrap_or(-1);
         let prev = last.insert(p.to_string(), it).unwrap_or(0);
-        assert!(it > prev, "attempt ids follow iterations: {p} {it} after {prev}");
+        assert!(
+            it > prev,
+            "attempt ids follow iterations: {p} {it} after {prev}"
+        );
     }
     let s = status_json(d.path(), &ws);
     for p in s["points"].as_array().cloned().unwrap_or_default() {
@@ -701,8 +731,7 @@ fn secrets_in_the_environment_never_reach_the_records_nor_exports() {
     let envs = strings(&ws, "SELECT coalesce(env_json, '') FROM attempts");
     assert!(!envs.is_empty());
     for e in &envs {
-        let v: serde_json::Value =
-            serde_json::from_str(e).unwrap_or_else(|x| panic!("{x}: {e}"));
+        let v: serde_json::Value = serde_json::from_str(e).unwrap_or_else(|x| panic!("{x}: {e}"));
         assert_eq!(v["OMP_NUM_THREADS"], "3", "{e}");
         assert!(v.get("PATH").is_some(), "{e}");
         assert!(v.get("GITLAB_TOKEN").is_none(), "{e}");
@@ -713,7 +742,10 @@ fn secrets_in_the_environment_never_reach_the_records_nor_exports() {
     let o = run_rondo(d.path(), &["export", "--workspace", &wsn, "--prov", &provn]);
     assert_eq!(code(&o), Some(0), "{}", shown(&o));
     let prov_text = std::fs::read_to_string(&prov).unwrap_or_else(|e| panic!("{e}"));
-    assert!(prov_text.contains("OMP_NUM_THREADS"), "exported with the activity");
+    assert!(
+        prov_text.contains("OMP_NUM_THREADS"),
+        "exported with the activity"
+    );
     let trace = run_rondo(d.path(), &["trace", "p001/2/s.x", "--workspace", &wsn]);
     assert_eq!(code(&trace), Some(0), "{}", shown(&trace));
     assert!(
@@ -724,7 +756,13 @@ fn secrets_in_the_environment_never_reach_the_records_nor_exports() {
     let rep = d.path().join("report");
     let o = run_rondo(
         d.path(),
-        &["report", "--workspace", &wsn, "--out", &rep.display().to_string()],
+        &[
+            "report",
+            "--workspace",
+            &wsn,
+            "--out",
+            &rep.display().to_string(),
+        ],
     );
     assert_eq!(code(&o), Some(0), "{}", shown(&o));
     let mut haystacks: Vec<(String, Vec<u8>)> = vec![

@@ -66,9 +66,10 @@ pub fn filter<I: IntoIterator<Item = (String, String)>>(vars: I) -> BTreeMap<Str
 /// JSON object stored in `attempts.env_json`. Variables that are not valid UTF-8 are left
 /// out.
 pub fn recorded_json() -> String {
-    let kept = filter(std::env::vars_os().filter_map(|(k, v)| {
-        Some((k.into_string().ok()?, v.into_string().ok()?))
-    }));
+    let kept = filter(
+        std::env::vars_os()
+            .filter_map(|(k, v)| Some((k.into_string().ok()?, v.into_string().ok()?))),
+    );
     serde_json::to_string(&kept).unwrap_or_else(|_| "{}".to_string())
 }
 

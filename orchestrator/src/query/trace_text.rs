@@ -172,7 +172,11 @@ impl Lineage {
         }
         let _ = writeln!(s, "  params    {}", a.parameters);
         if !a.environment.is_empty() {
-            let env: Vec<String> = a.environment.iter().map(|(k, v)| format!("{k}={v}")).collect();
+            let env: Vec<String> = a
+                .environment
+                .iter()
+                .map(|(k, v)| format!("{k}={v}"))
+                .collect();
             let _ = writeln!(s, "  env       {}", env.join(" "));
         }
         for (r, h) in &a.inputs {

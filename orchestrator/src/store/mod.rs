@@ -87,18 +87,6 @@ pub fn migrator() -> Migrator {
 
 /// Open (creating) the database file and apply migrations.
 pub async fn open(db: &Path) -> Result<SqlitePool> {
-    open_with(db, false).await
-}
-
-/// Open (creating) the database file of a run: as [`open`], but an existing file is first
-/// read through by SQLite's `PRAGMA quick_check` (every page, without the index
-/// cross-checks of `integrity_check`: linear in the file's size), and a damaged one is
-/// refused before anything (a migration included) writes to it.
-pub async fn open_for_run(db: &Path) -> Result<SqlitePool> {
-    open_with(db, true).await
-}
-
-async fn open_with(db: &Path, check: bool) -> Result<SqlitePool> {
     let url = format!("sqlite://{}", db.display());
     let (journal, why) = journal_mode(db)?;
     tracing::debug!(db = %db.display(), ?journal, why, "journal mode");
@@ -118,9 +106,6 @@ async fn open_with(db: &Path, check: bool) -> Result<SqlitePool> {
         .connect_with(opts)
         .await
         .with_context(|| format!("{}: cannot open the workspace database", db.display()))?;
-    if check {
-        refuse_damaged(&pool, db).await?;
-    }
     migrator()
         .run(&pool)
         .await
@@ -444,18 +429,32 @@ pub fn writable(path: &Path) -> bool {
     unsafe { libc::access(c.as_ptr(), libc::W_OK) == 0 }
 }
 
-/// `PRAGMA quick_check` of an open database: an error naming the file and what SQLite
-/// found when it is damaged.
-async fn refuse_damaged(pool: &SqlitePool, db: &Path) -> Result<()> {
+/// Refuse an existing database file that SQLite's `PRAGMA quick_check` finds damaged
+/// (every page is read, without the index cross-checks of `integrity_check`: linear in the
+/// file's size), through a read-only connection, so that nothing — not the workspace lock,
+/// not a migration — is written to a damaged workspace. An absent file passes.
+pub async fn refuse_damaged(db: &Path) -> Result<()> {
+    if !db.exists() {
+        return Ok(());
+    }
+    let opts = SqliteConnectOptions::new()
+        .filename(db)
+        .read_only(true)
+        .busy_timeout(Duration::from_secs(30));
+    let pool = SqlitePoolOptions::new()
+        .max_connections(1)
+        .connect_with(opts)
+        .await
+        .with_context(|| format!("{}: cannot open the workspace database", db.display()))?;
     let found: Result<Vec<String>, sqlx::Error> = sqlx::query_scalar("PRAGMA quick_check")
-        .fetch_all(pool)
+        .fetch_all(&pool)
         .await;
+    pool.close().await;
     let problems = match found {
         Ok(rows) if rows.len() == 1 && rows[0] == "ok" => return Ok(()),
         Ok(rows) => rows.join("; "),
         Err(e) => e.to_string(),
     };
-    pool.close().await;
     bail!(
         "{}: the workspace database is damaged (SQLite quick_check: {}); rondo writes nothing \
          to it: restore rondo.db from a backup, or read what is left with `sqlite3 {} .recover` \
