@@ -3,7 +3,9 @@
 //! Each attempt's program is started directly (no shell, unless the rendered argv is one)
 //! in its own process group, with null stdin, stdout/stderr through pipes into `stdout.txt`
 //! and `stderr.txt` in its scratch directory (each capped to its first and last 8 MiB, see
-//! [`logs`]), and the inherited environment plus the request's
+//! [`logs`]; when the orchestrator dies the pipes close, and a child's next write to them
+//! ends it with SIGPIPE, as the next orchestrator would end it), and the inherited
+//! environment plus the request's
 //! variables plus `RONDO_WORKSPACE_ID` and `RONDO_ATTEMPT_ID`. Those two variables are how a
 //! later orchestrator recognises the attempt's processes after a crash (see [`sys`]).
 //!
