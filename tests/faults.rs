@@ -469,10 +469,28 @@ fn a_deleted_truncated_or_changed_artifact_is_refused_on_use() {
         );
         assert!(unfinished_attempts(&ws).is_empty());
         assert_no_double_success_nor_children(&ws, 0);
+        // `rondo trace` names a missing or resized artifact of the lineage it shows (a
+        // `stat` each: a change of the same size is left to extract and placement).
+        let wsn = ws.display().to_string();
+        let t = run_rondo(d.path(), &["trace", "p001/2/s.x", "--workspace", &wsn]);
+        assert_eq!(code(&t), Some(0), "{}", shown(&t));
+        let terr = stderr(&t);
+        let want = match fault {
+            "deleted" => Some("is missing from the store"),
+            "truncated" => Some("bytes in the store, recorded"),
+            _ => None,
+        };
+        if let Some(want) = want {
+            assert!(
+                terr.contains("warning: artifact")
+                    && terr.contains(want)
+                    && terr.contains("backup"),
+                "{fault}: {terr}"
+            );
+        }
         // `rondo extract` checks the hash of what it copies out too.
         let out = d.path().join("out");
         std::fs::create_dir(&out).unwrap_or_else(|e| panic!("{e}"));
-        let wsn = ws.display().to_string();
         let outn = out.display().to_string();
         let o = run_rondo(
             d.path(),
