@@ -101,6 +101,7 @@ impl ArtifactStore {
         let dir = dest.parent().unwrap_or(&self.root);
         fs::create_dir_all(dir)?;
         copy_durably(src, &dest, &hash, true)?;
+        self.remember(&hash, &dest);
         Ok((hash, size))
     }
 
@@ -127,6 +128,7 @@ impl ArtifactStore {
             Err(_) => copy_durably(src, &dest, &hash, true)?,
         }
         sync_dir(dir)?;
+        self.remember(&hash, &dest);
         Ok((hash, size))
     }
 
@@ -170,7 +172,8 @@ impl ArtifactStore {
     }
 
     /// Check that the stored file of `hash` exists, is a regular file and hashes to its
-    /// name. The full hash is computed on the first use in this process; later uses compare
+    /// name. The full hash is computed on the first use in this process (a file this
+    /// process stored counts as used: it was hashed as it was stored); later uses compare
     /// a `stat` (size, modification time in ns, inode) with the one seen then and hash again
     /// only when it differs. Caught: a deleted, replaced, truncated or rewritten file, and
     /// any change since the last check that moved its size or modification time. Not caught
@@ -215,6 +218,15 @@ impl ArtifactStore {
         }
         seen().insert(hash.to_string(), stamp);
         Ok(())
+    }
+
+    /// Note a file this process just stored (and hashed) as verified, so that its first
+    /// placement does not read it again.
+    fn remember(&self, hash: &str, stored: &Path) {
+        if let Ok(m) = fs::symlink_metadata(stored) {
+            let mut seen = self.verified.lock().unwrap_or_else(|p| p.into_inner());
+            seen.insert(hash.to_string(), stamp_of(&m));
+        }
     }
 
     /// Store bytes; returns (hash, size).
