@@ -17,7 +17,7 @@ use common::*;
 /// The halving loop: x ← (x + a) / 2 in integers, from 0, until it stops moving (a = 1024
 /// takes 11 iterations, a = 64 seven). From iteration 3 on, the stage sleeps 30 s while
 /// the file `hold` exists beside the campaign, so a test can catch it running.
-fn campaign_text(extra_stage: &str) -> String {
+fn campaign_text() -> String {
     format!(
         r#"campaign: faults
 about: test campaign (not physics)
@@ -34,7 +34,6 @@ cycle:
     inputs: {{ x: {{ previous: s.x, initially: start.x }} }}
     outputs: {{ x: x.txt }}
     metrics: [x]
-{extra_stage}
 stop:
   when:
     - {{ metric: s.x, change-below: 0.5, for: 1 }}
@@ -44,10 +43,10 @@ stop:
 }
 
 /// A temporary folder with the campaign `c.yaml` (and its start file).
-fn campaign_dir(extra_stage: &str) -> tempfile::TempDir {
+fn campaign_dir() -> tempfile::TempDir {
     let d = tempfile::tempdir().unwrap_or_else(|e| panic!("tempdir: {e}"));
     write(&d.path().join("x0.txt"), "0\n");
-    write(&d.path().join("c.yaml"), &campaign_text(extra_stage));
+    write(&d.path().join("c.yaml"), &campaign_text());
     d
 }
 
@@ -74,7 +73,7 @@ fn stderr(o: &Output) -> String {
 
 /// The record of an undisturbed run of the base campaign (computed once per test).
 fn reference() -> Record {
-    let d = campaign_dir("");
+    let d = campaign_dir();
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert_eq!(code(&o), Some(0), "{}", shown(&o));
     record(&ws_of(d.path()))
@@ -209,7 +208,7 @@ fn skip_isolation(what: &str) {
 
 fn signal_row(signal: i32, name: &str) {
     let reference = reference();
-    let d = campaign_dir("");
+    let d = campaign_dir();
     let ws = ws_of(d.path());
     let (status, id) = interrupt_while_running(d.path(), signal, &[]);
     assert_eq!(status, Some(4), "{name}: exit code 4 (interrupted)");
@@ -264,8 +263,8 @@ fn sighup_ends_children_completes_records_and_exits_4() {
 fn a_child_that_ignores_sigterm_is_killed_after_the_grace_period() {
     // The stage ignores TERM (an ignored signal stays ignored across exec, so `sleep` does
     // too) and outlives its time limit: only SIGKILL can end it.
-    let d = campaign_dir("");
-    let text = campaign_text("").replace(
+    let d = campaign_dir();
+    let text = campaign_text().replace(
         "if [ $RONDO_ITERATION -ge 3 ] && [ -e ../../../hold ]; then sleep 30; fi;",
         "trap \"\" TERM; sleep 300;",
     );
@@ -287,8 +286,8 @@ fn grandchildren_and_setsid_children_are_ended_with_the_attempt() {
     // The stage leaves two background sleeps in its group and one in a session of its own
     // (setsid), then exits 0: all three carry the workspace's tag and are ended before the
     // attempt is judged by its outputs.
-    let d = campaign_dir("");
-    let text = campaign_text("").replace(
+    let d = campaign_dir();
+    let text = campaign_text().replace(
         "if [ $RONDO_ITERATION -ge 3 ] && [ -e ../../../hold ]; then sleep 30; fi;",
         "sleep 300 & sleep 300 & setsid sleep 300 & sleep 0.2;",
     );
@@ -319,12 +318,12 @@ fn outputs_that_are_links_fifos_or_devices_are_refused_without_blocking() {
             eprintln!("device row: mknod needs root; the other rows ran");
             continue;
         }
-        let d = campaign_dir("");
-        let text = campaign_text("").replace(
+        let d = campaign_dir();
+        let text = campaign_text().replace(
             r#"x=$(cat "$1"); y=$(( (x + $2) / 2 )); echo $y > x.txt; echo "{\"x\": $y}" > metrics.json;"#,
             &format!("{make};"),
         );
-        assert_ne!(text, campaign_text(""), "{what}: the stage was rewritten");
+        assert_ne!(text, campaign_text(), "{what}: the stage was rewritten");
         write(&d.path().join("c.yaml"), &text);
         let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
         assert_eq!(code(&o), Some(3), "{what}: the points fail: {}", shown(&o));
@@ -355,8 +354,8 @@ fn outputs_that_are_links_fifos_or_devices_are_refused_without_blocking() {
 #[test]
 fn a_stage_flooding_stdout_keeps_a_capped_log_and_is_judged_by_its_outputs() {
     // 2 GiB on stdout; the kept log is the first and the last 8 MiB with a line between.
-    let d = campaign_dir("");
-    let text = campaign_text("").replace(
+    let d = campaign_dir();
+    let text = campaign_text().replace(
         "if [ $RONDO_ITERATION -ge 3 ] && [ -e ../../../hold ]; then sleep 30; fi;",
         "yes | head -c 2147483648; echo; echo the-last-line;",
     );
@@ -403,7 +402,7 @@ fn a_stage_flooding_stdout_keeps_a_capped_log_and_is_judged_by_its_outputs() {
 
 /// A workspace interrupted (SIGTERM) after a few successes, with work left.
 fn interrupted_workspace() -> (tempfile::TempDir, PathBuf) {
-    let d = campaign_dir("");
+    let d = campaign_dir();
     let (status, _) = interrupt_while_running(d.path(), libc::SIGTERM, &[]);
     assert_eq!(status, Some(4));
     std::fs::remove_file(d.path().join("hold")).unwrap_or_else(|e| panic!("{e}"));
@@ -632,7 +631,7 @@ fn a_clock_that_jumps_backwards_between_runs_changes_no_number_nor_order() {
         return;
     }
     let reference = reference();
-    let d = campaign_dir("");
+    let d = campaign_dir();
     let ws = ws_of(d.path());
     let clock = |offset: &'static str| {
         [
@@ -700,7 +699,7 @@ fn a_clock_that_jumps_backwards_between_runs_changes_no_number_nor_order() {
 #[test]
 fn workspace_files_follow_the_umask_and_are_never_world_writable() {
     for mask in ["022", "077"] {
-        let d = campaign_dir("");
+        let d = campaign_dir();
         let script = format!("umask {mask} && exec \"$@\"");
         let o = Command::new("/bin/sh")
             .args(["-c", &script, "sh"])
@@ -732,7 +731,7 @@ fn workspace_files_follow_the_umask_and_are_never_world_writable() {
 
 #[test]
 fn secrets_in_the_environment_never_reach_the_records_nor_exports() {
-    let d = campaign_dir("");
+    let d = campaign_dir();
     let o = Command::new(rondo())
         .args(["run", "c.yaml", "-q"])
         .current_dir(d.path())
