@@ -18,11 +18,10 @@ use common::*;
 /// takes 11 iterations, a = 64 seven). From iteration 3 on, the stage sleeps 30 s while
 /// the file `hold` exists beside the campaign, so a test can catch it running.
 fn campaign_text() -> String {
-    format!(
-        r#"campaign: faults
+    r#"campaign: faults
 about: test campaign (not physics)
 programs:
-  sh: {{ path: /bin/sh }}
+  sh: { path: /bin/sh }
 sweep:
   product:
     a: [1024, 64]
@@ -30,16 +29,16 @@ start:
   x: x0.txt
 cycle:
   s:
-    run: [sh, -c, 'if [ $RONDO_ITERATION -ge 3 ] && [ -e ../../../hold ]; then sleep 30; fi; x=$(cat "$1"); y=$(( (x + $2) / 2 )); echo $y > x.txt; echo "{{\"x\": $y}}" > metrics.json; echo "halved."', sh, "{{{{input:x}}}}", "{{{{param:a}}}}"]
-    inputs: {{ x: {{ previous: s.x, initially: start.x }} }}
-    outputs: {{ x: x.txt }}
+    run: [sh, -c, 'if [ $RONDO_ITERATION -ge 3 ] && [ -e ../../../hold ]; then sleep 30; fi; x=$(cat "$1"); y=$(( (x + $2) / 2 )); echo $y > x.txt; echo "{\"x\": $y}" > metrics.json; echo "halved."', sh, "{{input:x}}", "{{param:a}}"]
+    inputs: { x: { previous: s.x, initially: start.x } }
+    outputs: { x: x.txt }
     metrics: [x]
 stop:
   when:
-    - {{ metric: s.x, change-below: 0.5, for: 1 }}
+    - { metric: s.x, change-below: 0.5, for: 1 }
   max-iterations: 20
 "#
-    )
+    .to_string()
 }
 
 /// A temporary folder with the campaign `c.yaml` (and its start file).
@@ -158,14 +157,14 @@ fn strings_ro(ws: &Path, sql: &'static str) -> Vec<String> {
 
 /// Run the base campaign (with the extra environment `env`, e.g. a fake clock) with the `hold`
 /// file present, so that every point runs two iterations and then sleeps in its third;
-/// wait for a sleeping child and send `signal` to rondo (only to rondo: its children have
+/// wait for both sleeping children and send `signal` to rondo (only to rondo: its children have
 /// their own process groups). Returns rondo's exit code and the workspace id; `hold` stays.
 fn interrupt_while_running(dir: &Path, signal: i32, env: &[(&str, &str)]) -> (Option<i32>, String) {
     let ws = ws_of(dir);
     write(&dir.join("hold"), "");
     let mut child = Command::new(rondo())
         .envs(env.iter().copied())
-        .args(["run", "c.yaml", "-q"])
+        .args(["run", "c.yaml", "-q", "--max-running", "2"])
         .current_dir(dir)
         .env("PATH", path_with_binaries())
         .stdout(Stdio::null())
@@ -173,12 +172,17 @@ fn interrupt_while_running(dir: &Path, signal: i32, env: &[(&str, &str)]) -> (Op
         .spawn()
         .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
     let id = workspace_id_when_ready(&ws);
-    // A child that saw `hold` sleeps (the shell's `sleep 30` carries the workspace's tag).
-    wait_for("a sleeping child", || {
-        processes_of_workspace(&id).iter().any(|pid| {
-            std::fs::read_to_string(format!("/proc/{pid}/cmdline"))
-                .is_ok_and(|c| c.starts_with("sleep\0"))
-        })
+    // Both points' third attempts saw `hold` and sleep (the shell's `sleep 30` carries the
+    // workspace's tag), so every point has two iterations behind it.
+    wait_for("both points asleep in their third iteration", || {
+        let asleep = processes_of_workspace(&id)
+            .iter()
+            .filter(|pid| {
+                std::fs::read_to_string(format!("/proc/{pid}/cmdline"))
+                    .is_ok_and(|c| c.starts_with("sleep\0"))
+            })
+            .count();
+        asleep == 2
     });
     let pid = child.id() as i32;
     // SAFETY: signalling our own child by pid; it has not been waited for, so the pid is ours.
