@@ -1,8 +1,11 @@
 //! The local executor: attempts as child processes of the orchestrator.
 //!
 //! Each attempt's program is started directly (no shell, unless the rendered argv is one)
-//! in its own process group, with null stdin, stdout/stderr written to `stdout.txt` and
-//! `stderr.txt` in its scratch directory, and the inherited environment plus the request's
+//! in its own process group, with null stdin, stdout/stderr through pipes into `stdout.txt`
+//! and `stderr.txt` in its scratch directory (each capped to its first and last 8 MiB, see
+//! [`logs`]; when the orchestrator dies the pipes close, and a child's next write to them
+//! ends it with SIGPIPE, as the next orchestrator would end it), and the inherited
+//! environment plus the request's
 //! variables plus `RONDO_WORKSPACE_ID` and `RONDO_ATTEMPT_ID`. Those two variables are how a
 //! later orchestrator recognises the attempt's processes after a crash (see [`sys`]).
 //!
@@ -16,6 +19,7 @@
 //!
 //! Linux only (`/proc`).
 
+pub mod logs;
 pub mod sys;
 
 use std::collections::{BTreeMap, HashMap};
@@ -47,6 +51,10 @@ const POLL: Duration = Duration::from_millis(20);
 /// How long to wait for processes to disappear after SIGKILL before giving up (they may be
 /// in uninterruptible sleep); a warning is logged then.
 const AFTER_KILL: Duration = Duration::from_secs(5);
+
+/// How long the logs may still be read after the attempt's processes are gone: a process
+/// that left the attempt's group and dropped its environment (a daemon) may hold a pipe.
+const LOG_DRAIN: Duration = Duration::from_secs(2);
 
 /// Reason recorded for an orphan that a reattach ended.
 pub const ORPHAN_ENDED: &str = "orphaned by a previous orchestrator; ended";
@@ -273,7 +281,46 @@ struct Supervised {
     stop: mpsc::UnboundedReceiver<Stop>,
     started_at: chrono::DateTime<Utc>,
     shared: Arc<Shared>,
+    logs: Vec<KeptLog>,
     _permit: OwnedSemaphorePermit,
+}
+
+/// One stream's copying task and the switch that ends it.
+struct KeptLog {
+    task: JoinHandle<std::io::Result<u64>>,
+    stop: tokio::sync::oneshot::Sender<()>,
+}
+
+impl KeptLog {
+    fn start(
+        pipe: Option<impl tokio::io::AsyncRead + Unpin + Send + 'static>,
+        file: File,
+    ) -> Option<KeptLog> {
+        let pipe = pipe?;
+        let (stop, rx) = tokio::sync::oneshot::channel();
+        let task = tokio::spawn(logs::keep_log(pipe, file, logs::log_keep(), rx));
+        Some(KeptLog { task, stop })
+    }
+
+    /// Wait for the stream to end (up to [`LOG_DRAIN`]), then stop reading and write the
+    /// kept tail.
+    async fn finish(self, attempt_id: i64) {
+        let KeptLog { mut task, stop } = self;
+        let done = match tokio::time::timeout(LOG_DRAIN, &mut task).await {
+            Ok(r) => r,
+            Err(_) => {
+                tracing::warn!(
+                    attempt_id,
+                    "a process outside the attempt still holds its log open; log cut here"
+                );
+                let _ = stop.send(());
+                task.await
+            }
+        };
+        if let Ok(Err(err)) = done {
+            tracing::warn!(attempt_id, %err, "could not write the attempt's log");
+        }
+    }
 }
 
 /// End our own child's group: TERM, wait for the leader up to the grace period, KILL.
@@ -337,6 +384,9 @@ async fn supervise(mut s: Supervised) {
             );
         }
         terminate_attempt(ws, s.attempt_id, Some(s.pgid), grace).await;
+    }
+    for log in std::mem::take(&mut s.logs) {
+        log.finish(s.attempt_id).await;
     }
     let outcome = match (ended, status) {
         (Some(o), _) => o,
@@ -405,8 +455,8 @@ impl Executor for LocalExecutor {
         cmd.args(&req.argv[1..])
             .current_dir(&req.workdir)
             .stdin(Stdio::null())
-            .stdout(Stdio::from(stdout))
-            .stderr(Stdio::from(stderr))
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
             .envs(&env)
             .process_group(0)
             .kill_on_drop(false);
@@ -427,7 +477,7 @@ impl Executor for LocalExecutor {
                 req.attempt_id
             )));
         }
-        let child = match cmd.spawn() {
+        let mut child = match cmd.spawn() {
             Ok(child) => child,
             Err(err) => {
                 drop(running);
@@ -447,6 +497,13 @@ impl Executor for LocalExecutor {
             )));
         };
         let pgid = pid as i32;
+        let logs = [
+            KeptLog::start(child.stdout.take(), stdout),
+            KeptLog::start(child.stderr.take(), stderr),
+        ]
+        .into_iter()
+        .flatten()
+        .collect();
         let (stop_tx, stop_rx) = mpsc::unbounded_channel();
         let task = tokio::spawn(supervise(Supervised {
             child,
@@ -457,6 +514,7 @@ impl Executor for LocalExecutor {
             stop: stop_rx,
             started_at,
             shared: Arc::clone(&self.shared),
+            logs,
             _permit: permit,
         }));
         running.insert(

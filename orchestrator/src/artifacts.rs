@@ -36,6 +36,21 @@ pub enum Placement {
 #[derive(Debug, Clone)]
 pub struct ArtifactStore {
     root: PathBuf,
+    /// Artifacts whose content was hashed against their name in this process, with the
+    /// (size, mtime, inode) seen then: a later use re-hashes only when one of them changed.
+    verified: std::sync::Arc<std::sync::Mutex<std::collections::HashMap<String, FileStamp>>>,
+}
+
+/// What a cheap `stat` tells of a stored file: size, modification time (ns), inode.
+type FileStamp = (u64, i128, u64);
+
+fn stamp_of(m: &fs::Metadata) -> FileStamp {
+    use std::os::unix::fs::MetadataExt;
+    (
+        m.len(),
+        i128::from(m.mtime()) * 1_000_000_000 + i128::from(m.mtime_nsec()),
+        m.ino(),
+    )
 }
 
 /// BLAKE3 of a file as lowercase hex, with its size: streamed for small files, over a
@@ -68,6 +83,7 @@ impl ArtifactStore {
         fs::create_dir_all(root)?;
         Ok(ArtifactStore {
             root: root.to_path_buf(),
+            verified: Default::default(),
         })
     }
 
@@ -79,6 +95,8 @@ impl ArtifactStore {
 
     /// Copy a file into the store; returns (hash, size). Existing content is not rewritten.
     pub fn put_file(&self, src: &Path) -> io::Result<(String, u64)> {
+        // A copy follows a symbolic link (a start file may be one), never into a FIFO.
+        regular_file(&fs::canonicalize(src)?)?;
         let (hash, size) = hash_file(src)?;
         let dest = self.path_of(&hash);
         if dest.is_file() {
@@ -86,7 +104,8 @@ impl ArtifactStore {
         }
         let dir = dest.parent().unwrap_or(&self.root);
         fs::create_dir_all(dir)?;
-        copy_durably(src, &dest, &hash, None)?;
+        copy_durably(src, &dest, &hash, true)?;
+        self.remember(&hash, &dest);
         Ok((hash, size))
     }
 
@@ -97,6 +116,7 @@ impl ArtifactStore {
     /// the outputs in place for the attempt to be adopted). Across file systems, or where
     /// links are refused, a copy that is fsynced. Content already stored is not rewritten.
     pub fn put_file_linked(&self, src: &Path) -> io::Result<(String, u64)> {
+        regular_file(src)?;
         let (hash, size) = hash_file(src)?;
         let dest = self.path_of(&hash);
         if dest.is_file() {
@@ -105,13 +125,14 @@ impl ArtifactStore {
         let dir = dest.parent().unwrap_or(&self.root);
         fs::create_dir_all(dir)?;
         File::open(src)?.sync_all()?;
-        fs::set_permissions(src, fs::Permissions::from_mode(0o444))?;
+        read_only(src)?;
         match fs::hard_link(src, &dest) {
             Ok(()) => {}
             Err(e) if e.kind() == io::ErrorKind::AlreadyExists => {}
-            Err(_) => copy_durably(src, &dest, &hash, Some(0o444))?,
+            Err(_) => copy_durably(src, &dest, &hash, true)?,
         }
         sync_dir(dir)?;
+        self.remember(&hash, &dest);
         Ok((hash, size))
     }
 
@@ -120,15 +141,20 @@ impl ArtifactStore {
     /// `private` input is always the stage's own writable file: a clone or a copy. As root,
     /// read-only permissions do not stop a write, so a root process never gets a hard link:
     /// a stage that rewrote its input in place would change the stored content.
+    ///
+    /// The stored file is checked against its name first ([`ArtifactStore::verify`]), so a
+    /// deleted, truncated or changed artifact is refused (`InvalidData`, naming the file)
+    /// and never placed.
     pub fn place(&self, hash: &str, dest: &Path, private: bool) -> io::Result<Placement> {
         let src = self.path_of(hash);
+        self.verify(hash)?;
         // SAFETY: geteuid has no preconditions and cannot fail.
         let root = unsafe { libc::geteuid() } == 0;
         if !private && !root {
             let m = fs::metadata(&src)?;
             if m.permissions().mode() & 0o222 != 0 {
                 // Stored by an older rondo: make it read-only before sharing its inode.
-                fs::set_permissions(&src, fs::Permissions::from_mode(0o444))?;
+                read_only(&src)?;
             }
             if fs::hard_link(&src, dest).is_ok() {
                 return Ok(Placement::Linked);
@@ -141,9 +167,70 @@ impl ArtifactStore {
             fs::copy(&src, dest)?;
             Placement::Copied
         };
-        let mode = if private { 0o644 } else { 0o444 };
+        // The stored file's read bits (what the umask gave it), plus the owner's write bit
+        // for a private copy: never more than the umask allowed.
+        let stored = fs::metadata(&src)?.permissions().mode() & 0o555;
+        let mode = if private { stored | 0o200 } else { stored };
         fs::set_permissions(dest, fs::Permissions::from_mode(mode))?;
         Ok(placed)
+    }
+
+    /// Check that the stored file of `hash` exists, is a regular file and hashes to its
+    /// name. The full hash is computed on the first use in this process (a file this
+    /// process stored counts as used: it was hashed as it was stored); later uses compare
+    /// a `stat` (size, modification time in ns, inode) with the one seen then and hash again
+    /// only when it differs. Caught: a deleted, replaced, truncated or rewritten file, and
+    /// any change since the last check that moved its size or modification time. Not caught
+    /// between two checks of one run: a rewrite of the same size that also restores the
+    /// modification time (a deliberate forgery, not an accident).
+    pub fn verify(&self, hash: &str) -> io::Result<()> {
+        let src = self.path_of(hash);
+        let damaged = |what: String| {
+            io::Error::new(
+                io::ErrorKind::InvalidData,
+                format!(
+                    "artifact {hash} in the store ({}) {what}; the workspace no longer holds \
+                     the content its records name, and rondo will not use it: put the file \
+                     back from a backup or a copy of the workspace (`rondo extract` of a copy), \
+                     or run the campaign again in a new workspace (--workspace)",
+                    src.display()
+                ),
+            )
+        };
+        let m = match fs::symlink_metadata(&src) {
+            Ok(m) => m,
+            Err(e) if e.kind() == io::ErrorKind::NotFound => {
+                return Err(damaged("is missing (deleted?)".into()))
+            }
+            Err(e) => return Err(e),
+        };
+        if !m.is_file() {
+            return Err(damaged("is not a regular file".into()));
+        }
+        let stamp = stamp_of(&m);
+        let seen = || self.verified.lock().unwrap_or_else(|p| p.into_inner());
+        if seen().get(hash) == Some(&stamp) {
+            return Ok(());
+        }
+        let (got, size) = hash_file(&src)?;
+        if got != hash {
+            seen().remove(hash);
+            return Err(damaged(format!(
+                "has changed: its {size} bytes hash to {}",
+                &got[..16]
+            )));
+        }
+        seen().insert(hash.to_string(), stamp);
+        Ok(())
+    }
+
+    /// Note a file this process just stored (and hashed) as verified, so that its first
+    /// placement does not read it again.
+    fn remember(&self, hash: &str, stored: &Path) {
+        if let Ok(m) = fs::symlink_metadata(stored) {
+            let mut seen = self.verified.lock().unwrap_or_else(|p| p.into_inner());
+            seen.insert(hash.to_string(), stamp_of(&m));
+        }
     }
 
     /// Store bytes; returns (hash, size).
@@ -163,17 +250,49 @@ impl ArtifactStore {
     }
 }
 
-/// Copy `src` to `dest` through a temporary name beside it (synced, given `mode` if any,
-/// then renamed), so a crash leaves either no file or a complete one.
-fn copy_durably(src: &Path, dest: &Path, hash: &str, mode: Option<u32>) -> io::Result<()> {
+/// Refuse, without opening it, anything at `path` that is not a regular file (a symbolic
+/// link, a FIFO whose opening would block, a device, a socket, a folder).
+fn regular_file(path: &Path) -> io::Result<()> {
+    if fs::symlink_metadata(path)?.is_file() {
+        return Ok(());
+    }
+    Err(io::Error::new(
+        io::ErrorKind::InvalidInput,
+        format!(
+            "{} is not a regular file (a link, FIFO, device or folder): only regular files \
+             enter the store",
+            path.display()
+        ),
+    ))
+}
+
+/// Copy `src` to `dest` through a temporary name beside it (synced, made read-only when
+/// asked, then renamed), so a crash leaves either no file or a complete one. The copy is
+/// created under the process's umask (not with the source's mode: a start file may be
+/// world-writable), and never gains a permission the umask takes away.
+fn copy_durably(src: &Path, dest: &Path, hash: &str, ro: bool) -> io::Result<()> {
     let dir = dest.parent().unwrap_or(Path::new("."));
     let tmp = dir.join(format!(".tmp-{}-{}", std::process::id(), &hash[..16]));
-    fs::copy(src, &tmp)?;
-    File::open(&tmp)?.sync_all()?;
-    if let Some(m) = mode {
-        fs::set_permissions(&tmp, fs::Permissions::from_mode(m))?;
+    let _ = fs::remove_file(&tmp);
+    {
+        let mut from = File::open(src)?;
+        let mut to = fs::OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&tmp)?;
+        io::copy(&mut from, &mut to)?;
+        to.sync_all()?;
+    }
+    if ro {
+        read_only(&tmp)?;
     }
     fs::rename(&tmp, dest)
+}
+
+/// Take the write bits off a file, keeping its read bits (those its creation's umask left).
+fn read_only(path: &Path) -> io::Result<()> {
+    let mode = fs::metadata(path)?.permissions().mode() & 0o7555;
+    fs::set_permissions(path, fs::Permissions::from_mode(mode))
 }
 
 /// fsync a folder, so that a rename into it is durable.

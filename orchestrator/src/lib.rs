@@ -8,6 +8,7 @@ pub mod artifacts;
 pub mod builtins;
 pub mod cli;
 pub mod engine;
+pub mod environment;
 pub mod export;
 pub mod fsinfo;
 pub mod hooks;

@@ -58,12 +58,32 @@ pub struct Metric {
 /// Check one declared output file.
 pub fn check_output(path: &Path, role: &str, allow_nonfinite: bool) -> Result<(), Invalid> {
     let shown = path.display();
-    match std::fs::metadata(path) {
+    // `symlink_metadata`: a symbolic link is refused as it is, never followed (its target
+    // may be outside the scratch folder, or a FIFO whose opening would block); nothing that
+    // is not a regular file is ever opened.
+    match std::fs::symlink_metadata(path) {
         Ok(m) if m.is_file() => {}
-        Ok(_) => {
-            return Err(Invalid::missing(format!(
-                "output `{role}` ({shown}) is not a regular file"
-            )))
+        Ok(m) => {
+            let ft = m.file_type();
+            use std::os::unix::fs::FileTypeExt;
+            let what = if ft.is_symlink() {
+                "a symbolic link"
+            } else if ft.is_fifo() {
+                "a FIFO (named pipe)"
+            } else if ft.is_char_device() || ft.is_block_device() {
+                "a device file"
+            } else if ft.is_socket() {
+                "a socket"
+            } else if ft.is_dir() {
+                "a folder"
+            } else {
+                "not a regular file"
+            };
+            return Err(Invalid::malformed(format!(
+                "output `{role}` ({shown}) is {what}, not a regular file: rondo stores only \
+                 regular files and does not open or follow anything else; make the stage write \
+                 the file itself (copy it rather than link it)"
+            )));
         }
         Err(_) => {
             return Err(Invalid::missing(format!(
@@ -119,6 +139,10 @@ pub fn read_metrics(
 ) -> Result<Vec<Metric>, Invalid> {
     let path = dir.join(METRICS_FILE);
     let shown = path.display();
+    // Never open what is not a regular file (a FIFO would block the reader).
+    if std::fs::symlink_metadata(&path).is_ok_and(|m| !m.is_file()) {
+        return check_output(&path, METRICS_FILE, allow_nonfinite).map(|()| Vec::new());
+    }
     let text = match std::fs::read_to_string(&path) {
         Ok(t) => t,
         Err(_) if required.is_empty() => return Ok(Vec::new()),

@@ -14,7 +14,7 @@ pub const EXIT_ERROR: u8 = 1;
 pub const EXIT_BAD_INPUT: u8 = 2;
 /// Exit code: finished, but some point failed, hit its iteration cap or was cancelled.
 pub const EXIT_INCOMPLETE: u8 = 3;
-/// Exit code: stopped by SIGINT/SIGTERM; `rondo run` again continues.
+/// Exit code: stopped by SIGINT/SIGTERM/SIGHUP; `rondo run` again continues.
 pub const EXIT_INTERRUPTED: u8 = 4;
 
 /// An error caused by the user's input (exit code 2); defined with the campaign model so

@@ -124,6 +124,7 @@ impl Engine<'_> {
             seed: uses_seed.then(|| seed.to_string()),
             created_at: store::now(),
             host: local_host,
+            env_json: Some(self.env_json.clone()),
             inputs: inputs
                 .iter()
                 .map(|(role, hash, _)| (role.clone(), hash.clone()))

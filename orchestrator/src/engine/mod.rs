@@ -392,6 +392,8 @@ struct Engine<'a> {
     storing: std::collections::HashSet<i64>,
     /// The campaign's hooks (run beside the loop, never waited for in it).
     hooks: crate::hooks::Hooks,
+    /// The allow-listed environment recorded with every attempt of this run.
+    env_json: String,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -452,6 +454,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         next_id: 0,
         workspace_id: ws.workspace_id.clone(),
         scratch: scratch::Pool::open(&paths_scratch)?,
+        env_json: crate::environment::recorded_json(),
         checked_tx,
         policies: crate::retention::Policies::of(campaign),
         storing: Default::default(),
@@ -559,6 +562,9 @@ impl Engine<'_> {
             .context("cannot install the SIGINT handler")?;
         let mut sigterm = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())
             .context("cannot install the SIGTERM handler")?;
+        // A closed terminal (SIGHUP) stops like SIGTERM: children ended, records complete.
+        let mut sighup = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::hangup())
+            .context("cannot install the SIGHUP handler")?;
         // Inside an allocation, Slurm's warning signal (USR1) means: stop, and continue in
         // the next job of the chain. Installed early: USR1 would otherwise end the process.
         let mut usr1 = match &self.opts.allocation {
@@ -593,6 +599,7 @@ impl Engine<'_> {
                 },
                 _ = sigint.recv() => { interrupted = true; break; }
                 _ = sigterm.recv() => { interrupted = true; break; }
+                _ = sighup.recv() => { interrupted = true; break; }
                 _ = async {
                     match usr1.as_mut() {
                         Some(s) => { s.recv().await; }

@@ -27,6 +27,9 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
             );
         }
     }
+    refuse_read_only(&paths.root)?;
+    refuse_lost_database(paths)?;
+    store::refuse_damaged(&paths.db).await?;
     std::fs::create_dir_all(&paths.root)
         .with_context(|| format!("{}: cannot create the workspace", paths.root.display()))?;
     let lock = store::lock(&paths.root)?;
@@ -108,6 +111,46 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
         workspace_id,
         _lock: lock,
     })
+}
+
+/// An existing workspace folder that cannot be written (a read-only mount, another user's
+/// folder) is refused before anything is tried, with what to do instead.
+fn refuse_read_only(root: &Path) -> Result<()> {
+    if !root.is_dir() || store::writable(root) {
+        return Ok(());
+    }
+    let why = std::io::Error::last_os_error();
+    bail!(
+        "{}: the workspace cannot be written here ({why}; a read-only mount, or a folder of \
+         another user): `rondo run` records every step in it. Run it where the workspace is \
+         writable, or copy it (cp -a) to a writable place and run with --workspace COPY; \
+         `rondo status`, `trace`, `diff` and `export` read it as it is",
+        root.display()
+    )
+}
+
+/// A workspace whose artifact store holds files but whose `rondo.db` is gone has lost its
+/// records: starting afresh there would record a second campaign over the first one's
+/// artifacts, so it is refused before anything is written.
+fn refuse_lost_database(paths: &Paths) -> Result<()> {
+    if paths.db.exists() {
+        return Ok(());
+    }
+    let stored = std::fs::read_dir(&paths.store)
+        .map(|mut d| d.next().is_some())
+        .unwrap_or(false);
+    if stored {
+        bail!(
+            "{}: the workspace database {} is missing but its artifact store ({}) is not \
+             empty: the records of this workspace are lost (the store cannot be indexed back). \
+             Restore rondo.db from a backup, or run the campaign in a new workspace \
+             (--workspace NEW); rondo wrote nothing here",
+            paths.root.display(),
+            paths.db.display(),
+            paths.store.display()
+        );
+    }
+    Ok(())
 }
 
 /// An open, locked workspace.

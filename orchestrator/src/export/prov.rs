@@ -239,6 +239,9 @@ impl Doc {
         if let Some(x) = r.exit_status {
             o.insert("rondo:exitStatus".into(), json!(x));
         }
+        for (k, v) in &r.environment {
+            o.insert(format!("rondo:env.{}", local(k)), json!(v));
+        }
         for (n, m) in &r.metrics {
             o.insert(format!("rondo:metric.{}", local(n)), json!(m.value));
             if let Some(e) = m.error {

@@ -89,6 +89,9 @@ pub struct AttemptRecord {
     pub seed: Option<String>,
     /// rondo version that ran it.
     pub rondo_version: String,
+    /// The allow-listed environment passed to it (docs/provenance.md), name → value.
+    #[serde(skip_serializing_if = "BTreeMap::is_empty")]
+    pub environment: BTreeMap<String, String>,
     /// Input role → artifact hash.
     pub inputs: BTreeMap<String, String>,
     /// Output role → artifact hash.
@@ -166,6 +169,10 @@ pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
         parameters: opt_json(&r.parameters_json, "parameters_json", id)?,
         seed: r.seed,
         rondo_version: r.rondo_version,
+        environment: match &r.env_json {
+            Some(e) => opt_json(e, "env_json", id)?,
+            None => BTreeMap::new(),
+        },
         inputs: BTreeMap::new(),
         outputs: BTreeMap::new(),
         metrics: BTreeMap::new(),

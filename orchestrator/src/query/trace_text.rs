@@ -189,6 +189,14 @@ impl Lineage {
             let _ = writeln!(s, "  seed      {seed}");
         }
         let _ = writeln!(s, "  params    {}", a.parameters);
+        if !a.environment.is_empty() {
+            let env: Vec<String> = a
+                .environment
+                .iter()
+                .map(|(k, v)| format!("{k}={v}"))
+                .collect();
+            let _ = writeln!(s, "  env       {}", env.join(" "));
+        }
         for (r, h) in &a.inputs {
             let _ = writeln!(s, "  in  {r:<10} {h}");
         }

@@ -35,6 +35,8 @@ pub struct NewAttempt {
     pub seed: Option<String>,
     pub created_at: String,
     pub host: Option<String>,
+    /// The allow-listed environment passed to the attempt (`crate::environment`), JSON.
+    pub env_json: Option<String>,
     /// (role, artifact hash) of every input placed.
     pub inputs: Vec<(String, String)>,
 }
@@ -73,8 +75,8 @@ impl Script {
         self.stmt(&format!(
             "INSERT INTO attempts(id, point, iteration, stage, attempt, state, argv_json, workdir, \
              executor, program_path, program_blake3, program_unknown, program_version, \
-             parameters_json, seed, rondo_version, created_at, host) VALUES {}",
-            rows(rows_.len(), 18)
+             parameters_json, seed, rondo_version, created_at, host, env_json) VALUES {}",
+            rows(rows_.len(), 19)
         ));
         let mut inputs: Vec<(i64, String, String)> = Vec::new();
         for r in rows_ {
@@ -96,7 +98,8 @@ impl Script {
                 .bind(r.seed)
                 .bind(crate::RONDO_VERSION)
                 .bind(r.created_at)
-                .bind(r.host);
+                .bind(r.host)
+                .bind(r.env_json);
         }
         if !inputs.is_empty() {
             self.stmt(&format!(

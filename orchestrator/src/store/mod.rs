@@ -80,6 +80,13 @@ pub fn migrator() -> Migrator {
             false,
         ),
         Migration::new(
+            7,
+            "attempt env".into(),
+            MigrationType::Simple,
+            include_str!("../../migrations/0007_attempt_env.sql").into(),
+            false,
+        ),
+        Migration::new(
             8,
             "retention".into(),
             MigrationType::Simple,
@@ -441,6 +448,42 @@ pub fn writable(path: &Path) -> bool {
     };
     // SAFETY: a valid NUL-terminated path; access only reads it.
     unsafe { libc::access(c.as_ptr(), libc::W_OK) == 0 }
+}
+
+/// Refuse an existing database file that SQLite's `PRAGMA quick_check` finds damaged
+/// (every page is read, without the index cross-checks of `integrity_check`: linear in the
+/// file's size), through a read-only connection, so that nothing — not the workspace lock,
+/// not a migration — is written to a damaged workspace. An absent file passes.
+pub async fn refuse_damaged(db: &Path) -> Result<()> {
+    if !db.exists() {
+        return Ok(());
+    }
+    let opts = SqliteConnectOptions::new()
+        .filename(db)
+        .read_only(true)
+        .busy_timeout(Duration::from_secs(30));
+    let pool = SqlitePoolOptions::new()
+        .max_connections(1)
+        .connect_with(opts)
+        .await
+        .with_context(|| format!("{}: cannot open the workspace database", db.display()))?;
+    let found: Result<Vec<String>, sqlx::Error> = sqlx::query_scalar("PRAGMA quick_check")
+        .fetch_all(&pool)
+        .await;
+    pool.close().await;
+    let problems = match found {
+        Ok(rows) if rows.len() == 1 && rows[0] == "ok" => return Ok(()),
+        Ok(rows) => rows.join("; "),
+        Err(e) => e.to_string(),
+    };
+    bail!(
+        "{}: the workspace database is damaged (SQLite quick_check: {}); rondo writes nothing \
+         to it: restore rondo.db from a backup, or read what is left with `sqlite3 {} .recover` \
+         into a copy, or run the campaign again in a new workspace (--workspace)",
+        db.display(),
+        problems.chars().take(300).collect::<String>(),
+        db.display()
+    )
 }
 
 fn check_db_file(ws: &Path) -> Result<std::path::PathBuf> {

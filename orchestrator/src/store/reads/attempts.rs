@@ -51,6 +51,8 @@ pub struct AttemptRow {
     pub seed: Option<String>,
     /// rondo version.
     pub rondo_version: String,
+    /// The allow-listed environment, JSON (absent from stores made before migration 7).
+    pub env_json: Option<String>,
 }
 
 /// The row of attempt `id`; an error naming it when it is not recorded.
@@ -83,6 +85,7 @@ pub async fn attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRow> {
         program_unknown: r.try_get("program_unknown").ok().flatten(),
         seed: r.try_get("seed")?,
         rondo_version: r.try_get("rondo_version")?,
+        env_json: r.try_get("env_json").ok().flatten(),
     })
 }
 
