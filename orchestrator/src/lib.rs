@@ -10,6 +10,7 @@ pub mod cli;
 pub mod engine;
 pub mod export;
 pub mod fsinfo;
+pub mod metrics;
 pub mod progress;
 pub mod query;
 pub mod scratch;

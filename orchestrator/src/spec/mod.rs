@@ -19,13 +19,14 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, Diagnostic, EosAnalysis, Placement, PointSpec, ResolvedProgram, Rule,
-    RuleTest, Schedule, Source, SpecErrors, Stage, StageKind, FILTER_METRICS, LEGACY_ROLE,
+    BadInput, Campaign, Diagnostic, EnergyUnit, EosAnalysis, MetricSource, Placement, PointSpec,
+    ResolvedProgram, Rule, RuleTest, Schedule, Source, SourceKind, SpecErrors, Stage, StageKind,
+    FILTER_METRICS, LEGACY_ROLE,
 };
 pub use raw::{
     AnalysisSpec, BuiltinSettings, CampaignFile, Combine, Compare, Defaults, EosModelName, EosSpec,
-    FilterSettings, InputSpec, MixMethod, MixSettings, OrderedMap, PreviousInput, Program,
-    RuleSpec, RunSpec, Scalar, ScheduleSpec, StageSpec, StopSpec, Sweep,
+    FilterSettings, InputSpec, MetricSourceSpec, MixMethod, MixSettings, OrderedMap, OutputSpec,
+    PreviousInput, Program, RuleSpec, RunSpec, Scalar, ScheduleSpec, StageSpec, StopSpec, Sweep,
 };
 pub use validate::{is_executable, parse_duration, resolve_program};
 

@@ -75,6 +75,7 @@ impl Validator<'_> {
         let (sname, st, at, inputs) = (s.name, s.spec, s.at, s.inputs);
         let legacy = inputs.len() == 1 && inputs[0].0 == LEGACY_ROLE;
         for (ok, ov) in &st.outputs.0 {
+            let ov = ov.file();
             if !(ov.ends_with(".npy") || ov.ends_with(".json")) {
                 self.push(
                     loc(ok),

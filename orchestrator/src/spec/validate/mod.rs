@@ -11,6 +11,7 @@
 mod analysis;
 mod builtins;
 mod commands;
+mod metric_sources;
 mod programs;
 mod resources;
 mod rules;

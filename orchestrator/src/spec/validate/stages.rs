@@ -88,9 +88,11 @@ impl Validator<'_> {
         let outputs: Vec<(String, String)> = st
             .outputs
             .iter()
-            .map(|(k, v)| (k.to_string(), v.clone()))
+            .map(|(k, v)| (k.to_string(), v.file().to_string()))
             .collect();
         self.output_names(st);
+        let hdf5_outputs = self.hdf5_outputs(st);
+        let metric_sources = self.metric_sources(&sname, st);
         let mut required: BTreeSet<String> = st.metrics.iter().cloned().collect();
         for (s, m) in stop_metrics {
             if *s == sname {
@@ -133,6 +135,8 @@ impl Validator<'_> {
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
             placement,
+            metric_sources,
+            hdf5_outputs,
         })
     }
 
@@ -285,6 +289,7 @@ impl Validator<'_> {
     /// Output file names are plain names in the scratch directory.
     fn output_names(&mut self, st: &StageSpec) {
         for (ok, ov) in &st.outputs.0 {
+            let ov = ov.file();
             if ov.is_empty() || ov.contains('/') || ov == "metrics.json" || ov.starts_with('.') {
                 self.push(
                     loc(ok),
