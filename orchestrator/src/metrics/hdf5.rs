@@ -70,9 +70,11 @@ pub(super) fn read_dataset(
     let shape = ds.shape();
     let flat = match index {
         None if ds.size() == 1 => 0,
-        None => return Err(malformed(format!(
+        None => {
+            return Err(malformed(format!(
             "{shown}: `{ds_path}` has shape {shape:?}, not one element ({who}); add `index: [...]`"
-        ))),
+        )))
+        }
         Some(ix) => flat_index(&shape, ix).ok_or_else(|| {
             missing(format!(
                 "{shown}: index {ix:?} is outside `{ds_path}` of shape {shape:?} ({who})"
