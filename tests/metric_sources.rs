@@ -49,8 +49,9 @@ fn archive(p: &Path, sigma: &[f64]) -> h5::Result<()> {
 }
 
 /// A one-stage campaign in `dir` running `sh step.sh` (the script is `script`), with the
-/// stage's extra keys `stage` (indented four spaces) and the sweep `sweep`.
-fn campaign(dir: &Path, script: &str, stage: &str, sweep: &str) -> PathBuf {
+/// stage's extra keys `stage` (indented four spaces), the sweep `sweep` and the stopping
+/// rules `when` (one iteration: a point whose stage succeeds ends `capped`, exit status 3).
+fn campaign(dir: &Path, script: &str, stage: &str, sweep: &str, when: &str) -> PathBuf {
     write(&dir.join("step.sh"), script);
     let text = format!(
         "campaign: sources
@@ -59,6 +60,7 @@ about: test campaign (not physics)
   s:
     run: [/bin/sh, {step}, \"{{{{param:mode}}}}\"]
 {stage}stop:
+  when: [{when}]
   max-iterations: 1
 ",
         step = dir.join("step.sh").display(),
@@ -106,10 +108,13 @@ cp {made} imp.h5
       sigma_10: { hdf5: imp.h5, dataset: /impurity/sigma, index: [1, 0] }
       mu: { hdf5: imp, attribute: '/impurity@mu', unit: eV }
 ";
-    campaign(d.path(), &script, stage, "parameters: { mode: ok }\n");
+    // the rule makes `energy` a required metric: read-metrics provides it, not metrics.json
+    let rule = "{ metric: s.energy, change-below: 1.0e-9 }";
+    campaign(d.path(), &script, stage, "parameters: { mode: ok }\n", rule);
     let o = run_rondo(d.path(), &["run", "c.yaml"]);
-    assert!(o.status.success(), "{}", shown(&o));
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
     let p = points(d.path());
+    assert_eq!(p[0]["state"], "capped", "{p:?}");
     let m = &p[0]["metrics"];
     let get = |k: &str| {
         m[k].as_f64()
@@ -141,7 +146,7 @@ fn a_pattern_that_matches_nothing_fails_the_point_naming_file_pattern_and_tail()
     let stage = "    read-metrics:
       energy: { file: scf.log, pattern: 'total energy = (\\S+) Ry', unit: Ry }
 ";
-    campaign(d.path(), script, stage, "parameters: { mode: ok }\n");
+    campaign(d.path(), script, stage, "parameters: { mode: ok }\n", "");
     let o = run_rondo(d.path(), &["run", "c.yaml"]);
     assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
     let p = points(d.path());
@@ -180,6 +185,7 @@ esac
         &script,
         stage,
         "sweep:\n  product:\n    mode: [text, lacks]\n",
+        "",
     );
     let o = run_rondo(dp, &["run", "c.yaml"]);
     assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
@@ -214,9 +220,16 @@ esac
     let stage = "    outputs:
       imp: { file: imp.h5, hdf5: [/impurity/sigma, /impurity/n_f] }
 ";
-    campaign(d2.path(), &script, stage, "parameters: { mode: good }\n");
+    campaign(
+        d2.path(),
+        &script,
+        stage,
+        "parameters: { mode: good }\n",
+        "",
+    );
     let o = run_rondo(d2.path(), &["run", "c.yaml"]);
-    assert!(o.status.success(), "{}", shown(&o));
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    assert_eq!(points(d2.path())[0]["state"], "capped");
     let stored: i64 = query(&d2.path().join("c.rondo"), |pool| {
         Box::pin(async move {
             sqlx::query("SELECT count(*) FROM attempt_outputs")

@@ -20,7 +20,7 @@ pub(super) fn read(path: &Path, metric: &str, regex: &Regex, first: bool) -> Res
     let caps = if first { all.next() } else { all.last() };
     let Some(caps) = caps else {
         return Err(missing(format!(
-            "{}: the pattern `{}` of metric `{metric}` matches nothing; the file ends with:\n{}",
+            "{}: the pattern `{}` of metric `{metric}` matches nothing; its last lines: {}",
             path.display(),
             regex.as_str(),
             tail(&text)
@@ -51,17 +51,19 @@ fn parse_number(s: &str) -> Option<f64> {
         .or_else(|| s.replace(['D', 'd'], "e").parse::<f64>().ok())
 }
 
-/// The last lines of a text, indented, or a note that it is empty.
+/// Characters of the tail shown at most.
+const TAIL_CHARS: usize = 1500;
+
+/// The last non-blank lines of a text on one line, separated by ` | ` (a point's reason is
+/// shown as one line), or a note that the file is empty.
 fn tail(text: &str) -> String {
-    let lines: Vec<&str> = text.lines().collect();
+    let lines: Vec<&str> = text.lines().filter(|l| !l.trim().is_empty()).collect();
     if lines.is_empty() {
-        return "    (the file is empty)".into();
+        return "(the file is empty)".into();
     }
-    lines[lines.len().saturating_sub(TAIL_LINES)..]
-        .iter()
-        .map(|l| format!("    {l}"))
-        .collect::<Vec<_>>()
-        .join("\n")
+    let t = lines[lines.len().saturating_sub(TAIL_LINES)..].join(" | ");
+    let skip = t.chars().count().saturating_sub(TAIL_CHARS);
+    t.chars().skip(skip).collect()
 }
 
 #[cfg(test)]
