@@ -781,8 +781,8 @@ stop: { max-iterations: 1 }
             at: (4, 3),
         },
         Case {
-            site: "mix output `{}` = `{ov}` is neither .npy nor .json",
-            says: "mix output `x` = `x.txt` is neither .npy nor .json",
+            site: "mix output `{}` = `{ov}` does not end as its input's type needs",
+            says: "mix output `x` = `x.txt` does not end as its input's type needs",
             yaml: "campaign: t
 cycle:
   a: { run: [/bin/true], outputs: { x: x.json } }
@@ -1395,6 +1395,51 @@ cycle:
 stop: { max-iterations: 1 }
 ",
             at: (6, 7),
+        },
+        Case {
+            site: "stage `{sname}`: `datasets` names `{role}`, which is not an input role",
+            says: "`datasets` names `y`, which is not an input role",
+            yaml: "campaign: t
+cycle:
+  a: { run: [/bin/true], outputs: { x: x.h5 } }
+  m:
+    builtin: mix
+    inputs: { x: a.x }
+    outputs: { x: x.h5 }
+    settings: { method: linear, alpha: 0.5, datasets: { x: [/impurity/sigma], y: [/impurity/sigma] } }
+stop: { max-iterations: 1 }
+",
+            at: (4, 3),
+        },
+        Case {
+            site: "stage `{sname}`: the dataset path `{p}` of `{role}` is not absolute",
+            says: "the dataset path `impurity/sigma` of `x` is not absolute",
+            yaml: "campaign: t
+cycle:
+  a: { run: [/bin/true], outputs: { x: x.h5 } }
+  m:
+    builtin: mix
+    inputs: { x: a.x }
+    outputs: { x: x.h5 }
+    settings: { method: linear, alpha: 0.5, datasets: { x: [impurity/sigma] } }
+stop: { max-iterations: 1 }
+",
+            at: (4, 3),
+        },
+        Case {
+            site: "stage `{sname}`: `datasets` of `{role}` is empty",
+            says: "`datasets` of `x` is empty",
+            yaml: "campaign: t
+cycle:
+  a: { run: [/bin/true], outputs: { x: x.h5 } }
+  m:
+    builtin: mix
+    inputs: { x: a.x }
+    outputs: { x: x.h5 }
+    settings: { method: linear, alpha: 0.5, datasets: { x: [] } }
+stop: { max-iterations: 1 }
+",
+            at: (4, 3),
         },
     ]
 }

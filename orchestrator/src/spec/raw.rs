@@ -216,6 +216,11 @@ pub struct MixSettings {
     /// times; linear mixing is unaffected.
     #[serde(default)]
     pub weights: Option<BTreeMap<String, f64>>,
+    /// HDF5 inputs: input role → absolute paths of the float64 datasets mixed (in this
+    /// order); the output is a copy of the input file with those datasets replaced, every
+    /// other group, dataset and attribute unchanged.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub datasets: Option<BTreeMap<String, Vec<String>>>,
 }
 
 /// A stage's `run`: an argument list, or one script string for a shell stage.

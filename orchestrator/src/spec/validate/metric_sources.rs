@@ -308,7 +308,7 @@ impl Validator<'_> {
 }
 
 /// `/a/b`: starts with `/`, no empty, `.` or `..` component (the root `/` alone too).
-fn is_absolute_h5(p: &str) -> bool {
+pub(super) fn is_absolute_h5(p: &str) -> bool {
     p == "/"
         || (p.starts_with('/')
             && p[1..]
