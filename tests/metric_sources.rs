@@ -241,3 +241,123 @@ esac
     });
     assert_eq!(stored, 1);
 }
+
+/// An invented Σ of iteration `k`, different at every iteration.
+fn sigma(k: usize) -> Vec<f64> {
+    (0..8)
+        .map(|i| ((i + 1) as f64 * 0.37 + k as f64 * 1.1).sin() / (k + 1) as f64)
+        .collect()
+}
+
+/// A campaign whose `solve` copies `in{{iteration}}.EXT` (made by the test) and whose
+/// built-in `mix` mixes it, for three iterations.
+fn mix_campaign(dir: &Path, ext: &str, out: &str, datasets: &str) {
+    let text = format!(
+        "campaign: mixing
+about: test campaign (not physics)
+cycle:
+  solve:
+    run: [/bin/cp, \"{dir}/in{{{{iteration}}}}.{ext}\", \"{{{{output:sigma}}}}\"]
+    outputs: {{ sigma: {out} }}
+  mix:
+    builtin: mix
+    inputs: {{ sigma: solve.sigma }}
+    outputs: {{ sigma: mixed.{ext} }}
+    settings: {{ method: anderson, alpha: 0.3, history: 4{datasets} }}
+stop:
+  max-iterations: 3
+",
+        dir = dir.display()
+    );
+    write(&dir.join("c.yaml"), &text);
+}
+
+/// The mixed Σ of the last iteration, extracted from the store.
+fn extracted(dir: &Path, name: &str) -> PathBuf {
+    let to = dir.join(name);
+    let ws = dir.join("c.rondo").display().to_string();
+    let o = run_rondo(
+        dir,
+        &[
+            "extract",
+            "--workspace",
+            &ws,
+            "p001/3/mix.sigma",
+            "-o",
+            &to.display().to_string(),
+        ],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    to
+}
+
+#[test]
+fn mixing_an_hdf5_dataset_gives_the_numbers_of_the_same_array_as_npy_and_copies_the_rest() {
+    let (a, b) = (tmp(), tmp());
+    for k in 1..=3 {
+        let h = a.path().join(format!("in{k}.h5"));
+        let f = h5::File::create(&h).unwrap_or_else(|e| panic!("{e}"));
+        let run = || -> h5::Result<()> {
+            let g = f.create_group("impurity")?;
+            g.new_dataset::<f64>()
+                .shape([4, 2])
+                .create("sigma")?
+                .write_raw(&sigma(k))?;
+            g.new_dataset::<f64>()
+                .shape([2])
+                .create("delta")?
+                .write_raw(&[0.5, k as f64])?;
+            g.new_attr::<f64>()
+                .shape(())
+                .create("beta")?
+                .write_scalar(&40.0)?;
+            Ok(())
+        };
+        run().unwrap_or_else(|e| panic!("{e}"));
+        drop(f);
+        rondo_numerics::npy::write_real(b.path().join(format!("in{k}.npy")), &[4, 2], &sigma(k))
+            .unwrap_or_else(|e| panic!("{e}"));
+    }
+    mix_campaign(
+        a.path(),
+        "h5",
+        "{ file: sigma.h5, hdf5: [/impurity/sigma, /impurity/delta] }",
+        ", datasets: { sigma: [/impurity/sigma] }",
+    );
+    mix_campaign(b.path(), "npy", "sigma.npy", "");
+    for d in [a.path(), b.path()] {
+        let o = run_rondo(d, &["run", "c.yaml"]);
+        assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    }
+    let (pa, pb) = (points(a.path()), points(b.path()));
+    assert_eq!(pa[0]["state"], "capped", "{pa:?}");
+    // the mixer saw the same vector: the same residual at the last step, bit for bit
+    let r = |p: &serde_json::Value| p["metrics"]["mix.residual_norm"].as_f64().map(f64::to_bits);
+    assert!(r(&pa[0]).is_some(), "{pa:?}");
+    assert_eq!(r(&pa[0]), r(&pb[0]));
+    let h = extracted(a.path(), "mixed.h5");
+    let n = extracted(b.path(), "mixed.npy");
+    let f = h5::File::open(&h).unwrap_or_else(|e| panic!("{e}"));
+    let mixed: Vec<f64> = f
+        .dataset("/impurity/sigma")
+        .and_then(|d| d.read_raw())
+        .unwrap_or_else(|e| panic!("{e}"));
+    let want = rondo_numerics::npy::read_any(&n)
+        .unwrap_or_else(|e| panic!("{e}"))
+        .to_flat_f64();
+    let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+    assert_eq!(bits(&mixed), bits(&want));
+    assert_ne!(mixed, sigma(3), "the third iteration mixed nothing");
+    // the unmixed dataset and the attribute are the third input's, unchanged
+    let delta: Vec<f64> = f
+        .dataset("/impurity/delta")
+        .and_then(|d| d.read_raw())
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(delta, [0.5, 3.0]);
+    let beta: f64 = f
+        .group("/impurity")
+        .and_then(|g| g.attr("beta"))
+        .and_then(|a| a.read_scalar())
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(beta, 40.0);
+}
