@@ -3,7 +3,8 @@
 //! energy arrives in eV in `rondo status --json`, the first and the last match, the stdout,
 //! a JSON pointer, an HDF5 dataset and attribute; a pattern that matches nothing failing the
 //! point with the file, the pattern and the log's tail; an output that is not HDF5 and one
-//! that lacks a declared dataset, refused before anything is stored.
+//! that lacks a declared dataset, refused before anything is stored; the built-in `mix` of an
+//! HDF5 dataset giving the numbers of the same array as `.npy`, the rest of the file copied.
 //!
 //! Every number here is invented for the test.
 

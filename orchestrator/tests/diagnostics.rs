@@ -1398,7 +1398,7 @@ stop: { max-iterations: 1 }
         },
         Case {
             site: "stage `{sname}`: `datasets` names `{role}`, which is not an input role",
-            says: "`datasets` names `y`, which is not an input role",
+            says: "`datasets` names `rho`, which is not an input role",
             yaml: "campaign: t
 cycle:
   a: { run: [/bin/true], outputs: { x: x.h5 } }
@@ -1406,7 +1406,7 @@ cycle:
     builtin: mix
     inputs: { x: a.x }
     outputs: { x: x.h5 }
-    settings: { method: linear, alpha: 0.5, datasets: { x: [/impurity/sigma], y: [/impurity/sigma] } }
+    settings: { method: linear, alpha: 0.5, datasets: { x: [/impurity/sigma], rho: [/impurity/sigma] } }
 stop: { max-iterations: 1 }
 ",
             at: (4, 3),
