@@ -12,6 +12,7 @@ pub mod environment;
 pub mod export;
 pub mod fsinfo;
 pub mod hooks;
+pub mod metrics;
 pub mod progress;
 pub mod query;
 pub mod retention;

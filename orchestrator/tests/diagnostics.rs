@@ -781,8 +781,8 @@ stop: { max-iterations: 1 }
             at: (4, 3),
         },
         Case {
-            site: "mix output `{}` = `{ov}` is neither .npy nor .json",
-            says: "mix output `x` = `x.txt` is neither .npy nor .json",
+            site: "mix output `{}` = `{ov}` does not end as its input's type needs",
+            says: "mix output `x` = `x.txt` does not end as its input's type needs",
             yaml: "campaign: t
 cycle:
   a: { run: [/bin/true], outputs: { x: x.json } }
@@ -1324,6 +1324,291 @@ cycle:
 stop: { max-iterations: 1 }
 ",
             at: (6, 31),
+        },
+        Case {
+            site: "stage `{sname}`: `read-metrics` applies to command and shell stages",
+            says: "`read-metrics` applies to command and shell stages",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  m:
+    builtin: mix
+    settings: { method: linear, alpha: 0.5 }
+    inputs: { d: start.x }
+    outputs: { d: d.json }
+    read-metrics:
+      e: { file: scf.log, pattern: '(\\S+)' }
+stop: { max-iterations: 1 }
+",
+            at: (10, 7),
+        },
+        Case {
+            site: "metric `{name}`: give exactly one of `file`, `stdout: true`, `json` and `hdf5`",
+            says: "give exactly one of",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        file: a.log
+        json: b.json
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "metric `{name}`: `{v}` is neither an output role of the stage nor a file name in its scratch folder",
+            says: "`../a.log` is neither an output role",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        file: ../a.log
+        pattern: '(\\S+)'
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "metric `{name}`: unknown unit `{}`",
+            says: "unknown unit `kcal`",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        file: a.log
+        pattern: '(\\S+)'
+        unit: kcal
+stop: { max-iterations: 1 }
+",
+            at: (9, 15),
+        },
+        Case {
+            site: "metric `{name}`: `{key}` does not apply to a {kind} source",
+            says: "`pattern` does not apply to a JSON source",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        json: out.json
+        pointer: /scf/energy
+        pattern: '(\\S+)'
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "metric `{name}`: a text source needs `pattern`",
+            says: "a text source needs `pattern`",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        stdout: true
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "metric `{name}`: the pattern does not compile: {e}",
+            says: "the pattern does not compile",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        file: a.log
+        pattern: 'energy = (\\S+'
+stop: { max-iterations: 1 }
+",
+            at: (8, 18),
+        },
+        Case {
+            site: "metric `{name}`: the pattern has {groups} capture groups; it needs exactly one",
+            says: "the pattern has 2 capture groups",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        file: a.log
+        pattern: '(\\S+) (\\S+)'
+stop: { max-iterations: 1 }
+",
+            at: (8, 18),
+        },
+        Case {
+            site: "metric `{name}`: the pattern has {groups} capture groups; it needs exactly one",
+            says: "the pattern has 0 capture groups",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        stdout: true
+        pattern: 'energy = \\S+'
+stop: { max-iterations: 1 }
+",
+            at: (8, 18),
+        },
+        Case {
+            site: "metric `{name}`: a JSON source needs `pointer`",
+            says: "a JSON source needs `pointer`",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        json: out.json
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "metric `{name}`: `{}` is not a JSON pointer",
+            says: "`scf/energy` is not a JSON pointer",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        json: out.json
+        pointer: scf/energy
+stop: { max-iterations: 1 }
+",
+            at: (8, 18),
+        },
+        Case {
+            site: "metric `{name}`: `index` applies to a dataset, not to an attribute",
+            says: "`index` applies to a dataset",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        hdf5: imp.h5
+        attribute: /impurity@mu
+        index: [0]
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "metric `{name}`: attribute `{}` must be written OBJECT@NAME",
+            says: "attribute `/impurity` must be written OBJECT@NAME",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        hdf5: imp.h5
+        attribute: /impurity
+stop: { max-iterations: 1 }
+",
+            at: (8, 20),
+        },
+        Case {
+            site: "metric `{name}`: an HDF5 source needs exactly one of `dataset` and `attribute`",
+            says: "needs exactly one of `dataset` and `attribute`",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        hdf5: imp.h5
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "metric `{name}`: the HDF5 path `{p}` is not absolute",
+            says: "the HDF5 path `impurity/n_f` is not absolute",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    read-metrics:
+      e:
+        hdf5: imp.h5
+        dataset: impurity/n_f
+stop: { max-iterations: 1 }
+",
+            at: (8, 18),
+        },
+        Case {
+            site: "output `{}`: the HDF5 dataset path `{p}` is not absolute",
+            says: "the HDF5 dataset path `impurity/sigma` is not absolute",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    outputs:
+      imp: { file: imp.h5, hdf5: [/impurity/delta, impurity/sigma] }
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "stage `{sname}`: `datasets` names `{role}`, which is not an input role",
+            says: "`datasets` names `rho`, which is not an input role",
+            yaml: "campaign: t
+cycle:
+  a: { run: [/bin/true], outputs: { x: x.h5 } }
+  m:
+    builtin: mix
+    inputs: { x: a.x }
+    outputs: { x: x.h5 }
+    settings: { method: linear, alpha: 0.5, datasets: { x: [/impurity/sigma], rho: [/impurity/sigma] } }
+stop: { max-iterations: 1 }
+",
+            at: (4, 3),
+        },
+        Case {
+            site: "stage `{sname}`: the dataset path `{p}` of `{role}` is not absolute",
+            says: "the dataset path `impurity/sigma` of `x` is not absolute",
+            yaml: "campaign: t
+cycle:
+  a: { run: [/bin/true], outputs: { x: x.h5 } }
+  m:
+    builtin: mix
+    inputs: { x: a.x }
+    outputs: { x: x.h5 }
+    settings: { method: linear, alpha: 0.5, datasets: { x: [impurity/sigma] } }
+stop: { max-iterations: 1 }
+",
+            at: (4, 3),
+        },
+        Case {
+            site: "stage `{sname}`: `datasets` of `{role}` is empty",
+            says: "`datasets` of `x` is empty",
+            yaml: "campaign: t
+cycle:
+  a: { run: [/bin/true], outputs: { x: x.h5 } }
+  m:
+    builtin: mix
+    inputs: { x: a.x }
+    outputs: { x: x.h5 }
+    settings: { method: linear, alpha: 0.5, datasets: { x: [] } }
+stop: { max-iterations: 1 }
+",
+            at: (4, 3),
         },
     ]
 }

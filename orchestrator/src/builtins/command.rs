@@ -52,6 +52,10 @@ pub struct MixArgs {
     /// Weight of an input role in the mixer's metric (repeatable; default 1).
     #[arg(long = "weight", value_name = "ROLE=W", value_parser = parse_weight)]
     pub weights: Vec<(String, f64)>,
+    /// A float64 dataset of an HDF5 input to mix (repeatable, in order; the other contents
+    /// of the file are copied unchanged).
+    #[arg(long = "dataset", value_name = "ROLE=/PATH", value_parser = parse_dataset)]
+    pub datasets: Vec<(String, String)>,
     /// A file to mix (repeatable; the order of the inputs is the order of the vector).
     #[arg(long = "input", value_name = "ROLE=PATH", value_parser = parse_file, required = true)]
     pub inputs: Vec<(String, PathBuf)>,
@@ -125,6 +129,10 @@ fn split_role(s: &str) -> Result<(String, &str), String> {
     }
 }
 
+fn parse_dataset(s: &str) -> Result<(String, String), String> {
+    split_role(s).map(|(r, d)| (r, d.to_string()))
+}
+
 fn parse_file(s: &str) -> Result<(String, PathBuf), String> {
     split_role(s).map(|(r, p)| (r, PathBuf::from(p)))
 }
@@ -195,6 +203,12 @@ impl BuiltinCommand {
                         .flatten()
                         .map(|(r, w)| (r.clone(), *w))
                         .collect(),
+                    datasets: with
+                        .datasets
+                        .iter()
+                        .flatten()
+                        .flat_map(|(r, ds)| ds.iter().map(move |d| (r.clone(), d.clone())))
+                        .collect(),
                     inputs: files,
                     state,
                     outputs: outs,
@@ -239,6 +253,9 @@ impl BuiltinCommand {
                 }
                 for (role, w) in &a.weights {
                     argv.push(format!("--weight={role}={w:?}"));
+                }
+                for (role, d) in &a.datasets {
+                    argv.push(format!("--dataset={role}={d}"));
                 }
                 argv.extend(a.inputs.iter().map(|f| file("input", f)));
                 if let Some(s) = &a.state {
@@ -316,6 +333,13 @@ impl BuiltinCommand {
                         restart_after_growth: a.restart_after_growth,
                         weights: (!a.weights.is_empty())
                             .then(|| a.weights.iter().cloned().collect::<BTreeMap<_, _>>()),
+                        datasets: (!a.datasets.is_empty()).then(|| {
+                            let mut m: BTreeMap<String, Vec<String>> = BTreeMap::new();
+                            for (r, d) in &a.datasets {
+                                m.entry(r.clone()).or_default().push(d.clone());
+                            }
+                            m
+                        }),
                     },
                     state: a.state.as_deref().map(at),
                     state_out: at(&a.state_out),
@@ -405,6 +429,7 @@ mod tests {
             w0: Some(1e-3),
             restart_after_growth: Some(0),
             weights: Some(BTreeMap::from([("density".to_string(), 10.0 / 3.0)])),
+            datasets: None,
         });
         let inputs = [
             ("sigma", Path::new("inputs/sigma.npy")),

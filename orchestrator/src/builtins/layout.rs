@@ -12,6 +12,7 @@ use rondo_numerics::mixing::MixerState;
 use rondo_numerics::npy;
 use serde::{Deserialize, Serialize};
 
+use super::hdf5_blocks::{self, Hdf5Dataset};
 use crate::spec::LEGACY_ROLE;
 
 /// Layout version of [`StateFile`].
@@ -27,6 +28,8 @@ pub(super) enum BlockKind {
     NpyComplex { shape: Vec<usize> },
     /// A JSON object; these numeric top-level fields (sorted) are mixed.
     Json { keys: Vec<String> },
+    /// An HDF5 file; these float64 datasets (in the stage's order) are mixed.
+    Hdf5 { datasets: Vec<Hdf5Dataset> },
 }
 
 impl BlockKind {
@@ -35,6 +38,13 @@ impl BlockKind {
             BlockKind::NpyReal { shape } => format!("real array of shape {shape:?}"),
             BlockKind::NpyComplex { shape } => format!("complex array of shape {shape:?}"),
             BlockKind::Json { keys } => format!("JSON object with numeric fields {keys:?}"),
+            BlockKind::Hdf5 { datasets } => format!(
+                "HDF5 file with the datasets {:?}",
+                datasets
+                    .iter()
+                    .map(|d| format!("{} {:?}", d.path, d.shape))
+                    .collect::<Vec<_>>()
+            ),
         }
     }
 }
@@ -78,9 +88,22 @@ pub(super) struct Loaded {
     pub(super) json: Option<serde_json::Map<String, serde_json::Value>>,
 }
 
-/// Read one role's new file: a `.npy` array (real or complex, finite, not empty) or a JSON
+/// Read one role's new file: the named float64 datasets of an HDF5 file (`datasets`, from
+/// `settings: datasets`), a `.npy` array (real or complex, finite, not empty) or a JSON
 /// object with at least one numeric top-level field (all finite).
-pub(super) fn read_input(role: &str, path: &Path) -> Result<Loaded, String> {
+pub(super) fn read_input(
+    role: &str,
+    path: &Path,
+    datasets: Option<&[String]>,
+) -> Result<Loaded, String> {
+    if let Some(names) = datasets {
+        let (datasets, values) = hdf5_blocks::read(role, path, names)?;
+        return Ok(Loaded {
+            kind: BlockKind::Hdf5 { datasets },
+            values,
+            json: None,
+        });
+    }
     let shown = path.display();
     let bytes = std::fs::read(path).map_err(|e| format!("{shown}: cannot read `{role}`: {e}"))?;
     if bytes.starts_with(b"\x93NUMPY") {

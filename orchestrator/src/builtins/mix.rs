@@ -1,5 +1,6 @@
 //! The built-in `mix` stage: one mixing step over one or more input roles (each a `.npy`
-//! array, real or complex, or a `.json` object whose numeric top-level fields are mixed),
+//! array, real or complex, a `.json` object whose numeric top-level fields are mixed, or
+//! the float64 datasets `settings: datasets` names in an HDF5 file),
 //! concatenated in the stage's role order into one vector, mixed with the history kept as
 //! an artifact of the previous iteration (absent at iteration 1, where the inputs pass
 //! through exactly), split back into one output per role (same shape, type or key set),
@@ -165,7 +166,8 @@ fn read_inputs(
     let mut loaded = Vec::with_capacity(roles.len());
     let mut layout = Vec::with_capacity(roles.len());
     for (role, path, _) in roles {
-        let l = read_input(role, path)?;
+        let names = with.datasets.as_ref().and_then(|d| d.get(role));
+        let l = read_input(role, path, names.map(Vec::as_slice))?;
         let weight = with
             .weights
             .as_ref()
@@ -203,6 +205,12 @@ fn unweight(layout: &[Block], mixed: &[f64]) -> Vec<f64> {
 enum Payload {
     Npy(NpyArray),
     Bytes(Vec<u8>),
+    /// A copy of the HDF5 input file with these datasets holding these values.
+    Hdf5 {
+        input: PathBuf,
+        datasets: Vec<super::hdf5_blocks::Hdf5Dataset>,
+        values: Vec<f64>,
+    },
 }
 
 /// Each role's part of the mixed vector `next`, encoded as its output file: an array of
@@ -215,10 +223,17 @@ fn encode_outputs<'a>(
 ) -> Result<Vec<(&'a Path, Payload)>, String> {
     let mut files: Vec<(&Path, Payload)> = Vec::with_capacity(roles.len() + 1);
     let mut at = 0;
-    for ((b, l), (role, _, out)) in layout.iter().zip(loaded).zip(roles) {
+    for ((b, l), (role, input, out)) in layout.iter().zip(loaded).zip(roles) {
         let part = next[at..at + b.len].to_vec();
         at += b.len;
-        let bytes = encode_block(b, l, role, part)?;
+        let bytes = match &b.kind {
+            BlockKind::Hdf5 { datasets } => Payload::Hdf5 {
+                input: input.clone(),
+                datasets: datasets.clone(),
+                values: part,
+            },
+            _ => encode_block(b, l, role, part)?,
+        };
         check_extension(b, role, out)?;
         files.push((out.as_path(), bytes));
     }
@@ -244,12 +259,23 @@ fn encode_block(b: &Block, l: Loaded, role: &str, part: Vec<f64>) -> Result<Payl
             Ok(Payload::Bytes(text.into_bytes()))
         }
         (BlockKind::Json { .. }, None) => Err(format!("internal: `{role}` lost its JSON object")),
+        (BlockKind::Hdf5 { .. }, _) => Err(format!("internal: `{role}` is an HDF5 block")),
     }
 }
 
 /// An output file's name must say what it holds: `.json` for a JSON object, `.npy` for an
 /// array.
 fn check_extension(b: &Block, role: &str, out: &Path) -> Result<(), String> {
+    if matches!(b.kind, BlockKind::Hdf5 { .. }) {
+        if out.extension().is_some_and(|e| e == "h5" || e == "hdf5") {
+            return Ok(());
+        }
+        return Err(format!(
+            "output {} of `{role}` must end in .h5 or .hdf5 for a {}",
+            out.display(),
+            b.kind.describe()
+        ));
+    }
     let json = matches!(b.kind, BlockKind::Json { .. });
     let ext_ok = out
         .extension()
@@ -282,6 +308,14 @@ fn write_all(files: &[(&Path, Payload)]) -> Result<(), String> {
         match payload {
             Payload::Npy(arr) => arr.write(path),
             Payload::Bytes(b) => npy::write_atomic(path, b),
+            Payload::Hdf5 {
+                input,
+                datasets,
+                values,
+            } => {
+                super::hdf5_blocks::write(input, path, datasets, values)?;
+                continue;
+            }
         }
         .map_err(|e| format!("{}: {e}", path.display()))?;
     }
@@ -342,6 +376,7 @@ mod tests {
             w0: None,
             restart_after_growth: None,
             weights: None,
+            datasets: None,
         }
     }
 

@@ -14,6 +14,7 @@ use crate::validate::Metric;
 
 mod command;
 mod filter;
+mod hdf5_blocks;
 mod layout;
 mod mix;
 
@@ -91,6 +92,7 @@ mod tests {
                 w0: None,
                 restart_after_growth: None,
                 weights: None,
+                datasets: None,
             },
             state: None,
             state_out: p("state.json"),

@@ -581,14 +581,23 @@ pub(super) fn check_outputs(
             return fail(inv);
         }
     }
+    for (role, datasets) in &stage.hdf5_outputs {
+        let Some((_, file)) = stage.outputs.iter().find(|(r, _)| r == role) else {
+            continue;
+        };
+        let path = workdir.join(file);
+        if let Err(inv) =
+            crate::metrics::check_datasets(&path, role, datasets, stage.allow_nonfinite)
+        {
+            return fail(inv);
+        }
+    }
     let metrics = match builtin_metrics {
         Some(m) => m,
-        None => {
-            match validate::read_metrics(workdir, &stage.required_metrics, stage.allow_nonfinite) {
-                Ok(m) => m,
-                Err(inv) => return fail(inv),
-            }
-        }
+        None => match stage_metrics(stage, workdir) {
+            Ok(m) => m,
+            Err(inv) => return fail(inv),
+        },
     };
     Ended::Ok {
         metrics,
@@ -599,4 +608,25 @@ pub(super) fn check_outputs(
         host,
         event: None,
     }
+}
+
+/// A command or shell stage's metrics: those of `metrics.json` (required there unless
+/// `read-metrics` names them) and those `read-metrics` reads, which take the place of a
+/// `metrics.json` metric of the same name.
+fn stage_metrics(stage: &Stage, workdir: &Path) -> Result<Vec<Metric>, validate::Invalid> {
+    let sourced = |n: &str| stage.metric_sources.iter().any(|s| s.name == n);
+    let required: std::collections::BTreeSet<String> = stage
+        .required_metrics
+        .iter()
+        .filter(|n| !sourced(n))
+        .cloned()
+        .collect();
+    let mut metrics = validate::read_metrics(workdir, &required, stage.allow_nonfinite)?;
+    if stage.metric_sources.is_empty() {
+        return Ok(metrics);
+    }
+    let read = crate::metrics::read_sources(workdir, &stage.metric_sources, stage.allow_nonfinite)?;
+    metrics.retain(|m| !sourced(&m.name));
+    metrics.extend(read);
+    Ok(metrics)
 }

@@ -19,14 +19,15 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, CaseFolder, Diagnostic, DiskFree, EosAnalysis, Hooks, Keep, Placement,
-    PointSpec, ResolvedProgram, Rule, RuleTest, Schedule, Source, SpecErrors, Stage, StageKind,
-    CASE_FOLDER_ROLE, FILTER_METRICS, HOOK_EVENTS, LEGACY_ROLE,
+    BadInput, Campaign, CaseFolder, Diagnostic, DiskFree, EnergyUnit, EosAnalysis, Hooks, Keep,
+    MetricSource, Placement, PointSpec, ResolvedProgram, Rule, RuleTest, Schedule, Source,
+    SourceKind, SpecErrors, Stage, StageKind, CASE_FOLDER_ROLE, FILTER_METRICS, HOOK_EVENTS,
+    LEGACY_ROLE,
 };
 pub use raw::{
     AnalysisSpec, BuiltinSettings, CampaignFile, Combine, Compare, Defaults, EosModelName, EosSpec,
-    FilterSettings, InputSpec, MixMethod, MixSettings, OrderedMap, PreviousInput, Program,
-    RuleSpec, RunSpec, Scalar, ScheduleSpec, StageSpec, StopSpec, Sweep,
+    FilterSettings, InputSpec, MetricSourceSpec, MixMethod, MixSettings, OrderedMap, OutputSpec,
+    PreviousInput, Program, RuleSpec, RunSpec, Scalar, ScheduleSpec, StageSpec, StopSpec, Sweep,
 };
 pub use validate::{is_executable, parse_duration, resolve_program};
 

@@ -143,6 +143,103 @@ pub struct Stage {
     pub keep: Vec<(String, Keep)>,
     /// The working folder kept from one iteration to the next (`case-folder`).
     pub case_folder: Option<CaseFolder>,
+    /// Metrics read from what the program writes (`read-metrics`), in file order.
+    pub metric_sources: Vec<MetricSource>,
+    /// HDF5 outputs: role → the dataset paths the file must hold (`outputs: { ROLE: {
+    /// file: F, hdf5: [...] } }`), in file order.
+    pub hdf5_outputs: Vec<(String, Vec<String>)>,
+}
+
+/// One metric read from a file the stage writes (`read-metrics:`), checked.
+#[derive(Debug, Clone)]
+pub struct MetricSource {
+    /// Metric name (without the stage prefix).
+    pub name: String,
+    /// The file, relative to the attempt's scratch folder (`stdout.txt` for the stdout).
+    pub file: String,
+    /// How the number is found in the file.
+    pub kind: SourceKind,
+    /// The unit the file writes the number in; the metric is stored in `unit.target()`.
+    pub unit: Option<EnergyUnit>,
+}
+
+/// How a metric is found in its file.
+#[derive(Debug, Clone)]
+pub enum SourceKind {
+    /// A regular expression with exactly one capture group, over the text.
+    Text {
+        /// The compiled pattern.
+        regex: regex::Regex,
+        /// The first match (`true`) or the last (`false`, the default).
+        first: bool,
+    },
+    /// A JSON pointer (RFC 6901) into a JSON document.
+    Json {
+        /// The pointer, `""` for the whole document.
+        pointer: String,
+    },
+    /// A dataset of an HDF5 file: a scalar, or one element by index.
+    Hdf5Dataset {
+        /// Absolute path of the dataset.
+        path: String,
+        /// Index of the element (none: the dataset holds exactly one element).
+        index: Option<Vec<usize>>,
+    },
+    /// A scalar attribute of a group or dataset of an HDF5 file.
+    Hdf5Attribute {
+        /// Absolute path of the object carrying it (`/` for the file's root group).
+        object: String,
+        /// Attribute name.
+        name: String,
+    },
+}
+
+/// Energy units a metric source may convert from; every one is converted to eV.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum EnergyUnit {
+    /// Rydberg.
+    Ry,
+    /// Hartree.
+    Ha,
+    /// Electronvolt (the identity).
+    Ev,
+}
+
+impl EnergyUnit {
+    /// The Rydberg energy hc R∞ in eV: CODATA 2018 recommended value (NIST, "Fundamental
+    /// Physical Constants", 2019), 13.605 693 122 994(26) eV; examples/casebook prints in Ry
+    /// with the same number.
+    pub const RYDBERG_EV: f64 = 13.605_693_122_994;
+    /// The Hartree energy E_h in eV: CODATA 2018 recommended value, 27.211 386 245 988(53) eV
+    /// (exactly twice the Rydberg energy in that adjustment).
+    pub const HARTREE_EV: f64 = 27.211_386_245_988;
+
+    /// The names accepted in `unit:` and what they mean.
+    pub const NAMES: [(&'static str, EnergyUnit); 5] = [
+        ("Ry", EnergyUnit::Ry),
+        ("Ha", EnergyUnit::Ha),
+        ("hartree", EnergyUnit::Ha),
+        ("eV", EnergyUnit::Ev),
+        ("ev", EnergyUnit::Ev),
+    ];
+
+    /// The unit a `unit:` name stands for.
+    pub fn parse(name: &str) -> Option<EnergyUnit> {
+        Self::NAMES
+            .iter()
+            .find(|(n, _)| *n == name)
+            .map(|(_, u)| *u)
+    }
+
+    /// A value in this unit, in eV (one multiplication, so the result is the nearest double
+    /// to the exact product of the two doubles).
+    pub fn to_ev(self, x: f64) -> f64 {
+        match self {
+            EnergyUnit::Ry => x * Self::RYDBERG_EV,
+            EnergyUnit::Ha => x * Self::HARTREE_EV,
+            EnergyUnit::Ev => x,
+        }
+    }
 }
 
 /// Which iterations of an output role keep their content (see [`crate::retention`]).

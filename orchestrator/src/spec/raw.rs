@@ -216,6 +216,11 @@ pub struct MixSettings {
     /// times; linear mixing is unaffected.
     #[serde(default)]
     pub weights: Option<BTreeMap<String, f64>>,
+    /// HDF5 inputs: input role → absolute paths of the float64 datasets mixed (in this
+    /// order); the output is a copy of the input file with those datasets replaced, every
+    /// other group, dataset and attribute unchanged.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub datasets: Option<BTreeMap<String, Vec<String>>>,
 }
 
 /// A stage's `run`: an argument list, or one script string for a shell stage.
@@ -291,12 +296,20 @@ pub struct StageSpec {
     /// Named inputs.
     #[serde(default)]
     pub inputs: OrderedMap<InputSpec>,
-    /// Named outputs: role → file name the stage writes in its scratch directory.
+    /// Named outputs: role → file name the stage writes in its scratch directory, or
+    /// `{ file: NAME.h5, hdf5: [/group/dataset, ...] }` for an HDF5 file that must hold
+    /// those datasets, numeric and finite.
     #[serde(default)]
-    pub outputs: OrderedMap<String>,
-    /// Metrics the stage must report in `metrics.json`.
+    pub outputs: OrderedMap<OutputSpec>,
+    /// Metrics the stage must report: in `metrics.json`, unless `read-metrics` names them.
     #[serde(default)]
     pub metrics: Vec<String>,
+    /// Metrics read from files the program writes: metric name → source, e.g.
+    /// `{ file: scf.log, pattern: 'total energy += *(\S+) Ry', unit: Ry }`,
+    /// `{ json: out.json, pointer: /scf/energy }`,
+    /// `{ hdf5: impurity.h5, dataset: /impurity/n_f }`.
+    #[serde(default)]
+    pub read_metrics: OrderedMap<MetricSourceSpec>,
     /// Batch resources (over `defaults.resources`).
     #[serde(default)]
     pub resources: Option<Resources>,
@@ -364,6 +377,105 @@ pub struct KeepSpec {
     /// Keep every K-th iteration (K ≥ 1), counted from iteration 1.
     #[serde(default)]
     pub every: Option<u32>,
+}
+
+/// A declared output: a file name, or an HDF5 file with the datasets it must hold.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(untagged)]
+pub enum OutputSpec {
+    /// The file name the stage writes in its scratch directory.
+    File(String),
+    /// An HDF5 file and the datasets it must hold.
+    Hdf5(Hdf5Output),
+}
+
+impl OutputSpec {
+    /// The file name.
+    pub fn file(&self) -> &str {
+        match self {
+            OutputSpec::File(f) => f,
+            OutputSpec::Hdf5(h) => &h.file,
+        }
+    }
+}
+
+/// `{ file: impurity.h5, hdf5: [/impurity/sigma] }`.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct Hdf5Output {
+    /// The file name the stage writes in its scratch directory.
+    pub file: String,
+    /// Absolute paths of datasets the file must hold, each of a numeric type with every
+    /// value finite (unless `allow-nonfinite`).
+    pub hdf5: Vec<String>,
+}
+
+/// Where one metric of `read-metrics` comes from: exactly one of `file` (a text file, with
+/// `pattern`), `stdout: true` (the program's standard output, with `pattern`), `json` (with
+/// `pointer`) or `hdf5` (with `dataset`, or `attribute`).
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct MetricSourceSpec {
+    /// A text file: an output role of the stage or a file name in its scratch folder.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub file: Option<Spanned<String>>,
+    /// The program's standard output (`stdout.txt` of the scratch folder).
+    #[serde(default)]
+    pub stdout: bool,
+    /// For `file` and `stdout`: a regular expression with exactly one capture group, the
+    /// number (Rust `regex` syntax; `(?m)` makes `^`/`$` match at line ends).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub pattern: Option<Spanned<String>>,
+    /// For `file` and `stdout`: take the `first` or the `last` match (default: the last,
+    /// since programs print the converged value last).
+    #[serde(default, rename = "match")]
+    #[schemars(with = "Option<MatchWhich>")]
+    pub match_: Option<Spanned<MatchWhich>>,
+    /// The energy unit the file writes the number in, converted to eV: `Ry`, `Ha` (or
+    /// `hartree`), `eV`. Absent: stored as written.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub unit: Option<Spanned<String>>,
+    /// A JSON file: an output role of the stage or a file name in its scratch folder.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub json: Option<Spanned<String>>,
+    /// For `json`: a JSON pointer (RFC 6901), e.g. `/scf/energy` or `/bands/0` (`""`: the
+    /// whole document).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub pointer: Option<Spanned<String>>,
+    /// An HDF5 file: an output role of the stage or a file name in its scratch folder.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub hdf5: Option<Spanned<String>>,
+    /// For `hdf5`: the absolute path of a numeric dataset holding one element, or of any
+    /// numeric dataset with `index`.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub dataset: Option<Spanned<String>>,
+    /// For `dataset`: the index of the element, one number per dimension.
+    #[serde(default)]
+    pub index: Option<Vec<usize>>,
+    /// For `hdf5`: a scalar numeric attribute, `OBJECT@NAME`: the absolute path of the
+    /// group or dataset carrying it, `@`, the attribute's name (`/@version` for the root
+    /// group, `/impurity@mu`, `/impurity/sigma@beta`).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub attribute: Option<Spanned<String>>,
+}
+
+/// Which match of a pattern a metric takes.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema)]
+#[serde(rename_all = "lowercase")]
+pub enum MatchWhich {
+    /// The first match in the file.
+    First,
+    /// The last match in the file.
+    #[default]
+    Last,
 }
 
 /// Where a stage runs under a batch executor.

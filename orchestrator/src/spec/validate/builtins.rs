@@ -29,8 +29,9 @@ impl Validator<'_> {
             );
         }
         self.mix_inputs(s);
-        self.mix_outputs(s);
+        self.mix_outputs(s, &with);
         self.mix_weights(s, &with);
+        self.mix_datasets(s, &with);
         if st.outputs.get("state").is_some() {
             self.push(
                 at,
@@ -71,15 +72,25 @@ impl Validator<'_> {
 
     /// A mix stage's outputs are `.npy` or `.json` files, one per input role with the same
     /// role name (the one-array form with the input `new`: exactly one output).
-    fn mix_outputs(&mut self, s: &StageAt) {
+    fn mix_outputs(&mut self, s: &StageAt, with: &MixSettings) {
         let (sname, st, at, inputs) = (s.name, s.spec, s.at, s.inputs);
         let legacy = inputs.len() == 1 && inputs[0].0 == LEGACY_ROLE;
         for (ok, ov) in &st.outputs.0 {
-            if !(ov.ends_with(".npy") || ov.ends_with(".json")) {
+            let ov = ov.file();
+            let hdf5 = with
+                .datasets
+                .as_ref()
+                .is_some_and(|d| d.contains_key(&ok.value));
+            let fits = if hdf5 {
+                ov.ends_with(".h5") || ov.ends_with(".hdf5")
+            } else {
+                ov.ends_with(".npy") || ov.ends_with(".json")
+            };
+            if !fits {
                 self.push(
                     loc(ok),
-                    format!("mix output `{}` = `{ov}` is neither .npy nor .json", ok.value),
-                    "the mixed file has the type of its input: NAME.npy for arrays, NAME.json for JSON objects",
+                    format!("mix output `{}` = `{ov}` does not end as its input's type needs", ok.value),
+                    "the mixed file has the type of its input: NAME.npy for arrays, NAME.json for JSON objects, NAME.h5 for the HDF5 files of `settings: datasets`",
                 );
             }
         }
@@ -134,6 +145,38 @@ impl Validator<'_> {
                     at,
                     format!("stage `{sname}`: weight of `{role}` is {w}, not a positive number"),
                     "e.g. weights: { density: 10 }",
+                );
+            }
+        }
+    }
+
+    /// `datasets` of a mix stage name input roles and absolute HDF5 paths.
+    fn mix_datasets(&mut self, s: &StageAt, with: &MixSettings) {
+        let (sname, at, inputs) = (s.name, s.at, s.inputs);
+        for (role, paths) in with.datasets.iter().flatten() {
+            if !inputs.iter().any(|(r, _)| r == role) {
+                self.push(
+                    at,
+                    format!("stage `{sname}`: `datasets` names `{role}`, which is not an input role"),
+                    "datasets: { ROLE: [/group/dataset] } names an HDF5 input role of the mix stage",
+                );
+            }
+            for p in paths {
+                if !super::metric_sources::is_absolute_h5(p) {
+                    self.push(
+                        at,
+                        format!(
+                            "stage `{sname}`: the dataset path `{p}` of `{role}` is not absolute"
+                        ),
+                        "start it at the file's root group, e.g. /impurity/sigma",
+                    );
+                }
+            }
+            if paths.is_empty() {
+                self.push(
+                    at,
+                    format!("stage `{sname}`: `datasets` of `{role}` is empty"),
+                    "name the float64 datasets to mix, e.g. [/impurity/sigma]",
                 );
             }
         }
@@ -382,7 +425,7 @@ stop: {{ max-iterations: 1 }}
             (
                 outs,
                 "outputs: { sigma: sigma.npy, density: density.txt }",
-                "is neither .npy nor .json",
+                "does not end as its input's type needs",
             ),
             (
                 with,

@@ -47,7 +47,7 @@ impl Validator<'_> {
                     .outputs
                     .0
                     .iter()
-                    .any(|(_, o)| o.trim_end_matches('/') == v);
+                    .any(|(_, o)| o.file().trim_end_matches('/') == v);
                 if v.is_empty()
                     || v.contains('/')
                     || v.starts_with('.')

@@ -14,6 +14,7 @@ mod builtins;
 mod commands;
 mod folders;
 mod hooks;
+mod metric_sources;
 mod programs;
 mod resources;
 mod rules;

@@ -88,9 +88,11 @@ impl Validator<'_> {
         let outputs: Vec<(String, String)> = st
             .outputs
             .iter()
-            .map(|(k, v)| (k.to_string(), v.clone()))
+            .map(|(k, v)| (k.to_string(), v.file().to_string()))
             .collect();
         self.output_names(st);
+        let hdf5_outputs = self.hdf5_outputs(st);
+        let metric_sources = self.metric_sources(&sname, st);
         let mut required: BTreeSet<String> = st.metrics.iter().cloned().collect();
         for (s, m) in stop_metrics {
             if *s == sname {
@@ -137,6 +139,8 @@ impl Validator<'_> {
             placement,
             keep,
             case_folder,
+            metric_sources,
+            hdf5_outputs,
         })
     }
 
@@ -340,6 +344,7 @@ impl Validator<'_> {
     fn output_names(&mut self, st: &StageSpec) {
         for (ok, ov) in &st.outputs.0 {
             // `name/`: a folder output; a name with `*` or `?`: a glob, its matches one folder.
+            let ov = ov.file();
             let plain = ov.strip_suffix('/').unwrap_or(ov);
             if plain.is_empty()
                 || plain.contains('/')
