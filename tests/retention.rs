@@ -18,12 +18,14 @@ fn campaign(dir: &Path, keep: bool) {
     } else {
         ""
     };
-    // The stage: a 64 KiB restart file whose bytes are the iteration's digit, and a metric
-    // that halves every iteration (converged at iteration 7 or 8).
+    // The stage: a 64 KiB restart file whose bytes name the point and the iteration (so no
+    // two are the same content), and a metric that halves every iteration (converged at
+    // iteration 7 or 8); a tenth of a second each, so that seeded kills land mid-run.
     let script = dir.join("stage.sh");
     std::fs::write(
         &script,
-        "head -c 65536 /dev/zero | tr '\\0' \"$2\" > restart.bin\n\
+        "sleep 0.1\n\
+         yes \"$1-$2\" | head -c 65536 > restart.bin\n\
          awk -v x=\"$1\" -v i=\"$2\" 'BEGIN { printf \"{\\\"e\\\": %.17g}\\n\", x / 2 ^ i }' > metrics.json\n",
     )
     .unwrap_or_else(|e| panic!("{e}"));
@@ -189,7 +191,7 @@ fn killed_runs_with_a_policy_keep_the_same_content_and_records() {
     let want = record(&ref_ws);
     let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
     campaign(d.path(), true);
-    kill_and_finish(d.path(), "c.yaml", seed, 4, want.len(), (0.2, 0.9), 0);
+    kill_and_finish(d.path(), "c.yaml", seed, 2, want.len(), (0.2, 0.6), 0);
     let ws = d.path().join("c.rondo");
     assert_same_record(&want, &record(&ws), seed);
     assert_no_double_success_nor_children(&ws, seed);
