@@ -131,30 +131,6 @@ fn workspace_id_when_ready(ws: &Path) -> String {
         .unwrap_or_default()
 }
 
-/// A query's first column through a read-only connection (empty when not readable yet).
-fn strings_ro(ws: &Path, sql: &'static str) -> Vec<String> {
-    let db = ws.join("rondo.db");
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .unwrap_or_else(|e| panic!("runtime: {e}"));
-    rt.block_on(async {
-        let opts = sqlx::sqlite::SqliteConnectOptions::new()
-            .filename(&db)
-            .read_only(true)
-            .busy_timeout(Duration::from_secs(5));
-        let Ok(pool) = sqlx::SqlitePool::connect_with(opts).await else {
-            return Vec::new();
-        };
-        let rows = sqlx::query_scalar(sql)
-            .fetch_all(&pool)
-            .await
-            .unwrap_or_default();
-        pool.close().await;
-        rows
-    })
-}
-
 /// Run the base campaign (with the extra environment `env`, e.g. a fake clock) with the `hold`
 /// file present, so that every point runs two iterations and then sleeps in its third;
 /// wait for both sleeping children and send `signal` to rondo (only to rondo: its children have

@@ -288,9 +288,21 @@ pub fn kill_and_finish(
 /// Succeeded attempts in `ws`, read through a read-only connection (safe while a run
 /// writes; 0 while no store exists yet or it cannot be read at this instant).
 pub fn succeeded_attempts_ro(ws: &Path) -> i64 {
+    strings_ro(
+        ws,
+        "SELECT CAST(count(*) AS TEXT) FROM attempts WHERE state = 'succeeded'",
+    )
+    .first()
+    .and_then(|n| n.parse().ok())
+    .unwrap_or(0)
+}
+
+/// A query's first column (text) through a read-only connection: empty while the store is
+/// not there or not readable yet (a run may be creating it).
+pub fn strings_ro(ws: &Path, sql: &'static str) -> Vec<String> {
     let db = ws.join("rondo.db");
     if !db.is_file() {
-        return 0;
+        return Vec::new();
     }
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
@@ -302,14 +314,14 @@ pub fn succeeded_attempts_ro(ws: &Path) -> i64 {
             .read_only(true)
             .busy_timeout(std::time::Duration::from_secs(5));
         let Ok(pool) = sqlx::SqlitePool::connect_with(opts).await else {
-            return 0;
+            return Vec::new();
         };
-        let n = sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'succeeded'")
-            .fetch_one(&pool)
+        let rows = sqlx::query_scalar(sql)
+            .fetch_all(&pool)
             .await
-            .unwrap_or(0);
+            .unwrap_or_default();
         pool.close().await;
-        n
+        rows
     })
 }
 

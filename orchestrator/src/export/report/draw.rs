@@ -23,13 +23,7 @@ where
     DB: DrawingBackend,
     DB::ErrorType: 'static,
 {
-    let (top, body) = root.split_vertically(36);
-    top.draw(&Text::new(
-        title.to_string(),
-        (12, 8),
-        ("sans-serif", 22).into_font(),
-    ))
-    .map_err(pe)?;
+    let body = titled(root, title)?;
     let areas = body.split_evenly((rows.len().max(1), 2));
     for (r, (name, values, change)) in rows.iter().enumerate() {
         let lk = plain(PALETTE[r % PALETTE.len()]);
@@ -225,13 +219,7 @@ where
     DB: DrawingBackend,
     DB::ErrorType: 'static,
 {
-    let (top, body) = root.split_vertically(36);
-    top.draw(&Text::new(
-        title.to_string(),
-        (12, 8),
-        ("sans-serif", 22).into_font(),
-    ))
-    .map_err(pe)?;
+    let body = titled(root, title)?;
     let areas = body.split_evenly((1, if finals.is_some() { 2 } else { 1 }));
     let n_it = changes
         .iter()
@@ -334,4 +322,20 @@ where
     }
     draw_legend(&mut c, SeriesLabelPosition::UpperRight)?;
     Ok(())
+}
+
+/// Draw a figure's title in a 36-pixel band at the top; the area below it.
+fn titled<DB>(root: &DrawingArea<DB, Shift>, title: &str) -> Result<DrawingArea<DB, Shift>>
+where
+    DB: DrawingBackend,
+    DB::ErrorType: 'static,
+{
+    let (top, body) = root.split_vertically(36);
+    top.draw(&Text::new(
+        title.to_string(),
+        (12, 8),
+        ("sans-serif", 22).into_font(),
+    ))
+    .map_err(pe)?;
+    Ok(body)
 }
