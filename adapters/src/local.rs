@@ -246,6 +246,19 @@ async fn terminate_attempt(
 }
 
 /// Poll until no live process of the attempt remains or `deadline` passes.
+/// TERM the process group `pgid` (of our own child), wait up to `grace` for it to go, then
+/// KILL it.
+async fn end_bare_group(pgid: i32, grace: Duration) {
+    let _ = sys::signal_group(pgid, libc::SIGTERM);
+    let deadline = Instant::now() + grace;
+    while sys::group_exists(pgid) && Instant::now() < deadline {
+        tokio::time::sleep(POLL).await;
+    }
+    if sys::group_exists(pgid) {
+        let _ = sys::signal_group(pgid, libc::SIGKILL);
+    }
+}
+
 async fn wait_until_gone(workspace_id: &str, attempt_id: i64, deadline: Instant) -> bool {
     loop {
         if sys::attempt_processes(workspace_id, attempt_id).is_empty() {
@@ -383,7 +396,15 @@ async fn supervise(mut s: Supervised) {
                 "program exited but left processes behind; ending them"
             );
         }
-        terminate_attempt(ws, s.attempt_id, Some(s.pgid), grace).await;
+        if !terminate_attempt(ws, s.attempt_id, Some(s.pgid), grace).await
+            && sys::group_exists(s.pgid)
+        {
+            // No member was readable by its environment (a process can be unreadable for an
+            // instant while it forks or execs), yet the group of our own child, just reaped,
+            // still has members: it is ours, since a group id is not reused while any
+            // process is in it.
+            end_bare_group(s.pgid, grace).await;
+        }
     }
     for log in std::mem::take(&mut s.logs) {
         log.finish(s.attempt_id).await;
