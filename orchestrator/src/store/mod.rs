@@ -36,64 +36,61 @@ use sqlx::sqlite::{
 
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
-    let m = vec![
-        Migration::new(
+    // (version, description, SQL), in order.
+    let steps: [(i64, &str, &'static str); 8] = [
+        (
             1,
-            "initial".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0001_initial.sql").into(),
-            false,
+            "initial",
+            include_str!("../../migrations/0001_initial.sql"),
         ),
-        Migration::new(
+        (
             2,
-            "report provenance".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0002_report_provenance.sql").into(),
-            false,
+            "report provenance",
+            include_str!("../../migrations/0002_report_provenance.sql"),
         ),
-        Migration::new(
+        (
             3,
-            "point started trigger".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0003_point_started_trigger.sql").into(),
-            false,
+            "point started trigger",
+            include_str!("../../migrations/0003_point_started_trigger.sql"),
         ),
-        Migration::new(
+        (
             4,
-            "program hash unknown".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0004_program_hash_unknown.sql").into(),
-            false,
+            "program hash unknown",
+            include_str!("../../migrations/0004_program_hash_unknown.sql"),
         ),
-        Migration::new(
+        (
             5,
-            "rules met index".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0005_rules_met_index.sql").into(),
-            false,
+            "rules met index",
+            include_str!("../../migrations/0005_rules_met_index.sql"),
         ),
-        Migration::new(
+        (
             6,
-            "folders".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0006_folders.sql").into(),
-            false,
+            "folders",
+            include_str!("../../migrations/0006_folders.sql"),
         ),
-        Migration::new(
+        (
             7,
-            "attempt env".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0007_attempt_env.sql").into(),
-            false,
+            "attempt env",
+            include_str!("../../migrations/0007_attempt_env.sql"),
         ),
-        Migration::new(
+        (
             8,
-            "retention".into(),
-            MigrationType::Simple,
-            include_str!("../../migrations/0008_retention.sql").into(),
-            false,
+            "retention",
+            include_str!("../../migrations/0008_retention.sql"),
         ),
     ];
+    let m: Vec<Migration> = steps
+        .into_iter()
+        .map(|(version, what, sql)| {
+            Migration::new(
+                version,
+                what.into(),
+                MigrationType::Simple,
+                sql.into(),
+                false,
+            )
+        })
+        .collect();
     Migrator {
         migrations: m.into(),
         ..Migrator::DEFAULT
