@@ -451,8 +451,8 @@ impl Engine<'_> {
                         Some(Utc::now()),
                         Some(host.clone()),
                     );
-                    if let Ended::Ok { event, .. } = &mut ended {
-                        *event = report.event;
+                    if let Ended::Ok(done) = &mut ended {
+                        done.event = report.event;
                     }
                     ended
                 }

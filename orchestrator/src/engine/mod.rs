@@ -330,19 +330,23 @@ struct InFlight {
     on_host: bool,
 }
 
+/// A success as settle records it.
+pub(super) struct Success {
+    metrics: Vec<Metric>,
+    /// The outputs, stored as artifacts (empty until stored).
+    outs: Vec<StoredOutput>,
+    /// The members of the folder outputs among them (empty until stored).
+    folders: Vec<FolderMembers>,
+    started: Option<DateTime<Utc>>,
+    ended: Option<DateTime<Utc>>,
+    host: Option<String>,
+    event: Option<String>,
+}
+
 /// How an attempt ended, after output checks.
 enum Ended {
-    Ok {
-        metrics: Vec<Metric>,
-        /// The outputs, stored as artifacts (empty until stored).
-        outs: Vec<StoredOutput>,
-        /// The members of the folder outputs among them (empty until stored).
-        folders: Vec<FolderMembers>,
-        started: Option<DateTime<Utc>>,
-        ended: Option<DateTime<Utc>>,
-        host: Option<String>,
-        event: Option<String>,
-    },
+    /// It succeeded (outputs and metrics checked).
+    Ok(Success),
     Failed {
         kind: String,
         message: String,

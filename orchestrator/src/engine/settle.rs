@@ -176,26 +176,9 @@ impl Engine<'_> {
     ) -> Result<()> {
         self.inflight.remove(&id);
         match ended {
-            Ended::Ok {
-                metrics,
-                outs,
-                folders,
-                started,
-                ended,
-                host,
-                event,
-            } => {
+            Ended::Ok(done) => {
                 let Some(fl) = fl else {
                     bail!("internal: success without a stage");
-                };
-                let done = Success {
-                    metrics,
-                    outs,
-                    folders,
-                    started,
-                    ended,
-                    host,
-                    event,
                 };
                 self.settle_success(id, fl, done).await
             }
@@ -392,17 +375,6 @@ impl Engine<'_> {
     }
 }
 
-/// A success as settle records it.
-struct Success {
-    metrics: Vec<Metric>,
-    outs: Vec<StoredOutput>,
-    folders: Vec<FolderMembers>,
-    started: Option<DateTime<Utc>>,
-    ended: Option<DateTime<Utc>>,
-    host: Option<String>,
-    event: Option<String>,
-}
-
 /// An attempt's outputs to check and store, off the engine's thread.
 pub(super) struct OutputJob {
     pub(super) id: i64,
@@ -425,32 +397,21 @@ impl OutputJob {
     /// unless the user keeps the scratch folders to work in them).
     pub(super) fn store(self, ended: Ended) -> Checked {
         let result = match ended {
-            Ended::Ok {
-                metrics,
-                started,
-                ended,
-                host,
-                event,
-                ..
-            } => match self.store_files() {
-                Ok(Stored::All(outs, folders)) => Ok(Ended::Ok {
-                    metrics,
+            Ended::Ok(done) => match self.store_files() {
+                Ok(Stored::All(outs, folders)) => Ok(Ended::Ok(Success {
                     outs,
                     folders,
-                    started,
-                    ended,
-                    host,
-                    event,
-                }),
+                    ..done
+                })),
                 // A folder the store does not take (a link out of it, a FIFO, a glob with
                 // no match): the attempt failed, the run goes on.
                 Ok(Stored::Refused(message)) => Ok(Ended::Failed {
                     kind: "refused-output".into(),
                     message,
                     exit_status: Some(0),
-                    started,
-                    ended,
-                    host,
+                    started: done.started,
+                    ended: done.ended,
+                    host: done.host,
                     free: false,
                     state: AttemptState::Failed,
                 }),
@@ -599,7 +560,7 @@ pub(super) fn check_outputs(
             Err(inv) => return fail(inv),
         },
     };
-    Ended::Ok {
+    Ended::Ok(Success {
         metrics,
         outs: Vec::new(),
         folders: Vec::new(),
@@ -607,7 +568,7 @@ pub(super) fn check_outputs(
         ended,
         host,
         event: None,
-    }
+    })
 }
 
 /// A command or shell stage's metrics: those of `metrics.json` (required there unless
