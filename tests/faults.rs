@@ -509,6 +509,11 @@ fn a_database_with_a_damaged_last_page_is_refused_and_nothing_is_written() {
         std::fs::metadata(ws.join("rondo.db-wal")).map_or(true, |m| m.len() == 0),
         "a log is left"
     );
+    // ... and seals it (store/seal.rs): the damage below must be found all the same.
+    assert!(
+        ws.join("rondo.db.sealed").is_file(),
+        "no seal after a clean stop"
+    );
     let db = ws.join("rondo.db");
     let mut bytes = std::fs::read(&db).unwrap_or_else(|e| panic!("{e}"));
     let page = u16::from_be_bytes([bytes[16], bytes[17]]) as usize;

@@ -510,6 +510,8 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         .await?;
     engine.progress.finish();
     engine.ledger.close().await;
+    // Closed cleanly, still under the lock: the next start may skip the page check.
+    store::seal::seal(&engine.paths.db);
     drop(ws);
     Ok(summary)
 }

@@ -33,6 +33,9 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
     std::fs::create_dir_all(&paths.root)
         .with_context(|| format!("{}: cannot create the workspace", paths.root.display()))?;
     let lock = store::lock(&paths.root)?;
+    // From here the database may be written: only a clean end seals it again.
+    store::seal::break_seal(&paths.db)
+        .with_context(|| format!("{}: cannot remove the seal", paths.db.display()))?;
     let pool = store::open(&paths.db).await?;
     let artifacts = ArtifactStore::open(&paths.store).with_context(|| {
         format!(

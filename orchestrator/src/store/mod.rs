@@ -13,6 +13,7 @@ pub mod overview;
 mod plans;
 pub mod reads;
 pub mod retention;
+pub mod seal;
 pub mod states;
 
 pub use ledger::{Flushed, Ledger};
@@ -450,9 +451,14 @@ pub fn writable(path: &Path) -> bool {
 /// Refuse an existing database file that SQLite's `PRAGMA quick_check` finds damaged
 /// (every page is read, without the index cross-checks of `integrity_check`: linear in the
 /// file's size), through a read-only connection, so that nothing — not the workspace lock,
-/// not a migration — is written to a damaged workspace. An absent file passes.
+/// not a migration — is written to a damaged workspace. An absent file passes, and so does
+/// one that nothing has written since a clean close (its seal matches, store/seal.rs).
 pub async fn refuse_damaged(db: &Path) -> Result<()> {
     if !db.exists() {
+        return Ok(());
+    }
+    if seal::matches(db) {
+        // Nothing wrote the file since a clean close that found it whole (store/seal.rs).
         return Ok(());
     }
     let opts = SqliteConnectOptions::new()
