@@ -578,6 +578,157 @@ fn a_read_only_workspace_is_refused_clearly_and_nothing_is_written() {
     assert_eq!(code(&o), Some(0), "{}", shown(&o));
 }
 
+/// An ext4 file system in a file, mounted (loop device, `errors=remount-ro`) at a path, and
+/// unmounted when dropped.
+struct LoopFs {
+    image: PathBuf,
+    at: PathBuf,
+}
+
+impl LoopFs {
+    fn make(image: PathBuf, at: &Path) -> Result<LoopFs, String> {
+        let run = |cmd: &mut Command| -> Result<(), String> {
+            let o = cmd.output().map_err(|e| format!("{cmd:?}: {e}"))?;
+            o.status
+                .success()
+                .then_some(())
+                .ok_or_else(|| format!("{cmd:?}: {}", String::from_utf8_lossy(&o.stderr)))
+        };
+        let f = std::fs::File::create(&image).map_err(|e| e.to_string())?;
+        f.set_len(64 << 20).map_err(|e| e.to_string())?;
+        run(Command::new("mkfs.ext4").args(["-q", "-F"]).arg(&image))?;
+        std::fs::create_dir_all(at).map_err(|e| e.to_string())?;
+        let fs = LoopFs {
+            image,
+            at: at.to_path_buf(),
+        };
+        fs.mount()?;
+        Ok(fs)
+    }
+
+    fn mount(&self) -> Result<(), String> {
+        let o = Command::new("mount")
+            .args(["-o", "loop,errors=remount-ro"])
+            .arg(&self.image)
+            .arg(&self.at)
+            .output()
+            .map_err(|e| e.to_string())?;
+        o.status
+            .success()
+            .then_some(())
+            .ok_or_else(|| format!("mount: {}", String::from_utf8_lossy(&o.stderr)))
+    }
+
+    /// What the kernel does on a disk error: the file system turns itself read-only under its
+    /// writers (ext4's `trigger_fs_error`, the same path as a real metadata error).
+    fn fail(&self) {
+        let o = Command::new("findmnt")
+            .args(["-no", "SOURCE"])
+            .arg(&self.at)
+            .output()
+            .unwrap_or_else(|e| panic!("findmnt: {e}"));
+        let source = String::from_utf8_lossy(&o.stdout).trim().to_string();
+        let dev = source.rsplit('/').next().unwrap_or_default().to_string();
+        std::fs::write(
+            format!("/sys/fs/ext4/{dev}/trigger_fs_error"),
+            "test fault\n",
+        )
+        .unwrap_or_else(|e| panic!("trigger_fs_error of {source}: {e}"));
+    }
+
+    /// Unmount, repair as an administrator would (`e2fsck -fy`), and mount writable again.
+    fn repair(&self) {
+        let o = Command::new("umount").arg(&self.at).output();
+        assert!(o.is_ok_and(|o| o.status.success()), "umount");
+        let o = Command::new("e2fsck")
+            .args(["-fy"])
+            .arg(&self.image)
+            .output()
+            .unwrap_or_else(|e| panic!("e2fsck: {e}"));
+        // 0: clean, 1: errors corrected.
+        assert!(matches!(o.status.code(), Some(0 | 1)), "e2fsck: {o:?}");
+        self.mount().unwrap_or_else(|e| panic!("{e}"));
+    }
+}
+
+impl Drop for LoopFs {
+    fn drop(&mut self) {
+        let _ = Command::new("umount").arg("-l").arg(&self.at).output();
+    }
+}
+
+#[test]
+fn a_workspace_that_becomes_read_only_mid_run_stops_clearly_and_continues_when_writable() {
+    let tools = ["mkfs.ext4", "e2fsck", "findmnt", "mount", "umount"];
+    if !is_root() || !Path::new("/dev/loop-control").exists() {
+        skip_isolation("an ext4 file system on a loop device needs root and /dev/loop-control");
+        return;
+    }
+    let reference = reference();
+    let d = campaign_dir();
+    let ws = ws_of(d.path());
+    let fs = match LoopFs::make(d.path().join("disk.img"), &ws) {
+        Ok(fs) => fs,
+        Err(e) => {
+            skip_isolation(&format!(
+                "cannot make an ext4 file system on a loop device ({tools:?}): {e}"
+            ));
+            return;
+        }
+    };
+    write(&d.path().join("hold"), "");
+    let child = Command::new(rondo())
+        .args(["run", "c.yaml", "-q", "--max-running", "2"])
+        .current_dir(d.path())
+        .env("PATH", path_with_binaries())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
+    let id = workspace_id_when_ready(&ws);
+    let sleeping = || -> Vec<i32> {
+        processes_of_workspace(&id)
+            .into_iter()
+            .filter(|pid| {
+                std::fs::read_to_string(format!("/proc/{pid}/cmdline"))
+                    .is_ok_and(|c| c.starts_with("sleep\0"))
+            })
+            .collect()
+    };
+    wait_for("both points asleep in their third iteration", || {
+        sleeping().len() == 2
+    });
+    fs.fail();
+    // The sleeping stages go on: each now writes its outputs into a read-only scratch folder,
+    // and rondo has to record that.
+    for pid in sleeping() {
+        // SAFETY: signalling a sleep(1) process of this test's workspace by pid.
+        unsafe { libc::kill(pid, libc::SIGTERM) };
+    }
+    let o = child
+        .wait_with_output()
+        .unwrap_or_else(|e| panic!("wait: {e}"));
+    let err = stderr(&o);
+    assert_eq!(code(&o), Some(1), "{err}");
+    assert!(
+        err.contains(&ws.display().to_string()) && err.contains("became read-only"),
+        "names the workspace and says why: {err}"
+    );
+    assert!(
+        processes_of_workspace(&id).is_empty(),
+        "children left behind"
+    );
+    // Repaired and writable again: the next run continues to the same numbers.
+    fs.repair();
+    std::fs::remove_file(d.path().join("hold")).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(code(&o), Some(0), "{}", shown(&o));
+    assert_same_record(&reference, &record(&ws), 0);
+    assert_no_double_success_nor_children(&ws, 0);
+    assert!(unfinished_attempts(&ws).is_empty());
+    drop(fs);
+}
+
 #[test]
 fn a_workspace_moved_between_runs_continues_at_its_new_path() {
     let reference = reference();

@@ -95,6 +95,38 @@ pub fn detect(path: &Path) -> std::io::Result<FsKind> {
     Ok(classify(t))
 }
 
+/// Why the folder `path` cannot be written now, if it cannot: its file system is mounted
+/// read-only (`statvfs`'s `ST_RDONLY`), or creating a file in it fails with EROFS (a file
+/// system that turned itself read-only after an error while still listed as mounted
+/// read-write) or EIO. None when a probe file can be created (and is removed again).
+pub fn unwritable_now(path: &Path) -> Option<String> {
+    use std::os::unix::ffi::OsStrExt;
+    let c = CString::new(path.as_os_str().as_bytes()).ok()?;
+    // SAFETY: `c` is a valid NUL-terminated path; `buf` is a zeroed statvfs the call fills.
+    let mut buf: libc::statvfs = unsafe { std::mem::zeroed() };
+    if unsafe { libc::statvfs(c.as_ptr(), &mut buf) } == 0 && buf.f_flag & libc::ST_RDONLY != 0 {
+        return Some("its file system is mounted read-only".into());
+    }
+    let probe = path.join(format!(".rondo-probe-{}", std::process::id()));
+    match std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(&probe)
+    {
+        Ok(_) => {
+            let _ = std::fs::remove_file(&probe);
+            None
+        }
+        Err(e) if e.raw_os_error() == Some(libc::EROFS) => {
+            Some("its file system became read-only (EROFS on a new file)".into())
+        }
+        Err(e) if e.raw_os_error() == Some(libc::EIO) => {
+            Some("its file system fails with I/O errors (EIO on a new file)".into())
+        }
+        Err(_) => None,
+    }
+}
+
 /// How the store journals its transactions.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Journal {

@@ -46,7 +46,10 @@ pub async fn run(a: RunArgs) -> Result<u8> {
             env.in_allocation().then_some(env)
         },
     };
-    let summary = engine::run(&c, &opts, Progress::for_stderr(a.quiet)).await?;
+    let summary = match engine::run(&c, &opts, Progress::for_stderr(a.quiet)).await {
+        Ok(summary) => summary,
+        Err(e) => return Err(said_read_only(e, &opts.workspace)),
+    };
     if !a.quiet {
         let counts = summary
             .by_text()
@@ -57,6 +60,22 @@ pub async fn run(a: RunArgs) -> Result<u8> {
         eprintln!("rondo: {}: {counts}", c.name);
     }
     Ok(exit_code(&summary))
+}
+
+/// A run that failed because its workspace's file system turned read-only under it (a disk
+/// error, an administrator's remount) says so first: the store holds what was committed
+/// before, and the same `rondo run` continues once the file system is writable again.
+fn said_read_only(e: anyhow::Error, workspace: &std::path::Path) -> anyhow::Error {
+    let Some(why) = crate::fsinfo::unwritable_now(workspace) else {
+        return e;
+    };
+    e.context(format!(
+        "{}: the workspace became read-only during the run ({why}); nothing after the last \
+         committed record was written and the running attempts were ended; when it is \
+         writable again (ask your administrators if it failed after a disk error), the same \
+         `rondo run` continues",
+        workspace.display()
+    ))
 }
 
 /// The executor `--on` names, polling the scheduler every `poll_interval` seconds.
