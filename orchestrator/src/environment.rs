@@ -73,6 +73,18 @@ pub fn recorded_json() -> String {
     serde_json::to_string(&kept).unwrap_or_else(|_| "{}".to_string())
 }
 
+/// The recorded environment of an attempt of a stage that sets `env:`: the recorded part of
+/// rondo's environment (`base`, as [`recorded_json`] made it) with every variable the stage
+/// sets, whatever its name (the campaign file names them, and refuses names that mark a
+/// secret), over it.
+pub fn with_stage(base: &str, stage_env: &[(String, String)]) -> String {
+    let mut vars: BTreeMap<String, String> = serde_json::from_str(base).unwrap_or_default();
+    for (k, v) in stage_env {
+        vars.insert(k.clone(), v.clone());
+    }
+    serde_json::to_string(&vars).unwrap_or_else(|_| "{}".to_string())
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

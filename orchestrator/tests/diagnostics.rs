@@ -1177,6 +1177,91 @@ stop: { max-iterations: 1 }
             at: (9, 16),
         },
         Case {
+            site: "built-in stage `{sname}` takes no `env`: it runs inside rondo",
+            says: "built-in stage `m` takes no `env`",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  m:
+    builtin: mix
+    inputs: { x: start.x }
+    outputs: { x: x.json }
+    settings: { method: linear, alpha: 0.5 }
+    env: { OMP_NUM_THREADS: 2 }
+stop: { max-iterations: 1 }
+",
+            at: (9, 12),
+        },
+        Case {
+            site: "stage `{sname}`: `env` names `{name}`, which is not a variable name",
+            says: "`env` names `2THREADS`, which is not a variable name",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    env: { 2THREADS: 2 }
+stop: { max-iterations: 1 }
+",
+            at: (5, 12),
+        },
+        Case {
+            site: "stage `{sname}`: `env` sets `{name}`; names starting with RONDO_ are rondo's",
+            says: "`env` sets `RONDO_POINT`; names starting with RONDO_ are rondo's",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    env:
+      RONDO_POINT: p1
+stop: { max-iterations: 1 }
+",
+            at: (6, 7),
+        },
+        Case {
+            site: "stage `{sname}`: `env` sets `{name}`, whose name marks a secret; the campaign file is recorded in the workspace",
+            says: "`env` sets `API_TOKEN`, whose name marks a secret",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    env:
+      OMP_NUM_THREADS: 2
+      API_TOKEN: abc
+stop: { max-iterations: 1 }
+",
+            at: (7, 7),
+        },
+        Case {
+            site: "built-in stage `{sname}` takes no `also-runs`: it runs inside rondo",
+            says: "built-in stage `m` takes no `also-runs`",
+            yaml: "campaign: t
+programs: { t: { path: /bin/true } }
+start: { x: x.json }
+cycle:
+  m:
+    builtin: mix
+    inputs: { x: start.x }
+    outputs: { x: x.json }
+    settings: { method: linear, alpha: 0.5 }
+    also-runs: [t]
+stop: { max-iterations: 1 }
+",
+            at: (10, 17),
+        },
+        Case {
+            site: "stage `{sname}`: `also-runs` names `{}`, which is not under `programs:`",
+            says: "`also-runs` names `solver`, which is not under `programs:`",
+            yaml: "campaign: t
+programs: { t: { path: /bin/true } }
+cycle:
+  s:
+    run: [t]
+    also-runs: [t, solver]
+stop: { max-iterations: 1 }
+",
+            at: (6, 20),
+        },
+        Case {
             site: "hooks: time limit `{}` is not a duration",
             says: "hooks: time limit `soon` is not a duration",
             yaml: "campaign: t

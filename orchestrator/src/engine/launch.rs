@@ -124,7 +124,11 @@ impl Engine<'_> {
             seed: uses_seed.then(|| seed.to_string()),
             created_at: store::now(),
             host: local_host,
-            env_json: Some(self.env_json.clone()),
+            env_json: Some(if stage.env.is_empty() {
+                self.env_json.clone()
+            } else {
+                crate::environment::with_stage(&self.env_json, &stage.env)
+            }),
             inputs: inputs
                 .iter()
                 .map(|(role, hash, _)| (role.clone(), hash.clone()))
@@ -488,7 +492,8 @@ impl Engine<'_> {
             self.ledger.write(|s| s.new_attempts(vec![row])).await?;
         }
         let point = &self.points[fl.point].spec;
-        let mut env = BTreeMap::new();
+        // The stage's own variables first; rondo's (RONDO_*, which `env:` may not set) last.
+        let mut env: BTreeMap<String, String> = stage.env.iter().cloned().collect();
         env.insert("RONDO_POINT".to_string(), point.id.clone());
         env.insert("RONDO_ITERATION".to_string(), fl.iteration.to_string());
         env.insert("RONDO_STAGE".to_string(), stage.name.clone());

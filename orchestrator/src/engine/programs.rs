@@ -117,7 +117,7 @@ impl Engine<'_> {
                     Some(format!("rondo {RONDO_VERSION}")),
                 )
             }
-            StageKind::Command { program, .. } => {
+            StageKind::Command { program, .. } if stage.also_runs.is_empty() => {
                 let Some(resolved) = self.campaign.programs.get(program).cloned() else {
                     bail!("internal: program `{program}` was not resolved");
                 };
@@ -127,38 +127,64 @@ impl Engine<'_> {
                     .await;
                 built(&resolved.path, Ok(hash), version)
             }
-            StageKind::Shell { programs, .. } => {
-                let mut list = String::new();
-                let mut described = Vec::new();
-                for name in programs {
-                    let Some(resolved) = self.campaign.programs.get(name).cloned() else {
-                        bail!("internal: program `{name}` was not resolved");
-                    };
-                    let (hash, version) = self
-                        .programs
-                        .get(&resolved.path, resolved.version_flag.as_deref())
-                        .await;
-                    let path = resolved.path.display().to_string();
-                    list.push_str(&format!("{name}\t{path}\t{hash}\n"));
-                    described.push(format!(
-                        "{name} = {path} (BLAKE3 {hash}{})",
-                        version
-                            .map(|v| format!("; version {v}"))
-                            .unwrap_or_default()
-                    ));
-                }
-                let text = if described.is_empty() {
-                    "shell script naming no program of `programs:`".to_string()
-                } else {
-                    format!("shell script; programs: {}", described.join("; "))
+            StageKind::Command { program, .. } => {
+                // A wrapper and the programs it runs (`also-runs`): one hash over all of
+                // them, as for a shell stage, with the wrapper's path as the program.
+                let Some(resolved) = self.campaign.programs.get(program).cloned() else {
+                    bail!("internal: program `{program}` was not resolved");
                 };
+                let mut names = vec![program.clone()];
+                names.extend(stage.also_runs.iter().filter(|n| *n != program).cloned());
+                names.sort();
+                let (hash, text) = self.program_list(&names).await?;
                 built(
-                    Path::new("/bin/sh"),
-                    Ok(blake3::hash(list.as_bytes()).to_hex().to_string()),
-                    Some(text),
+                    &resolved.path,
+                    Ok(hash),
+                    Some(format!("program and what it runs: {text}")),
                 )
             }
+            StageKind::Shell { programs, .. } => {
+                let mut names = programs.clone();
+                names.extend(stage.also_runs.iter().cloned());
+                names.sort();
+                names.dedup();
+                let (hash, text) = self.program_list(&names).await?;
+                let text = if names.is_empty() {
+                    "shell script naming no program of `programs:`".to_string()
+                } else {
+                    format!("shell script; programs: {text}")
+                };
+                built(Path::new("/bin/sh"), Ok(hash), Some(text))
+            }
         })
+    }
+
+    /// The BLAKE3 of the list `NAME<tab>PATH<tab>BLAKE3<newline>` of programs (in the
+    /// order given), and a text naming each with its path, hash and version.
+    async fn program_list(&mut self, names: &[String]) -> Result<(String, String)> {
+        let mut list = String::new();
+        let mut described = Vec::new();
+        for name in names {
+            let Some(resolved) = self.campaign.programs.get(name).cloned() else {
+                bail!("internal: program `{name}` was not resolved");
+            };
+            let (hash, version) = self
+                .programs
+                .get(&resolved.path, resolved.version_flag.as_deref())
+                .await;
+            let path = resolved.path.display().to_string();
+            list.push_str(&format!("{name}\t{path}\t{hash}\n"));
+            described.push(format!(
+                "{name} = {path} (BLAKE3 {hash}{})",
+                version
+                    .map(|v| format!("; version {v}"))
+                    .unwrap_or_default()
+            ));
+        }
+        Ok((
+            blake3::hash(list.as_bytes()).to_hex().to_string(),
+            described.join("; "),
+        ))
     }
 
     /// The program of a stage changed since an earlier iteration of this point ran it: stop
@@ -171,9 +197,10 @@ impl Engine<'_> {
         now: &BuiltWith,
     ) -> Result<()> {
         let iteration = self.points[p].iteration;
+        let listed = matches!(stage.kind, StageKind::Shell { .. }) || !stage.also_runs.is_empty();
         let what = match &stage.kind {
-            StageKind::Shell { .. } => format!(
-                "the programs of shell stage `{}` changed between iterations: iteration {} ran \
+            _ if listed => format!(
+                "the programs of stage `{}` changed between iterations: iteration {} ran \
                  with {} (BLAKE3 {} over them), now {} (BLAKE3 {})",
                 stage.name,
                 before.iteration,

@@ -1,5 +1,5 @@
 //! Side-by-side comparison of two points (`rondo diff`), of one workspace or of two: sweep
-//! values, parameters, programs, stopping rules, first-iteration inputs, and where each
+//! values, parameters, environment, programs, stopping rules, first-iteration inputs, and where each
 //! metric first diverges. Reads the store through [`crate::store::reads`] only.
 
 use std::collections::{BTreeMap, BTreeSet};
@@ -119,6 +119,9 @@ pub struct PointDiff {
     pub sweep_values: Vec<ValueDiff>,
     /// Resolved parameters (other than sweep values) that differ, as `stage.name`.
     pub parameters: Vec<ValueDiff>,
+    /// Recorded environment variables that differ, as `stage.NAME`, from each stage's first
+    /// succeeded attempt (attempts recorded without an environment compare as empty).
+    pub environment: Vec<ValueDiff>,
     /// Stages whose programs differ, per run of iterations.
     pub programs: Vec<ProgramDiff>,
     /// Programs that changed within A or within B.
@@ -138,6 +141,8 @@ struct PointData {
     stop: Value,
     /// stage → first succeeded attempt's parameters.
     params: BTreeMap<String, Value>,
+    /// stage → first succeeded attempt's recorded environment.
+    env: BTreeMap<String, Value>,
     /// stage → iteration → program of the succeeded attempt.
     programs: BTreeMap<String, BTreeMap<i64, ProgramRef>>,
     first_inputs: BTreeMap<(String, String), String>,
@@ -163,6 +168,7 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
         side,
         stop: stop_section(&c.spec_text)?,
         params: BTreeMap::new(),
+        env: BTreeMap::new(),
         programs: BTreeMap::new(),
         first_inputs: BTreeMap::new(),
         metrics: BTreeMap::new(),
@@ -185,6 +191,11 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
                 r.stage.clone(),
                 opt_json(&r.parameters_json, "parameters_json", r.id)?,
             );
+            let env = match &r.env_json {
+                Some(e) => opt_json(e, "env_json", r.id)?,
+                None => Value::Object(Default::default()),
+            };
+            d.env.insert(r.stage.clone(), env);
         }
         let fi = *first_iter.entry(r.stage.clone()).or_insert(r.iteration);
         if fi == r.iteration {
@@ -277,6 +288,17 @@ pub async fn diff(
             &mut parameters,
         );
     }
+    let mut environment = Vec::new();
+    let env_stages: BTreeSet<&String> = a.env.keys().chain(b.env.keys()).collect();
+    for s in &env_stages {
+        map_diff(
+            &format!("{s}."),
+            a.env.get(*s),
+            b.env.get(*s),
+            &BTreeSet::new(),
+            &mut environment,
+        );
+    }
     let (programs, program_changes) = program_diffs(&a.programs, &b.programs);
     let stop = (a.stop != b.stop).then(|| StopDiff {
         a: a.stop.clone(),
@@ -289,6 +311,7 @@ pub async fn diff(
         b: b.side,
         sweep_values,
         parameters,
+        environment,
         programs,
         program_changes,
         stop,

@@ -73,6 +73,10 @@ impl PointDiff {
         for d in &self.parameters {
             let _ = writeln!(s, "  {:<24} A {:<16} B {}", d.name, show(&d.a), show(&d.b));
         }
+        section(&mut s, "environment", self.environment.is_empty());
+        for d in &self.environment {
+            let _ = writeln!(s, "  {:<24} A {:<16} B {}", d.name, show(&d.a), show(&d.b));
+        }
         section(
             &mut s,
             "programs",

@@ -148,6 +148,11 @@ pub struct Stage {
     /// HDF5 outputs: role → the dataset paths the file must hold (`outputs: { ROLE: {
     /// file: F, hdf5: [...] } }`), in file order.
     pub hdf5_outputs: Vec<(String, Vec<String>)>,
+    /// Environment variables set for the program (`env`), name → value, in file order.
+    pub env: Vec<(String, String)>,
+    /// Further programs of `programs:` that the stage's program runs (`also-runs`), sorted:
+    /// their hashes join the stage's recorded program.
+    pub also_runs: Vec<String>,
 }
 
 /// One metric read from a file the stage writes (`read-metrics:`), checked.

@@ -348,6 +348,18 @@ pub struct StageSpec {
     #[serde(default)]
     #[schemars(with = "Option<CaseFolderSpec>")]
     pub case_folder: Option<Spanned<CaseFolderSpec>>,
+    /// Environment variables for the stage's program, name → value (for example
+    /// `OMP_NUM_THREADS: 4`). Recorded with every attempt; names starting with `RONDO_` and
+    /// names that mark a secret are refused.
+    #[serde(default)]
+    #[schemars(with = "BTreeMap<String, Scalar>")]
+    pub env: OrderedMap<Spanned<Scalar>>,
+    /// Programs of `programs:` that the stage's program (a wrapper script) runs in turn: their
+    /// hashes and version texts are recorded with the stage's own, and a change of any of
+    /// them between iterations stops the point like a change of the stage's program.
+    #[serde(default)]
+    #[schemars(with = "Vec<String>")]
+    pub also_runs: Vec<Spanned<String>>,
 }
 
 /// `case-folder:` of a command or shell stage.

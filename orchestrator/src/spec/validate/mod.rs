@@ -19,6 +19,7 @@ mod programs;
 mod resources;
 mod rules;
 mod schedules;
+mod stage_env;
 mod stages;
 mod start;
 mod sweep;

@@ -125,6 +125,8 @@ impl Validator<'_> {
         let placement = self.placement(&sname, st, &kind);
         let keep = self.keep(&sname, st);
         let case_folder = self.case_folder(cx.raw, &sname, st, &kind);
+        let env = self.stage_env(&sname, st, &kind);
+        let also_runs = self.also_runs(&sname, st, &kind, &cx.declared, programs);
         Some(Stage {
             name: sname,
             kind,
@@ -141,6 +143,8 @@ impl Validator<'_> {
             case_folder,
             metric_sources,
             hdf5_outputs,
+            env,
+            also_runs,
         })
     }
 

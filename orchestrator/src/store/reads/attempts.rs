@@ -211,12 +211,15 @@ pub struct PointAttemptRow {
     pub parameters_json: String,
     /// State.
     pub state: AttemptState,
+    /// The recorded environment (`env_json`), if any.
+    pub env_json: Option<String>,
 }
 
 /// Every attempt of a point, by iteration and id.
 pub async fn of_point(pool: &SqlitePool, point: &str) -> Result<Vec<PointAttemptRow>> {
     let rows = sqlx::query(
-        "SELECT id, iteration, stage, program_path, program_blake3, program_version, parameters_json, state
+        "SELECT id, iteration, stage, program_path, program_blake3, program_version, parameters_json, state,
+                env_json
          FROM attempts WHERE point = ? ORDER BY iteration, id",
     )
     .bind(point)
@@ -233,6 +236,7 @@ pub async fn of_point(pool: &SqlitePool, point: &str) -> Result<Vec<PointAttempt
             program_version: r.try_get(5)?,
             parameters_json: r.try_get(6)?,
             state: r.try_get(7)?,
+            env_json: r.try_get(8)?,
         });
     }
     Ok(out)
