@@ -347,7 +347,9 @@ async fn a1_time_limit_kill_is_timed_out_and_retried_longer() {
     let (tx, mut rx) = unbounded_channel();
     let ex = SlurmExecutor::new(config(), "ws-test".into(), tx);
     let dir = tempfile::tempdir().expect("tempdir");
-    let mut req = request(31, dir.path(), "sleep 300; echo never > out.txt");
+    // `&&`, not `;`: Slurm signals the step's processes one by one, so a shell whose `sleep`
+    // was ended first could still run a `;`-joined next command before its own SIGTERM lands.
+    let mut req = request(31, dir.path(), "sleep 300 && echo never > out.txt");
     req.resources.time = Some("1".into());
     let h = ex.launch(req.clone()).await.expect("submit");
     assert_eq!(job_fields(&h.id)["TimeLimit"], "00:01:00");
