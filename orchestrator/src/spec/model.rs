@@ -133,6 +133,9 @@ pub struct Stage {
     pub time_limit: Option<Duration>,
     /// Extra attempts after failure.
     pub retries: u32,
+    /// A retry after a time-limit kill runs with the limit times this (`timeout-factor`,
+    /// ≥ 1), once more for every earlier time-limit kill of the same iteration.
+    pub timeout_factor: f64,
     /// Accept NaN/Inf.
     pub allow_nonfinite: bool,
     /// Input roles placed as private writable copies (`writable-inputs`).

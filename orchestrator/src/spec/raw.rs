@@ -158,6 +158,9 @@ pub struct Defaults {
     /// Extra attempts after a failure.
     #[serde(default)]
     pub retries: Option<u32>,
+    /// A retry after a time-limit kill asks for this many times the limit (default 2).
+    #[serde(default)]
+    pub timeout_factor: Option<f64>,
 }
 
 /// Where a stage input comes from.
@@ -319,6 +322,10 @@ pub struct StageSpec {
     /// Extra attempts after a failure.
     #[serde(default)]
     pub retries: Option<u32>,
+    /// A retry after a time-limit kill asks for this many times the limit (default 2; 1
+    /// keeps it).
+    #[serde(default)]
+    pub timeout_factor: Option<f64>,
     /// Accept NaN/Inf in outputs and metrics.
     #[serde(default)]
     pub allow_nonfinite: bool,

@@ -427,4 +427,23 @@ impl Flushed<'_> {
         .fetch_one(self.pool)
         .await?)
     }
+
+    /// How many attempts of this point, iteration and stage were ended by their time limit.
+    pub async fn timed_out_attempts(
+        &self,
+        point: &str,
+        iteration: u32,
+        stage: &str,
+    ) -> Result<i64> {
+        Ok(sqlx::query_scalar(
+            "SELECT count(*) FROM attempts WHERE point = ? AND iteration = ? AND stage = ? \
+             AND state = ? AND failure_kind = 'timeout'",
+        )
+        .bind(point)
+        .bind(i64::from(iteration))
+        .bind(stage)
+        .bind(AttemptState::Failed)
+        .fetch_one(self.pool)
+        .await?)
+    }
 }

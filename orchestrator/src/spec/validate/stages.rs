@@ -136,6 +136,7 @@ impl Validator<'_> {
             resources: limits.resources,
             time_limit: limits.time_limit,
             retries: limits.retries,
+            timeout_factor: limits.timeout_factor,
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
             placement,
