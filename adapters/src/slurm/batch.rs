@@ -669,6 +669,7 @@ impl<B: BatchSystem> BatchCore<B> {
                     started_at,
                     ended_at: Some(Utc::now()),
                     host,
+                    usage: None,
                 });
             }
             if let Some(e) = first_err {
@@ -747,6 +748,7 @@ pub fn completion(
         started_at,
         ended_at,
         host,
+        usage: None,
     }
 }
 
@@ -884,6 +886,7 @@ mod tests {
             workdir: "/tmp/w d".into(),
             env: [("OMP_NUM_THREADS".to_string(), "2".to_string())].into(),
             time_limit: None,
+            outlive: false,
             resources: crate::executor::Resources {
                 ntasks: Some(4),
                 launcher: Some(vec!["mpirun".into(), "-np".into(), "{{tasks}}".into()]),

@@ -508,6 +508,7 @@ impl Engine<'_> {
             env,
             time_limit: stage.time_limit,
             resources: stage.resources.clone(),
+            outlive: stage.outlive_rondo,
         };
         match self.executor_for(fl.on_host).launch(req).await {
             Ok(handle) if local => {
