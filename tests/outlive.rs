@@ -194,3 +194,84 @@ fn an_outlive_rondo_false_stage_ends_with_rondo_and_runs_again() {
     );
     assert_no_double_success_nor_children(&ws, 0);
 }
+
+// ---------------------------------------------------------------------------------------
+// What each attempt cost (`wait4` of the program, through its keeper).
+
+/// Three stages: a busy loop, one that holds 200 MiB in a shell variable, and one that
+/// sleeps.
+fn cost_campaign() -> String {
+    let stage = |name: &str, script: &str| {
+        format!(
+            "  {name}:\n    run: [sh, -c, '{script}; echo 1 > x.txt; echo \"{{\\\"x\\\": 1}}\" > metrics.json']\n    outputs: {{ x: x.txt }}\n    metrics: [x]\n"
+        )
+    };
+    format!(
+        "campaign: cost\nabout: test campaign (not physics)\nprograms:\n  sh: {{ path: /bin/sh }}\n\
+         sweep:\n  product:\n    a: [1]\ncycle:\n{}{}{}stop:\n  max-iterations: 1\n",
+        stage("busy", "i=0; while [ $i -lt 1000000 ]; do i=$((i+1)); done"),
+        stage(
+            "big",
+            "x=$(head -c 209715200 /dev/zero | tr \"\\\\0\" a); [ ${#x} -eq 209715200 ]"
+        ),
+        stage("idle", "sleep 0.5"),
+    )
+}
+
+#[test]
+fn each_attempt_records_its_cpu_time_peak_memory_and_wall_time() {
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("tempdir: {e}"));
+    write(&d.path().join("c.yaml"), &cost_campaign());
+    let ws = ws_of(d.path());
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    let rows = strings(
+        &ws,
+        "SELECT stage || ' ' || cpu_user_s || ' ' || cpu_system_s || ' ' || max_rss_kib || ' ' \
+         || wall_s || ' ' || usage_source FROM attempts ORDER BY id",
+    );
+    let mut got = std::collections::BTreeMap::new();
+    for r in &rows {
+        let f: Vec<&str> = r.split(' ').collect();
+        assert_eq!(f.len(), 6, "every figure recorded: {r}");
+        assert_eq!(f[5], "wait4", "{r}");
+        let n = |i: usize| f[i].parse::<f64>().unwrap_or_else(|e| panic!("{r}: {e}"));
+        got.insert(f[0].to_string(), (n(1), n(2), n(3), n(4)));
+    }
+    let (user, sys, _, wall) = got["busy"];
+    assert!(
+        user > 0.1 && user + sys >= 0.25 * wall && wall >= 0.9 * user,
+        "a busy loop's CPU time is a good part of its wall time: user {user} s, system {sys} \
+         s, wall {wall} s"
+    );
+    let (_, _, rss, _) = got["big"];
+    assert!(rss >= 200.0 * 1024.0, "200 MiB held: max RSS {rss} KiB");
+    let (user, sys, rss_idle, wall) = got["idle"];
+    assert!(
+        user + sys < 0.25 && wall >= 0.5 && rss_idle < 50.0 * 1024.0,
+        "sleeping costs little CPU and memory: user {user} s, system {sys} s, wall {wall} s, \
+         RSS {rss_idle} KiB"
+    );
+    // Status sums them to core-hours per stage and per point, in text and JSON.
+    let s = status_json(d.path(), &ws);
+    let cpu: f64 = got.values().map(|(u, s, _, _)| u + s).sum();
+    let total = s["usage"]["total"]["core_hours"].as_f64().unwrap_or(-1.0);
+    assert!((total - cpu / 3600.0).abs() < 1e-9, "{total} vs {cpu} s: {s}");
+    let point = &s["points"][0]["usage"];
+    assert_eq!(point["total"]["attempts"], 3, "{point}");
+    assert_eq!(point["total"]["core_hours"], s["usage"]["total"]["core_hours"]);
+    let busy = s["usage"]["by_stage"]["busy"]["core_hours"]
+        .as_f64()
+        .unwrap_or(-1.0);
+    assert!((busy - (got["busy"].0 + got["busy"].1) / 3600.0).abs() < 1e-9);
+    assert_eq!(
+        s["usage"]["by_stage"]["big"]["max_rss_kib"].as_f64(),
+        Some(got["big"].2)
+    );
+    let text = run_rondo(d.path(), &["status", "c.yaml"]);
+    let text = String::from_utf8_lossy(&text.stdout).into_owned();
+    assert!(
+        text.contains("cost: ") && text.contains("core-hours") && text.contains("busy "),
+        "{text}"
+    );
+}

@@ -178,7 +178,7 @@ pub struct Completion {
 }
 
 /// What an attempt cost: CPU time, peak memory and wall time of its program.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 pub struct Usage {
     /// CPU time in user mode, seconds.
     pub user_s: f64,
@@ -188,6 +188,10 @@ pub struct Usage {
     pub max_rss_kib: Option<u64>,
     /// Wall time, seconds, if measured.
     pub wall_s: Option<f64>,
+    /// Where the figures come from: `wait4` (a local keeper), `job-script` (a batch job
+    /// script's own measure) or `sacct` (the scheduler's accounting).
+    #[serde(default)]
+    pub source: String,
 }
 
 /// The state of an attempt recorded as launched by an earlier orchestrator.

@@ -265,6 +265,7 @@ fn usage_of(ru: &libc::rusage) -> Usage {
         // Linux reports ru_maxrss in KiB (getrusage(2)).
         max_rss_kib: Some(ru.ru_maxrss.max(0) as u64),
         wall_s: None,
+        source: "wait4".to_string(),
     }
 }
 

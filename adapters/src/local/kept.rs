@@ -353,6 +353,6 @@ fn completion_of(m: &Marker, host: &str, asked: bool) -> Completion {
         started_at: (m.pid != 0).then_some(m.started_at),
         ended_at: Some(m.ended_at),
         host: Some(host.to_string()),
-        usage: m.usage,
+        usage: m.usage.clone(),
     }
 }

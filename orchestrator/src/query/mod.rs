@@ -18,6 +18,7 @@ pub mod lineage;
 pub mod plan;
 pub mod records;
 pub mod target;
+pub mod usage;
 pub mod trace_text;
 
 pub use diff::{
