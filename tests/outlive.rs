@@ -99,7 +99,9 @@ fn alive(pid: i32) -> bool {
 fn kill_rondo_during_the_stage(dir: &Path) -> i32 {
     let mut child = spawn_rondo(dir);
     wait_for("the stage to start", || !pids(dir).is_empty());
-    child.kill().unwrap_or_else(|e| panic!("SIGKILL rondo: {e}"));
+    child
+        .kill()
+        .unwrap_or_else(|e| panic!("SIGKILL rondo: {e}"));
     let _ = child.wait();
     pids(dir)[0]
 }
@@ -140,7 +142,11 @@ fn a_long_local_stage_survives_a_sigkill_of_rondo_and_is_recorded_once() {
     let status = again.wait().unwrap_or_else(|e| panic!("wait: {e}"));
     assert_eq!(status.code(), Some(3), "capped after its one iteration");
     assert_eq!(pids(d.path()), vec![pid], "the program started once");
-    assert_eq!(attempt_states(&ws), vec!["succeeded"], "one attempt, recorded once");
+    assert_eq!(
+        attempt_states(&ws),
+        vec!["succeeded"],
+        "one attempt, recorded once"
+    );
     assert_eq!(
         strings(&ws, "SELECT handle_id FROM attempts"),
         vec![pid.to_string()],
@@ -158,9 +164,10 @@ fn a_stage_that_ended_while_rondo_was_dead_is_adopted_without_a_rerun() {
     let pid = kill_rondo_during_the_stage(d.path());
     let id = workspace_id(&ws);
     std::fs::remove_file(d.path().join("hold")).unwrap_or_else(|e| panic!("{e}"));
-    wait_for("the stage and its keeper to end with nobody watching", || {
-        !alive(pid) && processes_of_workspace(&id).is_empty()
-    });
+    wait_for(
+        "the stage and its keeper to end with nobody watching",
+        || !alive(pid) && processes_of_workspace(&id).is_empty(),
+    );
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
     assert_eq!(pids(d.path()), vec![pid], "the program was not run again");
@@ -256,10 +263,16 @@ fn each_attempt_records_its_cpu_time_peak_memory_and_wall_time() {
     let s = status_json(d.path(), &ws);
     let cpu: f64 = got.values().map(|(u, s, _, _)| u + s).sum();
     let total = s["usage"]["total"]["core_hours"].as_f64().unwrap_or(-1.0);
-    assert!((total - cpu / 3600.0).abs() < 1e-9, "{total} vs {cpu} s: {s}");
+    assert!(
+        (total - cpu / 3600.0).abs() < 1e-9,
+        "{total} vs {cpu} s: {s}"
+    );
     let point = &s["points"][0]["usage"];
     assert_eq!(point["total"]["attempts"], 3, "{point}");
-    assert_eq!(point["total"]["core_hours"], s["usage"]["total"]["core_hours"]);
+    assert_eq!(
+        point["total"]["core_hours"],
+        s["usage"]["total"]["core_hours"]
+    );
     let busy = s["usage"]["by_stage"]["busy"]["core_hours"]
         .as_f64()
         .unwrap_or(-1.0);

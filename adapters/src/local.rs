@@ -1,13 +1,22 @@
-//! The local executor: attempts as child processes of the orchestrator.
+//! The local executor: attempts as processes on this host.
 //!
-//! Each attempt's program is started directly (no shell, unless the rendered argv is one)
-//! in its own process group, with null stdin, stdout/stderr through pipes into `stdout.txt`
-//! and `stderr.txt` in its scratch directory (each capped to its first and last 8 MiB, see
-//! [`logs`]; when the orchestrator dies the pipes close, and a child's next write to them
-//! ends it with SIGPIPE, as the next orchestrator would end it), and the inherited
-//! environment plus the request's
-//! variables plus `RONDO_WORKSPACE_ID` and `RONDO_ATTEMPT_ID`. Those two variables are how a
-//! later orchestrator recognises the attempt's processes after a crash (see [`sys`]).
+//! When the binary made itself the keeper ([`use_this_binary`], as `rondo` does), each
+//! attempt's program runs under a keeper process of its own ([`keeper`]; rondo's side in
+//! `kept`): the keeper holds the program's pipes, the capped logs, its time limit and its
+//! exit marker, so a SIGKILL of the orchestrator does not end the program, and the next
+//! orchestrator watches it again or adopts its result ([`Executor::reattach`]). A request
+//! with `outlive: false` (a stage's `outlive-rondo: false`) has its keeper end the program as
+//! soon as the orchestrator is gone.
+//!
+//! Without a keeper (a library user), the program is started directly (no shell, unless the
+//! rendered argv is one) in its own process group, with null stdin, stdout/stderr through
+//! pipes into `stdout.txt` and `stderr.txt` in its scratch directory (each capped to its
+//! first and last 8 MiB, see [`logs`]; when the orchestrator dies the pipes close, and a
+//! child's next write to them ends it with SIGPIPE, as the next orchestrator would end it).
+//!
+//! Either way the program gets the inherited environment plus the request's variables
+//! plus `RONDO_WORKSPACE_ID` and `RONDO_ATTEMPT_ID`. Those two variables are how a later
+//! orchestrator recognises the attempt's processes after a crash (see [`sys`]).
 //!
 //! Ending an attempt (time limit, cancel, shutdown, reattach to an orphan) always goes
 //! SIGTERM to the whole group, a grace period, then SIGKILL. When a program exits on its own
@@ -19,8 +28,8 @@
 //!
 //! Linux only (`/proc`).
 
-mod kept;
 pub mod keeper;
+mod kept;
 pub mod logs;
 pub mod sys;
 

@@ -406,7 +406,13 @@ impl BatchSystem for Slurm {
         .iter()
         .map(|s| s.to_string())
         .collect();
-        match run_capture(&sacct.display().to_string(), &args, self.config.client_timeout).await {
+        match run_capture(
+            &sacct.display().to_string(),
+            &args,
+            self.config.client_timeout,
+        )
+        .await
+        {
             Ok(out) => parse_sacct(id, &out),
             Err(m) => {
                 tracing::info!(
@@ -713,6 +719,9 @@ mod accounting_tests {
         assert_eq!(sacct_seconds("1-02:03:04"), Some(93_784.0));
         assert_eq!(sacct_kib("2G"), Some(2 * 1024 * 1024));
         assert_eq!(sacct_kib("2048"), Some(2));
-        assert!(parse_sacct("7", out).is_none(), "another job's lines are not this job's");
+        assert!(
+            parse_sacct("7", out).is_none(),
+            "another job's lines are not this job's"
+        );
     }
 }

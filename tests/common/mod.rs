@@ -146,6 +146,20 @@ pub fn processes_of_workspace(ws_id: &str) -> Vec<i32> {
     found
 }
 
+/// Live processes of this workspace other than the attempts' keepers (which carry
+/// `RONDO_KEEPER`): the stages' programs and what they started.
+pub fn programs_of_workspace(ws_id: &str) -> Vec<i32> {
+    processes_of_workspace(ws_id)
+        .into_iter()
+        .filter(|pid| {
+            std::fs::read(format!("/proc/{pid}/environ")).is_ok_and(|env| {
+                !env.split(|b| *b == 0)
+                    .any(|kv| kv.starts_with(b"RONDO_KEEPER="))
+            })
+        })
+        .collect()
+}
+
 /// Everything a run recorded that must not depend on interruptions: per succeeded attempt,
 /// (point, iteration, stage) → outputs (role → hash) and metrics (name → value bits).
 pub type Record =

@@ -312,8 +312,7 @@ async fn keep(cfg: Config) -> ExitCode {
     // SAFETY: getppid(2) has no preconditions and cannot fail.
     let parent = unsafe { libc::getppid() };
     // Before anything else: a SIGTERM from here on is a request, not the end of the keeper.
-    let mut term =
-        tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()).ok();
+    let mut term = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()).ok();
     let workdir = std::env::current_dir().unwrap_or_default();
     let attempt: i64 = std::env::var(super::ATTEMPT_VAR)
         .ok()
@@ -355,11 +354,15 @@ async fn keep(cfg: Config) -> ExitCode {
     let pipes = (st.child.stdout.take(), st.child.stderr.take());
     let logs: Vec<KeptLog> = [
         KeptLog::start(
-            pipes.0.and_then(|p| tokio::process::ChildStdout::from_std(p).ok()),
+            pipes
+                .0
+                .and_then(|p| tokio::process::ChildStdout::from_std(p).ok()),
             out_file,
         ),
         KeptLog::start(
-            pipes.1.and_then(|p| tokio::process::ChildStderr::from_std(p).ok()),
+            pipes
+                .1
+                .and_then(|p| tokio::process::ChildStderr::from_std(p).ok()),
             err_file,
         ),
     ]
@@ -402,7 +405,9 @@ async fn keep(cfg: Config) -> ExitCode {
     let marker = Marker {
         attempt,
         pid,
-        code: status.filter(|s| libc::WIFEXITED(*s)).map(|s| libc::WEXITSTATUS(s)),
+        code: status
+            .filter(|s| libc::WIFEXITED(*s))
+            .map(|s| libc::WEXITSTATUS(s)),
         signal: status
             .filter(|s| libc::WIFSIGNALED(*s))
             .map(|s| libc::WTERMSIG(s)),
@@ -431,7 +436,10 @@ fn write_marker(workdir: &Path, marker: &Marker) {
         File::open(workdir)?.sync_all()
     };
     if let Err(e) = write() {
-        eprintln!("keeper: cannot write {}: {e}", workdir.join(MARKER).display());
+        eprintln!(
+            "keeper: cannot write {}: {e}",
+            workdir.join(MARKER).display()
+        );
     }
 }
 

@@ -312,8 +312,7 @@ async fn finish_kept(
             Completion {
                 attempt_id,
                 outcome: Outcome::Lost {
-                    reason: "its keeper process ended without writing the exit marker"
-                        .to_string(),
+                    reason: "its keeper process ended without writing the exit marker".to_string(),
                 },
                 started_at: None,
                 ended_at: Some(Utc::now()),
@@ -344,7 +343,9 @@ fn completion_of(m: &Marker, host: &str, asked: bool) -> Completion {
         (_, None, Some(signal), _) => Outcome::Signaled { signal },
         (_, None, None, Some(e)) if m.pid == 0 => Outcome::LaunchFailed { message: e.clone() },
         (_, None, None, e) => Outcome::Lost {
-            reason: e.clone().unwrap_or_else(|| "no exit status recorded".to_string()),
+            reason: e
+                .clone()
+                .unwrap_or_else(|| "no exit status recorded".to_string()),
         },
     };
     Completion {

@@ -18,8 +18,8 @@ pub mod lineage;
 pub mod plan;
 pub mod records;
 pub mod target;
-pub mod usage;
 pub mod trace_text;
+pub mod usage;
 
 pub use diff::{
     diff, InputDiff, MetricDivergence, PointDiff, PointSide, ProgramChange, ProgramDiff, StopDiff,
