@@ -6,7 +6,7 @@
 //! reads its stdout and stderr through pipes into the capped `stdout.txt` / `stderr.txt`
 //! (see [`super::logs`]), waits for it with `wait4(2)` (which also gives its CPU time and
 //! maximum RSS), ends what the program left behind in its group or tagged with the attempt's
-//! variables, and writes the exit marker [`MARKER`] atomically (a temporary file, fsync,
+//! variables, and writes the exit marker [`MARKER`] atomically (a temporary file and a
 //! rename) as its last act. Since the keeper, not the orchestrator, holds the pipes, a
 //! SIGKILL of the orchestrator does not end the program; the next orchestrator watches the
 //! keeper again or adopts the result from the marker.
@@ -49,10 +49,6 @@ pub const KEEPER_VAR: &str = "RONDO_KEEPER";
 
 /// The exit marker a keeper writes into the attempt's directory as its last act.
 pub const MARKER: &str = ".rondo-local-exit.json";
-
-/// The program's pid, written by the keeper once the program runs (for a later
-/// orchestrator that did not see the `pid N` line).
-pub const PID_FILE: &str = ".rondo-local-pid";
 
 /// How often a `follow` keeper checks that its orchestrator is alive.
 pub const PARENT_CHECK: Duration = Duration::from_millis(500);
@@ -349,7 +345,6 @@ async fn keep(cfg: Config) -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    let _ = std::fs::write(workdir.join(PID_FILE), format!("{}\n", st.pid));
     tell(&format!("pid {}", st.pid));
     let pipes = (st.child.stdout.take(), st.child.stderr.take());
     let logs: Vec<KeptLog> = [
@@ -423,17 +418,16 @@ async fn keep(cfg: Config) -> ExitCode {
     ExitCode::SUCCESS
 }
 
-/// Write the marker through a temporary file, fsync and rename, so that a reader sees the
-/// whole marker or none.
+/// Write the marker through a temporary file and a rename, so that a reader sees the whole
+/// marker or none. Not fsynced: it only has to outlive the orchestrator, not the machine;
+/// after a machine crash a marker that lost its content does not parse and counts as none
+/// (the attempt runs again, as its program died with the machine anyway).
 fn write_marker(workdir: &Path, marker: &Marker) {
     let tmp = workdir.join(format!("{MARKER}.tmp"));
     let write = || -> std::io::Result<()> {
         let text = serde_json::to_vec(marker).map_err(std::io::Error::other)?;
-        let mut f = File::create(&tmp)?;
-        f.write_all(&text)?;
-        f.sync_all()?;
-        std::fs::rename(&tmp, workdir.join(MARKER))?;
-        File::open(workdir)?.sync_all()
+        std::fs::write(&tmp, text)?;
+        std::fs::rename(&tmp, workdir.join(MARKER))
     };
     if let Err(e) = write() {
         eprintln!(

@@ -13,8 +13,11 @@ use std::sync::OnceLock;
 
 use tokio::io::{AsyncBufReadExt, BufReader};
 
-use super::keeper::{self, Config, Marker, KEEPER_ARG, KEEPER_VAR, MARKER, PID_FILE};
+use super::keeper::{self, Config, Marker, KEEPER_ARG, KEEPER_VAR, MARKER};
 use super::*;
+
+/// Why an attempt of a stage with `outlive-rondo: false` is run again.
+const ENDED_WITH_RONDO: &str = "ended with the orchestrator that started it (outlive-rondo: false)";
 
 /// How often the keeper of an attempt started by an earlier orchestrator is looked at.
 const WATCH: Duration = Duration::from_millis(200);
@@ -168,20 +171,29 @@ impl LocalExecutor {
         let ws = &self.shared.workspace_id;
         if let Some((keeper_pid, mode)) = sys::keeper_of(ws, attempt_id) {
             if mode != "outlive" {
-                // `outlive-rondo: false`: it ends with the orchestrator that started it.
+                // `outlive-rondo: false`: it ends with the orchestrator that started it. A
+                // program that ended by itself before still counts.
                 terminate_attempt(ws, attempt_id, handle.id.parse().ok(), self.grace).await;
-                return Some(self.finished_or_gone(attempt_id, workdir));
+                return Some(match self.marker_of(attempt_id, workdir) {
+                    Some(m) if m.ended_by.is_none() => {
+                        Reattached::Finished(completion_of(&m, &self.shared.host, false))
+                    }
+                    _ => Reattached::Gone {
+                        reason: ENDED_WITH_RONDO.to_string(),
+                    },
+                });
             }
+            // The program leads its own group; the recorded handle names it, or (a launch
+            // not recorded yet) the live group leader among the attempt's processes.
             let pgid = handle
                 .id
                 .parse::<i32>()
                 .ok()
                 .or_else(|| {
-                    std::fs::read_to_string(workdir.join(PID_FILE))
-                        .ok()?
-                        .trim()
-                        .parse()
-                        .ok()
+                    sys::attempt_processes(ws, attempt_id)
+                        .into_iter()
+                        .find(|p| p.keeper.is_none() && p.pid == p.pgrp)
+                        .map(|p| p.pgrp)
                 })
                 .unwrap_or(0);
             self.watch(attempt_id, keeper_pid, pgid, workdir.to_path_buf());
@@ -195,25 +207,19 @@ impl LocalExecutor {
                 Reattached::Active
             });
         }
-        keeper::read_marker(workdir)
-            .filter(|m| m.attempt == attempt_id)
-            .map(|_| self.finished_or_gone(attempt_id, workdir))
+        let m = self.marker_of(attempt_id, workdir)?;
+        Some(if m.ended_by.as_deref() == Some("orchestrator-gone") {
+            Reattached::Gone {
+                reason: ENDED_WITH_RONDO.to_string(),
+            }
+        } else {
+            Reattached::Finished(completion_of(&m, &self.shared.host, false))
+        })
     }
 
-    /// After the keeper is gone: the marker's completion, or gone when it has none or
-    /// the program was ended because its orchestrator was gone.
-    fn finished_or_gone(&self, attempt_id: i64, workdir: &Path) -> Reattached {
-        match keeper::read_marker(workdir).filter(|m| m.attempt == attempt_id) {
-            Some(m) if m.ended_by.as_deref() == Some("orchestrator-gone") => Reattached::Gone {
-                reason: "its keeper ended it when the orchestrator was gone (outlive-rondo: \
-                         false)"
-                    .to_string(),
-            },
-            Some(m) => Reattached::Finished(completion_of(&m, &self.shared.host, false)),
-            None => Reattached::Gone {
-                reason: ORPHAN_ENDED.to_string(),
-            },
-        }
+    /// The attempt's exit marker in `workdir`, if its keeper left one.
+    fn marker_of(&self, attempt_id: i64, workdir: &Path) -> Option<Marker> {
+        keeper::read_marker(workdir).filter(|m| m.attempt == attempt_id)
     }
 
     /// Watch a live keeper this orchestrator did not start, until it is gone.
