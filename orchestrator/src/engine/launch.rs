@@ -566,6 +566,7 @@ impl Engine<'_> {
             env,
             time_limit,
             resources,
+            outlive: stage.outlive_rondo,
         };
         match self.executor_for(fl.on_host).launch(req).await {
             Ok(handle) if local => {

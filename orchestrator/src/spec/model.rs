@@ -142,6 +142,9 @@ pub struct Stage {
     pub writable_inputs: BTreeSet<String>,
     /// Where it runs under a batch executor (`placement`).
     pub placement: Placement,
+    /// Whether a local attempt's program runs on when rondo is killed (`outlive-rondo`,
+    /// default true): the next rondo watches it again or adopts its result.
+    pub outlive_rondo: bool,
     /// Retention policies per output role (`keep`); roles not listed keep everything.
     pub keep: Vec<(String, Keep)>,
     /// The working folder kept from one iteration to the next (`case-folder`).

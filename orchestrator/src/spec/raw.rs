@@ -346,6 +346,12 @@ pub struct StageSpec {
     #[serde(default)]
     #[schemars(with = "Option<Placement>")]
     pub placement: Option<Spanned<Placement>>,
+    /// Whether the stage's program, run where rondo runs, keeps running when rondo is
+    /// killed (default `true`): the next `rondo run` watches it again, or adopts its result
+    /// when it ended meanwhile. `false`: it is ended as soon as rondo is gone, and run again.
+    /// A stop of rondo by a signal or `rondo cancel` ends it either way.
+    #[serde(default)]
+    pub outlive_rondo: Option<bool>,
     /// Settings of a built-in stage.
     #[serde(default)]
     pub settings: Option<BuiltinSettings>,

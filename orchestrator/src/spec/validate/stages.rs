@@ -140,6 +140,7 @@ impl Validator<'_> {
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
             placement,
+            outlive_rondo: st.outlive_rondo.unwrap_or(true),
             keep,
             case_folder,
             metric_sources,
