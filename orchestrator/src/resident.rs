@@ -276,15 +276,20 @@ pub async fn start(s: Start<'_>) -> Result<Process, String> {
 /// Why the program in `dir` (process group `pid`) is gone, if it is: from the exit marker
 /// its keeper wrote, or because no process of its group is left.
 pub fn gone(dir: &Path, pid: i32) -> Option<String> {
-    if let Some(m) = keeper::read_marker(dir) {
-        return Some(match (m.code, m.signal, m.error) {
-            (_, _, Some(e)) => e,
-            (Some(c), _, _) => format!("the resident program exited with status {c}"),
-            (_, Some(s), _) => format!("the resident program was killed by signal {s}"),
-            _ => "the resident program ended".into(),
-        });
-    }
-    (!sys::group_exists(pid)).then(|| "the resident program's processes are gone".into())
+    ended_how(dir)
+        .or_else(|| (!sys::group_exists(pid)).then(|| "the resident program's processes are gone".into()))
+}
+
+/// How the program in `dir` ended, from its keeper's exit marker (written just after the
+/// program's group is gone), if the marker is there.
+pub fn ended_how(dir: &Path) -> Option<String> {
+    let m = keeper::read_marker(dir)?;
+    Some(match (m.code, m.signal, m.error) {
+        (_, _, Some(e)) => e,
+        (Some(c), _, _) => format!("the resident program exited with status {c}"),
+        (_, Some(s), _) => format!("the resident program was killed by signal {s}"),
+        _ => "the resident program ended".into(),
+    })
 }
 
 impl Process {

@@ -312,6 +312,9 @@ impl Engine<'_> {
     }
 }
 
+/// How many polls the exit marker of a program that is gone is waited for.
+const MARKER_WAIT: u32 = 100;
+
 /// A failed hand-off as its attempt records it.
 fn handoff_failed(kind: &str, message: String, started: DateTime<Utc>, host: &str) -> Ended {
     Ended::Failed {
@@ -343,7 +346,16 @@ async fn await_done(a: Awaited) {
                 break d;
             }
         }
-        if let Some(why) = resident::gone(&a.root, a.pid) {
+        if let Some(mut why) = resident::gone(&a.root, a.pid) {
+            // The keeper writes its exit marker, which says how the program ended, just
+            // after the program's processes are gone: give it a moment.
+            for _ in 0..MARKER_WAIT {
+                if let Some(how) = resident::ended_how(&a.root) {
+                    why = how;
+                    break;
+                }
+                tokio::time::sleep(resident::POLL).await;
+            }
             let message = format!(
                 "{why} before it answered hand-off {}{}",
                 a.number,
