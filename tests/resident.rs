@@ -301,3 +301,85 @@ fn sigkill_of_rondo_mid_campaign_then_resume_is_bit_identical_and_leaves_no_proc
     let started = events(&ws, "resident-started");
     assert!(started.len() > 2, "{started:?}");
 }
+
+/// The second reference engine, built by the same `cargo test --workspace` run.
+fn casebook() -> PathBuf {
+    let p = rondo().with_file_name("casebook");
+    assert!(
+        p.is_file(),
+        "{} is missing: build the workspace first (cargo build --workspace)",
+        p.display()
+    );
+    p
+}
+
+/// A campaign of casebook's band sub-step on a case made by `casebook init`, three
+/// iterations at the start density: resident (`casebook serve`) or one-shot per attempt.
+fn casebook_campaign(dir: &Path, resident: bool) {
+    let ex = repo().join("examples").join("start");
+    let start = dir.join("start");
+    std::fs::create_dir_all(&start).unwrap_or_else(|e| panic!("{e}"));
+    let o = std::process::Command::new(casebook())
+        .arg("init")
+        .arg(start.join("case"))
+        .arg("--density")
+        .arg(ex.join("density.json"))
+        .arg("--sigma")
+        .arg(ex.join("sigma.npy"))
+        .args(["--volume", "27", "--kmesh", "8", "--temperature", "600"])
+        .args(["--electrons", "1.8", "--u", "6.0"])
+        .output()
+        .unwrap_or_else(|e| panic!("casebook init: {e}"));
+    assert!(o.status.success(), "{}", shown(&o));
+    std::fs::copy(start.join("case").join("case.density"), start.join("density.txt"))
+        .unwrap_or_else(|e| panic!("{e}"));
+    let band = if resident {
+        "    resident: true\n    run: [casebook, serve, case, --handoff, handoff]\n"
+    } else {
+        "    shell: true\n    run: \"cp {{input:density}} case/case.density && \
+         {{program:casebook}} band case && cp case/case.hamiltonian.npy hamiltonian.npy && \
+         cp case/case.eigen eigen && cp case/case.levels levels\"\n"
+    };
+    let text = format!(
+        "campaign: cb
+about: test campaign (the invented demo physics of model-solid, through casebook)
+programs:
+  casebook: {{ path: {exe}, version-flag: --version }}
+start:
+  case: start/case
+  density: start/density.txt
+cycle:
+  band:
+{band}    case-folder: {{ path: case, initially: start.case }}
+    inputs: {{ density: start.density }}
+    outputs: {{ hk: hamiltonian.npy, eigen: eigen, levels: levels }}
+stop: {{ max-iterations: 3 }}
+",
+        exe = casebook().display()
+    );
+    std::fs::write(dir.join("r.yaml"), text).unwrap_or_else(|e| panic!("{e}"));
+}
+
+#[test]
+fn casebook_serve_speaks_the_protocol_and_gives_the_one_shot_band() {
+    let oneshot = tmp();
+    casebook_campaign(oneshot.path(), false);
+    let want = run_to_end(oneshot.path());
+    let served = tmp();
+    casebook_campaign(served.path(), true);
+    let got = run_to_end(served.path());
+    assert_eq!(want.len(), 3);
+    assert_eq!(got.len(), 3);
+    for (key, (outs, _)) in &want {
+        let (g, _) = got
+            .get(key)
+            .unwrap_or_else(|| panic!("{key:?} missing in the resident run"));
+        for role in ["hk", "levels"] {
+            assert_eq!(g.get(role), outs.get(role), "{role} of {key:?}");
+        }
+        assert!(g.contains_key("eigen") && g.contains_key("folder"), "{g:?}");
+    }
+    let ws = served.path().join("r.rondo");
+    assert_eq!(events(&ws, "resident-started").len(), 1);
+    assert_eq!(events(&ws, "handoff").len(), 3);
+}
