@@ -383,3 +383,60 @@ fn casebook_serve_speaks_the_protocol_and_gives_the_one_shot_band() {
     assert_eq!(events(&ws, "resident-started").len(), 1);
     assert_eq!(events(&ws, "handoff").len(), 3);
 }
+
+fn have_slurm() -> bool {
+    let ok = std::process::Command::new("sbatch")
+        .arg("--version")
+        .output()
+        .is_ok_and(|o| o.status.success());
+    if !ok {
+        skip_or_fail(
+            "Slurm is not here (`sbatch --version` failed)",
+            "start the one-node Slurm with `bash scripts/dev-slurm start` (as root)",
+            &["RONDO_REQUIRE_SLURM"],
+        );
+    }
+    ok
+}
+
+/// Inside an allocation (`rondo submit` on the one-node Slurm) the resident programs run on
+/// the allocation's node beside rondo, end with it, and the campaign records exactly the
+/// local run's outputs and metrics.
+#[test]
+fn inside_an_allocation_the_resident_campaign_gives_the_local_record() {
+    use std::time::{Duration, Instant};
+    if !have_slurm() {
+        return;
+    }
+    let clean = tmp();
+    campaign(clean.path(), Some("ok"));
+    let reference = run_to_end(clean.path());
+    let d = tmp();
+    campaign(d.path(), Some("ok"));
+    let o = run_rondo(d.path(), &["submit", "r.yaml", "--time", "10"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let ws = d.path().join("r.rondo");
+    let t0 = Instant::now();
+    loop {
+        if ws.join("rondo.db").is_file() {
+            let s = status_json(d.path(), &ws);
+            let points = s["points"].as_array().cloned().unwrap_or_default();
+            let capped = points.iter().filter(|p| p["state"] == "capped").count();
+            if capped == 2 && s["orchestrator"].is_null() {
+                break;
+            }
+            assert!(!points.iter().any(|p| p["state"] == "failed"), "{s}");
+        }
+        if t0.elapsed() > Duration::from_secs(300) {
+            let _ = std::process::Command::new("scancel")
+                .args(["--name", "resident.allocation"])
+                .status();
+            panic!("the allocation did not finish the campaign in 5 minutes");
+        }
+        std::thread::sleep(Duration::from_secs(1));
+    }
+    assert_same_record(&reference, &record(&ws), 0);
+    assert_no_double_success_nor_children(&ws, 0);
+    assert_eq!(events(&ws, "resident-started").len(), 2);
+    assert_eq!(events(&ws, "resident-ended").len(), 2);
+}
