@@ -149,10 +149,16 @@ fn tmp() -> tempfile::TempDir {
 
 /// Run the campaign to its end (every point capped: exit status 3) and return its record.
 fn run_to_end(dir: &Path) -> Record {
-    let o = run_rondo(dir, &["run", "r.yaml", "--max-running", "2", "-q", "--grace", "2"]);
+    let o = run_rondo(
+        dir,
+        &["run", "r.yaml", "--max-running", "2", "-q", "--grace", "2"],
+    );
     let ws = dir.join("r.rondo");
     if o.status.code() != Some(3) {
-        let log = strings(&ws, "SELECT kind || ' ' || coalesce(point, '') || ' ' || detail FROM events");
+        let log = strings(
+            &ws,
+            "SELECT kind || ' ' || coalesce(point, '') || ' ' || detail FROM events",
+        );
         panic!("{}\nevents:\n{}", shown(&o), log.join("\n"));
     }
     assert_no_double_success_nor_children(&ws, 0);
@@ -244,7 +250,11 @@ fn a_program_that_dies_hangs_or_answers_early_restarts_from_the_last_good_iterat
     for (mode, kind, says) in [
         ("die", "resident-died", "killed by signal 9"),
         ("hang", "timeout", "within its time limit of 10 s"),
-        ("half", "refused-output", "it was not complete when the program wrote done"),
+        (
+            "half",
+            "refused-output",
+            "it was not complete when the program wrote done",
+        ),
     ] {
         let d = tmp();
         campaign(d.path(), Some(mode));
@@ -257,7 +267,10 @@ fn a_program_that_dies_hangs_or_answers_early_restarts_from_the_last_good_iterat
         );
         assert_eq!(failed.len(), 2, "{mode}: one failure per point: {failed:?}");
         for f in &failed {
-            assert!(f.contains(&format!(" {kind} ")) && f.contains(says), "{mode}: {f}");
+            assert!(
+                f.contains(&format!(" {kind} ")) && f.contains(says),
+                "{mode}: {f}"
+            );
         }
         assert_same_record(&reference, &got, 0);
         // A fresh process for each retry: two per point.
@@ -331,8 +344,11 @@ fn casebook_campaign(dir: &Path, resident: bool) {
         .output()
         .unwrap_or_else(|e| panic!("casebook init: {e}"));
     assert!(o.status.success(), "{}", shown(&o));
-    std::fs::copy(start.join("case").join("case.density"), start.join("density.txt"))
-        .unwrap_or_else(|e| panic!("{e}"));
+    std::fs::copy(
+        start.join("case").join("case.density"),
+        start.join("density.txt"),
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
     let band = if resident {
         "    resident: true\n    run: [casebook, serve, case, --handoff, handoff]\n"
     } else {

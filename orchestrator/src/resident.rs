@@ -276,8 +276,9 @@ pub async fn start(s: Start<'_>) -> Result<Process, String> {
 /// Why the program in `dir` (process group `pid`) is gone, if it is: from the exit marker
 /// its keeper wrote, or because no process of its group is left.
 pub fn gone(dir: &Path, pid: i32) -> Option<String> {
-    ended_how(dir)
-        .or_else(|| (!sys::group_exists(pid)).then(|| "the resident program's processes are gone".into()))
+    ended_how(dir).or_else(|| {
+        (!sys::group_exists(pid)).then(|| "the resident program's processes are gone".into())
+    })
 }
 
 /// How the program in `dir` ended, from its keeper's exit marker (written just after the
@@ -299,7 +300,10 @@ impl Process {
     pub async fn stop(mut self, ask: bool, grace: Duration) {
         if ask && gone(&self.dir, self.pid).is_none() {
             let _ = publish(&self.dir.join(HANDOFF_DIR), "stop", b"");
-            if tokio::time::timeout(grace, self.keeper.wait()).await.is_ok() {
+            if tokio::time::timeout(grace, self.keeper.wait())
+                .await
+                .is_ok()
+            {
                 return;
             }
         }
@@ -326,20 +330,24 @@ mod tests {
     #[test]
     fn a_done_is_read_once_it_ends_and_names_what_is_wrong() {
         assert!(parse_done("protocol rondo-handoff-1\nhandoff 2\nstatus ok\n").is_none());
-        let d = parse_done("protocol rondo-handoff-1\nhandoff 2\nstatus ok\noutput out/a b 7\nend\n")
-            .unwrap()
-            .unwrap();
+        let d =
+            parse_done("protocol rondo-handoff-1\nhandoff 2\nstatus ok\noutput out/a b 7\nend\n")
+                .unwrap()
+                .unwrap();
         assert_eq!(d.handoff, 2);
         assert_eq!(d.status, Status::Ok);
         assert_eq!(d.outputs, vec![("out/a b".to_string(), 7)]);
-        let e = parse_done("protocol rondo-handoff-1\nhandoff 1\nstatus error\nmessage no density\nend")
-            .unwrap()
-            .unwrap();
+        let e = parse_done(
+            "protocol rondo-handoff-1\nhandoff 1\nstatus error\nmessage no density\nend",
+        )
+        .unwrap()
+        .unwrap();
         assert_eq!(e.status, Status::Error("no density".into()));
         let wrong = parse_done("protocol other-1\nhandoff 1\nstatus ok\nend\n").unwrap();
         assert!(wrong.unwrap_err().contains("rondo-handoff-1"));
-        let size = parse_done("protocol rondo-handoff-1\nhandoff 1\nstatus ok\noutput out/x y\nend")
-            .unwrap();
+        let size =
+            parse_done("protocol rondo-handoff-1\nhandoff 1\nstatus ok\noutput out/x y\nend")
+                .unwrap();
         assert!(size.unwrap_err().contains("size is not a number"));
     }
 

@@ -36,7 +36,10 @@ struct Awaited {
 impl Engine<'_> {
     /// The folder a resident program of a point and stage runs in.
     pub(super) fn resident_dir(&self, point: &str, stage: &str) -> PathBuf {
-        self.paths.root.join("resident").join(format!("{point}.{stage}"))
+        self.paths
+            .root
+            .join("resident")
+            .join(format!("{point}.{stage}"))
     }
 
     /// One attempt of a resident stage: the program started if it is not running, its
@@ -85,8 +88,14 @@ impl Engine<'_> {
             serde_json::to_string(&process.argv)?
         );
         let point_id = self.points[fl.point].spec.id.clone();
-        self.event("handoff", Some(&point_id), Some(fl.iteration), Some(id), &detail)
-            .await?;
+        self.event(
+            "handoff",
+            Some(&point_id),
+            Some(fl.iteration),
+            Some(id),
+            &detail,
+        )
+        .await?;
         if let Err(e) = self.place_handoff(&root, number, &inputs).await {
             self.end_resident(key, false).await?;
             let ended = handoff_failed("launch-failed", format!("{e:#}"), started, &host);
@@ -144,7 +153,8 @@ impl Engine<'_> {
         let artifacts = self.artifacts.clone();
         let folder = dir.clone();
         tokio::task::spawn_blocking(move || -> Result<(), String> {
-            let io = |what: &str, p: &Path, e: std::io::Error| format!("{}: {what}: {e}", p.display());
+            let io =
+                |what: &str, p: &Path, e: std::io::Error| format!("{}: {what}: {e}", p.display());
             if folder.exists() {
                 std::fs::remove_dir_all(&folder).map_err(|e| io("cannot clear", &folder, e))?;
             }
@@ -361,7 +371,8 @@ async fn await_done(a: Awaited) {
                 a.number,
                 program_stderr(&a.root)
             );
-            let _ = a.tx.send(Checked::ended(a.id, fail("resident-died", message)));
+            let _ =
+                a.tx.send(Checked::ended(a.id, fail("resident-died", message)));
             return;
         }
         if deadline.is_some_and(|d| tokio::time::Instant::now() >= d) {
@@ -379,7 +390,10 @@ async fn await_done(a: Awaited) {
     let ended = match done {
         Err(e) => Some(fail("malformed-output", format!("{}: {e}", at.display()))),
         Ok(d) => match &d.status {
-            Status::Error(m) => Some(fail("resident-error", format!("{}: error: {m}", at.display()))),
+            Status::Error(m) => Some(fail(
+                "resident-error",
+                format!("{}: error: {m}", at.display()),
+            )),
             Status::Rejected(m) => Some(fail(
                 "resident-error",
                 format!("{}: rejected: {m}", at.display()),
@@ -443,7 +457,14 @@ fn collect(
     if let Err(e) = move_out(&dir.join("out"), &job.workdir) {
         return Checked::ended(job.id, refuse(e));
     }
-    let ended = check_outputs(&job.stage, &job.workdir, None, Some(started), ended, Some(host));
+    let ended = check_outputs(
+        &job.stage,
+        &job.workdir,
+        None,
+        Some(started),
+        ended,
+        Some(host),
+    );
     job.store(ended)
 }
 
@@ -456,7 +477,11 @@ fn move_out(out: &Path, workdir: &Path) -> Result<(), String> {
     for e in entries.flatten() {
         let dest = workdir.join(e.file_name());
         std::fs::rename(e.path(), &dest).map_err(|err| {
-            format!("{}: cannot move into {}: {err}", e.path().display(), dest.display())
+            format!(
+                "{}: cannot move into {}: {err}",
+                e.path().display(),
+                dest.display()
+            )
         })?;
     }
     Ok(())

@@ -5,8 +5,8 @@
 //! process's, not one hand-off's).
 
 use super::{loc, Validator};
-use crate::spec::model::{MetricSource, StageKind};
 use crate::resident::HANDOFF_DIR;
+use crate::spec::model::{MetricSource, StageKind};
 use crate::spec::raw::StageSpec;
 
 /// Placeholders whose value changes from one attempt to the next.
@@ -65,7 +65,12 @@ impl Validator<'_> {
             ok = false;
         }
         if let Some(cf) = st.case_folder.as_ref() {
-            if cf.value.path.as_ref().is_some_and(|p| p.value == HANDOFF_DIR) {
+            if cf
+                .value
+                .path
+                .as_ref()
+                .is_some_and(|p| p.value == HANDOFF_DIR)
+            {
                 self.push(
                     loc(cf),
                     format!("stage `{sname}`: a resident stage's case folder cannot be named `{HANDOFF_DIR}`"),
@@ -80,7 +85,9 @@ impl Validator<'_> {
         {
             self.push(
                 at,
-                format!("stage `{sname}`: a resident program's standard output spans every hand-off"),
+                format!(
+                    "stage `{sname}`: a resident program's standard output spans every hand-off"
+                ),
                 "read the metric from a file the program writes into the hand-off's `out/` folder",
             );
             ok = false;
