@@ -238,6 +238,27 @@ fn the_shell_server_of_the_docs_gives_the_numbers_of_a_fresh_process_per_attempt
         assert_eq!(numbers, ["1", "2", "3", "4", "5"], "{handoffs:?}");
     }
     assert_eq!(events(&ws, "resident-ended").len(), 2);
+    let numbers = strings(
+        &ws,
+        "SELECT CAST(h.number AS TEXT) FROM handoffs h JOIN attempts a ON a.id = h.attempt_id \
+         WHERE a.point = 'p002' ORDER BY a.iteration",
+    );
+    assert_eq!(numbers, ["1", "2", "3", "4", "5"]);
+    // `rondo trace` shows the hand-off with its process and the attempt that started it.
+    let o = run_rondo(served.path(), &["trace", "p002/3/band.hk"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        text.contains("handoff   3 to resident process") && text.contains("started by attempt"),
+        "{text}"
+    );
+    let o = run_rondo(served.path(), &["trace", "p002/3/band.hk", "--json"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let t: serde_json::Value = serde_json::from_slice(&o.stdout)
+        .unwrap_or_else(|e| panic!("trace --json: {e}\n{}", shown(&o)));
+    let h = &t["attempts"][0]["handoff"];
+    assert_eq!(h["number"], 3, "{t}");
+    assert!(h["process_id"].as_i64().is_some_and(|p| p > 0), "{t}");
 }
 
 /// The faults: each one fails one hand-off per point, which is retried in a fresh program

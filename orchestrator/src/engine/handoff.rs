@@ -88,14 +88,19 @@ impl Engine<'_> {
             serde_json::to_string(&process.argv)?
         );
         let point_id = self.points[fl.point].spec.id.clone();
-        self.event(
-            "handoff",
-            Some(&point_id),
-            Some(fl.iteration),
-            Some(id),
-            &detail,
-        )
-        .await?;
+        let (by, at) = (process.started_by, store::time_text(process.started_at));
+        self.ledger
+            .write(|s| {
+                s.handoff(id, number, pid, by, at.clone());
+                s.event(
+                    "handoff",
+                    Some(&point_id),
+                    Some(fl.iteration),
+                    Some(id),
+                    &detail,
+                );
+            })
+            .await?;
         if let Err(e) = self.place_handoff(&root, number, &inputs).await {
             self.end_resident(key, false).await?;
             let ended = handoff_failed("launch-failed", format!("{e:#}"), started, &host);
