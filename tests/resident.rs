@@ -477,3 +477,49 @@ fn inside_an_allocation_the_resident_campaign_gives_the_local_record() {
     assert_eq!(events(&ws, "resident-started").len(), 2);
     assert_eq!(events(&ws, "resident-ended").len(), 2);
 }
+
+/// A stop of rondo on purpose (SIGTERM) ends the resident programs before rondo exits, the
+/// hand-off it was waiting for (if any) uses up no retry, and the next run ends with the
+/// record of an uninterrupted one.
+#[test]
+fn sigterm_of_rondo_ends_its_resident_programs_and_the_next_run_goes_on() {
+    use std::time::{Duration, Instant};
+    let clean = tmp();
+    campaign(clean.path(), Some("ok"));
+    let reference = run_to_end(clean.path());
+    let d = tmp();
+    campaign(d.path(), Some("ok"));
+    let ws = d.path().join("r.rondo");
+    let mut child = std::process::Command::new(rondo())
+        .args(["run", "r.yaml", "--max-running", "2", "-q", "--grace", "2"])
+        .current_dir(d.path())
+        .env("PATH", path_with_binaries())
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
+    let t0 = Instant::now();
+    while succeeded_attempts_ro(&ws) < 12 {
+        assert!(
+            child.try_wait().ok().flatten().is_none(),
+            "rondo ended early"
+        );
+        assert!(t0.elapsed() < Duration::from_secs(300), "no progress");
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    let pid = child.id() as i32;
+    // SAFETY: kill(2) on the pid of our own child, which has not been waited for yet.
+    assert_eq!(unsafe { libc::kill(pid, libc::SIGTERM) }, 0);
+    let status = child.wait().unwrap_or_else(|e| panic!("{e}"));
+    assert!(!status.success(), "{status:?}");
+    let id = workspace_id(&ws);
+    assert!(
+        processes_of_workspace(&id).is_empty(),
+        "processes left when rondo stopped: {:?}",
+        processes_of_workspace(&id)
+    );
+    let got = run_to_end(d.path());
+    assert_same_record(&reference, &got, 0);
+    let failed = strings(&ws, "SELECT id FROM attempts WHERE state = 'failed'");
+    assert!(failed.is_empty(), "{failed:?}");
+}
