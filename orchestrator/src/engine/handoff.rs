@@ -68,7 +68,8 @@ impl Engine<'_> {
             .get(&key)
             .is_some_and(|p| p.argv != argv || resident::gone(&p.dir, p.pid).is_some());
         if stale {
-            self.end_resident(key, false).await?;
+            let why = "it ended by itself, or its command changed, since its last hand-off";
+            self.end_resident(key, false, why).await?;
         }
         if !self.residents.contains_key(&key) {
             if let Err(message) = self.start_resident(&fl, stage, &argv, &inputs, id).await {
@@ -102,7 +103,8 @@ impl Engine<'_> {
             })
             .await?;
         if let Err(e) = self.place_handoff(&root, number, &inputs).await {
-            self.end_resident(key, false).await?;
+            let why = "the hand-off's inputs could not be placed";
+            self.end_resident(key, false, why).await?;
             let ended = handoff_failed("launch-failed", format!("{e:#}"), started, &host);
             return self.on_checked(Checked::ended(id, ended)).await;
         }
@@ -259,15 +261,21 @@ impl Engine<'_> {
             return;
         };
         if !c.succeeded() {
-            if let Err(e) = self.end_resident((h.point, h.stage), false).await {
+            let why = "a hand-off failed, so its state may be half-way";
+            if let Err(e) = self.end_resident((h.point, h.stage), false, why).await {
                 tracing::warn!(%e, "could not record the end of a resident program");
             }
         }
     }
 
     /// End the resident program of a point and stage, if one runs (`ask`: by its `stop`
-    /// file first).
-    pub(super) async fn end_resident(&mut self, key: (usize, usize), ask: bool) -> Result<()> {
+    /// file first); `why` goes into the `resident-ended` event.
+    pub(super) async fn end_resident(
+        &mut self,
+        key: (usize, usize),
+        ask: bool,
+        why: &str,
+    ) -> Result<()> {
         let Some(process) = self.residents.remove(&key) else {
             return Ok(());
         };
@@ -275,9 +283,8 @@ impl Engine<'_> {
         process.stop(ask, self.opts.grace).await;
         let point_id = self.points[key.0].spec.id.clone();
         let detail = format!(
-            "process {pid} of stage `{}` ended{}",
-            self.campaign.stages[key.1].name,
-            if ask { "" } else { " after a failed hand-off" }
+            "process {pid} of stage `{}` ended: {why}",
+            self.campaign.stages[key.1].name
         );
         self.event("resident-ended", Some(&point_id), None, None, &detail)
             .await
@@ -292,7 +299,7 @@ impl Engine<'_> {
             .copied()
             .collect();
         for key in idle {
-            self.end_resident(key, true).await?;
+            self.end_resident(key, true, "its point stopped").await?;
         }
         Ok(())
     }
@@ -321,7 +328,7 @@ impl Engine<'_> {
         }
         let keys: Vec<(usize, usize)> = self.residents.keys().copied().collect();
         for key in keys {
-            self.end_resident(key, true).await?;
+            self.end_resident(key, true, why).await?;
         }
         Ok(())
     }
