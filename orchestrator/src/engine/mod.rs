@@ -46,6 +46,7 @@ use crate::stop::{self, Sample};
 use crate::store::{self, AttemptState, IterationState, PointState};
 use crate::validate::{self, Metric};
 
+mod handoff;
 mod iterate;
 mod launch;
 mod programs;
@@ -400,6 +401,10 @@ struct Engine<'a> {
     hooks: crate::hooks::Hooks,
     /// The allow-listed environment recorded with every attempt of this run.
     env_json: String,
+    /// Resident programs running, per (point, stage) index.
+    residents: HashMap<(usize, usize), crate::resident::Process>,
+    /// Hand-offs to resident programs being awaited, per attempt.
+    handoffs: HashMap<i64, handoff::Handoff>,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -466,6 +471,8 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         storing: Default::default(),
         usage: Default::default(),
         hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
+        residents: HashMap::new(),
+        handoffs: HashMap::new(),
     };
     engine
         .event(
@@ -590,6 +597,7 @@ impl Engine<'_> {
         let mut cancelled: Option<CancelRequest> = None;
         loop {
             self.schedule().await?;
+            self.end_idle_residents().await?;
             self.show();
             if self.inflight.is_empty() && self.points.iter().all(|p| p.phase == PointPhase::Done) {
                 break;
@@ -627,6 +635,9 @@ impl Engine<'_> {
         }
         self.ledger.flush().await?;
         let mut continued_as = None;
+        if !(interrupted || cancelled.is_some()) {
+            self.stop_residents("every point stopped").await?;
+        }
         if interrupted || cancelled.is_some() {
             self.stop_everything(&mut rx, &mut checked, cancelled.as_ref())
                 .await?;

@@ -127,6 +127,7 @@ impl Validator<'_> {
         let case_folder = self.case_folder(cx.raw, &sname, st, &kind);
         let env = self.stage_env(&sname, st, &kind);
         let also_runs = self.also_runs(&sname, st, &kind, &cx.declared, programs);
+        let resident = self.resident(&sname, st, &kind, &metric_sources);
         Some(Stage {
             name: sname,
             kind,
@@ -140,7 +141,8 @@ impl Validator<'_> {
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
             placement,
-            outlive_rondo: st.outlive_rondo.unwrap_or(true),
+            outlive_rondo: st.outlive_rondo.unwrap_or(true) && !resident,
+            resident,
             keep,
             case_folder,
             metric_sources,
