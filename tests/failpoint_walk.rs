@@ -38,6 +38,13 @@ enum Way {
     CancelOffline,
     /// A finished workspace, then the armed `rondo report`, then `rondo report` again.
     Report,
+    /// `rondo run --on slurm` armed, resumed with `--on slurm` (the one-node Slurm of
+    /// scripts/dev-slurm; skipped loudly without one): `band` runs as batch jobs, the other
+    /// stages where rondo runs (`placement: host`).
+    Slurm,
+    /// A campaign of its own ([`NAP`]): a stage killed by its time limit, then retried with
+    /// a longer one.
+    TimeLimit,
 }
 
 /// Every failpoint the walk crashes at, the hit that crashes, and how it is reached.
@@ -67,23 +74,28 @@ const WALK: &[(&str, u64, Way)] = &[
     ("analysis-recorded", 1, Way::Run),
     ("report-recorded", 1, Way::Report),
     ("cancel-recorded", 1, Way::CancelOffline),
+    ("batch-planned", 2, Way::Slurm),
+    ("job-submitted", 2, Way::Slurm),
+    ("time-limit-lengthened", 1, Way::TimeLimit),
 ];
 
-/// Failpoints this walk cannot reach, and why (docs/concepts.md says the same).
-const NOT_WALKED: &[(&str, &str)] = &[
-    (
-        "batch-planned",
-        "written for batch attempts only (Slurm, PBS)",
-    ),
-    (
-        "job-submitted",
-        "written for batch attempts only (Slurm, PBS)",
-    ),
-    (
-        "time-limit-lengthened",
-        "needs a stage killed by its time limit (seconds per attempt)",
-    ),
-];
+/// Failpoints this walk cannot reach, and why (none today; docs/concepts.md would say the
+/// same).
+const NOT_WALKED: &[(&str, &str)] = &[];
+
+/// The campaign of [`Way::TimeLimit`]: its one attempt needs 2 s and is allowed 1 s; the
+/// retry gets three times that and finishes.
+const NAP: &str = r#"campaign: nap
+cycle:
+  nap:
+    run: [sh, -c, "sleep 2; echo rested > out.txt"]
+    outputs: { out: out.txt }
+    time-limit: "00:01"
+    retries: 1
+    timeout-factor: 3
+stop:
+  max-iterations: 1
+"#;
 
 const CAMPAIGN: &str = "walk.yaml";
 
@@ -119,6 +131,7 @@ cycle:
     keep: { hk: { last: 1 } }
     metrics: [band_energy, eps_f]
   project:
+    placement: host
     run: [engine, project, --hk, "{{input:hk}}", --sigma, "{{input:sigma}}",
           --density, "{{input:density}}", --temperature, "{{param:temperature}}",
           --emin, "-10.0", --emax, "10.0",
@@ -129,6 +142,7 @@ cycle:
       density: { previous: mix.density, initially: start.density }
     outputs: { delta: delta.npy, levels: levels.json }
   solve:
+    placement: host
     run: [engine, solve, --delta, "{{input:delta}}", --levels, "{{input:levels}}",
           --u, "{{param:u}}", --solver, "{{param:solver}}", --seed, "{{seed}}",
           --out-sigma, "{{output:sigma}}"]
@@ -136,6 +150,7 @@ cycle:
     outputs: { sigma: sigma.npy }
     metrics: [n_f, docc]
   update:
+    placement: host
     run: [engine, update, --hk, "{{input:hk}}", --sigma, "{{input:sigma}}",
           --density, "{{input:density}}", --temperature, "{{param:temperature}}",
           --electrons, "{{param:electrons}}", --volume, "{{param:volume}}",
@@ -152,6 +167,7 @@ cycle:
     outputs: { sigma: sigma.npy, density: density.json }
     settings: { method: anderson, alpha: 0.4, history: 4 }
   snap:
+    placement: host
     # A folder output (a snapshot of the mixed density); fails for the volume 29 point.
     run: [sh, -c, 'test "$2" != 29.0 || exit 3; mkdir snap && cp "$1" snap/density.json',
           snap, "{{input:density}}", "{{param:volume}}"]
@@ -196,8 +212,36 @@ fn rondo_at(dir: &Path, args: &[&str], armed: Option<&str>) -> Output {
         .unwrap_or_else(|e| panic!("cannot run rondo: {e}"))
 }
 
-fn run_args() -> [&'static str; 5] {
-    ["run", CAMPAIGN, "--max-running", "2", "-q"]
+fn run_args() -> Vec<&'static str> {
+    vec!["run", CAMPAIGN, "--max-running", "2", "-q"]
+}
+
+fn slurm_run_args() -> Vec<&'static str> {
+    let mut a = run_args();
+    a.extend(["--on", "slurm"]);
+    a
+}
+
+/// Whether a working Slurm is here; skips loudly (fails under RONDO_REQUIRE_SLURM or CI).
+fn slurm_or_skip() -> bool {
+    let answers = |prog: &str, args: &[&str]| {
+        Command::new(prog)
+            .args(args)
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .status()
+            .is_ok_and(|s| s.success())
+    };
+    if answers("sbatch", &["--version"]) && answers("sinfo", &["-h", "-o", "%T"]) {
+        return true;
+    }
+    skip_or_fail(
+        "no working Slurm here (`sbatch --version` or `sinfo` failed): the batch failpoints \
+         are not walked",
+        "start the one-node Slurm with `bash scripts/dev-slurm start` (as root)",
+        &["RONDO_REQUIRE_SLURM"],
+    );
+    false
 }
 
 /// The process crashed at `armed`: killed by SIGKILL after the line naming it.
@@ -314,7 +358,17 @@ fn walk_one(name: &str, n: u64, way: Way, reference: &Finished, report: &BTreeMa
     let ws = ws_of(dir);
     let armed = format!("{name}:{n}");
     let started = Instant::now();
+    let mut resume = run_args();
     match way {
+        Way::TimeLimit => return walk_time_limit(&armed),
+        Way::Slurm => {
+            if !slurm_or_skip() {
+                return;
+            }
+            resume = slurm_run_args();
+            let o = rondo_at(dir, &resume, Some(&armed));
+            assert_crashed_at(&o, &armed);
+        }
         Way::Run => {
             let o = rondo_at(dir, &run_args(), Some(&armed));
             assert_crashed_at(&o, &armed);
@@ -362,7 +416,7 @@ fn walk_one(name: &str, n: u64, way: Way, reference: &Finished, report: &BTreeMa
             assert_reports_whole(&ws, &armed);
         }
     }
-    let o = rondo_at(dir, &run_args(), None);
+    let o = rondo_at(dir, &resume, None);
     assert_eq!(
         o.status.code(),
         Some(FINISHED),
@@ -372,6 +426,54 @@ fn walk_one(name: &str, n: u64, way: Way, reference: &Finished, report: &BTreeMa
     assert_same_end(reference, &ws, &armed);
     eprintln!(
         "failpoint {armed} ({way:?}): crashed there, resumed to the same end ({:.1} s)",
+        started.elapsed().as_secs_f64()
+    );
+}
+
+/// [`Way::TimeLimit`]: the nap campaign uninterrupted, then crashed right after the event
+/// that gives the retry its longer limit, then resumed: the same success, the retry with the
+/// same limit, the timed-out attempt counted once.
+fn walk_time_limit(armed: &str) {
+    let started = Instant::now();
+    let nap = |dir: &Path| {
+        std::fs::write(dir.join("nap.yaml"), NAP).unwrap_or_else(|e| panic!("{e}"));
+    };
+    let args = ["run", "nap.yaml", "-q", "--grace", "1"];
+    let a = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    nap(a.path());
+    let want = rondo_at(a.path(), &args, None);
+    let b = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    nap(b.path());
+    let o = rondo_at(b.path(), &args, Some(armed));
+    assert_crashed_at(&o, armed);
+    let o = rondo_at(b.path(), &args, None);
+    assert_eq!(
+        o.status.code(),
+        want.status.code(),
+        "armed {armed}: {}",
+        shown(&o)
+    );
+    let (wa, wb) = (a.path().join("nap.rondo"), b.path().join("nap.rondo"));
+    let rec = record(&wb);
+    assert_eq!(rec.len(), 1, "armed {armed}: the retry succeeded: {rec:?}");
+    assert_same_record(&record(&wa), &rec, 0);
+    // The retry's planned row went in with the event, so the crash left it `planned` with
+    // no child: recorded `lost` (no retry used up) and planned again.
+    let kinds = "SELECT coalesce(failure_kind, state) FROM attempts ORDER BY id";
+    assert_eq!(
+        strings(&wb, kinds),
+        ["timeout", "lost", "succeeded"],
+        "armed {armed}"
+    );
+    let limits = "SELECT detail FROM events WHERE kind = 'time-limit-lengthened' ORDER BY seq";
+    let (la, lb) = (strings(&wa, limits), strings(&wb, limits));
+    assert!(
+        la.len() == 1 && lb.iter().all(|l| *l == la[0]) && la[0].contains("the limit is 3 s"),
+        "armed {armed}: the retry's limit, uninterrupted {la:?}, resumed {lb:?}"
+    );
+    assert_no_double_success_nor_children(&wb, 0);
+    eprintln!(
+        "failpoint {armed} (TimeLimit): crashed there, resumed to the same end ({:.1} s)",
         started.elapsed().as_secs_f64()
     );
 }
