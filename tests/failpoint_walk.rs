@@ -8,6 +8,10 @@
 //! left. `the_list_is_complete` holds the list of failpoints to docs/concepts.md and to
 //! every store write in the source.
 //!
+//! The batch failpoints are walked with `--on slurm` against the one-node Slurm of
+//! scripts/dev-slurm (skipped loudly without it, a failure under CI), the lengthened time
+//! limit over a campaign of its own.
+//!
 //! The crash comes from the test build of rondo (the `failpoints` feature, which this crate's
 //! dev-dependency on itself turns on for `cargo test`); a binary without it says so below.
 
@@ -563,6 +567,7 @@ fn every_failpoint_crashes_there_and_resumes_to_the_end_of_an_uninterrupted_run(
     assert!(report.contains_key("eos.csv"), "{report:?}");
     // RONDO_FAILPOINT_WALK=NAME[,NAME...] walks only those (to replay one).
     let only = std::env::var("RONDO_FAILPOINT_WALK").ok();
+    let mut walked = 0;
     for (name, n, way) in WALK {
         if only
             .as_deref()
@@ -571,9 +576,10 @@ fn every_failpoint_crashes_there_and_resumes_to_the_end_of_an_uninterrupted_run(
             continue;
         }
         walk_one(name, *n, *way, &reference, &report);
+        walked += 1;
     }
     eprintln!(
-        "failpoint walk: {} failpoints in {:.0} s",
+        "failpoint walk: {walked} of {} failpoints in {:.0} s",
         WALK.len(),
         started.elapsed().as_secs_f64()
     );
