@@ -10,6 +10,7 @@ pub mod cli;
 pub mod engine;
 pub mod environment;
 pub mod export;
+pub mod failpoint;
 pub mod fsinfo;
 pub mod hooks;
 pub mod metrics;

@@ -39,6 +39,7 @@ use tokio::sync::mpsc;
 
 use crate::artifacts::{hash_file, ArtifactStore};
 use crate::builtins;
+use crate::failpoint::{self, Failpoint};
 use crate::progress::Progress;
 use crate::scratch;
 use crate::spec::{Campaign, Placement, PointSpec, Source, Stage, StageKind};
@@ -55,7 +56,7 @@ mod settle;
 mod shutdown;
 mod workspace;
 
-use iterate::record_verdict;
+use iterate::{record_verdict, verdict_failpoints};
 use programs::ProgramCache;
 use settle::{check_outputs, Checked, OutputJob};
 use store::attempts::{FolderMembers, LaunchFields, NewAttempt, StoredOutput};
@@ -684,7 +685,9 @@ impl Engine<'_> {
         detail: &str,
     ) -> Result<()> {
         self.ledger
-            .write(|s| s.event(kind, point, iteration, attempt, detail))
+            .write(Failpoint::EventRecorded, |s| {
+                s.event(kind, point, iteration, attempt, detail)
+            })
             .await
     }
 

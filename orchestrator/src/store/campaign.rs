@@ -62,5 +62,6 @@ pub async fn create(pool: &SqlitePool, c: NewCampaign<'_>) -> Result<()> {
             .bind(h.clone());
     }
     s.event("campaign-created", None, None, None, c.name);
-    s.commit(pool).await
+    s.commit(pool, crate::failpoint::Failpoint::CampaignCreated)
+        .await
 }

@@ -28,6 +28,7 @@ use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
 
+use crate::failpoint::{self, Failpoint};
 use crate::fsinfo::{self, Journal};
 use chrono::{DateTime, SecondsFormat, Utc};
 use sqlx::migrate::{Migration, MigrationType, Migrator};
@@ -133,6 +134,7 @@ pub async fn open(db: &Path) -> Result<SqlitePool> {
         .run(&pool)
         .await
         .with_context(|| format!("{}: cannot migrate the workspace database", db.display()))?;
+    failpoint::hit(Failpoint::StoreMigrated);
     Ok(pool)
 }
 
@@ -301,8 +303,9 @@ impl Script {
         self.sql.is_empty()
     }
 
-    /// Run every statement in one transaction (rolled back if any fails).
-    pub async fn commit(self, pool: &SqlitePool) -> Result<()> {
+    /// Run every statement in one transaction (rolled back if any fails); `at` names the
+    /// write, whose failpoint is hit once it committed (see [`crate::failpoint`]).
+    pub async fn commit(self, pool: &SqlitePool, at: Failpoint) -> Result<()> {
         if let Some(e) = self.error {
             bail!("internal: cannot bind a value: {e}");
         }
@@ -330,6 +333,7 @@ impl Script {
             let _ = sqlx::query("ROLLBACK").execute(&mut *conn).await;
             return Err(e).context("store transaction");
         }
+        failpoint::hit(at);
         Ok(())
     }
 }
@@ -649,7 +653,7 @@ mod tests {
         ok.stmt("INSERT INTO events(at, kind, detail) VALUES (?, 'b', ?)")
             .bind("t2".to_string())
             .bind("second".to_string());
-        ok.commit(&pool).await?;
+        ok.commit(&pool, Failpoint::EventRecorded).await?;
         let rows: Vec<(String, String, String)> =
             sqlx::query_as("SELECT at, kind, detail FROM events ORDER BY seq")
                 .fetch_all(&pool)
@@ -666,7 +670,7 @@ mod tests {
         bad.stmt("INSERT INTO events(at, kind, detail) VALUES ('t3', 'c', 'kept?')");
         bad.stmt("INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES (?, 'x', 'y')")
             .bind(999_i64);
-        assert!(bad.commit(&pool).await.is_err());
+        assert!(bad.commit(&pool, Failpoint::EventRecorded).await.is_err());
         let n: i64 = sqlx::query_scalar("SELECT count(*) FROM events")
             .fetch_one(&pool)
             .await?;
@@ -680,7 +684,7 @@ mod tests {
         short
             .stmt("INSERT INTO events(at, kind, detail) VALUES (?, ?, ?)")
             .bind("t5".to_string());
-        assert!(short.commit(&pool).await.is_err());
+        assert!(short.commit(&pool, Failpoint::EventRecorded).await.is_err());
         Ok(())
     }
 

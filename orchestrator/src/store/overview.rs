@@ -165,27 +165,26 @@ pub async fn outstanding_attempts(pool: &SqlitePool) -> Result<Vec<OutstandingAt
         .collect())
 }
 
-/// Record one attempt as cancelled, ended now, with the reason as its failure message.
-pub async fn mark_attempt_cancelled(pool: &SqlitePool, id: i64, reason: &str) -> Result<()> {
-    sqlx::query("UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, ended_at = ? WHERE id = ?")
+impl super::Script {
+    /// Record one attempt as cancelled, ended now, with the reason as its failure message.
+    pub fn attempt_cancelled(&mut self, id: i64, reason: &str) {
+        self.stmt(
+            "UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, ended_at = ? \
+             WHERE id = ?",
+        )
         .bind(AttemptState::Cancelled)
         .bind("cancelled") // the failure kind
         .bind(format!("cancelled: {reason}"))
         .bind(super::now())
-        .bind(id)
-        .execute(pool)
-        .await?;
-    Ok(())
-}
+        .bind(id);
+    }
 
-/// Record every point that has not stopped (planned or running) as cancelled.
-pub async fn cancel_open_points(pool: &SqlitePool, reason: &str) -> Result<()> {
-    sqlx::query("UPDATE points SET state = ?, reason = ? WHERE state IN (?, ?)")
-        .bind(PointState::Cancelled)
-        .bind(format!("cancelled: {reason}"))
-        .bind(PointState::Planned)
-        .bind(PointState::Running)
-        .execute(pool)
-        .await?;
-    Ok(())
+    /// Record every point that has not stopped (planned or running) as cancelled.
+    pub fn open_points_cancelled(&mut self, reason: &str) {
+        self.stmt("UPDATE points SET state = ?, reason = ? WHERE state IN (?, ?)")
+            .bind(PointState::Cancelled)
+            .bind(format!("cancelled: {reason}"))
+            .bind(PointState::Planned)
+            .bind(PointState::Running);
+    }
 }
