@@ -137,7 +137,10 @@ fn case_folder_is_kept(ws: &Path) {
             .iter()
             .find(|m| m.0 == "case.impurity.h5")
             .unwrap_or_else(|| panic!("iteration {it}: no archive in {members:?}"));
-        assert_eq!(archive.1, archive.2, "iteration {it}: the archive output is the member");
+        assert_eq!(
+            archive.1, archive.2,
+            "iteration {it}: the archive output is the member"
+        );
         logs.push(members.iter().find(|m| m.0 == "case.log").cloned());
     }
     logs.dedup();
@@ -159,7 +162,10 @@ fn reduced_in(dir: &Path) {
             "volume: [27.0, 29.0]",
         )
         .replace("temperature: [300, 1200]", "temperature: [1200]");
-    assert_ne!(reduced, text, "the sweep of examples/inplace-sweep.yaml changed");
+    assert_ne!(
+        reduced, text,
+        "the sweep of examples/inplace-sweep.yaml changed"
+    );
     std::fs::write(&path, reduced).unwrap_or_else(|e| panic!("{e}"));
 }
 

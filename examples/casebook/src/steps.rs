@@ -308,10 +308,19 @@ fn take_state(case: &Case, a: &InitArgs, density: &Density, sigma: &[Complex64])
         case,
         &Status {
             iteration: status.iteration,
-            last: if status.iteration == 0 { "init" } else { "update" }.into(),
+            last: if status.iteration == 0 {
+                "init"
+            } else {
+                "update"
+            }
+            .into(),
         },
     )?;
-    journal(&case.file("journal"), "init", "reuse: density and sigma taken in")
+    journal(
+        &case.file("journal"),
+        "init",
+        "reuse: density and sigma taken in",
+    )
 }
 
 /// The settings of `init` against those the case was made with: the same values, or an

@@ -349,12 +349,10 @@ impl Validator<'_> {
     /// Output file names are plain names in the scratch directory, or files inside the
     /// stage's case folder (`case/case.log`: the program's own file, recorded as it is).
     fn output_names(&mut self, st: &StageSpec) {
-        let case_path = st.case_folder.as_ref().map(|c| {
-            c.value
-                .path
-                .as_ref()
-                .map_or("case", |p| p.value.as_str())
-        });
+        let case_path = st
+            .case_folder
+            .as_ref()
+            .map(|c| c.value.path.as_ref().map_or("case", |p| p.value.as_str()));
         for (ok, ov) in &st.outputs.0 {
             // `name/`: a folder output; a name with `*` or `?`: a glob, its matches one folder.
             let ov = ov.file();
@@ -706,4 +704,3 @@ stop: {{ max-iterations: 1, when: [{{ metric: b.m, change-below: 0.1 }}] }}
         assert!(v.diags.is_empty());
     }
 }
-
