@@ -18,7 +18,7 @@ use sqlx::Row;
 /// step is the energy's way through the log: casebook divides by the Rydberg energy (one
 /// rounding), prints the shortest round-trip form (exact), and rondo's reader multiplies
 /// back (one rounding). So |E_log − E| ≤ 2 u |E| (u = 2⁻⁵³), about 4e-16 eV at |E| ≈ 1.7 eV,
-/// which the test checks with room (`ulp_bound`, 2ε|E| = 4u|E|); 1e-8 eV is the bound.
+/// which the test checks with room (`ulp_bound`, 2ε|E| = 4u|E|); 1e-8 eV is the bound required.
 const TOLERANCE_EV: f64 = 1e-8;
 
 fn tempdir() -> tempfile::TempDir {
