@@ -520,6 +520,24 @@ mod tests {
     use super::super::testing::*;
     use super::*;
 
+    #[test]
+    fn an_output_may_be_one_file_of_the_case_folder() {
+        assert_eq!(case_member("case/case.log", "case"), Some(true));
+        assert_eq!(case_member("case/out/scf.h5", "case"), Some(true));
+        assert_eq!(case_member("other/case.log", "case"), None);
+        assert_eq!(case_member("casefile", "case"), None);
+        for bad in [
+            "case/",
+            "case/../x",
+            "case/./x",
+            "case/.hidden",
+            "case/*.dat",
+            "case//x",
+        ] {
+            assert_eq!(case_member(bad, "case"), Some(false), "{bad}");
+        }
+    }
+
     /// A cycle of three stages (`stages` replaces the third), one start file.
     fn cycle(third: &str) -> CampaignFile {
         raw(&format!(
