@@ -51,8 +51,10 @@ fn series(rec: &Record, stage: &str, name: &str) -> BTreeMap<String, Vec<f64>> {
 fn inplace_sweep_converges_to_the_energies_of_model_sweep() {
     let _ = (model_solid(), casebook());
     let (a, b) = (tempdir(), tempdir());
-    run_to_end(a.path(), "model-sweep.yaml");
-    run_to_end(b.path(), "inplace-sweep.yaml");
+    std::thread::scope(|s| {
+        s.spawn(|| run_to_end(a.path(), "model-sweep.yaml"));
+        s.spawn(|| run_to_end(b.path(), "inplace-sweep.yaml"));
+    });
     let model = record(&a.path().join("model-sweep.rondo"));
     let inplace_ws = b.path().join("inplace-sweep.rondo");
     let inplace = record(&inplace_ws);
