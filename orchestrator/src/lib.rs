@@ -16,6 +16,7 @@ pub mod metrics;
 pub mod progress;
 pub mod query;
 pub mod retention;
+pub mod revision;
 pub mod scratch;
 pub mod spec;
 pub mod stop;

@@ -243,6 +243,11 @@ struct RunArgs {
     /// Seconds between two scheduler polls (slurm, pbs; be kind to the controller).
     #[arg(long, default_value_t = 30)]
     poll_interval: u64,
+    /// Accept an edited campaign file that changes what its points compute (parameters,
+    /// programs, commands, inputs, the cycle): points that have not started run the new
+    /// text, the values of started points run again as new points.
+    #[arg(long)]
+    accept_revision: bool,
     /// No progress output.
     #[arg(short, long)]
     quiet: bool,

@@ -50,6 +50,7 @@ mod iterate;
 mod launch;
 mod programs;
 mod resume;
+pub mod revise;
 mod settle;
 mod shutdown;
 mod workspace;
@@ -131,6 +132,8 @@ pub struct RunOptions {
     pub grace: Duration,
     /// Set when rondo runs inside a self-continuing Slurm allocation (`rondo submit`).
     pub allocation: Option<rondo_adapters::slurm::allocation::AllocationEnv>,
+    /// Accept a revision of the campaign file that changes its physics (`--accept-revision`).
+    pub accept_revision: bool,
 }
 
 /// How a run ended.
@@ -400,6 +403,8 @@ struct Engine<'a> {
     hooks: crate::hooks::Hooks,
     /// The allow-listed environment recorded with every attempt of this run.
     env_json: String,
+    /// The campaign file's revision this run goes on under (recorded with every attempt).
+    revision: i64,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -407,7 +412,14 @@ struct Engine<'a> {
 pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> Result<RunSummary> {
     let paths = Paths::of(&opts.workspace);
     let before_lock = store::now();
-    let ws = prepare_workspace(campaign, &paths).await?;
+    let ws = prepare_workspace(campaign, &paths, opts.accept_revision).await?;
+    // The campaign under its revision: the points with the store's ids (a revision adds
+    // points after the recorded ones, whatever their place in the sweep).
+    let revised = Campaign {
+        points: ws.points.clone(),
+        ..campaign.clone()
+    };
+    let campaign = &revised;
     // A cancel request left from before this run is void: running again means go on. One
     // written since this run took the lock (`rondo cancel` found it holding it) stands.
     if CancelRequest::read(&paths.cancel_request).is_some_and(|r| r.at < before_lock) {
@@ -466,6 +478,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         storing: Default::default(),
         usage: Default::default(),
         hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
+        revision: ws.revision,
     };
     engine
         .event(

@@ -13,6 +13,7 @@ pub mod overview;
 mod plans;
 pub mod reads;
 pub mod retention;
+pub mod revisions;
 pub mod seal;
 pub mod states;
 
@@ -38,7 +39,7 @@ use sqlx::sqlite::{
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
     // (version, description, SQL), in order.
-    let steps: [(i64, &str, &'static str); 9] = [
+    let steps: [(i64, &str, &'static str); 10] = [
         (
             1,
             "initial",
@@ -83,6 +84,11 @@ pub fn migrator() -> Migrator {
             9,
             "attempt usage",
             include_str!("../../migrations/0009_attempt_usage.sql"),
+        ),
+        (
+            10,
+            "revisions",
+            include_str!("../../migrations/0010_revisions.sql"),
         ),
     ];
     let m: Vec<Migration> = steps

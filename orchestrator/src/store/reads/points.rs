@@ -94,7 +94,8 @@ pub async fn last_good_iterations(pool: &SqlitePool) -> Result<Vec<(String, Opti
 /// A point's first iteration whose stopping rules were met (through the partial index
 /// `iterations_rules_met`: one look-up, whatever the length of the history).
 pub(crate) const FIRST_RULES_MET: &str = "SELECT min(iteration) FROM iterations \
-     WHERE point = ? AND json_extract(stop_json, '$.rules_met') = 1";
+     WHERE point = ? AND json_extract(stop_json, '$.rules_met') = 1 \
+     AND iteration >= (SELECT coalesce(window_from, 0) FROM points WHERE id = ?)";
 
 /// A point's last good iteration (reading back from its last one).
 pub(crate) const LAST_GOOD: &str =
@@ -106,6 +107,7 @@ pub async fn convergence_marks(
     point: &str,
 ) -> Result<(Option<i64>, Option<i64>)> {
     let first: Option<i64> = sqlx::query_scalar(FIRST_RULES_MET)
+        .bind(point)
         .bind(point)
         .fetch_one(pool)
         .await?;
