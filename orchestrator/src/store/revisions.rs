@@ -71,6 +71,16 @@ pub async fn latest(pool: &SqlitePool) -> Result<Option<RevisionRow>> {
     Ok(list(pool).await?.pop())
 }
 
+/// The BLAKE3 of revision `number`'s text, if recorded.
+pub async fn blake3_of(pool: &SqlitePool, number: i64) -> Result<Option<String>> {
+    Ok(
+        sqlx::query_scalar("SELECT spec_blake3 FROM revisions WHERE number = ?")
+            .bind(number)
+            .fetch_optional(pool)
+            .await?,
+    )
+}
+
 /// Every point with what a revision's classification needs, in index order.
 pub async fn stored_points(pool: &SqlitePool) -> Result<Vec<StoredPoint>> {
     let rows = sqlx::query(

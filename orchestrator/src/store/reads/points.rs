@@ -23,9 +23,12 @@ pub struct PointRow {
     pub state: PointState,
 }
 
-/// Every point, in sweep order.
+/// Every point of the campaign, in sweep order: retired points (revisions removed their
+/// values, or changed their physics) are left out of analyses, reports and tables.
 pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
-    let rows = sqlx::query("SELECT id, values_json, state FROM points ORDER BY idx")
+    let rows = sqlx::query(
+        "SELECT id, values_json, state FROM points WHERE retired_in IS NULL ORDER BY idx",
+    )
         .fetch_all(pool)
         .await
         .context("cannot read the points")?;
