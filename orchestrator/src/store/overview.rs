@@ -133,7 +133,7 @@ pub async fn attempt_count(pool: &SqlitePool, point: &str) -> Result<i64> {
 /// How many points have not stopped (planned or running).
 pub async fn open_point_count(pool: &SqlitePool) -> Result<i64> {
     Ok(
-        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN (?, ?)")
+        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN (?, ?) AND retired_in IS NULL")
             .bind(PointState::Planned)
             .bind(PointState::Running)
             .fetch_one(pool)

@@ -47,9 +47,12 @@ pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
     Ok(out)
 }
 
-/// Every point as (id, values_json), in sweep order (the state not decoded).
+/// Every point of the campaign as (id, values_json), in sweep order (the state not
+/// decoded; retired points left out, as in [`all`]: a sweep-value selector names the
+/// point that runs those values now).
 pub async fn values(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
-    let rows = sqlx::query("SELECT id, values_json FROM points ORDER BY idx")
+    let rows =
+        sqlx::query("SELECT id, values_json FROM points WHERE retired_in IS NULL ORDER BY idx")
         .fetch_all(pool)
         .await?;
     let mut out = Vec::new();
