@@ -1679,6 +1679,8 @@ fn the_demo_script_says_where_the_binary_is() {
     );
 }
 
+/// A revision that changes what the points compute is refused as bad input, with the diff
+/// (the other kinds of revision: tests/revisions.rs).
 #[test]
 fn a_changed_campaign_file_is_bad_input_exit_2() {
     let d = tmp();
@@ -1688,12 +1690,16 @@ fn a_changed_campaign_file_is_bad_input_exit_2() {
     let text = std::fs::read_to_string(&f).unwrap_or_default();
     write(
         &f,
-        &text.replace("max-iterations: 30", "max-iterations: 31"),
+        &text.replace(
+            "about: test campaign",
+            "about: test campaign, edited\nseed: 7\n#",
+        ),
     );
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    let err = String::from_utf8_lossy(&o.stderr);
     assert!(
-        String::from_utf8_lossy(&o.stderr).contains("different campaign file"),
+        err.contains("changed what its points compute") && err.contains("+ seed: 7"),
         "{}",
         shown(&o)
     );

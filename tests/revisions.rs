@@ -147,7 +147,10 @@ fn traces_name_their_revisions(dir: &Path) {
         assert!(o.status.success(), "{}", shown(&o));
         let text = String::from_utf8_lossy(&o.stdout);
         let hash = blake3::hash(revs[&rev].as_bytes()).to_hex().to_string();
-        let want = format!("revision  {rev} of the campaign file (BLAKE3 {})", &hash[..12]);
+        let want = format!(
+            "revision  {rev} of the campaign file (BLAKE3 {})",
+            &hash[..12]
+        );
         assert!(text.contains(&want), "{target}: no `{want}` in\n{text}");
     }
 }
@@ -165,10 +168,14 @@ fn a_study_grows_in_place() {
     assert_eq!(r1.len(), 2);
 
     // Add a volume: one new point, the others untouched.
-    write(dir, &campaign("27.0, 28.0, 29.0", "1200", "1.0e-3", 12, "6.0"));
+    write(
+        dir,
+        &campaign("27.0, 28.0, 29.0", "1200", "1.0e-3", 12, "6.0"),
+    );
     let c = check(dir);
     assert!(
-        c.contains("revision 2 against revision 1") && c.contains("p003 (volume=29.0 temperature=1200)"),
+        c.contains("revision 2 against revision 1")
+            && c.contains("p003 (volume=29.0 temperature=1200)"),
         "{c}"
     );
     run(dir, &[], 0);
@@ -178,7 +185,10 @@ fn a_study_grows_in_place() {
     assert_eq!(revision_of(dir, "p003", 1, "band"), 2);
 
     // Add a temperature: three new points, in sweep order after the recorded ones.
-    write(dir, &campaign("27.0, 28.0, 29.0", "600, 1200", "1.0e-3", 12, "6.0"));
+    write(
+        dir,
+        &campaign("27.0, 28.0, 29.0", "600, 1200", "1.0e-3", 12, "6.0"),
+    );
     run(dir, &[], 0);
     let r3 = points(dir);
     assert_eq!(r3.len(), 6, "{r3:?}");
@@ -197,9 +207,15 @@ fn a_study_grows_in_place() {
     );
 
     // Remove a value: its points are retired, kept with their history, out of the counts.
-    write(dir, &campaign("28.0, 29.0", "600, 1200", "1.0e-3", 12, "6.0"));
+    write(
+        dir,
+        &campaign("28.0, 29.0", "600, 1200", "1.0e-3", 12, "6.0"),
+    );
     let c = check(dir);
-    assert!(c.contains("points retired (kept with their history)"), "{c}");
+    assert!(
+        c.contains("points retired (kept with their history)"),
+        "{c}"
+    );
     run(dir, &[], 0);
     let r4 = points(dir);
     for id in ["p001", "p004"] {
@@ -213,7 +229,10 @@ fn a_study_grows_in_place() {
 
     // Tighten the rule: converged points whose rule no longer holds continue from their
     // last good iteration, under revision 5; retired points stay as they are.
-    write(dir, &campaign("28.0, 29.0", "600, 1200", "1.0e-6", 12, "6.0"));
+    write(
+        dir,
+        &campaign("28.0, 29.0", "600, 1200", "1.0e-6", 12, "6.0"),
+    );
     let c = check(dir);
     assert!(c.contains("stopped points judged again"), "{c}");
     run(dir, &[], 0);
@@ -225,14 +244,23 @@ fn a_study_grows_in_place() {
         assert_eq!(r5[id].0, "converged", "{id}: {r5:?}");
         if after > before {
             reopened += 1;
-            assert_eq!(revision_of(dir, id, before, "update"), revision_of(dir, id, 1, "band"));
+            assert_eq!(
+                revision_of(dir, id, before, "update"),
+                revision_of(dir, id, 1, "band")
+            );
             assert_eq!(revision_of(dir, id, before + 1, "band"), 5, "{id}");
         }
     }
-    assert!(reopened > 0, "a rule 1000 times tighter reopened no point: {r5:?}");
+    assert!(
+        reopened > 0,
+        "a rule 1000 times tighter reopened no point: {r5:?}"
+    );
 
     // Change a parameter: refused with the diff, nothing recorded.
-    write(dir, &campaign("28.0, 29.0, 30.0", "600, 1200", "1.0e-6", 12, "5.5"));
+    write(
+        dir,
+        &campaign("28.0, 29.0, 30.0", "600, 1200", "1.0e-6", 12, "5.5"),
+    );
     let before = succeeded_attempts(&ws(dir));
     let err = run(dir, &[], 2);
     assert!(
@@ -240,7 +268,10 @@ fn a_study_grows_in_place() {
         "{err}"
     );
     assert_eq!(succeeded_attempts(&ws(dir)), before);
-    assert_eq!(strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"), ["5"]);
+    assert_eq!(
+        strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"),
+        ["5"]
+    );
 
     // Accepted: started points are retired and their values run again as new points; the
     // new volume (never started) runs under the new text too.
@@ -250,7 +281,11 @@ fn a_study_grows_in_place() {
         assert_eq!(r6[id].1, Some(6), "{id} retired for the physics: {r6:?}");
     }
     untouched(&r5, &r6, &["p001", "p002", "p003", "p004", "p005", "p006"]);
-    let live: Vec<&String> = r6.iter().filter(|(_, p)| p.1.is_none()).map(|(id, _)| id).collect();
+    let live: Vec<&String> = r6
+        .iter()
+        .filter(|(_, p)| p.1.is_none())
+        .map(|(id, _)| id)
+        .collect();
     assert_eq!(live.len(), 6, "{r6:?}");
     let u = strings(
         &ws(dir),
@@ -258,7 +293,10 @@ fn a_study_grows_in_place() {
          JOIN points p ON p.id = a.point WHERE p.retired_in IS NULL",
     );
     assert_eq!(u, ["5.5"], "every live point ran the new U only");
-    let why = strings(&ws(dir), "SELECT DISTINCT retired_why FROM points WHERE retired_in = 6");
+    let why = strings(
+        &ws(dir),
+        "SELECT DISTINCT retired_why FROM points WHERE retired_in = 6",
+    );
     assert_eq!(why, ["physics"]);
     traces_name_their_revisions(dir);
 }
@@ -268,11 +306,20 @@ fn a_raised_cap_continues_capped_points_as_a_cold_run_would() {
     let _ = model_solid();
     let (a, b) = (tempdir(), tempdir());
     // Grown: capped at 3 iterations, then the cap raised to 12.
-    write(a.path(), &campaign("27.0, 28.0", "1200", "1.0e-5", 3, "6.0"));
+    write(
+        a.path(),
+        &campaign("27.0, 28.0", "1200", "1.0e-5", 3, "6.0"),
+    );
     run(a.path(), &[], 3);
     let capped = points(a.path());
-    assert!(capped.values().all(|p| p.0 == "capped" && p.2 == 3), "{capped:?}");
-    write(a.path(), &campaign("27.0, 28.0", "1200", "1.0e-5", 12, "6.0"));
+    assert!(
+        capped.values().all(|p| p.0 == "capped" && p.2 == 3),
+        "{capped:?}"
+    );
+    write(
+        a.path(),
+        &campaign("27.0, 28.0", "1200", "1.0e-5", 12, "6.0"),
+    );
     let c = check(a.path());
     assert!(c.contains("max-iterations rose to 12"), "{c}");
     run(a.path(), &[], 0);
@@ -284,7 +331,10 @@ fn a_raised_cap_continues_capped_points_as_a_cold_run_would() {
         assert_eq!(revision_of(a.path(), id, 4, "band"), 2);
     }
     // Cold: the final text from the start gives the same numbers, bit for bit.
-    write(b.path(), &campaign("27.0, 28.0", "1200", "1.0e-5", 12, "6.0"));
+    write(
+        b.path(),
+        &campaign("27.0, 28.0", "1200", "1.0e-5", 12, "6.0"),
+    );
     run(b.path(), &[], 0);
     assert_same_record(&record(&ws(b.path())), &record(&ws(a.path())), 0);
     traces_name_their_revisions(a.path());
@@ -313,7 +363,10 @@ fn killed_runs_after_a_revision_end_with_the_numbers_of_an_uninterrupted_one() {
     assert_same_record(&reference, &record(&ws(b.path())), seed);
     assert_resume_was_clean(&ws(b.path()), seed);
     assert_eq!(
-        strings(&ws(b.path()), "SELECT CAST(count(*) AS TEXT) FROM revisions"),
+        strings(
+            &ws(b.path()),
+            "SELECT CAST(count(*) AS TEXT) FROM revisions"
+        ),
         ["2"],
         "the revision is recorded once, whatever the kills"
     );

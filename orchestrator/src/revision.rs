@@ -138,7 +138,9 @@ impl Classification {
         let rerun: Vec<String> = self
             .rerun
             .iter()
-            .map(|(old, new, vals)| format!("{old} ({vals}) retired, its values run again as {new}"))
+            .map(|(old, new, vals)| {
+                format!("{old} ({vals}) retired, its values run again as {new}")
+            })
             .collect();
         section(&mut s, "started points under the new physics", &rerun);
         let reopened: Vec<String> = self
@@ -211,7 +213,10 @@ pub fn classify(
             _ => c.physics.extend(lines),
         }
     }
-    let old_axes = stored.first().map(|p| axes(&p.values_json)).unwrap_or_default();
+    let old_axes = stored
+        .first()
+        .map(|p| axes(&p.values_json))
+        .unwrap_or_default();
     let new_axes: Vec<String> = new
         .points
         .first()
@@ -386,10 +391,9 @@ fn judge_stopped(
             why,
         };
         match s.state {
-            PointState::Capped if n < cap => c.reopened.push(reopen(
-                "running",
-                format!("max-iterations rose to {cap}"),
-            )),
+            PointState::Capped if n < cap => c
+                .reopened
+                .push(reopen("running", format!("max-iterations rose to {cap}"))),
             PointState::Converged if c.rules_changed => {
                 let empty = History::new();
                 let h = histories.get(&id).unwrap_or(&empty);

@@ -55,7 +55,9 @@ async fn histories(pool: &SqlitePool, stored: &[StoredPoint]) -> Result<HashMap<
         };
         let mut h = History::new();
         for (it, name, value, error) in flushed.metric_history(&s.id, n).await? {
-            h.entry(it).or_default().insert(name, Sample { value, error });
+            h.entry(it)
+                .or_default()
+                .insert(name, Sample { value, error });
         }
         out.insert(s.id.clone(), h);
     }

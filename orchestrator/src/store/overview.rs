@@ -53,9 +53,13 @@ pub async fn points(pool: &SqlitePool, ws: &Path) -> Result<Vec<PointRow>> {
             values_json: r.get("values_json"),
             reason: r.get("reason"),
             revision: r.get("revision"),
-            retired: r
-                .get::<Option<i64>, _>("retired_in")
-                .map(|n| (n, r.get::<Option<String>, _>("retired_why").unwrap_or_default())),
+            retired: r.get::<Option<i64>, _>("retired_in").map(|n| {
+                (
+                    n,
+                    r.get::<Option<String>, _>("retired_why")
+                        .unwrap_or_default(),
+                )
+            }),
             id,
             state,
         });
@@ -132,13 +136,13 @@ pub async fn attempt_count(pool: &SqlitePool, point: &str) -> Result<i64> {
 
 /// How many points have not stopped (planned or running).
 pub async fn open_point_count(pool: &SqlitePool) -> Result<i64> {
-    Ok(
-        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN (?, ?) AND retired_in IS NULL")
-            .bind(PointState::Planned)
-            .bind(PointState::Running)
-            .fetch_one(pool)
-            .await?,
+    Ok(sqlx::query_scalar(
+        "SELECT count(*) FROM points WHERE state IN (?, ?) AND retired_in IS NULL",
     )
+    .bind(PointState::Planned)
+    .bind(PointState::Running)
+    .fetch_one(pool)
+    .await?)
 }
 
 /// An attempt an orchestrator left outstanding, with what it takes to end it.

@@ -216,7 +216,11 @@ fn revisions_section(h: &Heading) -> String {
             "<tr><td>{n}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
             html_escape(hash.get(..16).unwrap_or(hash)),
             html_escape(at),
-            if *physics { "yes (--accept-revision)" } else { "no" }
+            if *physics {
+                "yes (--accept-revision)"
+            } else {
+                "no"
+            }
         );
     }
     html.push_str("</tbody>\n</table>\n");

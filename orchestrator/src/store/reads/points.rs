@@ -29,9 +29,9 @@ pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
     let rows = sqlx::query(
         "SELECT id, values_json, state FROM points WHERE retired_in IS NULL ORDER BY idx",
     )
-        .fetch_all(pool)
-        .await
-        .context("cannot read the points")?;
+    .fetch_all(pool)
+    .await
+    .context("cannot read the points")?;
     let mut out = Vec::new();
     for r in rows {
         let id: String = r.try_get(0)?;
@@ -53,8 +53,8 @@ pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
 pub async fn values(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
     let rows =
         sqlx::query("SELECT id, values_json FROM points WHERE retired_in IS NULL ORDER BY idx")
-        .fetch_all(pool)
-        .await?;
+            .fetch_all(pool)
+            .await?;
     let mut out = Vec::new();
     for r in rows {
         out.push((r.try_get(0)?, r.try_get(1)?));
