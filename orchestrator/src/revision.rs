@@ -44,8 +44,14 @@ pub struct Reopened {
     /// Its last good iteration, where it continues from.
     pub iteration: u32,
     /// `running` (continues) or `capped` (its rules no longer hold, at the cap).
-    pub becomes: String,
+    #[serde(serialize_with = "state_text")]
+    pub becomes: PointState,
     pub why: String,
+}
+
+/// A point state as its store text.
+fn state_text<S: serde::Serializer>(s: &PointState, ser: S) -> Result<S::Ok, S::Error> {
+    ser.serialize_str(s.as_str())
 }
 
 /// The classification of an edited campaign file against the recorded revision.
@@ -343,23 +349,31 @@ fn map_points(c: &mut Classification, new: &Campaign, stored: &[StoredPoint], re
             }
         }
     }
+    let order: Vec<String> = new
+        .points
+        .first()
+        .map(|p| p.values.iter().map(|(k, _)| k.clone()).collect())
+        .unwrap_or_default();
     for s in stored {
         if s.retired_in.is_none() && !kept.contains(&s.id.as_str()) {
-            c.retired.push((s.id.clone(), values_text(&s.values_json)));
+            c.retired
+                .push((s.id.clone(), values_text(&s.values_json, &order)));
         }
     }
 }
 
-/// `values_json` in words, as [`label`] says it.
-fn values_text(values_json: &str) -> String {
-    match serde_json::from_str::<Value>(values_json) {
-        Ok(Value::Object(m)) => m
-            .iter()
-            .map(|(k, v)| format!("{k}={}", v.to_string().trim_matches('"')))
-            .collect::<Vec<_>>()
-            .join(" "),
-        _ => values_json.to_string(),
-    }
+/// `values_json` in words, as [`label`] says it, its axes in `order` (the edited sweep's)
+/// where they are there.
+fn values_text(values_json: &str, order: &[String]) -> String {
+    let Ok(Value::Object(m)) = serde_json::from_str::<Value>(values_json) else {
+        return values_json.to_string();
+    };
+    let mut keys: Vec<&String> = m.keys().collect();
+    keys.sort_by_key(|k| order.iter().position(|o| o == *k).unwrap_or(usize::MAX));
+    keys.iter()
+        .map(|k| format!("{k}={}", m[k.as_str()].to_string().trim_matches('"')))
+        .collect::<Vec<_>>()
+        .join(" ")
 }
 
 /// Judge the stopped points that stay again under the new `stop:`, and start the final
@@ -383,17 +397,18 @@ fn judge_stopped(
         let Some(n) = s.last_good else {
             continue;
         };
-        let reopen = |becomes: &str, why: String| Reopened {
+        let reopen = |becomes: PointState, why: String| Reopened {
             point: id.clone(),
             was: s.state.to_string(),
             iteration: n,
-            becomes: becomes.into(),
+            becomes,
             why,
         };
         match s.state {
-            PointState::Capped if n < cap => c
-                .reopened
-                .push(reopen("running", format!("max-iterations rose to {cap}"))),
+            PointState::Capped if n < cap => c.reopened.push(reopen(
+                PointState::Running,
+                format!("max-iterations rose to {cap}"),
+            )),
             PointState::Converged if c.rules_changed => {
                 let empty = History::new();
                 let h = histories.get(&id).unwrap_or(&empty);
@@ -403,9 +418,12 @@ fn judge_stopped(
                 }
                 let why = "its stopping rules no longer hold at its last good iteration";
                 c.reopened.push(if n < cap {
-                    reopen("running", why.into())
+                    reopen(PointState::Running, why.into())
                 } else {
-                    reopen("capped", format!("{why}, at max-iterations ({cap})"))
+                    reopen(
+                        PointState::Capped,
+                        format!("{why}, at max-iterations ({cap})"),
+                    )
                 });
             }
             PointState::Planned | PointState::Running | PointState::Cancelled
@@ -417,7 +435,7 @@ fn judge_stopped(
         }
     }
     for r in &c.reopened {
-        if r.becomes == "running" {
+        if r.becomes == PointState::Running {
             c.window_from.push((r.point.clone(), r.iteration + 1));
         }
     }

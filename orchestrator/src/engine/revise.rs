@@ -136,10 +136,8 @@ async fn record(
         s.point_restored(id);
     }
     for r in &c.reopened {
-        let (state, reason) = match r.becomes.as_str() {
-            "capped" => (PointState::Capped, Some(r.why.as_str())),
-            _ => (PointState::Running, None),
-        };
+        let reason = (r.becomes != PointState::Running).then_some(r.why.as_str());
+        let state = r.becomes;
         s.point_state(&r.point, state, reason);
         s.event(
             "point-reopened",
