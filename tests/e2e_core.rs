@@ -409,15 +409,16 @@ stop:
         .unwrap_or_else(|e| panic!("spawn: {e}"));
     let ws = d.path().join("c.rondo");
     let t0 = Instant::now();
+    // Read-only, as a reader beside a run must: `query` opens through `store::open`, whose
+    // migrations would race the run's own while it creates the store.
     let running = |ws: &Path| -> i64 {
-        query(ws, |pool| {
-            Box::pin(async move {
-                sqlx::query_scalar("SELECT count(*) FROM attempts WHERE state = 'running'")
-                    .fetch_one(pool)
-                    .await
-                    .unwrap_or(0)
-            })
-        })
+        strings_ro(
+            ws,
+            "SELECT CAST(count(*) AS TEXT) FROM attempts WHERE state = 'running'",
+        )
+        .first()
+        .and_then(|n| n.parse().ok())
+        .unwrap_or(0)
     };
     while !(ws.join("rondo.db").is_file() && running(&ws) == 2) {
         assert!(
