@@ -62,6 +62,19 @@ pub async fn values(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
     Ok(out)
 }
 
+/// Every point as (id, values_json), retired ones too, in sweep order (for the records of
+/// every attempt, which name retired points as well).
+pub async fn values_with_retired(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
+    let rows = sqlx::query("SELECT id, values_json FROM points ORDER BY idx")
+        .fetch_all(pool)
+        .await?;
+    let mut out = Vec::new();
+    for r in rows {
+        out.push((r.try_get(0)?, r.try_get(1)?));
+    }
+    Ok(out)
+}
+
 /// One point's (values_json, state).
 pub async fn point(pool: &SqlitePool, id: &str) -> Result<(String, PointState)> {
     let r = sqlx::query("SELECT values_json, state FROM points WHERE id = ?")
