@@ -226,6 +226,25 @@ fn a_study_grows_in_place() {
     assert_eq!(s["counts"]["retired"], 2, "{}", s["counts"]);
     assert_eq!(s["counts"]["converged"], 4, "{}", s["counts"]);
     assert_eq!(s["revision"], 4);
+    let wsp = ws(dir).display().to_string();
+    let table = |kind: &str| {
+        let o = run_rondo(
+            dir,
+            &["table", kind, "--workspace", &wsp, "--format", "jsonl"],
+        );
+        assert!(o.status.success(), "{}", shown(&o));
+        String::from_utf8_lossy(&o.stdout).into_owned()
+    };
+    let finals = table("finals");
+    assert!(
+        !finals.contains(r#""point":"p001""#) && finals.contains(r#""point":"p002""#),
+        "finals leave retired points out: {finals}"
+    );
+    let metrics = table("metrics");
+    assert!(
+        metrics.contains(r#""point":"p001""#) && metrics.contains(r#""volume":27.0"#),
+        "the metrics table keeps retired points' history with their sweep values"
+    );
 
     // Tighten the rule: converged points whose rule no longer holds continue from their
     // last good iteration, under revision 5; retired points stay as they are.
@@ -298,6 +317,44 @@ fn a_study_grows_in_place() {
         "SELECT DISTINCT retired_why FROM points WHERE retired_in = 6",
     );
     assert_eq!(why, ["physics"]);
+    // p005 (28.0, 600) ran under revision 3 (and 5 if the tighter rule reopened it); its
+    // values run again as p007 under revision 6.
+    let o = run_rondo(dir, &["diff", "--workspace", &wsp, "p005", "p007"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        text.contains("campaign file revisions: A ran under 3") && text.contains(", B under 6"),
+        "{text}"
+    );
+    let prov = dir.join("prov.json");
+    let o = run_rondo(
+        dir,
+        &[
+            "export",
+            "--workspace",
+            &wsp,
+            "--prov",
+            &prov.display().to_string(),
+        ],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    let doc: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&prov).unwrap_or_else(|e| panic!("{e}")))
+            .unwrap_or_else(|e| panic!("{e}"));
+    let revisions: std::collections::BTreeSet<i64> = doc["activity"]
+        .as_object()
+        .map(|m| {
+            m.values()
+                .filter_map(|a| a["rondo:revision"].as_i64())
+                .collect()
+        })
+        .unwrap_or_default();
+    // Revision 4 only retired points: no attempt ran under it.
+    assert_eq!(
+        revisions,
+        [1, 2, 3, 5, 6].into_iter().collect(),
+        "PROV names the revision of every attempt"
+    );
     traces_name_their_revisions(dir);
 }
 
