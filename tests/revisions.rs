@@ -349,6 +349,25 @@ fn a_study_grows_in_place() {
                 .collect()
         })
         .unwrap_or_default();
+    let out = dir.join("report");
+    let o = run_rondo(
+        dir,
+        &[
+            "report",
+            "--workspace",
+            &wsp,
+            "--out",
+            &out.display().to_string(),
+        ],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    let html = std::fs::read_to_string(out.join("index.html")).unwrap_or_default();
+    assert!(
+        html.contains("<h2>Campaign file</h2>")
+            && html.contains("<tr><td>6</td>")
+            && html.contains("6 retired point(s) are left out of this report"),
+        "the report lists the revisions and says what it left out"
+    );
     // Revision 4 only retired points: no attempt ran under it.
     assert_eq!(
         revisions,
