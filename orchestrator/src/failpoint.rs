@@ -38,6 +38,7 @@ macro_rules! failpoints {
 failpoints! {
     StoreMigrated = "store-migrated",
     CampaignCreated = "campaign-created",
+    RevisionRecorded = "revision-recorded",
     PointsRestored = "points-restored",
     EventRecorded = "event-recorded",
     AttemptPlanned = "attempt-planned",

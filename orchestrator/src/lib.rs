@@ -18,6 +18,7 @@ pub mod progress;
 pub mod query;
 pub mod resident;
 pub mod retention;
+pub mod revision;
 pub mod scratch;
 pub mod spec;
 pub mod stop;

@@ -131,6 +131,7 @@ impl Engine<'_> {
             program_version: built.version.clone(),
             parameters_json: self.attempt_parameters(&point, &scheduled).to_string(),
             seed: uses_seed.then(|| seed.to_string()),
+            revision: self.revision,
             created_at: store::now(),
             host: local_host,
             env_json: Some(if stage.env.is_empty() {

@@ -13,6 +13,7 @@ pub mod overview;
 mod plans;
 pub mod reads;
 pub mod retention;
+pub mod revisions;
 pub mod seal;
 pub mod states;
 
@@ -39,7 +40,7 @@ use sqlx::sqlite::{
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
     // (version, description, SQL), in order.
-    let steps: [(i64, &str, &'static str); 10] = [
+    let steps: [(i64, &str, &'static str); 11] = [
         (
             1,
             "initial",
@@ -89,6 +90,11 @@ pub fn migrator() -> Migrator {
             10,
             "handoffs",
             include_str!("../../migrations/0010_handoffs.sql"),
+        ),
+        (
+            11,
+            "revisions",
+            include_str!("../../migrations/0011_revisions.sql"),
         ),
     ];
     let m: Vec<Migration> = steps
@@ -375,10 +381,13 @@ pub struct CampaignRow {
     pub name: String,
     /// Campaign file path as given at the first run.
     pub spec_path: String,
-    /// The exact campaign file text.
+    /// The exact campaign file text of the latest revision (the first run's until the file
+    /// is revised; `store::revisions` keeps every one).
     pub spec_text: String,
     /// BLAKE3 of the text.
     pub spec_blake3: String,
+    /// The latest revision's number.
+    pub revision: i64,
     /// When the workspace was made.
     pub created_at: String,
     /// rondo version that made it.
@@ -391,8 +400,10 @@ pub struct CampaignRow {
 pub async fn campaign_row(pool: &SqlitePool) -> Result<Option<CampaignRow>> {
     use sqlx::Row;
     let row = sqlx::query(
-        "SELECT name, spec_path, spec_text, spec_blake3, created_at, rondo_version, workspace_id \
-         FROM campaign WHERE id = 1",
+        "SELECT c.name, c.spec_path, coalesce(r.spec_text, c.spec_text) AS spec_text, \
+         coalesce(r.spec_blake3, c.spec_blake3) AS spec_blake3, coalesce(r.number, 1) AS revision, \
+         c.created_at, c.rondo_version, c.workspace_id FROM campaign c \
+         LEFT JOIN revisions r ON r.number = (SELECT max(number) FROM revisions) WHERE c.id = 1",
     )
     .fetch_optional(pool)
     .await?;
@@ -401,6 +412,7 @@ pub async fn campaign_row(pool: &SqlitePool) -> Result<Option<CampaignRow>> {
         spec_path: r.get("spec_path"),
         spec_text: r.get("spec_text"),
         spec_blake3: r.get("spec_blake3"),
+        revision: r.get("revision"),
         created_at: r.get("created_at"),
         rondo_version: r.get("rondo_version"),
         workspace_id: r.get("workspace_id"),

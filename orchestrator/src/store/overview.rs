@@ -27,14 +27,21 @@ pub struct PointRow {
     pub state: PointState,
     /// Why it stopped (or failed), when recorded.
     pub reason: Option<String>,
+    /// The campaign file's revision that made it.
+    pub revision: i64,
+    /// The revision that retired it, and why (`removed`, `physics`), if retired.
+    pub retired: Option<(i64, String)>,
 }
 
 /// Every point, in sweep order. `ws` names the workspace in the error of a row whose state
 /// does not decode.
 pub async fn points(pool: &SqlitePool, ws: &Path) -> Result<Vec<PointRow>> {
-    let rows = sqlx::query("SELECT id, idx, values_json, state, reason FROM points ORDER BY idx")
-        .fetch_all(pool)
-        .await?;
+    let rows = sqlx::query(
+        "SELECT id, idx, values_json, state, reason, revision, retired_in, retired_why \
+         FROM points ORDER BY idx",
+    )
+    .fetch_all(pool)
+    .await?;
     let mut points = Vec::with_capacity(rows.len());
     for r in rows {
         let id: String = r.get("id");
@@ -45,6 +52,14 @@ pub async fn points(pool: &SqlitePool, ws: &Path) -> Result<Vec<PointRow>> {
             index: r.get("idx"),
             values_json: r.get("values_json"),
             reason: r.get("reason"),
+            revision: r.get("revision"),
+            retired: r.get::<Option<i64>, _>("retired_in").map(|n| {
+                (
+                    n,
+                    r.get::<Option<String>, _>("retired_why")
+                        .unwrap_or_default(),
+                )
+            }),
             id,
             state,
         });
@@ -121,13 +136,13 @@ pub async fn attempt_count(pool: &SqlitePool, point: &str) -> Result<i64> {
 
 /// How many points have not stopped (planned or running).
 pub async fn open_point_count(pool: &SqlitePool) -> Result<i64> {
-    Ok(
-        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN (?, ?)")
-            .bind(PointState::Planned)
-            .bind(PointState::Running)
-            .fetch_one(pool)
-            .await?,
+    Ok(sqlx::query_scalar(
+        "SELECT count(*) FROM points WHERE state IN (?, ?) AND retired_in IS NULL",
     )
+    .bind(PointState::Planned)
+    .bind(PointState::Running)
+    .fetch_one(pool)
+    .await?)
 }
 
 /// An attempt an orchestrator left outstanding, with what it takes to end it.

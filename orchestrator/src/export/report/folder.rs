@@ -87,7 +87,7 @@ pub fn build<'a>(
     points: &[PointData],
     opts: &ReportOptions,
     conv_metrics: &[String],
-    campaign: &str,
+    campaign: &html::Heading,
     costs: &crate::query::usage::Costs,
     progress: &mut dyn FnMut(&Progress),
 ) -> Result<Folder<'a>> {

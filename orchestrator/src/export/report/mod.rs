@@ -193,13 +193,26 @@ pub async fn generate_with(
     }
     let conv_metrics = data::convergence_metrics(opts, &spec_text);
     let costs = crate::query::usage::costs(pool).await?;
+    let heading = html::Heading {
+        name: camp.name.clone(),
+        revisions: crate::store::revisions::list(pool)
+            .await?
+            .into_iter()
+            .map(|r| (r.number, r.spec_blake3, r.created_at, r.accepted))
+            .collect(),
+        retired: crate::store::revisions::stored_points(pool)
+            .await?
+            .iter()
+            .filter(|p| p.retired_in.is_some())
+            .count(),
+    };
     let place = record::Placement::prepare(out_dir)?;
     let built = folder::build(
         &place.tmp,
         &points,
         opts,
         &conv_metrics,
-        &camp.name,
+        &heading,
         &costs,
         progress,
     );
