@@ -471,3 +471,91 @@ fn killed_runs_after_a_revision_end_with_the_numbers_of_an_uninterrupted_one() {
 fn tempdir() -> tempfile::TempDir {
     tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"))
 }
+
+/// `warm-start: { along: [volume] }`: a volume added to a converged workspace starts from
+/// the nearest converged volume's last good iteration (its mixed density and self-energy),
+/// chosen when the revision is recorded and named in the store and an event; it needs
+/// fewer iterations than a cold start of the same point and ends at the same energy within
+/// the stopping tolerance's reach.
+#[test]
+fn an_added_volume_warm_starts_from_its_converged_neighbour() {
+    let _ = model_solid();
+    let (a, b) = (tempdir(), tempdir());
+    let warm = "warm-start:\n  along: [volume]\n";
+    let tol = "1.0e-6";
+    write(
+        a.path(),
+        &(campaign("27.0, 29.0", "1200", tol, 40, "6.0") + warm),
+    );
+    run(a.path(), &[], 0);
+    write(
+        a.path(),
+        &(campaign("27.0, 28.5, 29.0", "1200", tol, 40, "6.0") + warm),
+    );
+    let c = check(a.path());
+    assert!(c.contains("new"), "{c}");
+    run(a.path(), &[], 0);
+    let grown = points(a.path());
+    let (state, _, warm_iterations, _) = grown["p003"].clone();
+    assert_eq!(state, "converged", "{grown:?}");
+    let source = strings(
+        &ws(a.path()),
+        "SELECT source_point || ' ' || CAST(source_iteration AS TEXT) FROM warm_starts \
+         WHERE point = 'p003'",
+    );
+    let p2_last = grown["p002"].2;
+    assert_eq!(
+        source,
+        [format!("p002 {p2_last}")],
+        "28.5 is nearest to 29.0 (p002), at its last good iteration"
+    );
+    // The first band of the new point read p002's final mixed density.
+    let read = strings(
+        &ws(a.path()),
+        "SELECT i.artifact FROM attempt_inputs i JOIN attempts a ON a.id = i.attempt_id \
+         WHERE a.point = 'p003' AND a.iteration = 1 AND a.stage = 'band' \
+         AND a.state = 'succeeded' AND i.role = 'density'",
+    );
+    let final_mix = strings(
+        &ws(a.path()),
+        "SELECT o.artifact FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
+         JOIN points p ON p.id = a.point \
+         WHERE a.point = 'p002' AND a.stage = 'mix' AND a.state = 'succeeded' \
+         AND o.role = 'density' AND a.iteration = (SELECT max(iteration) FROM attempts \
+         WHERE point = 'p002' AND stage = 'mix' AND state = 'succeeded')",
+    );
+    assert_eq!(
+        read, final_mix,
+        "the warm start's input is the neighbour's final density"
+    );
+    // Cold: the same point alone, from the start files.
+    write(b.path(), &campaign("28.5", "1200", tol, 40, "6.0"));
+    run(b.path(), &[], 0);
+    let cold = points(b.path());
+    let cold_iterations = cold["p001"].2;
+    let energy = |dir: &Path, id: &str| {
+        let s = status_json(dir, &ws(dir));
+        s["points"]
+            .as_array()
+            .and_then(|ps| ps.iter().find(|p| p["id"] == id).cloned())
+            .and_then(|p| p["metrics"]["update.energy"].as_f64())
+            .unwrap_or(f64::NAN)
+    };
+    let (ew, ec) = (energy(a.path(), "p003"), energy(b.path(), "p001"));
+    eprintln!(
+        "warm start: {warm_iterations} iterations (cold {cold_iterations}, {:.0} %); energy \
+         {ew} eV warm, {ec} eV cold, difference {:.2e} eV",
+        100.0 * warm_iterations as f64 / cold_iterations as f64,
+        (ew - ec).abs()
+    );
+    // Fewer iterations than cold (the demo-sized measurement, with the goal of 60 % that it
+    // does not reach, is scripts/warm-start-study and docs/performance.md).
+    assert!(
+        warm_iterations < cold_iterations,
+        "warm {warm_iterations} iterations, cold {cold_iterations}"
+    );
+    // Both stop once n_f changes by less than 1e-6 between iterations; the energy's own
+    // change at that point (update.energy, a few 1e-6 eV per 1e-6 of n_f in this model)
+    // bounds how far two converged runs may sit apart.
+    assert!((ew - ec).abs() < 1.0e-4, "warm {ew} eV, cold {ec} eV");
+}

@@ -33,7 +33,8 @@ use crate::store::PointState;
 pub type History = BTreeMap<u32, BTreeMap<String, Sample>>;
 
 /// Top-level keys whose changes change no point.
-const OTHER_KEYS: [&str; 4] = ["about", "analysis", "hooks", "budget"];
+/// `warm-start` decides only where points added from then on begin.
+const OTHER_KEYS: [&str; 5] = ["about", "analysis", "hooks", "budget", "warm-start"];
 
 /// What a stopped point becomes under the revised stopping rules.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]

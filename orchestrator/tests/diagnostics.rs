@@ -1330,6 +1330,54 @@ budget: { core-hours: 200 node-hours }
             at: (5, 23),
         },
         Case {
+            site: "warm-start names no sweep axis",
+            says: "warm-start names no sweep axis",
+            yaml: "campaign: t
+sweep: { product: { v: [1.0, 2.0] } }
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+warm-start: { along: [] }
+",
+            at: (6, 22),
+        },
+        Case {
+            site: "warm-start axis `{axis}` is not a sweep axis",
+            says: "warm-start axis `volume` is not a sweep axis",
+            yaml: "campaign: t
+sweep: { product: { v: [1.0, 2.0] } }
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+warm-start: { along: [volume] }
+",
+            at: (6, 23),
+        },
+        Case {
+            site: "warm-start axis `{axis}` has values that are not numbers",
+            says: "warm-start axis `phase` has values that are not numbers",
+            yaml: "campaign: t
+sweep: { product: { phase: [a, b] } }
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+warm-start: { along: [phase] }
+",
+            at: (6, 23),
+        },
+        Case {
+            site: "warm-start axis `{axis}` is named twice",
+            says: "warm-start axis `v` is named twice",
+            yaml: "campaign: t
+sweep: { product: { v: [1.0, 2.0] } }
+cycle:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+warm-start: { along: [v, v] }
+",
+            at: (6, 26),
+        },
+        Case {
             site: "stage `{sname}`: `keep` names `{}`, which is not one of its outputs",
             says: "`keep` names `wfc`, which is not one of its outputs",
             yaml: "campaign: t

@@ -676,6 +676,12 @@ async fn input_hash(
                     .output_artifact(point, iteration - 1, stage, role)
                     .await
             } else {
+                // A point warm-started by a revision: its neighbour's last good output.
+                if let Some((source, it)) = store.warm_source(point).await? {
+                    if let Some(a) = store.output_artifact(&source, it, stage, role).await? {
+                        return Ok(Some(a));
+                    }
+                }
                 match initially {
                     Some(name) => store.start_artifact(name).await,
                     None => Ok(None),

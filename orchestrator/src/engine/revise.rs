@@ -127,6 +127,39 @@ async fn record(
         .map(|p| (p.id.clone(), p.index as i64, values_json(p).to_string()))
         .collect();
     s.points_added(n, &added);
+    if !campaign.warm_start.is_empty() {
+        let stored = revisions::stored_points(pool).await?;
+        let leaving: Vec<&str> = c
+            .retired
+            .iter()
+            .map(|(id, _)| id.as_str())
+            .chain(c.rerun.iter().map(|(old, _, _)| old.as_str()))
+            .chain(c.reopened.iter().map(|r| r.point.as_str()))
+            .collect();
+        for p in c
+            .points
+            .iter()
+            .filter(|p| c.added.iter().any(|(id, _)| *id == p.id))
+        {
+            let Some((source, iteration, distance)) =
+                nearest_converged(&campaign.warm_start, p, &stored, &leaving)
+            else {
+                continue;
+            };
+            s.warm_start(&p.id, &source, iteration, distance);
+            s.event(
+                "warm-start",
+                Some(&p.id),
+                Some(1),
+                None,
+                &format!(
+                    "revision {n}: starts from {source} iteration {iteration} (distance \
+                     {distance} along {})",
+                    campaign.warm_start.join(", ")
+                ),
+            );
+        }
+    }
     for (id, _) in &c.retired {
         s.point_retired(id, n, "removed");
     }
@@ -161,4 +194,62 @@ async fn record(
     );
     s.event("campaign-revised", None, None, None, &summary);
     s.commit(pool, Failpoint::RevisionRecorded).await
+}
+
+/// The converged point nearest to `p` along the `along` axes, among those equal to it on
+/// every other axis and not leaving the campaign: (its id, last good iteration, distance).
+/// Distance is the sum of the absolute differences along the axes; ties go to the point
+/// recorded first, so the choice depends only on the store.
+fn nearest_converged(
+    along: &[String],
+    p: &PointSpec,
+    stored: &[StoredPoint],
+    leaving: &[&str],
+) -> Option<(String, u32, f64)> {
+    let mine = values_json(p);
+    let mut best: Option<(f64, i64, String, u32)> = None;
+    for s in stored {
+        let (PointState::Converged, Some(it), None) = (s.state, s.last_good, s.retired_in) else {
+            continue;
+        };
+        if leaving.contains(&s.id.as_str()) || s.id == p.id {
+            continue;
+        }
+        let Ok(theirs) = serde_json::from_str::<serde_json::Value>(&s.values_json) else {
+            continue;
+        };
+        let (Some(a), Some(b)) = (mine.as_object(), theirs.as_object()) else {
+            continue;
+        };
+        let same_elsewhere = a
+            .iter()
+            .filter(|(k, _)| !along.contains(k))
+            .all(|(k, v)| b.get(k) == Some(v))
+            && a.len() == b.len();
+        if !same_elsewhere {
+            continue;
+        }
+        let mut d = 0.0;
+        for axis in along {
+            let (Some(x), Some(y)) = (
+                a.get(axis).and_then(serde_json::Value::as_f64),
+                b.get(axis).and_then(serde_json::Value::as_f64),
+            ) else {
+                d = f64::NAN;
+                break;
+            };
+            d += (x - y).abs();
+        }
+        if !d.is_finite() {
+            continue;
+        }
+        let better = match &best {
+            None => true,
+            Some((bd, bidx, _, _)) => d < *bd || (d == *bd && s.idx < *bidx),
+        };
+        if better {
+            best = Some((d, s.idx, s.id.clone(), it));
+        }
+    }
+    best.map(|(d, _, id, it)| (id, it, d))
 }

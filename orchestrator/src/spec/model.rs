@@ -407,6 +407,9 @@ pub struct Campaign {
     pub hooks: Hooks,
     /// The campaign's budget in core-hours, if it states one.
     pub budget_core_hours: Option<f64>,
+    /// `warm-start: { along }`: the sweep axes a point added by a revision is warm-started
+    /// along (empty: every point starts from the start files).
+    pub warm_start: Vec<String>,
 }
 
 /// The events a hook may be named for, as the campaign file and the event JSON spell them.

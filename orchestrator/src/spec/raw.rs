@@ -696,6 +696,22 @@ pub struct CampaignFile {
     /// What the campaign may cost; `rondo plan` warns when its estimate could exceed it.
     #[serde(default)]
     pub budget: Option<BudgetSpec>,
+    /// Where points added by a revision start: from the nearest converged point along the
+    /// named sweep axes (equal on every other axis) instead of the start files.
+    #[serde(default)]
+    pub warm_start: Option<WarmStartSpec>,
+}
+
+/// `warm-start: { along: [volume] }`: a point added to a workspace by a revision takes,
+/// for every `previous:` input of its first iteration, the last good iteration's output of
+/// the nearest converged point along these axes (among the points equal to it on every
+/// other sweep axis); without one it starts from the start files.
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct WarmStartSpec {
+    /// Sweep axes along which distance is measured (numeric values).
+    #[schemars(with = "Vec<String>")]
+    pub along: Spanned<Vec<Spanned<String>>>,
 }
 
 /// A hook's command: `[program, args...]`, run without a shell and without placeholders

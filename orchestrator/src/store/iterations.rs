@@ -170,6 +170,17 @@ impl Flushed<'_> {
         Ok(first.map(|i| i as u32))
     }
 
+    /// The point and iteration a warm-started point begins from (`warm_starts`).
+    pub async fn warm_source(&self, point: &str) -> Result<Option<(String, u32)>> {
+        let row: Option<(String, i64)> = sqlx::query_as(
+            "SELECT source_point, source_iteration FROM warm_starts WHERE point = ?",
+        )
+        .bind(point)
+        .fetch_optional(self.pool)
+        .await?;
+        Ok(row.map(|(p, i)| (p, u32::try_from(i).unwrap_or(0))))
+    }
+
     /// The artifact of a start file.
     pub async fn start_artifact(&self, name: &str) -> Result<Option<String>> {
         Ok(

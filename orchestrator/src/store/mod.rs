@@ -40,7 +40,7 @@ use sqlx::sqlite::{
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
     // (version, description, SQL), in order.
-    let steps: [(i64, &str, &'static str); 11] = [
+    let steps: [(i64, &str, &'static str); 12] = [
         (
             1,
             "initial",
@@ -95,6 +95,11 @@ pub fn migrator() -> Migrator {
             11,
             "revisions",
             include_str!("../../migrations/0011_revisions.sql"),
+        ),
+        (
+            12,
+            "warm starts",
+            include_str!("../../migrations/0012_warm_starts.sql"),
         ),
     ];
     let m: Vec<Migration> = steps

@@ -150,6 +150,18 @@ impl Script {
         }
     }
 
+    /// A point added by this revision starts from `source`'s iteration `iteration`.
+    pub fn warm_start(&mut self, point: &str, source: &str, iteration: u32, distance: f64) {
+        self.stmt(
+            "INSERT INTO warm_starts(point, source_point, source_iteration, distance) \
+             VALUES (?, ?, ?, ?)",
+        )
+        .bind(point.to_string())
+        .bind(source.to_string())
+        .bind(i64::from(iteration))
+        .bind(distance);
+    }
+
     /// A point leaves the campaign (kept with its history).
     pub fn point_retired(&mut self, point: &str, number: i64, why: &str) {
         self.stmt("UPDATE points SET retired_in = ?, retired_why = ? WHERE id = ?")

@@ -8,7 +8,7 @@ use std::path::Path;
 use serde_saphyr::Spanned;
 
 use super::{loc, parse_duration, Validator};
-use crate::spec::model::{DiskFree, Hooks, HOOK_EVENTS};
+use crate::spec::model::{DiskFree, Hooks, PointSpec, HOOK_EVENTS};
 use crate::spec::raw::{CampaignFile, HookCommand, Scalar};
 
 impl Validator<'_> {
@@ -121,6 +121,56 @@ impl Validator<'_> {
                 None
             }
         }
+    }
+}
+
+impl Validator<'_> {
+    /// `warm-start: { along: [AXIS, ...] }` → the axes: each a numeric sweep axis, once.
+    pub(super) fn warm_start(&mut self, raw: &CampaignFile, points: &[PointSpec]) -> Vec<String> {
+        let Some(w) = raw.warm_start.as_ref() else {
+            return Vec::new();
+        };
+        if w.along.value.is_empty() {
+            self.push(
+                loc(&w.along),
+                "warm-start names no sweep axis",
+                "name the axes to search along, e.g. `warm-start: { along: [volume] }`",
+            );
+            return Vec::new();
+        }
+        let mut out: Vec<String> = Vec::new();
+        for a in &w.along.value {
+            let axis = &a.value;
+            let values: Vec<&Scalar> = points
+                .iter()
+                .filter_map(|p| p.values.iter().find(|(k, _)| k == axis).map(|(_, v)| v))
+                .collect();
+            if values.is_empty() {
+                self.push(
+                    loc(a),
+                    format!("warm-start axis `{axis}` is not a sweep axis"),
+                    "name an axis of `sweep:` (its values measure the distance between points)",
+                );
+            } else if values
+                .iter()
+                .any(|v| !matches!(v, Scalar::Int(_) | Scalar::Real(_)))
+            {
+                self.push(
+                    loc(a),
+                    format!("warm-start axis `{axis}` has values that are not numbers"),
+                    "warm starts measure distance along numeric axes; leave the others out (points must then be equal on them)",
+                );
+            } else if out.contains(axis) {
+                self.push(
+                    loc(a),
+                    format!("warm-start axis `{axis}` is named twice"),
+                    "name each axis once",
+                );
+            } else {
+                out.push(axis.clone());
+            }
+        }
+        out
     }
 }
 

@@ -109,6 +109,7 @@ impl<'a> Validator<'a> {
         let eos = self.eos(&raw, &points);
         let hooks = self.hooks(&raw, &base);
         let budget_core_hours = self.budget(&raw);
+        let warm_start = self.warm_start(&raw, &points);
         if !self.diags.is_empty() {
             self.diags.sort_by_key(|d| (d.line, d.column));
             return Err(SpecErrors {
@@ -135,6 +136,7 @@ impl<'a> Validator<'a> {
             warnings: stop.warnings,
             hooks,
             budget_core_hours,
+            warm_start,
         })
     }
 
