@@ -254,3 +254,74 @@ fn killed_inplace_runs_end_with_the_files_and_numbers_of_an_uninterrupted_run() 
     }
     assert_resume_was_clean(&ws, seed);
 }
+
+/// Whether a Slurm that answers is here; skips loudly (fails under RONDO_REQUIRE_SLURM=1 or
+/// CI) otherwise.
+fn slurm_or_skip() -> bool {
+    let ok = std::process::Command::new("sinfo")
+        .args(["-h", "-o", "%T"])
+        .output()
+        .map(|o| o.status.success())
+        .unwrap_or(false);
+    if !ok {
+        skip_or_fail(
+            "no working Slurm here (`sinfo` failed)",
+            "start the one-node Slurm with `bash scripts/dev-slurm start` (as root)",
+            &["RONDO_REQUIRE_SLURM"],
+        );
+    }
+    ok
+}
+
+/// The reduced in-place campaign through the one-node Slurm (`--on slurm`: the `scf` stage
+/// of every iteration a batch job working in its kept case folder; the `mix` built-in where
+/// rondo runs) records every output hash, every file of every case folder and every metric
+/// bit of the same campaign run locally.
+#[test]
+fn the_inplace_campaign_through_slurm_gives_the_files_and_numbers_of_the_local_run() {
+    let _ = casebook();
+    if !slurm_or_skip() {
+        return;
+    }
+    let (a, b) = (tempdir(), tempdir());
+    reduced_in(a.path());
+    reduced_in(b.path());
+    let o = run_rondo(
+        a.path(),
+        &["run", "inplace-sweep.yaml", "--max-running", "2", "-q"],
+    );
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let local = a.path().join("inplace-sweep.rondo");
+    let o = run_rondo(
+        b.path(),
+        &[
+            "run",
+            "inplace-sweep.yaml",
+            "--on",
+            "slurm",
+            "--poll-interval",
+            "1",
+            "-q",
+        ],
+    );
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let slurm = b.path().join("inplace-sweep.rondo");
+    let jobs = strings(
+        &slurm,
+        "SELECT CAST(count(*) AS TEXT) FROM attempts WHERE executor = 'slurm' \
+         AND state = 'succeeded'",
+    );
+    assert!(
+        jobs.first()
+            .and_then(|n| n.parse::<u32>().ok())
+            .unwrap_or(0)
+            > 0,
+        "no batch job ran: {jobs:?}"
+    );
+    assert_same_record(&record(&local), &record(&slurm), 0);
+    assert_eq!(
+        folder_files(&local),
+        folder_files(&slurm),
+        "every file of every case folder"
+    );
+}
