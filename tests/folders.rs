@@ -63,8 +63,8 @@ cycle:
     outputs: {{ seen: seen.txt }}
 stop:
   when:
-    - {{ metric: step.x, change-below: 1.0e-4, for: 2 }}
-  max-iterations: 30
+    - {{ metric: step.x, change-below: 1.0e-7, for: 2 }}
+  max-iterations: 40
 "#,
         prog = fixture("casestep.sh").display(),
         counters = dir.join("counters").display(),
