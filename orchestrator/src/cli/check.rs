@@ -9,7 +9,10 @@ use std::fmt::Write;
 use super::output::emit;
 use super::workspace::load;
 use super::{CheckArgs, EXIT_OK};
-use crate::spec::{self, Campaign, Combine, Compare, RuleTest, Source, Stage, StageKind};
+use crate::spec::{
+    self, Campaign, Combine, Compare, PointSelection, PointsRead, RuleTest, Source, Stage,
+    StageKind,
+};
 
 /// `rondo check FILE`: the campaign file's warnings on stderr, its plan on stdout.
 pub fn run(a: CheckArgs) -> Result<u8> {
@@ -79,9 +82,22 @@ fn stage_summary(c: &Campaign, kind: &StageKind) -> String {
             "built-in filter ({} Legendre coefficients, {} Matsubara frequencies)",
             w.legendre, w.matsubara
         ),
+        StageKind::Eos(e) => format!(
+            "built-in equation-of-state fit of {} over the sweep axis {}",
+            e.energy, e.volume
+        ),
         StageKind::Mix(w) => {
             format!("built-in mix ({:?}, alpha {})", w.method, w.alpha).to_lowercase()
         }
+    }
+}
+
+/// A point selection as the campaign file writes it.
+fn points_text(p: PointSelection) -> &'static str {
+    match p {
+        PointSelection::All => "all",
+        PointSelection::Converged => "converged",
+        PointSelection::Group => "group",
     }
 }
 
@@ -90,6 +106,17 @@ fn source_text(src: &Source) -> String {
     match src {
         Source::Same { stage, role } => format!("{stage}.{role}"),
         Source::Start(n) => format!("start.{n}"),
+        Source::Before { stage, role } => format!("{stage}.{role} (before the cycle)"),
+        Source::Points { read, points } => {
+            let what = match read {
+                PointsRead::Output { stage, role } => format!("{stage}.{role}"),
+                PointsRead::Finals(m) => format!("final values of {}", m.join(", ")),
+            };
+            format!(
+                "{what} of the points selected by `points: {}`",
+                points_text(*points)
+            )
+        }
         Source::Previous {
             stage,
             role,
@@ -98,7 +125,7 @@ fn source_text(src: &Source) -> String {
             "{stage}.{role} of the previous iteration{}",
             initially
                 .as_ref()
-                .map(|i| format!(" (iteration 1: start.{i})"))
+                .map(|i| format!(" (iteration 1: {i})"))
                 .unwrap_or_default()
         ),
     }

@@ -41,7 +41,7 @@ use crate::artifacts::{hash_file, ArtifactStore};
 use crate::builtins;
 use crate::progress::Progress;
 use crate::scratch;
-use crate::spec::{Campaign, Placement, PointSpec, Source, Stage, StageKind};
+use crate::spec::{Campaign, Placement, PointSpec, Section, Source, Stage, StageKind};
 use crate::stop::{self, Sample};
 use crate::store::{self, AttemptState, IterationState, PointState};
 use crate::validate::{self, Metric};
@@ -146,6 +146,9 @@ pub struct RunSummary {
     pub cancelled_because: Option<String>,
     /// Inside an allocation: the job id of the continuation submitted at the warning signal.
     pub continued_as: Option<String>,
+    /// Stages outside the loop (`after-point:`, `after-campaign:`) that failed every
+    /// attempt in this run (the next `rondo run` runs them again).
+    pub after_failed: usize,
 }
 
 impl RunSummary {
@@ -216,7 +219,10 @@ pub fn spec_hash(text: &str) -> String {
 enum PointPhase {
     /// Has work to do.
     Active,
-    /// Stopped (converged, capped, failed, cancelled).
+    /// Converged or capped, its `after-point:` stages still to run (on its last good
+    /// iteration, which `iteration` names).
+    After,
+    /// Stopped (converged, capped, failed, cancelled) with nothing left to run.
     Done,
 }
 
@@ -398,6 +404,9 @@ struct Engine<'a> {
     hooks: crate::hooks::Hooks,
     /// The allow-listed environment recorded with every attempt of this run.
     env_json: String,
+    /// Stages outside the loop (`after-point:`, `after-campaign:`) that used up their
+    /// retries in this run.
+    after_failed: usize,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -463,6 +472,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         policies: crate::retention::Policies::of(campaign),
         storing: Default::default(),
         hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
+        after_failed: 0,
     };
     engine
         .event(
@@ -657,6 +667,7 @@ impl Engine<'_> {
             cancelled: cancelled.is_some(),
             cancelled_because: cancelled.map(|r| r.reason),
             continued_as,
+            after_failed: self.after_failed,
         })
     }
 
@@ -689,7 +700,7 @@ impl Engine<'_> {
                         its.push(format!("{}:{}", p.spec.id, p.iteration));
                     }
                 }
-                PointPhase::Done => done += 1,
+                PointPhase::After | PointPhase::Done => done += 1,
             }
         }
         let more = if active > its.len() { " …" } else { "" };
