@@ -1571,7 +1571,7 @@ fn cancel_with_no_orchestrator_ends_what_a_killed_one_left_outstanding() {
     first.wait().unwrap_or_else(|e| panic!("wait: {e}"));
     let ws_id = workspace_id(&ws);
     assert_eq!(
-        processes_of_workspace(&ws_id).len(),
+        programs_of_workspace(&ws_id).len(),
         2,
         "the children outlive the killed orchestrator"
     );

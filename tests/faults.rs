@@ -261,6 +261,72 @@ fn a_child_that_ignores_sigterm_is_killed_after_the_grace_period() {
     assert_no_double_success_nor_children(&ws, 0);
 }
 
+/// The halving campaign whose stage sleeps 3 s at iteration 2, under a 2 s time limit, with
+/// one retry and this `timeout-factor`.
+fn sleepy_campaign(factor: &str) -> String {
+    let text = campaign_text().replace(
+        "if [ $RONDO_ITERATION -ge 3 ] && [ -e ../../../hold ]; then sleep 30; fi;",
+        "if [ $RONDO_ITERATION -eq 2 ]; then sleep 3; fi;",
+    );
+    text.replace(
+        "    metrics: [x]\n",
+        &format!(
+            "    metrics: [x]\n    time-limit: \"00:02\"\n    retries: 1\n    timeout-factor: {factor}\n"
+        ),
+    )
+}
+
+#[test]
+fn a_stage_past_its_time_limit_is_retried_with_a_longer_one() {
+    // Killed at 2 s, the retry asks for 3 × 2 s and finishes its 3 s: same numbers as an
+    // undisturbed run, and an event says what limit the retry had.
+    let want = reference();
+    let d = campaign_dir();
+    write(&d.path().join("c.yaml"), &sleepy_campaign("3"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--grace", "1"]);
+    assert_eq!(code(&o), Some(0), "{}", shown(&o));
+    let ws = ws_of(d.path());
+    assert_eq!(record(&ws), want, "same numbers as an undisturbed run");
+    let kinds = strings(
+        &ws,
+        "SELECT point || ' ' || iteration || ' ' || attempt || ' ' || coalesce(failure_kind, state) \
+         FROM attempts WHERE iteration = 2 ORDER BY point, attempt",
+    );
+    assert_eq!(
+        kinds.len(),
+        4,
+        "two attempts per point at iteration 2: {kinds:?}"
+    );
+    for k in &kinds {
+        assert!(
+            k.ends_with(" 1 timeout") || k.ends_with(" 2 succeeded"),
+            "first killed by its limit, then done: {kinds:?}"
+        );
+    }
+    let events = strings(
+        &ws,
+        "SELECT detail FROM events WHERE kind = 'time-limit-lengthened' ORDER BY seq",
+    );
+    assert_eq!(events.len(), 2, "{events:?}");
+    for e in &events {
+        assert!(e.contains("the limit is 6 s"), "{e}");
+    }
+    assert_no_double_success_nor_children(&ws, 0);
+
+    // With factor 1 the retry gets the same 2 s and is killed again: the points fail.
+    let d = campaign_dir();
+    write(&d.path().join("c.yaml"), &sleepy_campaign("1"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q", "--grace", "1"]);
+    assert_eq!(code(&o), Some(3), "{}", shown(&o));
+    let ws = ws_of(d.path());
+    let kinds = strings(
+        &ws,
+        "SELECT DISTINCT coalesce(failure_kind, state) FROM attempts WHERE iteration = 2",
+    );
+    assert_eq!(kinds, vec!["timeout".to_string()]);
+    assert_no_double_success_nor_children(&ws, 0);
+}
+
 #[test]
 fn grandchildren_and_setsid_children_are_ended_with_the_attempt() {
     // The stage leaves two background sleeps in its group and one in a session of its own

@@ -554,6 +554,27 @@ fn slurm_run_matches_the_local_run_and_trace_shows_job_ids() {
         .count();
     assert!(wanted > 0, "the reference ran no command stage");
     assert_eq!(ids.len(), wanted, "one batch job per command attempt");
+    // Each batch job measured its command (the job script's `times`; `sacct` where this
+    // Slurm keeps accounting, which the dev Slurm does not), and status sums it per stage.
+    let sources = strings(
+        &ws,
+        "SELECT DISTINCT coalesce(usage_source, 'none') || ' ' || (cpu_user_s IS NOT NULL) \
+         FROM attempts WHERE executor = 'slurm'",
+    );
+    assert!(
+        sources
+            .iter()
+            .all(|s| s == "job-script 1" || s == "sacct 1"),
+        "every batch attempt's cost was measured: {sources:?}"
+    );
+    let s = status_json(dir, &ws);
+    for st in COMMAND_STAGES {
+        let c = &s["usage"]["by_stage"][st];
+        assert!(
+            c["attempts"].as_i64().unwrap_or(0) > 0 && c["core_hours"].as_f64().is_some(),
+            "status sums the cost of stage {st}: {c}"
+        );
+    }
     // Slurm's own record agrees: each of these jobs ran once, under the attempt's name, in
     // the attempt's scratch directory, and completed.
     // (skipped loudly, or failed under RONDO_REQUIRE_SLURM, when there is no record)

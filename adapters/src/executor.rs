@@ -109,6 +109,11 @@ pub struct LaunchRequest {
     pub time_limit: Option<Duration>,
     /// Batch resources (merged with campaign defaults).
     pub resources: Resources,
+    /// Local executor: whether the program may outlive the orchestrator (a SIGKILL of rondo
+    /// leaves it running, and the next rondo watches it again or adopts its result), or is
+    /// ended when the orchestrator is gone (`outlive-rondo: false`). Batch jobs ignore it.
+    #[serde(default)]
+    pub outlive: bool,
 }
 
 /// What the store records about a launched attempt so that it can be found again.
@@ -167,6 +172,26 @@ pub struct Completion {
     pub ended_at: Option<DateTime<Utc>>,
     /// The host it ran on, if known.
     pub host: Option<String>,
+    /// What it cost, if measured.
+    #[serde(default)]
+    pub usage: Option<Usage>,
+}
+
+/// What an attempt cost: CPU time, peak memory and wall time of its program.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct Usage {
+    /// CPU time in user mode, seconds.
+    pub user_s: f64,
+    /// CPU time in the kernel on its behalf, seconds.
+    pub system_s: f64,
+    /// Largest resident set, KiB, if known.
+    pub max_rss_kib: Option<u64>,
+    /// Wall time, seconds, if measured.
+    pub wall_s: Option<f64>,
+    /// Where the figures come from: `wait4` (a local keeper), `job-script` (a batch job
+    /// script's own measure) or `sacct` (the scheduler's accounting).
+    #[serde(default)]
+    pub source: String,
 }
 
 /// The state of an attempt recorded as launched by an earlier orchestrator.

@@ -1,13 +1,22 @@
-//! The local executor: attempts as child processes of the orchestrator.
+//! The local executor: attempts as processes on this host.
 //!
-//! Each attempt's program is started directly (no shell, unless the rendered argv is one)
-//! in its own process group, with null stdin, stdout/stderr through pipes into `stdout.txt`
-//! and `stderr.txt` in its scratch directory (each capped to its first and last 8 MiB, see
-//! [`logs`]; when the orchestrator dies the pipes close, and a child's next write to them
-//! ends it with SIGPIPE, as the next orchestrator would end it), and the inherited
-//! environment plus the request's
-//! variables plus `RONDO_WORKSPACE_ID` and `RONDO_ATTEMPT_ID`. Those two variables are how a
-//! later orchestrator recognises the attempt's processes after a crash (see [`sys`]).
+//! When the binary made itself the keeper ([`use_this_binary`], as `rondo` does), each
+//! attempt's program runs under a keeper process of its own ([`keeper`]; rondo's side in
+//! `kept`): the keeper holds the program's pipes, the capped logs, its time limit and its
+//! exit marker, so a SIGKILL of the orchestrator does not end the program, and the next
+//! orchestrator watches it again or adopts its result ([`Executor::reattach`]). A request
+//! with `outlive: false` (a stage's `outlive-rondo: false`) has its keeper end the program as
+//! soon as the orchestrator is gone.
+//!
+//! Without a keeper (a library user), the program is started directly (no shell, unless the
+//! rendered argv is one) in its own process group, with null stdin, stdout/stderr through
+//! pipes into `stdout.txt` and `stderr.txt` in its scratch directory (each capped to its
+//! first and last 8 MiB, see [`logs`]; when the orchestrator dies the pipes close, and a
+//! child's next write to them ends it with SIGPIPE, as the next orchestrator would end it).
+//!
+//! Either way the program gets the inherited environment plus the request's variables
+//! plus `RONDO_WORKSPACE_ID` and `RONDO_ATTEMPT_ID`. Those two variables are how a later
+//! orchestrator recognises the attempt's processes after a crash (see [`sys`]).
 //!
 //! Ending an attempt (time limit, cancel, shutdown, reattach to an orphan) always goes
 //! SIGTERM to the whole group, a grace period, then SIGKILL. When a program exits on its own
@@ -19,6 +28,8 @@
 //!
 //! Linux only (`/proc`).
 
+pub mod keeper;
+mod kept;
 pub mod logs;
 pub mod sys;
 
@@ -40,6 +51,7 @@ use crate::executor::{
     Completion, ExecError, Executor, Handle, LaunchRequest, Outcome, Reattached, Shutdown,
 };
 
+pub use kept::{use_this_binary, KeeperProgram};
 pub use sys::{ATTEMPT_VAR, WORKSPACE_VAR};
 
 /// Grace period between SIGTERM and SIGKILL unless configured otherwise.
@@ -91,6 +103,7 @@ pub struct LocalExecutor {
     semaphore: Arc<Semaphore>,
     closed: AtomicBool,
     shared: Arc<Shared>,
+    keeper: Option<KeeperProgram>,
 }
 
 impl LocalExecutor {
@@ -113,6 +126,7 @@ impl LocalExecutor {
                 completions,
                 running: Mutex::new(HashMap::new()),
             }),
+            keeper: kept::keeper_program(),
         }
     }
 
@@ -169,6 +183,7 @@ impl LocalExecutor {
             started_at: None,
             ended_at: Some(now),
             host: Some(self.shared.host.clone()),
+            usage: None,
         });
         Handle {
             executor: "local".to_string(),
@@ -271,6 +286,36 @@ async fn wait_until_gone(workspace_id: &str, attempt_id: i64, deadline: Instant)
     }
 }
 
+/// Leftovers: processes of the attempt still alive after its program (leader of group
+/// `pgid`) was reaped, or every process of it when rondo `ended` it. The common case
+/// (nothing left in the group) costs one kill(2) call.
+pub(crate) async fn end_leftovers(
+    workspace_id: &str,
+    attempt_id: i64,
+    pgid: i32,
+    ended: bool,
+    grace: Duration,
+) {
+    if !(sys::group_exists(pgid) || ended) {
+        return;
+    }
+    if !ended && !sys::attempt_processes(workspace_id, attempt_id).is_empty() {
+        tracing::warn!(
+            attempt_id,
+            "program exited but left processes behind; ending them"
+        );
+    }
+    if !terminate_attempt(workspace_id, attempt_id, Some(pgid), grace).await
+        && sys::group_exists(pgid)
+    {
+        // No member was readable by its environment (a process can be unreadable for an
+        // instant while it forks or execs), yet the group of our own child, just reaped,
+        // still has members: it is ours, since a group id is not reused while any
+        // process is in it.
+        end_bare_group(pgid, grace).await;
+    }
+}
+
 /// Map an exit status to an outcome.
 fn outcome_of(status: ExitStatus) -> Outcome {
     use std::os::unix::process::ExitStatusExt;
@@ -299,13 +344,13 @@ struct Supervised {
 }
 
 /// One stream's copying task and the switch that ends it.
-struct KeptLog {
+pub(crate) struct KeptLog {
     task: JoinHandle<std::io::Result<u64>>,
     stop: tokio::sync::oneshot::Sender<()>,
 }
 
 impl KeptLog {
-    fn start(
+    pub(crate) fn start(
         pipe: Option<impl tokio::io::AsyncRead + Unpin + Send + 'static>,
         file: File,
     ) -> Option<KeptLog> {
@@ -317,7 +362,7 @@ impl KeptLog {
 
     /// Wait for the stream to end (up to [`LOG_DRAIN`]), then stop reading and write the
     /// kept tail.
-    async fn finish(self, attempt_id: i64) {
+    pub(crate) async fn finish(self, attempt_id: i64) {
         let KeptLog { mut task, stop } = self;
         let done = match tokio::time::timeout(LOG_DRAIN, &mut task).await {
             Ok(r) => r,
@@ -382,30 +427,18 @@ async fn supervise(mut s: Supervised) {
             },
         }
     };
-    // Leftovers: processes of the attempt still alive after the leader was reaped. The
-    // common case (nothing left in the group) costs one kill(2) call.
-    let ws = &s.shared.workspace_id;
-    if sys::group_exists(s.pgid) || ended.is_some() {
-        let grace = match grace_deadline {
-            Some(deadline) => deadline.saturating_duration_since(Instant::now()),
-            None => s.grace,
-        };
-        if ended.is_none() && !sys::attempt_processes(ws, s.attempt_id).is_empty() {
-            tracing::warn!(
-                attempt_id = s.attempt_id,
-                "program exited but left processes behind; ending them"
-            );
-        }
-        if !terminate_attempt(ws, s.attempt_id, Some(s.pgid), grace).await
-            && sys::group_exists(s.pgid)
-        {
-            // No member was readable by its environment (a process can be unreadable for an
-            // instant while it forks or execs), yet the group of our own child, just reaped,
-            // still has members: it is ours, since a group id is not reused while any
-            // process is in it.
-            end_bare_group(s.pgid, grace).await;
-        }
-    }
+    let grace = match grace_deadline {
+        Some(deadline) => deadline.saturating_duration_since(Instant::now()),
+        None => s.grace,
+    };
+    end_leftovers(
+        &s.shared.workspace_id,
+        s.attempt_id,
+        s.pgid,
+        ended.is_some(),
+        grace,
+    )
+    .await;
     for log in std::mem::take(&mut s.logs) {
         log.finish(s.attempt_id).await;
     }
@@ -422,6 +455,7 @@ async fn supervise(mut s: Supervised) {
         started_at: Some(s.started_at),
         ended_at: Some(Utc::now()),
         host: Some(s.shared.host.clone()),
+        usage: None,
     };
     s.shared.running().remove(&s.attempt_id);
     // The receiver may be gone (orchestrator stopping); nothing to report to then.
@@ -466,6 +500,9 @@ impl Executor for LocalExecutor {
                 what: format!("launch attempt {}", req.attempt_id),
                 message: "the local executor is shutting down".to_string(),
             })?;
+        if let Some(kp) = &self.keeper {
+            return self.launch_kept(kp, req, permit).await;
+        }
         let stdout = create_output(&req.workdir, "stdout.txt")?;
         let stderr = create_output(&req.workdir, "stderr.txt")?;
         let mut env: BTreeMap<String, String> = req.env.clone();
@@ -556,7 +593,7 @@ impl Executor for LocalExecutor {
         &self,
         attempt_id: i64,
         handle: &Handle,
-        _workdir: &Path,
+        workdir: &Path,
     ) -> Result<Reattached, ExecError> {
         if handle.host != self.shared.host {
             return Err(ExecError::Unavailable {
@@ -570,6 +607,9 @@ impl Executor for LocalExecutor {
         }
         if self.shared.running().contains_key(&attempt_id) {
             return Ok(Reattached::Active);
+        }
+        if let Some(r) = self.reattach_kept(attempt_id, handle, workdir).await {
+            return Ok(r);
         }
         let pgid = handle.id.parse::<i32>().ok();
         if terminate_attempt(&self.shared.workspace_id, attempt_id, pgid, self.grace).await {

@@ -16,7 +16,7 @@ use std::time::Duration;
 
 use tokio::sync::mpsc::UnboundedSender;
 
-use crate::executor::{Completion, ExecError, LaunchRequest, Resources};
+use crate::executor::{Completion, ExecError, LaunchRequest, Resources, Usage};
 use batch::{
     run_capture, sanitize_job_name, BatchCore, BatchStats, BatchSystem, EndKind, JobState,
     PollSettings,
@@ -283,6 +283,8 @@ pub fn end_from_fields(f: &HashMap<String, String>) -> Option<EndKind> {
 pub struct Slurm {
     config: SlurmConfig,
     workspace_id: String,
+    /// Set once `sacct` failed (no accounting at this site, or no `sacct`): not asked again.
+    accounting_off: std::sync::atomic::AtomicBool,
 }
 
 fn unavailable_or_invalid(what: &str, message: String) -> ExecError {
@@ -382,6 +384,48 @@ impl BatchSystem for Slurm {
         }
     }
 
+    /// `sacct` for the job, where the site keeps accounting: the job's user and system
+    /// CPU time and elapsed seconds, and the largest MaxRSS of its steps. The first failure
+    /// (accounting storage disabled, no `sacct` beside `scontrol`) turns it off for this
+    /// executor, so a site without accounting pays one call per run.
+    async fn accounting(&self, id: &str) -> Option<Usage> {
+        use std::sync::atomic::Ordering;
+        if self.accounting_off.load(Ordering::Relaxed) {
+            return None;
+        }
+        let sacct = Path::new(&self.config.scontrol).with_file_name("sacct");
+        let args: Vec<String> = [
+            "-j",
+            id,
+            "-n",
+            "-P",
+            "--noconvert",
+            "-o",
+            "JobID,UserCPU,SystemCPU,MaxRSS,ElapsedRaw",
+        ]
+        .iter()
+        .map(|s| s.to_string())
+        .collect();
+        match run_capture(
+            &sacct.display().to_string(),
+            &args,
+            self.config.client_timeout,
+        )
+        .await
+        {
+            Ok(out) => parse_sacct(id, &out),
+            Err(m) => {
+                tracing::info!(
+                    "no Slurm accounting here ({}); an attempt's cost is the job script's own \
+                     measure",
+                    m.lines().next().unwrap_or("")
+                );
+                self.accounting_off.store(true, Ordering::Relaxed);
+                None
+            }
+        }
+    }
+
     async fn cancel(&self, id: &str) -> Result<(), ExecError> {
         run_capture(
             &self.config.scancel,
@@ -444,6 +488,7 @@ impl SlurmExecutor {
         SlurmExecutor {
             core: BatchCore::new(
                 Slurm {
+                    accounting_off: Default::default(),
                     config,
                     workspace_id,
                 },
@@ -598,6 +643,85 @@ mod tests {
         assert_eq!(
             end_from_fields(&f),
             Some(EndKind::Ran { exit: Some((3, 0)) })
+        );
+    }
+}
+
+/// `sacct`'s `[DD-[HH:]]MM:SS[.mmm]` as seconds.
+fn sacct_seconds(t: &str) -> Option<f64> {
+    let (days, rest) = match t.split_once('-') {
+        Some((d, r)) => (d.parse::<f64>().ok()?, r),
+        None => (0.0, t),
+    };
+    let mut secs = 0.0;
+    for part in rest.split(':') {
+        secs = secs * 60.0 + part.parse::<f64>().ok()?;
+    }
+    Some(days * 86_400.0 + secs)
+}
+
+/// `sacct`'s MaxRSS (`204800K`, `200M`, `2G`, or bytes without a suffix) in KiB.
+fn sacct_kib(v: &str) -> Option<u64> {
+    let (num, scale) = match v.chars().last()? {
+        'K' => (&v[..v.len() - 1], 1.0),
+        'M' => (&v[..v.len() - 1], 1024.0),
+        'G' => (&v[..v.len() - 1], 1024.0 * 1024.0),
+        'T' => (&v[..v.len() - 1], 1024.0 * 1024.0 * 1024.0),
+        _ => (v, 1.0 / 1024.0),
+    };
+    Some((num.parse::<f64>().ok()? * scale).round() as u64)
+}
+
+/// The cost of job `id` from `sacct -n -P -o JobID,UserCPU,SystemCPU,MaxRSS,ElapsedRaw`:
+/// CPU and elapsed time from the job's own line (which sums its steps), MaxRSS the largest
+/// of any step. `None` when the job's line is missing.
+pub fn parse_sacct(id: &str, out: &str) -> Option<Usage> {
+    let mut usage = None;
+    let mut rss: Option<u64> = None;
+    for line in out.lines() {
+        let f: Vec<&str> = line.split('|').collect();
+        if f.len() < 5 {
+            continue;
+        }
+        if let Some(k) = sacct_kib(f[3].trim()) {
+            rss = Some(rss.map_or(k, |r| r.max(k)));
+        }
+        if f[0] == id {
+            usage = Some(Usage {
+                user_s: sacct_seconds(f[1].trim())?,
+                system_s: sacct_seconds(f[2].trim())?,
+                max_rss_kib: None,
+                wall_s: f[4].trim().parse::<f64>().ok(),
+                source: "sacct".to_string(),
+            });
+        }
+    }
+    usage.map(|u| Usage {
+        max_rss_kib: rss,
+        ..u
+    })
+}
+
+#[cfg(test)]
+mod accounting_tests {
+    use super::*;
+
+    #[test]
+    fn sacct_lines_give_cpu_time_elapsed_and_the_largest_step_rss() {
+        let out = "4242|01:02.500|00:03.250||75\n4242.batch|01:02.400|00:03.200|210944K|75\n\
+                   4242.extern|00:00.001|00:00:00|1024K|75\n";
+        let u = parse_sacct("4242", out).expect("the job's line");
+        assert_eq!(u.user_s, 62.5);
+        assert_eq!(u.system_s, 3.25);
+        assert_eq!(u.max_rss_kib, Some(210_944));
+        assert_eq!(u.wall_s, Some(75.0));
+        assert_eq!(u.source, "sacct");
+        assert_eq!(sacct_seconds("1-02:03:04"), Some(93_784.0));
+        assert_eq!(sacct_kib("2G"), Some(2 * 1024 * 1024));
+        assert_eq!(sacct_kib("2048"), Some(2));
+        assert!(
+            parse_sacct("7", out).is_none(),
+            "another job's lines are not this job's"
         );
     }
 }

@@ -26,6 +26,7 @@ fn request(attempt_id: i64, workdir: &Path, argv: &[&str]) -> LaunchRequest {
         workdir: workdir.to_path_buf(),
         env: BTreeMap::new(),
         time_limit: None,
+        outlive: false,
         resources: Resources::default(),
     }
 }

@@ -126,6 +126,7 @@ fn request(dir: &Path) -> LaunchRequest {
         workdir: dir.to_path_buf(),
         env: [("RONDO_X".to_string(), "it's here".to_string())].into(),
         time_limit: None,
+        outlive: false,
         resources: Resources {
             ntasks: Some(2),
             time: Some("30".into()),

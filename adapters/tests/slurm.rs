@@ -93,6 +93,7 @@ fn request(id: i64, dir: &Path, script: &str) -> LaunchRequest {
         env: [("RONDO_TEST_VALUE".to_string(), "a b'c".to_string())].into(),
         time_limit: None,
         resources: Resources::default(),
+        outlive: false,
     }
 }
 

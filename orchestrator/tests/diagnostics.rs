@@ -238,6 +238,19 @@ stop: { max-iterations: 1 }
             at: (5, 16),
         },
         Case {
+            site: "stage `{sname}`: timeout-factor `{factor}` is not between 1 and {MAX_TIMEOUT_FACTOR}",
+            says: "stage `a`: timeout-factor `0.5` is not between 1 and 100",
+            yaml: "campaign: t
+cycle:
+  a:
+    run: [/bin/true]
+    timeout-factor: 0.5
+stop: { max-iterations: 1 }
+",
+            // the stage (the factor may come from `defaults:`)
+            at: (3, 3),
+        },
+        Case {
             site: "stage `{sname}`: time limit `{t}` is not a duration",
             says: "stage `a`: time limit `soon` is not a duration",
             yaml: "campaign: t

@@ -31,6 +31,8 @@ pub struct TaggedProcess {
     pub workspace: String,
     /// Value of `RONDO_ATTEMPT_ID`, if set.
     pub attempt: Option<String>,
+    /// Value of `RONDO_KEEPER` (the keeper's mode) when the process is an attempt's keeper.
+    pub keeper: Option<String>,
 }
 
 /// State letter and process group from `/proc/<pid>/stat` (proc(5): fields 3 and 5).
@@ -45,12 +47,21 @@ fn stat(pid: i32) -> Option<(char, i32)> {
     Some((state, pgrp))
 }
 
-/// The two rondo variables from `/proc/<pid>/environ`, if the workspace one is present.
-fn rondo_env(pid: i32) -> Option<(String, Option<String>)> {
+/// The rondo variables from `/proc/<pid>/environ` (workspace, attempt, keeper mode), if
+/// the workspace one is present.
+fn rondo_env(pid: i32) -> Option<(String, Option<String>, Option<String>)> {
     let raw = fs::read(format!("/proc/{pid}/environ")).ok()?;
     let mut workspace = None;
     let mut attempt = None;
+    let mut keeper = None;
     for entry in raw.split(|b| *b == 0) {
+        if let Some(v) = entry
+            .strip_prefix(super::keeper::KEEPER_VAR.as_bytes())
+            .and_then(|r| r.strip_prefix(b"="))
+        {
+            keeper = Some(String::from_utf8_lossy(v).into_owned());
+            continue;
+        }
         if let Some(v) = entry
             .strip_prefix(WORKSPACE_VAR.as_bytes())
             .and_then(|r| r.strip_prefix(b"="))
@@ -63,7 +74,7 @@ fn rondo_env(pid: i32) -> Option<(String, Option<String>)> {
             attempt = Some(String::from_utf8_lossy(v).into_owned());
         }
     }
-    Some((workspace?, attempt))
+    Some((workspace?, attempt, keeper))
 }
 
 /// Every live process (zombies excluded, this process excluded) with a
@@ -85,7 +96,7 @@ pub fn tagged_processes(workspace: &str) -> Vec<TaggedProcess> {
         if pid == own {
             continue;
         }
-        let Some((ws, attempt)) = rondo_env(pid) else {
+        let Some((ws, attempt, keeper)) = rondo_env(pid) else {
             continue;
         };
         if ws != workspace {
@@ -104,6 +115,7 @@ pub fn tagged_processes(workspace: &str) -> Vec<TaggedProcess> {
             pgrp,
             workspace: ws,
             attempt,
+            keeper,
         });
     }
     found
@@ -116,6 +128,21 @@ pub fn attempt_processes(workspace: &str, attempt_id: i64) -> Vec<TaggedProcess>
         .into_iter()
         .filter(|p| p.attempt.as_deref() == Some(id.as_str()))
         .collect()
+}
+
+/// The live keeper of an attempt, as `(pid, mode)`, if there is one.
+pub fn keeper_of(workspace: &str, attempt_id: i64) -> Option<(i32, String)> {
+    attempt_processes(workspace, attempt_id)
+        .into_iter()
+        .find_map(|p| Some((p.pid, p.keeper?)))
+}
+
+/// Whether `pid` is still the live keeper of this attempt (its environment is read again,
+/// so a recycled pid is never taken for it).
+pub fn is_keeper(pid: i32, workspace: &str, attempt_id: i64) -> bool {
+    let id = attempt_id.to_string();
+    matches!(rondo_env(pid), Some((ws, Some(a), Some(_))) if ws == workspace && a == id)
+        && stat(pid).is_some_and(|(state, _)| state != 'Z' && state != 'X')
 }
 
 /// Whether the process group `pgid` has any member at all (zombies included).

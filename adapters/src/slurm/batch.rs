@@ -16,7 +16,7 @@ use chrono::{DateTime, Utc};
 use tokio::sync::mpsc::UnboundedSender;
 
 use crate::executor::{
-    Completion, ExecError, Handle, LaunchRequest, Outcome, Reattached, Shutdown,
+    Completion, ExecError, Handle, LaunchRequest, Outcome, Reattached, Shutdown, Usage,
 };
 
 /// Implements [`crate::executor::Executor`] for a batch executor type that holds its
@@ -85,6 +85,9 @@ pub const START_MARKER: &str = ".rondo-start";
 pub const EXIT_MARKER: &str = ".rondo-exit";
 /// The generated job script's file name in the workdir.
 pub const SCRIPT_NAME: &str = "rondo-job.sh";
+/// What the job script's `times` printed after the command: the shell's own user and
+/// system time, then its children's (the command and what it waited for).
+pub const TIMES_FILE: &str = ".rondo-times";
 
 /// How a job stands according to the batch system.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -130,6 +133,11 @@ pub trait BatchSystem: Send + Sync + 'static {
     /// Last resort for a job absent from the queue and without an exit marker: a record of
     /// finished jobs, if the site keeps one. `None` when nothing is known.
     async fn lookup_finished(&self, id: &str) -> Option<EndKind>;
+    /// What a finished job cost according to the batch system's accounting, where the site
+    /// keeps it; `None` when it does not (then the job script's own measure stands).
+    async fn accounting(&self, _id: &str) -> Option<Usage> {
+        None
+    }
     /// The job of this attempt, found by the tag every job carries, for an attempt whose
     /// job id was never recorded (rondo died between submitting and recording). `Ok(None)`
     /// when no such job is known.
@@ -216,6 +224,7 @@ pub fn job_script(directives: &[String], req: &LaunchRequest) -> Result<String, 
     let wd = req.workdir.display().to_string();
     let start = shell_quote(&format!("{wd}/{START_MARKER}"));
     let exit = shell_quote(&format!("{wd}/{EXIT_MARKER}"));
+    let times = shell_quote(&format!("{wd}/{TIMES_FILE}"));
     let mut s = String::from("#!/bin/sh\n");
     for d in directives {
         s.push_str(d);
@@ -243,6 +252,10 @@ pub fn job_script(directives: &[String], req: &LaunchRequest) -> Result<String, 
     s.push_str(&words.join(" "));
     s.push('\n');
     s.push_str("rc=$?\n");
+    // The POSIX `times` builtin: CPU time of the shell and of its children, the command
+    // among them; no external program, before the exit marker so that it is there once the
+    // marker is.
+    s.push_str(&format!("times > {times} 2>/dev/null\n"));
     s.push_str(&format!(
         "printf '%s %s\\n' \"$rc\" \"$(date -u +%Y-%m-%dT%H:%M:%SZ)\" > {exit}.tmp.$$ && mv -f {exit}.tmp.$$ {exit}\n"
     ));
@@ -669,6 +682,7 @@ impl<B: BatchSystem> BatchCore<B> {
                     started_at,
                     ended_at: Some(Utc::now()),
                     host,
+                    usage: None,
                 });
             }
             if let Some(e) = first_err {
@@ -741,13 +755,46 @@ pub fn completion(
             reason: "the job left the queue without writing its exit marker".to_string(),
         },
     };
+    let usage = script_usage(workdir, started_at, exit.as_ref().and_then(|(_, t)| *t));
     Completion {
         attempt_id,
         outcome,
         started_at,
         ended_at,
         host,
+        usage,
     }
+}
+
+/// Minutes and seconds as the shell's `times` prints them (`1m2.345s`, `0m0.01s`).
+fn times_seconds(word: &str) -> Option<f64> {
+    let (m, s) = word.strip_suffix('s')?.split_once('m')?;
+    Some(m.parse::<f64>().ok()? * 60.0 + s.parse::<f64>().ok()?)
+}
+
+/// The job script's own measure (see [`TIMES_FILE`]): the children's user and system
+/// time from `times`, and the wall time between the start and exit markers (whole
+/// seconds). No peak memory: `times` has none.
+pub fn script_usage(
+    workdir: &Path,
+    started: Option<DateTime<Utc>>,
+    ended: Option<DateTime<Utc>>,
+) -> Option<Usage> {
+    let text = std::fs::read_to_string(workdir.join(TIMES_FILE)).ok()?;
+    let children = text.lines().nth(1)?;
+    let mut it = children.split_whitespace().map(times_seconds);
+    let (user, system) = (it.next()??, it.next()??);
+    let wall = match (started, ended) {
+        (Some(a), Some(b)) => (b - a).to_std().ok().map(|d| d.as_secs_f64()),
+        _ => None,
+    };
+    Some(Usage {
+        user_s: user,
+        system_s: system,
+        max_rss_kib: None,
+        wall_s: wall,
+        source: "job-script".to_string(),
+    })
 }
 
 /// The exit marker's path in a job's workdir (see [`job_script`]).
@@ -757,11 +804,22 @@ fn exit_marker(workdir: &Path) -> PathBuf {
 
 /// Report the end of job `id` (if still watched) and stop watching it. `false` when the
 /// engine has gone away.
-fn finish<B: BatchSystem>(shared: &Shared<B>, id: &str, end: Option<EndKind>) -> bool {
+async fn finish<B: BatchSystem>(shared: &Shared<B>, id: &str, end: Option<EndKind>) -> bool {
     let Some(w) = lock(&shared.jobs).remove(id) else {
         return true;
     };
-    let c = completion(w.attempt_id, &w.workdir, end, w.cancelled_by_us);
+    let mut c = completion(w.attempt_id, &w.workdir, end, w.cancelled_by_us);
+    if let Some(acct) = shared.system.accounting(id).await {
+        c.usage = Some(match c.usage.take() {
+            // The accounting's figures win; the script's fill what it lacks.
+            Some(own) => Usage {
+                max_rss_kib: acct.max_rss_kib.or(own.max_rss_kib),
+                wall_s: acct.wall_s.or(own.wall_s),
+                ..acct
+            },
+            None => acct,
+        });
+    }
     tracing::debug!(job = %id, attempt_id = w.attempt_id, outcome = ?c.outcome, "job ended");
     shared.tx.send(c).is_ok()
 }
@@ -797,7 +855,7 @@ async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
         if !marker.is_zero() {
             for (id, workdir) in &ids {
                 // The marker is written by rename, so its existence means it is complete.
-                if exit_marker(workdir).exists() && !finish(&shared, id, None) {
+                if exit_marker(workdir).exists() && !finish(&shared, id, None).await {
                     return;
                 }
             }
@@ -837,7 +895,7 @@ async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
                 None if read_exit(&w.workdir).is_some() => None,
                 None => shared.system.lookup_finished(&id).await,
             };
-            if !finish(&shared, &id, end) {
+            if !finish(&shared, &id, end).await {
                 return;
             }
         }
@@ -884,6 +942,7 @@ mod tests {
             workdir: "/tmp/w d".into(),
             env: [("OMP_NUM_THREADS".to_string(), "2".to_string())].into(),
             time_limit: None,
+            outlive: false,
             resources: crate::executor::Resources {
                 ntasks: Some(4),
                 launcher: Some(vec!["mpirun".into(), "-np".into(), "{{tasks}}".into()]),
@@ -906,5 +965,39 @@ mod tests {
             ..req
         };
         assert!(matches!(job_script(&[], &bad), Err(ExecError::Invalid(_))));
+    }
+
+    #[test]
+    fn the_job_script_measures_its_commands_cpu_time_with_times() {
+        let d = tempfile::tempdir().expect("tempdir");
+        let req = LaunchRequest {
+            attempt_id: 8,
+            job_name: "c/p/1/s".into(),
+            argv: vec![
+                "/bin/sh".into(),
+                "-c".into(),
+                "i=0; while [ $i -lt 300000 ]; do i=$((i+1)); done".into(),
+            ],
+            workdir: d.path().to_path_buf(),
+            env: Default::default(),
+            time_limit: None,
+            outlive: false,
+            resources: Default::default(),
+        };
+        let script = d.path().join(SCRIPT_NAME);
+        std::fs::write(&script, job_script(&[], &req).expect("script")).expect("write");
+        let st = std::process::Command::new("/bin/sh")
+            .arg(&script)
+            .status()
+            .expect("run the job script");
+        assert!(st.success());
+        let (_, started) = read_start(d.path()).expect("start marker");
+        let (_, ended) = read_exit(d.path()).expect("exit marker");
+        let u = script_usage(d.path(), started, ended).expect("times recorded");
+        assert_eq!(u.source, "job-script");
+        assert!(u.user_s > 0.0, "a busy loop used CPU: {u:?}");
+        assert!(u.wall_s.is_some_and(|w| w >= 0.0), "{u:?}");
+        assert_eq!(times_seconds("1m2.5s"), Some(62.5));
+        assert_eq!(times_seconds("0m0.000000s"), Some(0.0));
     }
 }

@@ -37,10 +37,14 @@ pub async fn status(ws: &Path) -> Result<Value> {
     };
     let mut points = Vec::new();
     let mut counts = Map::new();
+    let costs = crate::query::usage::costs(&pool).await?;
     for row in overview::points(&pool, ws).await? {
         let n = counts.entry(row.state.as_str()).or_insert(json!(0));
         *n = json!(n.as_u64().unwrap_or(0) + 1);
-        points.push(point_doc(&pool, row).await?);
+        let usage = costs.point_json(&row.id);
+        let mut doc = point_doc(&pool, row).await?;
+        doc["usage"] = usage;
+        points.push(doc);
     }
     let running = store::holder(ws);
     let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
@@ -57,6 +61,7 @@ pub async fn status(ws: &Path) -> Result<Value> {
         "counts": counts,
         "points": points,
         "eos": eos,
+        "usage": costs.campaign_json(),
     }))
 }
 
@@ -150,7 +155,37 @@ fn status_text(s: &Value) -> String {
     for line in crate::query::analysis::eos_lines(&s["eos"]) {
         let _ = writeln!(out, "  {line}");
     }
+    if let Some(line) = usage_line(&s["usage"]) {
+        let _ = writeln!(out, "  {line}");
+    }
     out
+}
+
+/// `cost: 0.0123 core-hours (stage a 0.0100, b 0.0023), peak RSS 210.0 MiB`, or nothing
+/// when no attempt was measured.
+fn usage_line(u: &Value) -> Option<String> {
+    let total = &u["total"];
+    if total["attempts"].as_i64().unwrap_or(0) == 0 {
+        return None;
+    }
+    let hours = |v: &Value| v["core_hours"].as_f64().unwrap_or(0.0);
+    let stages: Vec<String> = u["by_stage"]
+        .as_object()
+        .map(|m| {
+            m.iter()
+                .map(|(s, c)| format!("{s} {:.4}", hours(c)))
+                .collect()
+        })
+        .unwrap_or_default();
+    let rss = total["max_rss_kib"]
+        .as_f64()
+        .map(|k| format!(", peak RSS {:.1} MiB", k / 1024.0))
+        .unwrap_or_default();
+    Some(format!(
+        "cost: {} (per stage: {}){rss}",
+        crate::query::usage::core_hours_text(hours(total)),
+        stages.join(", ")
+    ))
 }
 
 /// A point's line (id, values, state, iteration, why it stopped) and its metrics' line.
@@ -193,6 +228,16 @@ fn point_lines(out: &mut String, p: &Value) {
     );
     if !metrics.is_empty() {
         let _ = writeln!(out, "      {metrics}");
+    }
+    let total = &p["usage"]["total"];
+    if total["attempts"].as_i64().unwrap_or(0) > 0 {
+        let _ = writeln!(
+            out,
+            "      cost: {} over {} attempts, {:.1} s wall",
+            crate::query::usage::core_hours_text(total["core_hours"].as_f64().unwrap_or(0.0)),
+            total["attempts"],
+            total["wall_s"].as_f64().unwrap_or(0.0)
+        );
     }
 }
 

@@ -4,6 +4,8 @@
 
 use super::*;
 use crate::spec::Initial;
+use rondo_adapters::executor::Resources;
+use rondo_adapters::slurm::lengthen_time;
 
 impl Engine<'_> {
     /// Start work for ready points while slots are free.
@@ -482,6 +484,60 @@ impl Engine<'_> {
         Ok(())
     }
 
+    /// The time limit and resources of an attempt: the stage's, except for a retry after
+    /// time-limit kills of the same iteration, which asks for `timeout-factor` times the limit
+    /// per earlier kill (a batch job's `--time` rounded up to whole minutes, Slurm's
+    /// resolution; an event says so).
+    /// Counted from the store, so a resumed run asks for the same limit.
+    async fn limits_for_retry(
+        &mut self,
+        id: i64,
+        fl: &InFlight,
+        stage: &Stage,
+        point: &str,
+    ) -> Result<(Option<Duration>, Resources)> {
+        let limited = stage.time_limit.is_some() || stage.resources.time.is_some();
+        if fl.attempt <= 1 || !limited || stage.timeout_factor <= 1.0 {
+            return Ok((stage.time_limit, stage.resources.clone()));
+        }
+        let kills = self
+            .ledger
+            .flush()
+            .await?
+            .timed_out_attempts(point, fl.iteration, &stage.name)
+            .await?;
+        if kills == 0 {
+            return Ok((stage.time_limit, stage.resources.clone()));
+        }
+        let factor = stage
+            .timeout_factor
+            .powi(i32::try_from(kills).unwrap_or(i32::MAX));
+        let time_limit = stage.time_limit.map(|t| {
+            Duration::try_from_secs_f64(t.as_secs_f64() * factor).unwrap_or(Duration::MAX)
+        });
+        let resources = lengthen_time(&stage.resources, factor);
+        let detail = format!(
+            "after {kills} time-limit kill(s) the limit is {} (timeout-factor {})",
+            time_limit
+                .map(|t| format!("{} s", t.as_secs()))
+                .or_else(|| resources.time.clone())
+                .unwrap_or_default(),
+            stage.timeout_factor
+        );
+        self.ledger
+            .write(|s| {
+                s.event(
+                    "time-limit-lengthened",
+                    Some(point),
+                    Some(fl.iteration),
+                    Some(id),
+                    &detail,
+                )
+            })
+            .await?;
+        Ok((time_limit, resources))
+    }
+
     /// A command or shell stage: hand it to the executor.
     async fn launch_command(
         &mut self,
@@ -503,17 +559,20 @@ impl Engine<'_> {
         env.insert("RONDO_POINT".to_string(), point.id.clone());
         env.insert("RONDO_ITERATION".to_string(), fl.iteration.to_string());
         env.insert("RONDO_STAGE".to_string(), stage.name.clone());
+        let point_id = point.id.clone();
+        let (time_limit, resources) = self.limits_for_retry(id, &fl, stage, &point_id).await?;
         let req = LaunchRequest {
             attempt_id: id,
             job_name: format!(
                 "{}.{}.i{}.{}",
-                self.campaign.name, point.id, fl.iteration, stage.name
+                self.campaign.name, point_id, fl.iteration, stage.name
             ),
             argv,
             workdir: fl.workdir.clone(),
             env,
-            time_limit: stage.time_limit,
-            resources: stage.resources.clone(),
+            time_limit,
+            resources,
+            outlive: stage.outlive_rondo,
         };
         match self.executor_for(fl.on_host).launch(req).await {
             Ok(handle) if local => {

@@ -400,6 +400,8 @@ struct Engine<'a> {
     /// Attempts on the blocking pool (output checks and storing, built-ins): in flight, but
     /// holding no executor slot.
     storing: std::collections::HashSet<i64>,
+    /// What ended attempts cost, from their completions, until their final rows are written.
+    usage: HashMap<i64, rondo_adapters::executor::Usage>,
     /// The campaign's hooks (run beside the loop, never waited for in it).
     hooks: crate::hooks::Hooks,
     /// The allow-listed environment recorded with every attempt of this run.
@@ -471,6 +473,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         checked_tx,
         policies: crate::retention::Policies::of(campaign),
         storing: Default::default(),
+        usage: Default::default(),
         hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
         after_failed: 0,
     };

@@ -50,6 +50,9 @@ impl Engine<'_> {
             );
             return Ok(());
         };
+        if let Some(u) = &c.usage {
+            self.usage.insert(c.attempt_id, u.clone());
+        }
         let stage = self.campaign.stages[fl.stage].clone();
         let failed = |kind: &str,
                       message: String,
@@ -244,6 +247,9 @@ impl Engine<'_> {
         script.attempt_outputs(id, &done.outs, &store::now());
         script.folder_members(&done.folders);
         script.attempt_metrics(id, &metrics);
+        if let Some(u) = self.usage.remove(&id) {
+            script.attempt_usage(id, &u, &u.source);
+        }
         script.attempt_succeeded(
             id,
             store::time_text(done.ended.unwrap_or_else(Utc::now)),
@@ -305,9 +311,13 @@ impl Engine<'_> {
     ) -> Result<()> {
         let what = format!("{}: {}", f.kind, f.message);
         let point = fl.map(|fl| (fl, self.points[fl.point].spec.id.clone()));
+        let usage = self.usage.remove(&id);
         self.ledger
             .write(|s| {
                 s.attempt_ended_badly(id, f, launch);
+                if let Some(u) = &usage {
+                    s.attempt_usage(id, u, &u.source);
+                }
                 if let Some((fl, point_id)) = &point {
                     s.event(
                         &format!("attempt-{}", f.state),

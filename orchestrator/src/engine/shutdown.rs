@@ -125,6 +125,9 @@ impl Engine<'_> {
                     let Some(fl) = self.inflight.get(&id).cloned() else {
                         continue;
                     };
+                    if let Some(u) = &c.usage {
+                        self.usage.insert(id, u.clone());
+                    }
                     let ended = Ended::Failed {
                         kind: "cancelled".into(),
                         message: why.to_string(),

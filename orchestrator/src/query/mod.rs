@@ -19,6 +19,7 @@ pub mod plan;
 pub mod records;
 pub mod target;
 pub mod trace_text;
+pub mod usage;
 
 pub use diff::{
     diff, InputDiff, MetricDivergence, PointDiff, PointSide, ProgramChange, ProgramDiff, StopDiff,

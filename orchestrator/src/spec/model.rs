@@ -212,12 +212,18 @@ pub struct Stage {
     pub time_limit: Option<Duration>,
     /// Extra attempts after failure.
     pub retries: u32,
+    /// A retry after a time-limit kill runs with the limit times this (`timeout-factor`,
+    /// ≥ 1), once more for every earlier time-limit kill of the same iteration.
+    pub timeout_factor: f64,
     /// Accept NaN/Inf.
     pub allow_nonfinite: bool,
     /// Input roles placed as private writable copies (`writable-inputs`).
     pub writable_inputs: BTreeSet<String>,
     /// Where it runs under a batch executor (`placement`).
     pub placement: Placement,
+    /// Whether a local attempt's program runs on when rondo is killed (`outlive-rondo`,
+    /// default true): the next rondo watches it again or adopts its result.
+    pub outlive_rondo: bool,
     /// Retention policies per output role (`keep`); roles not listed keep everything.
     pub keep: Vec<(String, Keep)>,
     /// The working folder kept from one iteration to the next (`case-folder`).

@@ -158,6 +158,9 @@ pub struct Defaults {
     /// Extra attempts after a failure.
     #[serde(default)]
     pub retries: Option<u32>,
+    /// A retry after a time-limit kill asks for this many times the limit (default 2).
+    #[serde(default)]
+    pub timeout_factor: Option<f64>,
 }
 
 /// Where a stage input comes from.
@@ -342,6 +345,10 @@ pub struct StageSpec {
     /// Extra attempts after a failure.
     #[serde(default)]
     pub retries: Option<u32>,
+    /// A retry after a time-limit kill asks for this many times the limit (default 2; 1
+    /// keeps it).
+    #[serde(default)]
+    pub timeout_factor: Option<f64>,
     /// Accept NaN/Inf in outputs and metrics.
     #[serde(default)]
     pub allow_nonfinite: bool,
@@ -362,6 +369,12 @@ pub struct StageSpec {
     #[serde(default)]
     #[schemars(with = "Option<Placement>")]
     pub placement: Option<Spanned<Placement>>,
+    /// Whether the stage's program, run where rondo runs, keeps running when rondo is
+    /// killed (default `true`): the next `rondo run` watches it again, or adopts its result
+    /// when it ended meanwhile. `false`: it is ended as soon as rondo is gone, and run again.
+    /// A stop of rondo by a signal or `rondo cancel` ends it either way.
+    #[serde(default)]
+    pub outlive_rondo: Option<bool>,
     /// Settings of a built-in stage.
     #[serde(default)]
     pub settings: Option<BuiltinSettings>,

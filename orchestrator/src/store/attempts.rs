@@ -233,6 +233,39 @@ impl Script {
         .bind(id);
     }
 
+    /// What an attempt's program cost, as its executor measured it (`source`: `wait4`,
+    /// `job-script` or `sacct`), added to its point's and stage's totals. Written once per
+    /// attempt: a second call for the same attempt changes nothing.
+    pub fn attempt_usage(&mut self, id: i64, u: &rondo_adapters::executor::Usage, source: &str) {
+        let rss = u.max_rss_kib.and_then(|k| i64::try_from(k).ok());
+        let wall = u.wall_s.unwrap_or(0.0);
+        self.stmt(
+            "INSERT INTO usage_totals(point, stage, attempts, cpu_user_s, cpu_system_s, wall_s, \
+             max_rss_kib) SELECT point, stage, 1, ?, ?, ?, ? FROM attempts \
+             WHERE id = ? AND usage_source IS NULL \
+             ON CONFLICT(point, stage) DO UPDATE SET attempts = attempts + 1, \
+             cpu_user_s = cpu_user_s + excluded.cpu_user_s, \
+             cpu_system_s = cpu_system_s + excluded.cpu_system_s, \
+             wall_s = wall_s + excluded.wall_s, \
+             max_rss_kib = max(coalesce(max_rss_kib, 0), coalesce(excluded.max_rss_kib, 0))",
+        )
+        .bind(u.user_s)
+        .bind(u.system_s)
+        .bind(wall)
+        .bind(rss)
+        .bind(id);
+        self.stmt(
+            "UPDATE attempts SET cpu_user_s = ?, cpu_system_s = ?, max_rss_kib = ?, \
+             wall_s = ?, usage_source = ? WHERE id = ? AND usage_source IS NULL",
+        )
+        .bind(u.user_s)
+        .bind(u.system_s)
+        .bind(rss)
+        .bind(u.wall_s)
+        .bind(source.to_string())
+        .bind(id);
+    }
+
     /// An attempt failed, was lost or was cancelled.
     pub fn attempt_ended_badly(&mut self, id: i64, f: &Failure<'_>, launch: LaunchFields) {
         self.stmt(
@@ -419,6 +452,25 @@ impl Flushed<'_> {
         Ok(sqlx::query_scalar(
             "SELECT count(*) FROM attempts WHERE point = ? AND iteration = ? AND stage = ? \
              AND state = ?",
+        )
+        .bind(point)
+        .bind(i64::from(iteration))
+        .bind(stage)
+        .bind(AttemptState::Failed)
+        .fetch_one(self.pool)
+        .await?)
+    }
+
+    /// How many attempts of this point, iteration and stage were ended by their time limit.
+    pub async fn timed_out_attempts(
+        &self,
+        point: &str,
+        iteration: u32,
+        stage: &str,
+    ) -> Result<i64> {
+        Ok(sqlx::query_scalar(
+            "SELECT count(*) FROM attempts WHERE point = ? AND iteration = ? AND stage = ? \
+             AND state = ? AND failure_kind = 'timeout'",
         )
         .bind(point)
         .bind(i64::from(iteration))

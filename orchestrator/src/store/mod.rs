@@ -38,7 +38,7 @@ use sqlx::sqlite::{
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
     // (version, description, SQL), in order.
-    let steps: [(i64, &str, &'static str); 8] = [
+    let steps: [(i64, &str, &'static str); 9] = [
         (
             1,
             "initial",
@@ -78,6 +78,11 @@ pub fn migrator() -> Migrator {
             8,
             "retention",
             include_str!("../../migrations/0008_retention.sql"),
+        ),
+        (
+            9,
+            "attempt usage",
+            include_str!("../../migrations/0009_attempt_usage.sql"),
         ),
     ];
     let m: Vec<Migration> = steps

@@ -88,6 +88,7 @@ pub fn build<'a>(
     opts: &ReportOptions,
     conv_metrics: &[String],
     campaign: &str,
+    costs: &crate::query::usage::Costs,
     progress: &mut dyn FnMut(&Progress),
 ) -> Result<Folder<'a>> {
     let mut f = Folder {
@@ -126,13 +127,14 @@ pub fn build<'a>(
     figures::probabilities(&mut f, opts, &groups)?;
     step("tables".into());
     let table = html::observables(&mut f, points)?;
-    f.tables = ["observables.csv", "eos-fits.csv"]
+    let cost = html::cost(&mut f, costs)?;
+    f.tables = ["observables.csv", "eos-fits.csv", "cost.csv"]
         .into_iter()
         .filter(|t| f.out.sources.contains_key(*t))
         .map(String::from)
         .collect();
     step("index.html".into());
-    html::index(&f, campaign, &table)?;
+    html::index(&f, campaign, &table, &cost)?;
     Ok(f)
 }
 

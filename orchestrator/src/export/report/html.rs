@@ -127,8 +127,75 @@ fn eos_section(f: &Folder<'_>) -> String {
     html
 }
 
-/// Write `index.html`: notes, the observables `table`, the fits, every figure.
-pub fn index(f: &Folder<'_>, campaign: &str, table: &str) -> Result<()> {
+/// `cost.csv` (per point and stage, then per stage, then in all: attempts measured, CPU
+/// seconds, core-hours, wall seconds, peak RSS) and the HTML section of the same per stage
+/// and per point; empty when no attempt was measured.
+pub fn cost(f: &mut Folder<'_>, costs: &crate::query::usage::Costs) -> Result<String> {
+    use crate::query::usage::Cost;
+    if costs.total.attempts == 0 {
+        return Ok(String::new());
+    }
+    let mut csv = String::from(
+        "point,stage,attempts,cpu_user_s,cpu_system_s,core_hours,wall_s,max_rss_kib\n",
+    );
+    let row = |csv: &mut String, p: &str, s: &str, c: &Cost| {
+        let _ = writeln!(
+            csv,
+            "{},{},{},{},{},{},{},{}",
+            csv_field(p),
+            csv_field(s),
+            c.attempts,
+            num(c.cpu_user_s),
+            num(c.cpu_system_s),
+            num(c.core_hours()),
+            num(c.wall_s),
+            c.max_rss_kib.map(|k| k.to_string()).unwrap_or_default()
+        );
+    };
+    for ((p, s), c) in &costs.by_point_stage {
+        row(&mut csv, p, s, c);
+    }
+    for (s, c) in &costs.by_stage {
+        row(&mut csv, "", s, c);
+    }
+    row(&mut csv, "", "", &costs.total);
+    f.write("cost.csv", &csv)?;
+    f.publish(&["cost.csv".to_string()], &BTreeSet::new());
+    let mut html = String::from(
+        "<h2>What it cost</h2>\n<p>CPU time (user + system) of the stages' programs as \
+         measured per attempt, in core-hours, with wall time and the largest resident set. \
+         Data: <a href=\"cost.csv\">cost.csv</a>.</p>\n<table>\n<thead><tr><th></th>\
+         <th>attempts</th><th>core-hours</th><th>CPU (s)</th><th>wall (h)</th><th>peak RSS (MiB)</th></tr>\
+         </thead>\n<tbody>\n",
+    );
+    let line = |html: &mut String, what: &str, c: &Cost| {
+        let _ = writeln!(
+            html,
+            "<tr><td>{}</td><td>{}</td><td>{:.4}</td><td>{:.2}</td><td>{:.4}</td><td>{}</td></tr>",
+            html_escape(what),
+            c.attempts,
+            c.core_hours(),
+            c.cpu_user_s + c.cpu_system_s,
+            c.wall_s / 3600.0,
+            c.max_rss_kib
+                .map(|k| format!("{:.1}", k as f64 / 1024.0))
+                .unwrap_or_else(|| "-".into())
+        );
+    };
+    for (s, c) in &costs.by_stage {
+        line(&mut html, &format!("stage {s}"), c);
+    }
+    for (p, c) in &costs.by_point {
+        line(&mut html, &format!("point {p}"), c);
+    }
+    line(&mut html, "in all", &costs.total);
+    html.push_str("</tbody>\n</table>\n");
+    Ok(html)
+}
+
+/// Write `index.html`: notes, the observables `table`, the fits, the `cost` section, every
+/// figure.
+pub fn index(f: &Folder<'_>, campaign: &str, table: &str, cost: &str) -> Result<()> {
     let mut html = head(campaign);
     if !f.notes.is_empty() {
         html.push_str("<h2>Notes</h2>\n<ul class=\"notes\">\n");
@@ -140,6 +207,7 @@ pub fn index(f: &Folder<'_>, campaign: &str, table: &str) -> Result<()> {
     html.push_str("<h2>Converged observables</h2>\n<p>Values at each point's last good iteration; ± is the standard error the stage reported. Data: <a href=\"observables.csv\">observables.csv</a>.</p>\n");
     html.push_str(table);
     html.push_str(&eos_section(f));
+    html.push_str(cost);
     html.push_str("<h2>Figures</h2>\n");
     for fig in &f.figures {
         let _ = writeln!(

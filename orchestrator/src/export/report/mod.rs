@@ -192,6 +192,7 @@ pub async fn generate_with(
         );
     }
     let conv_metrics = data::convergence_metrics(opts, &spec_text);
+    let costs = crate::query::usage::costs(pool).await?;
     let place = record::Placement::prepare(out_dir)?;
     let built = folder::build(
         &place.tmp,
@@ -199,6 +200,7 @@ pub async fn generate_with(
         opts,
         &conv_metrics,
         &camp.name,
+        &costs,
         progress,
     );
     let mut built = match built {

@@ -76,6 +76,8 @@ impl Validator<'_> {
             resources: Default::default(),
             time_limit: None,
             retries: 0,
+            timeout_factor: 1.0,
+            outlive_rondo: true,
             allow_nonfinite: false,
             writable_inputs: Default::default(),
             placement: Default::default(),

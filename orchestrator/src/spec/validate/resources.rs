@@ -1,5 +1,5 @@
-//! `defaults:` and a stage's own `resources`, `time-limit` and `retries`: what a stage may
-//! use, the stage's value over the default.
+//! `defaults:` and a stage's own `resources`, `time-limit`, `retries` and `timeout-factor`:
+//! what a stage may use, the stage's value over the default.
 
 use std::time::Duration;
 
@@ -26,7 +26,15 @@ pub(super) struct Limits {
     pub(super) time_limit: Option<Duration>,
     /// Extra attempts after a failure.
     pub(super) retries: u32,
+    /// The factor of a retry's time limit after a time-limit kill.
+    pub(super) timeout_factor: f64,
 }
+
+/// The `timeout-factor` when none is given: a retry after a time-limit kill asks for twice
+/// the limit, since the same limit would most likely be used up again.
+pub const DEFAULT_TIMEOUT_FACTOR: f64 = 2.0;
+/// The largest `timeout-factor` accepted.
+const MAX_TIMEOUT_FACTOR: f64 = 100.0;
 
 impl Validator<'_> {
     /// The limits of stage `sname` (`at`: its key); a time limit that is not a duration is
@@ -59,10 +67,28 @@ impl Validator<'_> {
             },
             None => None,
         };
+        let factor = st
+            .timeout_factor
+            .or(raw.defaults.timeout_factor)
+            .unwrap_or(DEFAULT_TIMEOUT_FACTOR);
+        let timeout_factor = if (1.0..=MAX_TIMEOUT_FACTOR).contains(&factor) {
+            factor
+        } else {
+            self.push(
+                at,
+                format!(
+                    "stage `{sname}`: timeout-factor `{factor}` is not between 1 and {MAX_TIMEOUT_FACTOR}"
+                ),
+                "write e.g. `timeout-factor: 2` (a retry after a time-limit kill asks for twice \
+                 the limit) or 1 to keep the limit",
+            );
+            DEFAULT_TIMEOUT_FACTOR
+        };
         Limits {
             resources,
             time_limit,
             retries: st.retries.or(raw.defaults.retries).unwrap_or(0),
+            timeout_factor,
         }
     }
 }

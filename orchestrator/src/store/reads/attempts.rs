@@ -241,3 +241,47 @@ pub async fn of_point(pool: &SqlitePool, point: &str) -> Result<Vec<PointAttempt
     }
     Ok(out)
 }
+
+/// What one stage's attempts at one point cost in all (the `usage_totals` row).
+#[derive(Debug, Clone, PartialEq)]
+pub struct UsageTotal {
+    /// Point id.
+    pub point: String,
+    /// Stage name.
+    pub stage: String,
+    /// Attempts with figures.
+    pub attempts: i64,
+    /// CPU seconds in user mode.
+    pub cpu_user_s: f64,
+    /// CPU seconds in the kernel.
+    pub cpu_system_s: f64,
+    /// Wall seconds.
+    pub wall_s: f64,
+    /// Largest resident set of any of them, KiB.
+    pub max_rss_kib: Option<i64>,
+}
+
+/// Every point's and stage's usage totals, in point and stage order: one row per point and
+/// stage, whatever the length of the history.
+pub async fn usage_totals(pool: &SqlitePool) -> Result<Vec<UsageTotal>> {
+    let rows = sqlx::query(
+        "SELECT point, stage, attempts, cpu_user_s, cpu_system_s, wall_s, max_rss_kib \
+         FROM usage_totals ORDER BY point, stage",
+    )
+    .fetch_all(pool)
+    .await
+    .context("reading the usage totals")?;
+    rows.iter()
+        .map(|r| {
+            Ok(UsageTotal {
+                point: r.try_get(0)?,
+                stage: r.try_get(1)?,
+                attempts: r.try_get(2)?,
+                cpu_user_s: r.try_get(3)?,
+                cpu_system_s: r.try_get(4)?,
+                wall_s: r.try_get(5)?,
+                max_rss_kib: r.try_get(6)?,
+            })
+        })
+        .collect()
+}
