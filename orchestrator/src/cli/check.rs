@@ -42,9 +42,24 @@ pub fn plan_text(c: &Campaign) -> String {
             .join(" ");
         let _ = writeln!(s, "    {}  {vals}", p.id);
     }
-    let _ = writeln!(s, "  cycle ({} stages, in order):", c.stages.len());
-    for st in &c.stages {
-        stage_lines(&mut s, c, st);
+    let (b, e) = (c.cycle_start(), c.cycle_end());
+    let sections = [
+        ("before the cycle, once per point", &c.stages[..b]),
+        ("cycle", &c.stages[b..e]),
+        (
+            "after a point stops, once, on its last good iteration",
+            &c.stages[e..],
+        ),
+        ("after every point stopped", &c.after_campaign[..]),
+    ];
+    for (title, stages) in sections {
+        if stages.is_empty() {
+            continue;
+        }
+        let _ = writeln!(s, "  {title} ({} stages, in order):", stages.len());
+        for st in stages {
+            stage_lines(&mut s, c, st);
+        }
     }
     stopping_lines(&mut s, c);
     s

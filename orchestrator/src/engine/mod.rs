@@ -46,6 +46,7 @@ use crate::stop::{self, Sample};
 use crate::store::{self, AttemptState, IterationState, PointState};
 use crate::validate::{self, Metric};
 
+mod campaign;
 mod iterate;
 mod launch;
 mod programs;
@@ -643,18 +644,8 @@ impl Engine<'_> {
             if warned {
                 continued_as = self.continue_allocation().await?;
             }
-        } else if let Some(eos) = &self.campaign.eos {
-            let store = self.ledger.flush().await?;
-            let doc = crate::query::analysis::record_eos(
-                store.pool(),
-                &self.paths.root,
-                &self.artifacts,
-                eos,
-            )
-            .await?;
-            for line in crate::query::analysis::eos_lines(&doc) {
-                self.progress.line(line);
-            }
+        } else {
+            self.after_campaign().await?;
         }
         let states: BTreeMap<PointState, usize> = self
             .ledger

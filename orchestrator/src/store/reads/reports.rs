@@ -147,6 +147,18 @@ pub async fn latest_output(pool: &SqlitePool, role: &str) -> Result<Option<Strin
     .await?)
 }
 
+/// The newest finished generation recorded with exactly these options, if any (an
+/// `after-campaign:` stage and group that ran already).
+pub async fn generation_with_options(pool: &SqlitePool, options_json: &str) -> Result<Option<i64>> {
+    Ok(sqlx::query_scalar(
+        "SELECT id FROM reports WHERE options_json = ? AND ended_at IS NOT NULL \
+         ORDER BY id DESC LIMIT 1",
+    )
+    .bind(options_json)
+    .fetch_optional(pool)
+    .await?)
+}
+
 /// A new generation's `reports` row.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct NewGeneration<'a> {
