@@ -311,10 +311,7 @@ impl Validator<'_> {
         if section == Section::AfterCampaign && from != Section::AfterCampaign {
             self.push(
                 iat,
-                format!(
-                    "input `{r}` of an after-campaign stage names a per-point output without \
-                     saying which points"
-                ),
+                format!("input `{r}` of an after-campaign stage names a per-point output without saying which points"),
                 format!("write `{{ outputs: {r}, points: all }}` (or `points: converged`, `points: group`)"),
             );
             return None;
@@ -340,7 +337,7 @@ impl Validator<'_> {
             self.push(
                 iat,
                 format!(
-                    "input `{}`: a `{}` stage has no previous iteration",
+                    "input `{}`: stages under `{}:` have no previous iteration",
                     ik.value,
                     section.key()
                 ),
@@ -418,7 +415,7 @@ impl Validator<'_> {
                 "group" => PointSelection::Group,
                 other => {
                     self.push(
-                        loc(s),
+                        iat,
                         format!("unknown point selection `{other}`"),
                         "write `points: all`, `points: converged` or `points: group`",
                     );
@@ -428,8 +425,7 @@ impl Validator<'_> {
         };
         let read = match (&p.outputs, &p.finals) {
             (Some(o), None) => {
-                let (s, r, _) =
-                    self.source_ref(raw, Section::AfterPoint, &o.value, loc(o), true)?;
+                let (s, r, _) = self.source_ref(raw, Section::AfterPoint, &o.value, iat, true)?;
                 PointsRead::Output { stage: s, role: r }
             }
             (None, Some(f)) if !f.is_empty() => {
@@ -440,7 +436,7 @@ impl Validator<'_> {
                     });
                     if !known {
                         self.push(
-                            loc(m),
+                            iat,
                             format!("`finals` names `{}`, which is no stage.metric of a per-point stage", m.value),
                             format!(
                                 "stages: {}",
