@@ -840,7 +840,7 @@ stop: {{ max-iterations: 1, when: [{{ metric: b.m, change-below: 0.1 }}] }}
             ),
             (
                 "x: { previous: b.y, initially: b.y }",
-                "`initially: b.y` must name a start file",
+                "`initially: b.y` must name a start file or a `before:` stage's output",
             ),
             (
                 "x: { previous: b.y }",
