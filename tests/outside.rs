@@ -260,6 +260,27 @@ fn each_stage_outside_the_loop_runs_once_per_its_scope_and_traces_back() {
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let prov = std::fs::read_to_string(d.path().join("p.json")).unwrap_or_else(|e| panic!("{e}"));
     assert!(prov.contains("after-campaign stage per-b"), "{prov}");
+    // The report shows the campaign-level outputs (copied in, the same bytes).
+    let o = run_rondo(d.path(), &["report"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let index =
+        std::fs::read_to_string(ws.join("report/index.html")).unwrap_or_else(|e| panic!("{e}"));
+    assert!(index.contains("After every point stopped"), "{index}");
+    for (file, role, k) in [
+        ("summary/table.txt", "summary.table", 0),
+        ("per-b.b=1/t.txt", "per-b.t", 1),
+        ("per-b.b=2/t.txt", "per-b.t", 2),
+    ] {
+        let rel = format!("after-campaign/{file}");
+        assert!(index.contains(&rel), "{rel}: {index}");
+        let bytes =
+            std::fs::read(ws.join("report").join(&rel)).unwrap_or_else(|e| panic!("{rel}: {e}"));
+        assert_eq!(
+            blake3::hash(&bytes).to_hex().to_string(),
+            g[k].1[role],
+            "{rel}"
+        );
+    }
     // A rerun of the finished workspace runs nothing again.
     let before = (succeeded_attempts(&ws), g.len());
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);

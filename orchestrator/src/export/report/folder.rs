@@ -89,6 +89,10 @@ pub fn build<'a>(
     conv_metrics: &[String],
     campaign: &str,
     costs: &crate::query::usage::Costs,
+    stages: (
+        &[super::data::StageOutput],
+        &crate::artifacts::ArtifactStore,
+    ),
     progress: &mut dyn FnMut(&Progress),
 ) -> Result<Folder<'a>> {
     let mut f = Folder {
@@ -128,13 +132,14 @@ pub fn build<'a>(
     step("tables".into());
     let table = html::observables(&mut f, points)?;
     let cost = html::cost(&mut f, costs)?;
+    let after = html::after_campaign(&mut f, stages.0, stages.1)?;
     f.tables = ["observables.csv", "eos-fits.csv", "cost.csv"]
         .into_iter()
         .filter(|t| f.out.sources.contains_key(*t))
         .map(String::from)
         .collect();
     step("index.html".into());
-    html::index(&f, campaign, &table, &cost)?;
+    html::index(&f, campaign, &table, &(after + &cost))?;
     Ok(f)
 }
 

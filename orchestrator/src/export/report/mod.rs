@@ -28,7 +28,7 @@ mod record;
 use std::path::{Path, PathBuf};
 use std::sync::OnceLock;
 
-use anyhow::{bail, Result};
+use anyhow::{bail, Context, Result};
 use plotters::style::FontStyle;
 use rondo_numerics::eos as eos_fit;
 use serde::Serialize;
@@ -193,6 +193,9 @@ pub async fn generate_with(
     }
     let conv_metrics = data::convergence_metrics(opts, &spec_text);
     let costs = crate::query::usage::costs(pool).await?;
+    let stage_outputs = data::load_stage_outputs(pool).await?;
+    let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
+        .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
     let place = record::Placement::prepare(out_dir)?;
     let built = folder::build(
         &place.tmp,
@@ -201,6 +204,7 @@ pub async fn generate_with(
         &conv_metrics,
         &camp.name,
         &costs,
+        (&stage_outputs, &artifacts),
         progress,
     );
     let mut built = match built {
