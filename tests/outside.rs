@@ -353,3 +353,47 @@ fn a_kill_during_each_stage_outside_the_loop_then_resume_records_the_same_result
         assert_eq!(ran["per-b"], expect("per-b", 2), "{kind}: {ran:?}");
     }
 }
+
+#[test]
+fn sigterm_during_an_after_campaign_stage_ends_it_records_nothing_and_a_rerun_runs_it() {
+    let d = tmp();
+    setup(d.path());
+    let pause = d.path().join("pause-summary");
+    std::fs::write(&pause, "").unwrap_or_else(|e| panic!("{e}"));
+    let mut child = Command::new(rondo())
+        .args(["run", "c.yaml", "-q"])
+        .current_dir(d.path())
+        .env("PATH", path_with_binaries())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|e| panic!("spawn rondo: {e}"));
+    let deadline = Instant::now() + Duration::from_secs(300);
+    while !d.path().join("paused-summary").exists() {
+        assert!(
+            child.try_wait().ok().flatten().is_none(),
+            "rondo ended first"
+        );
+        assert!(Instant::now() < deadline, "summary never ran");
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    let st = Command::new("kill")
+        .args(["-TERM", &child.id().to_string()])
+        .status()
+        .unwrap_or_else(|e| panic!("kill: {e}"));
+    assert!(st.success());
+    let o = child.wait_with_output().unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(o.status.code(), Some(4), "interrupted: {}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    assert_no_double_success_nor_children(&ws, 0);
+    assert!(generations(&ws).is_empty(), "nothing recorded");
+    std::fs::remove_file(&pause).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    assert_eq!(generations(&ws).len(), 3);
+    assert_eq!(
+        runs(d.path())["summary"],
+        2,
+        "the interrupted run and the rerun"
+    );
+}

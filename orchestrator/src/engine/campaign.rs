@@ -34,17 +34,18 @@ struct Gathered {
 }
 
 impl Engine<'_> {
-    /// Run the `after-campaign:` stages not recorded yet, in file order.
-    pub(super) async fn after_campaign(&mut self) -> Result<()> {
+    /// Run the `after-campaign:` stages not recorded yet, in file order; true when a stop
+    /// signal interrupted them.
+    pub(super) async fn after_campaign(&mut self) -> Result<bool> {
         if self.campaign.after_campaign.is_empty() {
-            return Ok(());
+            return Ok(false);
         }
         if self.after_failed > 0 {
             self.progress.line(
                 "after-campaign stages wait: an after-point stage failed (`rondo run` runs it again)"
                     .to_string(),
             );
-            return Ok(());
+            return Ok(false);
         }
         let rows = points::all(self.ledger.flush().await?.pool()).await?;
         let all: Vec<_> = rows
@@ -71,31 +72,35 @@ impl Engine<'_> {
                 continue;
             }
             for g in groups(&stage.group_by, &all) {
-                self.campaign_stage(k, stage, &g).await?;
+                if !self.campaign_stage(k, stage, &g).await? {
+                    return Ok(true);
+                }
             }
         }
-        Ok(())
+        Ok(false)
     }
 
     /// One stage for one group, unless recorded already; its attempts up to its retries.
-    async fn campaign_stage(&mut self, k: usize, stage: &Stage, g: &Group) -> Result<()> {
+    /// False when a stop signal ended it.
+    async fn campaign_stage(&mut self, k: usize, stage: &Stage, g: &Group) -> Result<bool> {
         let options = json!({"stage": stage.name, "group": g.values}).to_string();
         let pool = self.ledger.flush().await?.pool().clone();
         if reports::generation_with_options(&pool, &options)
             .await?
             .is_some()
         {
-            return Ok(());
+            return Ok(true);
         }
         let label = folder_name(&stage.name, &g.values);
         let dir = self.paths.root.join("analysis").join(&label);
         let mut last = String::new();
         for attempt in 1..=stage.retries + 1 {
             match self.campaign_attempt(k, stage, g, &dir, &options).await {
-                Ok(()) => {
+                Ok(false) => return Ok(false),
+                Ok(true) => {
                     self.progress
                         .line(format!("after-campaign stage {label} succeeded"));
-                    return Ok(());
+                    return Ok(true);
                 }
                 Err(e) => {
                     last = format!("{e:#}");
@@ -110,10 +115,11 @@ impl Engine<'_> {
             "after-campaign stage {label} failed after {} attempt(s); last: {last}; `rondo run` runs it again",
             stage.retries + 1
         ));
-        Ok(())
+        Ok(true)
     }
 
-    /// Lay out the inputs, run the program, store and record the outputs.
+    /// Lay out the inputs, run the program, store and record the outputs; false when a stop
+    /// signal ended it (nothing recorded).
     async fn campaign_attempt(
         &mut self,
         k: usize,
@@ -121,7 +127,7 @@ impl Engine<'_> {
         g: &Group,
         dir: &Path,
         options: &str,
-    ) -> Result<()> {
+    ) -> Result<bool> {
         let started = store::now();
         if dir.exists() {
             std::fs::remove_dir_all(dir)
@@ -136,15 +142,16 @@ impl Engine<'_> {
             Ok((h, _)) => (Some(h), None),
             Err(e) => (None, Some(format!("{program}: {e}"))),
         };
-        run_program(
-            &argv,
-            dir,
-            &self.workspace_id,
+        let tag = (
+            self.workspace_id.as_str(),
             -1 - k as i64,
-            &stage.name,
-            stage.time_limit,
-        )
-        .await?;
+            stage.name.as_str(),
+        );
+        if let Ran::Interrupted =
+            run_program(&argv, dir, tag, stage.time_limit, self.opts.grace).await?
+        {
+            return Ok(false);
+        }
         let mut outs = Vec::new();
         for (role, file) in &stage.outputs {
             let path = dir.join(file);
@@ -193,7 +200,7 @@ impl Engine<'_> {
         );
         store::event(&mut *tx, "campaign-stage", None, None, None, &detail).await?;
         tx.commit().await?;
-        Ok(())
+        Ok(true)
     }
 
     /// Place every input of the stage under `dir/inputs`.
@@ -418,17 +425,27 @@ async fn last_output(
         })
 }
 
+/// How a campaign-level program ended.
+enum Ran {
+    /// It exited 0.
+    Ok,
+    /// SIGINT, SIGTERM or SIGHUP reached rondo: the program's group was ended.
+    Interrupted,
+}
+
 /// Run `argv` in `dir` in its own process group, tagged with the workspace (so that the
-/// next `rondo run` ends it if this one is killed), stdout and stderr into files there;
-/// an error unless it exits 0 within `limit`.
+/// next `rondo run` ends it if this one is killed), stdout and stderr into files there.
+/// An error unless it exits 0 within `limit`; a stop signal to rondo ends its group (TERM,
+/// `grace`, KILL).
 async fn run_program(
     argv: &[String],
     dir: &Path,
-    workspace_id: &str,
-    tag: i64,
-    stage: &str,
+    tag: (&str, i64, &str),
     limit: Option<Duration>,
-) -> Result<()> {
+    grace: Duration,
+) -> Result<Ran> {
+    use tokio::signal::unix::{signal, SignalKind};
+    let (workspace_id, attempt, stage) = tag;
     let (first, rest) = argv.split_first().context("empty argument list")?;
     let out = std::fs::File::create(dir.join("stdout.txt"))?;
     let err = std::fs::File::create(dir.join("stderr.txt"))?;
@@ -436,7 +453,7 @@ async fn run_program(
         .args(rest)
         .current_dir(dir)
         .env(rondo_adapters::local::WORKSPACE_VAR, workspace_id)
-        .env(rondo_adapters::local::ATTEMPT_VAR, tag.to_string())
+        .env(rondo_adapters::local::ATTEMPT_VAR, attempt.to_string())
         .env("RONDO_STAGE", stage)
         .stdin(Stdio::null())
         .stdout(Stdio::from(out))
@@ -445,18 +462,38 @@ async fn run_program(
         .kill_on_drop(true)
         .spawn()
         .with_context(|| format!("cannot start {first}"))?;
-    let status = match limit {
-        Some(l) => match tokio::time::timeout(l, child.wait()).await {
-            Ok(s) => s?,
-            Err(_) => {
-                let _ = child.kill().await;
-                bail!("time limit {} s reached", l.as_secs());
-            }
-        },
-        None => child.wait().await?,
+    let pgid = child.id().map_or(0, |p| p as i32);
+    let (mut int, mut term, mut hup) = (
+        signal(SignalKind::interrupt())?,
+        signal(SignalKind::terminate())?,
+        signal(SignalKind::hangup())?,
+    );
+    let limit_reached = async {
+        match limit {
+            Some(l) => tokio::time::sleep(l).await,
+            None => std::future::pending::<()>().await,
+        }
     };
-    if !status.success() {
-        bail!("{first} ended with {status} (see stderr.txt)");
+    let why = tokio::select! {
+        s = child.wait() => {
+            let status = s?;
+            if !status.success() {
+                bail!("{first} ended with {status} (see stderr.txt)");
+            }
+            return Ok(Ran::Ok);
+        }
+        _ = limit_reached => None,
+        _ = int.recv() => Some(Ran::Interrupted),
+        _ = term.recv() => Some(Ran::Interrupted),
+        _ = hup.recv() => Some(Ran::Interrupted),
+    };
+    let _ = rondo_adapters::local::sys::signal_group(pgid, libc::SIGTERM);
+    if tokio::time::timeout(grace, child.wait()).await.is_err() {
+        let _ = rondo_adapters::local::sys::signal_group(pgid, libc::SIGKILL);
+        let _ = child.wait().await;
     }
-    Ok(())
+    match why {
+        Some(r) => Ok(r),
+        None => bail!("time limit {} s reached", limit.map_or(0, |l| l.as_secs())),
+    }
 }

@@ -645,7 +645,7 @@ impl Engine<'_> {
                 continued_as = self.continue_allocation().await?;
             }
         } else {
-            self.after_campaign().await?;
+            interrupted = self.after_campaign().await?;
         }
         let states: BTreeMap<PointState, usize> = self
             .ledger
