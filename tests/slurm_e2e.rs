@@ -1225,3 +1225,294 @@ fn placement_keeps_light_stages_on_the_host_and_squeue_runs_once_per_interval() 
         wall.as_secs_f64()
     );
 }
+
+// ---------------------------------------------------------------- faults a cluster throws
+
+/// Root, so that a test may stop and start the controller or requeue a job of its own;
+/// skips loudly otherwise (fails under RONDO_REQUIRE_SLURM=1).
+fn slurm_admin_or_skip() -> bool {
+    if !slurm_or_skip() {
+        return false;
+    }
+    let uid = Command::new("id")
+        .arg("-u")
+        .output()
+        .map(|o| String::from_utf8_lossy(&o.stdout).trim().to_string())
+        .unwrap_or_default();
+    if uid == "0" {
+        return true;
+    }
+    skip_or_fail(
+        "not root, and this test stops slurmctld or requeues a job",
+        "run the Slurm tests as root",
+        &["RONDO_REQUIRE_SLURM"],
+    );
+    false
+}
+
+/// Stops slurmctld now; starts it again (through `scripts/dev-slurm start`) when told to or
+/// when dropped, whatever the test did in between.
+struct ControllerDown(bool);
+
+impl ControllerDown {
+    fn now() -> ControllerDown {
+        let pid = std::fs::read_to_string("/run/slurmctld.pid")
+            .unwrap_or_else(|e| panic!("/run/slurmctld.pid: {e}"));
+        let pid = pid.trim().to_string();
+        let st = Command::new("kill").args(["-TERM", &pid]).status();
+        assert!(st.is_ok_and(|s| s.success()), "kill slurmctld {pid}");
+        wait_for("slurmctld to exit", Duration::from_secs(30), || {
+            (!Path::new(&format!("/proc/{pid}")).exists()).then_some(())
+        });
+        ControllerDown(true)
+    }
+
+    fn restore(&mut self) {
+        if std::mem::take(&mut self.0) {
+            let o = Command::new("bash")
+                .arg(repo().join("scripts/dev-slurm"))
+                .arg("start")
+                .output()
+                .unwrap_or_else(|e| panic!("scripts/dev-slurm start: {e}"));
+            assert!(o.status.success(), "dev-slurm start: {}", shown(&o));
+        }
+    }
+}
+
+impl Drop for ControllerDown {
+    fn drop(&mut self) {
+        self.restore();
+    }
+}
+
+/// A wrapper around the model engine whose first `band` call (the first one anywhere in
+/// the test, marked by a file) runs `first` before the engine; every other call is the
+/// engine alone.
+fn engine_first_band(dir: &Path, first: &str) -> PathBuf {
+    let wrapper = dir.join("engine-first-band");
+    let flag = dir.join("first-band-done");
+    std::fs::write(
+        &wrapper,
+        format!(
+            "#!/bin/sh\nif [ \"$1\" = band ] && mkdir '{}' 2>/dev/null; then\n{first}\nfi\nexec '{}' \"$@\"\n",
+            flag.display(),
+            model_solid().display()
+        ),
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(&wrapper, std::fs::Permissions::from_mode(0o755))
+        .unwrap_or_else(|e| panic!("{e}"));
+    wrapper
+}
+
+/// slurmctld is down when rondo starts: every `sbatch` blocks and fails ("Unable to
+/// contact slurm controller"), the executor backs off, and attempts that still could not be
+/// submitted are recorded as `launch-failed` without using up the stage's retries. Once the
+/// controller is back the campaign converges to the local run's numbers.
+#[test]
+fn the_controller_down_when_rondo_starts_is_waited_out() {
+    let _serial = serial();
+    if !slurm_admin_or_skip() {
+        return;
+    }
+    let reference = local_reference();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    campaign_placed(dir, None, true);
+    let mut down = ControllerDown::now();
+    let mut bg = Background::run(dir, "run.log");
+    // An outage longer than the executor's own submission retries (five, 1 s to 16 s apart
+    // at this poll interval, each `sbatch` blocking for some seconds): an attempt is
+    // recorded as not submitted, and the point waits on.
+    let ws = dir.join(WS);
+    wait_for(
+        "an attempt recorded as not submitted",
+        Duration::from_secs(300),
+        || {
+            bg.still_running(dir, "run.log");
+            (ws.join("rondo.db").exists()
+                && !attempts(&ws, "WHERE failure_kind = 'launch-failed'").is_empty())
+            .then_some(())
+        },
+    );
+    let submitted = attempts(&ws, "WHERE executor = 'slurm' AND handle_id IS NOT NULL");
+    assert!(
+        submitted.is_empty(),
+        "no job can have been submitted while the controller is down: {submitted:?}"
+    );
+    down.restore();
+    let code = bg.exit_code(Duration::from_secs(600));
+    let log = std::fs::read_to_string(dir.join("run.log")).unwrap_or_default();
+    assert_eq!(code, Some(0), "{log}");
+    all_converged(dir);
+    assert_same_numbers(
+        reference,
+        &record(&ws),
+        "a run that began with the controller down",
+    );
+    let refused = attempts(&ws, "WHERE failure_kind = 'launch-failed'");
+    assert!(!refused.is_empty());
+    eprintln!(
+        "{} attempt(s) could not be submitted while the controller was down",
+        refused.len()
+    );
+    for a in &refused {
+        let m = a.failure_message.as_deref().unwrap_or("");
+        assert!(m.contains("sbatch"), "{a:?}");
+    }
+}
+
+/// `sbatch` refuses the job (a partition that does not exist): the attempt fails with
+/// Slurm's own message, the stage's retries are used up, the point fails with that reason,
+/// rondo exits 3, and nothing is left half-written (no attempt open, the store intact).
+#[test]
+fn a_submission_sbatch_refuses_fails_the_point_with_slurms_message() {
+    let _serial = serial();
+    if !slurm_or_skip() {
+        return;
+    }
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    campaign_placed(dir, None, true);
+    let file = dir.join(FILE);
+    let text = std::fs::read_to_string(&file).unwrap_or_else(|e| panic!("{e}"));
+    let from = "  retries: 1\n";
+    assert!(text.contains(from), "the demo's defaults changed");
+    let text = text.replacen(
+        from,
+        "  retries: 1\n  resources: { partition: no-such-partition }\n",
+        1,
+    );
+    std::fs::write(&file, text).unwrap_or_else(|e| panic!("{e}"));
+    let o = Command::new(rondo())
+        .args(["run", FILE, "--on", "slurm", "--poll-interval", "1", "-q"])
+        .current_dir(dir)
+        .env("PATH", path_with_binaries())
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    let ws = dir.join(WS);
+    let bad = attempts(&ws, "WHERE executor = 'slurm'");
+    // Two points, each: the first attempt and its one retry.
+    assert_eq!(bad.len(), 4, "{bad:?}");
+    for a in &bad {
+        assert_eq!(a.failure_kind.as_deref(), Some("launch-failed"), "{a:?}");
+        let m = a.failure_message.as_deref().unwrap_or("");
+        assert!(
+            m.contains("sbatch") && m.contains("artition"),
+            "Slurm's message: {m}"
+        );
+    }
+    let s = status_json(dir, &ws);
+    for p in s["points"].as_array().cloned().unwrap_or_default() {
+        assert_eq!(p["state"], "failed", "{p}");
+    }
+    let open = attempts(&ws, "WHERE state IN ('planned', 'submitted', 'running')");
+    assert!(open.is_empty(), "attempts left open: {open:?}");
+    let integrity = strings(&ws, "PRAGMA integrity_check");
+    assert_eq!(integrity, vec!["ok".to_string()]);
+}
+
+/// A running job is requeued (what preemption under `PreemptMode=REQUEUE` does, here by
+/// `scontrol requeue`): it goes back to pending under the same id and runs its script again.
+/// rondo keeps watching it: one attempt, one job id, no failure, and the local run's numbers.
+#[test]
+fn a_job_requeued_while_running_is_followed_to_its_end_under_the_same_attempt() {
+    let _serial = serial();
+    if !slurm_admin_or_skip() {
+        return;
+    }
+    let reference = local_reference();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    let engine = engine_first_band(dir, "sleep 300");
+    campaign_placed(dir, Some(&engine), true);
+    let mut bg = Background::run(dir, "run.log");
+    let ws = dir.join(WS);
+    let job = wait_for(
+        "the first band job to run",
+        Duration::from_secs(120),
+        || {
+            bg.still_running(dir, "run.log");
+            let jobs = jobs_under(dir);
+            let band = jobs
+                .iter()
+                .find(|j| j.name.ends_with(".band") && j.running())?;
+            dir.join("first-band-done")
+                .exists()
+                .then(|| band.id.clone())
+        },
+    );
+    let scontrol = |args: &[&str]| {
+        let o = Command::new("scontrol")
+            .args(args)
+            .output()
+            .unwrap_or_else(|e| panic!("scontrol: {e}"));
+        assert!(o.status.success(), "scontrol {args:?}: {}", shown(&o));
+    };
+    scontrol(&["requeue", &job]);
+    wait_for(
+        "the job to be pending again",
+        Duration::from_secs(60),
+        || {
+            jobs_under(dir)
+                .iter()
+                .any(|j| j.id == job && j.pending())
+                .then_some(())
+        },
+    );
+    // Slurm holds a requeued job back for about two minutes: let it run again now.
+    scontrol(&["update", &format!("JobId={job}"), "StartTime=now"]);
+    let code = bg.exit_code(Duration::from_secs(600));
+    let log = std::fs::read_to_string(dir.join("run.log")).unwrap_or_default();
+    assert_eq!(code, Some(0), "{log}");
+    all_converged(dir);
+    assert_same_numbers(reference, &record(&ws), "a run with a requeued job");
+    let a: Vec<Attempt> = attempts(&ws, "")
+        .into_iter()
+        .filter(|a| a.handle.as_deref() == Some(job.as_str()))
+        .collect();
+    assert_eq!(a.len(), 1, "one attempt for the requeued job: {a:?}");
+    assert_eq!(a[0].state, "succeeded", "{a:?}");
+    let failed = attempts(&ws, "WHERE state <> 'succeeded'");
+    assert!(failed.is_empty(), "no attempt failed: {failed:?}");
+}
+
+/// A batch job runs past its `--time` (one minute, the shortest Slurm has): Slurm's TIMEOUT
+/// is recorded as a time-limit kill, the retry asks for twice the time (the default
+/// `timeout-factor`, event `time-limit-lengthened`), and the campaign converges to the local
+/// run's numbers.
+#[test]
+fn a_job_past_its_time_limit_is_retried_with_twice_the_time() {
+    let _serial = serial();
+    if !slurm_or_skip() {
+        return;
+    }
+    let reference = local_reference();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    let engine = engine_first_band(dir, "sleep 600");
+    campaign_placed(dir, Some(&engine), true);
+    let file = dir.join(FILE);
+    let text = std::fs::read_to_string(&file).unwrap_or_else(|e| panic!("{e}"));
+    let from = "  retries: 1\n";
+    assert!(text.contains(from), "the demo's defaults changed");
+    let text = text.replacen(from, "  retries: 1\n  resources: { time: \"1\" }\n", 1);
+    std::fs::write(&file, text).unwrap_or_else(|e| panic!("{e}"));
+    let mut bg = Background::run(dir, "run.log");
+    let code = bg.exit_code(Duration::from_secs(900));
+    let log = std::fs::read_to_string(dir.join("run.log")).unwrap_or_default();
+    assert_eq!(code, Some(0), "{log}");
+    all_converged(dir);
+    let ws = dir.join(WS);
+    assert_same_numbers(reference, &record(&ws), "a run with a time-limit kill");
+    let timed_out = attempts(&ws, "WHERE failure_kind = 'timeout'");
+    assert_eq!(timed_out.len(), 1, "{timed_out:?}");
+    let lengthened = events(&ws, "time-limit-lengthened");
+    assert_eq!(lengthened.len(), 1, "{lengthened:?}");
+    assert!(
+        lengthened[0].1.contains("batch --time 00:02:00"),
+        "{lengthened:?}"
+    );
+}

@@ -388,6 +388,56 @@ async fn a1_time_limit_kill_is_timed_out_and_retried_longer() {
     assert!(dir.path().join("out.txt").exists());
 }
 
+/// A job requeued while it runs (what preemption with `PreemptMode=REQUEUE` or `scontrol
+/// requeue` does) comes back under the same id and runs its script again. Its first run
+/// leaves an exit marker with a signal's status, as a job script can when the scheduler's
+/// kill reaches the command before the shell: that marker is not taken for the job's end.
+/// The executor keeps watching through the pending spell and reports the second run's exit.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_requeued_job_is_watched_to_its_second_run_past_a_signal_marker() {
+    if !slurm_admin_available() {
+        return;
+    }
+    let _shared = SCHEDULER.read().await;
+    let (tx, mut rx) = unbounded_channel();
+    let ex = SlurmExecutor::new(config(), "ws-test".into(), tx);
+    let dir = tempfile::tempdir().expect("tempdir");
+    let script = r#"if [ "${SLURM_RESTART_COUNT:-0}" = 0 ]; then
+  printf '143 2026-01-01T00:00:00Z\n' > .rondo-exit.tmp && mv -f .rondo-exit.tmp .rondo-exit
+  scontrol requeue "$SLURM_JOB_ID"
+  sleep 120
+else
+  echo "run $SLURM_RESTART_COUNT" > out.txt
+fi"#;
+    let h = ex
+        .launch(request(51, dir.path(), script))
+        .await
+        .expect("submit");
+    let id = h.id.clone();
+    wait_for("job 51 is requeued (pending again)", 90, || {
+        dir.path().join(".rondo-exit").exists()
+            && cmd_out("squeue", &["-h", "-t", "all", "-o", "%T", "-j", &id]).trim() == "PENDING"
+    })
+    .await;
+    // Marker checks every second and the query they bring forward: none may end it.
+    tokio::time::sleep(Duration::from_secs(4)).await;
+    assert!(
+        rx.try_recv().is_err(),
+        "a signal's marker of a requeued job's first run was taken for its end"
+    );
+    assert_eq!(ex.watched(), vec![h.id.clone()], "still watched");
+    // Slurm holds a requeued job back for about two minutes; let it start now.
+    scontrol(&["update", &format!("JobId={}", h.id), "StartTime=now"]);
+    let c = next(&mut rx).await;
+    assert_eq!(
+        (c.attempt_id, &c.outcome),
+        (51, &Outcome::Exited { code: 0 }),
+        "{c:?}"
+    );
+    let out = std::fs::read_to_string(dir.path().join("out.txt")).expect("second run's output");
+    assert_eq!(out.trim(), "run 1");
+}
+
 /// The node goes down under a `--no-requeue` job: NODE_FAIL becomes `NodeFailure`. The node
 /// is put back into service afterwards in every case.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

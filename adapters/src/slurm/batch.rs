@@ -236,6 +236,10 @@ pub fn job_script(directives: &[String], req: &LaunchRequest) -> Result<String, 
         sanitize_job_name(&req.job_name)
     ));
     s.push_str(&format!("cd {} || exit 111\n", shell_quote(&wd)));
+    // A job the scheduler requeued (preemption, `scontrol requeue`, a node failure) runs
+    // this script again from the top: an exit marker its killed first run managed to write
+    // must not stand for this run.
+    s.push_str(&format!("rm -f {exit} {times}\n"));
     s.push_str(&format!(
         "printf '%s %s\\n' \"$(hostname)\" \"$(date -u +%Y-%m-%dT%H:%M:%SZ)\" > {start}.tmp.$$ && mv -f {start}.tmp.$$ {start}\n"
     ));
@@ -283,6 +287,16 @@ pub fn read_start(workdir: &Path) -> Option<(String, Option<DateTime<Utc>>)> {
     let host = it.next()?.to_string();
     let at = it.next().and_then(|t| t.parse::<DateTime<Utc>>().ok());
     Some((host, at))
+}
+
+/// Whether an exit marker's status settles the job on its own. A status of 128 or more is
+/// what a shell reports for a command ended by a signal: with process tracking that signals
+/// a job's processes one by one, the job script can outlive its command just long enough to
+/// write such a marker when the scheduler kills the job to requeue it (preemption,
+/// `scontrol requeue`). Such a marker is believed only once the scheduler no longer lists
+/// the job as queued or running.
+pub fn marker_settles(code: i32) -> bool {
+    (0..128).contains(&code)
 }
 
 /// The exit marker: exit status and end time, if the program ended.
@@ -596,9 +610,13 @@ impl<B: BatchSystem> BatchCore<B> {
         match states.get(&handle.id) {
             // The exit marker is the job script's last act: once it exists the command has
             // ended, even while the scheduler still lists the job (e.g. COMPLETING).
-            Some(JobState::Active) if read_exit(workdir).is_some() => Ok(Reattached::Finished(
-                completion(attempt_id, workdir, None, false),
-            )),
+            Some(JobState::Active)
+                if read_exit(workdir).is_some_and(|(code, _)| marker_settles(code)) =>
+            {
+                Ok(Reattached::Finished(completion(
+                    attempt_id, workdir, None, false,
+                )))
+            }
             Some(JobState::Active) => {
                 self.watch(handle.id.clone(), attempt_id, workdir.to_path_buf());
                 Ok(Reattached::Active)
@@ -840,6 +858,8 @@ async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
     };
     let mut delay = interval;
     let mut next_query = tokio::time::Instant::now() + delay;
+    // Jobs whose exit marker waits for the scheduler's word (see [`marker_settles`]).
+    let mut confirming: std::collections::HashSet<String> = std::collections::HashSet::new();
     loop {
         let now = tokio::time::Instant::now();
         tokio::time::sleep(next_query.saturating_duration_since(now).min(tick)).await;
@@ -855,8 +875,24 @@ async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
         if !marker.is_zero() {
             for (id, workdir) in &ids {
                 // The marker is written by rename, so its existence means it is complete.
-                if exit_marker(workdir).exists() && !finish(&shared, id, None).await {
-                    return;
+                if !exit_marker(workdir).exists() {
+                    confirming.remove(id);
+                    continue;
+                }
+                match read_exit(workdir) {
+                    Some((code, _)) if marker_settles(code) => {
+                        if !finish(&shared, id, None).await {
+                            return;
+                        }
+                    }
+                    // A signal's status (or a marker that does not parse): the scheduler
+                    // decides, at a query brought forward once per job so that a command
+                    // that really died of a signal is not held a whole poll interval.
+                    _ => {
+                        if confirming.insert(id.clone()) {
+                            next_query = next_query.min(tokio::time::Instant::now() + tick * 2);
+                        }
+                    }
                 }
             }
         }
@@ -895,6 +931,7 @@ async fn poll_loop<B: BatchSystem>(shared: Arc<Shared<B>>) {
                 None if read_exit(&w.workdir).is_some() => None,
                 None => shared.system.lookup_finished(&id).await,
             };
+            confirming.remove(&id);
             if !finish(&shared, &id, end).await {
                 return;
             }

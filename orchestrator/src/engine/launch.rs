@@ -4,7 +4,7 @@
 
 use super::*;
 use crate::spec::Initial;
-use rondo_adapters::executor::Resources;
+use rondo_adapters::executor::{ExecError, Resources};
 use rondo_adapters::slurm::lengthen_time;
 
 impl Engine<'_> {
@@ -516,12 +516,14 @@ impl Engine<'_> {
             Duration::try_from_secs_f64(t.as_secs_f64() * factor).unwrap_or(Duration::MAX)
         });
         let resources = lengthen_time(&stage.resources, factor);
+        let limits: Vec<String> = time_limit
+            .map(|t| format!("{} s", t.as_secs()))
+            .into_iter()
+            .chain(resources.time.as_ref().map(|t| format!("batch --time {t}")))
+            .collect();
         let detail = format!(
             "after {kills} time-limit kill(s) the limit is {} (timeout-factor {})",
-            time_limit
-                .map(|t| format!("{} s", t.as_secs()))
-                .or_else(|| resources.time.clone())
-                .unwrap_or_default(),
+            limits.join(", "),
             stage.timeout_factor
         );
         self.ledger
@@ -591,6 +593,21 @@ impl Engine<'_> {
                     .await?;
             }
             Err(e) => {
+                // A scheduler that does not answer (controller down or restarting) after the
+                // executor's own retries is no fault of the stage: the attempt is recorded
+                // as failed to launch but uses up none of the stage's retries, and the point
+                // queues again, so a campaign waits out an outage of any length (each
+                // round of the executor's backoff is a few calls, minutes apart).
+                let outage = matches!(e, ExecError::Unavailable { .. });
+                if outage {
+                    self.progress.line(format!(
+                        "{} iteration {} stage {}: the scheduler does not answer ({e}); \
+                         trying again",
+                        self.points[fl.point].spec.id,
+                        fl.iteration,
+                        self.campaign.stages[fl.stage].name
+                    ));
+                }
                 let ended = Ended::Failed {
                     kind: "launch-failed".into(),
                     message: e.to_string(),
@@ -598,7 +615,7 @@ impl Engine<'_> {
                     started: None,
                     ended: Some(Utc::now()),
                     host: None,
-                    free: false,
+                    free: outage,
                     state: AttemptState::Failed,
                 };
                 self.settle(id, Some(&fl), ended).await?;
