@@ -113,8 +113,11 @@ fn runs(dir: &Path) -> BTreeMap<String, usize> {
     out
 }
 
-/// The recorded after-campaign runs: (options, role → artifact) in id order.
-fn generations(ws: &Path) -> Vec<(String, BTreeMap<String, String>)> {
+/// Recorded after-campaign runs: (options, role → artifact) in id order.
+type Generations = Vec<(String, BTreeMap<String, String>)>;
+
+/// The recorded after-campaign runs of `ws`.
+fn generations(ws: &Path) -> Generations {
     query(ws, |pool| {
         Box::pin(async move {
             let rows = sqlx::query(
@@ -125,7 +128,7 @@ fn generations(ws: &Path) -> Vec<(String, BTreeMap<String, String>)> {
             .fetch_all(pool)
             .await
             .unwrap_or_else(|e| panic!("{e}"));
-            let mut out: Vec<(String, BTreeMap<String, String>)> = Vec::new();
+            let mut out: Generations = Vec::new();
             for r in rows {
                 let (opts, role, art): (String, String, String) = (r.get(0), r.get(1), r.get(2));
                 match out.last_mut() {
@@ -291,7 +294,7 @@ fn each_stage_outside_the_loop_runs_once_per_its_scope_and_traces_back() {
 
 /// Run the campaign in `dir` with a kill while `kind` runs (its program paused), then to
 /// the end; returns the record, the campaign-level outputs and how often `kind` ran.
-fn killed_during(dir: &Path, kind: &str) -> (Record, Vec<(String, BTreeMap<String, String>)>) {
+fn killed_during(dir: &Path, kind: &str) -> (Record, Generations) {
     setup(dir);
     let pause = dir.join(format!("pause-{kind}"));
     std::fs::write(&pause, "").unwrap_or_else(|e| panic!("{e}"));

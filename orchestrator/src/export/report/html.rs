@@ -161,7 +161,10 @@ pub fn after_campaign(
         }
         std::fs::copy(artifacts.path_of(&o.artifact), &to)
             .with_context(|| format!("{rel}: cannot copy artifact {}", o.artifact))?;
-        f.publish(&[rel.clone()], &o.sources.iter().copied().collect());
+        f.publish(
+            std::slice::from_ref(&rel),
+            &o.sources.iter().copied().collect(),
+        );
         let _ = writeln!(
             html,
             "<tr><td>{}</td><td>{}</td><td>{}</td><td><a href=\"{r}\">{r}</a></td><td><code>{}</code></td></tr>",

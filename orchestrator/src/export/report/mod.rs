@@ -203,8 +203,11 @@ pub async fn generate_with(
         opts,
         &conv_metrics,
         &camp.name,
-        &costs,
-        (&stage_outputs, &artifacts),
+        folder::Sections {
+            costs: &costs,
+            stage_outputs: &stage_outputs,
+            artifacts: &artifacts,
+        },
         progress,
     );
     let mut built = match built {
