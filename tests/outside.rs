@@ -37,7 +37,7 @@ case "$kind" in
     w=$(awk -v x="$(num "$1")" 'BEGIN { printf "%.17g", 2 * x }')
     printf 'w %s\n' "$w" > "$2"; printf '{"w": %s}\n' "$w" > metrics.json ;;
   summary) { cat "$1"; for f in "$2"/*; do echo "$f"; cat "$f"; done; } > "$3" ;;
-  per-b) { echo "b=$1"; ls "$2"; cat "$2"/*; } > "$3" ;;
+  per-b) { echo "b=$1"; ls "$2"; cat "$2"/*; echo "all: $(grep -c '"point"' "$4")"; } > "$3" ;;
 esac
 "#;
 
@@ -76,10 +76,11 @@ after-campaign:
       spectra: { outputs: spectral.a, points: converged }
     outputs: { table: table.txt }
   per-b:
-    run: [prog, per-b, "{{param:dir}}", "{{group:b}}", "{{input:spectra}}", "{{output:t}}"]
+    run: [prog, per-b, "{{param:dir}}", "{{group:b}}", "{{input:spectra}}", "{{output:t}}", "{{input:everyone}}"]
     group-by: [b]
     inputs:
       spectra: { outputs: spectral.a, points: group }
+      everyone: { finals: [s.x], points: all }
     outputs: { t: t.txt }
 stop:
   when:
@@ -231,6 +232,10 @@ fn each_stage_outside_the_loop_runs_once_per_its_scope_and_traces_back() {
             .unwrap_or_else(|e| panic!("{e}"));
         assert!(t.starts_with(&format!("b={b}\n")), "{t}");
         assert_eq!(t.matches(".txt").count(), 2, "two points per b: {t}");
+        assert!(
+            t.ends_with("all: 4\n"),
+            "`points: all` reads every point: {t}"
+        );
     }
     // `rondo trace` of the summary reaches every point's spectral attempt; the spectral
     // value's trace reaches the before-stage.

@@ -21,8 +21,13 @@ use rondo_adapters::template::Template;
 struct Group {
     values: Map<String, Value>,
     /// (point id, sweep values, state) of every point of the group, in sweep order.
-    points: Vec<(String, Map<String, Value>, PointState)>,
+    points: Vec<PointRow>,
+    /// Every point of the campaign (what `points: all` and `points: converged` select from).
+    every: std::sync::Arc<Vec<PointRow>>,
 }
+
+/// (point id, sweep values, state).
+type PointRow = (String, Map<String, Value>, PointState);
 
 /// What a campaign-level run read and how it is laid out.
 #[derive(Default)]
@@ -190,9 +195,8 @@ impl Engine<'_> {
             }
         }
         let detail = format!(
-            "{} over {} point(s): {}",
+            "{}: {}",
             folder_name(&stage.name, &g.values),
-            g.points.len(),
             outs.iter()
                 .map(|(r, _, h, _)| format!("{r} {}", &h[..12]))
                 .collect::<Vec<_>>()
@@ -215,8 +219,11 @@ impl Engine<'_> {
         for (role, src) in &stage.inputs {
             let rel = match src {
                 Source::Points { read, points } => {
-                    let chosen: Vec<_> = g
-                        .points
+                    let from = match points {
+                        PointSelection::Group => &g.points,
+                        PointSelection::All | PointSelection::Converged => g.every.as_ref(),
+                    };
+                    let chosen: Vec<_> = from
                         .iter()
                         .filter(|(_, _, st)| selected(*points, *st))
                         .collect();
@@ -376,19 +383,20 @@ fn selected(sel: PointSelection, state: PointState) -> bool {
 
 /// The groups of `all` by the `by` axes, in order of first appearance (one group of every
 /// point when `by` is empty).
-fn groups(by: &[String], all: &[(String, Map<String, Value>, PointState)]) -> Vec<Group> {
+fn groups(by: &[String], all: &[PointRow]) -> Vec<Group> {
+    let every = std::sync::Arc::new(all.to_vec());
     let mut out: Vec<Group> = Vec::new();
-    for (id, values, state) in all {
+    for p in all {
         let key: Map<String, Value> = by
             .iter()
-            .filter_map(|a| values.get(a).map(|v| (a.clone(), v.clone())))
+            .filter_map(|a| p.1.get(a).map(|v| (a.clone(), v.clone())))
             .collect();
-        let p = (id.clone(), values.clone(), *state);
         match out.iter_mut().find(|g| g.values == key) {
-            Some(g) => g.points.push(p),
+            Some(g) => g.points.push(p.clone()),
             None => out.push(Group {
                 values: key,
-                points: vec![p],
+                points: vec![p.clone()],
+                every: every.clone(),
             }),
         }
     }
