@@ -20,13 +20,14 @@ use sqlx::Row;
 
 /// The stage programs: `prog.sh KIND DIR ARGS...`. Every run appends a line to
 /// `DIR/marks/KIND`; while `DIR/pause-KIND` exists it writes `DIR/paused-KIND` first and
-/// sleeps three seconds (a window for the kill).
+/// sleeps three seconds (a window for the kill); while `DIR/fail-KIND` exists it fails.
 const PROG: &str = r#"#!/bin/sh
 set -eu
 kind=$1 dir=$2
 shift 2
 echo "${RONDO_POINT:-campaign} ${RONDO_ITERATION:-0}" >> "$dir/marks/$kind"
 if [ -e "$dir/pause-$kind" ]; then touch "$dir/paused-$kind"; sleep 3; fi
+if [ -e "$dir/fail-$kind" ]; then echo "asked to fail" >&2; exit 9; fi
 num() { sed 's/[^0-9.eE+-]//g' "$1"; }
 case "$kind" in
   dft) awk -v a="$1" 'BEGIN { printf "{\"x\": %.17g}\n", 3 * a }' > "$2" ;;
@@ -403,5 +404,47 @@ fn sigterm_during_an_after_campaign_stage_ends_it_records_nothing_and_a_rerun_ru
         runs(d.path())["summary"],
         2,
         "the interrupted run and the rerun"
+    );
+}
+
+#[test]
+fn a_failed_after_point_stage_leaves_the_point_converged_and_the_next_run_runs_only_it() {
+    let d = tmp();
+    setup(d.path());
+    let fail = d.path().join("fail-spectral");
+    std::fs::write(&fail, "").unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(3), "{}", shown(&o));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(err.contains("outside the loop failed"), "{err}");
+    let ws = d.path().join("c.rondo");
+    let states = strings(&ws, "SELECT DISTINCT state FROM points");
+    assert_eq!(states, ["converged"], "the verdict stands");
+    let failed = strings(
+        &ws,
+        "SELECT point FROM events WHERE kind = 'after-point-failed' ORDER BY point",
+    );
+    assert_eq!(failed, ["p001", "p002", "p003", "p004"]);
+    assert!(
+        generations(&ws).is_empty(),
+        "the campaign-level stages wait"
+    );
+    let steps = runs(d.path())["step"];
+    std::fs::remove_file(&fail).unwrap_or_else(|e| panic!("{e}"));
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ran = runs(d.path());
+    assert_eq!(ran["step"], steps, "no cycle stage ran again: {ran:?}");
+    assert_eq!(
+        ran["spectral"], 8,
+        "four failed, then four succeeded: {ran:?}"
+    );
+    assert_eq!((ran["summary"], ran["per-b"]), (1, 2), "{ran:?}");
+    assert_eq!(
+        strings(
+            &ws,
+            "SELECT CAST(count(*) AS TEXT) FROM attempts WHERE stage = 'spectral' AND state = 'succeeded'"
+        ),
+        ["4"]
     );
 }
