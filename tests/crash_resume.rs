@@ -1,4 +1,5 @@
-//! Crash equivalence on the demo campaign: rondo is SIGKILLed at seeded random instants and
+//! Crash equivalence on the demo campaign (Anderson-mixed): rondo is SIGKILLed at 50 seeded
+//! random instants (`RONDO_CRASH_KILLS` changes the number, `RONDO_CRASH_SEED` the seed) and
 //! run again until done; every recorded output artifact and metric must be bit-identical to
 //! an uninterrupted run, no stage may be recorded succeeded twice for one point and
 //! iteration, and no child process may be left behind.
@@ -34,7 +35,7 @@ fn killed_runs_end_with_the_numbers_of_an_uninterrupted_run() {
         b.path(),
         "model-sweep.yaml",
         seed,
-        5,
+        crash_kills(50),
         reference.len(),
         (0.05, 0.85),
         0,

@@ -1,7 +1,7 @@
 //! Folder artifacts and kept case folders, through the real rondo binary and real child
 //! processes: a stage keeps a case folder of 20 files (one of them large) across iterations,
 //! a first attempt rewrites half of two files in place and crashes, rondo is SIGKILLed at
-//! seeded instants, and the end result — every artifact hash (folder manifests and so every
+//! 50 seeded instants (`RONDO_CRASH_KILLS`), and the end result — every artifact hash (folder manifests and so every
 //! file inside them) and every metric — is bit-identical to an uninterrupted run without the
 //! crash. Also: a glob output that matches nothing, a symlink out of the folder, a misspelled
 //! key under `case-folder:`.
@@ -63,7 +63,7 @@ cycle:
     outputs: {{ seen: seen.txt }}
 stop:
   when:
-    - {{ metric: step.x, change-below: 1.0e-2, for: 2 }}
+    - {{ metric: step.x, change-below: 1.0e-4, for: 2 }}
   max-iterations: 30
 "#,
         prog = fixture("casestep.sh").display(),
@@ -184,7 +184,16 @@ fn a_crash_mid_rewrite_and_kills_of_rondo_end_bit_identical_to_a_clean_run() {
     campaign(c.path(), "crash");
     let ws_c = c.path().join("c.rondo");
     let seed = crash_seed(20_261_204);
-    kill_and_finish(c.path(), "c.yaml", seed, 4, reference.len(), (0.1, 0.8), 0);
+    let kills = crash_kills(50);
+    kill_and_finish(
+        c.path(),
+        "c.yaml",
+        seed,
+        kills,
+        reference.len(),
+        (0.05, 0.9),
+        0,
+    );
     assert_same_record(&reference, &record(&ws_c), seed);
     assert_eq!(
         members(&ws_a),

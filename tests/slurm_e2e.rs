@@ -1516,3 +1516,126 @@ fn a_job_past_its_time_limit_is_retried_with_twice_the_time() {
         "{lengthened:?}"
     );
 }
+
+/// Storing a large output does not stall the Slurm poller: while point `a`'s 16 GiB output
+/// (a sparse file: no disk used) is hashed and moved into the store on the blocking pool,
+/// point `b`'s batch jobs are still noticed ending (from their exit markers, checked every
+/// second) and their successors submitted. Counted in the store (and the `squeue` calls
+/// from a shim's log, printed), in the window between the end of `a`'s big job and the plan of `a`'s next
+/// stage (which waits for the big output to be recorded).
+#[test]
+fn slurm_polls_go_on_while_a_large_output_is_stored() {
+    let _serial = serial();
+    if !slurm_or_skip() {
+        return;
+    }
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    let text = r#"campaign: big-and-small-slurm
+about: test campaign (not physics)
+programs:
+  sh: { path: /bin/sh }
+sweep:
+  product:
+    size: [17179869184, 0]
+cycle:
+  w:
+    run: [sh, -c, 'if [ {{iteration}} = 1 ]; then truncate -s "$1" big.bin; else : > big.bin; fi', sh, "{{param:size}}"]
+    outputs: { big: big.bin }
+  t:
+    run: [sh, -c, 'n={{iteration}}; [ $n -gt 8 ] && n=8; echo "{\"n\": $n}" > metrics.json']
+    metrics: [n]
+stop:
+  when:
+    - { metric: t.n, change-below: 0.5, for: 1 }
+  max-iterations: 12
+"#;
+    std::fs::write(dir.join(FILE), text).unwrap_or_else(|e| panic!("{e}"));
+    let real = String::from_utf8_lossy(
+        &Command::new("sh")
+            .args(["-c", "command -v squeue"])
+            .output()
+            .unwrap_or_else(|e| panic!("{e}"))
+            .stdout,
+    )
+    .trim()
+    .to_string();
+    let shim = dir.join("shim");
+    std::fs::create_dir_all(&shim).unwrap_or_else(|e| panic!("{e}"));
+    let log = dir.join("squeue-calls.log");
+    std::fs::write(
+        shim.join("squeue"),
+        format!(
+            "#!/bin/sh\ndate -u +%Y-%m-%dT%H:%M:%S.%3NZ >> '{}'\nexec '{real}' \"$@\"\n",
+            log.display()
+        ),
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(shim.join("squeue"), std::fs::Permissions::from_mode(0o755))
+        .unwrap_or_else(|e| panic!("{e}"));
+    let o = Command::new(rondo())
+        .args(["run", FILE, "--on", "slurm", "--poll-interval", "1", "-q"])
+        .current_dir(dir)
+        .env(
+            "PATH",
+            format!("{}:{}", shim.display(), path_with_binaries()),
+        )
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert!(o.status.success(), "{}", shown(&o));
+    let ws = dir.join(WS);
+    // When rondo saw the big job end (the attempt's own end time is the job script's, in
+    // whole seconds): the event of its success is written once stored, so take the plan of
+    // the next stage as the window's end and the big job's last status change before it.
+    let window = strings(
+        &ws,
+        "SELECT a.ended_at || ' ' || n.created_at FROM attempts a JOIN attempts n \
+         ON n.point = a.point AND n.iteration = 1 AND n.stage = 't' \
+         JOIN points p ON p.id = a.point \
+         WHERE a.stage = 'w' AND a.iteration = 1 AND p.idx = 1",
+    );
+    let (big_ended, next_planned) = window
+        .first()
+        .and_then(|t| t.split_once(' '))
+        .map(|(a, b)| (a.to_string(), b.to_string()))
+        .unwrap_or_else(|| panic!("no big attempt: {window:?}"));
+    // The job script's end time has whole seconds; count from the second after it.
+    let from = format!(
+        "{}.999Z",
+        big_ended
+            .trim_end_matches('Z')
+            .split('.')
+            .next()
+            .unwrap_or("")
+    );
+    let calls: Vec<String> = std::fs::read_to_string(&log)
+        .unwrap_or_default()
+        .lines()
+        .map(str::to_string)
+        .collect();
+    let during = calls
+        .iter()
+        .filter(|t| t.as_str() > from.as_str() && t.as_str() < next_planned.as_str())
+        .count();
+    // Each of the other point's attempts is planned only after rondo noticed the end of
+    // the job before it, which only the poller can tell.
+    let planned_during = strings(
+        &ws,
+        "SELECT a.created_at FROM attempts a JOIN points p ON p.id = a.point \
+         WHERE p.idx = 2 AND a.executor = 'slurm'",
+    )
+    .into_iter()
+    .filter(|t| t.as_str() > from.as_str() && t.as_str() < next_planned.as_str())
+    .count();
+    eprintln!(
+        "16 GiB output: job ended {big_ended}, next stage planned {next_planned}; {during} \
+         squeue calls (none is needed while every job's end comes from its marker within the \
+         poll interval) and {planned_during} jobs of the other point planned in between"
+    );
+    assert!(
+        planned_during >= 1,
+        "the Slurm poller stalled while the big output was stored: {planned_during} jobs of \
+         the other point planned between {from} and {next_planned} ({during} squeue calls)"
+    );
+}

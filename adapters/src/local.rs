@@ -51,7 +51,7 @@ use crate::executor::{
     Completion, ExecError, Executor, Handle, LaunchRequest, Outcome, Reattached, Shutdown,
 };
 
-pub use kept::{use_this_binary, KeeperProgram};
+pub use kept::{keeper_command, use_this_binary, KeeperProgram};
 pub use sys::{ATTEMPT_VAR, WORKSPACE_VAR};
 
 /// Grace period between SIGTERM and SIGKILL unless configured otherwise.

@@ -240,7 +240,7 @@ impl ArtifactStore {
         if !dest.is_file() {
             let dir = dest.parent().unwrap_or(&self.root);
             fs::create_dir_all(dir)?;
-            let tmp = dir.join(format!(".tmp-{}-{}", std::process::id(), &hash[..16]));
+            let tmp = tmp_in(dir, &hash);
             let mut f = File::create(&tmp)?;
             f.write_all(bytes)?;
             f.sync_all()?;
@@ -272,7 +272,7 @@ fn regular_file(path: &Path) -> io::Result<()> {
 /// world-writable), and never gains a permission the umask takes away.
 fn copy_durably(src: &Path, dest: &Path, hash: &str, ro: bool) -> io::Result<()> {
     let dir = dest.parent().unwrap_or(Path::new("."));
-    let tmp = dir.join(format!(".tmp-{}-{}", std::process::id(), &hash[..16]));
+    let tmp = tmp_in(dir, hash);
     let _ = fs::remove_file(&tmp);
     {
         let mut from = File::open(src)?;
@@ -287,6 +287,15 @@ fn copy_durably(src: &Path, dest: &Path, hash: &str, ro: bool) -> io::Result<()>
         read_only(&tmp)?;
     }
     fs::rename(&tmp, dest)
+}
+
+/// A temporary name in the store folder `dir` for content `hash`, unique per call: two
+/// threads storing the same content at once (two points' identical case files) must not
+/// remove or overwrite each other's copy before it is renamed into place.
+fn tmp_in(dir: &Path, hash: &str) -> PathBuf {
+    static N: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
+    let n = N.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    dir.join(format!(".tmp-{}-{n}-{}", std::process::id(), &hash[..16]))
 }
 
 /// Take the write bits off a file, keeping its read bits (those its creation's umask left).

@@ -15,6 +15,7 @@ pub mod hooks;
 pub mod metrics;
 pub mod progress;
 pub mod query;
+pub mod resident;
 pub mod retention;
 pub mod scratch;
 pub mod spec;

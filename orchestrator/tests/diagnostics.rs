@@ -1423,6 +1423,77 @@ stop: { max-iterations: 1 }
 ",
             at: (6, 31),
         },
+        // ------------------------------------------------------------ resident programs
+        Case {
+            site: "built-in stage `{sname}` cannot be resident",
+            says: "built-in stage `m` cannot be resident",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  m:
+    builtin: mix
+    inputs: { x: start.x }
+    outputs: { x: x.json }
+    settings: { method: linear, alpha: 0.5 }
+    resident: true
+stop: { max-iterations: 1 }
+",
+            at: (9, 15),
+        },
+        Case {
+            site: "stage `{sname}`: a resident program's command cannot use `{{{{{shown}}}}}`",
+            says: "stage `s`: a resident program's command cannot use `{{input:x}}`",
+            yaml: "campaign: t
+start: { x: x.json }
+cycle:
+  s:
+    run: [/bin/cat, \"{{input:x}}\"]
+    inputs: { x: start.x }
+    resident: true
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "stage `{sname}`: a resident program never outlives rondo",
+            says: "stage `s`: a resident program never outlives rondo",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    resident: true
+    outlive-rondo: true
+stop: { max-iterations: 1 }
+",
+            at: (5, 15),
+        },
+        Case {
+            site: "stage `{sname}`: a resident stage's case folder cannot be named `{HANDOFF_DIR}`",
+            says: "stage `s`: a resident stage's case folder cannot be named `handoff`",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    resident: true
+    case-folder: { path: handoff }
+stop: { max-iterations: 1 }
+",
+            at: (6, 18),
+        },
+        Case {
+            site: "stage `{sname}`: a resident program's standard output spans every hand-off",
+            says: "stage `s`: a resident program's standard output spans every hand-off",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    resident: true
+    read-metrics:
+      e: { stdout: true, pattern: 'e (.+)' }
+stop: { max-iterations: 1 }
+",
+            at: (5, 15),
+        },
         Case {
             site: "stage `{sname}`: `read-metrics` applies to command and shell stages",
             says: "`read-metrics` applies to command and shell stages",
@@ -1709,6 +1780,21 @@ stop: { max-iterations: 1 }
             at: (4, 3),
         },
         // ------------------------------------------------------------ stages outside the loop
+        Case {
+            site: "stage `{sname}`: `resident` keeps a program alive from one iteration to the next, which only a cycle stage has",
+            says: "stage `a`: `resident` keeps a program alive",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+after-point:
+  a:
+    run: [/bin/cat, \"{{output:o}}\"]
+    outputs: { o: o.txt }
+    resident: true
+stop: { max-iterations: 1 }
+",
+            at: (8, 15),
+        },
         Case {
             site: "`finals` names `{}`, which is no stage.metric of a per-point stage",
             says: "`finals` names `q.e`",

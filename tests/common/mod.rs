@@ -211,6 +211,15 @@ pub fn crash_seed(default: u64) -> u64 {
         .unwrap_or(default)
 }
 
+/// How many SIGKILLs a crash test deals: `RONDO_CRASH_KILLS` when set, else `default`.
+pub fn crash_kills(default: usize) -> usize {
+    std::env::var("RONDO_CRASH_KILLS")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .filter(|&k| k > 0)
+        .unwrap_or(default)
+}
+
 /// Start `rondo run CAMPAIGN --max-running 2` in `dir` `kills` times and SIGKILL it each
 /// time at a seeded point of its progress, then run it to the end (exit `final_code`
 /// required: 0 when every point converges, 3 when some are capped). `total` is the number

@@ -48,6 +48,19 @@ pub(super) fn keeper_program() -> Option<KeeperProgram> {
     KEEPER.get().cloned()
 }
 
+/// A command that starts a keeper for a program that is no attempt of an executor (a
+/// resident program of the orchestrator): `None` unless [`use_this_binary`] was called. The
+/// keeper's mode variable is set; the caller adds the folder, the workspace and attempt tags
+/// and a process group, and reads the keeper's first stdout line (`pid N` or `error M`).
+pub fn keeper_command(cfg: &Config) -> Option<Command> {
+    let kp = keeper_program()?;
+    let mut cmd = Command::new(&kp.program);
+    cmd.args(&kp.args)
+        .args(cfg.to_args())
+        .env(KEEPER_VAR, if cfg.outlive { "outlive" } else { "follow" });
+    Some(cmd)
+}
+
 /// A keeper started by this orchestrator, and what its supervising task needs.
 struct KeptRun {
     keeper: Child,

@@ -112,10 +112,14 @@ enum Command {
         /// The case folder.
         case: PathBuf,
     },
-    /// Resident band sub-step: take hand-offs under CASE/handoff/ until a stop file appears.
+    /// Resident band sub-step: take hand-offs (protocol rondo-handoff-1) until a stop file
+    /// appears.
     Serve {
         /// The case folder.
         case: PathBuf,
+        /// The hand-off folder (default: CASE/handoff).
+        #[arg(long, value_name = "DIR")]
+        handoff: Option<PathBuf>,
         /// How often to look for new hand-offs, in milliseconds.
         #[arg(long, default_value_t = 20, value_parser = clap::value_parser!(u64).range(1..=60_000))]
         poll_ms: u64,
@@ -190,8 +194,14 @@ fn run(cli: Cli) -> Result<()> {
         Command::Solve { case, seed, sweeps } => steps::solve(&Case::open(&case)?, seed, sweeps),
         Command::Update { case, restart_mib } => steps::update(&Case::open(&case)?, restart_mib),
         Command::Restore { case } => steps::restore(&Case::open(&case)?),
-        Command::Serve { case, poll_ms } => {
-            serve::serve(&Case::open(&case)?, Duration::from_millis(poll_ms))
+        Command::Serve {
+            case,
+            handoff,
+            poll_ms,
+        } => {
+            let c = Case::open(&case)?;
+            let root = handoff.unwrap_or_else(|| c.handoff());
+            serve::serve(&c, &root, Duration::from_millis(poll_ms))
         }
     }
 }

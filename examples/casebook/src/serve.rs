@@ -1,8 +1,9 @@
-//! The resident mode (`casebook serve CASE`): the band sub-step as a process that stays
-//! alive across iterations and takes its work through files under `CASE/handoff/`
-//! (docs/casebook.md, "Hand-off protocol"). Owns the server side of that protocol: hand-off
-//! numbering, the order of writes (outputs complete and synced before the done marker), the
-//! ready and stop files.
+//! The resident mode (`casebook serve CASE [--handoff DIR]`): the band sub-step as a process
+//! that stays alive across iterations and takes its work through files under the hand-off
+//! folder (`CASE/handoff/` unless `--handoff` names another), in rondo's hand-off protocol
+//! `rondo-handoff-1` (docs/resident.md; casebook's part in docs/casebook.md, "Resident
+//! mode"). Owns the program side of that protocol: hand-off numbering, the order of writes
+//! (outputs complete and synced before the done marker), the ready and stop files.
 
 use anyhow::{bail, Context, Result};
 use std::fmt::Write as _;
@@ -15,7 +16,7 @@ use crate::steps::{self, BandSetup, BAND_OUTPUTS};
 use crate::textlog::journal;
 
 /// Protocol name and version written into `ready` and every `done`.
-pub const PROTOCOL: &str = "casebook-handoff-1";
+pub const PROTOCOL: &str = "rondo-handoff-1";
 
 /// The input file of a hand-off (in `handoff/N/in/`).
 pub const INPUT: &str = "density";
@@ -72,7 +73,7 @@ fn pid_alive(pid: i32) -> bool {
 fn ready_pid(path: &Path) -> Option<i32> {
     let text = std::fs::read_to_string(path).ok()?;
     text.lines()
-        .find_map(|l| l.strip_prefix("pid = "))
+        .find_map(|l| l.strip_prefix("pid "))
         .and_then(|p| p.trim().parse().ok())
 }
 
@@ -108,10 +109,10 @@ fn handle(case: &Case, setup: &BandSetup, dir: &Path) -> Result<Vec<(String, u64
     Ok(listed)
 }
 
-/// Run the server until a `stop` file appears.
-pub fn serve(case: &Case, poll: Duration) -> Result<()> {
+/// Run the server until a `stop` file appears in the hand-off folder `root`.
+pub fn serve(case: &Case, root: &Path, poll: Duration) -> Result<()> {
     let setup = steps::band_setup(case)?;
-    let root = case.handoff();
+    let root = root.to_path_buf();
     std::fs::create_dir_all(&root).with_context(|| format!("{}: cannot create", root.display()))?;
     let ready = root.join("ready");
     if let Some(pid) = ready_pid(&ready) {
@@ -130,7 +131,7 @@ pub fn serve(case: &Case, poll: Duration) -> Result<()> {
         .max()
         .unwrap_or(0);
     let ready_text = format!(
-        "protocol = {PROTOCOL}\npid = {}\nlast = {last}\n",
+        "protocol {PROTOCOL}\npid {}\nlast {last}\n",
         std::process::id()
     );
     publish(&root, "ready", ready_text.as_bytes())?;

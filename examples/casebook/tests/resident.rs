@@ -1,4 +1,4 @@
-//! The resident mode through its file protocol (docs/casebook.md, "Hand-off protocol"):
+//! The resident mode through rondo's hand-off protocol (docs/resident.md):
 //! a real `casebook serve` process, hand-offs written by the test as an orchestrator would,
 //! outputs equal to the one-shot band sub-step's, a done marker that never shows before its
 //! outputs are complete, numbers that must increase, one server per case, and a clean stop.
@@ -58,7 +58,7 @@ fn hand_off(case: &Path, n: u64, density: &[u8]) -> PathBuf {
 
 /// The done marker, parsed: status and the listed outputs with their sizes.
 fn parse_done(text: &str) -> (String, Vec<(String, u64)>) {
-    assert!(text.starts_with("protocol casebook-handoff-1\n"), "{text}");
+    assert!(text.starts_with("protocol rondo-handoff-1\n"), "{text}");
     assert!(text.ends_with("end\n"), "done marker not complete: {text}");
     let status = text
         .lines()
@@ -208,6 +208,6 @@ fn done_markers_never_precede_complete_outputs_and_numbers_must_increase() {
     // a restarted server continues the numbering: 10 was the last
     let mut server = start_server(dir, "big");
     let ready = std::fs::read_to_string(case.join("handoff").join("ready")).unwrap_or_default();
-    assert!(ready.contains("last = 10"), "{ready}");
+    assert!(ready.contains("last 10\n"), "{ready}");
     stop(&mut server, &case);
 }

@@ -40,7 +40,8 @@ impl Engine<'_> {
                 continue;
             }
             let stage = &self.campaign.stages[self.points[p].next_stage];
-            if !stage.kind.is_builtin() {
+            // Built-ins and hand-offs to resident programs hold no executor slot.
+            if !stage.kind.is_builtin() && !stage.resident {
                 let on_host = self.runs_on_host(stage);
                 if busy[usize::from(on_host)] >= capacity[usize::from(on_host)] {
                     waiting.push_back(p);
@@ -99,6 +100,12 @@ impl Engine<'_> {
             ],
         );
         let scheduled = self.schedule_values(p, iteration).await?;
+        // A resident program's `{{workdir}}` is its own folder, which outlives the attempt.
+        let argv_dir = if stage.resident {
+            self.resident_dir(&point.id, &stage.name)
+        } else {
+            workdir.clone()
+        };
         let ctx = ArgvContext {
             stage: &stage,
             point: &point,
@@ -106,7 +113,7 @@ impl Engine<'_> {
             inputs: &inputs,
             scheduled: &scheduled,
             seed,
-            workdir: &workdir,
+            workdir: &argv_dir,
         };
         let (argv, uses_seed, executor_kind) = self.attempt_argv(&ctx, &built)?;
         // The planned row: written now (one store call) for built-ins and batch jobs, whose
@@ -154,7 +161,9 @@ impl Engine<'_> {
         };
         self.points[p].outstanding = Some(id);
         self.inflight.insert(id, fl.clone());
-        if stage.kind.is_builtin() {
+        if stage.resident {
+            self.run_handoff(row, fl, &stage, argv, inputs).await
+        } else if stage.kind.is_builtin() {
             self.run_builtin(row, fl, &stage, argv).await
         } else {
             self.launch_command(row, fl, &stage, argv).await
@@ -257,6 +266,12 @@ impl Engine<'_> {
             };
             let rel = PathBuf::from(&cf.path);
             match input_hash(&store, point, iteration, &src).await? {
+                // A resident program's case folder is laid out where the program runs, when
+                // it is started (engine::handoff); its attempts record the snapshot.
+                Some(h) if stage.resident => {
+                    inputs.push((crate::spec::CASE_FOLDER_ROLE.into(), h, rel));
+                }
+                None if stage.resident => {}
                 Some(h) => {
                     places.push((h.clone(), workdir.join(&rel), true, true));
                     inputs.push((crate::spec::CASE_FOLDER_ROLE.into(), h, rel));
@@ -366,7 +381,9 @@ impl Engine<'_> {
         let uses_seed = template
             .placeholders()
             .any(|(ns, n, _)| ns.is_none() && n == "seed");
-        let kind = if self.runs_on_host(stage) {
+        let kind = if stage.resident {
+            "resident"
+        } else if self.runs_on_host(stage) {
             "local"
         } else {
             self.opts.executor.kind()
@@ -449,6 +466,7 @@ impl Engine<'_> {
             workdir: fl.workdir.clone(),
             artifacts: self.artifacts.clone(),
             keep_scratch: self.opts.keep_scratch,
+            case_root: None,
         };
         let tx = self.checked_tx.clone();
         self.storing.insert(id);
@@ -489,7 +507,7 @@ impl Engine<'_> {
     /// per earlier kill (a batch job's `--time` rounded up to whole minutes, Slurm's
     /// resolution; an event says so).
     /// Counted from the store, so a resumed run asks for the same limit.
-    async fn limits_for_retry(
+    pub(super) async fn limits_for_retry(
         &mut self,
         id: i64,
         fl: &InFlight,

@@ -47,6 +47,7 @@ use crate::store::{self, AttemptState, IterationState, PointState};
 use crate::validate::{self, Metric};
 
 mod campaign;
+mod handoff;
 mod iterate;
 mod launch;
 mod programs;
@@ -410,6 +411,10 @@ struct Engine<'a> {
     /// Stages outside the loop (`after-point:`, `after-campaign:`) that used up their
     /// retries in this run.
     after_failed: usize,
+    /// Resident programs running, per (point, stage) index.
+    residents: HashMap<(usize, usize), crate::resident::Process>,
+    /// Hand-offs to resident programs being awaited, per attempt.
+    handoffs: HashMap<i64, handoff::Handoff>,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -477,6 +482,8 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         usage: Default::default(),
         hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
         after_failed: 0,
+        residents: HashMap::new(),
+        handoffs: HashMap::new(),
     };
     engine
         .event(
@@ -601,6 +608,7 @@ impl Engine<'_> {
         let mut cancelled: Option<CancelRequest> = None;
         loop {
             self.schedule().await?;
+            self.end_idle_residents().await?;
             self.show();
             if self.inflight.is_empty() && self.points.iter().all(|p| p.phase == PointPhase::Done) {
                 break;
@@ -638,6 +646,9 @@ impl Engine<'_> {
         }
         self.ledger.flush().await?;
         let mut continued_as = None;
+        if !(interrupted || cancelled.is_some()) {
+            self.stop_residents("every point stopped").await?;
+        }
         if interrupted || cancelled.is_some() {
             self.stop_everything(&mut rx, &mut checked, cancelled.as_ref())
                 .await?;

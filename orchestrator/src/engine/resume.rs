@@ -197,6 +197,12 @@ impl Engine<'_> {
             let why = "the orchestrator stopped during a built-in stage";
             return self.settle(id, None, lost(why.into())).await;
         }
+        if row.executor == "resident" {
+            // Its program ended with the orchestrator (or is ended below, by its tag); the
+            // next hand-off starts it again from the last good iteration.
+            let why = "the orchestrator stopped during a hand-off to a resident program";
+            return self.settle(id, None, lost(why.into())).await;
+        }
         let on_host = row.executor == "local" && self.opts.executor.kind() != "local";
         if row.executor != self.opts.executor.kind() && !(on_host && self.on_host.is_some()) {
             bail!(

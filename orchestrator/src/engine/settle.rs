@@ -77,6 +77,7 @@ impl Engine<'_> {
                     workdir: fl.workdir.clone(),
                     artifacts: self.artifacts.clone(),
                     keep_scratch: self.opts.keep_scratch,
+                    case_root: None,
                 };
                 let tx = self.checked_tx.clone();
                 let (started, ended, host) = (c.started_at, c.ended_at, c.host.clone());
@@ -159,6 +160,7 @@ impl Engine<'_> {
     /// An attempt's outputs were checked and stored on the blocking pool (or refused).
     pub(super) async fn on_checked(&mut self, c: Checked) -> Result<()> {
         self.storing.remove(&c.id);
+        self.handoff_settled(&c).await;
         let ended = c.result?;
         let Some(fl) = self.inflight.get(&c.id).cloned() else {
             tracing::warn!(
@@ -413,6 +415,9 @@ pub(super) struct OutputJob {
     pub(super) workdir: PathBuf,
     pub(super) artifacts: ArtifactStore,
     pub(super) keep_scratch: bool,
+    /// A resident stage's folder, which holds its case folder (stored from there as a copy:
+    /// the program goes on rewriting its files).
+    pub(super) case_root: Option<PathBuf>,
 }
 
 /// What the blocking pool hands back to the loop.
@@ -421,6 +426,26 @@ pub(super) struct Checked {
     /// The attempt's end (with its outputs stored, if it succeeded), or why storing failed
     /// (which ends the run: the store cannot take files).
     result: Result<Ended>,
+}
+
+impl Checked {
+    /// An attempt that ended without outputs to store (a failed hand-off).
+    pub(super) fn ended(id: i64, ended: Ended) -> Checked {
+        Checked {
+            id,
+            result: Ok(ended),
+        }
+    }
+
+    /// Whether the attempt succeeded with its outputs stored.
+    pub(super) fn succeeded(&self) -> bool {
+        matches!(self.result, Ok(Ended::Ok(_)))
+    }
+
+    /// The attempt.
+    pub(super) fn id(&self) -> i64 {
+        self.id
+    }
 }
 
 impl OutputJob {
@@ -476,7 +501,11 @@ impl OutputJob {
         let mut outs = Vec::with_capacity(files.len());
         let mut folders = Vec::new();
         for (role, file) in files {
-            let folder = if let Some(name) = file.strip_suffix('/') {
+            let resident_case = role == crate::spec::CASE_FOLDER_ROLE && self.case_root.is_some();
+            let folder = if let (true, Some(root)) = (resident_case, &self.case_root) {
+                let name = file.trim_end_matches('/');
+                Some(self.artifacts.put_folder(&root.join(name), false))
+            } else if let Some(name) = file.strip_suffix('/') {
                 Some(self.artifacts.put_folder(&self.workdir.join(name), linked))
             } else if crate::artifacts::folder::is_glob(&file) {
                 Some(self.artifacts.put_glob(&self.workdir, &file, linked))

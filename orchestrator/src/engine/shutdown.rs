@@ -69,6 +69,7 @@ impl Engine<'_> {
             &detail,
         )
         .await?;
+        self.stop_residents(why).await?;
         let batch = self.opts.executor.kind() != "local";
         if cancelled && batch {
             let ids: Vec<i64> = self

@@ -75,6 +75,7 @@ pub async fn load_report(
         seed: None,
         rondo_version: r.rondo_version,
         environment: Default::default(),
+        handoff: None,
         inputs: Default::default(),
         outputs: Default::default(),
         metrics: Default::default(),

@@ -92,6 +92,10 @@ pub struct AttemptRecord {
     /// The allow-listed environment passed to it (docs/provenance.md), name → value.
     #[serde(skip_serializing_if = "BTreeMap::is_empty")]
     pub environment: BTreeMap<String, String>,
+    /// A hand-off to a resident program: its number, the process and the attempt that
+    /// started it (docs/resident.md).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub handoff: Option<crate::store::reads::attempts::HandoffRow>,
     /// Input role → artifact hash.
     pub inputs: BTreeMap<String, String>,
     /// Output role → artifact hash.
@@ -173,11 +177,15 @@ pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
             Some(e) => opt_json(e, "env_json", id)?,
             None => BTreeMap::new(),
         },
+        handoff: None,
         inputs: BTreeMap::new(),
         outputs: BTreeMap::new(),
         metrics: BTreeMap::new(),
         sources: Vec::new(),
     };
+    if rec.executor == "resident" {
+        rec.handoff = attempts::handoff(pool, id).await?;
+    }
     rec.inputs = attempts::files(pool, id, Files::Inputs)
         .await?
         .into_iter()

@@ -176,6 +176,13 @@ impl Lineage {
                 .unwrap_or_default()
         );
         let _ = writeln!(s, "  ran       {}", where_it_ran(a));
+        if let Some(h) = &a.handoff {
+            let _ = writeln!(
+                s,
+                "  handoff   {} to resident process {} (started by attempt {} at {})",
+                h.number, h.process_id, h.started_by, h.process_started_at
+            );
+        }
         let _ = writeln!(
             s,
             "  times     {} .. {} exit {}",

@@ -224,6 +224,9 @@ pub struct Stage {
     /// Whether a local attempt's program runs on when rondo is killed (`outlive-rondo`,
     /// default true): the next rondo watches it again or adopts its result.
     pub outlive_rondo: bool,
+    /// The program stays alive across iterations and takes each attempt's work through
+    /// hand-off files (`resident: true`, docs/resident.md).
+    pub resident: bool,
     /// Retention policies per output role (`keep`); roles not listed keep everything.
     pub keep: Vec<(String, Keep)>,
     /// The working folder kept from one iteration to the next (`case-folder`).

@@ -375,6 +375,12 @@ pub struct StageSpec {
     /// A stop of rondo by a signal or `rondo cancel` ends it either way.
     #[serde(default)]
     pub outlive_rondo: Option<bool>,
+    /// A resident program: `run` starts it once and it stays alive across iterations,
+    /// taking each attempt's work through hand-off files (docs/resident.md); `time-limit`
+    /// applies to each hand-off.
+    #[serde(default)]
+    #[schemars(with = "Option<bool>")]
+    pub resident: Option<Spanned<bool>>,
     /// Settings of a built-in stage.
     #[serde(default)]
     pub settings: Option<BuiltinSettings>,

@@ -126,6 +126,20 @@ impl Script {
         .bind(AttemptState::Planned);
     }
 
+    /// Attempt `id` is hand-off `number` to the resident process `pid`, which attempt
+    /// `started_by` started at `started_at` (docs/resident.md).
+    pub fn handoff(&mut self, id: i64, number: u64, pid: i32, started_by: i64, started_at: String) {
+        self.stmt(
+            "INSERT INTO handoffs (attempt_id, number, process_id, started_by, \
+             process_started_at) VALUES (?, ?, ?, ?, ?)",
+        )
+        .bind(id)
+        .bind(i64::try_from(number).unwrap_or(i64::MAX))
+        .bind(pid)
+        .bind(started_by)
+        .bind(started_at);
+    }
+
     /// A built-in attempt starts in this process.
     pub fn builtin_started(&mut self, id: i64, started_at: String, host: String) {
         self.stmt("UPDATE attempts SET state = ?, started_at = ?, host = ? WHERE id = ?")

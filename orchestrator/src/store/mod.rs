@@ -38,7 +38,7 @@ use sqlx::sqlite::{
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
     // (version, description, SQL), in order.
-    let steps: [(i64, &str, &'static str); 9] = [
+    let steps: [(i64, &str, &'static str); 10] = [
         (
             1,
             "initial",
@@ -83,6 +83,11 @@ pub fn migrator() -> Migrator {
             9,
             "attempt usage",
             include_str!("../../migrations/0009_attempt_usage.sql"),
+        ),
+        (
+            10,
+            "handoffs",
+            include_str!("../../migrations/0010_handoffs.sql"),
         ),
     ];
     let m: Vec<Migration> = steps

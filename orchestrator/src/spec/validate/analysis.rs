@@ -78,6 +78,7 @@ impl Validator<'_> {
             retries: 0,
             timeout_factor: 1.0,
             outlive_rondo: true,
+            resident: false,
             allow_nonfinite: false,
             writable_inputs: Default::default(),
             placement: Default::default(),

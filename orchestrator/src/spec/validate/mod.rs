@@ -16,6 +16,7 @@ mod folders;
 mod hooks;
 mod metric_sources;
 mod programs;
+mod resident;
 mod resources;
 mod rules;
 mod schedules;

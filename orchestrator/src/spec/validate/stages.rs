@@ -184,6 +184,17 @@ impl Validator<'_> {
         }
         let env = self.stage_env(&sname, st, &kind);
         let also_runs = self.also_runs(&sname, st, &kind, &cx.declared, programs);
+        let resident = self.resident(&sname, st, &kind, &metric_sources);
+        if let (Some(r), true) = (
+            st.resident.as_ref().filter(|r| r.value),
+            cx.section != Section::Cycle,
+        ) {
+            self.push(
+                loc(r),
+                format!("stage `{sname}`: `resident` keeps a program alive from one iteration to the next, which only a cycle stage has"),
+                "remove `resident: true`",
+            );
+        }
         Some(Stage {
             name: sname,
             section: Section::Cycle,
@@ -199,7 +210,8 @@ impl Validator<'_> {
             allow_nonfinite: st.allow_nonfinite,
             writable_inputs,
             placement,
-            outlive_rondo: st.outlive_rondo.unwrap_or(true),
+            outlive_rondo: st.outlive_rondo.unwrap_or(true) && !resident,
+            resident,
             keep,
             case_folder,
             metric_sources,

@@ -89,6 +89,39 @@ pub async fn attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRow> {
     })
 }
 
+/// A hand-off to a resident program, as recorded (`handoffs`, docs/resident.md).
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
+pub struct HandoffRow {
+    /// Its number for the process (1, 2, …).
+    pub number: i64,
+    /// The resident process.
+    pub process_id: i64,
+    /// The attempt that started the process.
+    pub started_by: i64,
+    /// When the process started.
+    pub process_started_at: String,
+}
+
+/// The hand-off attempt `id` is, if it is one (none in stores made before migration 10).
+pub async fn handoff(pool: &SqlitePool, id: i64) -> Result<Option<HandoffRow>> {
+    let row = sqlx::query(
+        "SELECT number, process_id, started_by, process_started_at FROM handoffs \
+         WHERE attempt_id = ?",
+    )
+    .bind(id)
+    .fetch_optional(pool)
+    .await?;
+    row.map(|r| {
+        Ok(HandoffRow {
+            number: r.try_get(0)?,
+            process_id: r.try_get(1)?,
+            started_by: r.try_get(2)?,
+            process_started_at: r.try_get(3)?,
+        })
+    })
+    .transpose()
+}
+
 /// Which side of an attempt's files.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Files {
