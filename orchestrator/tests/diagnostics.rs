@@ -1788,7 +1788,7 @@ cycle:
   s: { run: [/bin/true] }
 after-point:
   a:
-    run: [/bin/cat, \"{{output:o}}\"]
+    run: [/bin/cat]
     outputs: { o: o.txt }
     resident: true
 stop: { max-iterations: 1 }
