@@ -99,6 +99,14 @@ fn alive(pid: i32) -> bool {
 fn kill_rondo_during_the_stage(dir: &Path) -> i32 {
     let mut child = spawn_rondo(dir);
     wait_for("the stage to start", || !pids(dir).is_empty());
+    // Its row is written at rondo's next tick, just after the start: a kill before that
+    // leaves a child no record accounts for, which the next run ends as an orphan.
+    let ws = ws_of(dir);
+    wait_for("the attempt's running row", || {
+        strings_ro(&ws, "SELECT state FROM attempts")
+            .iter()
+            .any(|s| s == "running")
+    });
     child
         .kill()
         .unwrap_or_else(|e| panic!("SIGKILL rondo: {e}"));

@@ -336,6 +336,42 @@ fn sigkill_of_rondo_mid_campaign_then_resume_is_bit_identical_and_leaves_no_proc
     assert!(started.len() > 2, "{started:?}");
 }
 
+/// The failpoints of a hand-off (docs/concepts.md, "Failpoints"; the other failpoints are
+/// walked in tests/failpoint_walk.rs): rondo crashes there (SIGKILL, on the third hit, in
+/// the middle of the campaign), and the next run ends the leftover program, starts afresh
+/// from the last good iteration, and ends bit-identical to an uninterrupted run with no
+/// process left.
+#[test]
+fn every_handoff_failpoint_crashes_there_and_resumes_identically() {
+    use std::os::unix::process::ExitStatusExt;
+    let clean = tmp();
+    campaign(clean.path(), Some("ok"));
+    let reference = run_to_end(clean.path());
+    for name in ["handoff-started", "handoff-recorded"] {
+        let d = tmp();
+        campaign(d.path(), Some("ok"));
+        let armed = format!("{name}:3");
+        let o = std::process::Command::new(rondo())
+            .args(["run", "r.yaml", "--max-running", "2", "-q", "--grace", "2"])
+            .current_dir(d.path())
+            .env("PATH", path_with_binaries())
+            .env("RONDO_FAILPOINT", &armed)
+            .output()
+            .unwrap_or_else(|e| panic!("{e}"));
+        let line = format!("rondo: failpoint {name} hit 3: crashing");
+        assert!(
+            o.status.signal() == Some(9) && String::from_utf8_lossy(&o.stderr).contains(&line),
+            "armed {armed}: expected a crash there, got {}",
+            shown(&o)
+        );
+        let got = run_to_end(d.path());
+        let ws = d.path().join("r.rondo");
+        assert_same_record(&reference, &got, 0);
+        assert_resume_was_clean(&ws, 0);
+        eprintln!("{armed}: crashed there; the resumed run ends identical, no process left");
+    }
+}
+
 /// The second reference engine, built by the same `cargo test --workspace` run.
 fn casebook() -> PathBuf {
     let p = rondo().with_file_name("casebook");

@@ -118,6 +118,7 @@ impl ArtifactStore {
     pub fn put_file_linked(&self, src: &Path) -> io::Result<(String, u64)> {
         regular_file(src)?;
         let (hash, size) = hash_file(src)?;
+        crate::failpoint::hit(crate::failpoint::Failpoint::OutputHashed);
         let dest = self.path_of(&hash);
         if dest.is_file() {
             return Ok((hash, size));

@@ -270,7 +270,7 @@ async fn record(ledger: &mut store::Ledger, failures: &[Failure]) -> Result<()> 
         tracing::warn!("hook {} failed: {}", f.event, f.reason);
     }
     ledger
-        .write(|s| {
+        .write(crate::failpoint::Failpoint::HookFailed, |s| {
             for f in failures {
                 let detail = json!({ "hook": f.event, "reason": f.reason }).to_string();
                 s.event("hook-failed", f.point.as_deref(), None, None, &detail);

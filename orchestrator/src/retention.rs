@@ -14,6 +14,7 @@ use anyhow::{Context, Result};
 use sqlx::SqlitePool;
 
 use crate::artifacts::ArtifactStore;
+use crate::failpoint::{self, Failpoint};
 use crate::spec::{Campaign, Keep};
 use crate::store::retention::{self as rows, Held, Marks};
 use crate::store::Script;
@@ -194,10 +195,14 @@ async fn remove(
     for (held, policy) in &chosen {
         script.content_removed(held, policy);
     }
-    script.commit(pool).await.context("recording removals")?;
+    script
+        .commit(pool, Failpoint::RetentionRecorded)
+        .await
+        .context("recording removals")?;
     let mut done = Removed::default();
     for (held, _) in chosen {
         delete_file(artifacts, &held.hash).await?;
+        failpoint::hit(Failpoint::RetentionRemoved);
         done.files += 1;
         done.bytes += u64::try_from(held.size).unwrap_or(0);
     }

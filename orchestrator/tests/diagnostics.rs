@@ -1386,6 +1386,20 @@ stop: { max-iterations: 1 }
             at: (9, 18),
         },
         Case {
+            // a file of the case folder is an output, but only as a plain relative path
+            site: "output file name `{ov}` is not allowed",
+            says: "output file name `case/../o.txt` is not allowed",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    outputs: { o: case/../o.txt }
+    case-folder: {}
+stop: { max-iterations: 1 }
+",
+            at: (5, 16),
+        },
+        Case {
             site: "stage `{sname}`: the output role `{CASE_FOLDER_ROLE}` is its case folder's",
             says: "stage `s`: the output role `folder` is its case folder's",
             yaml: "campaign: t

@@ -28,6 +28,17 @@ pub fn model_solid() -> PathBuf {
     p
 }
 
+/// The second reference engine's binary (built beside rondo, as model-solid is).
+pub fn casebook() -> PathBuf {
+    let p = rondo().with_file_name("casebook");
+    assert!(
+        p.is_file(),
+        "{} is missing: build the workspace first (cargo build --workspace)",
+        p.display()
+    );
+    p
+}
+
 /// The repository root.
 pub fn repo() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))

@@ -45,6 +45,14 @@ impl Archive {
         Ok(Archive { file, shown })
     }
 
+    /// Open an existing archive for reading only (a file the caller may not write, such as
+    /// an orchestrator's read-only input).
+    pub fn open_read(path: &Path) -> Result<Archive> {
+        let shown = path.display().to_string();
+        let file = hdf5::File::open(path).map_err(h5err(&shown, "cannot open"))?;
+        Ok(Archive { file, shown })
+    }
+
     fn group(&self) -> Result<hdf5::Group> {
         self.file
             .group(GROUP)

@@ -9,13 +9,14 @@ use std::path::{Path, PathBuf};
 
 /// Every file of a case folder, as suffixes of `<name>.` where `<name>` is the folder's
 /// own name (docs/casebook.md, "The case folder").
-pub const FILES: [&str; 22] = [
+pub const FILES: [&str; 23] = [
     "control",
     "lattice",
     "orbitals",
     "kpoints",
     "version",
     "density",
+    "density.json",
     "density.prev",
     "status",
     "levels",
@@ -267,6 +268,14 @@ pub fn write_density(path: &Path, d: &Density) -> Result<()> {
          total energy per site in eV",
         &e,
     )
+}
+
+/// Write the case's density: `<name>.density` and the same numbers as
+/// `<name>.density.json` (model-solid's density.json, the same bytes), the form a mixer
+/// of the orchestrator reads and writes.
+pub fn write_case_density(case: &Case, d: &Density) -> Result<()> {
+    write_density(&case.file("density"), d)?;
+    model_solid::io::write_json(&case.file("density.json"), d)
 }
 
 /// Which sub-step ran last, in which iteration (`<name>.status`).

@@ -38,7 +38,7 @@ enum Command {
         /// Start density (density.json).
         #[arg(long)]
         density: PathBuf,
-        /// Start self-energy Σ(iω_n) (.npy, complex128).
+        /// Start self-energy Σ(iω_n): a complex128 .npy, or an archive's /impurity/sigma.
         #[arg(long)]
         sigma: PathBuf,
         /// Volume per site in Å³.
@@ -77,6 +77,10 @@ enum Command {
         /// Start an existing case folder again (its files are replaced; handoff/ is kept).
         #[arg(long)]
         force: bool,
+        /// Keep a case folder made with the same settings and only take the density and Σ
+        /// given into it (how an orchestrator hands a mixed state back each iteration).
+        #[arg(long, conflicts_with = "force")]
+        reuse: bool,
     },
     /// H(k) for the current density; rewrites hamiltonian.npy, eigen, levels.
     Band {
@@ -167,6 +171,7 @@ fn run(cli: Cli) -> Result<()> {
             emax,
             restart_mib,
             force,
+            reuse,
         } => steps::init(
             &case,
             &steps::InitArgs {
@@ -184,6 +189,7 @@ fn run(cli: Cli) -> Result<()> {
                 emax,
                 restart_mib,
                 force,
+                reuse,
             },
         ),
         Command::Band { case } => {

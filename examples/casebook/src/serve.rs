@@ -95,7 +95,7 @@ fn handle(case: &Case, setup: &BandSetup, dir: &Path) -> Result<Vec<(String, u64
     let input = dir.join("in").join(INPUT);
     let density = case::read_density(&input)
         .with_context(|| format!("{}: the hand-off input", input.display()))?;
-    case::write_density(&case.file("density"), &density)?;
+    case::write_case_density(case, &density)?;
     steps::band(case, setup, true)?;
     let out = dir.join("out");
     std::fs::create_dir_all(&out).with_context(|| format!("{}: cannot create", out.display()))?;

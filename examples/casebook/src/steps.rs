@@ -50,6 +50,8 @@ pub struct InitArgs {
     pub restart_mib: u64,
     /// Replace an existing case of the same folder.
     pub force: bool,
+    /// Keep an existing case of the same settings; take in only the density and Σ.
+    pub reuse: bool,
 }
 
 /// The control file's settings.
@@ -160,15 +162,21 @@ pub fn init(dir: &Path, a: &InitArgs) -> Result<()> {
     if a.restart_mib > restart::MAX_MIB {
         bail!("--restart-mib: at most {} MiB", restart::MAX_MIB);
     }
-    if case.file("control").exists() && !a.force {
-        bail!(
-            "{}: already a case folder (it has {}); pass --force to start it again",
-            dir.display(),
-            case.file("control").display()
-        );
-    }
     let density = msio::read_density(&a.density)?;
-    let sigma = msio::read_matsubara(&a.sigma, "the start self-energy")?;
+    let sigma = read_start_sigma(&a.sigma)?;
+    if case.file("control").exists() {
+        if a.reuse {
+            return take_state(&case, a, &density, &sigma);
+        }
+        if !a.force {
+            bail!(
+                "{}: already a case folder (it has {}); pass --force to start it again, or \
+                 --reuse to keep it and take in the density and self-energy given",
+                dir.display(),
+                case.file("control").display()
+            );
+        }
+    }
     std::fs::create_dir_all(dir).with_context(|| format!("{}: cannot create", dir.display()))?;
     write_control(&case, a)?;
     write_kv(
@@ -209,7 +217,7 @@ pub fn init(dir: &Path, a: &InitArgs) -> Result<()> {
             env!("CARGO_PKG_VERSION")
         ),
     )?;
-    case::write_density(&case.file("density"), &density)?;
+    case::write_case_density(&case, &density)?;
     case::write_density(&case.file("density.prev"), &density)?;
     let ar = Archive::create(&case.file("impurity.h5"), &sigma)?;
     ar.flush()?;
@@ -250,6 +258,94 @@ pub fn init(dir: &Path, a: &InitArgs) -> Result<()> {
     journal(&case.file("journal"), "init", "ok")?;
     if let Some(missing) = case::FILES.iter().find(|f| !case.file(f).is_file()) {
         bail!("{}: init did not make {missing}", dir.display());
+    }
+    Ok(())
+}
+
+/// The HDF5 file signature (the first 8 bytes of a file that starts with its superblock).
+const HDF5_SIGNATURE: &[u8; 8] = b"\x89HDF\r\n\x1a\n";
+
+/// Σ(iω_n) for init: a complex128 .npy, or /impurity/sigma of an archive (recognised by
+/// the HDF5 signature, whatever the file name).
+fn read_start_sigma(path: &Path) -> Result<Vec<Complex64>> {
+    let mut head = [0u8; 8];
+    let is_hdf5 = std::fs::File::open(path)
+        .and_then(|mut f| std::io::Read::read_exact(&mut f, &mut head))
+        .is_ok()
+        && &head == HDF5_SIGNATURE;
+    if is_hdf5 {
+        return Archive::open_read(path)?.read_complex("sigma");
+    }
+    msio::read_matsubara(path, "the start self-energy")
+}
+
+/// `init --reuse` of an existing case: the settings must be the case's; the density and
+/// Σ given replace `<name>.density` (and its JSON twin) and `/impurity/sigma` in place;
+/// everything else (log, journal, eigenvalues, restart file) stays. Band runs next.
+fn take_state(case: &Case, a: &InitArgs, density: &Density, sigma: &[Complex64]) -> Result<()> {
+    same_settings(case, a)?;
+    let status = case::read_status(case)?;
+    let archive = case.file("impurity.h5");
+    let ar = Archive::open(&archive)?;
+    let n_w = ar.read_complex("sigma")?.len();
+    if n_w != sigma.len() {
+        bail!(
+            "{}: the self-energy given has {} Matsubara frequencies, the case's /impurity/sigma {n_w}",
+            a.sigma.display(),
+            sigma.len()
+        );
+    }
+    ar.write_complex("sigma", sigma)?;
+    ar.flush()?;
+    case::write_case_density(case, density)?;
+    let mut b = Block::new("load", status.iteration);
+    b.val("f charge", density.n_f, Unit::One)
+        .val("c charge", density.n_c, Unit::One)
+        .val("chemical potential", density.mu, Unit::Ry)
+        .count("matsubara frequencies", sigma.len() as u64);
+    b.append(&case.file("log"))?;
+    case::write_status(
+        case,
+        &Status {
+            iteration: status.iteration,
+            last: if status.iteration == 0 {
+                "init"
+            } else {
+                "update"
+            }
+            .into(),
+        },
+    )?;
+    journal(
+        &case.file("journal"),
+        "init",
+        "reuse: density and sigma taken in",
+    )
+}
+
+/// The settings of `init` against those the case was made with: the same values, or an
+/// error naming the file and the first one that differs.
+fn same_settings(case: &Case, a: &InitArgs) -> Result<()> {
+    let control = Kv::read(&case.file("control"))?;
+    let lattice = Kv::read(&case.file("lattice"))?;
+    let kpoints = Kv::read(&case.file("kpoints"))?;
+    let given = [
+        (&control, "control", "temperature", exact(a.temperature)),
+        (&control, "control", "electrons", exact(a.electrons)),
+        (&control, "control", "u", exact(a.u)),
+        (&control, "control", "solver", a.solver.clone()),
+        (&lattice, "lattice", "volume", exact(a.volume)),
+        (&kpoints, "kpoints", "mesh", a.kmesh.to_string()),
+    ];
+    for (kv, file, key, want) in given {
+        let have = kv.str(key)?;
+        if have != want {
+            bail!(
+                "{}: `{key}` is {have}, but init --reuse was given {want}; a case is reused only \
+                 with the settings it was made with (pass --force to start it again)",
+                case.file(file).display()
+            );
+        }
     }
     Ok(())
 }
@@ -568,7 +664,7 @@ pub fn update(case: &Case, restart_mib: Option<u64>) -> Result<()> {
     let res = update::update(&DEMO, &mesh, &sigma, ctl.beta, ctl.electrons, volume, &prev)
         .with_context(|| format!("{}: density update failed", case.dir.display()))?;
     case::write_density(&case.file("density.prev"), &prev)?;
-    case::write_density(&case.file("density"), &res.density)?;
+    case::write_case_density(case, &res.density)?;
     let m = &res.metrics;
     let rows = [
         ("total", "energy"),
@@ -655,7 +751,7 @@ pub fn restore(case: &Case) -> Result<()> {
     let ar = Archive::open(&case.file("impurity.h5"))?;
     ar.write_complex("sigma", &sigma)?;
     ar.flush()?;
-    case::write_density(&case.file("density"), &density)?;
+    case::write_case_density(case, &density)?;
     let mut b = Block::new("restore", iteration);
     b.val("f charge", density.n_f, Unit::One)
         .val("chemical potential", density.mu, Unit::Ry);

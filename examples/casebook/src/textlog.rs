@@ -106,14 +106,24 @@ pub fn append_synced(path: &Path, text: &str) -> Result<()> {
 
 /// Append one line to the journal: UTC time (seconds since the epoch), step, detail.
 pub fn journal(path: &Path, step: &str, detail: &str) -> Result<()> {
+    append_synced(path, &journal_line(step, detail))
+}
+
+/// One journal line: the time and process id of this invocation. With `SOURCE_DATE_EPOCH`
+/// set (the reproducible-builds convention: seconds since 1970), that time and `pid=-`
+/// instead, so that running the same steps again gives a byte-identical case folder.
+fn journal_line(step: &str, detail: &str) -> String {
+    if let Some(t) = std::env::var("SOURCE_DATE_EPOCH")
+        .ok()
+        .and_then(|v| v.trim().parse::<u64>().ok())
+    {
+        return format!("{t}.000 {step} pid=- {detail}\n");
+    }
     let now = std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
         .map(|d| d.as_secs_f64())
         .unwrap_or(0.0);
-    append_synced(
-        path,
-        &format!("{now:.3} {step} pid={} {detail}\n", std::process::id()),
-    )
+    format!("{now:.3} {step} pid={} {detail}\n", std::process::id())
 }
 
 #[cfg(test)]

@@ -217,3 +217,164 @@ fn restart_files_have_the_chosen_size_follow_from_the_state_and_restore_it() {
     );
     ok(&casebook(), tmp.path(), &["band", "r1"]);
 }
+
+/// The arguments of `init` for `name` with the SMALL settings and the given start files.
+fn init_args<'a>(name: &'a str, density: &'a str, sigma: &'a str, volume: &'a str) -> Vec<&'a str> {
+    vec![
+        "init",
+        name,
+        "--density",
+        density,
+        "--sigma",
+        sigma,
+        "--volume",
+        volume,
+        "--kmesh",
+        SMALL.kmesh,
+        "--temperature",
+        SMALL.temperature,
+        "--electrons",
+        SMALL.electrons,
+        "--u",
+        SMALL.u,
+        "--solver",
+        SMALL.solver,
+        "--emin",
+        "-10",
+        "--emax",
+        "10",
+        "--reuse",
+    ]
+}
+
+#[test]
+fn init_reuse_keeps_the_case_and_takes_in_a_mixed_density_and_sigma() {
+    let tmp = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let cb = casebook();
+    let case = init_case(tmp.path(), "re", &SMALL, &[]);
+    for s in ["band", "project", "solve", "update"] {
+        ok(&cb, tmp.path(), &[s, "re"]);
+    }
+    let (log, eigen, h5) = (
+        file(&case, "log"),
+        file(&case, "eigen"),
+        file(&case, "impurity.h5"),
+    );
+    let (log_before, eigen_before, h5_ino) = (bytes(&log), bytes(&eigen), inode(&h5));
+    // the density.json twin holds the density's numbers
+    assert_same(
+        "n_f",
+        json(&file(&case, "density.json"), "n_f"),
+        kv(&file(&case, "density"), "n_f"),
+    );
+    // a "mixed" state: a density.json and an archive (read only, as an orchestrator places it)
+    let mixed = tmp.path().join("mixed.h5");
+    std::fs::copy(&h5, &mixed).unwrap_or_else(|e| panic!("{e}"));
+    let mut perm = std::fs::metadata(&mixed)
+        .unwrap_or_else(|e| panic!("{e}"))
+        .permissions();
+    perm.set_readonly(true);
+    std::fs::set_permissions(&mixed, perm).unwrap_or_else(|e| panic!("{e}"));
+    let sigma_mixed = h5_complex(&case, "sigma");
+    let dj = tmp.path().join("mixed.json");
+    std::fs::write(
+        &dj,
+        "{\"n_f\": 0.95, \"n_c\": 0.85, \"mu\": -0.25, \"energy\": -1.7}\n",
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let (d, m) = (dj.display().to_string(), mixed.display().to_string());
+    // first the start's (zero) Σ from a .npy, then the archive's
+    let st = start();
+    let (d0, s0) = (st.join("density.json"), st.join("sigma.npy"));
+    let (d0, s0) = (d0.display().to_string(), s0.display().to_string());
+    ok(&cb, tmp.path(), &init_args("re", &d0, &s0, SMALL.volume));
+    assert_bits_eq(
+        "sigma from the .npy",
+        &h5_complex(&case, "sigma"),
+        &npy_complex(&st.join("sigma.npy")),
+    );
+    ok(&cb, tmp.path(), &init_args("re", &d, &m, SMALL.volume));
+    assert_eq!(kv(&file(&case, "density"), "n_f"), 0.95);
+    assert_eq!(kv(&file(&case, "density"), "mu"), -0.25);
+    assert_bits_eq("sigma taken in", &h5_complex(&case, "sigma"), &sigma_mixed);
+    assert_eq!(inode(&h5), h5_ino, "the archive is rewritten in place");
+    assert_eq!(
+        bytes(&eigen),
+        eigen_before,
+        "the eigenvalues stay for the warm start"
+    );
+    let after = bytes(&log);
+    assert!(
+        after.starts_with(&log_before) && after.len() > log_before.len(),
+        "the log is appended"
+    );
+    ok(&cb, tmp.path(), &["band", "re"]);
+    // the settings must be the case's
+    let out = run(&cb, tmp.path(), &init_args("re", &d0, &s0, "29"));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{err}");
+    assert!(
+        err.contains("re.lattice") && err.contains("`volume` is 2.8e1"),
+        "{err}"
+    );
+    // without --reuse an existing case is refused
+    let mut plain = init_args("re", &d0, &s0, SMALL.volume);
+    plain.pop();
+    let out = run(&cb, tmp.path(), &plain);
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains("--reuse"),
+        "{out:?}"
+    );
+}
+
+#[test]
+fn with_source_date_epoch_the_same_steps_give_byte_identical_case_folders() {
+    let tmp = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let cb = casebook();
+    for name in ["e1", "e2"] {
+        init_case(tmp.path(), name, &SMALL, &["--restart-mib", "0"]);
+        for s in ["band", "project", "solve", "update"] {
+            let out = std::process::Command::new(&cb)
+                .args([s, name])
+                .current_dir(tmp.path())
+                .env("SOURCE_DATE_EPOCH", "0")
+                .output()
+                .unwrap_or_else(|e| panic!("{e}"));
+            assert!(out.status.success(), "{out:?}");
+        }
+    }
+    // init ran without the variable: its journal line differs; every later one is the same
+    let (j1, j2) = (
+        bytes(&file(&tmp.path().join("e1"), "journal")),
+        bytes(&file(&tmp.path().join("e2"), "journal")),
+    );
+    let tail = |j: &[u8]| {
+        String::from_utf8_lossy(j)
+            .lines()
+            .skip(1)
+            .map(str::to_string)
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(tail(&j1), tail(&j2));
+    assert!(
+        tail(&j1)
+            .iter()
+            .all(|l| l.starts_with("0.000 ") && l.contains(" pid=- ")),
+        "{:?}",
+        tail(&j1)
+    );
+    for suffix in [
+        "log",
+        "impurity.h5",
+        "density",
+        "density.json",
+        "eigen",
+        "energies",
+    ] {
+        assert_eq!(
+            bytes(&file(&tmp.path().join("e1"), suffix)),
+            bytes(&file(&tmp.path().join("e2"), suffix)),
+            "{suffix}"
+        );
+    }
+}

@@ -285,6 +285,7 @@ impl ArtifactStore {
             entries,
         };
         let (hash, size) = self.put_bytes(manifest.to_text().as_bytes())?;
+        crate::failpoint::hit(crate::failpoint::Failpoint::FolderSnapshot);
         Ok(StoredFolder {
             hash,
             size,

@@ -682,6 +682,7 @@ mod tests {
                 keep_scratch: false,
                 grace: std::time::Duration::from_secs(1),
                 allocation: None,
+                accept_revision: false,
             };
             let summary = engine::run(
                 &campaign,

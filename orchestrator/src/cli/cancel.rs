@@ -95,24 +95,28 @@ async fn cancel_offline(ws: &Path, _lock: store::WorkspaceLock, reason: &str) ->
     let outstanding = overview::outstanding_attempts(&pool).await?;
     // The executors' completions are not read: no orchestrator runs to settle them.
     let (tx, _rx) = tokio::sync::mpsc::unbounded_channel();
-    let mut n = 0;
+    // Every outstanding attempt is ended first, then all is recorded in one transaction: a
+    // crash in between leaves them outstanding, and the next `rondo cancel` (or run) finds
+    // them ended.
+    let mut script = store::Script::new();
+    let n = outstanding.len();
     for a in outstanding {
         if let Err(e) = end_attempt(&a, &ws_id, reason, &tx).await {
             eprintln!("rondo: attempt {}: {e}", a.id);
         }
-        overview::mark_attempt_cancelled(&pool, a.id, reason).await?;
-        n += 1;
+        script.attempt_cancelled(a.id, reason);
     }
-    overview::cancel_open_points(&pool, reason).await?;
-    store::event(
-        &pool,
+    script.open_points_cancelled(reason);
+    script.event(
         "cancel",
         None,
         None,
         None,
         &format!("rondo cancel: {reason}; {n} outstanding attempt(s) cancelled"),
-    )
-    .await?;
+    );
+    script
+        .commit(&pool, crate::failpoint::Failpoint::CancelRecorded)
+        .await?;
     pool.close().await;
     eprintln!("rondo: no orchestrator was running; cancelled {n} outstanding attempt(s)");
     Ok(EXIT_OK)

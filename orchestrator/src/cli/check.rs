@@ -1,24 +1,80 @@
 //! `rondo check` (validate a campaign file and print its plan) and `rondo schema` (the JSON
 //! Schema of the campaign file).
 //!
-//! Owns the plan's text; reads only the validated campaign, never a workspace or the store.
+//! Owns the plan's text; reads the validated campaign and, when the campaign already has a
+//! workspace, that workspace's revisions (read-only), to say what an edit would change
+//! before anything runs.
 
 use anyhow::Result;
 use std::fmt::Write;
 
-use super::output::emit;
-use super::workspace::load;
+use super::output::{emit, emit_json};
+use super::workspace::{absolute, load};
 use super::{CheckArgs, EXIT_OK};
+use crate::engine;
 use crate::spec::{
     self, Campaign, Combine, Compare, PointSelection, PointsRead, RuleTest, Source, Stage,
     StageKind,
 };
+use crate::store;
 
-/// `rondo check FILE`: the campaign file's warnings on stderr, its plan on stdout.
-pub fn run(a: CheckArgs) -> Result<u8> {
+/// `rondo check FILE`: the campaign file's warnings on stderr, its plan on stdout and, when
+/// its workspace exists, how the file's text compares with the latest recorded revision.
+pub async fn run(a: CheckArgs) -> Result<u8> {
     let c = load(&a.file)?;
     eprint!("{}", c.warnings_text());
-    emit(&plan_text(&c));
+    let ws = absolute(
+        a.workspace
+            .clone()
+            .unwrap_or_else(|| engine::default_workspace(&a.file)),
+    )?;
+    let revision = if ws.join(store::DB_FILE).is_file() {
+        let pool = store::open_existing(&ws).await?;
+        let r = engine::revise::classify(&pool, &c, a.accept_revision).await?;
+        pool.close().await;
+        Some(r)
+    } else {
+        None
+    };
+    if a.json {
+        let doc = serde_json::json!({
+            "campaign": c.name,
+            "file": c.file.display().to_string(),
+            "points": c.points.len(),
+            "workspace": revision.as_ref().map(|_| ws.display().to_string()),
+            "unchanged": revision.as_ref().map(|(same, _)| *same),
+            "revision": revision.as_ref().map(|(same, r)| {
+                if *same { serde_json::json!({ "number": r.from }) } else { serde_json::json!(r) }
+            }),
+        });
+        emit_json(&doc)?;
+        return Ok(EXIT_OK);
+    }
+    let mut text = plan_text(&c);
+    match &revision {
+        Some((true, r)) => {
+            let _ = writeln!(
+                text,
+                "  workspace {}: the file is its revision {}",
+                ws.display(),
+                r.from
+            );
+        }
+        Some((false, r)) => {
+            let _ = writeln!(text, "  workspace {}:", ws.display());
+            for line in r.text().lines() {
+                let _ = writeln!(text, "  {line}");
+            }
+            if r.needs_acceptance() && !a.accept_revision {
+                let _ = writeln!(
+                    text,
+                    "  `rondo run` refuses this revision; `rondo run --accept-revision` accepts it"
+                );
+            }
+        }
+        None => {}
+    }
+    emit(&text);
     Ok(EXIT_OK)
 }
 

@@ -212,6 +212,16 @@ struct PlanArgs {
 struct CheckArgs {
     /// The campaign file.
     file: PathBuf,
+    /// Workspace to classify an edited campaign file against (default: <campaign>.rondo
+    /// beside the file, when it exists).
+    #[arg(long)]
+    workspace: Option<PathBuf>,
+    /// Classify as `rondo run --accept-revision` would (physics changes accepted).
+    #[arg(long)]
+    accept_revision: bool,
+    /// Machine-readable output: the revision's classification (docs/json-output.md).
+    #[arg(long)]
+    json: bool,
 }
 
 // The flags of `rondo run` (its help text is the variant's).
@@ -243,6 +253,11 @@ struct RunArgs {
     /// Seconds between two scheduler polls (slurm, pbs; be kind to the controller).
     #[arg(long, default_value_t = 30)]
     poll_interval: u64,
+    /// Accept an edited campaign file that changes what its points compute (parameters,
+    /// programs, commands, inputs, the cycle): points that have not started run the new
+    /// text, the values of started points run again as new points.
+    #[arg(long)]
+    accept_revision: bool,
     /// No progress output.
     #[arg(short, long)]
     quiet: bool,
@@ -462,7 +477,7 @@ fn init_logging(verbose: u8) {
 /// One function per subcommand; each returns its exit code.
 async fn dispatch(cmd: Command) -> Result<u8> {
     match cmd {
-        Command::Check(a) => check::run(a),
+        Command::Check(a) => check::run(a).await,
         Command::Run(a) => run::run(a).await,
         Command::Status(a) => status::run(a).await,
         Command::Cancel(a) => cancel::run(a).await,

@@ -45,6 +45,7 @@ pub async fn run(a: RunArgs) -> Result<u8> {
             let env = rondo_adapters::slurm::allocation::AllocationEnv::from_env();
             env.in_allocation().then_some(env)
         },
+        accept_revision: a.accept_revision,
     };
     let summary = match engine::run(&c, &opts, Progress::for_stderr(a.quiet)).await {
         Ok(summary) => summary,

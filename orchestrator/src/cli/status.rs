@@ -39,7 +39,13 @@ pub async fn status(ws: &Path) -> Result<Value> {
     let mut counts = Map::new();
     let costs = crate::query::usage::costs(&pool).await?;
     for row in overview::points(&pool, ws).await? {
-        let n = counts.entry(row.state.as_str()).or_insert(json!(0));
+        // A retired point counts as retired, whatever state it stopped in.
+        let key = if row.retired.is_some() {
+            "retired"
+        } else {
+            row.state.as_str()
+        };
+        let n = counts.entry(key).or_insert(json!(0));
         *n = json!(n.as_u64().unwrap_or(0) + 1);
         let usage = costs.point_json(&row.id);
         let mut doc = point_doc(&pool, row).await?;
@@ -50,6 +56,18 @@ pub async fn status(ws: &Path) -> Result<Value> {
     let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
         .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
     let eos = crate::query::analysis::latest_eos(&pool, &artifacts).await?;
+    let revisions: Vec<Value> = store::revisions::list(&pool)
+        .await?
+        .into_iter()
+        .map(|r| {
+            json!({
+                "number": r.number,
+                "spec_blake3": r.spec_blake3,
+                "created_at": r.created_at,
+                "accepted_physics": r.accepted,
+            })
+        })
+        .collect();
     pool.close().await;
     Ok(json!({
         "campaign": camp.name,
@@ -58,6 +76,8 @@ pub async fn status(ws: &Path) -> Result<Value> {
         "created_at": camp.created_at,
         "rondo_version": camp.rondo_version,
         "orchestrator": running,
+        "revision": revisions.last().map(|r| r["number"].clone()),
+        "revisions": revisions,
         "counts": counts,
         "points": points,
         "eos": eos,
@@ -83,6 +103,9 @@ async fn point_doc(pool: &SqlitePool, row: overview::PointRow) -> Result<Value> 
     }
     let averages = averages(pool, &id, &metrics).await?;
     let attempts = overview::attempt_count(pool, &id).await?;
+    let retired = row
+        .retired
+        .map(|(n, why)| json!({ "in_revision": n, "why": why }));
     Ok(json!({
         "id": id,
         "index": row.index,
@@ -95,6 +118,8 @@ async fn point_doc(pool: &SqlitePool, row: overview::PointRow) -> Result<Value> 
         "errors": errors,
         "averages": averages,
         "attempts": attempts,
+        "revision": row.revision,
+        "retired": retired,
     }))
 }
 
@@ -147,6 +172,14 @@ fn status_text(s: &Value) -> String {
     );
     if let Some(o) = s["orchestrator"].as_str() {
         let _ = writeln!(out, "  running now: {o}");
+    }
+    let revisions = s["revisions"].as_array().map_or(0, Vec::len);
+    if revisions > 1 {
+        let _ = writeln!(
+            out,
+            "  campaign file at revision {} ({revisions} revisions recorded)",
+            s["revision"]
+        );
     }
     let empty = Vec::new();
     for p in s["points"].as_array().unwrap_or(&empty) {
@@ -215,9 +248,20 @@ fn point_lines(out: &mut String, p: &Value) {
         0 => "before its first iteration".to_string(),
         n => format!("at iteration {n}"),
     };
+    let retired = match &p["retired"] {
+        Value::Null => String::new(),
+        r => format!(
+            "retired in revision {} ({}), ",
+            r["in_revision"],
+            match r["why"].as_str() {
+                Some("physics") => "its physics changed; its values run again as a new point",
+                _ => "its values left the sweep",
+            }
+        ),
+    };
     let _ = writeln!(
         out,
-        "  {} {values}: {} {at}{window}{}",
+        "  {} {values}: {retired}{} {at}{window}{}",
         p["id"].as_str().unwrap_or(""),
         p["state"].as_str().unwrap_or(""),
         p["reason"]

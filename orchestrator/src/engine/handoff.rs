@@ -56,7 +56,7 @@ impl Engine<'_> {
         let started = Utc::now();
         let host = self.host.clone();
         self.ledger
-            .write(|s| {
+            .write(Failpoint::HandoffStarted, |s| {
                 s.new_attempts(vec![row]);
                 s.builtin_started(id, store::time_text(started), host.clone());
             })
@@ -91,7 +91,7 @@ impl Engine<'_> {
         let point_id = self.points[fl.point].spec.id.clone();
         let (by, at) = (process.started_by, store::time_text(process.started_at));
         self.ledger
-            .write(|s| {
+            .write(Failpoint::HandoffRecorded, |s| {
                 s.handoff(id, number, pid, by, at.clone());
                 s.event(
                     "handoff",

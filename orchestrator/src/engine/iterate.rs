@@ -3,6 +3,15 @@
 
 use super::*;
 
+/// The failpoints of a verdict recorded (or held back) with the last stage's success: the
+/// iteration closed and, when the verdict stops the point, the point stopped.
+pub(super) fn verdict_failpoints(v: &Verdict) {
+    failpoint::hit(Failpoint::IterationClosed);
+    if v.fate.is_some() {
+        failpoint::hit(Failpoint::PointStopped);
+    }
+}
+
 /// Write a verdict: the iteration is good (with the rules' evaluation, `stop_json`), and
 /// either the point stops or its next iteration begins.
 pub(super) fn record_verdict(
@@ -68,7 +77,7 @@ impl Engine<'_> {
         self.points[p].phase = PointPhase::Done;
         let point_id = self.points[p].spec.id.clone();
         self.ledger
-            .write(|s| {
+            .write(Failpoint::PointStopped, |s| {
                 s.iteration_ended(&point_id, iteration, IterationState::Failed);
                 s.point_state(&point_id, PointState::Failed, Some(reason));
                 for kind in event.into_iter().chain(["point-failed"]) {
@@ -139,8 +148,13 @@ impl Engine<'_> {
         let point_id = self.points[p].spec.id.clone();
         let stop_json = serde_json::to_string(&v.decision)?;
         self.ledger
-            .write(|s| record_verdict(s, &point_id, &v, stop_json))
+            .write(Failpoint::IterationClosed, |s| {
+                record_verdict(s, &point_id, &v, stop_json)
+            })
             .await?;
+        if v.fate.is_some() {
+            failpoint::hit(Failpoint::PointStopped);
+        }
         self.apply_verdict(p, v);
         self.retain(p).await
     }

@@ -137,6 +137,7 @@ impl Engine<'_> {
             program_version: built.version.clone(),
             parameters_json: self.attempt_parameters(&point, &scheduled).to_string(),
             seed: uses_seed.then(|| seed.to_string()),
+            revision: self.revision,
             created_at: store::now(),
             host: local_host,
             env_json: Some(if stage.env.is_empty() {
@@ -161,6 +162,7 @@ impl Engine<'_> {
         };
         self.points[p].outstanding = Some(id);
         self.inflight.insert(id, fl.clone());
+        failpoint::hit(Failpoint::AttemptPlanned);
         if stage.resident {
             self.run_handoff(row, fl, &stage, argv, inputs).await
         } else if stage.kind.is_builtin() {
@@ -455,7 +457,7 @@ impl Engine<'_> {
         let started = Utc::now();
         let host = self.host.clone();
         self.ledger
-            .write(|s| {
+            .write(Failpoint::BuiltinStarted, |s| {
                 s.new_attempts(vec![row]);
                 s.builtin_started(id, store::time_text(started), host.clone());
             })
@@ -545,7 +547,7 @@ impl Engine<'_> {
             stage.timeout_factor
         );
         self.ledger
-            .write(|s| {
+            .write(Failpoint::TimeLimitLengthened, |s| {
                 s.event(
                     "time-limit-lengthened",
                     Some(point),
@@ -571,7 +573,9 @@ impl Engine<'_> {
         if local {
             self.ledger.plan_later(row);
         } else {
-            self.ledger.write(|s| s.new_attempts(vec![row])).await?;
+            self.ledger
+                .write(Failpoint::BatchPlanned, |s| s.new_attempts(vec![row]))
+                .await?;
         }
         let point = &self.points[fl.point].spec;
         // The stage's own variables first; rondo's (RONDO_*, which `env:` may not set) last.
@@ -596,6 +600,7 @@ impl Engine<'_> {
         };
         match self.executor_for(fl.on_host).launch(req).await {
             Ok(handle) if local => {
+                failpoint::hit(Failpoint::ChildStarted);
                 self.unrecorded.insert(
                     id,
                     UnrecordedLaunch {
@@ -606,8 +611,11 @@ impl Engine<'_> {
                 );
             }
             Ok(handle) => {
+                failpoint::hit(Failpoint::ChildStarted);
                 self.ledger
-                    .write(|s| s.attempt_submitted(id, handle.id, handle.host, store::now()))
+                    .write(Failpoint::JobSubmitted, |s| {
+                        s.attempt_submitted(id, handle.id, handle.host, store::now())
+                    })
                     .await?;
             }
             Err(e) => {

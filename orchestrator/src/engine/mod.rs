@@ -39,6 +39,7 @@ use tokio::sync::mpsc;
 
 use crate::artifacts::{hash_file, ArtifactStore};
 use crate::builtins;
+use crate::failpoint::{self, Failpoint};
 use crate::progress::Progress;
 use crate::scratch;
 use crate::spec::{Campaign, Placement, PointSpec, Section, Source, Stage, StageKind};
@@ -52,11 +53,12 @@ mod iterate;
 mod launch;
 mod programs;
 mod resume;
+pub mod revise;
 mod settle;
 mod shutdown;
 mod workspace;
 
-use iterate::record_verdict;
+use iterate::{record_verdict, verdict_failpoints};
 use programs::ProgramCache;
 use settle::{check_outputs, Checked, OutputJob};
 use store::attempts::{FolderMembers, LaunchFields, NewAttempt, StoredOutput};
@@ -133,6 +135,8 @@ pub struct RunOptions {
     pub grace: Duration,
     /// Set when rondo runs inside a self-continuing Slurm allocation (`rondo submit`).
     pub allocation: Option<rondo_adapters::slurm::allocation::AllocationEnv>,
+    /// Accept a revision of the campaign file that changes its physics (`--accept-revision`).
+    pub accept_revision: bool,
 }
 
 /// How a run ended.
@@ -415,6 +419,8 @@ struct Engine<'a> {
     residents: HashMap<(usize, usize), crate::resident::Process>,
     /// Hand-offs to resident programs being awaited, per attempt.
     handoffs: HashMap<i64, handoff::Handoff>,
+    /// The campaign file's revision this run goes on under (recorded with every attempt).
+    revision: i64,
 }
 
 /// Run (or continue) a campaign in its workspace until every point stops, a signal arrives,
@@ -422,7 +428,14 @@ struct Engine<'a> {
 pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> Result<RunSummary> {
     let paths = Paths::of(&opts.workspace);
     let before_lock = store::now();
-    let ws = prepare_workspace(campaign, &paths).await?;
+    let ws = prepare_workspace(campaign, &paths, opts.accept_revision).await?;
+    // The campaign under its revision: the points with the store's ids (a revision adds
+    // points after the recorded ones, whatever their place in the sweep).
+    let revised = Campaign {
+        points: ws.points.clone(),
+        ..campaign.clone()
+    };
+    let campaign = &revised;
     // A cancel request left from before this run is void: running again means go on. One
     // written since this run took the lock (`rondo cancel` found it holding it) stands.
     if CancelRequest::read(&paths.cancel_request).is_some_and(|r| r.at < before_lock) {
@@ -484,6 +497,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         after_failed: 0,
         residents: HashMap::new(),
         handoffs: HashMap::new(),
+        revision: ws.revision,
     };
     engine
         .event(
@@ -686,7 +700,9 @@ impl Engine<'_> {
         detail: &str,
     ) -> Result<()> {
         self.ledger
-            .write(|s| s.event(kind, point, iteration, attempt, detail))
+            .write(Failpoint::EventRecorded, |s| {
+                s.event(kind, point, iteration, attempt, detail)
+            })
             .await
     }
 

@@ -38,7 +38,7 @@ impl Engine<'_> {
             self.points.push(run);
         }
         script.iterations_begun(&new_iterations);
-        self.ledger.commit(script).await
+        self.ledger.commit(script, Failpoint::PointsRestored).await
     }
 
     /// One point's place: done, or where its iteration stands; the writes that resuming it
@@ -258,7 +258,7 @@ impl Engine<'_> {
                     h.id
                 );
                 self.ledger
-                    .write(|s| {
+                    .write(Failpoint::AttemptAdopted, |s| {
                         s.attempt_adopted(id, h.id.clone(), h.host.clone());
                         s.event("attempt-adopted", Some(point), it, Some(id), &detail);
                     })
@@ -267,20 +267,26 @@ impl Engine<'_> {
                 self.inflight.insert(id, fl);
             }
             Reattached::Active => {
-                self.event(
-                    "attempt-adopted",
-                    Some(point),
-                    it,
-                    Some(id),
-                    "still queued or running",
-                )
-                .await?;
+                self.ledger
+                    .write(Failpoint::AttemptAdopted, |s| {
+                        s.event(
+                            "attempt-adopted",
+                            Some(point),
+                            it,
+                            Some(id),
+                            "still queued or running",
+                        )
+                    })
+                    .await?;
                 self.points[p].outstanding = Some(id);
                 self.inflight.insert(id, fl);
             }
             Reattached::Finished(c) => {
                 let why = "finished while no orchestrator watched";
-                self.event("attempt-adopted", Some(point), it, Some(id), why)
+                self.ledger
+                    .write(Failpoint::AttemptAdopted, |s| {
+                        s.event("attempt-adopted", Some(point), it, Some(id), why)
+                    })
                     .await?;
                 self.points[p].outstanding = Some(id);
                 self.inflight.insert(id, fl);

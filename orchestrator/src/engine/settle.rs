@@ -43,6 +43,7 @@ pub(super) fn stderr_tail(workdir: &Path) -> String {
 
 impl Engine<'_> {
     pub(super) async fn on_completion(&mut self, c: Completion) -> Result<()> {
+        failpoint::hit(Failpoint::ChildEnded);
         let Some(fl) = self.inflight.get(&c.attempt_id).cloned() else {
             tracing::warn!(
                 attempt = c.attempt_id,
@@ -274,8 +275,14 @@ impl Engine<'_> {
         };
         if short && held + 1 < BATCH_MAX {
             self.ledger.hold(script, held + 1);
+            failpoint::hit(Failpoint::SuccessRecorded);
         } else {
-            self.ledger.commit(script).await?;
+            self.ledger
+                .commit(script, Failpoint::SuccessRecorded)
+                .await?;
+        }
+        if let Some(v) = &verdict {
+            verdict_failpoints(v);
         }
         if let Some(ev) = done.event {
             self.progress
@@ -315,7 +322,7 @@ impl Engine<'_> {
         let point = fl.map(|fl| (fl, self.points[fl.point].spec.id.clone()));
         let usage = self.usage.remove(&id);
         self.ledger
-            .write(|s| {
+            .write(Failpoint::AttemptFailed, |s| {
                 s.attempt_ended_badly(id, f, launch);
                 if let Some(u) = &usage {
                     s.attempt_usage(id, u, &u.source);
@@ -399,7 +406,7 @@ impl Engine<'_> {
         }
         let launches: Vec<(i64, UnrecordedLaunch)> = self.unrecorded.drain().collect();
         self.ledger
-            .write(|s| {
+            .write(Failpoint::LaunchesRecorded, |s| {
                 for (id, l) in launches {
                     s.attempt_running(id, l.handle_id, l.host, l.started_at);
                 }
@@ -544,6 +551,7 @@ impl OutputJob {
                 stored.with_context(|| format!("{}: cannot store the output", path.display()))?;
             outs.push((role, h, size, file));
         }
+        failpoint::hit(Failpoint::OutputStored);
         Ok(Stored::All(outs, folders))
     }
 }

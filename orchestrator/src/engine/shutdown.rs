@@ -152,7 +152,7 @@ impl Engine<'_> {
                 .map(|p| p.spec.id.clone())
                 .collect();
             self.ledger
-                .write(|s| {
+                .write(Failpoint::RunCancelled, |s| {
                     for id in &active {
                         s.point_state(id, PointState::Cancelled, Some(why));
                     }

@@ -1,5 +1,5 @@
-//! Creating a workspace's records at the first run (campaign row, points, start files) and
-//! checking at every later run that the workspace belongs to the campaign file.
+//! Creating a workspace's records at the first run (campaign row, points, start files) and,
+//! at every later run, settling which revision of the campaign file it goes on under.
 
 use super::*;
 
@@ -17,7 +17,15 @@ pub(super) fn new_workspace_id(root: &Path) -> String {
 /// Create the workspace records of a campaign (first run) or check that an existing
 /// workspace belongs to this campaign file. Start files are hashed before anything is
 /// written, so a missing start file leaves no workspace behind.
-pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<PreparedWorkspace> {
+///
+/// An edited campaign file is classified against the latest revision (`revise`): refused
+/// with the diff when it changes the physics and `accept` is not given, else recorded as
+/// the next revision before anything runs.
+pub async fn prepare_workspace(
+    campaign: &Campaign,
+    paths: &Paths,
+    accept: bool,
+) -> Result<PreparedWorkspace> {
     for (name, file) in &campaign.start {
         if !file.is_file() && !file.is_dir() {
             bail!(
@@ -44,19 +52,13 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
         )
     })?;
     let hash = spec_hash(&campaign.text);
+    let mut revised = super::revise::Revised {
+        number: 1,
+        points: campaign.points.clone(),
+    };
     let workspace_id = match store::campaign_row(&pool).await? {
         Some(row) => {
-            if row.spec_blake3 != hash {
-                // Bad input (exit 2): the file, not the machine, is at fault.
-                bail!(crate::spec::BadInput(format!(
-                    "{}: this workspace was made from a different campaign file (BLAKE3 {} at \
-                     its first run, {} now); restore the file, or run the changed campaign in \
-                     a new workspace with --workspace",
-                    paths.root.display(),
-                    row.spec_blake3.get(..12).unwrap_or(&row.spec_blake3),
-                    &hash[..12]
-                )));
-            }
+            revised = super::revise::settle_revision(&pool, campaign, accept).await?;
             row.workspace_id
         }
         None => {
@@ -112,6 +114,8 @@ pub async fn prepare_workspace(campaign: &Campaign, paths: &Paths) -> Result<Pre
         pool,
         artifacts,
         workspace_id,
+        revision: revised.number,
+        points: revised.points,
         _lock: lock,
     })
 }
@@ -164,6 +168,10 @@ pub struct PreparedWorkspace {
     pub artifacts: ArtifactStore,
     /// The id children are tagged with.
     pub workspace_id: String,
+    /// The campaign file's revision this run goes on under.
+    pub revision: i64,
+    /// The campaign's points under that revision, with the store's ids.
+    pub points: Vec<PointSpec>,
     _lock: store::WorkspaceLock,
 }
 

@@ -242,6 +242,12 @@ impl Doc {
         if let Some(x) = r.exit_status {
             o.insert("rondo:exitStatus".into(), json!(x));
         }
+        if let Some(rev) = &r.revision {
+            o.insert("rondo:revision".into(), json!(rev.number));
+            if let Some(h) = &rev.spec_blake3 {
+                o.insert("rondo:revisionBlake3".into(), json!(h));
+            }
+        }
         for (k, v) in &r.environment {
             o.insert(format!("rondo:env.{}", local(k)), json!(v));
         }

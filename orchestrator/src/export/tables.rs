@@ -89,7 +89,8 @@ impl Sweep {
     async fn read(pool: &SqlitePool, fixed: &[&str]) -> Result<Sweep> {
         let mut axes: Vec<String> = Vec::new();
         let mut parsed = Vec::new();
-        for (id, json) in points::values(pool).await? {
+        // Every point: the metrics table holds every attempt, retired points' too.
+        for (id, json) in points::values_with_retired(pool).await? {
             let v: serde_json::Map<String, Value> = serde_json::from_str(&json)
                 .with_context(|| format!("point {id}: its recorded sweep values do not parse"))?;
             for k in v.keys() {

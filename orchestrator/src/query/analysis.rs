@@ -379,6 +379,7 @@ pub async fn record_eos(
     )
     .await?;
     tx.commit().await?;
+    crate::failpoint::hit(crate::failpoint::Failpoint::AnalysisRecorded);
     Ok(doc)
 }
 

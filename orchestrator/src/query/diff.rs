@@ -31,6 +31,8 @@ pub struct PointSide {
     pub values: Value,
     /// Point state.
     pub state: String,
+    /// The campaign file's revisions its succeeded attempts ran under.
+    pub revisions: Vec<i64>,
 }
 
 /// A named value that differs (`None`: absent on that side).
@@ -163,6 +165,7 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
             .with_context(|| format!("point {point}: malformed values_json"))?,
         state: state.to_string(),
         point: point.clone(),
+        revisions: Vec::new(),
     };
     let mut d = PointData {
         side,
@@ -177,6 +180,9 @@ async fn load_point(pool: &SqlitePool, spec: &str) -> Result<PointData> {
     for r in attempts::of_point(pool, &point).await? {
         if r.state != AttemptState::Succeeded {
             continue;
+        }
+        if !d.side.revisions.contains(&r.revision) {
+            d.side.revisions.push(r.revision);
         }
         d.programs.entry(r.stage.clone()).or_default().insert(
             r.iteration,

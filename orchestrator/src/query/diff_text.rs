@@ -65,6 +65,18 @@ impl PointDiff {
         let section = |s: &mut String, title: &str, empty: bool| {
             let _ = writeln!(s, "\n{title}{}", if empty { ": same" } else { ":" });
         };
+        let revs = |r: &[i64]| {
+            r.iter()
+                .map(|n| n.to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        };
+        let _ = writeln!(
+            s,
+            "\ncampaign file revisions: A ran under {}, B under {}",
+            revs(&self.a.revisions),
+            revs(&self.b.revisions)
+        );
         section(&mut s, "sweep values", self.sweep_values.is_empty());
         for d in &self.sweep_values {
             let _ = writeln!(s, "  {:<24} A {:<16} B {}", d.name, show(&d.a), show(&d.b));

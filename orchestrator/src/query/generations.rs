@@ -74,6 +74,7 @@ pub async fn load_report(
             .with_context(|| format!("report {id}: malformed options_json"))?,
         seed: None,
         rondo_version: r.rondo_version,
+        revision: None,
         environment: Default::default(),
         handoff: None,
         inputs: Default::default(),

@@ -89,6 +89,9 @@ pub struct AttemptRecord {
     pub seed: Option<String>,
     /// rondo version that ran it.
     pub rondo_version: String,
+    /// The campaign file's revision it ran under (none for a report).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub revision: Option<RevisionRef>,
     /// The allow-listed environment passed to it (docs/provenance.md), name → value.
     #[serde(skip_serializing_if = "BTreeMap::is_empty")]
     pub environment: BTreeMap<String, String>,
@@ -105,6 +108,15 @@ pub struct AttemptRecord {
     /// For a report: the attempts whose metrics it read.
     #[serde(skip_serializing_if = "Vec::is_empty")]
     pub sources: Vec<i64>,
+}
+
+/// A revision of the campaign file, as an attempt names it.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct RevisionRef {
+    /// 1, 2, ...
+    pub number: i64,
+    /// BLAKE3 of its text (the text is kept in the workspace's `revisions`).
+    pub spec_blake3: Option<String>,
 }
 
 /// A campaign start file reached by a lineage.
@@ -173,6 +185,10 @@ pub async fn load_attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRecord> {
         parameters: opt_json(&r.parameters_json, "parameters_json", id)?,
         seed: r.seed,
         rondo_version: r.rondo_version,
+        revision: Some(RevisionRef {
+            number: r.revision,
+            spec_blake3: crate::store::revisions::blake3_of(pool, r.revision).await?,
+        }),
         environment: match &r.env_json {
             Some(e) => opt_json(e, "env_json", id)?,
             None => BTreeMap::new(),

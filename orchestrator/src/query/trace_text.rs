@@ -195,6 +195,17 @@ impl Lineage {
         if let Some(seed) = &a.seed {
             let _ = writeln!(s, "  seed      {seed}");
         }
+        if let Some(r) = &a.revision {
+            let _ = writeln!(
+                s,
+                "  revision  {} of the campaign file (BLAKE3 {})",
+                r.number,
+                r.spec_blake3
+                    .as_deref()
+                    .map(|h| h.get(..12).unwrap_or(h))
+                    .unwrap_or("unknown")
+            );
+        }
         let _ = writeln!(s, "  params    {}", a.parameters);
         if !a.environment.is_empty() {
             let env: Vec<String> = a

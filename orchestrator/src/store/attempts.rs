@@ -33,6 +33,8 @@ pub struct NewAttempt {
     pub program_version: Option<String>,
     pub parameters_json: String,
     pub seed: Option<String>,
+    /// The campaign file's revision it runs under.
+    pub revision: i64,
     pub created_at: String,
     pub host: Option<String>,
     /// The allow-listed environment passed to the attempt (`crate::environment`), JSON.
@@ -75,8 +77,9 @@ impl Script {
         self.stmt(&format!(
             "INSERT INTO attempts(id, point, iteration, stage, attempt, state, argv_json, workdir, \
              executor, program_path, program_blake3, program_unknown, program_version, \
-             parameters_json, seed, rondo_version, created_at, host, env_json) VALUES {}",
-            rows(rows_.len(), 19)
+             parameters_json, seed, rondo_version, created_at, host, env_json, revision) \
+             VALUES {}",
+            rows(rows_.len(), 20)
         ));
         let mut inputs: Vec<(i64, String, String)> = Vec::new();
         for r in rows_ {
@@ -99,7 +102,8 @@ impl Script {
                 .bind(crate::RONDO_VERSION)
                 .bind(r.created_at)
                 .bind(r.host)
-                .bind(r.env_json);
+                .bind(r.env_json)
+                .bind(r.revision);
         }
         if !inputs.is_empty() {
             self.stmt(&format!(

@@ -1,4 +1,4 @@
-//! A workspace's first records: the campaign row (its exact text and hash), one row per
+//! A workspace's first records: the campaign row and revision 1 (its exact text and hash), one row per
 //! point, and the start files as artifacts, written in one transaction. Knows no campaign
 //! rules: it stores what the engine hands it.
 
@@ -34,6 +34,10 @@ pub async fn create(pool: &SqlitePool, c: NewCampaign<'_>) -> Result<()> {
     .bind(now())
     .bind(crate::RONDO_VERSION)
     .bind(c.workspace_id.to_string());
+    s.stmt(
+        "INSERT INTO revisions(number, spec_text, spec_blake3, created_at) \
+         SELECT 1, spec_text, spec_blake3, created_at FROM campaign",
+    );
     // Multi-row inserts: a sweep of thousands of points is a few statements.
     for chunk in c.points.chunks(300) {
         s.stmt(&format!(
@@ -62,5 +66,6 @@ pub async fn create(pool: &SqlitePool, c: NewCampaign<'_>) -> Result<()> {
             .bind(h.clone());
     }
     s.event("campaign-created", None, None, None, c.name);
-    s.commit(pool).await
+    s.commit(pool, crate::failpoint::Failpoint::CampaignCreated)
+        .await
 }

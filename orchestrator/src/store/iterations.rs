@@ -109,7 +109,7 @@ impl Flushed<'_> {
     /// How many points are in each state.
     pub async fn point_state_counts(&self) -> Result<Vec<(PointState, usize)>> {
         Ok(sqlx::query_as::<_, (PointState, i64)>(
-            "SELECT state, count(*) AS n FROM points GROUP BY state",
+            "SELECT state, count(*) AS n FROM points WHERE retired_in IS NULL GROUP BY state",
         )
         .fetch_all(self.pool)
         .await
@@ -163,6 +163,7 @@ impl Flushed<'_> {
     /// The first good iteration of a point whose stopping rules were met.
     pub async fn first_rules_met(&self, point: &str) -> Result<Option<u32>> {
         let first: Option<i64> = sqlx::query_scalar(super::reads::points::FIRST_RULES_MET)
+            .bind(point)
             .bind(point)
             .fetch_one(self.pool)
             .await?;

@@ -9,6 +9,7 @@ use sqlx::SqlitePool;
 
 use super::attempts::NewAttempt;
 use super::Script;
+use crate::failpoint::{self, Failpoint};
 
 /// The store as the running engine sees it: the pool plus what is held back.
 pub struct Ledger {
@@ -18,6 +19,9 @@ pub struct Ledger {
     held_successes: usize,
     /// Planned rows of started local attempts, not yet written.
     planned: Vec<NewAttempt>,
+    /// Whether the script [`Ledger::begin`] handed out carries held-back records (its
+    /// commit is then a group commit).
+    carried: bool,
 }
 
 /// A view of the store in which everything held back has been committed: the only way to
@@ -34,6 +38,7 @@ impl Ledger {
             held: Script::new(),
             held_successes: 0,
             planned: Vec::new(),
+            carried: false,
         }
     }
 
@@ -51,6 +56,7 @@ impl Ledger {
     /// Start the script of a new transaction: the held-back successes (and how many), then
     /// the planned rows not yet written. The caller commits it or holds it again.
     pub fn begin(&mut self) -> (Script, usize) {
+        self.carried = !self.is_idle();
         let mut script = std::mem::take(&mut self.held);
         script.new_attempts(std::mem::take(&mut self.planned));
         (script, std::mem::take(&mut self.held_successes))
@@ -58,28 +64,36 @@ impl Ledger {
 
     /// Hold a script back for a later group commit; `successes` is how many it records.
     pub fn hold(&mut self, script: Script, successes: usize) {
+        self.carried = false;
         self.held = script;
         self.held_successes = successes;
     }
 
-    /// Commit a script (which [`Ledger::begin`] started, so nothing held back is skipped).
-    pub async fn commit(&self, script: Script) -> Result<()> {
-        script.commit(&self.pool).await
+    /// Commit a script (which [`Ledger::begin`] started, so nothing held back is skipped);
+    /// `at` names the write. One that carries held-back records is also a group commit.
+    pub async fn commit(&mut self, script: Script, at: Failpoint) -> Result<()> {
+        let group = std::mem::take(&mut self.carried);
+        script.commit(&self.pool, at).await?;
+        if group {
+            failpoint::hit(Failpoint::GroupCommit);
+        }
+        Ok(())
     }
 
     /// Write everything down in one transaction: what is held back, then `build`'s
-    /// statements.
-    pub async fn write(&mut self, build: impl FnOnce(&mut Script)) -> Result<()> {
+    /// statements; `at` names the write.
+    pub async fn write(&mut self, at: Failpoint, build: impl FnOnce(&mut Script)) -> Result<()> {
         let (mut script, _) = self.begin();
         build(&mut script);
-        script.commit(&self.pool).await
+        self.commit(script, at).await
     }
 
-    /// Commit what is held back and open the store for reading.
+    /// Commit what is held back (a group commit) and open the store for reading.
     pub async fn flush(&mut self) -> Result<Flushed<'_>> {
         if !self.is_idle() {
             let (script, _) = self.begin();
-            script.commit(&self.pool).await?;
+            self.carried = false;
+            script.commit(&self.pool, Failpoint::GroupCommit).await?;
         }
         Ok(Flushed { pool: &self.pool })
     }

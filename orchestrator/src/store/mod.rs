@@ -13,6 +13,7 @@ pub mod overview;
 mod plans;
 pub mod reads;
 pub mod retention;
+pub mod revisions;
 pub mod seal;
 pub mod states;
 
@@ -28,6 +29,7 @@ use std::time::Duration;
 
 use anyhow::{bail, Context, Result};
 
+use crate::failpoint::{self, Failpoint};
 use crate::fsinfo::{self, Journal};
 use chrono::{DateTime, SecondsFormat, Utc};
 use sqlx::migrate::{Migration, MigrationType, Migrator};
@@ -38,7 +40,7 @@ use sqlx::sqlite::{
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
     // (version, description, SQL), in order.
-    let steps: [(i64, &str, &'static str); 10] = [
+    let steps: [(i64, &str, &'static str); 11] = [
         (
             1,
             "initial",
@@ -89,6 +91,11 @@ pub fn migrator() -> Migrator {
             "handoffs",
             include_str!("../../migrations/0010_handoffs.sql"),
         ),
+        (
+            11,
+            "revisions",
+            include_str!("../../migrations/0011_revisions.sql"),
+        ),
     ];
     let m: Vec<Migration> = steps
         .into_iter()
@@ -133,6 +140,7 @@ pub async fn open(db: &Path) -> Result<SqlitePool> {
         .run(&pool)
         .await
         .with_context(|| format!("{}: cannot migrate the workspace database", db.display()))?;
+    failpoint::hit(Failpoint::StoreMigrated);
     Ok(pool)
 }
 
@@ -301,8 +309,9 @@ impl Script {
         self.sql.is_empty()
     }
 
-    /// Run every statement in one transaction (rolled back if any fails).
-    pub async fn commit(self, pool: &SqlitePool) -> Result<()> {
+    /// Run every statement in one transaction (rolled back if any fails); `at` names the
+    /// write, whose failpoint is hit once it committed (see [`crate::failpoint`]).
+    pub async fn commit(self, pool: &SqlitePool, at: Failpoint) -> Result<()> {
         if let Some(e) = self.error {
             bail!("internal: cannot bind a value: {e}");
         }
@@ -330,6 +339,7 @@ impl Script {
             let _ = sqlx::query("ROLLBACK").execute(&mut *conn).await;
             return Err(e).context("store transaction");
         }
+        failpoint::hit(at);
         Ok(())
     }
 }
@@ -371,10 +381,13 @@ pub struct CampaignRow {
     pub name: String,
     /// Campaign file path as given at the first run.
     pub spec_path: String,
-    /// The exact campaign file text.
+    /// The exact campaign file text of the latest revision (the first run's until the file
+    /// is revised; `store::revisions` keeps every one).
     pub spec_text: String,
     /// BLAKE3 of the text.
     pub spec_blake3: String,
+    /// The latest revision's number.
+    pub revision: i64,
     /// When the workspace was made.
     pub created_at: String,
     /// rondo version that made it.
@@ -387,8 +400,10 @@ pub struct CampaignRow {
 pub async fn campaign_row(pool: &SqlitePool) -> Result<Option<CampaignRow>> {
     use sqlx::Row;
     let row = sqlx::query(
-        "SELECT name, spec_path, spec_text, spec_blake3, created_at, rondo_version, workspace_id \
-         FROM campaign WHERE id = 1",
+        "SELECT c.name, c.spec_path, coalesce(r.spec_text, c.spec_text) AS spec_text, \
+         coalesce(r.spec_blake3, c.spec_blake3) AS spec_blake3, coalesce(r.number, 1) AS revision, \
+         c.created_at, c.rondo_version, c.workspace_id FROM campaign c \
+         LEFT JOIN revisions r ON r.number = (SELECT max(number) FROM revisions) WHERE c.id = 1",
     )
     .fetch_optional(pool)
     .await?;
@@ -397,6 +412,7 @@ pub async fn campaign_row(pool: &SqlitePool) -> Result<Option<CampaignRow>> {
         spec_path: r.get("spec_path"),
         spec_text: r.get("spec_text"),
         spec_blake3: r.get("spec_blake3"),
+        revision: r.get("revision"),
         created_at: r.get("created_at"),
         rondo_version: r.get("rondo_version"),
         workspace_id: r.get("workspace_id"),
@@ -649,7 +665,7 @@ mod tests {
         ok.stmt("INSERT INTO events(at, kind, detail) VALUES (?, 'b', ?)")
             .bind("t2".to_string())
             .bind("second".to_string());
-        ok.commit(&pool).await?;
+        ok.commit(&pool, Failpoint::EventRecorded).await?;
         let rows: Vec<(String, String, String)> =
             sqlx::query_as("SELECT at, kind, detail FROM events ORDER BY seq")
                 .fetch_all(&pool)
@@ -666,7 +682,7 @@ mod tests {
         bad.stmt("INSERT INTO events(at, kind, detail) VALUES ('t3', 'c', 'kept?')");
         bad.stmt("INSERT INTO attempt_outputs(attempt_id, role, artifact) VALUES (?, 'x', 'y')")
             .bind(999_i64);
-        assert!(bad.commit(&pool).await.is_err());
+        assert!(bad.commit(&pool, Failpoint::EventRecorded).await.is_err());
         let n: i64 = sqlx::query_scalar("SELECT count(*) FROM events")
             .fetch_one(&pool)
             .await?;
@@ -680,7 +696,7 @@ mod tests {
         short
             .stmt("INSERT INTO events(at, kind, detail) VALUES (?, ?, ?)")
             .bind("t5".to_string());
-        assert!(short.commit(&pool).await.is_err());
+        assert!(short.commit(&pool, Failpoint::EventRecorded).await.is_err());
         Ok(())
     }
 

@@ -27,14 +27,21 @@ pub struct PointRow {
     pub state: PointState,
     /// Why it stopped (or failed), when recorded.
     pub reason: Option<String>,
+    /// The campaign file's revision that made it.
+    pub revision: i64,
+    /// The revision that retired it, and why (`removed`, `physics`), if retired.
+    pub retired: Option<(i64, String)>,
 }
 
 /// Every point, in sweep order. `ws` names the workspace in the error of a row whose state
 /// does not decode.
 pub async fn points(pool: &SqlitePool, ws: &Path) -> Result<Vec<PointRow>> {
-    let rows = sqlx::query("SELECT id, idx, values_json, state, reason FROM points ORDER BY idx")
-        .fetch_all(pool)
-        .await?;
+    let rows = sqlx::query(
+        "SELECT id, idx, values_json, state, reason, revision, retired_in, retired_why \
+         FROM points ORDER BY idx",
+    )
+    .fetch_all(pool)
+    .await?;
     let mut points = Vec::with_capacity(rows.len());
     for r in rows {
         let id: String = r.get("id");
@@ -45,6 +52,14 @@ pub async fn points(pool: &SqlitePool, ws: &Path) -> Result<Vec<PointRow>> {
             index: r.get("idx"),
             values_json: r.get("values_json"),
             reason: r.get("reason"),
+            revision: r.get("revision"),
+            retired: r.get::<Option<i64>, _>("retired_in").map(|n| {
+                (
+                    n,
+                    r.get::<Option<String>, _>("retired_why")
+                        .unwrap_or_default(),
+                )
+            }),
             id,
             state,
         });
@@ -121,13 +136,13 @@ pub async fn attempt_count(pool: &SqlitePool, point: &str) -> Result<i64> {
 
 /// How many points have not stopped (planned or running).
 pub async fn open_point_count(pool: &SqlitePool) -> Result<i64> {
-    Ok(
-        sqlx::query_scalar("SELECT count(*) FROM points WHERE state IN (?, ?)")
-            .bind(PointState::Planned)
-            .bind(PointState::Running)
-            .fetch_one(pool)
-            .await?,
+    Ok(sqlx::query_scalar(
+        "SELECT count(*) FROM points WHERE state IN (?, ?) AND retired_in IS NULL",
     )
+    .bind(PointState::Planned)
+    .bind(PointState::Running)
+    .fetch_one(pool)
+    .await?)
 }
 
 /// An attempt an orchestrator left outstanding, with what it takes to end it.
@@ -165,27 +180,26 @@ pub async fn outstanding_attempts(pool: &SqlitePool) -> Result<Vec<OutstandingAt
         .collect())
 }
 
-/// Record one attempt as cancelled, ended now, with the reason as its failure message.
-pub async fn mark_attempt_cancelled(pool: &SqlitePool, id: i64, reason: &str) -> Result<()> {
-    sqlx::query("UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, ended_at = ? WHERE id = ?")
+impl super::Script {
+    /// Record one attempt as cancelled, ended now, with the reason as its failure message.
+    pub fn attempt_cancelled(&mut self, id: i64, reason: &str) {
+        self.stmt(
+            "UPDATE attempts SET state = ?, failure_kind = ?, failure_message = ?, ended_at = ? \
+             WHERE id = ?",
+        )
         .bind(AttemptState::Cancelled)
         .bind("cancelled") // the failure kind
         .bind(format!("cancelled: {reason}"))
         .bind(super::now())
-        .bind(id)
-        .execute(pool)
-        .await?;
-    Ok(())
-}
+        .bind(id);
+    }
 
-/// Record every point that has not stopped (planned or running) as cancelled.
-pub async fn cancel_open_points(pool: &SqlitePool, reason: &str) -> Result<()> {
-    sqlx::query("UPDATE points SET state = ?, reason = ? WHERE state IN (?, ?)")
-        .bind(PointState::Cancelled)
-        .bind(format!("cancelled: {reason}"))
-        .bind(PointState::Planned)
-        .bind(PointState::Running)
-        .execute(pool)
-        .await?;
-    Ok(())
+    /// Record every point that has not stopped (planned or running) as cancelled.
+    pub fn open_points_cancelled(&mut self, reason: &str) {
+        self.stmt("UPDATE points SET state = ?, reason = ? WHERE state IN (?, ?)")
+            .bind(PointState::Cancelled)
+            .bind(format!("cancelled: {reason}"))
+            .bind(PointState::Planned)
+            .bind(PointState::Running);
+    }
 }

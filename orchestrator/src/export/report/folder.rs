@@ -98,7 +98,7 @@ pub fn build<'a>(
     points: &[PointData],
     opts: &ReportOptions,
     conv_metrics: &[String],
-    campaign: &str,
+    campaign: &html::Heading,
     sections: Sections<'_>,
     progress: &mut dyn FnMut(&Progress),
 ) -> Result<Folder<'a>> {

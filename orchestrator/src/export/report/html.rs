@@ -245,10 +245,51 @@ pub fn cost(f: &mut Folder<'_>, costs: &crate::query::usage::Costs) -> Result<St
     Ok(html)
 }
 
-/// Write `index.html`: notes, the observables `table`, the fits, the `cost` section, every
-/// figure.
-pub fn index(f: &Folder<'_>, campaign: &str, table: &str, cost: &str) -> Result<()> {
-    let mut html = head(campaign);
+/// What the page's heading names: the campaign and the revisions of its file.
+pub struct Heading {
+    /// The campaign's name.
+    pub name: String,
+    /// (number, BLAKE3, accepted at, physics accepted) of every revision, oldest first.
+    pub revisions: Vec<(i64, String, String, bool)>,
+    /// Points left out because a revision retired them.
+    pub retired: usize,
+}
+
+/// The campaign file's revisions, when it has more than one (empty otherwise).
+fn revisions_section(h: &Heading) -> String {
+    let mut html = String::new();
+    if h.revisions.len() < 2 {
+        return html;
+    }
+    html.push_str("<h2>Campaign file</h2>\n<p>Every attempt records the revision it ran under (<code>rondo trace</code> names it).</p>\n<table>\n<thead><tr><th>revision</th><th>BLAKE3</th><th>accepted</th><th>physics changed</th></tr></thead>\n<tbody>\n");
+    for (n, hash, at, physics) in &h.revisions {
+        let _ = writeln!(
+            html,
+            "<tr><td>{n}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+            html_escape(hash.get(..16).unwrap_or(hash)),
+            html_escape(at),
+            if *physics {
+                "yes (--accept-revision)"
+            } else {
+                "no"
+            }
+        );
+    }
+    html.push_str("</tbody>\n</table>\n");
+    if h.retired > 0 {
+        let _ = writeln!(
+            html,
+            "<p>{} retired point(s) are left out of this report (<code>rondo status</code> lists them).</p>",
+            h.retired
+        );
+    }
+    html
+}
+
+/// Write `index.html`: notes, the campaign file's revisions, the observables `table`, the
+/// fits, the `cost` section, every figure.
+pub fn index(f: &Folder<'_>, campaign: &Heading, table: &str, cost: &str) -> Result<()> {
+    let mut html = head(&campaign.name);
     if !f.notes.is_empty() {
         html.push_str("<h2>Notes</h2>\n<ul class=\"notes\">\n");
         for n in &f.notes {
@@ -256,6 +297,7 @@ pub fn index(f: &Folder<'_>, campaign: &str, table: &str, cost: &str) -> Result<
         }
         html.push_str("</ul>\n");
     }
+    html.push_str(&revisions_section(campaign));
     html.push_str("<h2>Converged observables</h2>\n<p>Values at each point's last good iteration; ± is the standard error the stage reported. Data: <a href=\"observables.csv\">observables.csv</a>.</p>\n");
     html.push_str(table);
     html.push_str(&eos_section(f));

@@ -196,13 +196,26 @@ pub async fn generate_with(
     let stage_outputs = data::load_stage_outputs(pool).await?;
     let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
         .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
+    let heading = html::Heading {
+        name: camp.name.clone(),
+        revisions: crate::store::revisions::list(pool)
+            .await?
+            .into_iter()
+            .map(|r| (r.number, r.spec_blake3, r.created_at, r.accepted))
+            .collect(),
+        retired: crate::store::revisions::stored_points(pool)
+            .await?
+            .iter()
+            .filter(|p| p.retired_in.is_some())
+            .count(),
+    };
     let place = record::Placement::prepare(out_dir)?;
     let built = folder::build(
         &place.tmp,
         &points,
         opts,
         &conv_metrics,
-        &camp.name,
+        &heading,
         folder::Sections {
             costs: &costs,
             stage_outputs: &stage_outputs,

@@ -160,5 +160,6 @@ pub async fn record(
         }
     }
     tx.commit().await.context("cannot record the report")?;
+    crate::failpoint::hit(crate::failpoint::Failpoint::ReportRecorded);
     Ok(report_id)
 }

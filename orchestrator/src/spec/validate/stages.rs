@@ -616,11 +616,27 @@ impl Validator<'_> {
         out
     }
 
-    /// Output file names are plain names in the scratch directory.
+    /// Output file names are plain names in the scratch directory, or files inside the
+    /// stage's case folder (`case/case.log`: the program's own file, recorded as it is).
     fn output_names(&mut self, st: &StageSpec) {
+        let case_path = st
+            .case_folder
+            .as_ref()
+            .map(|c| c.value.path.as_ref().map_or("case", |p| p.value.as_str()));
         for (ok, ov) in &st.outputs.0 {
             // `name/`: a folder output; a name with `*` or `?`: a glob, its matches one folder.
             let ov = ov.file();
+            if let Some(inside) = case_path.and_then(|c| case_member(ov, c)) {
+                if !inside {
+                    self.push(
+                        loc(ok),
+                        format!("output file name `{ov}` is not allowed"),
+                        "name one file inside the case folder by a relative path without `.`, `..` \
+                         or a glob, e.g. case/case.log",
+                    );
+                }
+                continue;
+            }
             let plain = ov.strip_suffix('/').unwrap_or(ov);
             if plain.is_empty()
                 || plain.contains('/')
@@ -631,7 +647,8 @@ impl Validator<'_> {
                     loc(ok),
                     format!("output file name `{ov}` is not allowed"),
                     "use a plain file name (no '/', not metrics.json) written in the scratch directory, \
-                     `name/` for a folder, or a glob such as `*.dat`",
+                     `name/` for a folder, a glob such as `*.dat`, or a file of the stage's case \
+                     folder such as case/case.log",
                 );
             }
         }
@@ -761,10 +778,42 @@ pub(super) fn with_stage<R>(
     (r, super::testing::found(&v))
 }
 
+/// Whether output name `ov` lies in the case folder `case` (`None`: it does not start with
+/// `case/`), and if so whether it names one file there: relative components that are not
+/// empty, `.`, `..` or hidden, and no glob characters.
+fn case_member(ov: &str, case: &str) -> Option<bool> {
+    let rest = ov.strip_prefix(case)?.strip_prefix('/')?;
+    Some(
+        !rest.is_empty()
+            && !crate::artifacts::folder::is_glob(rest)
+            && rest
+                .split('/')
+                .all(|c| !c.is_empty() && !c.starts_with('.')),
+    )
+}
+
 #[cfg(test)]
 mod tests {
     use super::super::testing::*;
     use super::*;
+
+    #[test]
+    fn an_output_may_be_one_file_of_the_case_folder() {
+        assert_eq!(case_member("case/case.log", "case"), Some(true));
+        assert_eq!(case_member("case/out/scf.h5", "case"), Some(true));
+        assert_eq!(case_member("other/case.log", "case"), None);
+        assert_eq!(case_member("casefile", "case"), None);
+        for bad in [
+            "case/",
+            "case/../x",
+            "case/./x",
+            "case/.hidden",
+            "case/*.dat",
+            "case//x",
+        ] {
+            assert_eq!(case_member(bad, "case"), Some(false), "{bad}");
+        }
+    }
 
     /// A cycle of three stages (`stages` replaces the third), one start file.
     fn cycle(third: &str) -> CampaignFile {

@@ -53,6 +53,8 @@ pub struct AttemptRow {
     pub rondo_version: String,
     /// The allow-listed environment, JSON (absent from stores made before migration 7).
     pub env_json: Option<String>,
+    /// The campaign file's revision it ran under (1 in stores made before migration 11).
+    pub revision: i64,
 }
 
 /// The row of attempt `id`; an error naming it when it is not recorded.
@@ -86,6 +88,7 @@ pub async fn attempt(pool: &SqlitePool, id: i64) -> Result<AttemptRow> {
         seed: r.try_get("seed")?,
         rondo_version: r.try_get("rondo_version")?,
         env_json: r.try_get("env_json").ok().flatten(),
+        revision: r.try_get("revision").unwrap_or(1),
     })
 }
 
@@ -268,13 +271,15 @@ pub struct PointAttemptRow {
     pub state: AttemptState,
     /// The recorded environment (`env_json`), if any.
     pub env_json: Option<String>,
+    /// The campaign file's revision it ran under.
+    pub revision: i64,
 }
 
 /// Every attempt of a point, by iteration and id.
 pub async fn of_point(pool: &SqlitePool, point: &str) -> Result<Vec<PointAttemptRow>> {
     let rows = sqlx::query(
         "SELECT id, iteration, stage, program_path, program_blake3, program_version, parameters_json, state,
-                env_json
+                env_json, revision
          FROM attempts WHERE point = ? ORDER BY iteration, id",
     )
     .bind(point)
@@ -292,6 +297,7 @@ pub async fn of_point(pool: &SqlitePool, point: &str) -> Result<Vec<PointAttempt
             parameters_json: r.try_get(6)?,
             state: r.try_get(7)?,
             env_json: r.try_get(8)?,
+            revision: r.try_get(9)?,
         });
     }
     Ok(out)

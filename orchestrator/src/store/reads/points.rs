@@ -23,12 +23,15 @@ pub struct PointRow {
     pub state: PointState,
 }
 
-/// Every point, in sweep order.
+/// Every point of the campaign, in sweep order: retired points (revisions removed their
+/// values, or changed their physics) are left out of analyses, reports and tables.
 pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
-    let rows = sqlx::query("SELECT id, values_json, state FROM points ORDER BY idx")
-        .fetch_all(pool)
-        .await
-        .context("cannot read the points")?;
+    let rows = sqlx::query(
+        "SELECT id, values_json, state FROM points WHERE retired_in IS NULL ORDER BY idx",
+    )
+    .fetch_all(pool)
+    .await
+    .context("cannot read the points")?;
     let mut out = Vec::new();
     for r in rows {
         let id: String = r.try_get(0)?;
@@ -44,8 +47,24 @@ pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
     Ok(out)
 }
 
-/// Every point as (id, values_json), in sweep order (the state not decoded).
+/// Every point of the campaign as (id, values_json), in sweep order (the state not
+/// decoded; retired points left out, as in [`all`]: a sweep-value selector names the
+/// point that runs those values now).
 pub async fn values(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
+    let rows =
+        sqlx::query("SELECT id, values_json FROM points WHERE retired_in IS NULL ORDER BY idx")
+            .fetch_all(pool)
+            .await?;
+    let mut out = Vec::new();
+    for r in rows {
+        out.push((r.try_get(0)?, r.try_get(1)?));
+    }
+    Ok(out)
+}
+
+/// Every point as (id, values_json), retired ones too, in sweep order (for the records of
+/// every attempt, which name retired points as well).
+pub async fn values_with_retired(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
     let rows = sqlx::query("SELECT id, values_json FROM points ORDER BY idx")
         .fetch_all(pool)
         .await?;
@@ -94,7 +113,8 @@ pub async fn last_good_iterations(pool: &SqlitePool) -> Result<Vec<(String, Opti
 /// A point's first iteration whose stopping rules were met (through the partial index
 /// `iterations_rules_met`: one look-up, whatever the length of the history).
 pub(crate) const FIRST_RULES_MET: &str = "SELECT min(iteration) FROM iterations \
-     WHERE point = ? AND json_extract(stop_json, '$.rules_met') = 1";
+     WHERE point = ? AND json_extract(stop_json, '$.rules_met') = 1 \
+     AND iteration >= (SELECT coalesce(window_from, 0) FROM points WHERE id = ?)";
 
 /// A point's last good iteration (reading back from its last one).
 pub(crate) const LAST_GOOD: &str =
@@ -106,6 +126,7 @@ pub async fn convergence_marks(
     point: &str,
 ) -> Result<(Option<i64>, Option<i64>)> {
     let first: Option<i64> = sqlx::query_scalar(FIRST_RULES_MET)
+        .bind(point)
         .bind(point)
         .fetch_one(pool)
         .await?;

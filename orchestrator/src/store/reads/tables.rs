@@ -140,13 +140,14 @@ pub async fn durations(pool: &SqlitePool) -> Result<Vec<Duration>> {
     Ok(out)
 }
 
-/// Per point: (point, state, number of good iterations, last iteration begun).
+/// Per point of the campaign (retired points left out): (point, state, number of good
+/// iterations, last iteration begun).
 pub async fn point_progress(pool: &SqlitePool) -> Result<Vec<(String, PointState, i64, i64)>> {
     let rows = sqlx::query(
         "SELECT p.id, p.state, \
                 (SELECT count(*) FROM iterations i WHERE i.point = p.id AND i.state = ?), \
                 (SELECT coalesce(max(iteration), 0) FROM iterations i WHERE i.point = p.id) \
-         FROM points p ORDER BY p.idx",
+         FROM points p WHERE p.retired_in IS NULL ORDER BY p.idx",
     )
     .bind(IterationState::Good)
     .fetch_all(pool)

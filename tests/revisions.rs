@@ -1,0 +1,473 @@
+//! Revisions of a campaign file in its workspace, end to end with the model engine, real
+//! processes and the real store: a study grown in place (a volume added, a temperature
+//! added, a value removed, a rule tightened, a parameter changed: refused with the diff,
+//! then accepted), a raised cap continuing capped points exactly as a cold run of the
+//! final text would, and crash equivalence across a revision.
+
+mod common;
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use common::*;
+use sqlx::Row;
+
+const FILE: &str = "c.yaml";
+
+/// The demo campaign made small and fast: a 6×6×6 k mesh, the given sweep, one rule on
+/// `update.n_f` with tolerance `tol`, at most `cap` iterations, Hubbard U `u`, no EOS fit.
+fn campaign(volumes: &str, temps: &str, tol: &str, cap: u32, u: &str) -> String {
+    let demo = std::fs::read_to_string(repo().join("examples/model-sweep.yaml"))
+        .unwrap_or_else(|e| panic!("{e}"));
+    let swaps = [
+        ("  kmesh: 12 ", "  kmesh: 6 ".to_string()),
+        ("  u: 6.0 ", format!("  u: {u} ")),
+        (
+            "    volume: [26.0, 27.0, 28.0, 29.0, 30.0]    # Å³ per site\n    temperature: [300, 1200]                  # K\n",
+            format!("    volume: [{volumes}]\n    temperature: [{temps}]\n"),
+        ),
+        (
+            "    - { metric: update.n_f, change-below: 1.0e-6, for: 2 }\n    - { metric: update.energy, change-below: 1.0e-7, for: 2 }\n  max-iterations: 40\n",
+            format!("    - {{ metric: update.n_f, change-below: {tol}, for: 1 }}\n  max-iterations: {cap}\n"),
+        ),
+        (
+            "analysis:\n  eos: { energy: update.energy, volume: volume }   # fitted per temperature when all points stop\n",
+            String::new(),
+        ),
+    ];
+    let mut text = demo;
+    for (from, to) in swaps {
+        assert!(text.contains(from), "the demo campaign changed: {from:?}");
+        text = text.replace(from, &to);
+    }
+    text
+}
+
+/// Write the campaign file of `dir` (start files from the demo on the first call).
+fn write(dir: &Path, text: &str) {
+    if !dir.join("start").is_dir() {
+        demo_in(dir, "model-sweep.yaml");
+    }
+    std::fs::write(dir.join(FILE), text).unwrap_or_else(|e| panic!("{e}"));
+}
+
+fn ws(dir: &Path) -> std::path::PathBuf {
+    dir.join("c.rondo")
+}
+
+/// `rondo run c.yaml` (plus `extra`), required to exit with `code`.
+fn run(dir: &Path, extra: &[&str], code: i32) -> String {
+    let mut args = vec!["run", FILE, "--max-running", "2", "-q"];
+    args.extend_from_slice(extra);
+    let o = run_rondo(dir, &args);
+    assert_eq!(o.status.code(), Some(code), "{}", shown(&o));
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+/// `rondo check c.yaml` (stdout).
+fn check(dir: &Path) -> String {
+    let o = run_rondo(dir, &["check", FILE]);
+    assert!(o.status.success(), "{}", shown(&o));
+    String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+/// Per point: (state, retired revision, last good iteration, attempts).
+type Points = BTreeMap<String, (String, Option<i64>, i64, i64)>;
+
+fn points(dir: &Path) -> Points {
+    let s = status_json(dir, &ws(dir));
+    s["points"]
+        .as_array()
+        .cloned()
+        .unwrap_or_default()
+        .into_iter()
+        .map(|p| {
+            (
+                p["id"].as_str().unwrap_or("").to_string(),
+                (
+                    p["state"].as_str().unwrap_or("").to_string(),
+                    p["retired"]["in_revision"].as_i64(),
+                    p["iteration"].as_i64().unwrap_or(0),
+                    p["attempts"].as_i64().unwrap_or(0),
+                ),
+            )
+        })
+        .collect()
+}
+
+/// The points listed are exactly as before (no attempt since, same state).
+fn untouched(before: &Points, after: &Points, ids: &[&str]) {
+    for id in ids {
+        let (b, a) = (&before[*id], &after[*id]);
+        assert_eq!((&b.0, b.2, b.3), (&a.0, a.2, a.3), "{id} was touched");
+    }
+}
+
+/// The revision the succeeded attempts of (point, iteration, stage) ran under.
+fn revision_of(dir: &Path, point: &str, iteration: i64, stage: &str) -> i64 {
+    let (p, s) = (point.to_string(), stage.to_string());
+    query(&ws(dir), move |pool| {
+        Box::pin(async move {
+            sqlx::query_scalar(
+                "SELECT revision FROM attempts WHERE point = ? AND iteration = ? AND stage = ? \
+                 AND state = 'succeeded'",
+            )
+            .bind(p)
+            .bind(iteration)
+            .bind(s)
+            .fetch_one(pool)
+            .await
+            .unwrap_or_else(|e| panic!("{e}"))
+        })
+    })
+}
+
+/// `rondo trace` of every stopped point's final energy names the revision its attempt ran
+/// under, and that revision's hash is the one the workspace keeps with its text.
+fn traces_name_their_revisions(dir: &Path) {
+    let revs: BTreeMap<i64, String> = query(&ws(dir), |pool| {
+        Box::pin(async move {
+            sqlx::query("SELECT number, spec_text FROM revisions")
+                .fetch_all(pool)
+                .await
+                .unwrap_or_else(|e| panic!("{e}"))
+                .into_iter()
+                .map(|r| (r.get::<i64, _>(0), r.get::<String, _>(1)))
+                .collect()
+        })
+    });
+    let wsp = ws(dir).display().to_string();
+    for (id, (state, _, last, _)) in points(dir) {
+        if state != "converged" && state != "capped" {
+            continue;
+        }
+        let rev = revision_of(dir, &id, last, "update");
+        let target = format!("{id}/{last}/update.energy");
+        let o = run_rondo(dir, &["trace", "--workspace", &wsp, &target]);
+        assert!(o.status.success(), "{}", shown(&o));
+        let text = String::from_utf8_lossy(&o.stdout);
+        let hash = blake3::hash(revs[&rev].as_bytes()).to_hex().to_string();
+        let want = format!(
+            "revision  {rev} of the campaign file (BLAKE3 {})",
+            &hash[..12]
+        );
+        assert!(text.contains(&want), "{target}: no `{want}` in\n{text}");
+    }
+}
+
+#[test]
+fn a_study_grows_in_place() {
+    let _ = model_solid();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+
+    // Revision 1: two volumes at one temperature, a loose rule.
+    write(dir, &campaign("27.0, 28.0", "1200", "1.0e-3", 12, "6.0"));
+    run(dir, &[], 0);
+    let r1 = points(dir);
+    assert_eq!(r1.len(), 2);
+
+    // Add a volume: one new point, the others untouched.
+    write(
+        dir,
+        &campaign("27.0, 28.0, 29.0", "1200", "1.0e-3", 12, "6.0"),
+    );
+    let c = check(dir);
+    assert!(
+        c.contains("revision 2 against revision 1")
+            && c.contains("p003 (volume=29.0 temperature=1200)"),
+        "{c}"
+    );
+    run(dir, &[], 0);
+    let r2 = points(dir);
+    assert_eq!(r2["p003"].0, "converged", "{r2:?}");
+    untouched(&r1, &r2, &["p001", "p002"]);
+    assert_eq!(revision_of(dir, "p003", 1, "band"), 2);
+
+    // Add a temperature: three new points, in sweep order after the recorded ones.
+    write(
+        dir,
+        &campaign("27.0, 28.0, 29.0", "600, 1200", "1.0e-3", 12, "6.0"),
+    );
+    run(dir, &[], 0);
+    let r3 = points(dir);
+    assert_eq!(r3.len(), 6, "{r3:?}");
+    untouched(&r2, &r3, &["p001", "p002", "p003"]);
+    let values = strings(
+        &ws(dir),
+        "SELECT id || ' ' || values_json FROM points WHERE revision = 3 ORDER BY idx",
+    );
+    assert_eq!(
+        values,
+        [
+            r#"p004 {"temperature":600,"volume":27.0}"#,
+            r#"p005 {"temperature":600,"volume":28.0}"#,
+            r#"p006 {"temperature":600,"volume":29.0}"#
+        ]
+    );
+
+    // Remove a value: its points are retired, kept with their history, out of the counts.
+    write(
+        dir,
+        &campaign("28.0, 29.0", "600, 1200", "1.0e-3", 12, "6.0"),
+    );
+    let c = check(dir);
+    assert!(
+        c.contains("points retired (kept with their history)"),
+        "{c}"
+    );
+    run(dir, &[], 0);
+    let r4 = points(dir);
+    for id in ["p001", "p004"] {
+        assert_eq!(r4[id].1, Some(4), "{id} retired in revision 4: {r4:?}");
+    }
+    untouched(&r3, &r4, &["p001", "p002", "p003", "p004", "p005", "p006"]);
+    let s = status_json(dir, &ws(dir));
+    assert_eq!(s["counts"]["retired"], 2, "{}", s["counts"]);
+    assert_eq!(s["counts"]["converged"], 4, "{}", s["counts"]);
+    assert_eq!(s["revision"], 4);
+    let wsp = ws(dir).display().to_string();
+    let table = |kind: &str| {
+        let o = run_rondo(
+            dir,
+            &["table", kind, "--workspace", &wsp, "--format", "jsonl"],
+        );
+        assert!(o.status.success(), "{}", shown(&o));
+        String::from_utf8_lossy(&o.stdout).into_owned()
+    };
+    let finals = table("finals");
+    assert!(
+        !finals.contains(r#""point":"p001""#) && finals.contains(r#""point":"p002""#),
+        "finals leave retired points out: {finals}"
+    );
+    let metrics = table("metrics");
+    assert!(
+        metrics.contains(r#""point":"p001""#) && metrics.contains(r#""volume":27.0"#),
+        "the metrics table keeps retired points' history with their sweep values"
+    );
+
+    // Tighten the rule: converged points whose rule no longer holds continue from their
+    // last good iteration, under revision 5; retired points stay as they are.
+    write(
+        dir,
+        &campaign("28.0, 29.0", "600, 1200", "1.0e-6", 12, "6.0"),
+    );
+    let c = check(dir);
+    assert!(c.contains("stopped points judged again"), "{c}");
+    run(dir, &[], 0);
+    let r5 = points(dir);
+    untouched(&r4, &r5, &["p001", "p004"]);
+    let mut reopened = 0;
+    for id in ["p002", "p003", "p005", "p006"] {
+        let (before, after) = (r4[id].2, r5[id].2);
+        assert_eq!(r5[id].0, "converged", "{id}: {r5:?}");
+        if after > before {
+            reopened += 1;
+            assert_eq!(
+                revision_of(dir, id, before, "update"),
+                revision_of(dir, id, 1, "band")
+            );
+            assert_eq!(revision_of(dir, id, before + 1, "band"), 5, "{id}");
+        }
+    }
+    assert!(
+        reopened > 0,
+        "a rule 1000 times tighter reopened no point: {r5:?}"
+    );
+
+    // Change a parameter: refused with the diff, nothing recorded.
+    write(
+        dir,
+        &campaign("28.0, 29.0, 30.0", "600, 1200", "1.0e-6", 12, "5.5"),
+    );
+    let before = succeeded_attempts(&ws(dir));
+    let err = run(dir, &[], 2);
+    assert!(
+        err.contains("parameters.u: 6.0 → 5.5") && err.contains("--accept-revision"),
+        "{err}"
+    );
+    assert_eq!(succeeded_attempts(&ws(dir)), before);
+    assert_eq!(
+        strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"),
+        ["5"]
+    );
+
+    // Accepted: started points are retired and their values run again as new points; the
+    // new volume (never started) runs under the new text too.
+    run(dir, &["--accept-revision"], 0);
+    let r6 = points(dir);
+    for id in ["p002", "p003", "p005", "p006"] {
+        assert_eq!(r6[id].1, Some(6), "{id} retired for the physics: {r6:?}");
+    }
+    untouched(&r5, &r6, &["p001", "p002", "p003", "p004", "p005", "p006"]);
+    let live: Vec<&String> = r6
+        .iter()
+        .filter(|(_, p)| p.1.is_none())
+        .map(|(id, _)| id)
+        .collect();
+    assert_eq!(live.len(), 6, "{r6:?}");
+    let u = strings(
+        &ws(dir),
+        "SELECT DISTINCT CAST(json_extract(a.parameters_json, '$.u') AS TEXT) FROM attempts a \
+         JOIN points p ON p.id = a.point WHERE p.retired_in IS NULL",
+    );
+    assert_eq!(u, ["5.5"], "every live point ran the new U only");
+    let why = strings(
+        &ws(dir),
+        "SELECT DISTINCT retired_why FROM points WHERE retired_in = 6",
+    );
+    assert_eq!(why, ["physics"]);
+    // p005 (28.0, 600) ran under revision 3 (and 5 if the tighter rule reopened it); its
+    // values run again as p007 under revision 6.
+    let o = run_rondo(dir, &["diff", "--workspace", &wsp, "p005", "p007"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        text.contains("campaign file revisions: A ran under 3") && text.contains(", B under 6"),
+        "{text}"
+    );
+    let prov = dir.join("prov.json");
+    let o = run_rondo(
+        dir,
+        &[
+            "export",
+            "--workspace",
+            &wsp,
+            "--prov",
+            &prov.display().to_string(),
+        ],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    let doc: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(&prov).unwrap_or_else(|e| panic!("{e}")))
+            .unwrap_or_else(|e| panic!("{e}"));
+    let revisions: std::collections::BTreeSet<i64> = doc["activity"]
+        .as_object()
+        .map(|m| {
+            m.values()
+                .filter_map(|a| a["rondo:revision"].as_i64())
+                .collect()
+        })
+        .unwrap_or_default();
+    let out = dir.join("report");
+    let o = run_rondo(
+        dir,
+        &[
+            "report",
+            "--workspace",
+            &wsp,
+            "--out",
+            &out.display().to_string(),
+        ],
+    );
+    assert!(o.status.success(), "{}", shown(&o));
+    let html = std::fs::read_to_string(out.join("index.html")).unwrap_or_default();
+    assert!(
+        html.contains("<h2>Campaign file</h2>")
+            && html.contains("<tr><td>6</td>")
+            && html.contains("6 retired point(s) are left out of this report"),
+        "the report lists the revisions and says what it left out"
+    );
+    // Revision 4 only retired points: no attempt ran under it.
+    assert_eq!(
+        revisions,
+        [1, 2, 3, 5, 6].into_iter().collect(),
+        "PROV names the revision of every attempt"
+    );
+    traces_name_their_revisions(dir);
+}
+
+#[test]
+fn a_raised_cap_continues_capped_points_as_a_cold_run_would() {
+    let _ = model_solid();
+    let (a, b) = (tempdir(), tempdir());
+    // Grown: capped at 3 iterations, then the cap raised to 12.
+    write(
+        a.path(),
+        &campaign("27.0, 28.0", "1200", "1.0e-5", 3, "6.0"),
+    );
+    run(a.path(), &[], 3);
+    let capped = points(a.path());
+    assert!(
+        capped.values().all(|p| p.0 == "capped" && p.2 == 3),
+        "{capped:?}"
+    );
+    write(
+        a.path(),
+        &campaign("27.0, 28.0", "1200", "1.0e-5", 12, "6.0"),
+    );
+    let c = check(a.path());
+    assert!(c.contains("max-iterations rose to 12"), "{c}");
+    // A crash just after the revision is recorded (failpoint `revision-recorded`): the
+    // next run finds the file equal to the latest revision and goes on under it.
+    let o = std::process::Command::new(rondo())
+        .args(["run", FILE, "--max-running", "2", "-q"])
+        .current_dir(a.path())
+        .env("PATH", path_with_binaries())
+        .env("RONDO_FAILPOINT", "revision-recorded:1")
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    {
+        use std::os::unix::process::ExitStatusExt;
+        assert!(
+            o.status.signal() == Some(9)
+                && String::from_utf8_lossy(&o.stderr)
+                    .contains("rondo: failpoint revision-recorded hit 1: crashing"),
+            "expected a crash at revision-recorded: {}",
+            shown(&o)
+        );
+    }
+    run(a.path(), &[], 0);
+    let grown = points(a.path());
+    for (id, p) in &grown {
+        assert_eq!(p.0, "converged", "{id}: {grown:?}");
+        assert!(p.2 > 3);
+        assert_eq!(revision_of(a.path(), id, 3, "mix"), 1);
+        assert_eq!(revision_of(a.path(), id, 4, "band"), 2);
+    }
+    // Cold: the final text from the start gives the same numbers, bit for bit.
+    write(
+        b.path(),
+        &campaign("27.0, 28.0", "1200", "1.0e-5", 12, "6.0"),
+    );
+    run(b.path(), &[], 0);
+    assert_same_record(&record(&ws(b.path())), &record(&ws(a.path())), 0);
+    traces_name_their_revisions(a.path());
+}
+
+#[test]
+fn killed_runs_after_a_revision_end_with_the_numbers_of_an_uninterrupted_one() {
+    let _ = model_solid();
+    let (a, b) = (tempdir(), tempdir());
+    let first = campaign("27.0, 28.0", "1200", "1.0e-3", 12, "6.0");
+    let edited = campaign("27.0, 28.0, 29.0, 30.0", "1200", "1.0e-6", 14, "6.0");
+    for d in [a.path(), b.path()] {
+        write(d, &first);
+        run(d, &[], 0);
+    }
+    let history = succeeded_attempts(&ws(b.path()));
+    // Uninterrupted run of the edited campaign on that history.
+    write(a.path(), &edited);
+    run(a.path(), &[], 0);
+    let reference = record(&ws(a.path()));
+    // The same, SIGKILLed at seeded instants during the first runs after the edit.
+    write(b.path(), &edited);
+    let seed = crash_seed(20_261_204);
+    let from = history as f64 / reference.len() as f64 + 0.02;
+    kill_and_finish(b.path(), FILE, seed, 3, reference.len(), (from, 0.9), 0);
+    assert_same_record(&reference, &record(&ws(b.path())), seed);
+    assert_resume_was_clean(&ws(b.path()), seed);
+    assert_eq!(
+        strings(
+            &ws(b.path()),
+            "SELECT CAST(count(*) AS TEXT) FROM revisions"
+        ),
+        ["2"],
+        "the revision is recorded once, whatever the kills"
+    );
+    traces_name_their_revisions(b.path());
+}
+
+fn tempdir() -> tempfile::TempDir {
+    tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"))
+}
