@@ -144,7 +144,7 @@ fn check_campaign(c: &Campaign, text: &str) {
         }
     }
     let values: Vec<String> = ["1.5", "a b", "it's", "$(x)"].map(String::from).into();
-    for st in &c.stages {
+    for st in c.stages.iter().chain(&c.after_campaign) {
         match &st.kind {
             StageKind::Command { template, .. } => {
                 assert!(!template.is_empty(), "stage `{}`: empty run list", st.name);
@@ -171,7 +171,7 @@ fn check_campaign(c: &Campaign, text: &str) {
                     Err(e) => panic!("stage `{}`: {e}", st.name),
                 }
             }
-            StageKind::Mix(_) | StageKind::Filter(_) => {}
+            StageKind::Mix(_) | StageKind::Filter(_) | StageKind::Eos(_) => {}
         }
         for (role, name) in &st.outputs {
             assert!(

@@ -199,7 +199,7 @@ stop: { max-iterations: 1 }
             at: (0, 0),
         },
         Case {
-            site: "`initially: {i}` must name a start file",
+            site: "`initially: {i}` must name a start file or a `before:` stage's output",
             says: "`initially: a.o` must name a start file",
             yaml: "campaign: t
 cycle:
@@ -1840,6 +1840,294 @@ cycle:
 stop: { max-iterations: 1 }
 ",
             at: (4, 3),
+        },
+        // ------------------------------------------------------------ stages outside the loop
+        Case {
+            site: "stage `{sname}`: `resident` keeps a program alive from one iteration to the next, which only a cycle stage has",
+            says: "stage `a`: `resident` keeps a program alive",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+after-point:
+  a:
+    run: [/bin/cat]
+    outputs: { o: o.txt }
+    resident: true
+stop: { max-iterations: 1 }
+",
+            at: (8, 15),
+        },
+        Case {
+            site: "`finals` names `{}`, which is no stage.metric of a per-point stage",
+            says: "`finals` names `q.e`",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], metrics: [e] }
+after-campaign:
+  a:
+    run: [/bin/true]
+    inputs: { f: { finals: [q.e], points: all } }
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "`initially: {i}` must name a start file or a `before:` stage's output",
+            says: "`initially: s.x` must name a start file",
+            yaml: "campaign: t
+cycle:
+  s:
+    run: [/bin/true]
+    inputs: { x: { previous: s.x, initially: s.x } }
+    outputs: { x: x.json }
+stop: { max-iterations: 1 }
+",
+            at: (5, 15),
+        },
+        Case {
+            site: "a points input reads either `outputs: stage.output` or `finals: [stage.metric, ...]`",
+            says: "reads either",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json }, metrics: [e] }
+after-campaign:
+  a:
+    run: [/bin/true]
+    inputs: { f: { outputs: s.x, finals: [s.e], points: all } }
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "both `analysis: eos:` and an after-campaign stage with `builtin: eos`",
+            says: "both `analysis: eos:`",
+            yaml: "campaign: t
+sweep:
+  product:
+    volume: [1.0, 2.0, 3.0, 4.0]
+cycle:
+  s: { run: [/bin/true], metrics: [e] }
+after-campaign:
+  fit:
+    builtin: eos
+    settings: { energy: s.e, volume: volume }
+stop: { max-iterations: 1 }
+analysis:
+  eos: { energy: s.e }
+",
+            at: (13, 18),
+        },
+        Case {
+            site: "input `{r}` of an after-campaign stage names a per-point output without saying which points",
+            says: "input `s.x` of an after-campaign stage",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json } }
+after-campaign:
+  a:
+    run: [/bin/true]
+    inputs: { x: s.x }
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "input `{}`: stages under `{}:` have no previous iteration",
+            says: "stages under `after-point:` have no previous iteration",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json } }
+after-point:
+  a:
+    run: [/bin/true]
+    inputs: { x: { previous: s.x, initially: start.x } }
+start:
+  x: x.json
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "only an `after-campaign:` stage reads the outputs or final values of several points",
+            says: "only an `after-campaign:` stage",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json } }
+after-point:
+  a:
+    run: [/bin/true]
+    inputs: { x: { outputs: s.x, points: all } }
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "stage `{EOS_STAGE}` is the name of the shipped equation-of-state stage of `analysis: eos:`",
+            says: "stage `eos` is the name of the shipped",
+            yaml: "campaign: t
+sweep:
+  product:
+    volume: [1.0, 2.0, 3.0, 4.0]
+cycle:
+  s: { run: [/bin/true], metrics: [e] }
+after-campaign:
+  eos:
+    run: [/bin/true]
+stop: { max-iterations: 1 }
+analysis:
+  eos: { energy: s.e }
+",
+            at: (8, 3),
+        },
+        Case {
+            site: "stage `{sname}` reads `points: group` but has no `group-by:`",
+            says: "stage `a` reads `points: group`",
+            yaml: "campaign: t
+sweep:
+  product:
+    v: [1, 2]
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json } }
+after-campaign:
+  a:
+    run: [/bin/true]
+    inputs: { x: { outputs: s.x, points: group } }
+stop: { max-iterations: 1 }
+",
+            at: (10, 15),
+        },
+        Case {
+            site: "stage `{sname}`: `case-folder` keeps a folder from one iteration to the next, which only a cycle stage has",
+            says: "stage `a`: `case-folder` keeps a folder",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+after-point:
+  a:
+    run: [/bin/true]
+    case-folder: { path: case }
+stop: { max-iterations: 1 }
+",
+            at: (7, 18),
+        },
+        Case {
+            site: "stage `{sname}`: `group-by` is for `after-campaign:` stages",
+            says: "`group-by` is for `after-campaign:` stages",
+            yaml: "campaign: t
+sweep:
+  product:
+    v: [1, 2]
+cycle:
+  s: { run: [/bin/true] }
+after-point:
+  a:
+    run: [/bin/true]
+    group-by: [v]
+stop: { max-iterations: 1 }
+",
+            at: (10, 16),
+        },
+        Case {
+            site: "stage `{sname}`: `group-by` names `{}`, which is no sweep axis",
+            says: "`group-by` names `w`",
+            yaml: "campaign: t
+sweep:
+  product:
+    v: [1, 2]
+cycle:
+  s: { run: [/bin/true] }
+after-campaign:
+  a:
+    run: [/bin/true]
+    group-by: [w]
+stop: { max-iterations: 1 }
+",
+            at: (10, 16),
+        },
+        Case {
+            site: "stage `{}` is also a stage of `{}`",
+            says: "stage `s` is also a stage of `cycle`",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true] }
+after-point:
+  s: { run: [/bin/true] }
+stop: { max-iterations: 1 }
+",
+            at: (5, 3),
+        },
+        Case {
+            site: "stage `{}`: the built-in eos needs `settings: {{ energy: stage.metric, volume: AXIS }}`",
+            says: "stage `fit`: the built-in eos needs `settings:",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], metrics: [e] }
+after-campaign:
+  fit:
+    builtin: eos
+stop: { max-iterations: 1 }
+",
+            at: (5, 3),
+        },
+        Case {
+            site: "stage `{}`: the built-in eos reads the final energies itself and writes analysis/eos.json",
+            says: "the built-in eos reads the final energies itself",
+            yaml: "campaign: t
+sweep:
+  product:
+    volume: [1.0, 2.0, 3.0, 4.0]
+cycle:
+  s: { run: [/bin/true], metrics: [e] }
+after-campaign:
+  fit:
+    builtin: eos
+    settings: { energy: s.e, volume: volume }
+    outputs: { t: t.json }
+stop: { max-iterations: 1 }
+",
+            at: (8, 3),
+        },
+        Case {
+            site: "this input reads per-point results without saying which points",
+            says: "without saying which points",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json } }
+after-campaign:
+  a:
+    run: [/bin/true]
+    inputs: { x: { outputs: s.x } }
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "unknown point selection `{other}`",
+            says: "unknown point selection `some`",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json } }
+after-campaign:
+  a:
+    run: [/bin/true]
+    inputs: { x: { outputs: s.x, points: some } }
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
+        },
+        Case {
+            site: "stage `{s}` declares no output `{o}`",
+            says: "stage `s` declares no output `sigma`",
+            yaml: "campaign: t
+cycle:
+  s: { run: [/bin/true], outputs: { x: x.json } }
+after-point:
+  spectral:
+    run: [/bin/true]
+    inputs: { g: s.sigma }
+stop: { max-iterations: 1 }
+",
+            at: (7, 15),
         },
     ]
 }

@@ -223,7 +223,7 @@ impl BuiltinCommand {
                 outputs: outs,
                 metrics,
             })),
-            StageKind::Command { .. } | StageKind::Shell { .. } => None,
+            StageKind::Command { .. } | StageKind::Shell { .. } | StageKind::Eos(_) => None,
         }
     }
 

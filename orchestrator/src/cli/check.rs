@@ -12,7 +12,10 @@ use super::output::{emit, emit_json};
 use super::workspace::{absolute, load};
 use super::{CheckArgs, EXIT_OK};
 use crate::engine;
-use crate::spec::{self, Campaign, Combine, Compare, RuleTest, Source, Stage, StageKind};
+use crate::spec::{
+    self, Campaign, Combine, Compare, PointSelection, PointsRead, RuleTest, Source, Stage,
+    StageKind,
+};
 use crate::store;
 
 /// `rondo check FILE`: the campaign file's warnings on stderr, its plan on stdout and, when
@@ -95,9 +98,24 @@ pub fn plan_text(c: &Campaign) -> String {
             .join(" ");
         let _ = writeln!(s, "    {}  {vals}", p.id);
     }
-    let _ = writeln!(s, "  cycle ({} stages, in order):", c.stages.len());
-    for st in &c.stages {
-        stage_lines(&mut s, c, st);
+    let (b, e) = (c.cycle_start(), c.cycle_end());
+    let sections = [
+        ("before the cycle, once per point", &c.stages[..b]),
+        ("cycle", &c.stages[b..e]),
+        (
+            "after a point stops, once, on its last good iteration",
+            &c.stages[e..],
+        ),
+        ("after every point stopped", &c.after_campaign[..]),
+    ];
+    for (title, stages) in sections {
+        if stages.is_empty() {
+            continue;
+        }
+        let _ = writeln!(s, "  {title} ({} stages, in order):", stages.len());
+        for st in stages {
+            stage_lines(&mut s, c, st);
+        }
     }
     stopping_lines(&mut s, c);
     s
@@ -135,9 +153,22 @@ fn stage_summary(c: &Campaign, kind: &StageKind) -> String {
             "built-in filter ({} Legendre coefficients, {} Matsubara frequencies)",
             w.legendre, w.matsubara
         ),
+        StageKind::Eos(e) => format!(
+            "built-in equation-of-state fit of {} over the sweep axis {}",
+            e.energy, e.volume
+        ),
         StageKind::Mix(w) => {
             format!("built-in mix ({:?}, alpha {})", w.method, w.alpha).to_lowercase()
         }
+    }
+}
+
+/// A point selection as the campaign file writes it.
+fn points_text(p: PointSelection) -> &'static str {
+    match p {
+        PointSelection::All => "all",
+        PointSelection::Converged => "converged",
+        PointSelection::Group => "group",
     }
 }
 
@@ -146,6 +177,17 @@ fn source_text(src: &Source) -> String {
     match src {
         Source::Same { stage, role } => format!("{stage}.{role}"),
         Source::Start(n) => format!("start.{n}"),
+        Source::Before { stage, role } => format!("{stage}.{role} (before the cycle)"),
+        Source::Points { read, points } => {
+            let what = match read {
+                PointsRead::Output { stage, role } => format!("{stage}.{role}"),
+                PointsRead::Finals(m) => format!("final values of {}", m.join(", ")),
+            };
+            format!(
+                "{what} of the points selected by `points: {}`",
+                points_text(*points)
+            )
+        }
         Source::Previous {
             stage,
             role,
@@ -154,7 +196,7 @@ fn source_text(src: &Source) -> String {
             "{stage}.{role} of the previous iteration{}",
             initially
                 .as_ref()
-                .map(|i| format!(" (iteration 1: start.{i})"))
+                .map(|i| format!(" (iteration 1: {i})"))
                 .unwrap_or_default()
         ),
     }

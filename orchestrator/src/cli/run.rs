@@ -108,6 +108,14 @@ fn exit_code(summary: &RunSummary) -> u8 {
     if let Some(reason) = &summary.cancelled_because {
         eprintln!("rondo: cancelled ({reason}); `rondo run` again continues the cancelled points");
     }
+    if summary.after_failed > 0 {
+        eprintln!(
+            "rondo: {} stage run(s) outside the loop failed (events `after-point-failed`, \
+             `campaign-stage-failed`); `rondo run` again runs them",
+            summary.after_failed
+        );
+        return EXIT_INCOMPLETE;
+    }
     if summary.all_converged() {
         EXIT_OK
     } else {

@@ -270,7 +270,15 @@ impl Engine<'_> {
             format!(" ({})", v.summary)
         };
         if let Some((state, reason)) = &v.fate {
-            pr.phase = PointPhase::Done;
+            let after = matches!(state, PointState::Converged | PointState::Capped)
+                && self.campaign.stages.len() > self.campaign.cycle_end();
+            if after {
+                // Its `after-point:` stages run next, on this (good) iteration.
+                pr.phase = PointPhase::After;
+                pr.next_stage = self.campaign.cycle_end();
+            } else {
+                pr.phase = PointPhase::Done;
+            }
             self.hooks.point_stopped(&pr.spec, *state, n, reason);
             let why = if v.summary.is_empty() {
                 format!(": {reason}")
@@ -281,7 +289,7 @@ impl Engine<'_> {
                 .line(format!("{point_id} {state} at iteration {n}{why}"));
         } else {
             pr.iteration = n + 1;
-            pr.next_stage = 0;
+            pr.next_stage = self.campaign.first_stage(n + 1);
             pr.attempts = vec![0; nstages];
             if let Some(h) = pr.history.as_mut() {
                 h.entry(n + 1).or_default();

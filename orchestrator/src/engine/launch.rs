@@ -3,6 +3,7 @@
 //! blocking pool, for built-ins).
 
 use super::*;
+use crate::spec::Initial;
 use rondo_adapters::executor::{ExecError, Resources};
 use rondo_adapters::slurm::lengthen_time;
 
@@ -23,14 +24,19 @@ impl Engine<'_> {
         }
         let mut waiting = VecDeque::new();
         while let Some(p) = self.ready.pop_front() {
-            if self.points[p].phase != PointPhase::Active || self.points[p].outstanding.is_some() {
+            if self.points[p].phase == PointPhase::Done || self.points[p].outstanding.is_some() {
                 continue;
             }
-            if self.points[p].next_stage >= self.campaign.stages.len() {
+            let after = self.points[p].phase == PointPhase::After;
+            if !after && self.points[p].next_stage >= self.campaign.cycle_end() {
                 self.finish_iteration(p).await?;
-                if self.points[p].phase == PointPhase::Active {
+                if self.points[p].phase != PointPhase::Done {
                     self.ready.push_back(p);
                 }
+                continue;
+            }
+            if after && self.points[p].next_stage >= self.campaign.stages.len() {
+                self.points[p].phase = PointPhase::Done;
                 continue;
             }
             let stage = &self.campaign.stages[self.points[p].next_stage];
@@ -51,7 +57,7 @@ impl Engine<'_> {
                 busy[usize::from(on_host)] += 1;
             }
             self.start_attempt(p).await?;
-            if self.points[p].outstanding.is_none() && self.points[p].phase == PointPhase::Active {
+            if self.points[p].outstanding.is_none() && self.points[p].phase != PointPhase::Done {
                 // A built-in ran to its end, or a launch failed at once: go on with this point.
                 self.ready.push_back(p);
             }
@@ -258,7 +264,7 @@ impl Engine<'_> {
             let src = Source::Previous {
                 stage: stage.name.clone(),
                 role: crate::spec::CASE_FOLDER_ROLE.into(),
-                initially: cf.initially.clone(),
+                initially: cf.initially.clone().map(crate::spec::Initial::Start),
             };
             let rel = PathBuf::from(&cf.path);
             match input_hash(&store, point, iteration, &src).await? {
@@ -335,7 +341,7 @@ impl Engine<'_> {
     ) -> Result<(Vec<String>, bool, &'static str)> {
         let stage = ctx.stage;
         let (template, shell) = match &stage.kind {
-            StageKind::Filter(_) | StageKind::Mix(_) => {
+            StageKind::Filter(_) | StageKind::Mix(_) | StageKind::Eos(_) => {
                 // The `rondo builtin` command that reruns it in this scratch layout.
                 let argv = builtins::BuiltinCommand::for_stage(
                     &stage.kind,
@@ -666,6 +672,11 @@ async fn input_hash(
     match src {
         Source::Same { stage, role } => store.output_artifact(point, iteration, stage, role).await,
         Source::Start(name) => store.start_artifact(name).await,
+        // A `before:` stage ran once, in iteration 1.
+        Source::Before { stage, role } => store.output_artifact(point, 1, stage, role).await,
+        Source::Points { .. } => {
+            bail!("internal: a per-point stage has an input of several points")
+        }
         Source::Previous {
             stage,
             role,
@@ -683,7 +694,10 @@ async fn input_hash(
                     }
                 }
                 match initially {
-                    Some(name) => store.start_artifact(name).await,
+                    Some(Initial::Start(name)) => store.start_artifact(name).await,
+                    Some(Initial::Before { stage, role }) => {
+                        store.output_artifact(point, 1, stage, role).await
+                    }
                     None => Ok(None),
                 }
             }

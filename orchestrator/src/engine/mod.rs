@@ -42,11 +42,12 @@ use crate::builtins;
 use crate::failpoint::{self, Failpoint};
 use crate::progress::Progress;
 use crate::scratch;
-use crate::spec::{Campaign, Placement, PointSpec, Source, Stage, StageKind};
+use crate::spec::{Campaign, Placement, PointSpec, Section, Source, Stage, StageKind};
 use crate::stop::{self, Sample};
 use crate::store::{self, AttemptState, IterationState, PointState};
 use crate::validate::{self, Metric};
 
+mod campaign;
 mod handoff;
 mod iterate;
 mod launch;
@@ -151,6 +152,9 @@ pub struct RunSummary {
     pub cancelled_because: Option<String>,
     /// Inside an allocation: the job id of the continuation submitted at the warning signal.
     pub continued_as: Option<String>,
+    /// Stages outside the loop (`after-point:`, `after-campaign:`) that failed every
+    /// attempt in this run (the next `rondo run` runs them again).
+    pub after_failed: usize,
 }
 
 impl RunSummary {
@@ -221,7 +225,10 @@ pub fn spec_hash(text: &str) -> String {
 enum PointPhase {
     /// Has work to do.
     Active,
-    /// Stopped (converged, capped, failed, cancelled).
+    /// Converged or capped, its `after-point:` stages still to run (on its last good
+    /// iteration, which `iteration` names).
+    After,
+    /// Stopped (converged, capped, failed, cancelled) with nothing left to run.
     Done,
 }
 
@@ -405,6 +412,9 @@ struct Engine<'a> {
     hooks: crate::hooks::Hooks,
     /// The allow-listed environment recorded with every attempt of this run.
     env_json: String,
+    /// Stages outside the loop (`after-point:`, `after-campaign:`) that used up their
+    /// retries in this run.
+    after_failed: usize,
     /// Resident programs running, per (point, stage) index.
     residents: HashMap<(usize, usize), crate::resident::Process>,
     /// Hand-offs to resident programs being awaited, per attempt.
@@ -484,6 +494,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         storing: Default::default(),
         usage: Default::default(),
         hooks: crate::hooks::Hooks::new(campaign, &opts.workspace),
+        after_failed: 0,
         residents: HashMap::new(),
         handoffs: HashMap::new(),
         revision: ws.revision,
@@ -658,18 +669,8 @@ impl Engine<'_> {
             if warned {
                 continued_as = self.continue_allocation().await?;
             }
-        } else if let Some(eos) = &self.campaign.eos {
-            let store = self.ledger.flush().await?;
-            let doc = crate::query::analysis::record_eos(
-                store.pool(),
-                &self.paths.root,
-                &self.artifacts,
-                eos,
-            )
-            .await?;
-            for line in crate::query::analysis::eos_lines(&doc) {
-                self.progress.line(line);
-            }
+        } else {
+            interrupted = self.after_campaign().await?;
         }
         let states: BTreeMap<PointState, usize> = self
             .ledger
@@ -685,6 +686,7 @@ impl Engine<'_> {
             cancelled: cancelled.is_some(),
             cancelled_because: cancelled.map(|r| r.reason),
             continued_as,
+            after_failed: self.after_failed,
         })
     }
 
@@ -719,7 +721,7 @@ impl Engine<'_> {
                         its.push(format!("{}:{}", p.spec.id, p.iteration));
                     }
                 }
-                PointPhase::Done => done += 1,
+                PointPhase::After | PointPhase::Done => done += 1,
             }
         }
         let more = if active > its.len() { " …" } else { "" };

@@ -109,7 +109,7 @@ impl Engine<'_> {
             }
         };
         Ok(match &stage.kind {
-            StageKind::Filter(_) | StageKind::Mix(_) => {
+            StageKind::Filter(_) | StageKind::Mix(_) | StageKind::Eos(_) => {
                 let exe = self.rondo_exe.0.clone();
                 built(
                     &exe,

@@ -59,7 +59,10 @@ impl Engine<'_> {
         };
         let mut run = PointRun::new(spec, nstages);
         let resumable = match state {
-            PointState::Converged | PointState::Capped => false,
+            PointState::Converged | PointState::Capped => {
+                self.restore_after_point(spec, rec, &mut run);
+                return Ok(run);
+            }
             PointState::Failed => self.opts.retry_failed,
             PointState::Planned | PointState::Running | PointState::Cancelled => true,
         };
@@ -80,6 +83,7 @@ impl Engine<'_> {
                 });
         }
         let mut fresh_iteration = true;
+        run.next_stage = self.campaign.first_stage(1);
         match rec.lasts.get(&spec.id) {
             None => {
                 // A point that never ran has no history to read: keep it in memory from
@@ -95,6 +99,7 @@ impl Engine<'_> {
                     // The decision after a good iteration is committed with it; a good
                     // last iteration of a resumable point means the next one is due.
                     run.iteration = *it + 1;
+                    run.next_stage = self.campaign.first_stage(*it + 1);
                     new_iterations.push((spec.id.clone(), it + 1));
                 } else {
                     fresh_iteration = false;
@@ -112,12 +117,14 @@ impl Engine<'_> {
                     run.attempts[k] = *n;
                 }
             }
-            run.next_stage = self
-                .campaign
-                .stages
+            let (first, end) = (
+                self.campaign.first_stage(run.iteration),
+                self.campaign.cycle_end(),
+            );
+            run.next_stage = self.campaign.stages[first..end]
                 .iter()
                 .position(|st| !tried(st).is_some_and(|(_, ok)| *ok))
-                .unwrap_or(nstages);
+                .map_or(end, |k| first + k);
         }
         if !matches!(state, PointState::Planned | PointState::Running) {
             script.point_state(&spec.id, PointState::Running, None);
@@ -132,6 +139,32 @@ impl Engine<'_> {
         Ok(run)
     }
 
+    /// A converged or capped point: done, or its `after-point:` stages still to run on its
+    /// last iteration (the good one it stopped at) — each that has no succeeded attempt there.
+    fn restore_after_point(&self, spec: &PointSpec, rec: &Recorded, run: &mut PointRun) {
+        run.phase = PointPhase::Done;
+        let end = self.campaign.cycle_end();
+        let Some((it, IterationState::Good)) = rec.lasts.get(&spec.id).copied() else {
+            return;
+        };
+        let tried = |st: &Stage| rec.tried.get(&(spec.id.clone(), st.name.clone())).copied();
+        let after = &self.campaign.stages[end..];
+        let Some(k) = after
+            .iter()
+            .position(|st| !tried(st).is_some_and(|(_, ok)| ok))
+        else {
+            return;
+        };
+        run.phase = PointPhase::After;
+        run.iteration = it;
+        run.next_stage = end + k;
+        for (j, st) in after.iter().enumerate() {
+            if let Some((n, _)) = tried(st) {
+                run.attempts[end + j] = n;
+            }
+        }
+    }
+
     /// Settle attempts an earlier orchestrator left planned, submitted or running.
     pub(super) async fn reconcile(&mut self) -> Result<()> {
         let rows = self.ledger.flush().await?.outstanding_attempts().await?;
@@ -140,7 +173,7 @@ impl Engine<'_> {
         }
         // Completions that arrived during the reattach calls are processed by the main loop.
         for (i, p) in self.points.iter().enumerate() {
-            if p.phase == PointPhase::Active && p.outstanding.is_none() {
+            if p.phase != PointPhase::Done && p.outstanding.is_none() {
                 self.ready.push_back(i);
             }
         }

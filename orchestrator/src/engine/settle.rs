@@ -218,7 +218,7 @@ impl Engine<'_> {
         let point_id = self.points[fl.point].spec.id.clone();
         let launch = launch_fields(done.started, done.host, self.unrecorded.remove(&id));
         // The iteration's last stage: its verdict goes into the same transaction.
-        let last = fl.stage + 1 == self.campaign.stages.len();
+        let last = fl.stage + 1 == self.campaign.cycle_end();
         if last {
             self.ensure_history(fl.point).await?;
         }
@@ -302,7 +302,7 @@ impl Engine<'_> {
             self.apply_verdict(fl.point, v);
             self.retain(fl.point).await?;
         }
-        if self.points[fl.point].phase == PointPhase::Active {
+        if self.points[fl.point].phase != PointPhase::Done {
             self.ready.push_back(fl.point);
         }
         Ok(())
@@ -361,7 +361,28 @@ impl Engine<'_> {
             .await?
             .failed_attempts(&point_id, fl.iteration, &stage.name)
             .await?;
-        if failures > i64::from(stage.retries) {
+        if failures > i64::from(stage.retries) && stage.section == Section::AfterPoint {
+            // The point converged (or was capped) already: it stays so; the stage runs
+            // again at the next `rondo run`.
+            let why = format!(
+                "after-point stage `{}` failed after {failures} attempt(s); last: {}: {}; \
+                 `rondo run` runs it again",
+                stage.name,
+                f.kind,
+                first_line(f.message)
+            );
+            self.event(
+                "after-point-failed",
+                Some(&point_id),
+                Some(fl.iteration),
+                Some(id),
+                &why,
+            )
+            .await?;
+            self.progress.line(format!("{point_id}: {why}"));
+            self.after_failed += 1;
+            self.points[fl.point].phase = PointPhase::Done;
+        } else if failures > i64::from(stage.retries) {
             let reason = format!(
                 "stage `{}` failed at iteration {} after {failures} attempt(s); last: {}: {}",
                 stage.name,

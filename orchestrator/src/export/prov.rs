@@ -201,6 +201,9 @@ impl Doc {
             "prov:type": qname(if r.kind == "report" { "rondo:Report" } else { "rondo:Attempt" }),
             "prov:label": match (&r.point, r.iteration) {
                 (Some(p), Some(i)) => format!("{p} iteration {i} {} attempt {}", r.stage, r.attempt),
+                _ if r.executor == crate::query::generations::CAMPAIGN_STAGE => {
+                    format!("after-campaign stage {} (generation {})", r.stage, r.id)
+                }
                 _ => format!("report {}", r.id),
             },
             "rondo:stage": r.stage,

@@ -29,6 +29,9 @@ pub async fn producing_reports(pool: &SqlitePool, hash: &str) -> Result<Vec<Atte
     Ok(out)
 }
 
+/// The executor of an `after-campaign:` stage's generation (its options name the stage).
+pub const CAMPAIGN_STAGE: &str = "after-campaign";
+
 /// One report generation as a lineage record (kind and stage `report`, executor `builtin`,
 /// program = the rondo executable, parameters = the report options). `sources` lists the
 /// attempts behind the outputs with hash `for_hash`, or behind every output with `None`.
@@ -79,6 +82,12 @@ pub async fn load_report(
         metrics: Default::default(),
         sources: Vec::new(),
     };
+    if let Some(stage) = rec.parameters.get("stage").and_then(|s| s.as_str()) {
+        // An `after-campaign:` stage: its own program, run as a child of rondo.
+        rec.stage = stage.to_string();
+        rec.executor = CAMPAIGN_STAGE.into();
+        rec.program.version = None;
+    }
     rec.outputs = reports::outputs(pool, id).await?.into_iter().collect();
     rec.sources = reports::sources(pool, id, for_hash).await?;
     Ok(rec)

@@ -186,9 +186,23 @@ pub async fn estimate(
         typical: 0.0,
         upper: 0.0,
     });
+    // A `before:` stage runs once per point that has not started, an `after-point:` stage
+    // once per point still to go; cycle stages once per iteration.
+    let once = |n: usize| Range {
+        typical: n as f64,
+        upper: n as f64,
+    };
+    let unstarted = done.iter().filter(|g| **g == 0).count();
     for st in &campaign.stages {
         let recorded = by_stage.remove(st.name.as_str()).unwrap_or_default();
-        let sp = stage_plan(st, recorded, iterations);
+        let runs = match st.section {
+            crate::spec::Section::Cycle => iterations,
+            crate::spec::Section::Before => once(unstarted),
+            crate::spec::Section::AfterPoint | crate::spec::Section::AfterCampaign => {
+                once(done.len())
+            }
+        };
+        let sp = stage_plan(st, recorded, runs);
         total = match (total, sp.core_hours) {
             (Some(t), Some(c)) => Some(Range {
                 typical: t.typical + c.typical,

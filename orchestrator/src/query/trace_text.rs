@@ -252,7 +252,9 @@ fn heading(a: &AttemptRecord) -> String {
 
 /// `report 3`, or `analysis 2 (equation of state)` for the generation of `eos.json`.
 fn generation(a: &AttemptRecord) -> String {
-    if a.outputs.contains_key(EOS_ROLE) {
+    if a.executor == super::generations::CAMPAIGN_STAGE {
+        format!("after-campaign stage {} (generation {})", a.stage, a.id)
+    } else if a.outputs.contains_key(EOS_ROLE) {
         format!("analysis {} (equation of state)", a.id)
     } else {
         format!("report {}", a.id)
@@ -312,6 +314,7 @@ fn process_label(a: &AttemptRecord) -> String {
         ("slurm", Some(id)) => format!("Slurm job {id}{on}"),
         ("pbs", Some(id)) => format!("batch job {id} (PBS){on}"),
         ("builtin", _) => format!("inside rondo{on}"),
+        (super::generations::CAMPAIGN_STAGE, _) => format!("a child process of rondo{on}"),
         (kind, Some(id)) => format!("{kind}, batch job {id}{on}"),
         (kind, None) => format!("{kind}, not started{on}"),
     }

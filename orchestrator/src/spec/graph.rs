@@ -25,7 +25,7 @@ pub fn edges(stages: &[Stage]) -> Vec<(String, String, Edge)> {
                 Source::Previous { stage, .. } => {
                     out.push((stage.clone(), s.name.clone(), Edge::Previous))
                 }
-                Source::Start(_) => {}
+                Source::Start(_) | Source::Before { .. } | Source::Points { .. } => {}
             }
         }
     }

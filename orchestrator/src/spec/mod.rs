@@ -19,15 +19,16 @@ mod validate;
 use std::path::Path;
 
 pub use model::{
-    BadInput, Campaign, CaseFolder, Diagnostic, DiskFree, EnergyUnit, EosAnalysis, Hooks, Keep,
-    MetricSource, Placement, PointSpec, ResolvedProgram, Rule, RuleTest, Schedule, Source,
-    SourceKind, SpecErrors, Stage, StageKind, CASE_FOLDER_ROLE, FILTER_METRICS, HOOK_EVENTS,
-    LEGACY_ROLE,
+    BadInput, Campaign, CaseFolder, Diagnostic, DiskFree, EnergyUnit, EosAnalysis, Hooks, Initial,
+    Keep, MetricSource, Placement, PointSelection, PointSpec, PointsRead, ResolvedProgram, Rule,
+    RuleTest, Schedule, Section, Source, SourceKind, SpecErrors, Stage, StageKind,
+    CASE_FOLDER_ROLE, EOS_STAGE, FILTER_METRICS, HOOK_EVENTS, LEGACY_ROLE,
 };
 pub use raw::{
     AnalysisSpec, BuiltinSettings, CampaignFile, Combine, Compare, Defaults, EosModelName, EosSpec,
     FilterSettings, InputSpec, MetricSourceSpec, MixMethod, MixSettings, OrderedMap, OutputSpec,
-    PreviousInput, Program, RuleSpec, RunSpec, Scalar, ScheduleSpec, StageSpec, StopSpec, Sweep,
+    PointsInput, PreviousInput, Program, RuleSpec, RunSpec, Scalar, ScheduleSpec, StageSpec,
+    StopSpec, Sweep,
 };
 pub use validate::{is_executable, parse_duration, resolve_program};
 

@@ -28,6 +28,9 @@ pub const FILTER_METRICS: [&str; 4] = [
     "tail_c1",
 ];
 
+/// The name of the shipped equation-of-state stage that `analysis: eos:` stands for.
+pub const EOS_STAGE: &str = "eos";
+
 /// A checked equation-of-state analysis.
 #[derive(Debug, Clone)]
 pub struct EosAnalysis {
@@ -99,6 +102,71 @@ impl fmt::Display for SpecErrors {
 
 impl std::error::Error for SpecErrors {}
 
+/// Which section of the campaign file a stage belongs to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum Section {
+    /// `before:`: once per point, first in iteration 1.
+    Before,
+    /// `cycle:`: every iteration.
+    #[default]
+    Cycle,
+    /// `after-point:`: once per point that converged or was capped, recorded with its last
+    /// good iteration.
+    AfterPoint,
+    /// `after-campaign:`: once per campaign (or group) after every point stopped.
+    AfterCampaign,
+}
+
+impl Section {
+    /// The key of the section in the campaign file.
+    pub fn key(self) -> &'static str {
+        match self {
+            Section::Before => "before",
+            Section::Cycle => "cycle",
+            Section::AfterPoint => "after-point",
+            Section::AfterCampaign => "after-campaign",
+        }
+    }
+}
+
+/// What an iteration-1 input without a previous iteration starts from.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Initial {
+    /// A start file.
+    Start(String),
+    /// An output of a `before:` stage.
+    Before { stage: String, role: String },
+}
+
+impl fmt::Display for Initial {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Initial::Start(n) => write!(f, "start.{n}"),
+            Initial::Before { stage, role } => write!(f, "{stage}.{role}"),
+        }
+    }
+}
+
+/// Which points an `after-campaign:` input reads.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum PointSelection {
+    /// Every point that converged or was capped.
+    All,
+    /// The converged points.
+    Converged,
+    /// The converged or capped points of the stage's group (`group-by`).
+    Group,
+}
+
+/// What an `after-campaign:` input reads of each selected point.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum PointsRead {
+    /// An output of the last good iteration.
+    Output { stage: String, role: String },
+    /// Final values of metrics (`stage.metric`).
+    Finals(Vec<String>),
+}
+
 /// Where an input comes from, resolved.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub enum Source {
@@ -110,7 +178,14 @@ pub enum Source {
     Previous {
         stage: String,
         role: String,
-        initially: Option<String>,
+        initially: Option<Initial>,
+    },
+    /// An output of a `before:` stage (recorded at iteration 1), whatever the iteration.
+    Before { stage: String, role: String },
+    /// `after-campaign:` stages: per-point results of the selected points.
+    Points {
+        read: PointsRead,
+        points: PointSelection,
     },
 }
 
@@ -119,6 +194,10 @@ pub enum Source {
 pub struct Stage {
     /// Name.
     pub name: String,
+    /// Its section of the campaign file.
+    pub section: Section,
+    /// `after-campaign:` stages: the sweep axes it groups the points by (empty: once).
+    pub group_by: Vec<String>,
     /// What runs.
     pub kind: StageKind,
     /// Inputs in file order: role → source.
@@ -313,6 +392,8 @@ pub enum StageKind {
     Mix(MixSettings),
     /// Built-in Legendre filter of a G(τ).
     Filter(FilterSettings),
+    /// Built-in equation-of-state fit (an `after-campaign:` stage).
+    Eos(EosAnalysis),
 }
 
 impl StageKind {
@@ -383,8 +464,17 @@ pub struct Campaign {
     pub programs: BTreeMap<String, ResolvedProgram>,
     /// Start files: name → absolute path.
     pub start: BTreeMap<String, PathBuf>,
-    /// Stages in topological order.
+    /// The per-point stages: `before:` (in their order), the cycle (in topological order),
+    /// then `after-point:`; [`Campaign::cycle_start`] and [`Campaign::cycle_end`] delimit the
+    /// cycle.
     pub stages: Vec<Stage>,
+    /// Number of `before:` stages at the front of `stages`.
+    pub n_before: usize,
+    /// Number of cycle stages after them.
+    pub n_cycle: usize,
+    /// The `after-campaign:` stages, in file order (an `analysis: eos:` section is one more,
+    /// the built-in `eos`).
+    pub after_campaign: Vec<Stage>,
     /// Points.
     pub points: Vec<PointSpec>,
     /// Rules.
@@ -469,6 +559,26 @@ impl Campaign {
     /// Stage by name.
     pub fn stage(&self, name: &str) -> Option<&Stage> {
         self.stages.iter().find(|s| s.name == name)
+    }
+
+    /// Index of the first stage an iteration runs: 0 at iteration 1 (the `before:` stages
+    /// come first), the first cycle stage after it.
+    pub fn first_stage(&self, iteration: u32) -> usize {
+        if iteration <= 1 {
+            0
+        } else {
+            self.n_before
+        }
+    }
+
+    /// Index of the first cycle stage.
+    pub fn cycle_start(&self) -> usize {
+        self.n_before
+    }
+
+    /// Index one past the last cycle stage (the first `after-point:` stage, if any).
+    pub fn cycle_end(&self) -> usize {
+        self.n_before + self.n_cycle
     }
 
     /// The warnings as `file:line:col: warning: what; hint: what to do` lines.

@@ -171,6 +171,29 @@ pub enum InputSpec {
     Same(String),
     /// The previous iteration's output.
     Previous(PreviousInput),
+    /// After-campaign stages only: outputs or final values of the points selected.
+    Points(PointsInput),
+}
+
+/// An input of an `after-campaign:` stage that reads per-point results: which results
+/// (`outputs: stage.role` or `finals: [stage.metric, ...]`) and of which points (`points:`).
+#[derive(Debug, Clone, Deserialize, JsonSchema)]
+#[serde(deny_unknown_fields, rename_all = "kebab-case")]
+pub struct PointsInput {
+    /// `stage.role`: that output of each selected point's last good iteration, laid out as
+    /// one folder `inputs/ROLE/POINT.EXT`.
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub outputs: Option<Spanned<String>>,
+    /// `stage.metric` names: each selected point's final values, as one JSON file.
+    #[serde(default)]
+    #[schemars(with = "Option<Vec<String>>")]
+    pub finals: Option<Vec<Spanned<String>>>,
+    /// Which points: `all` (every point that converged or was capped), `converged`, or
+    /// `group` (the points of the stage's group, with `group-by`).
+    #[serde(default)]
+    #[schemars(with = "Option<String>")]
+    pub points: Option<Spanned<String>>,
 }
 
 /// `{ previous: stage.output, initially: start.name }`.
@@ -179,7 +202,7 @@ pub enum InputSpec {
 pub struct PreviousInput {
     /// `stage.output` of the previous iteration.
     pub previous: String,
-    /// `start.name` used at iteration 1.
+    /// `start.name` (or `STAGE.ROLE` of a `before:` stage) used at iteration 1.
     #[serde(default)]
     pub initially: Option<String>,
 }
@@ -379,6 +402,12 @@ pub struct StageSpec {
     #[serde(default)]
     #[schemars(with = "Vec<String>")]
     pub also_runs: Vec<Spanned<String>>,
+    /// `after-campaign:` stages only: sweep axes whose values split the points into groups;
+    /// the stage runs once per group (`{{group:AXIS}}` is the group's value), and an input
+    /// with `points: group` reads that group's points.
+    #[serde(default)]
+    #[schemars(with = "Vec<String>")]
+    pub group_by: Vec<Spanned<String>>,
 }
 
 /// `case-folder:` of a command or shell stage.
@@ -528,6 +557,9 @@ pub enum BuiltinSettings {
     Mix(MixSettings),
     /// Settings of `filter`.
     Filter(FilterSettings),
+    /// Settings of `eos` (an `after-campaign:` stage; read by the checker, never written).
+    #[serde(skip_serializing)]
+    Eos(EosSpec),
 }
 
 /// Settings of the built-in `filter` stage (Legendre noise filter of a G(τ)).
@@ -679,8 +711,19 @@ pub struct CampaignFile {
     /// Base seed for `{{seed}}`.
     #[serde(default)]
     pub seed: Option<u64>,
+    /// Stages run once per point before its first iteration (iteration 1's first stages).
+    #[serde(default)]
+    pub before: OrderedMap<StageSpec>,
     /// The stages of one iteration.
     pub cycle: OrderedMap<StageSpec>,
+    /// Stages run once per point after it converged or was capped, on its last good
+    /// iteration's outputs.
+    #[serde(default)]
+    pub after_point: OrderedMap<StageSpec>,
+    /// Stages run once per campaign (or per group, `group-by`) after every point stopped,
+    /// over the selected points' outputs or final values; `builtin: eos` is shipped.
+    #[serde(default)]
+    pub after_campaign: OrderedMap<StageSpec>,
     /// Stopping rules.
     pub stop: StopSpec,
     /// Campaign-level analyses.

@@ -158,3 +158,40 @@ mod tests {
         assert_eq!(stop_metrics(t), vec!["update.n_f", "solve.p0"]);
     }
 }
+
+/// One output of an `after-campaign:` stage run, as the report shows it.
+#[derive(Debug, Clone)]
+pub struct StageOutput {
+    /// The stage.
+    pub stage: String,
+    /// Its group (`group-by` axes and values; empty for one run per campaign).
+    pub group: serde_json::Map<String, Value>,
+    /// `STAGE.ROLE`.
+    pub role: String,
+    /// The artifact.
+    pub artifact: String,
+    /// Its file name.
+    pub file: String,
+    /// The attempts the run read.
+    pub sources: Vec<i64>,
+}
+
+/// The outputs of every recorded `after-campaign:` stage run (not the built-in `eos`, which
+/// has its own section), newest run of a stage and group last.
+pub async fn load_stage_outputs(pool: &SqlitePool) -> Result<Vec<StageOutput>> {
+    let mut out = Vec::new();
+    for (id, options, role, artifact, file) in
+        crate::store::reads::reports::campaign_stage_outputs(pool).await?
+    {
+        let o: Value = serde_json::from_str(&options)?;
+        out.push(StageOutput {
+            stage: o["stage"].as_str().unwrap_or_default().to_string(),
+            group: o["group"].as_object().cloned().unwrap_or_default(),
+            role,
+            artifact,
+            file,
+            sources: crate::store::reads::reports::sources(pool, id, None).await?,
+        });
+    }
+    Ok(out)
+}

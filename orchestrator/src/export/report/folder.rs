@@ -79,16 +79,27 @@ pub fn figure(name: &str, title: &str) -> FigureInfo {
     }
 }
 
+/// What the report's sections after the observables show: the cost, and the outputs of
+/// the `after-campaign:` stages (copied from the artifact store).
+pub struct Sections<'s> {
+    /// What the attempts cost.
+    pub costs: &'s crate::query::usage::Costs,
+    /// The outputs of the `after-campaign:` stage runs.
+    pub stage_outputs: &'s [super::data::StageOutput],
+    /// The workspace's artifact store.
+    pub artifacts: &'s crate::artifacts::ArtifactStore,
+}
+
 /// Build every file of the report in `dir`: a convergence figure per point, the overview,
-/// energy versus volume, configuration probabilities, the observables table and
-/// `index.html`, calling `progress` before each step.
+/// energy versus volume, configuration probabilities, the observables table, the
+/// outputs of the `after-campaign:` stages and `index.html`, calling `progress` before each step.
 pub fn build<'a>(
     dir: &'a Path,
     points: &[PointData],
     opts: &ReportOptions,
     conv_metrics: &[String],
     campaign: &html::Heading,
-    costs: &crate::query::usage::Costs,
+    sections: Sections<'_>,
     progress: &mut dyn FnMut(&Progress),
 ) -> Result<Folder<'a>> {
     let mut f = Folder {
@@ -127,14 +138,15 @@ pub fn build<'a>(
     figures::probabilities(&mut f, opts, &groups)?;
     step("tables".into());
     let table = html::observables(&mut f, points)?;
-    let cost = html::cost(&mut f, costs)?;
+    let cost = html::cost(&mut f, sections.costs)?;
+    let after = html::after_campaign(&mut f, sections.stage_outputs, sections.artifacts)?;
     f.tables = ["observables.csv", "eos-fits.csv", "cost.csv"]
         .into_iter()
         .filter(|t| f.out.sources.contains_key(*t))
         .map(String::from)
         .collect();
     step("index.html".into());
-    html::index(&f, campaign, &table, &cost)?;
+    html::index(&f, campaign, &table, &(after + &cost))?;
     Ok(f)
 }
 

@@ -4,7 +4,7 @@
 use std::collections::BTreeSet;
 use std::fmt::Write as _;
 
-use anyhow::Result;
+use anyhow::{Context, Result};
 
 use super::data::PointData;
 use super::folder::{axis_text, csv_field, fmt_pm, html_escape, num, opt_num, Folder};
@@ -125,6 +125,58 @@ fn eos_section(f: &Folder<'_>) -> String {
     }
     html.push_str("</tbody>\n</table>\n");
     html
+}
+
+/// The outputs of the `after-campaign:` stages: each file copied to
+/// `after-campaign/STAGE[.AXIS=VALUE…]/FILE` (recorded with the attempts its run read) and
+/// listed in a table; empty when no such stage ran.
+pub fn after_campaign(
+    f: &mut Folder<'_>,
+    outputs: &[super::data::StageOutput],
+    artifacts: &crate::artifacts::ArtifactStore,
+) -> Result<String> {
+    if outputs.is_empty() {
+        return Ok(String::new());
+    }
+    let mut html = String::from(
+        "<h2>After every point stopped</h2>\n<p>The outputs of the campaign's \
+         <code>after-campaign:</code> stages (<code>rondo trace FILE</code> names the attempts each read).</p>\n\
+         <table>\n<thead><tr><th>stage</th><th>group</th><th>output</th><th>file</th><th>BLAKE3</th></tr></thead>\n<tbody>\n",
+    );
+    for o in outputs {
+        let group = crate::query::analysis::group_text(&o.group);
+        let mut label = o.stage.clone();
+        for (k, v) in &o.group {
+            let v = v
+                .as_str()
+                .map(str::to_string)
+                .unwrap_or_else(|| v.to_string());
+            let _ = write!(label, ".{k}={}", v.replace('/', "_"));
+        }
+        let rel = format!("after-campaign/{label}/{}", o.file);
+        let to = f.dir.join(&rel);
+        if let Some(parent) = to.parent() {
+            std::fs::create_dir_all(parent)
+                .with_context(|| format!("{}: cannot create", parent.display()))?;
+        }
+        std::fs::copy(artifacts.path_of(&o.artifact), &to)
+            .with_context(|| format!("{rel}: cannot copy artifact {}", o.artifact))?;
+        f.publish(
+            std::slice::from_ref(&rel),
+            &o.sources.iter().copied().collect(),
+        );
+        let _ = writeln!(
+            html,
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td><a href=\"{r}\">{r}</a></td><td><code>{}</code></td></tr>",
+            html_escape(&o.stage),
+            html_escape(&group),
+            html_escape(&o.role),
+            &o.artifact[..12.min(o.artifact.len())],
+            r = html_escape(&rel),
+        );
+    }
+    html.push_str("</tbody>\n</table>\n");
+    Ok(html)
 }
 
 /// `cost.csv` (per point and stage, then per stage, then in all: attempts measured, CPU

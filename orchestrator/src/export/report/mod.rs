@@ -28,7 +28,7 @@ mod record;
 use std::path::{Path, PathBuf};
 use std::sync::OnceLock;
 
-use anyhow::{bail, Result};
+use anyhow::{bail, Context, Result};
 use plotters::style::FontStyle;
 use rondo_numerics::eos as eos_fit;
 use serde::Serialize;
@@ -193,6 +193,9 @@ pub async fn generate_with(
     }
     let conv_metrics = data::convergence_metrics(opts, &spec_text);
     let costs = crate::query::usage::costs(pool).await?;
+    let stage_outputs = data::load_stage_outputs(pool).await?;
+    let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
+        .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
     let heading = html::Heading {
         name: camp.name.clone(),
         revisions: crate::store::revisions::list(pool)
@@ -213,7 +216,11 @@ pub async fn generate_with(
         opts,
         &conv_metrics,
         &heading,
-        &costs,
+        folder::Sections {
+            costs: &costs,
+            stage_outputs: &stage_outputs,
+            artifacts: &artifacts,
+        },
         progress,
     );
     let mut built = match built {

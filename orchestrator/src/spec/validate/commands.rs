@@ -9,7 +9,7 @@ use serde_saphyr::Spanned;
 
 use super::stages::{Cycle, StageAt};
 use super::{loc, Validator};
-use crate::spec::model::{ResolvedProgram, StageKind};
+use crate::spec::model::{ResolvedProgram, Section, StageKind};
 
 impl Validator<'_> {
     /// An argument-list stage: a program first, placeholders that resolve.
@@ -128,6 +128,7 @@ impl Validator<'_> {
         shell_programs: Option<&BTreeSet<String>>,
     ) -> bool {
         let (sname, st, inputs) = (s.name, s.spec, s.inputs);
+        let campaign = s.section == Section::AfterCampaign;
         let mut ok = true;
         for p in template.placeholder_refs() {
             let at = at_of(p.arg);
@@ -135,9 +136,14 @@ impl Validator<'_> {
                 Some("param") => params.contains(p.name),
                 Some("input") => inputs.iter().any(|(k, _)| k == p.name),
                 Some("output") => st.outputs.get(p.name).is_some(),
-                Some("point") => p.name == "id" || p.name == "index",
+                Some("point") => !campaign && (p.name == "id" || p.name == "index"),
+                Some("group") => campaign && st.group_by.iter().any(|g| g.value == p.name),
                 Some("program") => shell_programs.is_some_and(|d| d.contains(p.name)),
-                None => BARE_NAMES.contains(&p.name),
+                // A campaign-level stage has no iteration and no per-point seed.
+                None => {
+                    BARE_NAMES.contains(&p.name)
+                        && !(campaign && matches!(p.name, "iteration" | "seed"))
+                }
                 Some(_) => false,
             };
             if known {

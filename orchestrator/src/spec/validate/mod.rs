@@ -29,7 +29,7 @@ use std::path::{Path, PathBuf};
 
 use serde_saphyr::Spanned;
 
-use super::model::{Campaign, Diagnostic, SpecErrors};
+use super::model::{Campaign, Diagnostic, Section, SpecErrors};
 use super::raw::CampaignFile;
 
 pub use programs::{is_executable, resolve_program};
@@ -103,10 +103,29 @@ impl<'a> Validator<'a> {
         let points = self.points(&raw);
         let mut params = sweep::param_names(&parameters, &points);
         let schedules = self.schedules(&raw, &mut params);
-        let stages = self.stages(&raw, &params, &mut programs, &base);
+        let before = self.section_stages(&raw, Section::Before, &params, &mut programs, &base);
+        let cycle = self.stages(&raw, &params, &mut programs, &base);
+        let after_point =
+            self.section_stages(&raw, Section::AfterPoint, &params, &mut programs, &base);
+        // A campaign-level stage has no point: only the campaign's own parameters.
+        let campaign_params = parameters.iter().map(|(k, _)| k.clone()).collect();
+        let mut after_campaign = self.section_stages(
+            &raw,
+            Section::AfterCampaign,
+            &campaign_params,
+            &mut programs,
+            &base,
+        );
         let stop = self.stop(&raw, text);
-        let stages = self.order(&raw, &stages);
+        let before = self.order(&raw, &before);
+        let cycle = self.order(&raw, &cycle);
+        let after_point = self.order(&raw, &after_point);
+        let (n_before, n_cycle) = (before.len(), cycle.len());
+        let stages: Vec<_> = before.into_iter().chain(cycle).chain(after_point).collect();
         let eos = self.eos(&raw, &points);
+        if let Some(e) = &eos {
+            self.eos_as_stage(&raw, e, &mut after_campaign);
+        }
         let hooks = self.hooks(&raw, &base);
         let budget_core_hours = self.budget(&raw);
         let warm_start = self.warm_start(&raw, &points);
@@ -125,6 +144,9 @@ impl<'a> Validator<'a> {
             programs,
             start,
             stages,
+            n_before,
+            n_cycle,
+            after_campaign,
             points,
             rules: stop.rules,
             combine: stop.combine,

@@ -9,8 +9,13 @@ use std::path::Path;
 use serde_saphyr::Spanned;
 
 use super::{loc, split_ref, Validator};
-use crate::spec::model::{Keep, Placement, ResolvedProgram, Source, Stage, StageKind};
-use crate::spec::raw::{CampaignFile, InputSpec, PreviousInput, RunSpec, StageSpec};
+use crate::spec::model::{
+    Initial, Keep, Placement, PointSelection, PointsRead, ResolvedProgram, Section, Source, Stage,
+    StageKind,
+};
+use crate::spec::raw::{
+    CampaignFile, InputSpec, OrderedMap, PointsInput, PreviousInput, RunSpec, StageSpec,
+};
 
 /// What every stage of the cycle is checked against.
 pub(super) struct Cycle<'r> {
@@ -22,6 +27,29 @@ pub(super) struct Cycle<'r> {
     pub(super) params: &'r BTreeSet<String>,
     /// The names under `programs:`.
     pub(super) declared: BTreeSet<String>,
+    /// The section of the file being checked.
+    pub(super) section: Section,
+}
+
+/// The stages of one section of the file.
+pub(super) fn section_map(raw: &CampaignFile, section: Section) -> &OrderedMap<StageSpec> {
+    match section {
+        Section::Before => &raw.before,
+        Section::Cycle => &raw.cycle,
+        Section::AfterPoint => &raw.after_point,
+        Section::AfterCampaign => &raw.after_campaign,
+    }
+}
+
+/// The sections whose stages' outputs a stage of `section` may read by `stage.output`.
+fn readable_sections(section: Section) -> &'static [Section] {
+    match section {
+        Section::Before => &[Section::Before],
+        Section::Cycle => &[Section::Cycle, Section::Before],
+        Section::AfterPoint | Section::AfterCampaign => {
+            &[Section::Cycle, Section::Before, Section::AfterPoint]
+        }
+    }
 }
 
 /// The stage being checked, with its inputs as checked so far.
@@ -34,6 +62,8 @@ pub(super) struct StageAt<'s> {
     pub(super) spec: &'s StageSpec,
     /// Its good inputs, role → source, in file order.
     pub(super) inputs: &'s [(String, Source)],
+    /// Its section of the file.
+    pub(super) section: Section,
 }
 
 impl Validator<'_> {
@@ -45,11 +75,32 @@ impl Validator<'_> {
         programs: &mut BTreeMap<String, ResolvedProgram>,
         base: &Path,
     ) -> Vec<Stage> {
+        if raw.cycle.is_empty() {
+            self.push(
+                (0, 0),
+                "the cycle has no stages",
+                "add stages under `cycle:`",
+            );
+        }
+        self.section_stages(raw, Section::Cycle, params, programs, base)
+    }
+
+    /// Every good stage of one section of the file (`before:`, `cycle:`, `after-point:`,
+    /// `after-campaign:`), in file order.
+    pub(super) fn section_stages(
+        &mut self,
+        raw: &CampaignFile,
+        section: Section,
+        params: &BTreeSet<String>,
+        programs: &mut BTreeMap<String, ResolvedProgram>,
+        base: &Path,
+    ) -> Vec<Stage> {
         let cx = Cycle {
             raw,
             base,
             params,
             declared: raw.programs.keys().map(str::to_string).collect(),
+            section,
         };
         let stop_metrics: Vec<(String, String)> = raw
             .stop
@@ -58,15 +109,13 @@ impl Validator<'_> {
             .filter_map(|r| split_ref(&r.metric.value).map(|(a, b)| (a.into(), b.into())))
             .collect();
         let mut stages = Vec::new();
-        if raw.cycle.is_empty() {
-            self.push(
-                (0, 0),
-                "the cycle has no stages",
-                "add stages under `cycle:`",
-            );
-        }
-        for (key, st) in &raw.cycle.0 {
-            if let Some(s) = self.stage(&cx, key, st, &stop_metrics, programs) {
+        for (key, st) in &section_map(raw, section).0 {
+            if section != Section::Cycle && self.name_taken(raw, section, key) {
+                continue;
+            }
+            if let Some(mut s) = self.stage(&cx, key, st, &stop_metrics, programs) {
+                s.section = section;
+                s.group_by = self.group_by(raw, section, &key.value, st);
                 stages.push(s);
             }
         }
@@ -84,7 +133,7 @@ impl Validator<'_> {
     ) -> Option<Stage> {
         let sname = key.value.clone();
         let at = loc(key);
-        let inputs = self.inputs(cx.raw, st);
+        let inputs = self.inputs(cx.raw, cx.section, st);
         let outputs: Vec<(String, String)> = st
             .outputs
             .iter()
@@ -105,6 +154,7 @@ impl Validator<'_> {
             at,
             spec: st,
             inputs: &inputs,
+            section: cx.section,
         };
         let mut writable_inputs = BTreeSet::new();
         for w in &st.writable_inputs {
@@ -125,11 +175,30 @@ impl Validator<'_> {
         let placement = self.placement(&sname, st, &kind);
         let keep = self.keep(&sname, st);
         let case_folder = self.case_folder(cx.raw, &sname, st, &kind);
+        if let (Some(cf), false) = (&st.case_folder, cx.section == Section::Cycle) {
+            self.push(
+                loc(cf),
+                format!("stage `{sname}`: `case-folder` keeps a folder from one iteration to the next, which only a cycle stage has"),
+                "remove `case-folder:`; write the folder as an output (`name/`) and read it as an input",
+            );
+        }
         let env = self.stage_env(&sname, st, &kind);
         let also_runs = self.also_runs(&sname, st, &kind, &cx.declared, programs);
         let resident = self.resident(&sname, st, &kind, &metric_sources);
+        if let (Some(r), true) = (
+            st.resident.as_ref().filter(|r| r.value),
+            cx.section != Section::Cycle,
+        ) {
+            self.push(
+                loc(r),
+                format!("stage `{sname}`: `resident` keeps a program alive from one iteration to the next, which only a cycle stage has"),
+                "remove `resident: true`",
+            );
+        }
         Some(Stage {
             name: sname,
+            section: Section::Cycle,
+            group_by: Vec::new(),
             kind,
             inputs,
             outputs,
@@ -216,20 +285,20 @@ impl Validator<'_> {
         p.value
     }
 
-    /// The good inputs of a stage, role → source, in file order.
-    fn inputs(&mut self, raw: &CampaignFile, st: &StageSpec) -> Vec<(String, Source)> {
+    /// The good inputs of a stage of `section`, role → source, in file order.
+    fn inputs(
+        &mut self,
+        raw: &CampaignFile,
+        section: Section,
+        st: &StageSpec,
+    ) -> Vec<(String, Source)> {
         let mut inputs = Vec::new();
         for (ik, spec) in &st.inputs.0 {
             let iat = loc(ik);
             let src = match spec {
-                InputSpec::Same(r) => self.source_ref(raw, r, iat, false).map(|(s, o)| {
-                    if s == "start" {
-                        Source::Start(o)
-                    } else {
-                        Source::Same { stage: s, role: o }
-                    }
-                }),
-                InputSpec::Previous(p) => self.previous_input(raw, st, ik, p),
+                InputSpec::Same(r) => self.same_input(raw, section, r, iat),
+                InputSpec::Previous(p) => self.previous_input(raw, section, st, ik, p),
+                InputSpec::Points(p) => self.points_input(raw, section, p, iat),
             };
             if let Some(src) = src {
                 inputs.push((ik.value.clone(), src));
@@ -238,25 +307,68 @@ impl Validator<'_> {
         inputs
     }
 
-    /// `{ previous: stage.output, initially: start.name }`: only a built-in stage may go
-    /// without `initially`.
+    /// `stage.output` or `start.name`: a `before:` stage's output reads as recorded at
+    /// iteration 1; an `after-campaign:` stage must say which points' output it reads.
+    fn same_input(
+        &mut self,
+        raw: &CampaignFile,
+        section: Section,
+        r: &str,
+        iat: (u64, u64),
+    ) -> Option<Source> {
+        let (s, o, from) = self.source_ref(raw, section, r, iat, false)?;
+        if s == "start" {
+            return Some(Source::Start(o));
+        }
+        if section == Section::AfterCampaign && from != Section::AfterCampaign {
+            self.push(
+                iat,
+                format!("input `{r}` of an after-campaign stage names a per-point output without saying which points"),
+                format!("write `{{ outputs: {r}, points: all }}` (or `points: converged`, `points: group`)"),
+            );
+            return None;
+        }
+        if from == Section::Before && section != Section::Before {
+            return Some(Source::Before { stage: s, role: o });
+        }
+        Some(Source::Same { stage: s, role: o })
+    }
+
+    /// `{ previous: stage.output, initially: start.name }` (cycle stages only): only a
+    /// built-in stage may go without `initially`, which may name a `before:` stage's output.
     fn previous_input(
         &mut self,
         raw: &CampaignFile,
+        section: Section,
         st: &StageSpec,
         ik: &Spanned<String>,
         p: &PreviousInput,
     ) -> Option<Source> {
         let iat = loc(ik);
-        let prev = self.source_ref(raw, &p.previous, iat, true);
+        if section != Section::Cycle {
+            self.push(
+                iat,
+                format!(
+                    "input `{}`: stages under `{}:` have no previous iteration",
+                    ik.value,
+                    section.key()
+                ),
+                "name the output directly: stage.output (its last good iteration's, after a point)",
+            );
+            return None;
+        }
+        let prev = self
+            .source_ref(raw, section, &p.previous, iat, true)
+            .map(|(s, o, _)| (s, o));
         let init = match &p.initially {
-            Some(i) => match self.source_ref(raw, i, iat, false) {
-                Some((s, o)) if s == "start" => Some(Some(o)),
+            Some(i) => match self.source_ref(raw, section, i, iat, false) {
+                Some((s, o, _)) if s == "start" => Some(Some(Initial::Start(o))),
+                Some((s, o, Section::Before)) => Some(Some(Initial::Before { stage: s, role: o })),
                 Some(_) => {
                     self.push(
                         iat,
-                        format!("`initially: {i}` must name a start file"),
-                        "write `initially: start.NAME`",
+                        format!("`initially: {i}` must name a start file or a `before:` stage's output"),
+                        "write `initially: start.NAME` or `initially: STAGE.OUTPUT` of a stage under `before:`",
                     );
                     None
                 }
@@ -283,14 +395,98 @@ impl Validator<'_> {
         }
     }
 
-    /// Check `stage.output` / `start.name`; `previous` allows any stage (even later ones).
+    /// `{ outputs: stage.role | finals: [stage.metric, ...], points: all|converged|group }`
+    /// of an `after-campaign:` stage.
+    fn points_input(
+        &mut self,
+        raw: &CampaignFile,
+        section: Section,
+        p: &PointsInput,
+        iat: (u64, u64),
+    ) -> Option<Source> {
+        if section != Section::AfterCampaign {
+            self.push(
+                iat,
+                "only an `after-campaign:` stage reads the outputs or final values of several points",
+                "name one output as stage.output",
+            );
+            return None;
+        }
+        let points = match &p.points {
+            None => {
+                self.push(
+                    iat,
+                    "this input reads per-point results without saying which points",
+                    "add `points: all` (every point that converged or was capped), `points: converged` or `points: group`",
+                );
+                return None;
+            }
+            Some(s) => match s.value.as_str() {
+                "all" => PointSelection::All,
+                "converged" => PointSelection::Converged,
+                "group" => PointSelection::Group,
+                other => {
+                    self.push(
+                        iat,
+                        format!("unknown point selection `{other}`"),
+                        "write `points: all`, `points: converged` or `points: group`",
+                    );
+                    return None;
+                }
+            },
+        };
+        let read = match (&p.outputs, &p.finals) {
+            (Some(o), None) => {
+                let (s, r, _) = self.source_ref(raw, Section::AfterPoint, &o.value, iat, true)?;
+                PointsRead::Output { stage: s, role: r }
+            }
+            (None, Some(f)) if !f.is_empty() => {
+                let mut names = Vec::new();
+                for m in f {
+                    let known = split_ref(&m.value).is_some_and(|(s, _)| {
+                        raw.cycle.get(s).is_some() || raw.after_point.get(s).is_some()
+                    });
+                    if !known {
+                        self.push(
+                            iat,
+                            format!("`finals` names `{}`, which is no stage.metric of a per-point stage", m.value),
+                            format!(
+                                "stages: {}",
+                                raw.cycle.keys().chain(raw.after_point.keys()).collect::<Vec<_>>().join(", ")
+                            ),
+                        );
+                        continue;
+                    }
+                    names.push(m.value.clone());
+                }
+                if names.len() != f.len() {
+                    return None;
+                }
+                PointsRead::Finals(names)
+            }
+            _ => {
+                self.push(
+                    iat,
+                    "a points input reads either `outputs: stage.output` or `finals: [stage.metric, ...]`",
+                    "give exactly one of them",
+                );
+                return None;
+            }
+        };
+        Some(Source::Points { read, points })
+    }
+
+    /// Check `stage.output` / `start.name` as read by a stage of `section`; `previous` allows
+    /// any stage of the section (even later ones). Returns the stage (or `start`), the
+    /// output and the section the stage is in.
     fn source_ref(
         &mut self,
         raw: &CampaignFile,
+        section: Section,
         r: &str,
         at: (u64, u64),
         previous: bool,
-    ) -> Option<(String, String)> {
+    ) -> Option<(String, String, Section)> {
         let Some((s, o)) = split_ref(r) else {
             self.push(
                 at,
@@ -319,16 +515,21 @@ impl Validator<'_> {
                 );
                 return None;
             }
-            return Some((s.into(), o.into()));
+            return Some((s.into(), o.into(), section));
         }
-        let Some(st) = raw.cycle.get(s) else {
+        let readable = readable_sections(section);
+        let found = readable
+            .iter()
+            .find_map(|sec| section_map(raw, *sec).get(s).map(|st| (*sec, st)));
+        let Some((from, st)) = found else {
+            let names: Vec<&str> = readable
+                .iter()
+                .flat_map(|sec| section_map(raw, *sec).keys())
+                .collect();
             self.push(
                 at,
                 format!("input `{r}` names unknown stage `{s}`"),
-                format!(
-                    "stages: {}",
-                    raw.cycle.keys().collect::<Vec<_>>().join(", ")
-                ),
+                format!("stages it may read: {}", names.join(", ")),
             );
             return None;
         };
@@ -345,7 +546,74 @@ impl Validator<'_> {
             );
             return None;
         }
-        Some((s.into(), o.into()))
+        Some((s.into(), o.into(), from))
+    }
+
+    /// Whether a stage name of `section` is used by an earlier section already (reported).
+    fn name_taken(&mut self, raw: &CampaignFile, section: Section, key: &Spanned<String>) -> bool {
+        let earlier = [
+            Section::Before,
+            Section::Cycle,
+            Section::AfterPoint,
+            Section::AfterCampaign,
+        ];
+        let taken = earlier.iter().filter(|s| **s != section).find(|s| {
+            section_map(raw, **s).get(&key.value).is_some()
+                && (**s == Section::Cycle || (**s as u8) < (section as u8))
+        });
+        if let Some(other) = taken {
+            self.push(
+                loc(key),
+                format!("stage `{}` is also a stage of `{}`", key.value, other.key()),
+                "give every stage of the campaign its own name",
+            );
+            return true;
+        }
+        false
+    }
+
+    /// `group-by:` of a stage: `after-campaign:` stages only, sweep axes.
+    fn group_by(
+        &mut self,
+        raw: &CampaignFile,
+        section: Section,
+        sname: &str,
+        st: &StageSpec,
+    ) -> Vec<String> {
+        let axes = super::sweep::axis_names(raw);
+        let mut out = Vec::new();
+        for g in &st.group_by {
+            if section != Section::AfterCampaign {
+                self.push(
+                    loc(g),
+                    format!("stage `{sname}`: `group-by` is for `after-campaign:` stages"),
+                    "remove `group-by:`",
+                );
+            } else if !axes.contains(&g.value) {
+                self.push(
+                    loc(g),
+                    format!(
+                        "stage `{sname}`: `group-by` names `{}`, which is no sweep axis",
+                        g.value
+                    ),
+                    format!("sweep axes: {}", axes.join(", ")),
+                );
+            } else {
+                out.push(g.value.clone());
+            }
+        }
+        let uses_group = st.inputs.0.iter().any(|(_, i)| {
+            matches!(i, InputSpec::Points(p) if p.points.as_ref().is_some_and(|s| s.value == "group"))
+        });
+        if uses_group && st.group_by.is_empty() && section == Section::AfterCampaign {
+            let at = st.inputs.0.first().map(|(k, _)| loc(k)).unwrap_or((0, 0));
+            self.push(
+                at,
+                format!("stage `{sname}` reads `points: group` but has no `group-by:`"),
+                "add `group-by: [AXIS, ...]`, or read `points: all`",
+            );
+        }
+        out
     }
 
     /// Output file names are plain names in the scratch directory, or files inside the
@@ -419,14 +687,16 @@ impl Validator<'_> {
                 }
             },
             (None, Some(b)) => match b.value.as_str() {
-                "mix" => self.mix(s),
-                "filter" => self.filter(s),
+                "mix" if s.section != Section::AfterCampaign => self.mix(s),
+                "filter" if s.section != Section::AfterCampaign => self.filter(s),
+                "eos" if s.section == Section::AfterCampaign => self.eos_builtin(cx, s),
                 _ => {
-                    self.push(
-                        loc(b),
-                        format!("unknown built-in `{}`", b.value),
-                        "built-ins: mix, filter",
-                    );
+                    let known = if s.section == Section::AfterCampaign {
+                        "built-ins of an after-campaign stage: eos"
+                    } else {
+                        "built-ins: mix, filter (eos is an after-campaign stage)"
+                    };
+                    self.push(loc(b), format!("unknown built-in `{}`", b.value), known);
                     None
                 }
             },
@@ -455,13 +725,16 @@ impl Validator<'_> {
         match crate::spec::graph::order(stages) {
             Ok(o) => o,
             Err(cycle_stage) => {
-                let at = raw
-                    .cycle
-                    .0
-                    .iter()
-                    .find(|(k, _)| k.value == cycle_stage)
-                    .map(|(k, _)| loc(k))
-                    .unwrap_or((0, 0));
+                let at = [
+                    raw.before.0.iter(),
+                    raw.cycle.0.iter(),
+                    raw.after_point.0.iter(),
+                ]
+                .into_iter()
+                .flatten()
+                .find(|(k, _)| k.value == cycle_stage)
+                .map(|(k, _)| loc(k))
+                .unwrap_or((0, 0));
                 self.push(
                     at,
                     format!("stage `{cycle_stage}` is part of a cycle within one iteration"),
@@ -487,17 +760,19 @@ pub(super) fn with_stage<R>(
         base: Path::new("."),
         params: &params,
         declared: raw.programs.keys().map(str::to_string).collect(),
+        section: Section::Cycle,
     };
     let Some((key, st)) = raw.cycle.0.iter().find(|(k, _)| k.value == name) else {
         panic!("no stage `{name}`")
     };
     let mut v = super::testing::validator();
-    let inputs = v.inputs(raw, st);
+    let inputs = v.inputs(raw, Section::Cycle, st);
     let s = StageAt {
         name,
         at: loc(key),
         spec: st,
         inputs: &inputs,
+        section: Section::Cycle,
     };
     let r = f(&mut v, &cx, &s);
     (r, super::testing::found(&v))
@@ -581,7 +856,7 @@ stop: {{ max-iterations: 1, when: [{{ metric: b.m, change-below: 0.1 }}] }}
                 Source::Previous {
                     stage: "c".into(),
                     role: "y".into(),
-                    initially: Some("s0".into())
+                    initially: Some(Initial::Start("s0".into()))
                 }
             )]
         );
@@ -626,7 +901,7 @@ stop: {{ max-iterations: 1, when: [{{ metric: b.m, change-below: 0.1 }}] }}
             ),
             (
                 "x: { previous: b.y, initially: b.y }",
-                "`initially: b.y` must name a start file",
+                "`initially: b.y` must name a start file or a `before:` stage's output",
             ),
             (
                 "x: { previous: b.y }",

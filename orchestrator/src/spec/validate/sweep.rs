@@ -24,6 +24,15 @@ pub(super) fn parameters(raw: &CampaignFile) -> Vec<(String, Scalar)> {
         .collect()
 }
 
+/// The sweep's axis names in file order (none without a sweep).
+pub(super) fn axis_names(raw: &CampaignFile) -> Vec<String> {
+    raw.sweep
+        .as_ref()
+        .and_then(|s| s.value.product.as_ref().or(s.value.zip.as_ref()))
+        .map(|m| m.keys().map(str::to_string).collect())
+        .unwrap_or_default()
+}
+
 /// The names a `{{param:NAME}}` may use so far: parameters and sweep axes.
 pub(super) fn param_names(
     parameters: &[(String, Scalar)],

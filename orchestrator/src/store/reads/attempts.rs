@@ -228,6 +228,28 @@ pub async fn succeeded_outputs_at(
     Ok(out)
 }
 
+/// The artifact of output `role` of the succeeded attempt of `stage` at a point's
+/// iteration, with the attempt's id.
+pub async fn succeeded_output_with_attempt(
+    pool: &SqlitePool,
+    point: &str,
+    iteration: i64,
+    stage: &str,
+    role: &str,
+) -> Result<Option<(String, i64)>> {
+    Ok(sqlx::query_as(
+        "SELECT o.artifact, a.id FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
+         WHERE a.point = ? AND a.iteration = ? AND a.stage = ? AND a.state = ? AND o.role = ?",
+    )
+    .bind(point)
+    .bind(iteration)
+    .bind(stage)
+    .bind(AttemptState::Succeeded)
+    .bind(role)
+    .fetch_optional(pool)
+    .await?)
+}
+
 /// One attempt of a point as a comparison of two points reads it.
 #[derive(Debug, Clone, PartialEq)]
 pub struct PointAttemptRow {

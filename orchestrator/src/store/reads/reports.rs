@@ -147,6 +147,35 @@ pub async fn latest_output(pool: &SqlitePool, role: &str) -> Result<Option<Strin
     .await?)
 }
 
+/// The newest finished generation recorded with exactly these options, if any (an
+/// `after-campaign:` stage and group that ran already).
+pub async fn generation_with_options(pool: &SqlitePool, options_json: &str) -> Result<Option<i64>> {
+    Ok(sqlx::query_scalar(
+        "SELECT id FROM reports WHERE options_json = ? AND ended_at IS NOT NULL \
+         ORDER BY id DESC LIMIT 1",
+    )
+    .bind(options_json)
+    .fetch_optional(pool)
+    .await?)
+}
+
+/// The outputs of the recorded `after-campaign:` stage runs (their options name a stage
+/// and a group): (generation id, options_json, role, artifact, first recorded file name),
+/// by id and role.
+pub async fn campaign_stage_outputs(
+    pool: &SqlitePool,
+) -> Result<Vec<(i64, String, String, String, String)>> {
+    Ok(sqlx::query_as(
+        "SELECT r.id, r.options_json, o.role, o.artifact, a.original_name FROM reports r \
+         JOIN report_outputs o ON o.report_id = r.id JOIN artifacts a ON a.hash = o.artifact \
+         WHERE r.ended_at IS NOT NULL AND json_valid(r.options_json) \
+         AND json_type(r.options_json, '$.stage') = 'text' \
+         AND json_type(r.options_json, '$.group') = 'object' ORDER BY r.id, o.role",
+    )
+    .fetch_all(pool)
+    .await?)
+}
+
 /// A new generation's `reports` row.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct NewGeneration<'a> {
