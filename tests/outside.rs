@@ -361,6 +361,43 @@ fn a_kill_during_each_stage_outside_the_loop_then_resume_records_the_same_result
         assert_eq!(ran["summary"], expect("summary", 1), "{kind}: {ran:?}");
         assert_eq!(ran["per-b"], expect("per-b", 2), "{kind}: {ran:?}");
     }
+    // A crash right after the first campaign-level run is recorded (failpoint
+    // `campaign-stage-recorded`): that run is not repeated, the others follow.
+    let d = tmp();
+    setup(d.path());
+    let o = Command::new(rondo())
+        .args(["run", "c.yaml", "-q"])
+        .current_dir(d.path())
+        .env("PATH", path_with_binaries())
+        .env("RONDO_FAILPOINT", "campaign-stage-recorded:1")
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    {
+        use std::os::unix::process::ExitStatusExt;
+        assert!(
+            o.status.signal() == Some(9)
+                && String::from_utf8_lossy(&o.stderr)
+                    .contains("rondo: failpoint campaign-stage-recorded hit 1: crashing"),
+            "expected a crash at campaign-stage-recorded: {}",
+            shown(&o)
+        );
+    }
+    let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    let ws = d.path().join("c.rondo");
+    assert_no_double_success_nor_children(&ws, 0);
+    assert_same_record(&want, &record(&ws), 0);
+    assert_eq!(
+        generations(&ws),
+        want_g,
+        "after the crash at campaign-stage-recorded"
+    );
+    let ran = runs(d.path());
+    assert_eq!(
+        ran["summary"] + ran["per-b"],
+        3,
+        "each campaign-level run ran once: {ran:?}"
+    );
 }
 
 #[test]

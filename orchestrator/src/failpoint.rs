@@ -65,6 +65,7 @@ failpoints! {
     HookFailed = "hook-failed",
     RunCancelled = "run-cancelled",
     AnalysisRecorded = "analysis-recorded",
+    CampaignStageRecorded = "campaign-stage-recorded",
     ReportRecorded = "report-recorded",
     CancelRecorded = "cancel-recorded",
 }

@@ -204,6 +204,7 @@ impl Engine<'_> {
         );
         store::event(&mut *tx, "campaign-stage", None, None, None, &detail).await?;
         tx.commit().await?;
+        failpoint::hit(Failpoint::CampaignStageRecorded);
         Ok(true)
     }
 
