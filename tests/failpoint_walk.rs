@@ -18,7 +18,6 @@
 mod common;
 
 use std::collections::BTreeMap;
-use std::os::unix::process::ExitStatusExt;
 use std::path::Path;
 use std::process::{Command, Output, Stdio};
 use std::time::{Duration, Instant};
@@ -222,20 +221,6 @@ fn ws_of(dir: &Path) -> std::path::PathBuf {
     dir.join("walk.rondo")
 }
 
-/// Run rondo in `dir`, armed at `armed` (`NAME:N`) if given.
-fn rondo_at(dir: &Path, args: &[&str], armed: Option<&str>) -> Output {
-    let mut c = Command::new(rondo());
-    c.args(args)
-        .current_dir(dir)
-        .env("PATH", path_with_binaries())
-        .env_remove(rondo::failpoint::VARIABLE);
-    if let Some(a) = armed {
-        c.env(rondo::failpoint::VARIABLE, a);
-    }
-    c.output()
-        .unwrap_or_else(|e| panic!("cannot run rondo: {e}"))
-}
-
 fn run_args() -> Vec<&'static str> {
     vec!["run", CAMPAIGN, "--max-running", "2", "-q"]
 }
@@ -266,18 +251,6 @@ fn slurm_or_skip() -> bool {
         &["RONDO_REQUIRE_SLURM"],
     );
     false
-}
-
-/// The process crashed at `armed`: killed by SIGKILL after the line naming it.
-fn assert_crashed_at(o: &Output, armed: &str) {
-    let (name, n) = armed.split_once(':').unwrap_or((armed, "?"));
-    let line = format!("rondo: failpoint {name} hit {n}: crashing");
-    let stderr = String::from_utf8_lossy(&o.stderr);
-    assert!(
-        o.status.signal() == Some(libc::SIGKILL) && stderr.contains(&line),
-        "armed {armed}: expected a crash there (SIGKILL after `{line}`), got {}",
-        shown(o)
-    );
 }
 
 /// What a finished walk workspace must show like the uninterrupted one.

@@ -171,6 +171,16 @@ fn reduced_in(dir: &Path) {
     std::fs::write(&path, reduced).unwrap_or_else(|e| panic!("{e}"));
 }
 
+/// The reduced copy run to its end in `dir` with the local executor.
+fn run_reduced_locally(dir: &Path) {
+    reduced_in(dir);
+    let o = run_rondo(
+        dir,
+        &["run", "inplace-sweep.yaml", "--max-running", "2", "-q"],
+    );
+    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+}
+
 /// Every file of every folder artifact a succeeded attempt recorded:
 /// (point, iteration, stage, role, path) → content hash.
 fn folder_files(ws: &Path) -> BTreeMap<String, String> {
@@ -206,13 +216,8 @@ fn folder_files(ws: &Path) -> BTreeMap<String, String> {
 fn killed_inplace_runs_end_with_the_files_and_numbers_of_an_uninterrupted_run() {
     let _ = casebook();
     let (a, b) = (tempdir(), tempdir());
-    reduced_in(a.path());
     reduced_in(b.path());
-    let o = run_rondo(
-        a.path(),
-        &["run", "inplace-sweep.yaml", "--max-running", "2", "-q"],
-    );
-    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    run_reduced_locally(a.path());
     let ref_ws = a.path().join("inplace-sweep.rondo");
     let reference = record(&ref_ws);
     let reference_files = folder_files(&ref_ws);
@@ -284,13 +289,8 @@ fn the_inplace_campaign_through_slurm_gives_the_files_and_numbers_of_the_local_r
         return;
     }
     let (a, b) = (tempdir(), tempdir());
-    reduced_in(a.path());
     reduced_in(b.path());
-    let o = run_rondo(
-        a.path(),
-        &["run", "inplace-sweep.yaml", "--max-running", "2", "-q"],
-    );
-    assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
+    run_reduced_locally(a.path());
     let local = a.path().join("inplace-sweep.rondo");
     let o = run_rondo(
         b.path(),

@@ -365,23 +365,11 @@ fn a_kill_during_each_stage_outside_the_loop_then_resume_records_the_same_result
     // `campaign-stage-recorded`): that run is not repeated, the others follow.
     let d = tmp();
     setup(d.path());
-    let o = Command::new(rondo())
-        .args(["run", "c.yaml", "-q"])
-        .current_dir(d.path())
-        .env("PATH", path_with_binaries())
-        .env("RONDO_FAILPOINT", "campaign-stage-recorded:1")
-        .output()
-        .unwrap_or_else(|e| panic!("{e}"));
-    {
-        use std::os::unix::process::ExitStatusExt;
-        assert!(
-            o.status.signal() == Some(9)
-                && String::from_utf8_lossy(&o.stderr)
-                    .contains("rondo: failpoint campaign-stage-recorded hit 1: crashing"),
-            "expected a crash at campaign-stage-recorded: {}",
-            shown(&o)
-        );
-    }
+    let armed = "campaign-stage-recorded:1";
+    assert_crashed_at(
+        &rondo_at(d.path(), &["run", "c.yaml", "-q"], Some(armed)),
+        armed,
+    );
     let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let ws = d.path().join("c.rondo");

@@ -343,7 +343,6 @@ fn sigkill_of_rondo_mid_campaign_then_resume_is_bit_identical_and_leaves_no_proc
 /// process left.
 #[test]
 fn every_handoff_failpoint_crashes_there_and_resumes_identically() {
-    use std::os::unix::process::ExitStatusExt;
     let clean = tmp();
     campaign(clean.path(), Some("ok"));
     let reference = run_to_end(clean.path());
@@ -351,19 +350,8 @@ fn every_handoff_failpoint_crashes_there_and_resumes_identically() {
         let d = tmp();
         campaign(d.path(), Some("ok"));
         let armed = format!("{name}:3");
-        let o = std::process::Command::new(rondo())
-            .args(["run", "r.yaml", "--max-running", "2", "-q", "--grace", "2"])
-            .current_dir(d.path())
-            .env("PATH", path_with_binaries())
-            .env("RONDO_FAILPOINT", &armed)
-            .output()
-            .unwrap_or_else(|e| panic!("{e}"));
-        let line = format!("rondo: failpoint {name} hit 3: crashing");
-        assert!(
-            o.status.signal() == Some(9) && String::from_utf8_lossy(&o.stderr).contains(&line),
-            "armed {armed}: expected a crash there, got {}",
-            shown(&o)
-        );
+        let args = ["run", "r.yaml", "--max-running", "2", "-q", "--grace", "2"];
+        assert_crashed_at(&rondo_at(d.path(), &args, Some(&armed)), &armed);
         let got = run_to_end(d.path());
         let ws = d.path().join("r.rondo");
         assert_same_record(&reference, &got, 0);

@@ -400,23 +400,9 @@ fn a_raised_cap_continues_capped_points_as_a_cold_run_would() {
     assert!(c.contains("max-iterations rose to 12"), "{c}");
     // A crash just after the revision is recorded (failpoint `revision-recorded`): the
     // next run finds the file equal to the latest revision and goes on under it.
-    let o = std::process::Command::new(rondo())
-        .args(["run", FILE, "--max-running", "2", "-q"])
-        .current_dir(a.path())
-        .env("PATH", path_with_binaries())
-        .env("RONDO_FAILPOINT", "revision-recorded:1")
-        .output()
-        .unwrap_or_else(|e| panic!("{e}"));
-    {
-        use std::os::unix::process::ExitStatusExt;
-        assert!(
-            o.status.signal() == Some(9)
-                && String::from_utf8_lossy(&o.stderr)
-                    .contains("rondo: failpoint revision-recorded hit 1: crashing"),
-            "expected a crash at revision-recorded: {}",
-            shown(&o)
-        );
-    }
+    let armed = "revision-recorded:1";
+    let args = ["run", FILE, "--max-running", "2", "-q"];
+    assert_crashed_at(&rondo_at(a.path(), &args, Some(armed)), armed);
     run(a.path(), &[], 0);
     let grown = points(a.path());
     for (id, p) in &grown {

@@ -1138,16 +1138,9 @@ fn killed_between_sbatch_and_recording_the_job_id_adopts_the_job() {
 /// is asked at most once per poll interval, counted through a logging `squeue` ahead on
 /// PATH. The numbers equal the local run's; both wall times are printed (timings belong in
 /// docs/performance.md, not in assertions).
-#[test]
-fn placement_keeps_light_stages_on_the_host_and_squeue_runs_once_per_interval() {
-    let _serial = serial();
-    if !slurm_or_skip() {
-        return;
-    }
-    let reference = local_reference();
-    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
-    let dir = d.path();
-    campaign_placed(dir, None, true);
+/// A folder `shim/` in `dir` with an `squeue` that appends `date FORMAT` to
+/// `dir/squeue-calls.log` and runs the real one: (the folder for PATH, the log).
+fn squeue_shim(dir: &Path, format: &str) -> (PathBuf, PathBuf) {
     let real = String::from_utf8_lossy(
         &Command::new("sh")
             .args(["-c", "command -v squeue"])
@@ -1162,13 +1155,37 @@ fn placement_keeps_light_stages_on_the_host_and_squeue_runs_once_per_interval() 
     std::fs::create_dir_all(&shim).unwrap_or_else(|e| panic!("{e}"));
     let log = dir.join("squeue-calls.log");
     let script = format!(
-        "#!/bin/sh\ndate +%s.%N >> '{}'\nexec '{real}' \"$@\"\n",
+        "#!/bin/sh\ndate {format} >> '{}'\nexec '{real}' \"$@\"\n",
         log.display()
     );
     std::fs::write(shim.join("squeue"), script).unwrap_or_else(|e| panic!("{e}"));
     use std::os::unix::fs::PermissionsExt;
     std::fs::set_permissions(shim.join("squeue"), std::fs::Permissions::from_mode(0o755))
         .unwrap_or_else(|e| panic!("{e}"));
+    (shim, log)
+}
+
+/// Add `lines` to the `defaults:` of the campaign file in `dir` (after its `retries: 1`).
+fn add_to_defaults(dir: &Path, lines: &str) {
+    let file = dir.join(FILE);
+    let text = std::fs::read_to_string(&file).unwrap_or_else(|e| panic!("{e}"));
+    let from = "  retries: 1\n";
+    assert!(text.contains(from), "the demo's defaults changed");
+    let text = text.replacen(from, &format!("{from}{lines}"), 1);
+    std::fs::write(&file, text).unwrap_or_else(|e| panic!("{e}"));
+}
+
+#[test]
+fn placement_keeps_light_stages_on_the_host_and_squeue_runs_once_per_interval() {
+    let _serial = serial();
+    if !slurm_or_skip() {
+        return;
+    }
+    let reference = local_reference();
+    let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    let dir = d.path();
+    campaign_placed(dir, None, true);
+    let (shim, log) = squeue_shim(dir, "+%s.%N");
     let path = format!("{}:{}", shim.display(), path_with_binaries());
 
     // The same campaign locally, for the wall-time comparison.
@@ -1375,16 +1392,7 @@ fn a_submission_sbatch_refuses_fails_the_point_with_slurms_message() {
     let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
     let dir = d.path();
     campaign_placed(dir, None, true);
-    let file = dir.join(FILE);
-    let text = std::fs::read_to_string(&file).unwrap_or_else(|e| panic!("{e}"));
-    let from = "  retries: 1\n";
-    assert!(text.contains(from), "the demo's defaults changed");
-    let text = text.replacen(
-        from,
-        "  retries: 1\n  resources: { partition: no-such-partition }\n",
-        1,
-    );
-    std::fs::write(&file, text).unwrap_or_else(|e| panic!("{e}"));
+    add_to_defaults(dir, "  resources: { partition: no-such-partition }\n");
     let o = Command::new(rondo())
         .args(["run", FILE, "--on", "slurm", "--poll-interval", "1", "-q"])
         .current_dir(dir)
@@ -1494,12 +1502,7 @@ fn a_job_past_its_time_limit_is_retried_with_twice_the_time() {
     let dir = d.path();
     let engine = engine_first_band(dir, "sleep 600");
     campaign_placed(dir, Some(&engine), true);
-    let file = dir.join(FILE);
-    let text = std::fs::read_to_string(&file).unwrap_or_else(|e| panic!("{e}"));
-    let from = "  retries: 1\n";
-    assert!(text.contains(from), "the demo's defaults changed");
-    let text = text.replacen(from, "  retries: 1\n  resources: { time: \"1\" }\n", 1);
-    std::fs::write(&file, text).unwrap_or_else(|e| panic!("{e}"));
+    add_to_defaults(dir, "  resources: { time: \"1\" }\n");
     let mut bg = Background::run(dir, "run.log");
     let code = bg.exit_code(Duration::from_secs(900));
     let log = std::fs::read_to_string(dir.join("run.log")).unwrap_or_default();
@@ -1551,29 +1554,7 @@ stop:
   max-iterations: 12
 "#;
     std::fs::write(dir.join(FILE), text).unwrap_or_else(|e| panic!("{e}"));
-    let real = String::from_utf8_lossy(
-        &Command::new("sh")
-            .args(["-c", "command -v squeue"])
-            .output()
-            .unwrap_or_else(|e| panic!("{e}"))
-            .stdout,
-    )
-    .trim()
-    .to_string();
-    let shim = dir.join("shim");
-    std::fs::create_dir_all(&shim).unwrap_or_else(|e| panic!("{e}"));
-    let log = dir.join("squeue-calls.log");
-    std::fs::write(
-        shim.join("squeue"),
-        format!(
-            "#!/bin/sh\ndate -u +%Y-%m-%dT%H:%M:%S.%3NZ >> '{}'\nexec '{real}' \"$@\"\n",
-            log.display()
-        ),
-    )
-    .unwrap_or_else(|e| panic!("{e}"));
-    use std::os::unix::fs::PermissionsExt;
-    std::fs::set_permissions(shim.join("squeue"), std::fs::Permissions::from_mode(0o755))
-        .unwrap_or_else(|e| panic!("{e}"));
+    let (shim, log) = squeue_shim(dir, "-u +%Y-%m-%dT%H:%M:%S.%3NZ");
     let o = Command::new(rondo())
         .args(["run", FILE, "--on", "slurm", "--poll-interval", "1", "-q"])
         .current_dir(dir)

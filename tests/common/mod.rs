@@ -64,6 +64,34 @@ pub fn demo_in(dir: &Path, campaign: &str) {
     }
 }
 
+/// `rondo ARGS` in `dir`, with the failpoint `armed` (`NAME:N`) or none (a binary built
+/// with the `failpoints` feature, as the tests' is).
+pub fn rondo_at(dir: &Path, args: &[&str], armed: Option<&str>) -> Output {
+    let mut c = Command::new(rondo());
+    c.args(args)
+        .current_dir(dir)
+        .env("PATH", path_with_binaries())
+        .env_remove(rondo::failpoint::VARIABLE);
+    if let Some(a) = armed {
+        c.env(rondo::failpoint::VARIABLE, a);
+    }
+    c.output()
+        .unwrap_or_else(|e| panic!("cannot run rondo: {e}"))
+}
+
+/// The run crashed at its armed failpoint: SIGKILL after the failpoint's line on stderr.
+pub fn assert_crashed_at(o: &Output, armed: &str) {
+    use std::os::unix::process::ExitStatusExt;
+    let (name, n) = armed.split_once(':').unwrap_or((armed, "?"));
+    let line = format!("rondo: failpoint {name} hit {n}: crashing");
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        o.status.signal() == Some(libc::SIGKILL) && stderr.contains(&line),
+        "armed {armed}: expected a crash there (SIGKILL after `{line}`), got {}",
+        shown(o)
+    );
+}
+
 /// Run rondo with arguments in `dir`.
 pub fn run_rondo(dir: &Path, args: &[&str]) -> Output {
     Command::new(rondo())
