@@ -202,7 +202,7 @@ fn unweight(layout: &[Block], mixed: &[f64]) -> Vec<f64> {
 }
 
 /// A file's content, encoded, waiting to be written.
-enum Payload {
+pub(super) enum Payload {
     Npy(NpyArray),
     Bytes(Vec<u8>),
     /// A copy of the HDF5 input file with these datasets holding these values.
@@ -241,7 +241,12 @@ fn encode_outputs<'a>(
 }
 
 /// One role's mixed values in the form of its input.
-fn encode_block(b: &Block, l: Loaded, role: &str, part: Vec<f64>) -> Result<Payload, String> {
+pub(super) fn encode_block(
+    b: &Block,
+    l: Loaded,
+    role: &str,
+    part: Vec<f64>,
+) -> Result<Payload, String> {
     match (&b.kind, l.json) {
         (BlockKind::NpyReal { shape }, _) | (BlockKind::NpyComplex { shape }, _) => {
             let complex = matches!(b.kind, BlockKind::NpyComplex { .. });
@@ -303,7 +308,7 @@ fn encode_state(layout: &[Block], mixer: &MixerState) -> Result<Payload, String>
 }
 
 /// Write every encoded file, each atomically.
-fn write_all(files: &[(&Path, Payload)]) -> Result<(), String> {
+pub(super) fn write_all(files: &[(&Path, Payload)]) -> Result<(), String> {
     for (path, payload) in files {
         match payload {
             Payload::Npy(arr) => arr.write(path),

@@ -1,6 +1,8 @@
 //! Built-in stages that run inside rondo instead of as a program: the mixer (`mix`, several
 //! arrays as one vector) and the Legendre noise filter (`filter`), and `rondo builtin
-//! mix|filter`, the argument list recorded and run for every built-in attempt (`command`).
+//! mix|filter`, the argument list recorded and run for every built-in attempt (`command`);
+//! and the linear blend of two files in the mixer's formats that starts a warm-started
+//! point between two converged neighbours (`blend`).
 //!
 //! Every built-in is a [`Builtin`]: it holds its stage's settings, receives its input and
 //! output files by role ([`StageFiles`]), and returns its metrics and any event
@@ -12,12 +14,14 @@ use std::path::{Path, PathBuf};
 
 use crate::validate::Metric;
 
+mod blend;
 mod command;
 mod filter;
 mod hdf5_blocks;
 mod layout;
 mod mix;
 
+pub use blend::blend;
 pub use command::{run_argv, BuiltinCommand, FilterArgs, MixArgs};
 pub use filter::{filter, Filter};
 pub use mix::{config, mix, mix_pairs, Mix, STATE_FILE};

@@ -687,7 +687,11 @@ async fn input_hash(
                     .output_artifact(point, iteration - 1, stage, role)
                     .await
             } else {
-                // A point warm-started by a revision: its neighbour's last good output.
+                // A point warm-started by a revision: the blend of the two converged points
+                // around it, else its nearest neighbour's last good output.
+                if let Some(a) = store.warm_blend(point, stage, role).await? {
+                    return Ok(Some(a));
+                }
                 if let Some((source, it)) = store.warm_source(point).await? {
                     if let Some(a) = store.output_artifact(&source, it, stage, role).await? {
                         return Ok(Some(a));

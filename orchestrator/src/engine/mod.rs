@@ -56,6 +56,7 @@ mod resume;
 pub mod revise;
 mod settle;
 mod shutdown;
+mod warm;
 mod workspace;
 
 use iterate::{record_verdict, verdict_failpoints};

@@ -16,6 +16,13 @@ pub struct Revised {
     pub points: Vec<PointSpec>,
 }
 
+/// Where a revision may write content: the workspace's artifact store, and a folder for
+/// files on their way into it.
+pub struct StoreAt<'a> {
+    pub artifacts: &'a ArtifactStore,
+    pub scratch: &'a Path,
+}
+
 /// The classification of `campaign` against the workspace's latest revision, and whether
 /// the text is that revision's (then the classification only maps the points to the
 /// store's ids). Nothing is written.
@@ -69,6 +76,7 @@ async fn histories(pool: &SqlitePool, stored: &[StoredPoint]) -> Result<HashMap<
 /// edited text classified and, unless refused, recorded as the next revision.
 pub async fn settle_revision(
     pool: &SqlitePool,
+    at: &StoreAt<'_>,
     campaign: &Campaign,
     accept: bool,
 ) -> Result<Revised> {
@@ -91,7 +99,7 @@ pub async fn settle_revision(
             c.text()
         )));
     }
-    record(pool, campaign, &c, accept).await?;
+    record(pool, at, campaign, &c, accept).await?;
     Ok(Revised {
         number: c.number,
         points: c.points,
@@ -101,6 +109,7 @@ pub async fn settle_revision(
 /// Write an accepted revision in one transaction.
 async fn record(
     pool: &SqlitePool,
+    at: &StoreAt<'_>,
     campaign: &Campaign,
     c: &Classification,
     accept: bool,
@@ -127,7 +136,7 @@ async fn record(
         .map(|p| (p.id.clone(), p.index as i64, values_json(p).to_string()))
         .collect();
     s.points_added(n, &added);
-    if !campaign.warm_start.is_empty() {
+    if let Some(warm) = &campaign.warm_start {
         let stored = revisions::stored_points(pool).await?;
         let leaving: Vec<&str> = c
             .retired
@@ -136,26 +145,38 @@ async fn record(
             .chain(c.rerun.iter().map(|(old, _, _)| old.as_str()))
             .chain(c.reopened.iter().map(|r| r.point.as_str()))
             .collect();
+        let cx = super::warm::WarmContext {
+            campaign,
+            warm,
+            stored: &stored,
+            leaving: &leaving,
+            artifacts: at.artifacts,
+            scratch: at.scratch,
+        };
+        let mut ledger = store::Ledger::new(pool.clone());
+        let reads = ledger.flush().await?;
         for p in c
             .points
             .iter()
             .filter(|p| c.added.iter().any(|(id, _)| *id == p.id))
         {
-            let Some((source, iteration, distance)) =
-                nearest_converged(&campaign.warm_start, p, &stored, &leaving)
-            else {
+            let Some(choice) = super::warm::choose(&cx, &reads, p).await? else {
                 continue;
             };
-            s.warm_start(&p.id, &source, iteration, distance);
+            let n = &choice.nearest;
+            s.warm_start(&p.id, &n.point, n.iteration, choice.distance);
+            for b in &choice.blends {
+                s.warm_blend(&p.id, b);
+            }
             s.event(
                 "warm-start",
                 Some(&p.id),
                 Some(1),
                 None,
                 &format!(
-                    "revision {n}: starts from {source} iteration {iteration} (distance \
-                     {distance} along {})",
-                    campaign.warm_start.join(", ")
+                    "revision {}: {}",
+                    c.number,
+                    super::warm::describe(&choice, warm)
                 ),
             );
         }
@@ -194,62 +215,4 @@ async fn record(
     );
     s.event("campaign-revised", None, None, None, &summary);
     s.commit(pool, Failpoint::RevisionRecorded).await
-}
-
-/// The converged point nearest to `p` along the `along` axes, among those equal to it on
-/// every other axis and not leaving the campaign: (its id, last good iteration, distance).
-/// Distance is the sum of the absolute differences along the axes; ties go to the point
-/// recorded first, so the choice depends only on the store.
-fn nearest_converged(
-    along: &[String],
-    p: &PointSpec,
-    stored: &[StoredPoint],
-    leaving: &[&str],
-) -> Option<(String, u32, f64)> {
-    let mine = values_json(p);
-    let mut best: Option<(f64, i64, String, u32)> = None;
-    for s in stored {
-        let (PointState::Converged, Some(it), None) = (s.state, s.last_good, s.retired_in) else {
-            continue;
-        };
-        if leaving.contains(&s.id.as_str()) || s.id == p.id {
-            continue;
-        }
-        let Ok(theirs) = serde_json::from_str::<serde_json::Value>(&s.values_json) else {
-            continue;
-        };
-        let (Some(a), Some(b)) = (mine.as_object(), theirs.as_object()) else {
-            continue;
-        };
-        let same_elsewhere = a
-            .iter()
-            .filter(|(k, _)| !along.contains(k))
-            .all(|(k, v)| b.get(k) == Some(v))
-            && a.len() == b.len();
-        if !same_elsewhere {
-            continue;
-        }
-        let mut d = 0.0;
-        for axis in along {
-            let (Some(x), Some(y)) = (
-                a.get(axis).and_then(serde_json::Value::as_f64),
-                b.get(axis).and_then(serde_json::Value::as_f64),
-            ) else {
-                d = f64::NAN;
-                break;
-            };
-            d += (x - y).abs();
-        }
-        if !d.is_finite() {
-            continue;
-        }
-        let better = match &best {
-            None => true,
-            Some((bd, bidx, _, _)) => d < *bd || (d == *bd && s.idx < *bidx),
-        };
-        if better {
-            best = Some((d, s.idx, s.id.clone(), it));
-        }
-    }
-    best.map(|(d, _, id, it)| (id, it, d))
 }

@@ -58,7 +58,11 @@ pub async fn prepare_workspace(
     };
     let workspace_id = match store::campaign_row(&pool).await? {
         Some(row) => {
-            revised = super::revise::settle_revision(&pool, campaign, accept).await?;
+            let at = super::revise::StoreAt {
+                artifacts: &artifacts,
+                scratch: &paths.scratch,
+            };
+            revised = super::revise::settle_revision(&pool, &at, campaign, accept).await?;
             row.workspace_id
         }
         None => {

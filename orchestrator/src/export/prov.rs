@@ -2,7 +2,7 @@
 //! Submission "PROV-JSON", 2013, of the PROV data model, W3C Recommendation PROV-DM 2013):
 //! artifacts are entities, attempts and report generations are activities, the programs
 //! (by BLAKE3) and the user are agents; the campaign file is the plan the user's
-//! association follows.
+//! association follows; a warm-start blend is derived from its two sources.
 //!
 //! Reads through [`crate::query`] and [`crate::store::reads`]; knows no engine and no
 //! scheduler.
@@ -14,6 +14,7 @@ use serde_json::{json, Map, Value};
 use sqlx::SqlitePool;
 
 use crate::query::{self, AttemptRecord, StartFile, Target};
+use crate::store::reads::artifacts::Blend;
 use crate::store::reads::{artifacts, attempts};
 
 /// rondo's namespace: a UUID URN (RFC 9562, the IANA-registered `uuid` namespace) minted
@@ -94,10 +95,10 @@ pub async fn export_as(pool: &SqlitePool, target: Option<&str>, user: &str) -> R
 async fn records_of(
     pool: &SqlitePool,
     target: Option<&Target>,
-) -> Result<(Vec<AttemptRecord>, Vec<StartFile>)> {
+) -> Result<(Vec<AttemptRecord>, Vec<StartFile>, Vec<Blend>)> {
     if let Some(t) = target {
         let l = query::lineage_of(pool, t).await?;
-        return Ok((l.attempts, l.sources));
+        return Ok((l.attempts, l.sources, l.blends));
     }
     let mut recs = Vec::new();
     for id in attempts::started_ids(pool).await? {
@@ -111,7 +112,7 @@ async fn records_of(
         .into_iter()
         .map(|(name, hash)| StartFile { name, hash })
         .collect();
-    Ok((recs, sf))
+    Ok((recs, sf, artifacts::blends(pool, None).await?))
 }
 
 /// The artifacts an export names: the target, every artifact for a whole campaign, and
@@ -339,6 +340,22 @@ impl Doc {
         }
     }
 
+    /// A warm-start blend: derived from each of its two sources (no activity of its own:
+    /// rondo made it when the revision was recorded), with the weight and axis.
+    fn add_blend(&mut self, b: &Blend) {
+        for (src, which) in [(&b.first, "first"), (&b.second, "second")] {
+            self.rel(
+                "wasDerivedFrom",
+                json!({"prov:generatedEntity": format!("art:{}", b.artifact),
+                       "prov:usedEntity": format!("art:{}", src.artifact),
+                       "prov:type": qname("rondo:WarmStartInterpolation"),
+                       "rondo:source": which, "rondo:point": src.point,
+                       "rondo:iteration": src.iteration, "rondo:axis": b.axis,
+                       "rondo:weight": b.weight, "rondo:startsPoint": b.point}),
+            );
+        }
+    }
+
     /// The finished PROV-JSON document (null times dropped: an unfinished activity has no
     /// end), with the prefixes of workspace `workspace_id`.
     fn into_json(mut self, workspace_id: &str) -> Value {
@@ -383,8 +400,15 @@ pub async fn export_target(
         .await?
         .map(|c| c.workspace_id)
         .context("this workspace has no campaign recorded")?;
-    let (records, start) = records_of(pool, target).await?;
-    let hashes = hashes_of(pool, target, &records, &start).await?;
+    let (records, start, blends) = records_of(pool, target).await?;
+    let mut hashes = hashes_of(pool, target, &records, &start).await?;
+    for b in &blends {
+        hashes.extend([
+            b.artifact.clone(),
+            b.first.artifact.clone(),
+            b.second.artifact.clone(),
+        ]);
+    }
     let mut doc = Doc {
         entity: Map::new(),
         activity: Map::new(),
@@ -421,6 +445,9 @@ pub async fn export_target(
         doc.add_activity(r, &act)?;
         let agent = doc.program_agent(r);
         doc.add_relations(r, &act, &agent, &user_id, &plan);
+    }
+    for b in &blends {
+        doc.add_blend(b);
     }
     Ok(doc.into_json(&workspace_id))
 }

@@ -1,6 +1,6 @@
 //! The upstream lineage of a target (`rondo trace`): the attempts or generations that
 //! produced it, the attempts that produced their inputs, and so on, breadth-first, with the
-//! campaign start files reached; and the depth limit of the text view. Reads the store
+//! campaign start files and the warm-start blends reached; and the depth limit of the text view. Reads the store
 //! through [`crate::store::reads`] only; knows no engine and no scheduler.
 
 use std::collections::{BTreeMap, BTreeSet, HashSet, VecDeque};
@@ -12,6 +12,7 @@ use sqlx::SqlitePool;
 use super::generations::producing_reports;
 use super::records::{campaign, load_attempt, AttemptRecord, CampaignRef, StartFile};
 use super::target::{FinalTarget, MetricTarget, Target};
+use crate::store::reads::artifacts::Blend;
 use crate::store::reads::{artifacts, attempts};
 use crate::store::AttemptState;
 
@@ -31,6 +32,10 @@ pub struct Lineage {
     pub attempts: Vec<AttemptRecord>,
     /// Campaign start files reached.
     pub sources: Vec<StartFile>,
+    /// Inputs of warm-started points interpolated between two converged points (each
+    /// followed to the attempts that made its two sources).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub blends: Vec<Blend>,
     /// Artifacts of the lineage whose content a retention policy removed from the store (the
     /// records stay): hash, policy, when.
     #[serde(skip_serializing_if = "Vec::is_empty")]
@@ -118,6 +123,7 @@ struct Walk {
     queue: VecDeque<i64>,
     attempts: Vec<AttemptRecord>,
     sources: BTreeSet<StartFile>,
+    blends: BTreeSet<Blend>,
     direct: Vec<(String, i64)>,
     anchors: Vec<i64>,
 }
@@ -142,6 +148,19 @@ impl Walk {
         Ok(())
     }
 
+    /// Note the blends among the names of artifact `hash`, and queue the attempts that made
+    /// their two sources.
+    async fn blends(&mut self, pool: &SqlitePool, hash: &str) -> Result<()> {
+        for b in artifacts::blends(pool, Some(hash)).await? {
+            for src in [&b.first, &b.second] {
+                self.queue
+                    .extend(producers(pool, &src.artifact, Some(&src.point)).await?);
+            }
+            self.blends.insert(b);
+        }
+        Ok(())
+    }
+
     /// Start at the producers of an artifact: attempts, or else report and analysis
     /// generations (which start the walk at the attempts whose metrics they read).
     async fn start_at_artifact(&mut self, pool: &SqlitePool, hash: &str) -> Result<()> {
@@ -159,6 +178,9 @@ impl Walk {
             }
         }
         self.start_files(pool, hash).await?;
+        if producing.is_empty() {
+            self.blends(pool, hash).await?;
+        }
         if self.queue.is_empty() && self.attempts.is_empty() && self.sources.is_empty() {
             bail!(
                 "artifact {hash} is recorded but no attempt produced it and it is not a start file; \
@@ -178,6 +200,7 @@ impl Walk {
             let rec = load_attempt(pool, id).await?;
             for hash in rec.inputs.values() {
                 self.start_files(pool, hash).await?;
+                self.blends(pool, hash).await?;
                 for p in producers(pool, hash, rec.point.as_deref()).await? {
                     if !seen.contains(&p) {
                         self.queue.push_back(p);
@@ -246,6 +269,7 @@ pub async fn lineage_of(pool: &SqlitePool, target: &Target) -> Result<Lineage> {
         campaign,
         attempts: walk.attempts,
         sources: walk.sources.into_iter().collect(),
+        blends: walk.blends.into_iter().collect(),
         omitted_attempts: None,
         direct: walk.direct,
         anchors: walk.anchors,

@@ -156,6 +156,28 @@ impl Lineage {
                 let _ = writeln!(s, "  {:<10} {}", f.name, f.hash);
             }
         }
+        if !self.blends.is_empty() {
+            let _ = writeln!(s);
+            let _ = writeln!(s, "warm starts interpolated between converged points:");
+            for b in &self.blends {
+                let _ = writeln!(
+                    s,
+                    "  {} first {}.{} of {} = A + {}·(B − A) along {}\n    A {} ({} iteration {})\n    B {} ({} iteration {})",
+                    b.artifact,
+                    b.stage,
+                    b.role,
+                    b.point,
+                    b.weight,
+                    b.axis,
+                    b.first.artifact,
+                    b.first.point,
+                    b.first.iteration,
+                    b.second.artifact,
+                    b.second.point,
+                    b.second.iteration
+                );
+            }
+        }
         s
     }
 

@@ -21,14 +21,14 @@ use std::path::Path;
 pub use model::{
     BadInput, Campaign, CaseFolder, Diagnostic, DiskFree, EnergyUnit, EosAnalysis, Hooks, Initial,
     Keep, MetricSource, Placement, PointSelection, PointSpec, PointsRead, ResolvedProgram, Rule,
-    RuleTest, Schedule, Section, Source, SourceKind, SpecErrors, Stage, StageKind,
+    RuleTest, Schedule, Section, Source, SourceKind, SpecErrors, Stage, StageKind, WarmStart,
     CASE_FOLDER_ROLE, EOS_STAGE, FILTER_METRICS, HOOK_EVENTS, LEGACY_ROLE,
 };
 pub use raw::{
     AnalysisSpec, BuiltinSettings, CampaignFile, Combine, Compare, Defaults, EosModelName, EosSpec,
     FilterSettings, InputSpec, MetricSourceSpec, MixMethod, MixSettings, OrderedMap, OutputSpec,
     PointsInput, PreviousInput, Program, RuleSpec, RunSpec, Scalar, ScheduleSpec, StageSpec,
-    StopSpec, Sweep,
+    StopSpec, Sweep, WarmEstimate,
 };
 pub use validate::{is_executable, parse_duration, resolve_program};
 

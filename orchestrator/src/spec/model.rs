@@ -14,7 +14,9 @@ use rondo_adapters::executor::Resources;
 use rondo_adapters::template::Template;
 
 pub use super::raw::Placement;
-use super::raw::{Combine, Compare, EosModelName, FilterSettings, MixSettings, Scalar};
+use super::raw::{
+    Combine, Compare, EosModelName, FilterSettings, MixSettings, Scalar, WarmEstimate,
+};
 
 /// The role of the single input of the older one-array form of the built-in `mix`
 /// (`inputs: { new: ... }`), whose one output may have any role name.
@@ -497,9 +499,17 @@ pub struct Campaign {
     pub hooks: Hooks,
     /// The campaign's budget in core-hours, if it states one.
     pub budget_core_hours: Option<f64>,
-    /// `warm-start: { along }`: the sweep axes a point added by a revision is warm-started
-    /// along (empty: every point starts from the start files).
-    pub warm_start: Vec<String>,
+    /// `warm-start:`: where points added by a revision start (none: from the start files).
+    pub warm_start: Option<WarmStart>,
+}
+
+/// `warm-start: { along, estimate }`, checked.
+#[derive(Debug, Clone, PartialEq)]
+pub struct WarmStart {
+    /// The sweep axes a point is warm-started along (numeric, at least one).
+    pub along: Vec<String>,
+    /// Interpolate between two enclosing converged points, or take the nearest.
+    pub estimate: WarmEstimate,
 }
 
 /// The events a hook may be named for, as the campaign file and the event JSON spell them.

@@ -746,15 +746,33 @@ pub struct CampaignFile {
 }
 
 /// `warm-start: { along: [volume] }`: a point added to a workspace by a revision takes,
-/// for every `previous:` input of its first iteration, the last good iteration's output of
-/// the nearest converged point along these axes (among the points equal to it on every
-/// other sweep axis); without one it starts from the start files.
+/// for every `previous:` input of its first iteration, the last good iteration's outputs of
+/// converged points along these axes (among the points equal to it on every other sweep
+/// axis): interpolated between the two that enclose it (`estimate: linear`, the default),
+/// or the nearest one's; without any it starts from the start files.
 #[derive(Debug, Clone, Deserialize, JsonSchema)]
 #[serde(deny_unknown_fields, rename_all = "kebab-case")]
 pub struct WarmStartSpec {
     /// Sweep axes along which distance is measured (numeric values).
     #[schemars(with = "Vec<String>")]
     pub along: Spanned<Vec<Spanned<String>>>,
+    /// How the start is made from the converged points (default `linear`).
+    #[serde(default)]
+    pub estimate: WarmEstimate,
+}
+
+/// How a warm-started point's first inputs are made.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Deserialize, JsonSchema, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum WarmEstimate {
+    /// Between two converged points along one axis (equal on every other axis), each input
+    /// rondo reads as numbers (the formats of the built-in `mix`) is their linear
+    /// interpolation at the point's value; every other input, and a point outside the
+    /// converged range, takes the nearest converged point's output.
+    #[default]
+    Linear,
+    /// Every input is the nearest converged point's output.
+    Nearest,
 }
 
 /// A hook's command: `[program, args...]`, run without a shell and without placeholders

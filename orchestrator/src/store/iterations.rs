@@ -181,6 +181,18 @@ impl Flushed<'_> {
         Ok(row.map(|(p, i)| (p, u32::try_from(i).unwrap_or(0))))
     }
 
+    /// The blended first input `stage.role` of a warm-started point (`warm_blends`).
+    pub async fn warm_blend(&self, point: &str, stage: &str, role: &str) -> Result<Option<String>> {
+        Ok(sqlx::query_scalar(
+            "SELECT artifact FROM warm_blends WHERE point = ? AND stage = ? AND role = ?",
+        )
+        .bind(point)
+        .bind(stage)
+        .bind(role)
+        .fetch_optional(self.pool)
+        .await?)
+    }
+
     /// The artifact of a start file.
     pub async fn start_artifact(&self, name: &str) -> Result<Option<String>> {
         Ok(

@@ -40,7 +40,7 @@ use sqlx::sqlite::{
 /// The schema migrations, in order.
 pub fn migrator() -> Migrator {
     // (version, description, SQL), in order.
-    let steps: [(i64, &str, &'static str); 12] = [
+    let steps: [(i64, &str, &'static str); 13] = [
         (
             1,
             "initial",
@@ -100,6 +100,11 @@ pub fn migrator() -> Migrator {
             12,
             "warm starts",
             include_str!("../../migrations/0012_warm_starts.sql"),
+        ),
+        (
+            13,
+            "warm blends",
+            include_str!("../../migrations/0013_warm_blends.sql"),
         ),
     ];
     let m: Vec<Migration> = steps

@@ -108,6 +108,25 @@ pub async fn stored_points(pool: &SqlitePool) -> Result<Vec<StoredPoint>> {
     Ok(out)
 }
 
+/// One blended first input of a warm-started point (`warm_blends`): the output `role` of
+/// `stage` interpolated between two converged points' last good iterations.
+#[derive(Debug, Clone, PartialEq)]
+pub struct WarmBlend {
+    pub stage: String,
+    pub role: String,
+    /// The blend, already in the artifact store: hash, size and file name.
+    pub artifact: String,
+    pub size: u64,
+    pub name: String,
+    /// The sweep axis interpolated along.
+    pub axis: String,
+    /// (point, iteration, artifact) of the two sources.
+    pub first: (String, u32, String),
+    pub second: (String, u32, String),
+    /// t: artifact = first + t·(second − first).
+    pub weight: f64,
+}
+
 /// A point a revision adds: (id, index, sweep values as JSON).
 pub type AddedPoint = (String, i64, String);
 
@@ -160,6 +179,35 @@ impl Script {
         .bind(source.to_string())
         .bind(i64::from(iteration))
         .bind(distance);
+    }
+
+    /// A blended first input of the warm-started `point`, and its artifact.
+    pub fn warm_blend(&mut self, point: &str, b: &WarmBlend) {
+        self.stmt(
+            "INSERT INTO artifacts(hash, size, original_name, created_at) VALUES (?,?,?,?) \
+             ON CONFLICT(hash) DO NOTHING",
+        )
+        .bind(b.artifact.clone())
+        .bind(i64::try_from(b.size).unwrap_or(i64::MAX))
+        .bind(b.name.clone())
+        .bind(now());
+        self.stmt(
+            "INSERT INTO warm_blends(point, stage, role, artifact, axis, first_point, \
+             first_iteration, first_artifact, second_point, second_iteration, second_artifact, \
+             weight) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
+        )
+        .bind(point.to_string())
+        .bind(b.stage.clone())
+        .bind(b.role.clone())
+        .bind(b.artifact.clone())
+        .bind(b.axis.clone())
+        .bind(b.first.0.clone())
+        .bind(i64::from(b.first.1))
+        .bind(b.first.2.clone())
+        .bind(b.second.0.clone())
+        .bind(i64::from(b.second.1))
+        .bind(b.second.2.clone())
+        .bind(b.weight);
     }
 
     /// A point leaves the campaign (kept with its history).

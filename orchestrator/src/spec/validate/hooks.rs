@@ -1,6 +1,7 @@
-//! `hooks:` (programs run on events, their time limit and the disk-low threshold) and
-//! `budget:` (core-hours). A hook's program is not looked for here: one that is missing
-//! when its event comes is logged (`hook-failed`) and never stops the campaign.
+//! `hooks:` (programs run on events, their time limit and the disk-low threshold),
+//! `budget:` (core-hours) and `warm-start:` (its axes). A hook's program is not looked for
+//! here: one that is missing when its event comes is logged (`hook-failed`) and never stops
+//! the campaign.
 
 use std::collections::BTreeMap;
 use std::path::Path;
@@ -8,8 +9,8 @@ use std::path::Path;
 use serde_saphyr::Spanned;
 
 use super::{loc, parse_duration, Validator};
-use crate::spec::model::{DiskFree, Hooks, PointSpec, HOOK_EVENTS};
-use crate::spec::raw::{CampaignFile, HookCommand, Scalar};
+use crate::spec::model::{DiskFree, Hooks, PointSpec, WarmStart, HOOK_EVENTS};
+use crate::spec::raw::{CampaignFile, HookCommand, Scalar, WarmStartSpec};
 
 impl Validator<'_> {
     /// `hooks:` → the hooks model (relative program paths made absolute from `base`).
@@ -126,10 +127,21 @@ impl Validator<'_> {
 
 impl Validator<'_> {
     /// `warm-start: { along: [AXIS, ...] }` → the axes: each a numeric sweep axis, once.
-    pub(super) fn warm_start(&mut self, raw: &CampaignFile, points: &[PointSpec]) -> Vec<String> {
-        let Some(w) = raw.warm_start.as_ref() else {
-            return Vec::new();
-        };
+    pub(super) fn warm_start(
+        &mut self,
+        raw: &CampaignFile,
+        points: &[PointSpec],
+    ) -> Option<WarmStart> {
+        let w = raw.warm_start.as_ref()?;
+        let along = self.warm_axes(w, points);
+        (!along.is_empty()).then_some(WarmStart {
+            along,
+            estimate: w.estimate,
+        })
+    }
+
+    /// The checked axes of `warm-start: { along }`.
+    fn warm_axes(&mut self, w: &WarmStartSpec, points: &[PointSpec]) -> Vec<String> {
         if w.along.value.is_empty() {
             self.push(
                 loc(&w.along),

@@ -1,4 +1,4 @@
-//! Reads of the `artifacts` and `start_files` tables.
+//! Reads of the `artifacts`, `start_files` and `warm_blends` tables.
 
 use anyhow::{Context, Result};
 use sqlx::{Row, SqlitePool};
@@ -124,4 +124,63 @@ pub async fn first_folder_holding(
     .fetch_optional(pool)
     .await?;
     row.map(|r| Ok((r.try_get(0)?, r.try_get(1)?))).transpose()
+}
+
+/// A blended first input of a warm-started point (`warm_blends`), as lineage and PROV show
+/// it: `artifact = first + weight·(second − first)` along `axis`.
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, serde::Serialize)]
+pub struct Blend {
+    pub artifact: String,
+    /// The point it starts, and the `previous:` source it stands in for.
+    pub point: String,
+    pub stage: String,
+    pub role: String,
+    pub axis: String,
+    /// The weight, as text (exact, and orderable).
+    pub weight: String,
+    pub first: BlendSource,
+    pub second: BlendSource,
+}
+
+/// One of the two converged outputs a blend is made of.
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, serde::Serialize)]
+pub struct BlendSource {
+    pub point: String,
+    pub iteration: i64,
+    pub artifact: String,
+}
+
+/// The blends recorded with artifact `hash` (every blend when `hash` is `None`).
+pub async fn blends(pool: &SqlitePool, hash: Option<&str>) -> Result<Vec<Blend>> {
+    let rows = sqlx::query(
+        "SELECT artifact, point, stage, role, axis, weight, first_point, first_iteration, \
+         first_artifact, second_point, second_iteration, second_artifact FROM warm_blends \
+         WHERE ?1 IS NULL OR artifact = ?1 ORDER BY point, stage, role",
+    )
+    .bind(hash)
+    .fetch_all(pool)
+    .await
+    .context("cannot read the warm-start blends")?;
+    let mut out = Vec::new();
+    for r in rows {
+        out.push(Blend {
+            artifact: r.try_get(0)?,
+            point: r.try_get(1)?,
+            stage: r.try_get(2)?,
+            role: r.try_get(3)?,
+            axis: r.try_get(4)?,
+            weight: r.try_get::<f64, _>(5)?.to_string(),
+            first: BlendSource {
+                point: r.try_get(6)?,
+                iteration: r.try_get(7)?,
+                artifact: r.try_get(8)?,
+            },
+            second: BlendSource {
+                point: r.try_get(9)?,
+                iteration: r.try_get(10)?,
+                artifact: r.try_get(11)?,
+            },
+        });
+    }
+    Ok(out)
 }
