@@ -593,8 +593,11 @@ fn an_added_volume_between_two_converged_ones_starts_from_their_interpolation() 
          energy {ew} eV warm, {ec} eV cold, difference {:.2e} eV",
         (ew - ec).abs()
     );
+    // Hubbard-I is deterministic, so are the counts (3 against 8 when written); the goal
+    // for a grown study is at most 60 % of a cold start's iterations (the demo-sized
+    // measurement: scripts/warm-start-study, docs/performance.md).
     assert!(
-        warm_iterations < cold_iterations,
+        warm_iterations as f64 <= 0.6 * cold_iterations as f64,
         "warm {warm_iterations} iterations, cold {cold_iterations}"
     );
     // As in the nearest-neighbour test: n_f within 1e-6 between iterations bounds the
