@@ -545,3 +545,58 @@ fn an_added_volume_warm_starts_from_its_converged_neighbour() {
     // bounds how far two converged runs may sit apart.
     assert!((ew - ec).abs() < 1.0e-4, "warm {ew} eV, cold {ec} eV");
 }
+
+/// `rondo submit`: an edit that changes the physics is refused before any script is written
+/// or job asked for, with the diff `rondo check` prints; `--accept-revision` passes it on to
+/// the `rondo run` of the batch script (and without the flag the script has none).
+#[test]
+fn submit_refuses_an_unaccepted_physics_edit_early_and_passes_the_flag_on() {
+    let _ = model_solid();
+    let d = tempdir();
+    let dir = d.path();
+    write(dir, &campaign("27.0", "1200", "1.0e-3", 12, "6.0"));
+    run(dir, &[], 0);
+    let script = dir.join("model-sweep.allocation.sh");
+    let submit = |extra: &[&str]| {
+        let mut args = vec!["submit", FILE, "--time", "10", "--print-only"];
+        args.extend_from_slice(extra);
+        run_rondo(dir, &args)
+    };
+    let exec_line = |o: &std::process::Output| {
+        String::from_utf8_lossy(&o.stdout)
+            .lines()
+            .find(|l| l.starts_with("exec ") && l.contains(" run "))
+            .unwrap_or_else(|| panic!("no `exec … run` line: {}", shown(o)))
+            .to_string()
+    };
+    // Unchanged file: the script runs the campaign without the flag.
+    let o = submit(&[]);
+    assert!(o.status.success(), "{}", shown(&o));
+    assert!(!exec_line(&o).contains("--accept-revision"), "{}", shown(&o));
+    std::fs::remove_file(&script).unwrap_or_else(|e| panic!("{e}"));
+
+    // A parameter changed: refused here (exit 2) with the diff, no script written.
+    write(dir, &campaign("27.0", "1200", "1.0e-3", 12, "5.5"));
+    let o = submit(&[]);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("parameters.u: 6.0 → 5.5") && err.contains("--accept-revision"),
+        "{err}"
+    );
+    assert!(!script.exists(), "a refused submit wrote its script");
+
+    // Accepted: the script's `rondo run` carries the flag; nothing is recorded yet.
+    let o = submit(&["--accept-revision"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let line = exec_line(&o);
+    assert!(line.ends_with(" --accept-revision"), "{line}");
+    assert!(std::fs::read_to_string(&script)
+        .unwrap_or_default()
+        .contains(&line));
+    assert_eq!(
+        strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"),
+        ["1"],
+        "submit only classifies; the run inside the allocation records the revision"
+    );
+}

@@ -430,6 +430,11 @@ struct SubmitArgs {
     /// Only write and print the script.
     #[arg(long)]
     print_only: bool,
+    /// Accept an edited campaign file that changes what its points compute (passed on to
+    /// `rondo run --accept-revision` in the script). Without it, such an edit is refused
+    /// here, before any allocation is asked for.
+    #[arg(long)]
+    accept_revision: bool,
 }
 
 /// Entry point of the binary.
