@@ -572,7 +572,11 @@ fn submit_refuses_an_unaccepted_physics_edit_early_and_passes_the_flag_on() {
     // Unchanged file: the script runs the campaign without the flag.
     let o = submit(&[]);
     assert!(o.status.success(), "{}", shown(&o));
-    assert!(!exec_line(&o).contains("--accept-revision"), "{}", shown(&o));
+    assert!(
+        !exec_line(&o).contains("--accept-revision"),
+        "{}",
+        shown(&o)
+    );
     std::fs::remove_file(&script).unwrap_or_else(|e| panic!("{e}"));
 
     // A parameter changed: refused here (exit 2) with the diff, no script written.
@@ -598,5 +602,160 @@ fn submit_refuses_an_unaccepted_physics_edit_early_and_passes_the_flag_on() {
         strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"),
         ["1"],
         "submit only classifies; the run inside the allocation records the revision"
+    );
+}
+
+/// `--with-retired`: `rondo table finals`, `rondo analyze` and `rondo report` leave a
+/// retired point out by default and include it, marked with the revision that retired it,
+/// with the flag; `rondo table metrics` always holds its rows, marked.
+#[test]
+fn with_retired_brings_retired_points_back_marked_into_tables_analyses_and_reports() {
+    let _ = model_solid();
+    let d = tempdir();
+    let dir = d.path();
+    let eos = "analysis:\n  eos: { energy: update.energy, volume: volume }\n";
+    write(
+        dir,
+        &(campaign("27.0, 28.0, 29.0", "1200", "1.0e-3", 12, "6.0") + eos),
+    );
+    run(dir, &[], 0);
+    // 27.0 removed: p001 is retired in revision 2.
+    write(
+        dir,
+        &(campaign("28.0, 29.0", "1200", "1.0e-3", 12, "6.0") + eos),
+    );
+    run(dir, &[], 0);
+    assert_eq!(points(dir)["p001"].1, Some(2));
+    let wsp = ws(dir).display().to_string();
+    let rondo_ok = |args: &[&str]| {
+        let o = run_rondo(dir, args);
+        assert!(o.status.success(), "{}", shown(&o));
+        String::from_utf8_lossy(&o.stdout).into_owned()
+    };
+    let rows = |text: &str| -> Vec<serde_json::Value> {
+        text.lines()
+            .map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("{e}: {l}")))
+            .collect()
+    };
+    let of = |rows: &[serde_json::Value], id: &str| -> Vec<serde_json::Value> {
+        rows.iter().filter(|r| r["point"] == id).cloned().collect()
+    };
+
+    // Tables.
+    let table = |kind: &str, extra: &[&str]| {
+        let mut args = vec!["table", kind, "--workspace", &wsp, "--format", "jsonl"];
+        args.extend_from_slice(extra);
+        rows(&rondo_ok(&args))
+    };
+    let finals = table("finals", &[]);
+    assert!(of(&finals, "p001").is_empty(), "finals leave p001 out");
+    assert!(of(&finals, "p002")
+        .iter()
+        .all(|r| r["retired_in"].is_null()));
+    let finals = table("finals", &["--with-retired"]);
+    let p1 = of(&finals, "p001");
+    assert!(!p1.is_empty(), "--with-retired: p001 is in the finals");
+    assert!(
+        p1.iter()
+            .all(|r| r["retired_in"] == 2 && r["volume"] == 27.0),
+        "{p1:?}"
+    );
+    assert!(of(&finals, "p002")
+        .iter()
+        .all(|r| r["retired_in"].is_null()));
+    let metrics = table("metrics", &[]);
+    assert!(!of(&metrics, "p001").is_empty());
+    assert!(of(&metrics, "p001").iter().all(|r| r["retired_in"] == 2));
+    assert!(of(&metrics, "p003")
+        .iter()
+        .all(|r| r["retired_in"].is_null()));
+    let csv = rondo_ok(&["table", "finals", "--workspace", &wsp, "--with-retired"]);
+    let header = csv.lines().next().unwrap_or_default();
+    assert!(header.contains(",retired_in,"), "{header}");
+
+    // The equation-of-state analysis (the recorded document and the printed lines).
+    let eos_doc = || -> serde_json::Value {
+        let text = std::fs::read_to_string(ws(dir).join("analysis/eos.json"))
+            .unwrap_or_else(|e| panic!("{e}"));
+        serde_json::from_str(&text).unwrap_or_else(|e| panic!("{e}"))
+    };
+    let fitted = |doc: &serde_json::Value| -> Vec<(String, Option<i64>)> {
+        doc["groups"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .flat_map(|g| g["points"].as_array().cloned().unwrap_or_default())
+            .map(|p| {
+                (
+                    p["id"].as_str().unwrap_or("").to_string(),
+                    p["retired_in"].as_i64(),
+                )
+            })
+            .collect()
+    };
+    let out = rondo_ok(&["analyze", "--workspace", &wsp]);
+    assert!(!out.contains("retired"), "{out}");
+    let doc = eos_doc();
+    assert_eq!(
+        fitted(&doc),
+        [("p002".to_string(), None), ("p003".to_string(), None)]
+    );
+    assert!(doc.get("with_retired").is_none());
+    let out = rondo_ok(&["analyze", "--workspace", &wsp, "--with-retired"]);
+    assert!(
+        out.contains("includes retired p001 (retired in revision 2)"),
+        "{out}"
+    );
+    let doc = eos_doc();
+    assert_eq!(
+        fitted(&doc),
+        [
+            ("p001".to_string(), Some(2)),
+            ("p002".to_string(), None),
+            ("p003".to_string(), None)
+        ]
+    );
+    assert_eq!(doc["with_retired"], true);
+    let argv = strings(
+        &ws(dir),
+        "SELECT argv_json FROM reports ORDER BY id DESC LIMIT 1",
+    );
+    assert!(argv[0].contains("\"--with-retired\""), "{argv:?}");
+
+    // The report.
+    let report = |name: &str, extra: &[&str]| {
+        let out = dir.join(name);
+        let o = out.display().to_string();
+        let mut args = vec!["report", "--workspace", &wsp, "--out", &o];
+        args.extend_from_slice(extra);
+        rondo_ok(&args);
+        let read = |f: &str| std::fs::read_to_string(out.join(f)).unwrap_or_default();
+        (read("index.html"), read("observables.csv"))
+    };
+    let (html, csv) = report("plain", &[]);
+    assert!(
+        !csv.lines().any(|l| l.starts_with("p001,")) && !html.contains("<td>p001"),
+        "the report leaves p001 out"
+    );
+    assert!(html.contains("1 retired point(s) are left out of this report"));
+    assert!(
+        csv.lines().next().unwrap_or_default().ends_with(",error"),
+        "{csv}"
+    );
+    let (html, csv) = report("all", &["--with-retired"]);
+    let p1: Vec<&str> = csv.lines().filter(|l| l.starts_with("p001,")).collect();
+    assert!(
+        !p1.is_empty() && p1.iter().all(|l| l.ends_with(",2")),
+        "{csv}"
+    );
+    assert!(csv
+        .lines()
+        .next()
+        .unwrap_or_default()
+        .ends_with(",retired_in"));
+    assert!(
+        html.contains("<td>p001 (retired in revision 2)</td>")
+            && html.contains("1 retired point(s) are included in this report"),
+        "the report marks p001"
     );
 }

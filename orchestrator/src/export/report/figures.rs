@@ -101,9 +101,9 @@ pub fn overview(
             continue;
         };
         let label = if p.is_converged() {
-            p.id.clone()
+            p.label()
         } else {
-            format!("{} ({})", p.id, p.state)
+            format!("{} ({})", p.label(), p.state)
         };
         let mut change = Series {
             label,
