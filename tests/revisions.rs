@@ -398,6 +398,20 @@ fn a_raised_cap_continues_capped_points_as_a_cold_run_would() {
     );
     let c = check(a.path());
     assert!(c.contains("max-iterations rose to 12"), "{c}");
+    // `rondo plan` counts the capped points as continuing up to the new cap.
+    let o = run_rondo(a.path(), &["plan", FILE, "--json"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let plan: serde_json::Value =
+        serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(plan["points_to_go"], 2, "{plan}");
+    assert_eq!(
+        plan["edit"]["reopened_points"],
+        serde_json::json!(["p001", "p002"])
+    );
+    assert_eq!(
+        plan["iterations"]["upper"], 18.0,
+        "two points, 3 of 12 done"
+    );
     // A crash just after the revision is recorded (failpoint `revision-recorded`): the
     // next run finds the file equal to the latest revision and goes on under it.
     let armed = "revision-recorded:1";
@@ -758,4 +772,89 @@ fn with_retired_brings_retired_points_back_marked_into_tables_analyses_and_repor
             && html.contains("1 retired point(s) are included in this report"),
         "the report marks p001"
     );
+}
+
+/// `rondo plan` of an edited campaign file not yet run counts it as `rondo run` would
+/// apply it: a new volume is one more point to go, estimated from the recorded durations
+/// and iterations to converge; a removed value's point is not counted; a physics change is
+/// said to be refused (the recorded points counted) unless `--accept-revision`.
+#[test]
+fn plan_counts_what_an_edit_would_add_and_leaves_out_what_it_retires() {
+    let _ = model_solid();
+    let d = tempdir();
+    let dir = d.path();
+    write(dir, &campaign("27.0, 28.0", "1200", "1.0e-3", 12, "6.0"));
+    run(dir, &[], 0);
+    let plan = |extra: &[&str]| -> (serde_json::Value, String) {
+        let mut args = vec!["plan", FILE, "--json"];
+        args.extend_from_slice(extra);
+        let o = run_rondo(dir, &args);
+        assert!(o.status.success(), "{}", shown(&o));
+        let doc = serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("{e}"));
+        let mut args = vec!["plan", FILE];
+        args.extend_from_slice(extra);
+        let o = run_rondo(dir, &args);
+        assert!(o.status.success(), "{}", shown(&o));
+        (doc, String::from_utf8_lossy(&o.stdout).into_owned())
+    };
+    let (doc, _) = plan(&[]);
+    assert_eq!(doc["points_to_go"], 0, "{doc}");
+    assert!(doc["edit"].is_null(), "{doc}");
+
+    // 29.0 added, 27.0 removed: one point to go (p003), p001 not counted.
+    write(dir, &campaign("28.0, 29.0", "1200", "1.0e-3", 12, "6.0"));
+    let (doc, text) = plan(&[]);
+    assert_eq!(doc["points_to_go"], 1, "{doc}");
+    assert_eq!(doc["points"], 2, "{doc}");
+    assert_eq!(
+        doc["edit"]["new_points"],
+        serde_json::json!(["p003"]),
+        "{doc}"
+    );
+    assert_eq!(doc["edit"]["retired_points"], serde_json::json!(["p001"]));
+    assert_eq!(doc["edit"]["refused"], false);
+    assert_eq!(doc["converged_points"], 2, "{doc}");
+    let typical = doc["iterations"]["typical"].as_f64().unwrap_or(0.0);
+    let median = doc["median_to_converge"].as_f64().unwrap_or(0.0);
+    assert!(typical >= 1.0 && typical == median.ceil(), "{doc}");
+    assert_eq!(doc["edit"]["new_point_iterations"]["typical"], typical);
+    assert!(
+        doc["total_core_hours"]["typical"].as_f64().unwrap_or(0.0) > 0.0,
+        "{doc}"
+    );
+    assert!(
+        text.contains("1 new point(s) (p003), 1 retired (p001) (not counted)")
+            && text.contains("a new point is estimated as an unstarted one: typical")
+            && !text.contains("core-hours to go: unknown"),
+        "{text}"
+    );
+    assert_eq!(
+        strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"),
+        ["1"],
+        "plan only reads"
+    );
+
+    // The same with a parameter changed: refused, the recorded points counted; accepted,
+    // the started p002 runs again as a new point beside the new volume.
+    write(dir, &campaign("28.0, 29.0", "1200", "1.0e-3", 12, "5.5"));
+    let (doc, text) = plan(&[]);
+    assert_eq!(doc["edit"]["refused"], true, "{doc}");
+    assert_eq!(doc["points_to_go"], 0, "{doc}");
+    assert!(text.contains("`rondo run` would refuse it"), "{text}");
+    assert!(text.contains("parameters.u: 6.0 → 5.5"), "{text}");
+    let (doc, _) = plan(&["--accept-revision"]);
+    assert_eq!(doc["edit"]["refused"], false, "{doc}");
+    assert_eq!(doc["points_to_go"], 2, "{doc}");
+    assert_eq!(doc["edit"]["new_points"].as_array().map(Vec::len), Some(2));
+    assert_eq!(
+        doc["edit"]["retired_points"],
+        serde_json::json!(["p001", "p002"])
+    );
+
+    // What plan counted is what run does.
+    write(dir, &campaign("28.0, 29.0", "1200", "1.0e-3", 12, "6.0"));
+    run(dir, &[], 0);
+    let after = points(dir);
+    assert_eq!(after["p003"].0, "converged", "{after:?}");
+    assert_eq!(after["p001"].1, Some(2));
 }

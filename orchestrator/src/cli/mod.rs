@@ -206,6 +206,10 @@ struct PlanArgs {
     /// campaign).
     #[arg(long, value_name = "WS")]
     durations_from: Option<PathBuf>,
+    /// Count an edited campaign file as `rondo run --accept-revision` would apply it
+    /// (physics changes accepted).
+    #[arg(long)]
+    accept_revision: bool,
     /// Machine-readable output.
     #[arg(long)]
     json: bool,
