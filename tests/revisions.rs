@@ -398,6 +398,20 @@ fn a_raised_cap_continues_capped_points_as_a_cold_run_would() {
     );
     let c = check(a.path());
     assert!(c.contains("max-iterations rose to 12"), "{c}");
+    // `rondo plan` counts the capped points as continuing up to the new cap.
+    let o = run_rondo(a.path(), &["plan", FILE, "--json"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let plan: serde_json::Value =
+        serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(plan["points_to_go"], 2, "{plan}");
+    assert_eq!(
+        plan["edit"]["reopened_points"],
+        serde_json::json!(["p001", "p002"])
+    );
+    assert_eq!(
+        plan["iterations"]["upper"], 18.0,
+        "two points, 3 of 12 done"
+    );
     // A crash just after the revision is recorded (failpoint `revision-recorded`): the
     // next run finds the file equal to the latest revision and goes on under it.
     let armed = "revision-recorded:1";
@@ -691,4 +705,303 @@ fn an_added_volume_warm_starts_from_its_converged_neighbour() {
     // change at that point (update.energy, a few 1e-6 eV per 1e-6 of n_f in this model)
     // bounds how far two converged runs may sit apart.
     assert!((ew - ec).abs() < 1.0e-4, "warm {ew} eV, cold {ec} eV");
+}
+
+/// `rondo submit`: an edit that changes the physics is refused before any script is written
+/// or job asked for, with the diff `rondo check` prints; `--accept-revision` passes it on to
+/// the `rondo run` of the batch script (and without the flag the script has none).
+#[test]
+fn submit_refuses_an_unaccepted_physics_edit_early_and_passes_the_flag_on() {
+    let _ = model_solid();
+    let d = tempdir();
+    let dir = d.path();
+    write(dir, &campaign("27.0", "1200", "1.0e-3", 12, "6.0"));
+    run(dir, &[], 0);
+    let script = dir.join("model-sweep.allocation.sh");
+    let submit = |extra: &[&str]| {
+        let mut args = vec!["submit", FILE, "--time", "10", "--print-only"];
+        args.extend_from_slice(extra);
+        run_rondo(dir, &args)
+    };
+    let exec_line = |o: &std::process::Output| {
+        String::from_utf8_lossy(&o.stdout)
+            .lines()
+            .find(|l| l.starts_with("exec ") && l.contains(" run "))
+            .unwrap_or_else(|| panic!("no `exec … run` line: {}", shown(o)))
+            .to_string()
+    };
+    // Unchanged file: the script runs the campaign without the flag.
+    let o = submit(&[]);
+    assert!(o.status.success(), "{}", shown(&o));
+    assert!(
+        !exec_line(&o).contains("--accept-revision"),
+        "{}",
+        shown(&o)
+    );
+    std::fs::remove_file(&script).unwrap_or_else(|e| panic!("{e}"));
+
+    // A parameter changed: refused here (exit 2) with the diff, no script written.
+    write(dir, &campaign("27.0", "1200", "1.0e-3", 12, "5.5"));
+    let o = submit(&[]);
+    assert_eq!(o.status.code(), Some(2), "{}", shown(&o));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("parameters.u: 6.0 → 5.5") && err.contains("--accept-revision"),
+        "{err}"
+    );
+    assert!(!script.exists(), "a refused submit wrote its script");
+
+    // Accepted: the script's `rondo run` carries the flag; nothing is recorded yet.
+    let o = submit(&["--accept-revision"]);
+    assert!(o.status.success(), "{}", shown(&o));
+    let line = exec_line(&o);
+    assert!(line.ends_with(" --accept-revision"), "{line}");
+    assert!(std::fs::read_to_string(&script)
+        .unwrap_or_default()
+        .contains(&line));
+    assert_eq!(
+        strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"),
+        ["1"],
+        "submit only classifies; the run inside the allocation records the revision"
+    );
+}
+
+/// `--with-retired`: `rondo table finals`, `rondo analyze` and `rondo report` leave a
+/// retired point out by default and include it, marked with the revision that retired it,
+/// with the flag; `rondo table metrics` always holds its rows, marked.
+#[test]
+fn with_retired_brings_retired_points_back_marked_into_tables_analyses_and_reports() {
+    let _ = model_solid();
+    let d = tempdir();
+    let dir = d.path();
+    let eos = "analysis:\n  eos: { energy: update.energy, volume: volume }\n";
+    write(
+        dir,
+        &(campaign("27.0, 28.0, 29.0", "1200", "1.0e-3", 12, "6.0") + eos),
+    );
+    run(dir, &[], 0);
+    // 27.0 removed: p001 is retired in revision 2.
+    write(
+        dir,
+        &(campaign("28.0, 29.0", "1200", "1.0e-3", 12, "6.0") + eos),
+    );
+    run(dir, &[], 0);
+    assert_eq!(points(dir)["p001"].1, Some(2));
+    let wsp = ws(dir).display().to_string();
+    let rondo_ok = |args: &[&str]| {
+        let o = run_rondo(dir, args);
+        assert!(o.status.success(), "{}", shown(&o));
+        String::from_utf8_lossy(&o.stdout).into_owned()
+    };
+    let rows = |text: &str| -> Vec<serde_json::Value> {
+        text.lines()
+            .map(|l| serde_json::from_str(l).unwrap_or_else(|e| panic!("{e}: {l}")))
+            .collect()
+    };
+    let of = |rows: &[serde_json::Value], id: &str| -> Vec<serde_json::Value> {
+        rows.iter().filter(|r| r["point"] == id).cloned().collect()
+    };
+
+    // Tables.
+    let table = |kind: &str, extra: &[&str]| {
+        let mut args = vec!["table", kind, "--workspace", &wsp, "--format", "jsonl"];
+        args.extend_from_slice(extra);
+        rows(&rondo_ok(&args))
+    };
+    let finals = table("finals", &[]);
+    assert!(of(&finals, "p001").is_empty(), "finals leave p001 out");
+    assert!(of(&finals, "p002")
+        .iter()
+        .all(|r| r["retired_in"].is_null()));
+    let finals = table("finals", &["--with-retired"]);
+    let p1 = of(&finals, "p001");
+    assert!(!p1.is_empty(), "--with-retired: p001 is in the finals");
+    assert!(
+        p1.iter()
+            .all(|r| r["retired_in"] == 2 && r["volume"] == 27.0),
+        "{p1:?}"
+    );
+    assert!(of(&finals, "p002")
+        .iter()
+        .all(|r| r["retired_in"].is_null()));
+    let metrics = table("metrics", &[]);
+    assert!(!of(&metrics, "p001").is_empty());
+    assert!(of(&metrics, "p001").iter().all(|r| r["retired_in"] == 2));
+    assert!(of(&metrics, "p003")
+        .iter()
+        .all(|r| r["retired_in"].is_null()));
+    let csv = rondo_ok(&["table", "finals", "--workspace", &wsp, "--with-retired"]);
+    let header = csv.lines().next().unwrap_or_default();
+    assert!(header.contains(",retired_in,"), "{header}");
+
+    // The equation-of-state analysis (the recorded document and the printed lines).
+    let eos_doc = || -> serde_json::Value {
+        let text = std::fs::read_to_string(ws(dir).join("analysis/eos.json"))
+            .unwrap_or_else(|e| panic!("{e}"));
+        serde_json::from_str(&text).unwrap_or_else(|e| panic!("{e}"))
+    };
+    let fitted = |doc: &serde_json::Value| -> Vec<(String, Option<i64>)> {
+        doc["groups"]
+            .as_array()
+            .into_iter()
+            .flatten()
+            .flat_map(|g| g["points"].as_array().cloned().unwrap_or_default())
+            .map(|p| {
+                (
+                    p["id"].as_str().unwrap_or("").to_string(),
+                    p["retired_in"].as_i64(),
+                )
+            })
+            .collect()
+    };
+    let out = rondo_ok(&["analyze", "--workspace", &wsp]);
+    assert!(!out.contains("retired"), "{out}");
+    let doc = eos_doc();
+    assert_eq!(
+        fitted(&doc),
+        [("p002".to_string(), None), ("p003".to_string(), None)]
+    );
+    assert!(doc.get("with_retired").is_none());
+    let out = rondo_ok(&["analyze", "--workspace", &wsp, "--with-retired"]);
+    assert!(
+        out.contains("includes retired p001 (retired in revision 2)"),
+        "{out}"
+    );
+    let doc = eos_doc();
+    assert_eq!(
+        fitted(&doc),
+        [
+            ("p001".to_string(), Some(2)),
+            ("p002".to_string(), None),
+            ("p003".to_string(), None)
+        ]
+    );
+    assert_eq!(doc["with_retired"], true);
+    let argv = strings(
+        &ws(dir),
+        "SELECT argv_json FROM reports ORDER BY id DESC LIMIT 1",
+    );
+    assert!(argv[0].contains("\"--with-retired\""), "{argv:?}");
+
+    // The report.
+    let report = |name: &str, extra: &[&str]| {
+        let out = dir.join(name);
+        let o = out.display().to_string();
+        let mut args = vec!["report", "--workspace", &wsp, "--out", &o];
+        args.extend_from_slice(extra);
+        rondo_ok(&args);
+        let read = |f: &str| std::fs::read_to_string(out.join(f)).unwrap_or_default();
+        (read("index.html"), read("observables.csv"))
+    };
+    let (html, csv) = report("plain", &[]);
+    assert!(
+        !csv.lines().any(|l| l.starts_with("p001,")) && !html.contains("<td>p001"),
+        "the report leaves p001 out"
+    );
+    assert!(html.contains("1 retired point(s) are left out of this report"));
+    assert!(
+        csv.lines().next().unwrap_or_default().ends_with(",error"),
+        "{csv}"
+    );
+    let (html, csv) = report("all", &["--with-retired"]);
+    let p1: Vec<&str> = csv.lines().filter(|l| l.starts_with("p001,")).collect();
+    assert!(
+        !p1.is_empty() && p1.iter().all(|l| l.ends_with(",2")),
+        "{csv}"
+    );
+    assert!(csv
+        .lines()
+        .next()
+        .unwrap_or_default()
+        .ends_with(",retired_in"));
+    assert!(
+        html.contains("<td>p001 (retired in revision 2)</td>")
+            && html.contains("1 retired point(s) are included in this report"),
+        "the report marks p001"
+    );
+}
+
+/// `rondo plan` of an edited campaign file not yet run counts it as `rondo run` would
+/// apply it: a new volume is one more point to go, estimated from the recorded durations
+/// and iterations to converge; a removed value's point is not counted; a physics change is
+/// said to be refused (the recorded points counted) unless `--accept-revision`.
+#[test]
+fn plan_counts_what_an_edit_would_add_and_leaves_out_what_it_retires() {
+    let _ = model_solid();
+    let d = tempdir();
+    let dir = d.path();
+    write(dir, &campaign("27.0, 28.0", "1200", "1.0e-3", 12, "6.0"));
+    run(dir, &[], 0);
+    let plan = |extra: &[&str]| -> (serde_json::Value, String) {
+        let mut args = vec!["plan", FILE, "--json"];
+        args.extend_from_slice(extra);
+        let o = run_rondo(dir, &args);
+        assert!(o.status.success(), "{}", shown(&o));
+        let doc = serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("{e}"));
+        let mut args = vec!["plan", FILE];
+        args.extend_from_slice(extra);
+        let o = run_rondo(dir, &args);
+        assert!(o.status.success(), "{}", shown(&o));
+        (doc, String::from_utf8_lossy(&o.stdout).into_owned())
+    };
+    let (doc, _) = plan(&[]);
+    assert_eq!(doc["points_to_go"], 0, "{doc}");
+    assert!(doc["edit"].is_null(), "{doc}");
+
+    // 29.0 added, 27.0 removed: one point to go (p003), p001 not counted.
+    write(dir, &campaign("28.0, 29.0", "1200", "1.0e-3", 12, "6.0"));
+    let (doc, text) = plan(&[]);
+    assert_eq!(doc["points_to_go"], 1, "{doc}");
+    assert_eq!(doc["points"], 2, "{doc}");
+    assert_eq!(
+        doc["edit"]["new_points"],
+        serde_json::json!(["p003"]),
+        "{doc}"
+    );
+    assert_eq!(doc["edit"]["retired_points"], serde_json::json!(["p001"]));
+    assert_eq!(doc["edit"]["refused"], false);
+    assert_eq!(doc["converged_points"], 2, "{doc}");
+    let typical = doc["iterations"]["typical"].as_f64().unwrap_or(0.0);
+    let median = doc["median_to_converge"].as_f64().unwrap_or(0.0);
+    assert!(typical >= 1.0 && typical == median.ceil(), "{doc}");
+    assert_eq!(doc["edit"]["new_point_iterations"]["typical"], typical);
+    assert!(
+        doc["total_core_hours"]["typical"].as_f64().unwrap_or(0.0) > 0.0,
+        "{doc}"
+    );
+    assert!(
+        text.contains("1 new point(s) (p003), 1 retired (p001) (not counted)")
+            && text.contains("a new point is estimated as an unstarted one: typical")
+            && !text.contains("core-hours to go: unknown"),
+        "{text}"
+    );
+    assert_eq!(
+        strings(&ws(dir), "SELECT CAST(max(number) AS TEXT) FROM revisions"),
+        ["1"],
+        "plan only reads"
+    );
+
+    // The same with a parameter changed: refused, the recorded points counted; accepted,
+    // the started p002 runs again as a new point beside the new volume.
+    write(dir, &campaign("28.0, 29.0", "1200", "1.0e-3", 12, "5.5"));
+    let (doc, text) = plan(&[]);
+    assert_eq!(doc["edit"]["refused"], true, "{doc}");
+    assert_eq!(doc["points_to_go"], 0, "{doc}");
+    assert!(text.contains("`rondo run` would refuse it"), "{text}");
+    assert!(text.contains("parameters.u: 6.0 → 5.5"), "{text}");
+    let (doc, _) = plan(&["--accept-revision"]);
+    assert_eq!(doc["edit"]["refused"], false, "{doc}");
+    assert_eq!(doc["points_to_go"], 2, "{doc}");
+    assert_eq!(doc["edit"]["new_points"].as_array().map(Vec::len), Some(2));
+    assert_eq!(
+        doc["edit"]["retired_points"],
+        serde_json::json!(["p001", "p002"])
+    );
+
+    // What plan counted is what run does.
+    write(dir, &campaign("28.0, 29.0", "1200", "1.0e-3", 12, "6.0"));
+    run(dir, &[], 0);
+    let after = points(dir);
+    assert_eq!(after["p003"].0, "converged", "{after:?}");
+    assert_eq!(after["p001"].1, Some(2));
 }

@@ -15,11 +15,16 @@ use crate::store::{self, overview};
 
 /// `rondo analyze [FILE] [--workspace DIR]`.
 pub async fn run(a: AnalyzeArgs) -> Result<u8> {
-    analyze(&find_workspace(a.file.as_deref(), a.workspace)?).await
+    analyze(
+        &find_workspace(a.file.as_deref(), a.workspace)?,
+        a.with_retired,
+    )
+    .await
 }
 
-/// Analyze the campaign of the workspace `ws` again.
-async fn analyze(ws: &Path) -> Result<u8> {
+/// Analyze the campaign of the workspace `ws` again (over its retired points too when
+/// `with_retired`).
+async fn analyze(ws: &Path, with_retired: bool) -> Result<u8> {
     let _lock = store::lock(ws)?;
     let pool = store::open_existing_rw(ws, "analyze records the analysis result").await?;
     let Some(camp) = store::campaign_row(&pool).await? else {
@@ -42,7 +47,7 @@ async fn analyze(ws: &Path) -> Result<u8> {
     }
     let artifacts = crate::artifacts::ArtifactStore::open(&ws.join("store"))
         .with_context(|| format!("{}: cannot open the artifact store", ws.display()))?;
-    let doc = crate::query::analysis::record_eos(&pool, ws, &artifacts, &eos).await?;
+    let doc = crate::query::analysis::record_eos(&pool, ws, &artifacts, &eos, with_retired).await?;
     let hash = crate::query::analysis::latest_eos_hash(&pool)
         .await?
         .unwrap_or_default();

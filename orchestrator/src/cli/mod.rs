@@ -185,6 +185,10 @@ struct TableArgs {
     /// Write to this file instead of stdout.
     #[arg(long, value_name = "FILE")]
     out: Option<PathBuf>,
+    /// Include the points a revision of the campaign file retired in `finals` (marked in
+    /// its column `retired_in`); `metrics` always holds their rows.
+    #[arg(long)]
+    with_retired: bool,
     /// Metrics read from the store per query (the table is written as it is read).
     #[arg(long, value_name = "N", default_value_t = 4096, value_parser = clap::value_parser!(u32).range(1..))]
     page: u32,
@@ -202,6 +206,10 @@ struct PlanArgs {
     /// campaign).
     #[arg(long, value_name = "WS")]
     durations_from: Option<PathBuf>,
+    /// Count an edited campaign file as `rondo run --accept-revision` would apply it
+    /// (physics changes accepted).
+    #[arg(long)]
+    accept_revision: bool,
     /// Machine-readable output.
     #[arg(long)]
     json: bool,
@@ -300,6 +308,11 @@ struct AnalyzeArgs {
     /// Workspace folder.
     #[arg(long)]
     workspace: Option<PathBuf>,
+    /// Fit the points a revision of the campaign file retired too (each marked with the
+    /// revision that retired it). The result is printed and recorded with this flag in its
+    /// command and options.
+    #[arg(long)]
+    with_retired: bool,
 }
 
 // The flags of `rondo trace` (its help text is the variant's).
@@ -387,6 +400,10 @@ struct ReportArgs {
     /// Metric with the total energy per site.
     #[arg(long, default_value = "update.energy")]
     energy: String,
+    /// Include the points a revision of the campaign file retired (in the tables, figures
+    /// and fits), each marked `retired in revision N`.
+    #[arg(long)]
+    with_retired: bool,
 }
 
 // The flags of `rondo submit` (its help text is the variant's).
@@ -430,6 +447,11 @@ struct SubmitArgs {
     /// Only write and print the script.
     #[arg(long)]
     print_only: bool,
+    /// Accept an edited campaign file that changes what its points compute (passed on to
+    /// `rondo run --accept-revision` in the script). Without it, such an edit is refused
+    /// here, before any allocation is asked for.
+    #[arg(long)]
+    accept_revision: bool,
 }
 
 /// Entry point of the binary.

@@ -2,7 +2,9 @@
 //! campaign, in attempts and core-hours per stage, from recorded durations, and whether it
 //! fits the campaign's budget.
 //!
-//! Owns the plan's text and which workspaces are read (both read-only); the estimate is
+//! Owns the plan's text and which workspaces are read (both read-only); an edited campaign
+//! file is classified against its workspace as `rondo check` does
+//! ([`crate::engine::revise::classify`], nothing written); the estimate is
 //! [`crate::query::plan`]'s. No SQL.
 
 use std::fmt::Write;
@@ -13,8 +15,8 @@ use anyhow::Result;
 use super::output::{emit, emit_json};
 use super::workspace::load;
 use super::{BadInput, PlanArgs, EXIT_OK};
-use crate::engine::default_workspace;
-use crate::query::plan::{estimate, Plan, Range};
+use crate::engine::{self, default_workspace};
+use crate::query::plan::{estimate, Plan, PlanEdit, Range};
 use crate::store;
 
 /// `rondo plan`.
@@ -38,7 +40,15 @@ pub async fn run(a: PlanArgs) -> Result<u8> {
         None => None,
     };
     let durations = from.as_ref().or(progress.as_ref());
-    let plan = estimate(&c, progress.as_ref(), durations).await?;
+    let classified = match &progress {
+        Some(pool) => Some(engine::revise::classify(pool, &c, a.accept_revision).await?),
+        None => None,
+    };
+    let edit = match &classified {
+        Some((false, r)) => Some((r, a.accept_revision)),
+        _ => None,
+    };
+    let plan = estimate(&c, progress.as_ref(), durations, edit).await?;
     let source = a
         .durations_from
         .as_deref()
@@ -109,6 +119,9 @@ fn plan_text(name: &str, ws: &Path, exists: bool, source: Option<&Path>, p: &Pla
             .map(|p| p.display().to_string())
             .unwrap_or_else(|| "nothing recorded (name a workspace with --durations-from)".into())
     );
+    if let Some(e) = &p.edit {
+        edit_lines(&mut s, e, p, source);
+    }
     let _ = writeln!(s, "  points to go: {} of {}", p.points_to_go, p.points);
     let typical = match p.median_to_converge {
         Some(m) => format!(
@@ -151,4 +164,67 @@ fn plan_text(name: &str, ws: &Path, exists: bool, source: Option<&Path>, p: &Pla
         let _ = writeln!(s, "  budget: {} core-hours: {verdict}", hours(b));
     }
     s
+}
+
+/// What the edited campaign file changes in the count, and what a new point's estimate rests
+/// on.
+fn edit_lines(s: &mut String, e: &PlanEdit, p: &Plan, source: Option<&Path>) {
+    let _ = writeln!(
+        s,
+        "  the campaign file is edited (revision {} against revision {} of the workspace):",
+        e.number, e.from
+    );
+    if e.refused {
+        let _ = writeln!(
+            s,
+            "    `rondo run` would refuse it: it changes what the points compute ({}); \
+             counted below are the recorded points only (`rondo plan --accept-revision` \
+             counts it as `rondo run --accept-revision` would run it)",
+            e.physics.join("; ")
+        );
+        return;
+    }
+    let list = |ids: &[String]| {
+        if ids.is_empty() {
+            String::new()
+        } else {
+            format!(" ({})", ids.join(", "))
+        }
+    };
+    let _ = writeln!(
+        s,
+        "    {} new point(s){}, {} retired{} (not counted), {} back in the sweep{}, {} stopped \
+         point(s) continuing{}",
+        e.new_points.len(),
+        list(&e.new_points),
+        e.retired_points.len(),
+        list(&e.retired_points),
+        e.restored_points.len(),
+        list(&e.restored_points),
+        e.reopened_points.len(),
+        list(&e.reopened_points),
+    );
+    if e.new_points.is_empty() {
+        return;
+    }
+    let basis = match p.median_to_converge {
+        Some(m) => format!(
+            "typical {:.0} iterations (the median {m} iterations to converge of {} converged \
+             point(s))",
+            e.new_point_iterations.typical, p.converged_points
+        ),
+        None => format!(
+            "typical unknown (no converged point recorded: the cap, {:.0}, is used)",
+            e.new_point_iterations.typical
+        ),
+    };
+    let _ = writeln!(
+        s,
+        "    a new point is estimated as an unstarted one: {basis}, at most {:.0} \
+         (max-iterations); each stage at its recorded wall times in {}",
+        e.new_point_iterations.upper,
+        source
+            .map(|p| p.display().to_string())
+            .unwrap_or_else(|| "no workspace".into())
+    );
 }

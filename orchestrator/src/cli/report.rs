@@ -27,6 +27,7 @@ pub async fn run(a: ReportArgs) -> Result<u8> {
         temperature_axis: a.temperature_axis,
         energy_metric: a.energy,
         argv: std::env::args().collect(),
+        with_retired: a.with_retired,
         ..Default::default()
     };
     let bar = if std::io::IsTerminal::is_terminal(&std::io::stderr()) {

@@ -1,9 +1,11 @@
 //! `rondo submit`: write (and submit, unless `--print-only`) the batch script that runs the
 //! campaign inside Slurm allocations, each job continuing the last.
 //!
-//! Owns the script's command line (this rondo, `run`, the workspace, `--max-running`) and
-//! its resources from the flags; the script itself is `rondo_adapters::slurm::allocation`'s.
-//! No SQL.
+//! Owns the script's command line (this rondo, `run`, the workspace, `--max-running`,
+//! `--accept-revision`) and its resources from the flags; the script itself is
+//! `rondo_adapters::slurm::allocation`'s. An edited campaign file whose physics change is
+//! not accepted is refused before anything is written or submitted (the classification is
+//! [`crate::engine::revise`]'s, read-only). No SQL.
 
 use std::path::Path;
 use std::time::Duration;
@@ -15,6 +17,8 @@ use super::output::emit;
 use super::workspace::{absolute, load};
 use super::{BadInput, SubmitArgs, EXIT_OK};
 use crate::engine;
+use crate::spec::Campaign;
+use crate::store;
 
 /// `rondo submit FILE --time T ...`.
 pub async fn run(a: SubmitArgs) -> Result<u8> {
@@ -25,6 +29,7 @@ pub async fn run(a: SubmitArgs) -> Result<u8> {
             .clone()
             .unwrap_or_else(|| engine::default_workspace(&file)),
     )?;
+    refuse_early(&c, &ws, a.accept_revision).await?;
     let exe = std::env::current_exe().context("cannot find the rondo executable")?;
     let dir = file.parent().map(Path::to_path_buf).unwrap_or_default();
     let script = dir.join(format!("{}.allocation.sh", c.name));
@@ -50,7 +55,10 @@ pub async fn run(a: SubmitArgs) -> Result<u8> {
             ws.display().to_string(),
             "--max-running".into(),
             a.jobs.to_string(),
-        ],
+        ]
+        .into_iter()
+        .chain(a.accept_revision.then(|| "--accept-revision".to_string()))
+        .collect(),
         env: Default::default(),
         max_continuations: a.max_continuations,
     };
@@ -67,4 +75,22 @@ pub async fn run(a: SubmitArgs) -> Result<u8> {
         emit(&format!("{id}\n"));
     }
     Ok(EXIT_OK)
+}
+
+/// An edited campaign file that changes what its points compute, not accepted: refused
+/// here with the diff `rondo check` prints, as `rondo run` would refuse it inside the
+/// allocation (after the wait in the queue). Read-only; nothing when the workspace does not
+/// exist yet or the file is its latest revision.
+async fn refuse_early(c: &Campaign, ws: &Path, accept: bool) -> Result<()> {
+    if !ws.join(store::DB_FILE).is_file() {
+        return Ok(());
+    }
+    let pool = store::open_existing(ws).await?;
+    let classified = engine::revise::classify(&pool, c, accept).await;
+    pool.close().await;
+    let (same, r) = classified?;
+    if !same && r.needs_acceptance() && !accept {
+        return Err(engine::revise::refusal(c, &r));
+    }
+    Ok(())
 }

@@ -20,7 +20,9 @@ pub async fn run(a: TableArgs) -> Result<u8> {
     let pool = store::open_existing(&ws).await?;
     let table = match a.table {
         TableKind::Metrics => Table::Metrics,
-        TableKind::Finals => Table::Finals,
+        TableKind::Finals => Table::Finals {
+            with_retired: a.with_retired,
+        },
     };
     let format = match a.format {
         TableFormatArg::Csv => Format::Csv,

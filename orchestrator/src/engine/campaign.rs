@@ -69,6 +69,7 @@ impl Engine<'_> {
                     &self.paths.root,
                     &self.artifacts,
                     e,
+                    false,
                 )
                 .await?;
                 for line in crate::query::analysis::eos_lines(&doc) {

@@ -88,22 +88,29 @@ pub async fn settle_revision(
         });
     }
     if c.needs_acceptance() && !accept {
-        bail!(crate::spec::BadInput(format!(
-            "{}: the campaign file changed what its points compute.\n{}\
-             Started points would get two physics in one history. Restore the file, run the \
-             changed campaign in a new workspace (--workspace NEW), or accept the revision \
-             with --accept-revision: points that have not started then run the new text, and \
-             the values of started points run again as new points (the started ones are \
-             retired with their history)",
-            campaign.file.display(),
-            c.text()
-        )));
+        return Err(refusal(campaign, &c));
     }
     record(pool, at, campaign, &c, accept).await?;
     Ok(Revised {
         number: c.number,
         points: c.points,
     })
+}
+
+/// The refusal of an edit that changes what the points compute, with its diff: what
+/// `rondo run` (and `rondo submit`, before it spends an allocation) says without
+/// `--accept-revision`.
+pub fn refusal(campaign: &Campaign, c: &Classification) -> anyhow::Error {
+    anyhow::Error::new(crate::spec::BadInput(format!(
+        "{}: the campaign file changed what its points compute.\n{}\
+         Started points would get two physics in one history. Restore the file, run the \
+         changed campaign in a new workspace (--workspace NEW), or accept the revision \
+         with --accept-revision: points that have not started then run the new text, and \
+         the values of started points run again as new points (the started ones are \
+         retired with their history)",
+        campaign.file.display(),
+        c.text()
+    )))
 }
 
 /// Write an accepted revision in one transaction.

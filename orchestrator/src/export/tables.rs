@@ -1,7 +1,9 @@
 //! Tidy tables of a workspace for notebooks (`rondo table`): every recorded metric of every
 //! attempt (one row per point, iteration, stage, attempt and metric) and each point's final
 //! values with their errors (one row per point and metric), as CSV or JSON Lines. The
-//! columns are documented in docs/tables.md.
+//! columns are documented in docs/tables.md. Retired points (a revision removed their
+//! values) are in the metrics table and, with `--with-retired`, in the finals; both mark
+//! them in the column `retired_in`.
 //!
 //! Rows are written as they are read: the metrics come from the store a page at a time (`--page`)
 //! ([`crate::store::reads::tables::metrics_page`]), so a workspace of millions of metrics is
@@ -32,8 +34,8 @@ pub enum Format {
 pub enum Table {
     /// Every metric of every attempt.
     Metrics,
-    /// Each point's final value of each metric.
-    Finals,
+    /// Each point's final value of each metric; of retired points too when `with_retired`.
+    Finals { with_retired: bool },
 }
 
 /// The fixed columns of the metrics table, before the sweep axes.
@@ -50,6 +52,7 @@ pub const METRIC_COLUMNS: &[&str] = &[
     "iteration_state",
     "started_at",
     "ended_at",
+    "retired_in",
 ];
 
 /// The fixed columns of the final-values table, before the sweep axes.
@@ -63,6 +66,7 @@ pub const FINAL_COLUMNS: &[&str] = &[
     "first_iteration",
     "last_iteration",
     "n_iterations",
+    "retired_in",
 ];
 
 /// One cell.
@@ -77,10 +81,11 @@ enum Cell {
 }
 
 /// The points' sweep values: the axes (in the order of the first point's values) and, per
-/// point, one cell per axis.
+/// point, one cell per axis; and the revision that retired each retired point.
 struct Sweep {
     columns: Vec<String>,
     values: std::collections::HashMap<String, Vec<Cell>>,
+    retired: std::collections::HashMap<String, i64>,
 }
 
 impl Sweep {
@@ -89,8 +94,12 @@ impl Sweep {
     async fn read(pool: &SqlitePool, fixed: &[&str]) -> Result<Sweep> {
         let mut axes: Vec<String> = Vec::new();
         let mut parsed = Vec::new();
+        let mut retired = std::collections::HashMap::new();
         // Every point: the metrics table holds every attempt, retired points' too.
-        for (id, json) in points::values_with_retired(pool).await? {
+        for (id, json, retired_in) in points::values_with_retired(pool).await? {
+            if let Some(n) = retired_in {
+                retired.insert(id.clone(), n);
+            }
             let v: serde_json::Map<String, Value> = serde_json::from_str(&json)
                 .with_context(|| format!("point {id}: its recorded sweep values do not parse"))?;
             for k in v.keys() {
@@ -118,7 +127,19 @@ impl Sweep {
                 }
             })
             .collect();
-        Ok(Sweep { columns, values })
+        Ok(Sweep {
+            columns,
+            values,
+            retired,
+        })
+    }
+
+    /// The `retired_in` cell of a point: the revision that retired it, or empty.
+    fn retired_in(&self, point: &str) -> Cell {
+        self.retired
+            .get(point)
+            .map(|n| Cell::Int(*n))
+            .unwrap_or(Cell::Null)
     }
 
     fn of(&self, point: &str) -> Vec<Cell> {
@@ -228,7 +249,7 @@ pub async fn write<W: Write>(
 ) -> Result<u64> {
     match table {
         Table::Metrics => write_metrics(pool, format, page.max(1), out).await,
-        Table::Finals => write_finals(pool, format, out).await,
+        Table::Finals { with_retired } => write_finals(pool, format, with_retired, out).await,
     }
 }
 
@@ -268,6 +289,7 @@ async fn write_metrics<W: Write>(
                 opt_text(r.iteration_state.map(|s| s.as_str())),
                 opt_text(r.started_at.as_deref()),
                 opt_text(r.ended_at.as_deref()),
+                sweep.retired_in(&r.point),
             ];
             cells.extend(sweep.of(&r.point));
             w.row(&cells)?;
@@ -281,8 +303,14 @@ async fn write_metrics<W: Write>(
     Ok(n)
 }
 
-/// Each point's final value of every metric recorded at its last good iteration.
-async fn write_finals<W: Write>(pool: &SqlitePool, format: Format, out: &mut W) -> Result<u64> {
+/// Each point's final value of every metric recorded at its last good iteration (retired
+/// points only `with_retired`).
+async fn write_finals<W: Write>(
+    pool: &SqlitePool,
+    format: Format,
+    with_retired: bool,
+    out: &mut W,
+) -> Result<u64> {
     let sweep = Sweep::read(pool, FINAL_COLUMNS).await?;
     let mut columns: Vec<String> = FINAL_COLUMNS.iter().map(|c| c.to_string()).collect();
     columns.extend(sweep.columns.iter().cloned());
@@ -293,7 +321,7 @@ async fn write_finals<W: Write>(pool: &SqlitePool, format: Format, out: &mut W) 
     };
     w.header()?;
     let mut n = 0u64;
-    for p in points::all(pool).await? {
+    for p in points::all_of(pool, with_retired).await? {
         let Some(last) = points::last_good_iteration(pool, &p.id).await? else {
             continue;
         };
@@ -317,6 +345,7 @@ async fn write_finals<W: Write>(pool: &SqlitePool, format: Format, out: &mut W) 
                     .map(|i| Cell::Int(i64::from(*i)))
                     .unwrap_or(Cell::Null),
                 Cell::Int(f.iterations.len() as i64),
+                sweep.retired_in(&p.id),
             ];
             cells.extend(sweep.of(&p.id));
             w.row(&cells)?;

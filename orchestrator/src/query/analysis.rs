@@ -27,14 +27,19 @@ use crate::store::{self, PointState};
 pub const EOS_ROLE: &str = "eos.json";
 
 /// The command that computes the equation-of-state result of workspace `ws` again, as
-/// recorded with the result: `<rondo executable> analyze --workspace <ws>`.
-pub fn eos_argv(program: &Path, ws: &Path) -> Vec<String> {
-    vec![
+/// recorded with the result: `<rondo executable> analyze --workspace <ws>` (and
+/// `--with-retired` when the fit includes retired points).
+pub fn eos_argv(program: &Path, ws: &Path, with_retired: bool) -> Vec<String> {
+    let mut argv = vec![
         program.display().to_string(),
         "analyze".into(),
         "--workspace".into(),
         ws.display().to_string(),
-    ]
+    ];
+    if with_retired {
+        argv.push("--with-retired".into());
+    }
+    argv
 }
 
 /// rondo's own executable as recorded for built-in stages, analyses and reports: its path and
@@ -147,10 +152,31 @@ pub fn eos_lines(doc: &serde_json::Value) -> Vec<String> {
                     num(&f["stderr"]["b0_prime"]),
                 ),
             };
-            out.push(format!("eos{group}, {model}: {text}"));
+            out.push(format!("eos{group}, {model}: {text}{}", retired_text(g)));
         }
     }
     out
+}
+
+/// The mark of a fit over retired points (`--with-retired`): which, and retired when.
+fn retired_text(group: &serde_json::Value) -> String {
+    let retired: Vec<String> = group["points"]
+        .as_array()
+        .into_iter()
+        .flatten()
+        .filter_map(|p| {
+            let n = p["retired_in"].as_i64()?;
+            Some(format!(
+                "{} (retired in revision {n})",
+                p["id"].as_str().unwrap_or("?")
+            ))
+        })
+        .collect();
+    if retired.is_empty() {
+        String::new()
+    } else {
+        format!("; includes retired {}", retired.join(", "))
+    }
 }
 
 /// A point's final value of one metric.
@@ -230,16 +256,21 @@ pub struct EosGroup {
     pub points: Vec<(String, f64, f64, Option<f64>)>,
     /// Fits by model name, or the reason a fit was refused.
     pub fits: BTreeMap<String, Result<eos::EosFit, String>>,
+    /// The retired points among `points` (only with `--with-retired`): (id, the revision
+    /// that retired it).
+    pub retired: Vec<(String, i64)>,
 }
 
-/// Fit energy versus volume per group of the other sweep axes over the converged points.
+/// Fit energy versus volume per group of the other sweep axes over the converged points
+/// (retired ones too when `with_retired`).
 pub async fn eos_groups(
     pool: &SqlitePool,
     spec: &EosAnalysis,
+    with_retired: bool,
 ) -> Result<(Vec<EosGroup>, Vec<i64>)> {
     let mut groups: Vec<EosGroup> = Vec::new();
     let mut sources = Vec::new();
-    for r in points::all(pool).await? {
+    for r in points::all_of(pool, with_retired).await? {
         let id = r.id;
         if r.state != PointState::Converged {
             continue;
@@ -255,14 +286,23 @@ pub async fn eos_groups(
         sources.extend(e.attempts.iter().copied());
         let mut key = values.clone();
         key.remove(&spec.volume);
-        match groups.iter_mut().find(|g| g.group == key) {
-            Some(g) => g.points.push((id, v, e.value, e.error)),
-            None => groups.push(EosGroup {
-                group: key,
-                points: vec![(id, v, e.value, e.error)],
-                fits: BTreeMap::new(),
-            }),
+        let g = match groups.iter().position(|g| g.group == key) {
+            Some(i) => &mut groups[i],
+            None => {
+                groups.push(EosGroup {
+                    group: key,
+                    points: Vec::new(),
+                    fits: BTreeMap::new(),
+                    retired: Vec::new(),
+                });
+                let last = groups.len() - 1;
+                &mut groups[last]
+            }
+        };
+        if let Some(n) = r.retired_in {
+            g.retired.push((id.clone(), n));
         }
+        g.points.push((id, v, e.value, e.error));
     }
     for g in &mut groups {
         let vols: Vec<f64> = g.points.iter().map(|p| p.1).collect();
@@ -283,7 +323,7 @@ pub async fn eos_groups(
 }
 
 /// JSON of the groups (fits as objects, refusals as `{"refused": reason}`).
-pub fn eos_json(groups: &[EosGroup], spec: &EosAnalysis) -> serde_json::Value {
+pub fn eos_json(groups: &[EosGroup], spec: &EosAnalysis, with_retired: bool) -> serde_json::Value {
     let gs: Vec<serde_json::Value> = groups
         .iter()
         .map(|g| {
@@ -304,20 +344,37 @@ pub fn eos_json(groups: &[EosGroup], spec: &EosAnalysis) -> serde_json::Value {
                     (k.clone(), v)
                 })
                 .collect();
+            let points: Vec<serde_json::Value> = g
+                .points
+                .iter()
+                .map(|p| {
+                    let mut o = serde_json::json!({
+                        "id": p.0, "volume": p.1, "energy": p.2, "error": p.3 });
+                    // Only retired points carry the key: the default result stays the same
+                    // document (and artifact) as before `--with-retired` existed.
+                    if let Some((_, n)) = g.retired.iter().find(|(id, _)| *id == p.0) {
+                        o["retired_in"] = (*n).into();
+                    }
+                    o
+                })
+                .collect();
             serde_json::json!({
                 "group": g.group,
-                "points": g.points.iter().map(|p| serde_json::json!({
-                    "id": p.0, "volume": p.1, "energy": p.2, "error": p.3 })).collect::<Vec<_>>(),
+                "points": points,
                 "fits": fits,
             })
         })
         .collect();
-    serde_json::json!({
+    let mut doc = serde_json::json!({
         "energy": spec.energy,
         "volume": spec.volume,
         "units": {"energy": "eV", "volume": "Å³", "b0": "eV/Å³", "b0_gpa": "GPa"},
         "groups": gs,
-    })
+    });
+    if with_retired {
+        doc["with_retired"] = true.into();
+    }
+    doc
 }
 
 /// Run the equation-of-state analysis and record its result as an artifact with provenance:
@@ -328,10 +385,11 @@ pub async fn record_eos(
     ws: &Path,
     artifacts: &ArtifactStore,
     spec: &EosAnalysis,
+    with_retired: bool,
 ) -> Result<serde_json::Value> {
     let started = store::now();
-    let (groups, sources) = eos_groups(pool, spec).await?;
-    let doc = eos_json(&groups, spec);
+    let (groups, sources) = eos_groups(pool, spec, with_retired).await?;
+    let doc = eos_json(&groups, spec, with_retired);
     let mut text = serde_json::to_string_pretty(&doc)?;
     text.push('\n');
     let dir = ws.join("analysis");
@@ -343,10 +401,13 @@ pub async fn record_eos(
         .put_bytes(text.as_bytes())
         .context("cannot store the equation-of-state result")?;
     let exe = OwnProgram::current();
-    let argv_json = serde_json::to_string(&eos_argv(&exe.path, ws))?;
-    let options_json =
-        serde_json::json!({"energy": spec.energy, "volume": spec.volume, "models": spec.models})
-            .to_string();
+    let argv_json = serde_json::to_string(&eos_argv(&exe.path, ws, with_retired))?;
+    let mut options =
+        serde_json::json!({"energy": spec.energy, "volume": spec.volume, "models": spec.models});
+    if with_retired {
+        options["with_retired"] = true.into();
+    }
+    let options_json = options.to_string();
     let (out_dir, program_path) = (dir.display().to_string(), exe.path.display().to_string());
     let (blake3, unknown) = (exe.hash(), exe.unknown());
     let (host, ended) = (store::hostname(), store::now());

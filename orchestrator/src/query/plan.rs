@@ -6,15 +6,19 @@
 //! per stage, how many converged points), a stage with nothing recorded is `unknown` (and so
 //! is every total it enters), and the iterations to go come as a typical estimate (the
 //! recorded median iterations-to-converge of converged points) and an upper bound (the
-//! iterations left to max-iterations). Reads only through [`crate::store::reads::tables`];
-//! no SQL, no engine.
+//! iterations left to max-iterations). An edited campaign file is counted as `rondo run`
+//! would apply it (its classification, [`crate::revision::Classification`], comes in):
+//! its new points are estimated as unstarted ones, its retired points drop out, its
+//! reopened points continue up to the new cap; an edit `rondo run` would refuse leaves the
+//! recorded points. Reads only through [`crate::store::reads::tables`]; no SQL, no engine.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, HashMap};
 
 use anyhow::Result;
 use serde::Serialize;
 use sqlx::SqlitePool;
 
+use crate::revision::Classification;
 use crate::spec::{Campaign, Stage};
 use crate::store::reads::tables;
 use crate::store::PointState;
@@ -79,6 +83,91 @@ pub struct Plan {
     pub budget_core_hours: Option<f64>,
     /// Whether the upper bound exceeds the budget (`None`: no budget, or unknown total).
     pub over_budget: Option<bool>,
+    /// What an edited campaign file changes in the count (`None`: the file is the
+    /// workspace's latest revision, or there is no workspace).
+    pub edit: Option<PlanEdit>,
+}
+
+/// An edited campaign file in the plan: what it would add, retire and reopen.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PlanEdit {
+    /// The recorded revision it is compared with.
+    pub from: i64,
+    /// The number it would be recorded as.
+    pub number: i64,
+    /// `rondo run` would refuse it (it changes what the points compute, not accepted):
+    /// the plan then counts the recorded points only.
+    pub refused: bool,
+    /// The physics changes (one readable line each).
+    pub physics: Vec<String>,
+    /// Points it adds (new sweep values, and new points for the values of started points
+    /// under accepted physics changes).
+    pub new_points: Vec<String>,
+    /// Points it retires.
+    pub retired_points: Vec<String>,
+    /// Retired points whose values come back.
+    pub restored_points: Vec<String>,
+    /// Stopped points that continue (a capped point under a higher cap, a converged one
+    /// whose rules no longer hold).
+    pub reopened_points: Vec<String>,
+    /// Iterations of one new point: typical (the median iterations to converge of the
+    /// recorded converged points; the cap when none) and upper (the cap).
+    pub new_point_iterations: Range,
+}
+
+impl PlanEdit {
+    /// The edit's part of the plan, from its classification (`accept`: as `rondo run
+    /// --accept-revision`).
+    fn of(c: &Classification, accept: bool, new_point_iterations: Range) -> PlanEdit {
+        let ids = |v: &[(String, String)]| v.iter().map(|(id, _)| id.clone()).collect();
+        let mut new_points: Vec<String> = ids(&c.added);
+        let mut retired_points: Vec<String> = ids(&c.retired);
+        for (old, new, _) in &c.rerun {
+            new_points.push(new.clone());
+            retired_points.push(old.clone());
+        }
+        PlanEdit {
+            from: c.from,
+            number: c.number,
+            refused: c.needs_acceptance() && !accept,
+            physics: c.physics.clone(),
+            new_points,
+            retired_points,
+            restored_points: ids(&c.restored),
+            reopened_points: c
+                .reopened
+                .iter()
+                .filter(|r| r.becomes == PointState::Running)
+                .map(|r| r.point.clone())
+                .collect(),
+            new_point_iterations,
+        }
+    }
+}
+
+/// Good iterations done per point still to go once the edit `c` is applied: the revised
+/// campaign's points (retired ones are not among them) that have not stopped, the stopped
+/// ones it reopens, and its new points (none done). `progress` is every recorded point's,
+/// retired ones too (a restored point keeps its history).
+fn to_go_after(progress: &[(String, PointState, i64, i64)], c: &Classification) -> Vec<i64> {
+    let recorded: HashMap<&str, (PointState, i64)> = progress
+        .iter()
+        .map(|(id, s, good, _)| (id.as_str(), (*s, *good)))
+        .collect();
+    c.points
+        .iter()
+        .filter_map(|p| {
+            let known = recorded.get(p.id.as_str()).copied();
+            if let Some(r) = c.reopened.iter().find(|r| r.point == p.id) {
+                let good = known.map_or(i64::from(r.iteration), |(_, g)| g);
+                return (r.becomes == PointState::Running).then_some(good);
+            }
+            match known {
+                Some((s, good)) => (!s.stopped() || s == PointState::Cancelled).then_some(good),
+                None => Some(0),
+            }
+        })
+        .collect()
 }
 
 /// One stage's estimate from its recorded wall times (`secs`), how many of those attempts
@@ -130,11 +219,14 @@ fn median(v: &mut [f64]) -> Option<f64> {
 }
 
 /// Estimate what is left of `campaign` in the workspace behind `progress` (`None`: not
-/// started, every point to go) from the durations recorded behind `durations`.
+/// started, every point to go) from the durations recorded behind `durations`. `edit`: the
+/// campaign file's classification against that workspace when it differs from the latest
+/// revision, and whether physics changes are accepted.
 pub async fn estimate(
     campaign: &Campaign,
     progress: Option<&SqlitePool>,
     durations: Option<&SqlitePool>,
+    edit: Option<(&Classification, bool)>,
 ) -> Result<Plan> {
     // Iterations-to-converge of the converged points of the durations' workspace.
     let mut converged: Vec<f64> = Vec::new();
@@ -147,17 +239,43 @@ pub async fn estimate(
     }
     let converged_points = converged.len();
     let median_to_converge = median(&mut converged);
-    // Good iterations done per point still to go.
-    let done: Vec<i64> = match progress {
-        Some(pool) => tables::point_progress(pool)
-            .await?
-            .into_iter()
-            .filter(|(_, s, _, _)| !s.stopped() || *s == PointState::Cancelled)
-            .map(|(_, _, good, _)| good)
-            .collect(),
-        None => vec![0; campaign.points.len()],
-    };
     let cap = f64::from(campaign.max_iterations);
+    let plan_edit = edit.map(|(c, accept)| {
+        let typical = median_to_converge.map_or(cap, |m| m.ceil().clamp(1.0, cap));
+        PlanEdit::of(
+            c,
+            accept,
+            Range {
+                typical,
+                upper: cap,
+            },
+        )
+    });
+    // Good iterations done per point still to go, and the campaign's points.
+    let (done, points): (Vec<i64>, usize) = match (progress, edit) {
+        (Some(pool), Some((c, accept))) if accept || !c.needs_acceptance() => {
+            let all = tables::point_progress_of(pool, true).await?;
+            (to_go_after(&all, c), c.points.len())
+        }
+        (Some(pool), _) => {
+            let live = tables::point_progress(pool).await?;
+            let n = live.len();
+            let done = live
+                .into_iter()
+                .filter(|(_, s, _, _)| !s.stopped() || *s == PointState::Cancelled)
+                .map(|(_, _, good, _)| good)
+                .collect();
+            (
+                done,
+                if edit.is_some() {
+                    n
+                } else {
+                    campaign.points.len()
+                },
+            )
+        }
+        (None, _) => (vec![0; campaign.points.len()], campaign.points.len()),
+    };
     let mut iterations = Range {
         typical: 0.0,
         upper: 0.0,
@@ -218,7 +336,7 @@ pub async fn estimate(
     };
     Ok(Plan {
         points_to_go: done.len(),
-        points: campaign.points.len(),
+        points,
         iterations,
         median_to_converge,
         converged_points,
@@ -226,6 +344,7 @@ pub async fn estimate(
         total_core_hours: total,
         budget_core_hours: campaign.budget_core_hours,
         over_budget,
+        edit: plan_edit,
     })
 }
 

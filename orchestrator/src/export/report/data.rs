@@ -29,6 +29,9 @@ pub struct PointData {
     /// metric → iteration → sample (good iterations, succeeded attempts).
     pub metrics: BTreeMap<String, BTreeMap<i64, Sample>>,
     pub last_good: Option<i64>,
+    /// The revision that retired it (only with `--with-retired`; otherwise retired points
+    /// are not read).
+    pub retired_in: Option<i64>,
 }
 
 impl PointData {
@@ -43,16 +46,25 @@ impl PointData {
         self.metrics.get(metric)?.get(&last).copied()
     }
 
+    /// The point's id as the report shows it: marked when a revision retired it.
+    pub fn label(&self) -> String {
+        match self.retired_in {
+            Some(n) => format!("{} (retired in revision {n})", self.id),
+            None => self.id.clone(),
+        }
+    }
+
     /// Whether the point converged.
     pub fn is_converged(&self) -> bool {
         self.state == PointState::Converged
     }
 }
 
-/// Every point with its good metrics and last good iteration, in sweep order.
-pub async fn load_points(pool: &SqlitePool) -> Result<Vec<PointData>> {
+/// Every point with its good metrics and last good iteration, in sweep order (retired
+/// points only `with_retired`).
+pub async fn load_points(pool: &SqlitePool, with_retired: bool) -> Result<Vec<PointData>> {
     let mut pts = Vec::new();
-    for r in points::all(pool).await? {
+    for r in points::all_of(pool, with_retired).await? {
         let values = match serde_json::from_str::<Value>(&r.values_json) {
             Ok(Value::Object(m)) => m,
             _ => bail!("point {}: malformed values_json in the store", r.id),
@@ -63,6 +75,7 @@ pub async fn load_points(pool: &SqlitePool) -> Result<Vec<PointData>> {
             state: r.state,
             metrics: BTreeMap::new(),
             last_good: None,
+            retired_in: r.retired_in,
         });
     }
     let index: BTreeMap<String, usize> = pts

@@ -63,7 +63,7 @@ pub fn convergence(f: &mut Folder<'_>, p: &PointData, conv_metrics: &[String]) -
     let name = format!("convergence-{}", p.id);
     let title = format!(
         "Convergence of {} ({})",
-        p.id,
+        p.label(),
         p.values
             .iter()
             .map(|(k, v)| format!("{k} = {}", axis_text(v)))
@@ -101,9 +101,9 @@ pub fn overview(
             continue;
         };
         let label = if p.is_converged() {
-            p.id.clone()
+            p.label()
         } else {
-            format!("{} ({})", p.id, p.state)
+            format!("{} ({})", p.label(), p.state)
         };
         let mut change = Series {
             label,

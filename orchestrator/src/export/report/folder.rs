@@ -137,7 +137,7 @@ pub fn build<'a>(
     step("configuration probabilities".into());
     figures::probabilities(&mut f, opts, &groups)?;
     step("tables".into());
-    let table = html::observables(&mut f, points)?;
+    let table = html::observables(&mut f, points, opts.with_retired)?;
     let cost = html::cost(&mut f, sections.costs)?;
     let after = html::after_campaign(&mut f, sections.stage_outputs, sections.artifacts)?;
     f.tables = ["observables.csv", "eos-fits.csv", "cost.csv"]

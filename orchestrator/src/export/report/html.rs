@@ -23,9 +23,10 @@ fn axes_of(points: &[PointData]) -> Vec<String> {
     a
 }
 
-/// `observables.csv` (one row per point and metric at the last good iteration) and the
+/// `observables.csv` (one row per point and metric at the last good iteration; with the
+/// column `retired_in` when `with_retired`, so the default file stays as it was) and the
 /// HTML table of the same (one row per point); returns the table.
-pub fn observables(f: &mut Folder<'_>, points: &[PointData]) -> Result<String> {
+pub fn observables(f: &mut Folder<'_>, points: &[PointData], with_retired: bool) -> Result<String> {
     let axes = axes_of(points);
     let metric_names: BTreeSet<&String> = points.iter().flat_map(|p| p.metrics.keys()).collect();
     let mut csv = String::from("point,");
@@ -33,7 +34,11 @@ pub fn observables(f: &mut Folder<'_>, points: &[PointData]) -> Result<String> {
         csv.push_str(&csv_field(a));
         csv.push(',');
     }
-    csv.push_str("state,iteration,metric,value,error\n");
+    csv.push_str(if with_retired {
+        "state,iteration,metric,value,error,retired_in\n"
+    } else {
+        "state,iteration,metric,value,error\n"
+    });
     let mut table = String::from("<div class=\"wide\">\n<table>\n<thead><tr><th>point</th>");
     for a in &axes {
         let _ = write!(table, "<th>{}</th>", html_escape(a));
@@ -46,7 +51,7 @@ pub fn observables(f: &mut Folder<'_>, points: &[PointData]) -> Result<String> {
     let mut src = BTreeSet::new();
     for p in points {
         let axis = |a: &String| p.values.get(a).map(axis_text).unwrap_or_default();
-        let _ = write!(table, "<tr><td>{}</td>", html_escape(&p.id));
+        let _ = write!(table, "<tr><td>{}</td>", html_escape(&p.label()));
         for a in &axes {
             let _ = write!(table, "<td>{}</td>", axis(a));
         }
@@ -69,15 +74,20 @@ pub fn observables(f: &mut Folder<'_>, points: &[PointData]) -> Result<String> {
             for a in &axes {
                 let _ = write!(csv, "{},", csv_field(&axis(a)));
             }
-            let _ = writeln!(
+            let _ = write!(
                 csv,
                 "{},{},{},{},{}",
                 p.state,
                 p.last_good.unwrap_or(0),
                 csv_field(m),
                 num(s.value),
-                opt_num(s.error)
+                opt_num(s.error),
             );
+            if with_retired {
+                let n = p.retired_in.map(|n| n.to_string()).unwrap_or_default();
+                let _ = write!(csv, ",{n}");
+            }
+            csv.push('\n');
         }
         table.push_str("</tr>\n");
     }
@@ -251,8 +261,10 @@ pub struct Heading {
     pub name: String,
     /// (number, BLAKE3, accepted at, physics accepted) of every revision, oldest first.
     pub revisions: Vec<(i64, String, String, bool)>,
-    /// Points left out because a revision retired them.
+    /// Points a revision retired.
     pub retired: usize,
+    /// Whether they are in the report (`--with-retired`) or left out.
+    pub retired_included: bool,
 }
 
 /// The campaign file's revisions, when it has more than one (empty otherwise).
@@ -276,7 +288,13 @@ fn revisions_section(h: &Heading) -> String {
         );
     }
     html.push_str("</tbody>\n</table>\n");
-    if h.retired > 0 {
+    if h.retired > 0 && h.retired_included {
+        let _ = writeln!(
+            html,
+            "<p>{} retired point(s) are included in this report (<code>--with-retired</code>), each marked <em>retired in revision N</em>.</p>",
+            h.retired
+        );
+    } else if h.retired > 0 {
         let _ = writeln!(
             html,
             "<p>{} retired point(s) are left out of this report (<code>rondo status</code> lists them).</p>",

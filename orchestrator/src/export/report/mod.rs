@@ -75,6 +75,9 @@ pub struct ReportOptions {
     pub convergence_metrics: Vec<String>,
     /// Command line to record as the report's argv.
     pub argv: Vec<String>,
+    /// Include the points a revision retired, marked `retired in revision N`
+    /// (`--with-retired`).
+    pub with_retired: bool,
 }
 
 impl Default for ReportOptions {
@@ -86,6 +89,7 @@ impl Default for ReportOptions {
             probability_metrics: vec!["solve.p0".into(), "solve.p1".into(), "solve.p2".into()],
             convergence_metrics: Vec::new(),
             argv: vec!["rondo".into(), "report".into()],
+            with_retired: false,
         }
     }
 }
@@ -184,7 +188,7 @@ pub async fn generate_with(
         .await?
         .map(|c| c.spec_text)
         .unwrap_or_default();
-    let points = data::load_points(pool).await?;
+    let points = data::load_points(pool, opts.with_retired).await?;
     if points.is_empty() {
         bail!(
             "campaign {} has no points recorded; nothing to report",
@@ -208,6 +212,7 @@ pub async fn generate_with(
             .iter()
             .filter(|p| p.retired_in.is_some())
             .count(),
+        retired_included: opts.with_retired,
     };
     let place = record::Placement::prepare(out_dir)?;
     let built = folder::build(

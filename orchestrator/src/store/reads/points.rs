@@ -21,14 +21,24 @@ pub struct PointRow {
     pub values_json: String,
     /// State.
     pub state: PointState,
+    /// The revision that retired it (only ever set in [`all_of`]`(pool, true)`).
+    pub retired_in: Option<i64>,
 }
 
 /// Every point of the campaign, in sweep order: retired points (revisions removed their
 /// values, or changed their physics) are left out of analyses, reports and tables.
 pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
+    all_of(pool, false).await
+}
+
+/// Every point, in sweep order; retired points too when `with_retired` (`--with-retired`
+/// of report, analyze and table), with the revision that retired them.
+pub async fn all_of(pool: &SqlitePool, with_retired: bool) -> Result<Vec<PointRow>> {
     let rows = sqlx::query(
-        "SELECT id, values_json, state FROM points WHERE retired_in IS NULL ORDER BY idx",
+        "SELECT id, values_json, state, retired_in FROM points \
+         WHERE retired_in IS NULL OR ? ORDER BY idx",
     )
+    .bind(with_retired)
     .fetch_all(pool)
     .await
     .context("cannot read the points")?;
@@ -41,6 +51,7 @@ pub async fn all(pool: &SqlitePool) -> Result<Vec<PointRow>> {
         out.push(PointRow {
             values_json: r.try_get(1)?,
             state,
+            retired_in: r.try_get(3)?,
             id,
         });
     }
@@ -62,15 +73,15 @@ pub async fn values(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
     Ok(out)
 }
 
-/// Every point as (id, values_json), retired ones too, in sweep order (for the records of
-/// every attempt, which name retired points as well).
-pub async fn values_with_retired(pool: &SqlitePool) -> Result<Vec<(String, String)>> {
-    let rows = sqlx::query("SELECT id, values_json FROM points ORDER BY idx")
+/// Every point as (id, values_json, the revision that retired it), retired ones too, in
+/// sweep order (for the records of every attempt, which name retired points as well).
+pub async fn values_with_retired(pool: &SqlitePool) -> Result<Vec<(String, String, Option<i64>)>> {
+    let rows = sqlx::query("SELECT id, values_json, retired_in FROM points ORDER BY idx")
         .fetch_all(pool)
         .await?;
     let mut out = Vec::new();
     for r in rows {
-        out.push((r.try_get(0)?, r.try_get(1)?));
+        out.push((r.try_get(0)?, r.try_get(1)?, r.try_get(2)?));
     }
     Ok(out)
 }

@@ -143,13 +143,23 @@ pub async fn durations(pool: &SqlitePool) -> Result<Vec<Duration>> {
 /// Per point of the campaign (retired points left out): (point, state, number of good
 /// iterations, last iteration begun).
 pub async fn point_progress(pool: &SqlitePool) -> Result<Vec<(String, PointState, i64, i64)>> {
+    point_progress_of(pool, false).await
+}
+
+/// [`point_progress`], of retired points too when `with_retired` (an edit may bring them
+/// back).
+pub async fn point_progress_of(
+    pool: &SqlitePool,
+    with_retired: bool,
+) -> Result<Vec<(String, PointState, i64, i64)>> {
     let rows = sqlx::query(
         "SELECT p.id, p.state, \
                 (SELECT count(*) FROM iterations i WHERE i.point = p.id AND i.state = ?), \
                 (SELECT coalesce(max(iteration), 0) FROM iterations i WHERE i.point = p.id) \
-         FROM points p WHERE p.retired_in IS NULL ORDER BY p.idx",
+         FROM points p WHERE p.retired_in IS NULL OR ? ORDER BY p.idx",
     )
     .bind(IterationState::Good)
+    .bind(with_retired)
     .fetch_all(pool)
     .await
     .context("cannot read the points' progress")?;
