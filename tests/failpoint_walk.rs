@@ -542,6 +542,24 @@ fn every_failpoint_crashes_there_and_resumes_to_the_end_of_an_uninterrupted_run(
         );
     }
     let started = Instant::now();
+    let (_a, reference, report) = reference_run();
+    let mut walked = 0;
+    for (name, n, way) in WALK {
+        if !chosen(name) {
+            continue;
+        }
+        walk_one(name, *n, *way, &reference, &report);
+        walked += 1;
+    }
+    eprintln!(
+        "failpoint walk: {walked} of {} failpoints in {:.0} s",
+        WALK.len(),
+        started.elapsed().as_secs_f64()
+    );
+}
+
+/// The uninterrupted run and its report: what every walk must end with.
+fn reference_run() -> (tempfile::TempDir, Finished, BTreeMap<String, String>) {
     let a = campaign_dir();
     let o = rondo_at(a.path(), &run_args(), None);
     assert_eq!(o.status.code(), Some(FINISHED), "{}", shown(&o));
@@ -558,23 +576,137 @@ fn every_failpoint_crashes_there_and_resumes_to_the_end_of_an_uninterrupted_run(
     assert_eq!(o.status.code(), Some(0), "{}", shown(&o));
     let report = report_outputs(&ws);
     assert!(report.contains_key("eos.csv"), "{report:?}");
-    // RONDO_FAILPOINT_WALK=NAME[,NAME...] walks only those (to replay one).
-    let only = std::env::var("RONDO_FAILPOINT_WALK").ok();
-    let mut walked = 0;
+    (a, reference, report)
+}
+
+/// Whether the walk takes this failpoint: `RONDO_FAILPOINT_WALK=NAME[,NAME...]` walks only
+/// those (to replay one).
+fn chosen(name: &str) -> bool {
+    std::env::var("RONDO_FAILPOINT_WALK")
+        .ok()
+        .is_none_or(|o| o.split(',').any(|x| x == name))
+}
+
+/// `rondo run` in `dir`, armed with `armed` if given, logging every failpoint hit to `log`:
+/// its output and how often the rondo process itself (not a keeper it started) passed each
+/// failpoint.
+fn run_logged(dir: &Path, armed: Option<&str>, log: &Path) -> (Output, BTreeMap<String, u64>) {
+    let mut c = Command::new(rondo());
+    c.args(run_args())
+        .current_dir(dir)
+        .env("PATH", path_with_binaries())
+        .env_remove(rondo::failpoint::VARIABLE)
+        .env(rondo::failpoint::LOG_VARIABLE, log)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped());
+    if let Some(a) = armed {
+        c.env(rondo::failpoint::VARIABLE, a);
+    }
+    let child = c
+        .spawn()
+        .unwrap_or_else(|e| panic!("cannot run rondo: {e}"));
+    let pid = child.id().to_string();
+    let o = child
+        .wait_with_output()
+        .unwrap_or_else(|e| panic!("wait for rondo: {e}"));
+    let text = std::fs::read_to_string(log).unwrap_or_default();
+    let mut counts = BTreeMap::new();
+    for (p, name) in text.lines().filter_map(|l| l.split_once(' ')) {
+        if p == pid {
+            *counts.entry(name.to_string()).or_insert(0) += 1;
+        }
+    }
+    (o, counts)
+}
+
+/// How often one uninterrupted run passes each failpoint.
+fn hit_counts() -> BTreeMap<String, u64> {
+    let d = campaign_dir();
+    let log = d.path().join("hits.log");
+    let (o, counts) = run_logged(d.path(), None, &log);
+    assert_eq!(o.status.code(), Some(FINISHED), "{}", shown(&o));
+    counts
+}
+
+/// Crash at the `n`-th, last, hit of `name` and resume. A run that passed the failpoint
+/// fewer times than that (its count depends on timing) is told and not held against it;
+/// one that passed it `n` times without crashing fails the test.
+fn walk_last(name: &str, n: u64, reference: &Finished) -> bool {
+    let d = campaign_dir();
+    let dir = d.path();
+    let armed = format!("{name}:{n}");
+    let started = Instant::now();
+    let (o, counts) = run_logged(dir, Some(&armed), &dir.join("hits.log"));
+    let passed = counts.get(name).copied().unwrap_or(0);
+    if o.status.code() == Some(FINISHED) && passed < n {
+        eprintln!(
+            "failpoint {armed}: this run passed it {passed} times, fewer than the reference              runs (timing); not crashed at its last hit"
+        );
+        return false;
+    }
+    assert_crashed_at(&o, &armed);
+    let o = rondo_at(dir, &run_args(), None);
+    assert_eq!(
+        o.status.code(),
+        Some(FINISHED),
+        "armed {armed}: the resumed run: {}",
+        shown(&o)
+    );
+    assert_same_end(reference, &ws_of(dir), &armed);
+    eprintln!(
+        "failpoint {armed} (its last hit): crashed there, resumed to the same end ({:.1} s)",
+        started.elapsed().as_secs_f64()
+    );
+    true
+}
+
+/// The walk above crashes each failpoint at one hit, mostly an early one. A plain run
+/// passes many of them over and over (every attempt, every iteration): each failpoint that
+/// two uninterrupted runs pass the same number of times, more often than the walk's hit,
+/// is crashed at its last hit as well, where the campaign is nearly done and the store
+/// holds the most. Failpoints whose count depends on timing (the two runs disagree) are
+/// listed and left to the walk above.
+#[test]
+fn every_repeated_failpoint_crashes_at_its_last_hit_too() {
+    let _ = model_solid();
+    assert!(
+        binary_has_failpoints(),
+        "see the walk above: a build without failpoints"
+    );
+    let started = Instant::now();
+    let (_a, reference, _report) = reference_run();
+    let (c1, c2) = (hit_counts(), hit_counts());
+    let (mut walked, mut varied) = (Vec::new(), Vec::new());
     for (name, n, way) in WALK {
-        if only
-            .as_deref()
-            .is_some_and(|o| !o.split(',').any(|x| x == *name))
-        {
+        if *way != Way::Run || !chosen(name) {
             continue;
         }
-        walk_one(name, *n, *way, &reference, &report);
-        walked += 1;
+        let (a, b) = (c1.get(*name).copied(), c2.get(*name).copied());
+        match (a, b) {
+            (Some(a), Some(b)) if a == b && a > *n => {
+                if walk_last(name, a, &reference) {
+                    walked.push(format!("{name}:{a}"));
+                } else {
+                    varied.push(format!("{name} (this run)"));
+                }
+            }
+            (Some(a), Some(b)) if a == b => {}
+            _ => varied.push(format!("{name} ({a:?} and {b:?} hits)")),
+        }
     }
     eprintln!(
-        "failpoint walk: {walked} of {} failpoints in {:.0} s",
-        WALK.len(),
+        "failpoints crashed at their last hit: {} ({}); counts that vary with timing: {};          {:.0} s",
+        walked.len(),
+        walked.join(", "),
+        if varied.is_empty() { "none".to_string() } else { varied.join(", ") },
         started.elapsed().as_secs_f64()
+    );
+    // Most of the repeated steps are deterministic in this campaign: the test would mean
+    // nothing if timing took them all away.
+    assert!(
+        walked.len() >= 8,
+        "only {} failpoints crashed at their last hit",
+        walked.len()
     );
 }
 

@@ -6,8 +6,9 @@
 //! by default; the crate's tests turn it on through a dev-dependency on the crate itself),
 //! `RONDO_FAILPOINT=NAME:N` makes the process kill itself with SIGKILL — a real crash, no
 //! destructor, no flush, no cleanup — on the `N`-th hit of `NAME`, after printing
-//! `rondo: failpoint NAME hit N: crashing` to stderr. Without the feature, [`hit`] is an
-//! empty inline function: release builds read no variable and carry no crash path.
+//! `rondo: failpoint NAME hit N: crashing` to stderr, and `RONDO_FAILPOINT_LOG=FILE` logs
+//! every hit. Without the feature, [`hit`] is an empty inline function: release builds read
+//! no variable and carry no crash path.
 //!
 //! The list below is the one the table of docs/concepts.md ("Failpoints") must show; the
 //! test `failpoint_walk::the_list_is_complete` compares them, and checks that every write
@@ -73,6 +74,11 @@ failpoints! {
 /// The environment variable that arms a failpoint: `NAME:N` (N ≥ 1).
 pub const VARIABLE: &str = "RONDO_FAILPOINT";
 
+/// The environment variable naming a file to which every hit of every failpoint appends
+/// one line, `PID NAME` (test builds only): how a test learns how often a run passes each
+/// step, to crash at its last hit too.
+pub const LOG_VARIABLE: &str = "RONDO_FAILPOINT_LOG";
+
 /// Parse an armed failpoint, `NAME:N`; the error says what is wrong and lists the names.
 pub fn parse(text: &str) -> Result<(Failpoint, u64), String> {
     let names = || {
@@ -104,12 +110,31 @@ pub fn parse(text: &str) -> Result<(Failpoint, u64), String> {
 
 #[cfg(feature = "failpoints")]
 mod armed {
-    use super::{parse, Failpoint, VARIABLE};
+    use super::{parse, Failpoint, LOG_VARIABLE, VARIABLE};
+    use std::io::Write as _;
     use std::sync::atomic::{AtomicU64, Ordering};
     use std::sync::OnceLock;
 
     static ARMED: OnceLock<Option<(Failpoint, u64)>> = OnceLock::new();
     static HITS: AtomicU64 = AtomicU64::new(0);
+    static LOG: OnceLock<Option<std::path::PathBuf>> = OnceLock::new();
+
+    /// Append `PID NAME` to the hit log, if one is named (one short write with O_APPEND, so
+    /// lines of several processes do not interleave).
+    fn log(fp: Failpoint) {
+        let Some(path) = LOG.get_or_init(|| std::env::var_os(LOG_VARIABLE).map(Into::into)) else {
+            return;
+        };
+        let line = format!("{} {}\n", std::process::id(), fp.name());
+        let written = std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(path)
+            .and_then(|mut f| f.write_all(line.as_bytes()));
+        if let Err(e) = written {
+            eprintln!("rondo: {LOG_VARIABLE}={}: {e}", path.display());
+        }
+    }
 
     /// The armed failpoint, read once; a bad value ends the process with the reason (exit 2).
     fn armed() -> Option<(Failpoint, u64)> {
@@ -133,6 +158,7 @@ mod armed {
     }
 
     pub fn hit(fp: Failpoint) {
+        log(fp);
         let Some((want, n)) = armed() else { return };
         if want != fp {
             return;
