@@ -141,6 +141,44 @@ mod tests {
         Ok(())
     }
 
+    /// The named HDF5 datasets are blended and everything else is the first file's; read-only
+    /// inputs (as the store holds them) give a written, owner-writable output.
+    #[test]
+    fn hdf5_datasets_blend_from_read_only_inputs() -> Result<(), Box<dyn std::error::Error>> {
+        use hdf5_metno as h5;
+        use std::os::unix::fs::PermissionsExt;
+        let d = tempfile::tempdir()?;
+        let p = |n: &str| d.path().join(n);
+        for (name, x, label) in [("a.h5", [1.0, 2.0], b"a"), ("b.h5", [3.0, 2.0], b"b")] {
+            let f = h5::File::create(p(name))?;
+            f.new_dataset::<f64>()
+                .shape([2])
+                .create("sigma")?
+                .write_raw(&x)?;
+            f.new_dataset::<u8>()
+                .shape([1])
+                .create("label")?
+                .write_raw(label)?;
+            f.close()?;
+            std::fs::set_permissions(p(name), std::fs::Permissions::from_mode(0o444))?;
+        }
+        let names = ["/sigma".to_string()];
+        blend(
+            "sigma",
+            &p("a.h5"),
+            &p("b.h5"),
+            0.5,
+            Some(&names),
+            &p("o.h5"),
+        )?;
+        let f = h5::File::open(p("o.h5"))?;
+        assert_eq!(f.dataset("sigma")?.read_raw::<f64>()?, [2.0, 2.0]);
+        assert_eq!(f.dataset("label")?.read_raw::<u8>()?, b"a");
+        let mode = std::fs::metadata(p("o.h5"))?.permissions().mode();
+        assert_eq!(mode & 0o200, 0o200, "mode {mode:o}");
+        Ok(())
+    }
+
     /// A JSON object's floating-point fields are blended, its other fields kept; an integer
     /// that differs is refused (a count is not interpolated), as are arrays of other shapes.
     #[test]

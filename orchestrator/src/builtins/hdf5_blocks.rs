@@ -80,6 +80,15 @@ pub(super) fn write(
     std::fs::copy(input, &tmp)
         .map_err(|e| format!("{shown}: cannot copy {}: {e}", input.display()))?;
     let written = (|| -> Result<(), String> {
+        // The copy keeps the input's mode, and an input from the store is read-only: the
+        // copy is ours to write.
+        use std::os::unix::fs::PermissionsExt;
+        let mode = std::fs::metadata(&tmp)
+            .map_err(|e| format!("{shown}: {e}"))?
+            .permissions()
+            .mode();
+        std::fs::set_permissions(&tmp, std::fs::Permissions::from_mode(mode | 0o200))
+            .map_err(|e| format!("{shown}: cannot make the copy writable: {e}"))?;
         let file = h5::File::open_rw(&tmp).map_err(|e| format!("{shown}: cannot open: {e}"))?;
         let mut at = 0;
         for d in layout {
