@@ -228,30 +228,7 @@ fn check_report_diff_and_prov(dir: &Path, engine_hash: &str) {
         n_act as i64, recorded,
         "one activity per attempt and report generation"
     );
-    let python = std::env::var("RONDO_PROV_PYTHON").unwrap_or_else(|_| "python3".into());
-    let out = std::process::Command::new(&python)
-        .arg(repo().join("tests/prov_check.py"))
-        .arg(&prov)
-        .args([
-            "--entities",
-            &n_ent.to_string(),
-            "--activities",
-            &n_act.to_string(),
-        ])
-        .output()
-        .unwrap_or_else(|e| panic!("cannot run {python}: {e}"));
-    let err = String::from_utf8_lossy(&out.stderr);
-    if !out.status.success() {
-        if err.contains("not installed") {
-            skip_or_fail(
-                &format!("the prov library is not installed for {python}; the demo's PROV-JSON was not validated"),
-                "bash scripts/test installs it (tests/requirements-prov.txt) and sets RONDO_PROV_PYTHON",
-                &["RONDO_REQUIRE_PROV"],
-            );
-        } else {
-            panic!("prov_check.py refused the export: {err}");
-        }
-    }
+    assert_prov_valid(&prov, n_ent, n_act);
 }
 
 /// Open the demo's report page in headless Chromium (Debian's package) and check that the

@@ -581,6 +581,8 @@ fn an_added_volume_between_two_converged_ones_starts_from_their_interpolation() 
         .as_object()
         .map(|m| m.values().collect())
         .unwrap_or_default();
+    let count = |k: &str| doc[k].as_object().map_or(0, serde_json::Map::len);
+    assert_prov_valid(&prov, count("entity"), count("activity"));
     for source in [hashes[1], hashes[2]] {
         assert!(
             derived.iter().any(

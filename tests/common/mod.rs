@@ -480,3 +480,38 @@ pub fn strings(ws: &Path, sql: &'static str) -> Vec<String> {
         })
     })
 }
+
+/// The PROV-JSON document at `prov` reads back through the general-purpose `prov` library
+/// (tests/prov_check.py, with RONDO_PROV_PYTHON or python3) with this many entities and
+/// activities; without the library the check is skipped loudly (a failure under
+/// RONDO_REQUIRE_PROV or CI).
+pub fn assert_prov_valid(prov: &Path, entities: usize, activities: usize) {
+    let python = std::env::var("RONDO_PROV_PYTHON").unwrap_or_else(|_| "python3".into());
+    let out = Command::new(&python)
+        .arg(repo().join("tests/prov_check.py"))
+        .arg(prov)
+        .args([
+            "--entities",
+            &entities.to_string(),
+            "--activities",
+            &activities.to_string(),
+        ])
+        .output()
+        .unwrap_or_else(|e| panic!("cannot run {python}: {e}"));
+    let err = String::from_utf8_lossy(&out.stderr);
+    if out.status.success() {
+        return;
+    }
+    if err.contains("not installed") {
+        skip_or_fail(
+            &format!(
+                "the prov library is not installed for {python}; {} was not validated",
+                prov.display()
+            ),
+            "bash scripts/test installs it (tests/requirements-prov.txt) and sets RONDO_PROV_PYTHON",
+            &["RONDO_REQUIRE_PROV"],
+        );
+    } else {
+        panic!("prov_check.py refused {}: {err}", prov.display());
+    }
+}
