@@ -621,6 +621,110 @@ fn an_added_volume_between_two_converged_ones_starts_from_their_interpolation() 
     assert!((ew - ec).abs() < 1.0e-4, "warm {ew} eV, cold {ec} eV");
 }
 
+/// A small campaign of shell stages: `s` reads the previous iteration's text and JSON
+/// outputs, writes a text file (`v=…`) and a JSON object whose float `x` and integer `n`
+/// come from the sweep value, and reports `x`; converged at iteration 2.
+const SHELL_WARM: &str = r#"campaign: shellwarm
+sweep:
+  product:
+    v: [VALUES]
+start:
+  t: t0.txt
+  j: j0.json
+cycle:
+  s:
+    run: [sh, -c, 'cat "$1" "$2" > seen.txt; echo "v=$3" > out.txt; printf "{\"x\": %s, \"n\": 3, \"tag\": \"a\"}" "$3" > out.json; printf "{\"x\": %s}" "$3" > metrics.json', s, "{{input:t}}", "{{input:j}}", "{{param:v}}"]
+    inputs:
+      t: { previous: s.text, initially: start.t }
+      j: { previous: s.json, initially: start.j }
+    outputs: { text: out.txt, json: out.json }
+    metrics: [x]
+stop:
+  when:
+    - { metric: s.x, change-below: 0.5, for: 1 }
+  max-iterations: 3
+warm-start:
+  along: [v]
+"#;
+
+/// Interpolation where rondo can read the files as numbers, the nearest point's file
+/// elsewhere: a point added between two converged ones gets the JSON object blended (its
+/// float field interpolated, its integer and text fields kept) and the text file of the
+/// nearest point, and the event says which and why.
+#[test]
+fn inputs_rondo_cannot_read_as_numbers_come_from_the_nearest_point() {
+    let d = tempdir();
+    let dir = d.path();
+    std::fs::write(dir.join("t0.txt"), "v=0\n").unwrap_or_else(|e| panic!("{e}"));
+    std::fs::write(
+        dir.join("j0.json"),
+        "{\"x\": 0.0, \"n\": 3, \"tag\": \"a\"}",
+    )
+    .unwrap_or_else(|e| panic!("{e}"));
+    let text = |values: &str| SHELL_WARM.replace("VALUES", values);
+    std::fs::write(dir.join(FILE), text("1.0, 3.0")).unwrap_or_else(|e| panic!("{e}"));
+    run(dir, &[], 0);
+    std::fs::write(dir.join(FILE), text("1.0, 2.5, 3.0")).unwrap_or_else(|e| panic!("{e}"));
+    run(dir, &[], 0);
+    let w = ws(dir);
+    let blends = strings(
+        &w,
+        "SELECT stage || '.' || role || ' ' || printf('%.17g', weight) FROM warm_blends \
+         WHERE point = 'p003'",
+    );
+    assert_eq!(
+        blends,
+        ["s.json 0.75"],
+        "2.5 is 0.75 of the way from 1.0 to 3.0"
+    );
+    let event = strings(&w, "SELECT detail FROM events WHERE kind = 'warm-start'");
+    assert!(
+        event.len() == 1
+            && event[0].contains("s.json")
+            && event[0].contains("from the nearest, p002")
+            && event[0].contains("s.text:")
+            && event[0].contains("neither a .npy array nor valid JSON"),
+        "{event:?}"
+    );
+    // What the new point's first attempt read: the nearest point's (3.0) text, and the
+    // blend of the JSON objects (x = 1 + 0.75·2 = 2.5; n and tag kept).
+    let first = strings(
+        &w,
+        "SELECT workdir FROM attempts WHERE point = 'p003' AND iteration = 1 AND state = 'succeeded'",
+    );
+    let seen = std::fs::read_to_string(Path::new(&first[0]).join("seen.txt")).unwrap_or_default();
+    let blend = strings(&w, "SELECT artifact FROM warm_blends WHERE point = 'p003'");
+    let h = &blend[0];
+    let stored = std::fs::read_to_string(w.join("store").join(&h[..2]).join(&h[2..]))
+        .unwrap_or_else(|e| panic!("{e}"));
+    let j: serde_json::Value = serde_json::from_str(&stored).unwrap_or_else(|e| panic!("{e}"));
+    assert_eq!(
+        j,
+        serde_json::json!({"x": 2.5, "n": 3, "tag": "a"}),
+        "{stored}"
+    );
+    // The scratch folder of a succeeded attempt may be recycled: then only the records say.
+    if !seen.is_empty() {
+        assert!(seen.starts_with("v=3.0\n"), "{seen}");
+    }
+    let read = strings(
+        &w,
+        "SELECT i.artifact FROM attempt_inputs i JOIN attempts a ON a.id = i.attempt_id \
+         WHERE a.point = 'p003' AND a.iteration = 1 AND a.state = 'succeeded' AND i.role = 't'",
+    );
+    let nearest = strings(
+        &w,
+        "SELECT o.artifact FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
+         WHERE a.point = 'p002' AND a.state = 'succeeded' AND o.role = 'text' \
+         AND a.iteration = (SELECT max(iteration) FROM attempts WHERE point = 'p002' \
+         AND state = 'succeeded')",
+    );
+    assert_eq!(
+        read, nearest,
+        "the text input is the nearest point's last output"
+    );
+}
+
 /// `warm-start: { along: [volume], estimate: nearest }`: a volume added to a converged
 /// workspace starts from the nearest converged volume's last good iteration (its mixed density and self-energy),
 /// chosen when the revision is recorded and named in the store and an event; it needs
