@@ -439,8 +439,12 @@ fn a_raised_cap_continues_capped_points_as_a_cold_run_would() {
 fn killed_runs_after_a_revision_end_with_the_numbers_of_an_uninterrupted_one() {
     let _ = model_solid();
     let (a, b) = (tempdir(), tempdir());
-    let first = campaign("27.0, 28.0", "1200", "1.0e-3", 12, "6.0");
-    let edited = campaign("27.0, 28.0, 29.0, 30.0", "1200", "1.0e-6", 14, "6.0");
+    // The edit adds 28.0 between the two converged volumes (interpolated) and 30.0 past
+    // them (from the nearest), and raises the cap. (A tighter rule would reopen the two
+    // converged points, and a point that is not converged starts no other.)
+    let warm = "warm-start:\n  along: [volume]\n";
+    let first = campaign("27.0, 29.0", "1200", "1.0e-6", 12, "6.0") + warm;
+    let edited = campaign("27.0, 28.0, 29.0, 30.0", "1200", "1.0e-6", 14, "6.0") + warm;
     for d in [a.path(), b.path()] {
         write(d, &first);
         run(d, &[], 0);
@@ -465,6 +469,17 @@ fn killed_runs_after_a_revision_end_with_the_numbers_of_an_uninterrupted_one() {
         ["2"],
         "the revision is recorded once, whatever the kills"
     );
+    let blends = "SELECT point || ' ' || role || ' ' || artifact FROM warm_blends ORDER BY 1";
+    let (ba, bb) = (
+        strings(&ws(a.path()), blends),
+        strings(&ws(b.path()), blends),
+    );
+    assert_eq!(
+        ba.len(),
+        2,
+        "28.0 interpolated (density and self-energy): {ba:?}"
+    );
+    assert_eq!(bb, ba, "the same blends, whatever the kills");
     traces_name_their_revisions(b.path());
 }
 
