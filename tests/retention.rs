@@ -202,3 +202,49 @@ fn killed_runs_with_a_policy_keep_the_same_content_and_records() {
         "seed {seed}: the same content kept"
     );
 }
+
+/// A crash right after an iteration's verdict is committed and before its retention pass.
+/// The stage is short, so the verdict waits in the group commit that the pass's flush
+/// writes (failpoint `group-commit`). At a middle iteration the next pass of the point lets
+/// the skipped iteration's content go; at the last one, where the point stops and no pass
+/// of it follows, the next run's pass at its start does. Either way the store ends holding
+/// what an uninterrupted run holds.
+#[test]
+fn a_crash_before_a_retention_pass_leaves_nothing_behind() {
+    let args = ["run", "c.yaml", "-q", "--max-running", "1"];
+    let reference = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+    campaign(reference.path(), true);
+    let log = reference.path().join("hits.log");
+    let o = std::process::Command::new(rondo())
+        .args(args)
+        .current_dir(reference.path())
+        .env_remove(rondo::failpoint::VARIABLE)
+        .env(rondo::failpoint::LOG_VARIABLE, &log)
+        .output()
+        .unwrap_or_else(|e| panic!("{e}"));
+    assert!(o.status.success(), "{}", shown(&o));
+    let want = present(&reference.path().join("c.rondo"));
+    let hits = std::fs::read_to_string(&log).unwrap_or_default();
+    let commits = hits
+        .lines()
+        .filter(|l| l.ends_with(" group-commit"))
+        .count() as u64;
+    assert!(commits >= 4, "{commits} group commits: {hits}");
+    for hit in [commits / 2, commits] {
+        let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
+        campaign(d.path(), true);
+        let armed = format!("group-commit:{hit}");
+        let o = rondo_at(d.path(), &args, Some(&armed));
+        if o.status.success() {
+            // Group commits follow the timing of the attempts' ends: this run made fewer.
+            eprintln!("armed {armed}: the run ended before that hit; not crashed");
+            continue;
+        }
+        assert_crashed_at(&o, &armed);
+        let o = run_rondo(d.path(), &["run", "c.yaml", "-q"]);
+        assert!(o.status.success(), "armed {armed}: {}", shown(&o));
+        let ws = d.path().join("c.rondo");
+        check_kept(&ws);
+        assert_eq!(present(&ws), want, "armed {armed}");
+    }
+}

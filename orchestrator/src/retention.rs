@@ -101,9 +101,12 @@ pub struct Removed {
     pub bytes: u64,
 }
 
-/// A pass over the iterations of one point that `latest` (its new last good iteration)
-/// moved out of their policies' keep: for `last: N`, iteration `latest − N`; for
-/// `every: K`, the previous latest. Costs a few index look-ups per policy.
+/// A pass over the iterations of one point before `latest` (its last good iteration) whose
+/// content is still stored: what no policy keeps any more goes. Normally that is the one
+/// iteration `latest` just moved out of its policy (`latest − N` for `last: N`, the
+/// previous latest for `every: K`); after a crash between an iteration's record and its
+/// pass, the iterations the crash left are caught at the next pass of the point. One
+/// indexed query per policy, returning the contents still held.
 pub async fn after_iteration(
     pool: &SqlitePool,
     artifacts: &ArtifactStore,
@@ -116,15 +119,9 @@ pub async fn after_iteration(
     };
     let mut candidates = Vec::new();
     for ((stage, role), keep) in &policies.0 {
-        let mut its = vec![latest.saturating_sub(1)];
-        if let Some(n) = keep.last {
-            its.push(latest.saturating_sub(n));
-        }
-        its.sort_unstable();
-        its.dedup();
-        for it in its.into_iter().filter(|&i| i >= 1) {
-            if !keeps(*keep, it, marks) {
-                candidates.extend(rows::outputs_at(pool, point, stage, role, it).await?);
+        for held in rows::outputs_before(pool, point, stage, role, latest).await? {
+            if !keeps(*keep, held.at.iteration, marks) {
+                candidates.push(held);
             }
         }
     }
@@ -142,9 +139,9 @@ pub async fn whole_workspace(
     for (point, latest) in rows::good_ranges(pool).await? {
         let marks = rows::marks(pool, &point).await?;
         for ((stage, role), keep) in &policies.0 {
-            for it in 1..latest {
-                if !keeps(*keep, it, marks) {
-                    candidates.extend(rows::outputs_at(pool, &point, stage, role, it).await?);
+            for held in rows::outputs_before(pool, &point, stage, role, latest).await? {
+                if !keeps(*keep, held.at.iteration, marks) {
+                    candidates.push(held);
                 }
             }
         }

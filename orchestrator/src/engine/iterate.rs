@@ -180,6 +180,23 @@ impl Engine<'_> {
         Ok(())
     }
 
+    /// At the start of a run: one retention pass over every point, and the files of
+    /// recorded removals deleted. A crash between an iteration's record and its pass, or
+    /// between a removal's record and its file's deletion, leaves content the policies no
+    /// longer keep; a point that stopped right then has no later pass to catch it.
+    pub(super) async fn retain_everywhere(&mut self) -> Result<()> {
+        if self.policies.is_empty() {
+            return Ok(());
+        }
+        let store = self.ledger.flush().await?;
+        let done = crate::retention::whole_workspace(store.pool(), &self.artifacts, &self.policies)
+            .await?;
+        if done.files > 0 {
+            tracing::debug!(files = done.files, bytes = done.bytes, "retention at start");
+        }
+        Ok(())
+    }
+
     /// The stopping rules on the point's history (which holds its current iteration).
     pub(super) fn judge(&mut self, p: usize) -> Result<Verdict> {
         let pr = &mut self.points[p];

@@ -599,6 +599,7 @@ impl Engine<'_> {
         self.restore().await?;
         self.reconcile().await?;
         self.end_untracked_children().await?;
+        self.retain_everywhere().await?;
         self.next_id = self.ledger.flush().await?.next_attempt_id().await?;
         let mut sigint = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::interrupt())
             .context("cannot install the SIGINT handler")?;

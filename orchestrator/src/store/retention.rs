@@ -33,22 +33,24 @@ pub struct Marks {
     pub window_from: Option<u32>,
 }
 
-/// The outputs of a stage's role at a point's iteration, not removed yet.
-pub async fn outputs_at(
+/// The outputs of a stage's role at a point's iterations before `before`, not removed yet,
+/// in iteration order.
+pub async fn outputs_before(
     pool: &SqlitePool,
     point: &str,
     stage: &str,
     role: &str,
-    iteration: u32,
+    before: u32,
 ) -> Result<Vec<Held>> {
     let rows = sqlx::query(
-        "SELECT o.artifact AS hash, f.size AS size FROM attempts a \
+        "SELECT o.artifact AS hash, f.size AS size, a.iteration AS iteration FROM attempts a \
          JOIN attempt_outputs o ON o.attempt_id = a.id JOIN artifacts f ON f.hash = o.artifact \
-         WHERE a.point = ? AND a.iteration = ? AND a.stage = ? AND a.state = ? AND o.role = ? \
-         AND NOT EXISTS (SELECT 1 FROM removals r WHERE r.hash = o.artifact)",
+         WHERE a.point = ? AND a.iteration < ? AND a.stage = ? AND a.state = ? AND o.role = ? \
+         AND NOT EXISTS (SELECT 1 FROM removals r WHERE r.hash = o.artifact) \
+         ORDER BY a.iteration",
     )
     .bind(point)
-    .bind(i64::from(iteration))
+    .bind(i64::from(before))
     .bind(stage)
     .bind(AttemptState::Succeeded)
     .bind(role)
@@ -63,7 +65,7 @@ pub async fn outputs_at(
                 point: point.to_string(),
                 stage: stage.to_string(),
                 role: role.to_string(),
-                iteration,
+                iteration: u32::try_from(r.get::<i64, _>("iteration")).unwrap_or(0),
             },
         })
         .collect())
