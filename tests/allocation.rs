@@ -65,9 +65,10 @@ fn a_campaign_longer_than_one_allocation_finishes_through_continuations() {
     }
     let d = tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"));
     campaign(d.path());
-    // 1-minute jobs, warned 40 s before the limit. Slurm sends the warning from a periodic
-    // check, so it may come well after its nominal 20 s (once more than 12 s late, which
-    // let a 30 s campaign finish inside the first job). The campaign needs about 75 s of
+    // 1-minute jobs, warned 40 s before the limit. The warning may come well after its
+    // nominal 20 s (it once came more than 12 s late, which let a 30 s campaign finish
+    // inside the first job; the controller sends it from a periodic check, as recalled,
+    // not verified here). The campaign needs about 75 s of
     // stages (15 iterations of 5 s), more than a job's whole limit, so it cannot end inside
     // the first job: at least two jobs.
     let o = run_rondo(
