@@ -334,11 +334,14 @@ fn with_source_date_epoch_the_same_steps_give_byte_identical_case_folders() {
     for name in ["e1", "e2"] {
         init_case(tmp.path(), name, &SMALL, &["--restart-mib", "0"]);
         for s in ["band", "project", "solve", "update"] {
-            let out = std::process::Command::new(&cb)
-                .args([s, name])
+            let mut cmd = std::process::Command::new(&cb);
+            cmd.args([s, name])
                 .current_dir(tmp.path())
                 .env("SOURCE_DATE_EPOCH", "0")
-                .output()
+                .stdout(std::process::Stdio::piped())
+                .stderr(std::process::Stdio::piped());
+            let out = spawn(&mut cmd)
+                .wait_with_output()
                 .unwrap_or_else(|e| panic!("{e}"));
             assert!(out.status.success(), "{out:?}");
         }

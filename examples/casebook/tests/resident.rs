@@ -33,13 +33,13 @@ impl Drop for Server {
 }
 
 fn start_server(dir: &Path, name: &str) -> Server {
-    let child = Command::new(casebook())
-        .args(["serve", name, "--poll-ms", "5"])
-        .current_dir(dir)
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap_or_else(|e| panic!("cannot start casebook serve: {e}"));
+    let child = spawn(
+        Command::new(casebook())
+            .args(["serve", name, "--poll-ms", "5"])
+            .current_dir(dir)
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped()),
+    );
     let ready = dir.join(name).join("handoff").join("ready");
     wait_for("the ready file", || ready.is_file());
     Server(child)

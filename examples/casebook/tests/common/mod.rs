@@ -7,7 +7,7 @@ use hdf5_metno as hdf5;
 use num_complex::Complex64;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
-use std::sync::OnceLock;
+use std::sync::{Mutex, MutexGuard, OnceLock};
 
 /// The Rydberg energy in eV used by the log (CODATA 2018), as a reader of the log has it.
 pub const RYDBERG_EV: f64 = 13.605_693_122_994;
@@ -40,6 +40,7 @@ pub fn model_solid() -> PathBuf {
                 profile
             };
             let manifest = repo().join("Cargo.toml");
+            let _quiet = no_fork_now();
             let out = Command::new(env!("CARGO"))
                 .args([
                     "build",
@@ -79,12 +80,33 @@ pub fn start() -> PathBuf {
     repo().join("examples").join("start")
 }
 
+/// Held while this test process has an HDF5 file open, and while it starts a child. The
+/// HDF5 library opens files without close-on-exec and locks them (flock): a child forked by
+/// another test thread while a file is open inherits the descriptor and its lock, and
+/// holds it for as long as it runs, so a casebook step that opens that archive for writing
+/// fails with "unable to lock file" (seen once in CI).
+pub fn no_fork_now() -> MutexGuard<'static, ()> {
+    static LOCK: Mutex<()> = Mutex::new(());
+    LOCK.lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner)
+}
+
+/// Start `cmd` while no HDF5 file of this process is open (see [`no_fork_now`]).
+pub fn spawn(cmd: &mut Command) -> std::process::Child {
+    let _quiet = no_fork_now();
+    cmd.spawn()
+        .unwrap_or_else(|e| panic!("cannot start {:?}: {e}", cmd.get_program()))
+}
+
 /// Run a program in `dir`.
 pub fn run(bin: &Path, dir: &Path, args: &[&str]) -> Output {
-    Command::new(bin)
-        .args(args)
+    let mut cmd = Command::new(bin);
+    cmd.args(args)
         .current_dir(dir)
-        .output()
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped());
+    spawn(&mut cmd)
+        .wait_with_output()
         .unwrap_or_else(|e| panic!("cannot run {}: {e}", bin.display()))
 }
 
@@ -236,6 +258,7 @@ pub fn npy_complex(path: &Path) -> Vec<Complex64> {
 
 /// A complex function stored as an (n, 2) dataset of the archive.
 pub fn h5_complex(case: &Path, name: &str) -> Vec<Complex64> {
+    let _quiet = no_fork_now();
     let f = hdf5::File::open(file(case, "impurity.h5")).unwrap_or_else(|e| panic!("{e}"));
     let ds = f
         .dataset(&format!("impurity/{name}"))
@@ -249,6 +272,7 @@ pub fn h5_complex(case: &Path, name: &str) -> Vec<Complex64> {
 
 /// A real dataset of the archive (row-major).
 pub fn h5_real(case: &Path, name: &str) -> Vec<f64> {
+    let _quiet = no_fork_now();
     let f = hdf5::File::open(file(case, "impurity.h5")).unwrap_or_else(|e| panic!("{e}"));
     f.dataset(&format!("impurity/{name}"))
         .and_then(|d| d.read_raw())
@@ -257,6 +281,7 @@ pub fn h5_real(case: &Path, name: &str) -> Vec<f64> {
 
 /// A scalar attribute of /impurity.
 pub fn h5_attr(case: &Path, name: &str) -> f64 {
+    let _quiet = no_fork_now();
     let f = hdf5::File::open(file(case, "impurity.h5")).unwrap_or_else(|e| panic!("{e}"));
     f.group("impurity")
         .and_then(|g| g.attr(name))
