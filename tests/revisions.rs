@@ -487,6 +487,47 @@ fn tempdir() -> tempfile::TempDir {
     tempfile::tempdir().unwrap_or_else(|e| panic!("{e}"))
 }
 
+/// In `dir`: the reduced demo with volumes 27.0 and 29.0 at 1200 K run to the end, then the
+/// file grown by 28.5 (point `p003`), with the `warm` text appended to both (not run yet).
+fn grow_by_28_5(dir: &Path, warm: &str) {
+    let tol = "1.0e-6";
+    write(
+        dir,
+        &(campaign("27.0, 29.0", "1200", tol, 40, "6.0") + warm),
+    );
+    run(dir, &[], 0);
+    write(
+        dir,
+        &(campaign("27.0, 28.5, 29.0", "1200", tol, 40, "6.0") + warm),
+    );
+}
+
+/// The same 28.5 point alone, cold from the start files, in `dir`: (iterations, energy).
+fn cold_28_5(dir: &Path) -> (i64, f64) {
+    write(dir, &campaign("28.5", "1200", "1.0e-6", 40, "6.0"));
+    run(dir, &[], 0);
+    (points(dir)["p001"].2, energy(dir, "p001"))
+}
+
+/// The final `update.energy` of point `id` in `dir`'s workspace (NaN if missing).
+fn energy(dir: &Path, id: &str) -> f64 {
+    status_json(dir, &ws(dir))["points"]
+        .as_array()
+        .and_then(|ps| ps.iter().find(|p| p["id"] == id).cloned())
+        .and_then(|p| p["metrics"]["update.energy"].as_f64())
+        .unwrap_or(f64::NAN)
+}
+
+/// The density artifact the first `band` of point `p003` read.
+fn first_band_density(w: &Path) -> Vec<String> {
+    strings(
+        w,
+        "SELECT i.artifact FROM attempt_inputs i JOIN attempts a ON a.id = i.attempt_id \
+         WHERE a.point = 'p003' AND a.iteration = 1 AND a.stage = 'band' \
+         AND a.state = 'succeeded' AND i.role = 'density'",
+    )
+}
+
 /// `warm-start: { along: [volume] }` (`estimate: linear`, the default): a volume added
 /// between two converged volumes starts from the interpolation of their last good mixed
 /// density and self-energy at its volume. The blends are recorded (weight, axis, both
@@ -498,17 +539,7 @@ fn tempdir() -> tempfile::TempDir {
 fn an_added_volume_between_two_converged_ones_starts_from_their_interpolation() {
     let _ = model_solid();
     let (a, b) = (tempdir(), tempdir());
-    let warm = "warm-start:\n  along: [volume]\n";
-    let tol = "1.0e-6";
-    write(
-        a.path(),
-        &(campaign("27.0, 29.0", "1200", tol, 40, "6.0") + warm),
-    );
-    run(a.path(), &[], 0);
-    write(
-        a.path(),
-        &(campaign("27.0, 28.5, 29.0", "1200", tol, 40, "6.0") + warm),
-    );
+    grow_by_28_5(a.path(), "warm-start:\n  along: [volume]\n");
     run(a.path(), &[], 0);
     let w = ws(a.path());
     let grown = points(a.path());
@@ -528,12 +559,7 @@ fn an_added_volume_between_two_converged_ones_starts_from_their_interpolation() 
         "28.5 is 0.75 of the way from 27.0 (p001) to 29.0 (p002)"
     );
     // The first band read the blended density.
-    let read = strings(
-        &w,
-        "SELECT i.artifact FROM attempt_inputs i JOIN attempts a ON a.id = i.attempt_id \
-         WHERE a.point = 'p003' AND a.iteration = 1 AND a.stage = 'band' \
-         AND a.state = 'succeeded' AND i.role = 'density'",
-    );
+    let read = first_band_density(&w);
     let blend = strings(
         &w,
         "SELECT artifact || ' ' || first_artifact || ' ' || second_artifact FROM warm_blends \
@@ -608,17 +634,8 @@ fn an_added_volume_between_two_converged_ones_starts_from_their_interpolation() 
         );
     }
     // Cold: the same point alone, from the start files.
-    write(b.path(), &campaign("28.5", "1200", tol, 40, "6.0"));
-    run(b.path(), &[], 0);
-    let (warm_iterations, cold_iterations) = (grown["p003"].2, points(b.path())["p001"].2);
-    let energy = |dir: &Path, id: &str| {
-        status_json(dir, &ws(dir))["points"]
-            .as_array()
-            .and_then(|ps| ps.iter().find(|p| p["id"] == id).cloned())
-            .and_then(|p| p["metrics"]["update.energy"].as_f64())
-            .unwrap_or(f64::NAN)
-    };
-    let (ew, ec) = (energy(a.path(), "p003"), energy(b.path(), "p001"));
+    let (cold_iterations, ec) = cold_28_5(b.path());
+    let (warm_iterations, ew) = (grown["p003"].2, energy(a.path(), "p003"));
     eprintln!(
         "interpolated warm start: {warm_iterations} iterations (cold {cold_iterations}); \
          energy {ew} eV warm, {ec} eV cold, difference {:.2e} eV",
@@ -749,16 +766,9 @@ fn inputs_rondo_cannot_read_as_numbers_come_from_the_nearest_point() {
 fn an_added_volume_warm_starts_from_its_converged_neighbour() {
     let _ = model_solid();
     let (a, b) = (tempdir(), tempdir());
-    let warm = "warm-start:\n  along: [volume]\n  estimate: nearest\n";
-    let tol = "1.0e-6";
-    write(
+    grow_by_28_5(
         a.path(),
-        &(campaign("27.0, 29.0", "1200", tol, 40, "6.0") + warm),
-    );
-    run(a.path(), &[], 0);
-    write(
-        a.path(),
-        &(campaign("27.0, 28.5, 29.0", "1200", tol, 40, "6.0") + warm),
+        "warm-start:\n  along: [volume]\n  estimate: nearest\n",
     );
     let c = check(a.path());
     assert!(c.contains("new"), "{c}");
@@ -778,12 +788,7 @@ fn an_added_volume_warm_starts_from_its_converged_neighbour() {
         "28.5 is nearest to 29.0 (p002), at its last good iteration"
     );
     // The first band of the new point read p002's final mixed density.
-    let read = strings(
-        &ws(a.path()),
-        "SELECT i.artifact FROM attempt_inputs i JOIN attempts a ON a.id = i.attempt_id \
-         WHERE a.point = 'p003' AND a.iteration = 1 AND a.stage = 'band' \
-         AND a.state = 'succeeded' AND i.role = 'density'",
-    );
+    let read = first_band_density(&ws(a.path()));
     let final_mix = strings(
         &ws(a.path()),
         "SELECT o.artifact FROM attempt_outputs o JOIN attempts a ON a.id = o.attempt_id \
@@ -797,19 +802,8 @@ fn an_added_volume_warm_starts_from_its_converged_neighbour() {
         "the warm start's input is the neighbour's final density"
     );
     // Cold: the same point alone, from the start files.
-    write(b.path(), &campaign("28.5", "1200", tol, 40, "6.0"));
-    run(b.path(), &[], 0);
-    let cold = points(b.path());
-    let cold_iterations = cold["p001"].2;
-    let energy = |dir: &Path, id: &str| {
-        let s = status_json(dir, &ws(dir));
-        s["points"]
-            .as_array()
-            .and_then(|ps| ps.iter().find(|p| p["id"] == id).cloned())
-            .and_then(|p| p["metrics"]["update.energy"].as_f64())
-            .unwrap_or(f64::NAN)
-    };
-    let (ew, ec) = (energy(a.path(), "p003"), energy(b.path(), "p001"));
+    let (cold_iterations, ec) = cold_28_5(b.path());
+    let ew = energy(a.path(), "p003");
     eprintln!(
         "warm start: {warm_iterations} iterations (cold {cold_iterations}, {:.0} %); energy \
          {ew} eV warm, {ec} eV cold, difference {:.2e} eV",

@@ -180,12 +180,13 @@ impl Engine<'_> {
         Ok(())
     }
 
-    /// At the start of a run: one retention pass over every point, and the files of
-    /// recorded removals deleted. A crash between an iteration's record and its pass, or
-    /// between a removal's record and its file's deletion, leaves content the policies no
-    /// longer keep; a point that stopped right then has no later pass to catch it.
+    /// At the start of a run after an unclean end: one retention pass over every point, and
+    /// the files of recorded removals deleted. A crash between an iteration's record and its
+    /// pass, or between a removal's record and its file's deletion, leaves content the
+    /// policies no longer keep; a point that stopped right then has no later pass to catch
+    /// it. After a clean end (the seal matched) there is nothing to catch up.
     pub(super) async fn retain_everywhere(&mut self) -> Result<()> {
-        if self.policies.is_empty() {
+        if self.policies.is_empty() || self.ended_cleanly {
             return Ok(());
         }
         let store = self.ledger.flush().await?;

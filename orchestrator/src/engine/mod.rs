@@ -404,6 +404,8 @@ struct Engine<'a> {
     checked_tx: mpsc::UnboundedSender<Checked>,
     /// The campaign's retention policies (`keep:`), applied after each good iteration.
     policies: crate::retention::Policies,
+    /// Whether the workspace's last writer ended cleanly (`PreparedWorkspace`).
+    ended_cleanly: bool,
     /// Attempts on the blocking pool (output checks and storing, built-ins): in flight, but
     /// holding no executor slot.
     storing: std::collections::HashSet<i64>,
@@ -499,6 +501,7 @@ pub async fn run(campaign: &Campaign, opts: &RunOptions, progress: Progress) -> 
         residents: HashMap::new(),
         handoffs: HashMap::new(),
         revision: ws.revision,
+        ended_cleanly: ws.ended_cleanly,
     };
     engine
         .event(

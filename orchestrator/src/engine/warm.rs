@@ -311,14 +311,14 @@ pub fn describe(choice: &WarmChoice, warm: &WarmStart) -> String {
             warm.along.join(", ")
         ),
     };
-    if !choice.blends.is_empty() || !choice.not_blended.is_empty() {
-        if !choice.blends.is_empty() && !choice.not_blended.is_empty() {
+    if !choice.not_blended.is_empty() {
+        if choice.blends.is_empty() {
+            text.push_str("; not interpolated:");
+        } else {
             text.push_str(&format!(
                 "; from the nearest, {} iteration {}:",
                 n.point, n.iteration
             ));
-        } else if !choice.not_blended.is_empty() {
-            text.push_str("; not interpolated:");
         }
         for why in &choice.not_blended {
             text.push_str(&format!(" {why};"));

@@ -41,6 +41,7 @@ pub async fn prepare_workspace(
     std::fs::create_dir_all(&paths.root)
         .with_context(|| format!("{}: cannot create the workspace", paths.root.display()))?;
     let lock = store::lock(&paths.root)?;
+    let ended_cleanly = store::seal::matches(&paths.db);
     // From here the database may be written: only a clean end seals it again.
     store::seal::break_seal(&paths.db)
         .with_context(|| format!("{}: cannot remove the seal", paths.db.display()))?;
@@ -120,6 +121,7 @@ pub async fn prepare_workspace(
         workspace_id,
         revision: revised.number,
         points: revised.points,
+        ended_cleanly,
         _lock: lock,
     })
 }
@@ -176,6 +178,9 @@ pub struct PreparedWorkspace {
     pub revision: i64,
     /// The campaign's points under that revision, with the store's ids.
     pub points: Vec<PointSpec>,
+    /// Whether the last writer ended cleanly (its seal still matched): then no crash
+    /// window is left open for this run to close.
+    pub ended_cleanly: bool,
     _lock: store::WorkspaceLock,
 }
 
